@@ -1,0 +1,1 @@
+"""Pure numerical core of voxelscope: numpy, scipy and nibabel only, never Qt."""
