@@ -1,0 +1,306 @@
+"""Design matrices: conditions convolved with a kernel, plus confounds, drift and a constant.
+
+Timing conventions
+------------------
+* Onsets and durations are in seconds from the start of the first volume's acquisition.
+* Each volume ``n`` is sampled at ``n * TR + reference_time_s``. ``reference_time_s`` is 0
+  by default; a run whose sidecar gives ``SliceTiming`` uses the median slice time, so the
+  regressors are sampled when the middle of the volume was acquired (see
+  :mod:`voxelscope.core.run`).
+* The stimulus is built on a fine grid of ``TR / oversampling`` seconds (16 by default),
+  convolved there with the kernel, and read at the volume times by linear interpolation.
+  Partial overlap of an event with a fine bin counts in proportion.
+
+Column order
+------------
+The default model is exactly: one regressor per condition (named as the condition, i.e. the
+``trial_type`` value), then, when asked, derivative columns (``<name>_dt``, ``<name>_dd``)
+after their condition, then confound columns (their file names), then discrete cosine drift
+columns ``drift_1 .. drift_K`` and last ``constant``.
+
+Drift uses the discrete cosine basis ``cos(pi * k * (2 n + 1) / (2 N))`` for
+``k = 1 .. K`` with ``K = floor(2 N TR / cutoff)``; a 128 s cutoff is a common default
+(common practice).
+
+Examples
+--------
+>>> from voxelscope.core.events import Condition
+>>> c = [Condition("tone", [10.0], [15.0])]
+>>> d = build_design(c, n_volumes=40, tr=1.25, kernel="boxcar", highpass_s=None)
+>>> d.names
+('tone', 'constant')
+>>> float(d.X[10, 0]), float(d.X[7, 0])
+(1.0, 0.0)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import signal
+
+from .confounds import Confounds
+from .errors import InputError, ModelError
+from .events import Condition
+from .hrf import FIR, Boxcar, Kernel, get_kernel
+
+__all__ = ["DesignMatrix", "build_design", "dct_drift", "frame_times", "stimulus_regressor"]
+
+
+@dataclass(frozen=True, eq=False)
+class DesignMatrix:
+    """A design matrix with named columns.
+
+    Attributes
+    ----------
+    X : ndarray, shape (n_volumes, n_columns)
+        float64, read-only.
+    names : tuple of str
+        Column names.
+    kinds : tuple of str
+        For each column: ``condition``, ``derivative``, ``fir``, ``confound``, ``drift``
+        or ``constant``.
+    condition_columns : dict
+        Condition name -> indices of its columns (main column first).
+    kernel : Kernel
+    tr : float
+    frame_times : ndarray
+        Sampling time of each volume in seconds.
+    """
+
+    X: np.ndarray
+    names: tuple[str, ...]
+    kinds: tuple[str, ...]
+    condition_columns: dict[str, tuple[int, ...]]
+    kernel: Kernel
+    tr: float
+    frame_times: np.ndarray
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def n_volumes(self) -> int:
+        return int(self.X.shape[0])
+
+    @property
+    def n_columns(self) -> int:
+        return int(self.X.shape[1])
+
+    @property
+    def condition_names(self) -> tuple[str, ...]:
+        return tuple(self.condition_columns)
+
+    def columns_of_kind(self, *kinds: str) -> list[int]:
+        return [i for i, k in enumerate(self.kinds) if k in kinds]
+
+    def column(self, name: str) -> np.ndarray:
+        return self.X[:, self.names.index(name)]
+
+
+def frame_times(n_volumes: int, tr: float, reference_time_s: float = 0.0) -> np.ndarray:
+    """Sampling time of each volume: ``n * tr + reference_time_s``.
+
+    >>> frame_times(3, 2.0, 0.5).tolist()
+    [0.5, 2.5, 4.5]
+    """
+    return np.arange(n_volumes) * float(tr) + float(reference_time_s)
+
+
+def dct_drift(n_volumes: int, tr: float, cutoff_s: float | None) -> np.ndarray:
+    """Discrete cosine high-pass basis, shape ``(n_volumes, K)``.
+
+    ``K = floor(2 * N * TR / cutoff)``; no columns when ``cutoff_s`` is None.
+
+    >>> dct_drift(100, 2.0, 128.0).shape
+    (100, 3)
+    """
+    if cutoff_s is None:
+        return np.zeros((n_volumes, 0))
+    if not cutoff_s > 0:
+        raise InputError(f"high-pass cutoff must be a positive number of seconds, not {cutoff_s}")
+    k_max = math.floor(2.0 * n_volumes * tr / cutoff_s)
+    k_max = min(k_max, n_volumes - 1)
+    n = np.arange(n_volumes)[:, None]
+    k = np.arange(1, k_max + 1)[None, :]
+    return np.cos(np.pi * k * (2 * n + 1) / (2 * n_volumes))
+
+
+def _fine_stimulus(
+    onsets: np.ndarray,
+    durations: np.ndarray,
+    amplitudes: np.ndarray,
+    grid0: float,
+    dt: float,
+    n_fine: int,
+    use_durations: bool,
+) -> np.ndarray:
+    """Stimulus on the fine grid; bin ``i`` covers ``[grid0 + i dt, grid0 + (i+1) dt)``.
+
+    Blocks contribute their overlap fraction with each bin (height ``amplitude``); brief
+    events (or all events when ``use_durations`` is False) are impulses of area
+    ``amplitude``, split linearly between the two nearest bin centres.
+    """
+    stim = np.zeros(n_fine)
+    edges = grid0 + np.arange(n_fine + 1) * dt
+    for on, du, amp in zip(onsets, durations, amplitudes):
+        if use_durations and du > 0:
+            # overlap of [on, on+du) with each bin, as a fraction of dt
+            lo = np.clip(edges[:-1], on, on + du)
+            hi = np.clip(edges[1:], on, on + du)
+            stim += amp * (hi - lo) / dt
+        else:
+            pos = (on - grid0) / dt - 0.5  # in units of bin centres
+            i0 = math.floor(pos)
+            w1 = pos - i0
+            for idx, w in ((i0, 1.0 - w1), (i0 + 1, w1)):
+                if 0 <= idx < n_fine:
+                    stim[idx] += amp * w / dt
+    return stim
+
+
+def stimulus_regressor(
+    condition: Condition,
+    kernel_samples: np.ndarray,
+    times: np.ndarray,
+    dt: float,
+    use_durations: bool = True,
+) -> np.ndarray:
+    """One condition convolved with one sampled kernel, read at ``times`` (seconds).
+
+    Parameters
+    ----------
+    condition : Condition
+    kernel_samples : ndarray
+        Kernel sampled at ``0, dt, 2 dt, ...`` (e.g. from :meth:`Kernel.basis`).
+    times : ndarray
+        Times at which to read the regressor.
+    dt : float
+        Fine-grid step in seconds.
+    use_durations : bool
+        False treats every event as an impulse at its onset (FIR).
+    """
+    if condition.n_events == 0:
+        return np.zeros(times.shape)
+    lead = max(0.0, -float(condition.onsets.min())) + dt
+    grid0 = min(0.0, float(times.min())) - lead
+    grid0 = math.floor(grid0 / dt) * dt
+    n_fine = math.ceil((float(times.max()) - grid0) / dt) + 2
+    stim = _fine_stimulus(
+        condition.onsets,
+        condition.durations,
+        condition.amplitudes,
+        grid0,
+        dt,
+        n_fine,
+        use_durations,
+    )
+    if kernel_samples.size == 1:
+        conv = stim * kernel_samples[0] * dt
+    else:
+        conv = signal.fftconvolve(stim, kernel_samples)[:n_fine] * dt
+        conv[np.abs(conv) < 1e-12 * max(1.0, float(np.abs(conv).max()))] = 0.0
+    centres = grid0 + (np.arange(n_fine) + 0.5) * dt
+    return np.interp(times, centres, conv)
+
+
+def build_design(
+    conditions: Sequence[Condition],
+    n_volumes: int,
+    tr: float,
+    kernel: str | Kernel = "double-gamma",
+    derivatives: int = 0,
+    highpass_s: float | None = 128.0,
+    confounds: Confounds | None = None,
+    reference_time_s: float = 0.0,
+    oversampling: int = 16,
+) -> DesignMatrix:
+    """Build the design matrix for one kernel.
+
+    Parameters
+    ----------
+    conditions : sequence of Condition
+    n_volumes : int
+    tr : float
+        Repetition time in seconds.
+    kernel : str or Kernel
+    derivatives : {0, 1, 2}
+        Add temporal (1) and dispersion (2) derivative columns after each condition.
+    highpass_s : float or None
+        Discrete cosine drift cutoff in seconds; None for no drift columns.
+    confounds : Confounds, optional
+        Must have one row per volume.
+    reference_time_s : float
+        Time within each TR at which volumes are sampled.
+    oversampling : int
+        Fine-grid steps per TR (at least 16).
+    """
+    if not (tr > 0 and math.isfinite(tr)):
+        raise InputError(f"TR must be a positive number of seconds, not {tr}")
+    if n_volumes < 1:
+        raise InputError("the run has no volumes")
+    if derivatives not in (0, 1, 2):
+        raise InputError(
+            "derivatives must be 0 (none), 1 (temporal) or 2 (temporal and dispersion)"
+        )
+    if not conditions:
+        raise InputError("the model has no conditions; the events file gave none")
+    k = get_kernel(kernel)
+    oversampling = max(int(oversampling), 16)
+    dt = tr / oversampling
+    times = frame_times(n_volumes, tr, reference_time_s)
+
+    cols: list[np.ndarray] = []
+    names: list[str] = []
+    kinds: list[str] = []
+    cond_cols: dict[str, tuple[int, ...]] = {}
+    basis = k.basis(dt, derivatives)
+    for cond in conditions:
+        use_cond = cond
+        if isinstance(k, Boxcar) and np.any(cond.durations == 0):
+            # brief events under boxcar: one TR long, so a volume always sees them
+            use_cond = Condition(
+                cond.name,
+                cond.onsets,
+                np.where(cond.durations == 0, tr, cond.durations),
+                cond.amplitudes,
+            )
+        idx = []
+        for j, (suffix, h) in enumerate(basis):
+            cols.append(stimulus_regressor(use_cond, h, times, dt, use_durations=k.uses_durations))
+            names.append(cond.name + suffix)
+            kinds.append("fir" if isinstance(k, FIR) else ("condition" if j == 0 else "derivative"))
+            idx.append(len(cols) - 1)
+        cond_cols[cond.name] = tuple(idx)
+
+    if confounds is not None:
+        confounds.check_rows(n_volumes)
+        for j, name in enumerate(confounds.names):
+            label = name if name not in names else f"{name}_confound"
+            cols.append(confounds.values[:, j].astype(float))
+            names.append(label)
+            kinds.append("confound")
+
+    drift = dct_drift(n_volumes, tr, highpass_s)
+    for j in range(drift.shape[1]):
+        cols.append(drift[:, j])
+        names.append(f"drift_{j + 1}")
+        kinds.append("drift")
+    cols.append(np.ones(n_volumes))
+    names.append("constant")
+    kinds.append("constant")
+
+    if len(set(names)) != len(names):
+        dup = sorted({n for n in names if names.count(n) > 1})
+        raise InputError(
+            f"design column names repeat: {', '.join(dup)}; rename the conditions or confounds"
+        )
+    X = np.column_stack(cols)
+    X.setflags(write=False)
+    if X.shape[1] > n_volumes:
+        raise ModelError(
+            f"the run has {n_volumes} volumes but the model has {X.shape[1]} columns; "
+            "use fewer regressors (drop confounds, a longer high-pass cutoff or no derivatives)"
+        )
+    return DesignMatrix(X, tuple(names), tuple(kinds), cond_cols, k, float(tr), times)

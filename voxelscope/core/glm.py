@@ -1,0 +1,567 @@
+"""General linear model fits: OLS and AR(1), t and F contrasts, one voxel or many.
+
+One code path serves a single clicked voxel and a whole volume: data are a matrix ``Y`` of
+shape ``(n_volumes, n_voxels)``; a single voxel is a batch of one.
+
+Numerics
+--------
+* Each voxel is centred before the fit when the design has a constant column (the mean is
+  added back to the constant's beta), and everything is computed in float64. Residuals are
+  computed explicitly, ``r = y - X b``; the shortcut ``y'y - b'X'y`` is never used (it loses
+  every digit on raw BOLD values).
+* Constant voxels, and voxels the design fits exactly, have no residual variance: their
+  ``t``, ``p`` and ``variance`` are NaN (``null`` in JSON), flagged in ``degenerate``.
+
+AR(1) noise model
+-----------------
+``rho = sum(r_t r_{t-1}) / sum(r_t^2)`` from the OLS residuals, clipped to [-0.99, 0.99];
+then the Prais-Winsten transform (Prais & Winsten, 1954) of ``y`` and ``X``: row 0 scaled
+by ``sqrt(1 - rho^2)``, row ``t`` replaced by ``y_t - rho y_{t-1}``; then OLS on the
+transformed data (one pass). Unlike a transform that drops the first observation, no row is
+lost, so ``df = n - rank``. Fitted signal and residuals are reported in data units
+(``X b`` and ``y - X b``); ``sigma2`` and ``r2`` are described in :class:`FitResult`.
+For many voxels, ``rho_step`` groups voxels whose rho round to the same bin and shares one
+prewhitened solve per bin.
+
+Examples
+--------
+>>> rng = np.random.default_rng(0)
+>>> X = np.column_stack([rng.standard_normal(50), np.ones(50)])
+>>> y = 2.0 * X[:, 0] + 10 + 0.1 * rng.standard_normal(50)
+>>> res = fit(X, y, contrast=[1, 0])
+>>> round(float(res.beta[0]), 1), int(res.df)
+(2.0, 48)
+"""
+
+from __future__ import annotations
+
+import math
+import re
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from .errors import InputError, ModelError
+
+__all__ = [
+    "FitResult",
+    "PreparedDesign",
+    "ar1_rho",
+    "condition_f_matrix",
+    "f_test",
+    "fit",
+    "parse_contrast",
+    "prais_winsten",
+    "prepare",
+]
+
+_RHO_LIMIT = 0.99
+
+
+# ----------------------------------------------------------------------------- design prep
+
+
+@dataclass(frozen=True, eq=False)
+class PreparedDesign:
+    """Everything about a design that does not depend on the data.
+
+    Attributes
+    ----------
+    X : ndarray (n, p)
+    pinv : ndarray (p, n)
+        Moore-Penrose pseudo-inverse of X.
+    cov_unscaled : ndarray (p, p)
+        ``(X'X)^-1``.
+    rank, df : int
+    constant_index : int or None
+        Index of the all-ones column when there is one.
+    """
+
+    X: np.ndarray
+    names: tuple[str, ...]
+    pinv: np.ndarray
+    cov_unscaled: np.ndarray
+    rank: int
+    df: int
+    constant_index: int | None
+
+
+def _collinear_columns(X: np.ndarray, names: Sequence[str]) -> list[str]:
+    norms = np.linalg.norm(X, axis=0)
+    zero = [names[i] for i in np.flatnonzero(norms == 0)]
+    Xn = X / np.where(norms == 0, 1.0, norms)
+    _, s, vt = np.linalg.svd(Xn, full_matrices=False)
+    tol = s.max() * max(X.shape) * np.finfo(float).eps * 1e3
+    null = vt[s <= tol]
+    involved = set(zero)
+    for v in null:
+        involved.update(names[i] for i in np.flatnonzero(np.abs(v) > 1e-6))
+    return [n for n in names if n in involved]
+
+
+def prepare(X: np.ndarray, names: Sequence[str] | None = None) -> PreparedDesign:
+    """Check a design for full column rank and precompute its inverse parts.
+
+    Raises
+    ------
+    ModelError
+        Fewer rows than columns, or collinear columns (named in the message).
+
+    >>> p = prepare(np.column_stack([np.arange(5.0), np.ones(5)]), ["slope", "constant"])
+    >>> p.df, p.constant_index
+    (3, 1)
+    """
+    X = np.asarray(X, dtype=float)
+    if X.ndim != 2:
+        raise ModelError("the design matrix must be two-dimensional")
+    n, p = X.shape
+    names = tuple(names) if names is not None else tuple(f"x{i}" for i in range(p))
+    if n < p:
+        raise ModelError(
+            f"the run has {n} volumes but the model has {p} columns; use fewer regressors"
+        )
+    if not np.all(np.isfinite(X)):
+        raise ModelError("the design matrix has non-finite values; check events and confounds")
+    norms = np.linalg.norm(X, axis=0)
+    Xn = X / np.where(norms == 0, 1.0, norms)
+    s = np.linalg.svd(Xn, compute_uv=False)
+    tol = s.max() * max(n, p) * np.finfo(float).eps * 1e3
+    rank = int(np.sum(s > tol))
+    if rank < p or np.any(norms == 0):
+        cols = _collinear_columns(X, names)
+        if any(norms == 0):
+            empty = [names[i] for i in np.flatnonzero(norms == 0)]
+            raise ModelError(
+                f"design column(s) {', '.join(repr(c) for c in empty)} are all zero "
+                "(a condition with no events inside the run?); check the events and onsets"
+            )
+        raise ModelError(
+            f"the design is rank-deficient (rank {rank} of {p} columns): "
+            f"{', '.join(repr(c) for c in cols)} are collinear; drop one of them"
+        )
+    # QR-based inverse: better conditioned than inverting X'X directly.
+    q, r = np.linalg.qr(X)
+    r_inv = np.linalg.solve(r, np.eye(p))
+    pinv = r_inv @ q.T
+    cov = r_inv @ r_inv.T
+    const = None
+    for i in range(p):
+        col = X[:, i]
+        if np.all(col == col[0]) and col[0] != 0:
+            const = i
+            break
+    for a in (X, pinv, cov):
+        a.setflags(write=False)
+    return PreparedDesign(X, names, pinv, cov, rank, n - rank, const)
+
+
+# ----------------------------------------------------------------------------- contrasts
+
+_NUM = re.compile(r"\s*(\d+(?:\.\d*)?(?:[eE][-+]?\d+)?|\.\d+(?:[eE][-+]?\d+)?)\s*")
+
+
+def parse_contrast(
+    expr: str | None,
+    names: Sequence[str],
+    groups: Mapping[str, Sequence[int]] | None = None,
+    default: str | None = None,
+) -> np.ndarray:
+    """Weights for a linear combination of column (or condition) names.
+
+    Accepts ``tap``, ``tap - tone``, ``0.5*tap + 0.5*tone``, ``2 tap``, ``-tone``.
+    A name in ``groups`` that spans several columns (a condition under FIR) stands for the
+    average of its columns.
+
+    Parameters
+    ----------
+    expr : str or None
+        The expression; None or empty means ``default``.
+    names : sequence of str
+        Design column names.
+    groups : mapping, optional
+        Condition name -> its column indices (main column first).
+    default : str, optional
+        Expression used when ``expr`` is empty (usually the first condition).
+
+    Raises
+    ------
+    InputError
+        Unknown names (listed) or a malformed expression.
+
+    >>> parse_contrast("tap - tone", ["tone", "tap", "constant"]).tolist()
+    [-1.0, 1.0, 0.0]
+    >>> parse_contrast("0.5*tap + 0.5*tone", ["tone", "tap", "constant"]).tolist()
+    [0.5, 0.5, 0.0]
+    """
+    names = list(names)
+    if expr is None or not str(expr).strip():
+        if default is None:
+            raise InputError("no contrast given; name a condition, e.g. --contrast tone")
+        expr = default
+    text = str(expr)
+    lookup: dict[str, list[int]] = {}
+    for i, n in enumerate(names):
+        lookup[n] = [i]
+    if groups:
+        for g, idx in groups.items():
+            if len(idx) > 1 and _is_fir_group(names, g, idx):
+                lookup[g] = list(idx)
+            elif g not in lookup:
+                lookup[g] = [idx[0]]
+    known = sorted(lookup, key=len, reverse=True)
+    w = np.zeros(len(names))
+    pos = 0
+    n_terms = 0
+    unknown: list[str] = []
+    while pos < len(text):
+        while pos < len(text) and text[pos].isspace():
+            pos += 1
+        if pos >= len(text):
+            break
+        sign = 1.0
+        if n_terms > 0:
+            if text[pos] not in "+-":
+                raise InputError(
+                    f"contrast '{expr}': expected + or - at position {pos + 1}; "
+                    "write terms like 'tap - tone' or '0.5*tap + 0.5*tone'"
+                )
+        while pos < len(text) and (text[pos] in "+-" or text[pos].isspace()):
+            if text[pos] == "-":
+                sign = -sign
+            pos += 1
+        coef = 1.0
+        m = _NUM.match(text, pos)
+        if m:
+            coef = float(m.group(1))
+            pos = m.end()
+            if pos < len(text) and text[pos] == "*":
+                pos += 1
+            while pos < len(text) and text[pos].isspace():
+                pos += 1
+        name = None
+        for k in known:
+            if text.startswith(k, pos):
+                end = pos + len(k)
+                if end == len(text) or not (text[end].isalnum() or text[end] == "_"):
+                    name = k
+                    break
+        if name is None:
+            mm = re.match(r"[^\s+*]+(?:\s*[^\s+\-*]+)*", text[pos:])
+            word = (mm.group(0) if mm else text[pos:]).strip() or text[pos:]
+            word = re.split(r"\s+[+-]\s+", word)[0]
+            unknown.append(word)
+            # skip to the next top-level + or - separated by spaces
+            nxt = re.search(r"\s[+-]\s", text[pos:])
+            pos = pos + nxt.start() if nxt else len(text)
+            n_terms += 1
+            continue
+        pos += len(name)
+        cols = lookup[name]
+        for c in cols:
+            w[c] += sign * coef / len(cols)
+        n_terms += 1
+    if unknown:
+        conds = list(groups) if groups else []
+        offer = conds if conds else names
+        raise InputError(
+            f"contrast '{expr}': unknown name(s) {', '.join(repr(u) for u in unknown)}; "
+            f"use {', '.join(offer)}"
+        )
+    if n_terms == 0 or not np.any(w):
+        raise InputError(f"contrast '{expr}' has no non-zero weights; name at least one condition")
+    return w
+
+
+def _is_fir_group(names: Sequence[str], group: str, idx: Sequence[int]) -> bool:
+    return all(str(names[i]).startswith(f"{group}_fir") for i in idx)
+
+
+def condition_f_matrix(
+    names: Sequence[str], groups: Mapping[str, Sequence[int]], condition: str
+) -> np.ndarray:
+    """Rows selecting every column of one condition (with its derivatives or FIR bins).
+
+    >>> condition_f_matrix(["a", "a_dt", "constant"], {"a": [0, 1]}, "a").tolist()
+    [[1.0, 0.0, 0.0], [0.0, 1.0, 0.0]]
+    """
+    if condition not in groups:
+        raise InputError(f"unknown condition '{condition}'; use {', '.join(groups)}")
+    idx = list(groups[condition])
+    c = np.zeros((len(idx), len(names)))
+    c[np.arange(len(idx)), idx] = 1.0
+    return c
+
+
+# ----------------------------------------------------------------------------- results
+
+
+@dataclass(eq=False)
+class FitResult:
+    """The result of one fit of one design to ``n_voxels`` time series.
+
+    Per-voxel arrays have shape ``(n_voxels,)``.
+
+    Attributes
+    ----------
+    noise : {"ols", "ar1"}
+    weights : ndarray (p,)
+        Contrast weights.
+    betas : ndarray (p, n_voxels)
+    beta : contrast estimate ``c'b``
+    variance : ``sigma2 * c'(X'X)^-1 c`` (whitened X under AR(1))
+    t, p : t statistic and its two-sided p value
+    df : int
+        ``n - rank``.
+    sigma2 : residual variance ``sum(r^2) / df`` (of the whitened residuals under AR(1))
+    r2 : ``1 - sum((y - Xb)^2) / sum((y - mean y)^2)`` in data units
+    rho : AR(1) coefficient per voxel (None for OLS)
+    fitted, residuals : ndarray (n, n_voxels) or None
+        ``X b`` and ``y - X b`` in data units; None when not kept.
+    degenerate : bool per voxel
+        True where there is no residual variance (constant or exactly fitted voxel).
+    cov_unscaled : ndarray (n_groups, p, p)
+        ``(X'X)^-1`` per whitening group; ``group`` gives each voxel's group.
+    """
+
+    noise: str
+    weights: np.ndarray
+    betas: np.ndarray
+    beta: np.ndarray
+    variance: np.ndarray
+    t: np.ndarray
+    p: np.ndarray
+    df: int
+    sigma2: np.ndarray
+    r2: np.ndarray
+    rho: np.ndarray | None
+    fitted: np.ndarray | None
+    residuals: np.ndarray | None
+    degenerate: np.ndarray
+    cov_unscaled: np.ndarray
+    group: np.ndarray
+    names: tuple[str, ...] = field(default=())
+
+    @property
+    def n_voxels(self) -> int:
+        return int(self.beta.shape[0])
+
+    @property
+    def z(self) -> np.ndarray:
+        """z score with the same two-sided p as ``t`` (sign of ``t``); 0 where degenerate."""
+        with np.errstate(invalid="ignore"):
+            z = np.sign(self.t) * stats.norm.isf(self.p / 2.0)
+        z = np.where(np.isfinite(z), z, np.where(np.isfinite(self.t), np.sign(self.t) * 38.0, 0.0))
+        return np.where(self.degenerate, 0.0, z)
+
+
+def ar1_rho(residuals: np.ndarray) -> np.ndarray:
+    """Lag-1 autocorrelation ``sum(r_t r_{t-1}) / sum(r_t^2)`` per column, clipped.
+
+    >>> float(ar1_rho(np.array([1.0, 1.0, 1.0, 1.0]))[0])
+    0.75
+    """
+    r = np.asarray(residuals, dtype=float)
+    if r.ndim == 1:
+        r = r[:, None]
+    num = np.einsum("ij,ij->j", r[1:], r[:-1])
+    den = np.einsum("ij,ij->j", r, r)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
+    return np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
+
+
+def prais_winsten(a: np.ndarray, rho: float) -> np.ndarray:
+    """Prais-Winsten transform along axis 0 (Prais & Winsten, 1954).
+
+    Row 0 is scaled by ``sqrt(1 - rho^2)``; row ``t`` becomes ``a_t - rho a_{t-1}``.
+
+    >>> prais_winsten(np.array([1.0, 2.0, 3.0]), 0.5).tolist()
+    [0.8660254037844386, 1.5, 2.0]
+    """
+    a = np.asarray(a, dtype=float)
+    out = np.empty_like(a)
+    out[0] = math.sqrt(1.0 - rho * rho) * a[0]
+    out[1:] = a[1:] - rho * a[:-1]
+    return out
+
+
+def _as_prepared(design) -> PreparedDesign:
+    if isinstance(design, PreparedDesign):
+        return design
+    names = getattr(design, "names", None)
+    X = getattr(design, "X", design)
+    return prepare(np.asarray(X, dtype=float), names)
+
+
+def _ols_block(
+    prep: PreparedDesign, Y: np.ndarray, Xdata: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """betas, residual sum of squares (in prep's space), data-unit residual matrix."""
+    B = prep.pinv @ Y
+    R = Y - prep.X @ B
+    rss = np.einsum("ij,ij->j", R, R)
+    return B, rss, R
+
+
+def fit(
+    design,
+    Y: np.ndarray,
+    contrast: Sequence[float] | np.ndarray,
+    noise: str = "ols",
+    rho_step: float | None = None,
+    keep_series: bool = True,
+) -> FitResult:
+    """Fit a design to one or many time series and evaluate one t contrast.
+
+    Parameters
+    ----------
+    design : DesignMatrix, PreparedDesign or ndarray (n, p)
+    Y : ndarray, shape (n,) or (n, n_voxels)
+        Any float dtype; computed in float64.
+    contrast : sequence of float, length p
+    noise : {"ols", "ar1"}
+    rho_step : float, optional
+        Under AR(1), round rho to this step and share one solve per bin (maps). None uses
+        each voxel's own rho.
+    keep_series : bool
+        Keep ``fitted`` and ``residuals`` (n x n_voxels); maps turn this off.
+
+    Returns
+    -------
+    FitResult
+    """
+    prep = _as_prepared(design)
+    Y = np.asarray(Y)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    n, p = prep.X.shape
+    if Y.shape[0] != n:
+        raise InputError(f"the data have {Y.shape[0]} time points but the design has {n} rows")
+    c = np.asarray(contrast, dtype=float).reshape(-1)
+    if c.size != p:
+        raise InputError(f"the contrast has {c.size} weights but the design has {p} columns")
+    if noise not in ("ols", "ar1"):
+        raise InputError(f"noise model must be 'ols' or 'ar1', not '{noise}'")
+
+    Y = Y.astype(np.float64, copy=True)
+    if not np.all(np.isfinite(Y)):
+        bad = ~np.all(np.isfinite(Y), axis=0)
+        Y[:, bad] = 0.0
+    else:
+        bad = np.zeros(Y.shape[1], dtype=bool)
+    mean = Y.mean(axis=0)
+    centred = prep.constant_index is not None
+    if centred:
+        Y -= mean
+    ptp = np.ptp(Y, axis=0)
+    scale = np.maximum(np.abs(mean), ptp)
+
+    B, rss, R = _ols_block(prep, Y)
+    v = Y.shape[1]
+    df = prep.df
+    group = np.zeros(v, dtype=np.int64)
+    covs = [prep.cov_unscaled]
+    rho = None
+    rss_w = rss
+    if noise == "ar1":
+        rho = ar1_rho(R)
+        rho = np.where(ptp > 0, rho, 0.0)
+        key = rho if rho_step is None else np.round(rho / rho_step) * rho_step
+        key = np.clip(key, -_RHO_LIMIT, _RHO_LIMIT)
+        levels, group = np.unique(key, return_inverse=True)
+        group = group.reshape(-1)
+        covs = []
+        B = np.empty_like(B)
+        rss_w = np.empty(v)
+        for g, r_level in enumerate(levels):
+            sel = group == g
+            Xw = prais_winsten(prep.X, float(r_level))
+            pw = prepare(Xw, prep.names)
+            Bg, rss_g, _ = _ols_block(pw, prais_winsten(Y[:, sel], float(r_level)))
+            B[:, sel] = Bg
+            rss_w[sel] = rss_g
+            covs.append(pw.cov_unscaled)
+        if rho_step is not None:
+            rho = levels[group]
+        R = Y - prep.X @ B
+        rss = np.einsum("ij,ij->j", R, R)
+
+    cov = np.stack(covs)
+    sigma2 = rss_w / df if df > 0 else np.full(v, np.nan)
+    # No residual variance at all: constant voxels or an exact fit (relative to the data).
+    degenerate = bad | (ptp == 0) | (rss_w <= (1e-10 * np.where(scale > 0, scale, 1.0)) ** 2 * n)
+    if df <= 0:
+        degenerate |= True
+    beta = c @ B
+    cvar = np.einsum("i,gij,j->g", c, cov, c)[group]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        variance = np.where(degenerate, np.nan, sigma2 * cvar)
+        t = np.where(degenerate, np.nan, beta / np.sqrt(np.where(degenerate, 1.0, variance)))
+        tss = np.einsum("ij,ij->j", Y, Y) if centred else np.einsum("ij,ij->j", Y + mean, Y + mean)
+        r2 = np.where(tss > 0, 1.0 - rss / np.where(tss > 0, tss, 1.0), np.nan)
+    pval = np.where(
+        degenerate, np.nan, 2.0 * stats.t.sf(np.abs(np.nan_to_num(t)), df) if df > 0 else np.nan
+    )
+    if centred:
+        B[prep.constant_index] += mean
+        beta = c @ B
+        if c[prep.constant_index] != 0:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                t = np.where(
+                    degenerate, np.nan, beta / np.sqrt(np.where(degenerate, 1.0, variance))
+                )
+            pval = np.where(degenerate, np.nan, 2.0 * stats.t.sf(np.abs(np.nan_to_num(t)), df))
+    fitted = residuals = None
+    if keep_series:
+        fitted = prep.X @ B
+        residuals = R
+    return FitResult(
+        noise=noise,
+        weights=c,
+        betas=B,
+        beta=beta,
+        variance=variance,
+        t=t,
+        p=pval,
+        df=int(df),
+        sigma2=sigma2,
+        r2=r2,
+        rho=rho,
+        fitted=fitted,
+        residuals=residuals,
+        degenerate=degenerate,
+        cov_unscaled=cov,
+        group=group,
+        names=prep.names,
+    )
+
+
+def f_test(result: FitResult, C: np.ndarray) -> tuple[np.ndarray, np.ndarray, int, int]:
+    """F test of ``C b = 0`` for every voxel of a fit.
+
+    ``F = (Cb)' [C (X'X)^-1 C']^-1 (Cb) / (q sigma2)`` with ``q`` rows in ``C``.
+
+    Returns
+    -------
+    F, p : ndarray (n_voxels,)
+    df_num, df_den : int
+    """
+    C = np.atleast_2d(np.asarray(C, dtype=float))
+    q = C.shape[0]
+    if C.shape[1] != result.betas.shape[0]:
+        raise InputError(
+            f"the F contrast has {C.shape[1]} columns but the design has {result.betas.shape[0]}"
+        )
+    cb = C @ result.betas  # (q, v)
+    F = np.empty(result.n_voxels)
+    for g in range(result.cov_unscaled.shape[0]):
+        sel = result.group == g
+        m = C @ result.cov_unscaled[g] @ C.T
+        sol = np.linalg.solve(m, cb[:, sel])
+        F[sel] = np.einsum("ij,ij->j", cb[:, sel], sol) / q
+    with np.errstate(invalid="ignore", divide="ignore"):
+        F = np.where(result.degenerate, np.nan, F / result.sigma2)
+    p = np.where(result.degenerate, np.nan, stats.f.sf(np.nan_to_num(F), q, result.df))
+    return F, p, q, result.df

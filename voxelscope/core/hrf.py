@@ -1,0 +1,285 @@
+"""Response kernels: the shape a brief neural event takes in the BOLD signal.
+
+Each kernel is a small frozen dataclass holding its parameters, with one sampling function
+:meth:`Kernel.basis` that returns the kernel's basis functions on a fine time grid.
+
+Unit-area convention
+--------------------
+Every single-shape kernel (boxcar, Gaussian, gamma, double-gamma) is scaled so that its
+samples sum to one over the fine grid (``sum(h) * dt == 1``). A sustained block of height 1
+convolved with such a kernel therefore rises to a plateau of exactly 1, whatever the
+kernel, so a condition's beta means "signal change during a sustained block" under every
+kernel and betas are comparable across kernels. Derivative columns are not rescaled.
+
+The FIR basis is the exception: its functions are indicator boxes of height 1, one per time
+bin after each onset, so each FIR beta is the response, in data units, in its bin.
+
+Examples
+--------
+>>> k = get_kernel("double-gamma")
+>>> dt = 0.05
+>>> h = k.basis(dt)[0][1]
+>>> round(float(h.sum() * dt), 6)
+1.0
+>>> 4.5 <= k.peak_s() <= 6.5
+True
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, replace
+from typing import ClassVar
+
+import numpy as np
+from scipy import stats
+
+from .errors import InputError
+
+__all__ = [
+    "DEFAULT_KERNELS",
+    "FIR",
+    "KERNEL_NAMES",
+    "Boxcar",
+    "DoubleGamma",
+    "Gamma",
+    "Gaussian",
+    "Kernel",
+    "get_kernel",
+]
+
+
+def _unit_area(h: np.ndarray, dt: float) -> np.ndarray:
+    area = h.sum() * dt
+    if not np.isfinite(area) or area <= 0:
+        raise InputError("kernel parameters give a response with no positive area; check them")
+    return h / area
+
+
+@dataclass(frozen=True)
+class Kernel:
+    """Base class. Subclasses set ``name`` and implement :meth:`shape`.
+
+    Attributes
+    ----------
+    length_s : float
+        Support of the kernel in seconds; the response is zero after it.
+    """
+
+    name: ClassVar[str] = "kernel"
+    #: True when the regressor uses event durations (blocks); FIR uses onsets only.
+    uses_durations: ClassVar[bool] = True
+    length_s: float = 32.0
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        """Unscaled response at times ``t`` (seconds after onset)."""
+        raise NotImplementedError
+
+    def times(self, dt: float) -> np.ndarray:
+        """Fine time grid ``0, dt, 2 dt, ...`` covering the kernel's support."""
+        n = math.ceil(self.length_s / dt) + 1
+        return np.arange(n) * dt
+
+    def basis(self, dt: float, derivatives: int = 0) -> list[tuple[str, np.ndarray]]:
+        """Basis functions sampled every ``dt`` seconds.
+
+        Parameters
+        ----------
+        dt : float
+            Fine-grid step in seconds.
+        derivatives : {0, 1, 2}
+            0: the kernel alone; 1: plus its temporal derivative (suffix ``_dt``);
+            2: plus the dispersion derivative (suffix ``_dd``), where the kernel has one.
+
+        Returns
+        -------
+        list of (suffix, samples)
+            The first suffix is ``""`` (the kernel itself, unit area).
+        """
+        t = self.times(dt)
+        h = _unit_area(self.shape(t), dt)
+        out = [("", h)]
+        if derivatives >= 1:
+            out.append(("_dt", np.gradient(h, dt)))
+        if derivatives >= 2:
+            dd = self._dispersion_derivative(t, dt)
+            if dd is not None:
+                out.append(("_dd", dd))
+        return out
+
+    def _dispersion_derivative(self, t: np.ndarray, dt: float) -> np.ndarray | None:
+        return None
+
+    def peak_s(self, dt: float = 0.01) -> float:
+        """Time to peak of the kernel, in seconds after onset."""
+        t = self.times(dt)
+        return float(t[int(np.argmax(self.shape(t)))])
+
+    def label(self) -> str:
+        """Short human-readable description with parameters."""
+        return self.name
+
+
+@dataclass(frozen=True)
+class Boxcar(Kernel):
+    """No convolution: the regressor is the stimulus itself (1 during events, 0 elsewhere).
+
+    Brief events (duration 0) become a box one TR long, so a sample always sees them.
+    """
+
+    name: ClassVar[str] = "boxcar"
+    length_s: float = 0.0
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        out = np.zeros_like(t, dtype=float)
+        out[0] = 1.0
+        return out
+
+    def peak_s(self, dt: float = 0.01) -> float:
+        return 0.0
+
+
+@dataclass(frozen=True)
+class Gaussian(Kernel):
+    """A Gaussian bump: peak ``centre_s`` seconds after onset, width ``sigma_s``.
+
+    Defaults (peak 5 s, sigma 1.5 s) are our own choice, placing the peak where the
+    haemodynamic response usually peaks (common practice: 4.5-6.5 s).
+    """
+
+    name: ClassVar[str] = "gaussian"
+    centre_s: float = 5.0
+    sigma_s: float = 1.5
+    length_s: float = 16.0
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        return np.exp(-0.5 * ((t - self.centre_s) / self.sigma_s) ** 2)
+
+    def label(self) -> str:
+        return f"gaussian (peak {self.centre_s:g} s, sigma {self.sigma_s:g} s)"
+
+
+@dataclass(frozen=True)
+class Gamma(Kernel):
+    """Single gamma function after a delay.
+
+    ``h(t) = ((t - delay)/tau)**(n - 1) * exp(-(t - delay)/tau) / (tau * (n - 1)!)`` for
+    ``t > delay``. Defaults n=3, tau=1.2 s, delay=2.5 s follow Boynton et al. (1996),
+    J Neurosci 16:4207-4221 (parameters from memory); the peak is at
+    ``delay + (n - 1) * tau`` = 4.9 s.
+    """
+
+    name: ClassVar[str] = "gamma"
+    n: float = 3.0
+    tau_s: float = 1.2
+    delay_s: float = 2.5
+    length_s: float = 24.0
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        return stats.gamma.pdf(t - self.delay_s, self.n, scale=self.tau_s)
+
+    def label(self) -> str:
+        return f"gamma (n {self.n:g}, tau {self.tau_s:g} s, delay {self.delay_s:g} s)"
+
+
+@dataclass(frozen=True)
+class DoubleGamma(Kernel):
+    """Difference of two gamma densities: a peak and a later, smaller undershoot.
+
+    ``h(t) = g(t; a1, b1) - c * g(t; a2, b2)`` with ``g`` the gamma density of shape ``a``
+    and scale ``b`` (``scipy.stats.gamma.pdf``). Defaults a1=6, a2=16, b1=b2=1 s, c=1/6
+    follow Friston et al. (1998), NeuroImage 7:30-40 (parameters from memory): peak at the
+    first gamma's mode, 5 s; undershoot near 15 s.
+    """
+
+    name: ClassVar[str] = "double-gamma"
+    a1: float = 6.0
+    a2: float = 16.0
+    b1: float = 1.0
+    b2: float = 1.0
+    c: float = 1.0 / 6.0
+    length_s: float = 32.0
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        return stats.gamma.pdf(t, self.a1, scale=self.b1) - self.c * stats.gamma.pdf(
+            t, self.a2, scale=self.b2
+        )
+
+    def _dispersion_derivative(self, t: np.ndarray, dt: float) -> np.ndarray:
+        # Derivative with respect to the width (scale) of the first gamma, by a central
+        # difference on unit-area kernels.
+        eps = 0.01
+        hi = _unit_area(replace(self, b1=self.b1 + eps).shape(t), dt)
+        lo = _unit_area(replace(self, b1=self.b1 - eps).shape(t), dt)
+        return (hi - lo) / (2 * eps)
+
+    def label(self) -> str:
+        return f"double-gamma (a1 {self.a1:g}, a2 {self.a2:g}, c {self.c:.3g})"
+
+
+@dataclass(frozen=True)
+class FIR(Kernel):
+    """Finite impulse response basis: ``n_bins`` boxes of ``bin_s`` seconds after each onset.
+
+    Column ``k`` is 1 while the time since an onset lies in ``[k * bin_s, (k + 1) * bin_s)``,
+    so its beta is the mean response in that bin, in data units. Durations are ignored.
+    """
+
+    name: ClassVar[str] = "fir"
+    uses_durations: ClassVar[bool] = False
+    n_bins: int = 12
+    bin_s: float = 2.0
+    length_s: float = 24.0
+
+    def __post_init__(self) -> None:
+        if self.n_bins < 1 or self.bin_s <= 0:
+            raise InputError("FIR needs at least one bin and a positive bin width in seconds")
+        object.__setattr__(self, "length_s", self.n_bins * self.bin_s)
+
+    def basis(self, dt: float, derivatives: int = 0) -> list[tuple[str, np.ndarray]]:
+        t = self.times(dt)
+        out = []
+        for k in range(self.n_bins):
+            box = ((t >= k * self.bin_s - 1e-9) & (t < (k + 1) * self.bin_s - 1e-9)).astype(float)
+            # Convolution with an impulse of area 1 multiplies by dt; undo it so that the
+            # regressor is 1 inside the bin.
+            out.append((f"_fir{k}", box / dt))
+        return out
+
+    def bin_centres(self) -> np.ndarray:
+        """Centre of each bin in seconds after onset."""
+        return (np.arange(self.n_bins) + 0.5) * self.bin_s
+
+    def shape(self, t: np.ndarray) -> np.ndarray:
+        return ((t >= 0) & (t < self.length_s)).astype(float)
+
+    def label(self) -> str:
+        return f"FIR ({self.n_bins} bins of {self.bin_s:g} s)"
+
+
+_KERNELS: dict[str, type[Kernel]] = {k.name: k for k in (Boxcar, Gaussian, Gamma, DoubleGamma, FIR)}
+#: Every kernel name, in display order.
+KERNEL_NAMES: tuple[str, ...] = tuple(_KERNELS)
+#: Kernels fitted when the user names none.
+DEFAULT_KERNELS: tuple[str, ...] = ("boxcar", "gaussian", "gamma", "double-gamma")
+
+
+def get_kernel(name: str | Kernel, **params: float) -> Kernel:
+    """Kernel by name with default parameters (or ``params`` overriding them).
+
+    >>> get_kernel("gamma").peak_s()
+    4.9
+    >>> get_kernel("fir", n_bins=4, bin_s=1.25).length_s
+    5.0
+    """
+    if isinstance(name, Kernel):
+        return replace(name, **params) if params else name
+    key = str(name).strip().lower().replace("_", "-")
+    if key in ("doublegamma", "double gamma", "canonical"):
+        key = "double-gamma"
+    if key not in _KERNELS:
+        raise InputError(f"unknown kernel '{name}'; choose from {', '.join(KERNEL_NAMES)}")
+    try:
+        return _KERNELS[key](**params)
+    except TypeError as exc:
+        raise InputError(f"bad parameter for kernel '{key}': {exc}") from None

@@ -1,0 +1,304 @@
+"""A first-level model of one run: conditions, confounds and settings, fitted per kernel.
+
+:class:`Analysis` is what both front ends use. It caches, per kernel and model setting,
+everything that does not depend on the data (design matrix, its pseudo-inverse, contrast
+weights), so a change of voxel costs only a few small matrix products.
+
+Examples
+--------
+>>> import numpy as np
+>>> from voxelscope.core.events import Condition
+>>> a = Analysis([Condition("tone", [10.0, 60.0], [15.0, 15.0])], n_volumes=80, tr=1.25)
+>>> y = 100 + 2 * a.design("double-gamma", ModelSettings()).column("tone")
+>>> fits = a.fit_voxel(y + np.sin(np.arange(80)), ModelSettings(kernels=("boxcar", "gamma")))
+>>> [f.kernel for f in fits.fits]
+['boxcar', 'gamma']
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass, field, replace
+
+import numpy as np
+
+from .confounds import Confounds
+from .design import DesignMatrix, build_design
+from .errors import InputError
+from .events import Condition, check_events_in_run, shift_conditions
+from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, parse_contrast, prepare
+from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
+
+__all__ = ["Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
+
+
+@dataclass(frozen=True)
+class ModelSettings:
+    """Model choices that the user can change; hashable, plain data.
+
+    Attributes
+    ----------
+    kernels : tuple of str
+        Kernels to fit, in display order.
+    contrast : str or None
+        Contrast expression; None means the first condition.
+    noise : {"ols", "ar1"}
+    highpass_s : float or None
+        Discrete cosine drift cutoff; None for no drift columns. 128 s is a common default.
+    confound_columns : tuple of str or None
+        Confound columns to include; None means all columns of the confounds file.
+    onset_shift_s : float
+        Added to every onset (timing checks).
+    derivatives : {0, 1, 2}
+    fir_bins : int
+    fir_bin_s : float or None
+        FIR bin width; None means one TR.
+    """
+
+    kernels: tuple[str, ...] = DEFAULT_KERNELS
+    contrast: str | None = None
+    noise: str = "ols"
+    highpass_s: float | None = 128.0
+    confound_columns: tuple[str, ...] | None = None
+    onset_shift_s: float = 0.0
+    derivatives: int = 0
+    fir_bins: int = 12
+    fir_bin_s: float | None = None
+
+    def with_(self, **changes) -> ModelSettings:
+        """A copy with some fields changed."""
+        return replace(self, **changes)
+
+
+@dataclass(frozen=True, eq=False)
+class KernelFit:
+    """One kernel's fit at one voxel (a batch of one of :class:`FitResult`)."""
+
+    kernel: str
+    design: DesignMatrix
+    result: FitResult
+    contrast: str
+    f: float | None = None
+    f_p: float | None = None
+    f_df: tuple[int, int] | None = None
+
+    def _scalar(self, a) -> float | None:
+        if a is None:
+            return None
+        v = float(np.asarray(a).reshape(-1)[0])
+        return v if np.isfinite(v) else None
+
+    @property
+    def beta(self) -> float | None:
+        return self._scalar(self.result.beta)
+
+    @property
+    def variance(self) -> float | None:
+        return self._scalar(self.result.variance)
+
+    @property
+    def t(self) -> float | None:
+        return self._scalar(self.result.t)
+
+    @property
+    def p(self) -> float | None:
+        return self._scalar(self.result.p)
+
+    @property
+    def df(self) -> int:
+        return int(self.result.df)
+
+    @property
+    def r2(self) -> float | None:
+        return self._scalar(self.result.r2)
+
+    @property
+    def rho(self) -> float | None:
+        return None if self.result.rho is None else self._scalar(self.result.rho)
+
+    @property
+    def fitted(self) -> np.ndarray:
+        return self.result.fitted[:, 0]
+
+    @property
+    def residuals(self) -> np.ndarray:
+        return self.result.residuals[:, 0]
+
+    @property
+    def betas(self) -> dict[str, float]:
+        return {n: float(b) for n, b in zip(self.design.names, self.result.betas[:, 0])}
+
+
+@dataclass(frozen=True, eq=False)
+class VoxelFits:
+    """Every kernel's fit at one voxel, with the data and any warnings."""
+
+    y: np.ndarray
+    fits: tuple[KernelFit, ...]
+    warnings: tuple[str, ...] = field(default=())
+
+    def by_kernel(self, name: str) -> KernelFit:
+        for f in self.fits:
+            if f.kernel == name:
+                return f
+        raise KeyError(name)
+
+
+class Analysis:
+    """Conditions and confounds of one run, with cached designs per kernel and setting.
+
+    Parameters
+    ----------
+    conditions : sequence of Condition
+    n_volumes : int
+    tr : float
+        Seconds.
+    confounds : Confounds, optional
+        One row per volume (checked).
+    reference_time_s : float
+        Sampling time of each volume within its TR (see :mod:`voxelscope.core.design`).
+    """
+
+    def __init__(
+        self,
+        conditions: Sequence[Condition],
+        n_volumes: int,
+        tr: float,
+        confounds: Confounds | None = None,
+        reference_time_s: float = 0.0,
+    ) -> None:
+        if not conditions:
+            raise InputError("the events file gives no conditions")
+        self.conditions = tuple(conditions)
+        self.n_volumes = int(n_volumes)
+        self.tr = float(tr)
+        self.reference_time_s = float(reference_time_s)
+        if confounds is not None:
+            confounds.check_rows(self.n_volumes)
+        self.confounds = confounds
+        self._designs: dict[tuple, tuple[DesignMatrix, PreparedDesign]] = {}
+        self.warnings: list[str] = list(
+            check_events_in_run(self.conditions, self.n_volumes * self.tr)
+        )
+        if confounds is not None:
+            self.warnings.extend(confounds.warnings)
+
+    @property
+    def condition_names(self) -> tuple[str, ...]:
+        return tuple(c.name for c in self.conditions)
+
+    @property
+    def confound_names(self) -> tuple[str, ...]:
+        return () if self.confounds is None else self.confounds.names
+
+    def kernel(self, name: str | Kernel, settings: ModelSettings) -> Kernel:
+        """The kernel object for a name under these settings (FIR bins from settings)."""
+        if isinstance(name, Kernel):
+            return name
+        if str(name).lower() == "fir":
+            return get_kernel("fir", n_bins=settings.fir_bins, bin_s=settings.fir_bin_s or self.tr)
+        return get_kernel(name)
+
+    def _key(self, kernel: Kernel, s: ModelSettings) -> tuple:
+        return (kernel, s.derivatives, s.highpass_s, s.confound_columns, s.onset_shift_s)
+
+    def prepared(
+        self, kernel: str | Kernel, settings: ModelSettings
+    ) -> tuple[DesignMatrix, PreparedDesign]:
+        """Design matrix and its precomputed inverse parts (cached)."""
+        k = self.kernel(kernel, settings)
+        key = self._key(k, settings)
+        hit = self._designs.get(key)
+        if hit is None:
+            conf = (
+                None if self.confounds is None else self.confounds.select(settings.confound_columns)
+            )
+            if conf is not None and not conf.names:
+                conf = None
+            d = build_design(
+                shift_conditions(self.conditions, settings.onset_shift_s),
+                self.n_volumes,
+                self.tr,
+                kernel=k,
+                derivatives=settings.derivatives,
+                highpass_s=settings.highpass_s,
+                confounds=conf,
+                reference_time_s=self.reference_time_s,
+            )
+            hit = (d, prepare(d.X, d.names))
+            if len(self._designs) > 256:
+                self._designs.clear()
+            self._designs[key] = hit
+        return hit
+
+    def design(self, kernel: str | Kernel, settings: ModelSettings) -> DesignMatrix:
+        return self.prepared(kernel, settings)[0]
+
+    def default_contrast(self) -> str:
+        return self.conditions[0].name
+
+    def contrast_weights(self, kernel: str | Kernel, settings: ModelSettings) -> np.ndarray:
+        """Weights of the settings' contrast on this kernel's design."""
+        d = self.design(kernel, settings)
+        return parse_contrast(
+            settings.contrast, d.names, d.condition_columns, default=self.default_contrast()
+        )
+
+    def check_contrast(self, expr: str | None) -> np.ndarray:
+        """Validate a contrast against the condition names (raises InputError)."""
+        s = ModelSettings(kernels=("boxcar",), contrast=expr, highpass_s=None, confound_columns=())
+        return self.contrast_weights("boxcar", s)
+
+    def fit_many(
+        self,
+        Y: np.ndarray,
+        kernel: str | Kernel,
+        settings: ModelSettings,
+        rho_step: float | None = None,
+        keep_series: bool = False,
+    ) -> FitResult:
+        """Fit many voxels (columns of ``Y``) under one kernel (whole-volume maps)."""
+        _d, prep = self.prepared(kernel, settings)
+        w = self.contrast_weights(kernel, settings)
+        return fit(prep, Y, w, noise=settings.noise, rho_step=rho_step, keep_series=keep_series)
+
+    def fit_voxel(self, y: np.ndarray, settings: ModelSettings) -> VoxelFits:
+        """Fit one voxel's time series under every kernel in ``settings.kernels``."""
+        y = np.asarray(y, dtype=float).reshape(-1)
+        if y.size != self.n_volumes:
+            raise InputError(
+                f"the time series has {y.size} points but the run has {self.n_volumes} volumes"
+            )
+        warnings = []
+        if not np.all(np.isfinite(y)):
+            warnings.append("the voxel's time series has non-finite values; it is outside the mask")
+        elif np.ptp(y) == 0:
+            warnings.append("the voxel is constant over the run; t, p and variance are undefined")
+        fits = []
+        expr = settings.contrast or self.default_contrast()
+        for name in settings.kernels:
+            if str(name).lower() not in KERNEL_NAMES and not isinstance(name, Kernel):
+                get_kernel(name)  # raises a clear error
+            d, prep = self.prepared(name, settings)
+            w = parse_contrast(
+                settings.contrast, d.names, d.condition_columns, default=self.default_contrast()
+            )
+            res = fit(prep, y, w, noise=settings.noise)
+            f = f_p = f_df = None
+            if settings.derivatives or str(name).lower() == "fir":
+                cond = _single_condition(expr, d)
+                if cond is not None:
+                    C = condition_f_matrix(d.names, d.condition_columns, cond)
+                    fv, pv, q, dfd = f_test(res, C)
+                    f = float(fv[0]) if np.isfinite(fv[0]) else None
+                    f_p = float(pv[0]) if np.isfinite(pv[0]) else None
+                    f_df = (q, dfd)
+            fits.append(KernelFit(str(name), d, res, expr, f, f_p, f_df))
+        if fits and fits[0].result.degenerate[0] and not warnings:
+            warnings.append("the model fits this voxel exactly; t, p and variance are undefined")
+        return VoxelFits(y, tuple(fits), tuple(warnings))
+
+
+def _single_condition(expr: str, d: DesignMatrix) -> str | None:
+    e = expr.strip()
+    return e if e in d.condition_columns else None
