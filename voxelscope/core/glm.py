@@ -41,7 +41,7 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import stats
+from scipy import special, stats
 
 from .errors import InputError, ModelError
 
@@ -395,16 +395,6 @@ def _as_prepared(design) -> PreparedDesign:
     return prepare(np.asarray(X, dtype=float), names)
 
 
-def _ols_block(
-    prep: PreparedDesign, Y: np.ndarray, Xdata: np.ndarray | None = None
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """betas, residual sum of squares (in prep's space), data-unit residual matrix."""
-    B = prep.pinv @ Y
-    R = Y - prep.X @ B
-    rss = np.einsum("ij,ij->j", R, R)
-    return B, rss, R
-
-
 def fit(
     design,
     Y: np.ndarray,
@@ -445,74 +435,89 @@ def fit(
     if noise not in ("ols", "ar1"):
         raise InputError(f"noise model must be 'ols' or 'ar1', not '{noise}'")
 
-    Y = Y.astype(np.float64, copy=True)
-    if not np.all(np.isfinite(Y)):
-        bad = ~np.all(np.isfinite(Y), axis=0)
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        return _fit_checked(prep, Y, c, noise, rho_step, keep_series)
+
+
+def _fit_checked(
+    prep: PreparedDesign,
+    Y: np.ndarray,
+    c: np.ndarray,
+    noise: str,
+    rho_step: float | None,
+    keep_series: bool,
+) -> FitResult:
+    n = prep.X.shape[0]
+    v = Y.shape[1]
+    Y = np.array(Y, dtype=np.float64, order="C", copy=True)
+    total = Y.sum(axis=0)
+    bad = None
+    if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
+        bad = ~np.isfinite(total)
         Y[:, bad] = 0.0
-    else:
-        bad = np.zeros(Y.shape[1], dtype=bool)
-    mean = Y.mean(axis=0)
+        total[bad] = 0.0
+    mean = total / n
     centred = prep.constant_index is not None
     if centred:
         Y -= mean
-    ptp = np.ptp(Y, axis=0)
-    scale = np.maximum(np.abs(mean), ptp)
+    # total sum of squares: centred when the design has a constant, else uncentred
+    tss = np.einsum("ij,ij->j", Y, Y)
 
-    B, rss, R = _ols_block(prep, Y)
-    v = Y.shape[1]
+    B = prep.pinv @ Y
+    R = Y - prep.X @ B
+    rss = np.einsum("ij,ij->j", R, R)
     df = prep.df
-    group = np.zeros(v, dtype=np.int64)
-    covs = [prep.cov_unscaled]
     rho = None
     rss_w = rss
     if noise == "ar1":
-        rho = ar1_rho(R)
-        rho = np.where(ptp > 0, rho, 0.0)
+        rho = ar1_rho(R)  # 0 for constant voxels (no residuals)
         key = rho if rho_step is None else np.round(rho / rho_step) * rho_step
         key = np.clip(key, -_RHO_LIMIT, _RHO_LIMIT)
         levels, group = np.unique(key, return_inverse=True)
         group = group.reshape(-1)
         covs = []
-        B = np.empty_like(B)
         rss_w = np.empty(v)
         for g, r_level in enumerate(levels):
-            sel = group == g
-            Xw = prais_winsten(prep.X, float(r_level))
-            pw = prepare(Xw, prep.names)
-            Bg, rss_g, _ = _ols_block(pw, prais_winsten(Y[:, sel], float(r_level)))
+            sel = group == g if levels.size > 1 else slice(None)
+            pw = prepare(prais_winsten(prep.X, float(r_level)), prep.names)
+            Yw = prais_winsten(Y[:, sel], float(r_level))
+            Bg = pw.pinv @ Yw
+            Rw = Yw - pw.X @ Bg
             B[:, sel] = Bg
-            rss_w[sel] = rss_g
+            rss_w[sel] = np.einsum("ij,ij->j", Rw, Rw)
             covs.append(pw.cov_unscaled)
         if rho_step is not None:
             rho = levels[group]
         R = Y - prep.X @ B
         rss = np.einsum("ij,ij->j", R, R)
+        cov = np.stack(covs)
+        cvar = np.einsum("i,gij,j->g", c, cov, c)[group]
+    else:
+        group = np.zeros(v, dtype=np.int64)
+        cov = prep.cov_unscaled[None]
+        cvar = float(c @ prep.cov_unscaled @ c)
 
-    cov = np.stack(covs)
     sigma2 = rss_w / df if df > 0 else np.full(v, np.nan)
-    # No residual variance at all: constant voxels or an exact fit (relative to the data).
-    degenerate = bad | (ptp == 0) | (rss_w <= (1e-10 * np.where(scale > 0, scale, 1.0)) ** 2 * n)
+    # No residual variance at all: constant voxels or an exact fit, relative to the size of
+    # the data (its mean and its spread).
+    degenerate = rss_w <= np.maximum(mean * mean * (1e-20 * n), tss * 1e-20)
+    if bad is not None:
+        degenerate |= bad
     if df <= 0:
-        degenerate |= True
-    beta = c @ B
-    cvar = np.einsum("i,gij,j->g", c, cov, c)[group]
-    with np.errstate(invalid="ignore", divide="ignore"):
-        variance = np.where(degenerate, np.nan, sigma2 * cvar)
-        t = np.where(degenerate, np.nan, beta / np.sqrt(np.where(degenerate, 1.0, variance)))
-        tss = np.einsum("ij,ij->j", Y, Y) if centred else np.einsum("ij,ij->j", Y + mean, Y + mean)
-        r2 = np.where(tss > 0, 1.0 - rss / np.where(tss > 0, tss, 1.0), np.nan)
-    pval = np.where(
-        degenerate, np.nan, 2.0 * stats.t.sf(np.abs(np.nan_to_num(t)), df) if df > 0 else np.nan
-    )
+        degenerate[:] = True
     if centred:
         B[prep.constant_index] += mean
-        beta = c @ B
-        if c[prep.constant_index] != 0:
-            with np.errstate(invalid="ignore", divide="ignore"):
-                t = np.where(
-                    degenerate, np.nan, beta / np.sqrt(np.where(degenerate, 1.0, variance))
-                )
-            pval = np.where(degenerate, np.nan, 2.0 * stats.t.sf(np.abs(np.nan_to_num(t)), df))
+    beta = c @ B
+    variance = sigma2 * cvar
+    t = beta / np.sqrt(variance)
+    r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
+    if df > 0:
+        pval = 2.0 * special.stdtr(df, -np.abs(t))
+    else:
+        pval = np.full(v, np.nan)
+    if degenerate.any():
+        for a in (variance, t, pval):
+            a[degenerate] = np.nan
     fitted = residuals = None
     if keep_series:
         fitted = prep.X @ B

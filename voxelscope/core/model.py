@@ -177,6 +177,9 @@ class Analysis:
             confounds.check_rows(self.n_volumes)
         self.confounds = confounds
         self._designs: dict[tuple, tuple[DesignMatrix, PreparedDesign]] = {}
+        self._fast: dict[tuple, tuple[DesignMatrix, PreparedDesign]] = {}
+        self._weights: dict[tuple, np.ndarray] = {}
+        self._plans: dict[ModelSettings, list[tuple]] = {}
         self.warnings: list[str] = list(
             check_events_in_run(self.conditions, self.n_volumes * self.tr)
         )
@@ -206,6 +209,18 @@ class Analysis:
         self, kernel: str | Kernel, settings: ModelSettings
     ) -> tuple[DesignMatrix, PreparedDesign]:
         """Design matrix and its precomputed inverse parts (cached)."""
+        fast = (
+            kernel,
+            settings.derivatives,
+            settings.highpass_s,
+            settings.confound_columns,
+            settings.onset_shift_s,
+            settings.fir_bins,
+            settings.fir_bin_s,
+        )
+        hit = self._fast.get(fast)
+        if hit is not None:
+            return hit
         k = self.kernel(kernel, settings)
         key = self._key(k, settings)
         hit = self._designs.get(key)
@@ -228,7 +243,11 @@ class Analysis:
             hit = (d, prepare(d.X, d.names))
             if len(self._designs) > 256:
                 self._designs.clear()
+                self._fast.clear()
+                self._weights.clear()
+                self._plans.clear()
             self._designs[key] = hit
+        self._fast[fast] = hit
         return hit
 
     def design(self, kernel: str | Kernel, settings: ModelSettings) -> DesignMatrix:
@@ -240,9 +259,15 @@ class Analysis:
     def contrast_weights(self, kernel: str | Kernel, settings: ModelSettings) -> np.ndarray:
         """Weights of the settings' contrast on this kernel's design."""
         d = self.design(kernel, settings)
-        return parse_contrast(
-            settings.contrast, d.names, d.condition_columns, default=self.default_contrast()
-        )
+        key = (id(d), settings.contrast)
+        w = self._weights.get(key)
+        if w is None:
+            w = parse_contrast(
+                settings.contrast, d.names, d.condition_columns, default=self.default_contrast()
+            )
+            w.setflags(write=False)
+            self._weights[key] = w
+        return w
 
     def check_contrast(self, expr: str | None) -> np.ndarray:
         """Validate a contrast against the condition names (raises InputError)."""
@@ -262,40 +287,65 @@ class Analysis:
         w = self.contrast_weights(kernel, settings)
         return fit(prep, Y, w, noise=settings.noise, rho_step=rho_step, keep_series=keep_series)
 
+    def _plan(self, settings: ModelSettings) -> list[tuple]:
+        """Per kernel: name, design, prepared design, weights, F-test rows (cached)."""
+        plan = self._plans.get(settings)
+        if plan is None:
+            expr = settings.contrast or self.default_contrast()
+            plan = []
+            for name in settings.kernels:
+                if not isinstance(name, Kernel) and str(name).lower() not in KERNEL_NAMES:
+                    get_kernel(name)  # raises a clear error
+                d, prep = self.prepared(name, settings)
+                w = self.contrast_weights(name, settings)
+                C = None
+                if settings.derivatives or d.kernel.name == "fir":
+                    cond = _single_condition(expr, d)
+                    if cond is not None:
+                        C = condition_f_matrix(d.names, d.condition_columns, cond)
+                plan.append((str(name), d, prep, w, C))
+            if len(self._plans) > 64:
+                self._plans.clear()
+            self._plans[settings] = plan
+        return plan
+
     def fit_voxel(self, y: np.ndarray, settings: ModelSettings) -> VoxelFits:
-        """Fit one voxel's time series under every kernel in ``settings.kernels``."""
+        """Fit one voxel's time series under every kernel in ``settings.kernels``.
+
+        Each kernel goes through :func:`voxelscope.core.glm.fit` with a batch of one, the
+        same path as whole-volume maps.
+        """
         y = np.asarray(y, dtype=float).reshape(-1)
         if y.size != self.n_volumes:
             raise InputError(
                 f"the time series has {y.size} points but the run has {self.n_volumes} volumes"
             )
-        warnings = []
-        if not np.all(np.isfinite(y)):
-            warnings.append("the voxel's time series has non-finite values; it is outside the mask")
-        elif np.ptp(y) == 0:
-            warnings.append("the voxel is constant over the run; t, p and variance are undefined")
-        fits = []
+        plan = self._plan(settings)
         expr = settings.contrast or self.default_contrast()
-        for name in settings.kernels:
-            if str(name).lower() not in KERNEL_NAMES and not isinstance(name, Kernel):
-                get_kernel(name)  # raises a clear error
-            d, prep = self.prepared(name, settings)
-            w = parse_contrast(
-                settings.contrast, d.names, d.condition_columns, default=self.default_contrast()
-            )
+        fits = []
+        for name, d, prep, w, C in plan:
             res = fit(prep, y, w, noise=settings.noise)
             f = f_p = f_df = None
-            if settings.derivatives or str(name).lower() == "fir":
-                cond = _single_condition(expr, d)
-                if cond is not None:
-                    C = condition_f_matrix(d.names, d.condition_columns, cond)
-                    fv, pv, q, dfd = f_test(res, C)
-                    f = float(fv[0]) if np.isfinite(fv[0]) else None
-                    f_p = float(pv[0]) if np.isfinite(pv[0]) else None
-                    f_df = (q, dfd)
-            fits.append(KernelFit(str(name), d, res, expr, f, f_p, f_df))
-        if fits and fits[0].result.degenerate[0] and not warnings:
-            warnings.append("the model fits this voxel exactly; t, p and variance are undefined")
+            if C is not None:
+                fv, pv, q, dfd = f_test(res, C)
+                f = float(fv[0]) if np.isfinite(fv[0]) else None
+                f_p = float(pv[0]) if np.isfinite(pv[0]) else None
+                f_df = (q, dfd)
+            fits.append(KernelFit(name, d, res, expr, f, f_p, f_df))
+        warnings = []
+        if fits and fits[0].result.degenerate[0]:
+            if not np.all(np.isfinite(y)):
+                warnings.append(
+                    "the voxel's time series has non-finite values; it is outside the mask"
+                )
+            elif np.ptp(y) == 0:
+                warnings.append(
+                    "the voxel is constant over the run; t, p and variance are undefined"
+                )
+            else:
+                warnings.append(
+                    "the model fits this voxel exactly; t, p and variance are undefined"
+                )
         return VoxelFits(y, tuple(fits), tuple(warnings))
 
 

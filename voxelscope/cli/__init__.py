@@ -1,0 +1,81 @@
+"""Command-line front door: ``voxelscope <command> ...``.
+
+Every command calls :mod:`voxelscope.core`; none re-does its maths. Only ``view`` and
+``demo`` (and ``voxelscope`` with no command, which opens an empty window) import Qt, and
+only inside their handlers, so ``fit``, ``map``, ``report`` and ``cache`` never load it.
+
+Errors the user can fix print one line, ``voxelscope: error: ...``, and exit with code 2.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+from collections.abc import Sequence
+
+from .. import __version__
+from ..core.errors import VoxelscopeError
+
+__all__ = ["build_parser", "main"]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every subcommand registered."""
+    from . import cache, fit, view
+
+    parser = argparse.ArgumentParser(
+        prog="voxelscope",
+        description=(
+            "Inspect a first-level fMRI model voxel by voxel. Run without a command to open "
+            "an empty window. Research software: not for clinical diagnosis."
+        ),
+    )
+    parser.add_argument("--version", action="version", version=f"voxelscope {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    modules = [fit, view, cache]
+    for name in ("map", "report"):
+        try:
+            modules.insert(1, __import__(f"{__package__}.{name}", fromlist=["register"]))
+        except ImportError:  # pragma: no cover - optional while a command is being built
+            pass
+    for m in modules:
+        m.register(sub)
+    return parser
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    """Run the command line; returns the process exit code."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if not argv:
+        from .view import open_empty_window
+
+        return open_empty_window()
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "handler", None):
+        parser.print_help()
+        return 2
+    try:
+        return int(args.handler(args) or 0)
+    except VoxelscopeError as exc:
+        print(f"voxelscope: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("voxelscope: interrupted", file=sys.stderr)
+        return 130
+    except BrokenPipeError:
+        return 0
+    except Exception as exc:
+        if os.environ.get("VOXELSCOPE_DEBUG"):
+            raise
+        print(
+            f"voxelscope: internal error: {exc.__class__.__name__}: {exc} "
+            "(set VOXELSCOPE_DEBUG=1 for details and please report it)",
+            file=sys.stderr,
+        )
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

@@ -1,0 +1,258 @@
+"""Options shared by the commands that fit a model (``fit``, ``map``, ``report``)."""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from ..core.errors import InputError
+from ..core.hrf import DEFAULT_KERNELS, get_kernel
+from ..core.model import Analysis, ModelSettings
+
+__all__ = [
+    "Loaded",
+    "add_model_args",
+    "add_voxel_args",
+    "analysis_from_args",
+    "json_safe",
+    "parse_highpass",
+    "parse_kernels",
+    "voxel_from_args",
+]
+
+
+def parse_highpass(text: str) -> float | None:
+    """``128`` -> 128.0 seconds; ``none`` -> no drift columns."""
+    if str(text).strip().lower() in ("none", "off", "0"):
+        return None
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"--highpass takes seconds or 'none', not '{text}'"
+        ) from None
+    if not (v > 0 and math.isfinite(v)):
+        raise argparse.ArgumentTypeError(
+            "--highpass must be a positive number of seconds or 'none'"
+        )
+    return v
+
+
+def parse_kernels(text: str) -> tuple[str, ...]:
+    """Comma-separated kernel names, checked."""
+    names = tuple(n.strip().lower() for n in str(text).split(",") if n.strip())
+    if not names:
+        raise argparse.ArgumentTypeError("--kernels needs at least one kernel name")
+    for n in names:
+        try:
+            get_kernel(n)
+        except InputError as exc:
+            raise argparse.ArgumentTypeError(str(exc)) from None
+    return tuple(get_kernel(n).name for n in names)
+
+
+def _positive_float(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of seconds, not '{text}'") from None
+    if not (v > 0 and math.isfinite(v)):
+        raise argparse.ArgumentTypeError(f"expected a positive number of seconds, not '{text}'")
+    return v
+
+
+def add_model_args(p: argparse.ArgumentParser, kernels: bool = True) -> None:
+    """Add the run, events, confounds and model options."""
+    p.add_argument("run", help="4D NIfTI run (.nii or .nii.gz)")
+    p.add_argument(
+        "--events",
+        metavar="FILE",
+        help="BIDS events.tsv (onset, duration in seconds; trial_type); "
+        "default: the BIDS-named file beside the run",
+    )
+    p.add_argument("--amplitude-column", metavar="NAME", help="events column giving amplitudes")
+    p.add_argument(
+        "--confounds", metavar="FILE", help="TSV or CSV of nuisance regressors with a header row"
+    )
+    p.add_argument(
+        "--confound-columns",
+        metavar="A,B",
+        help="use only these confound columns (default: all numeric)",
+    )
+    p.add_argument(
+        "--tr",
+        type=_positive_float,
+        metavar="SECONDS",
+        help="repetition time; overrides sidecar and header",
+    )
+    if kernels:
+        p.add_argument(
+            "--kernels",
+            type=parse_kernels,
+            default=DEFAULT_KERNELS,
+            metavar="K1,K2",
+            help=f"kernels to fit, in order (default {','.join(DEFAULT_KERNELS)}; also: fir)",
+        )
+    p.add_argument(
+        "--contrast",
+        metavar="EXPR",
+        help="e.g. 'tap', 'tap - tone', '0.5*tap + 0.5*tone' (default: first condition)",
+    )
+    p.add_argument(
+        "--noise", choices=("ols", "ar1"), default="ols", help="noise model (default ols)"
+    )
+    p.add_argument(
+        "--highpass",
+        type=parse_highpass,
+        default=128.0,
+        metavar="SECONDS|none",
+        help="discrete cosine drift cutoff in seconds (default 128) or 'none'",
+    )
+    p.add_argument(
+        "--derivatives",
+        type=int,
+        choices=(0, 1, 2),
+        default=0,
+        help="1 adds temporal derivatives, 2 also dispersion derivatives (default 0)",
+    )
+    p.add_argument(
+        "--onset-shift",
+        type=float,
+        default=0.0,
+        metavar="SECONDS",
+        help="add to every onset (timing test)",
+    )
+    p.add_argument("--fir-bins", type=int, default=12, metavar="N", help="FIR bins (default 12)")
+    p.add_argument(
+        "--fir-bin", type=_positive_float, metavar="SECONDS", help="FIR bin width (default one TR)"
+    )
+    p.add_argument(
+        "--no-cache", action="store_true", help="do not build or use the voxel-major cache"
+    )
+
+
+def add_voxel_args(p: argparse.ArgumentParser, required: bool = True) -> None:
+    """``--voxel I J K`` or ``--mm X Y Z``."""
+    g = p.add_mutually_exclusive_group(required=required)
+    g.add_argument(
+        "--voxel", nargs=3, type=int, metavar=("I", "J", "K"), help="voxel indices (0-based)"
+    )
+    g.add_argument(
+        "--mm",
+        nargs=3,
+        type=float,
+        metavar=("X", "Y", "Z"),
+        help="world coordinates in mm (nearest voxel)",
+    )
+
+
+@dataclass
+class Loaded:
+    """What a model command needs: the run, the analysis, the settings, and warnings."""
+
+    run: object
+    analysis: Analysis
+    settings: ModelSettings
+    events_path: Path
+    confounds_path: Path | None
+    warnings: list[str] = field(default_factory=list)
+
+
+def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loaded:
+    """Open the run, read events and confounds and build the :class:`Analysis`."""
+    from ..core.cache import terminal_progress
+    from ..core.companions import find_companions
+    from ..core.confounds import read_confounds
+    from ..core.events import read_events
+    from ..core.run import open_run
+
+    run_path = Path(args.run)
+    run = open_run(
+        run_path,
+        tr=args.tr,
+        use_cache=not getattr(args, "no_cache", False),
+        progress=terminal_progress() if progress else None,
+    )
+    comp = find_companions(run_path)
+    events_path = Path(args.events) if args.events else comp.events
+    if events_path is None:
+        raise InputError(
+            f"{run_path}: no events file given and none found beside it; pass --events FILE "
+            "(a BIDS events.tsv with onset and duration in seconds)"
+        )
+    conditions = read_events(events_path, amplitude_column=getattr(args, "amplitude_column", None))
+    columns = None
+    if getattr(args, "confound_columns", None):
+        columns = tuple(c.strip() for c in args.confound_columns.split(",") if c.strip())
+    confounds = None
+    confounds_path = Path(args.confounds) if args.confounds else None
+    if confounds_path is not None:
+        confounds = read_confounds(confounds_path)
+        if columns is not None:
+            confounds = confounds.select(columns)
+        confounds.check_rows(run.n_volumes)
+    elif columns is not None:
+        raise InputError("--confound-columns needs --confounds FILE")
+    analysis = Analysis(
+        conditions, run.n_volumes, run.tr, confounds, reference_time_s=run.reference_time_s
+    )
+    settings = ModelSettings(
+        kernels=tuple(getattr(args, "kernels", DEFAULT_KERNELS)),
+        contrast=args.contrast,
+        noise=args.noise,
+        highpass_s=args.highpass,
+        onset_shift_s=float(args.onset_shift),
+        derivatives=int(args.derivatives),
+        fir_bins=int(args.fir_bins),
+        fir_bin_s=args.fir_bin,
+    )
+    if settings.fir_bins < 1:
+        raise InputError("--fir-bins must be at least 1")
+    # Check the contrast once, against the condition names, before any fitting.
+    analysis.check_contrast(settings.contrast)
+    warnings = list(run.warnings) + list(analysis.warnings)
+    return Loaded(run, analysis, settings, Path(events_path), confounds_path, warnings)
+
+
+def voxel_from_args(args: argparse.Namespace, run) -> tuple[int, int, int]:
+    """The voxel named by ``--voxel`` or ``--mm`` (checked against the grid)."""
+    if getattr(args, "voxel", None) is not None:
+        return run.check_voxel(tuple(args.voxel))
+    return run.mm_to_voxel(tuple(args.mm))
+
+
+def json_safe(obj):
+    """Recursively replace NaN and infinities by None and numpy types by Python types."""
+    if isinstance(obj, dict):
+        return {str(k): json_safe(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [json_safe(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return json_safe(obj.tolist())
+    if isinstance(obj, (np.floating, float)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def print_warnings(warnings: list[str]) -> None:
+    """Warnings go to stderr, one line each."""
+    for w in dict.fromkeys(warnings):
+        print(f"voxelscope: warning: {w}", file=sys.stderr)
+
+
+def dump_json(obj) -> str:
+    """Strict JSON (no NaN or Infinity)."""
+    return json.dumps(json_safe(obj), allow_nan=False, indent=1)

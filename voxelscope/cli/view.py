@@ -1,0 +1,114 @@
+"""``voxelscope view`` and ``voxelscope demo``: the window. Qt is imported only here, lazily."""
+
+from __future__ import annotations
+
+import argparse
+
+from ..core.errors import InputError
+
+__all__ = ["open_empty_window", "register"]
+
+
+def _size(text: str) -> tuple[int, int]:
+    try:
+        w, h = (int(v) for v in text.lower().split("x"))
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"--size takes WIDTHxHEIGHT, e.g. 1600x1000, not '{text}'"
+        ) from None
+    if not (200 <= w <= 8000 and 200 <= h <= 8000):
+        raise argparse.ArgumentTypeError("--size must be between 200x200 and 8000x8000 pixels")
+    return w, h
+
+
+def _add_screenshot_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument(
+        "--screenshot", metavar="PNG", help="render the window offscreen to this PNG and exit"
+    )
+    p.add_argument(
+        "--size",
+        type=_size,
+        default=(1600, 1000),
+        metavar="WxH",
+        help="window size (default 1600x1000)",
+    )
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    p = sub.add_parser(
+        "view", help="open a run in the window", description="Open a run in the inspection window."
+    )
+    p.add_argument("run", nargs="?", help="4D NIfTI run")
+    p.add_argument("--events", metavar="FILE")
+    p.add_argument("--confounds", metavar="FILE")
+    p.add_argument("--anat", metavar="FILE", help="anatomical underlay on any grid")
+    p.add_argument(
+        "--map", metavar="FILE", dest="stat_map", help="statistic map overlay on any grid"
+    )
+    p.add_argument("--tr", type=float, metavar="SECONDS")
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--voxel", nargs=3, type=int, metavar=("I", "J", "K"))
+    g.add_argument("--mm", nargs=3, type=float, metavar=("X", "Y", "Z"))
+    p.add_argument("--session", metavar="FILE", help="restore a saved session")
+    p.add_argument("--save-session", metavar="FILE", help="save the session to FILE after opening")
+    _add_screenshot_args(p)
+    p.set_defaults(handler=run_view)
+
+    d = sub.add_parser(
+        "demo",
+        help="open the demo run (tone and tap blocks)",
+        description="Open the demo scenario.",
+    )
+    _add_screenshot_args(d)
+    d.set_defaults(handler=run_demo)
+
+
+def _launch(**kwargs) -> int:
+    try:
+        from ..gui.app import launch
+    except ImportError as exc:
+        raise InputError(
+            f"the window cannot start: {exc}; install the project with its dependencies"
+        ) from None
+    kwargs = {k: v for k, v in kwargs.items() if v is not None}
+    return int(launch(**kwargs) or 0)
+
+
+def run_view(args: argparse.Namespace) -> int:
+    extra = {}
+    if args.session:
+        extra["session"] = args.session
+    if args.save_session:
+        extra["save_session"] = args.save_session
+    if args.run is None and not args.session:
+        raise InputError("voxelscope view needs a RUN (a 4D NIfTI file) or --session FILE")
+    return _launch(
+        run=args.run,
+        events=args.events,
+        confounds=args.confounds,
+        anat=args.anat,
+        stat_map=args.stat_map,
+        tr=args.tr,
+        voxel=tuple(args.voxel) if args.voxel else None,
+        mm=tuple(args.mm) if args.mm else None,
+        screenshot=args.screenshot,
+        size=args.size,
+        **extra,
+    )
+
+
+def run_demo(args: argparse.Namespace) -> int:
+    return _launch(demo=True, screenshot=args.screenshot, size=args.size)
+
+
+def open_empty_window() -> int:
+    """``voxelscope`` with no command: an empty window that says how to open a run."""
+    from ..core.errors import VoxelscopeError
+
+    try:
+        return _launch()
+    except VoxelscopeError as exc:
+        import sys
+
+        print(f"voxelscope: error: {exc}", file=sys.stderr)
+        return 2
