@@ -1,0 +1,255 @@
+"""Tests of ``voxelscope fit`` (voxelscope/cli/fit.py) through ``voxelscope.cli.main``.
+
+Numbers are checked against statsmodels OLS (reference library) on a small synthetic run
+written with nibabel; error cases check the one-line message and exit code 2.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from voxelscope.cli import main
+
+TR = 1.5
+T = 90
+
+
+def _write_run(tmp_path, rng, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
+    data = 500 + rng.standard_normal(shape + (T,)) * 5
+    data[0, 0, 0, :] = 123.0  # a constant voxel
+    img = nib.Nifti1Image(data.astype(np.float32), np.diag([3.0, 3.0, 3.5, 1.0]))
+    img.header.set_xyzt_units("mm", "sec")
+    img.header["pixdim"][4] = TR
+    path = tmp_path / name
+    nib.save(img, path)
+    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
+    events.write_text(
+        "onset\tduration\ttrial_type\n"
+        "6\t12\ttone\n30\t12\ttap\n54\t12\ttone\n78\t12\ttap\n102\t12\ttone\n"
+    )
+    return path, events, data
+
+
+def _run_json(capsys, argv):
+    code = main(argv + ["--format", "json"])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    return json.loads(out.out)
+
+
+def test_fit_json_matches_statsmodels(tmp_path, capsys):
+    """beta, variance, t, df, p, r2 and residuals equal statsmodels OLS on the same design
+    (reference library: statsmodels.api.OLS and OLSResults.t_test)."""
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(11)
+    path, events, data = _write_run(tmp_path, rng)
+    doc = _run_json(
+        capsys,
+        [
+            "fit",
+            str(path),
+            "--events",
+            str(events),
+            "--voxel",
+            "2",
+            "3",
+            "1",
+            "--contrast",
+            "tone - tap",
+        ],
+    )
+    assert doc["voxel"] == [2, 3, 1] and doc["n_volumes"] == T and doc["tr"] == TR
+    assert [f["kernel"] for f in doc["fits"]] == ["boxcar", "gaussian", "gamma", "double-gamma"]
+    y = np.asarray(doc["y"])
+    np.testing.assert_allclose(y, data[2, 3, 1].astype(np.float32), rtol=0, atol=0)
+    for f in doc["fits"]:
+        X = np.asarray(f["design"])
+        assert X.shape == (T, len(f["columns"]))
+        assert f["columns"][:2] == ["tone", "tap"] and f["columns"][-1] == "constant"
+        m = sm.OLS(y, X).fit()
+        tt = m.t_test(np.asarray(f["weights"]))
+        assert f["weights"][:2] == [1.0, -1.0]
+        np.testing.assert_allclose(f["beta"], float(np.squeeze(tt.effect)), rtol=1e-9)
+        np.testing.assert_allclose(f["variance"], float(np.squeeze(tt.sd)) ** 2, rtol=1e-9)
+        np.testing.assert_allclose(f["t"], float(np.squeeze(tt.tvalue)), rtol=1e-9)
+        np.testing.assert_allclose(f["p"], float(np.squeeze(tt.pvalue)), rtol=1e-7)
+        assert f["df"] == int(m.df_resid)
+        np.testing.assert_allclose(f["r2"], m.rsquared, rtol=1e-9)
+        np.testing.assert_allclose(f["residuals"], m.resid, atol=1e-8)
+        np.testing.assert_allclose(f["fitted"], m.fittedvalues, rtol=1e-10)
+        assert f["noise"] == "ols" and f["rho"] is None
+        assert set(f["betas"]) == set(f["columns"])
+
+
+def test_fit_ar1_json_in_data_units(tmp_path, capsys):
+    """Under AR(1), y, fitted and residuals stay in data units: fitted + residuals == y."""
+    rng = np.random.default_rng(3)
+    path, events, _ = _write_run(tmp_path, rng)
+    doc = _run_json(
+        capsys,
+        ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1", "--noise", "ar1"],
+    )
+    y = np.asarray(doc["y"])
+    for f in doc["fits"]:
+        assert f["noise"] == "ar1" and isinstance(f["rho"], float)
+        np.testing.assert_allclose(
+            np.asarray(f["fitted"]) + np.asarray(f["residuals"]), y, atol=1e-9
+        )
+
+
+def test_constant_voxel_gives_null_t_and_warning(tmp_path, capsys):
+    rng = np.random.default_rng(4)
+    path, events, _ = _write_run(tmp_path, rng)
+    code = main(
+        ["fit", str(path), "--events", str(events), "--voxel", "0", "0", "0", "--format", "json"]
+    )
+    out = capsys.readouterr()
+    assert code == 0
+    assert "NaN" not in out.out and "Infinity" not in out.out
+    doc = json.loads(out.out)
+    assert all(f["t"] is None and f["p"] is None for f in doc["fits"])
+    assert any("constant" in w for w in doc["warnings"])
+
+
+def test_table_and_csv_formats(tmp_path, capsys):
+    rng = np.random.default_rng(5)
+    path, events, _ = _write_run(tmp_path, rng)
+    assert main(["fit", str(path), "--events", str(events), "--voxel", "1", "2", "3"]) == 0
+    table = capsys.readouterr().out.splitlines()
+    assert table[1].split()[0] == "kernel" and len(table) == 3 + 4
+    assert (
+        main(
+            [
+                "fit",
+                str(path),
+                "--events",
+                str(events),
+                "--voxel",
+                "1",
+                "2",
+                "3",
+                "--format",
+                "csv",
+                "--kernels",
+                "gamma,fir",
+            ]
+        )
+        == 0
+    )
+    rows = capsys.readouterr().out.strip().splitlines()
+    assert rows[0].startswith("kernel,contrast,beta") and [r.split(",")[0] for r in rows[1:]] == [
+        "gamma",
+        "fir",
+    ]
+
+
+def test_mm_selects_nearest_voxel(tmp_path, capsys):
+    rng = np.random.default_rng(6)
+    path, events, _ = _write_run(tmp_path, rng)
+    doc = _run_json(
+        capsys, ["fit", str(path), "--events", str(events), "--mm", "6.2", "8.9", "7.1"]
+    )
+    assert doc["voxel"] == [2, 3, 2]
+    assert doc["mm"] == [6.0, 9.0, 7.0]
+
+
+@pytest.mark.parametrize(
+    "events_text, extra, needle",
+    [
+        ("onset\tduration\n", [], "no events"),
+        ("start\tduration\n1\t2\n", [], "onset"),
+        ("onset\tduration\nabc\t2\n", [], "onset"),
+        ("onset\tduration\n1\t-2\n", [], "negative duration"),
+        ("onset\tduration\ttrial_type\n1\t2\ttone\n", ["--contrast", "tone - beep"], "beep"),
+        ("onset\tduration\ttrial_type\n1\t2\ttone\n", ["--voxel", "9", "0", "0"], "outside"),
+    ],
+)
+def test_bad_input_one_line_exit_2(tmp_path, capsys, events_text, extra, needle):
+    rng = np.random.default_rng(7)
+    path, events, _ = _write_run(tmp_path, rng)
+    events.write_text(events_text)
+    voxel = [] if "--voxel" in extra else ["--voxel", "1", "1", "1"]
+    code = main(["fit", str(path), "--events", str(events), *voxel, *extra])
+    err = capsys.readouterr().err.strip()
+    assert code == 2
+    assert len(err.splitlines()) == 1 and err.startswith("voxelscope: error:")
+    assert needle in err
+    assert "Traceback" not in err
+
+
+def test_bad_confounds_rows_and_rank_deficiency(tmp_path, capsys):
+    rng = np.random.default_rng(8)
+    path, events, _ = _write_run(tmp_path, rng)
+    conf = tmp_path / "conf.tsv"
+    conf.write_text("a\tb\n" + "".join(f"{i}\t{2 * i}\n" for i in range(T - 1)))
+    assert (
+        main(
+            [
+                "fit",
+                str(path),
+                "--events",
+                str(events),
+                "--voxel",
+                "1",
+                "1",
+                "1",
+                "--confounds",
+                str(conf),
+            ]
+        )
+        == 2
+    )
+    assert "rows" in capsys.readouterr().err
+    conf.write_text("a\tb\n" + "".join(f"{i}\t{2 * i}\n" for i in range(T)))
+    assert (
+        main(
+            [
+                "fit",
+                str(path),
+                "--events",
+                str(events),
+                "--voxel",
+                "1",
+                "1",
+                "1",
+                "--confounds",
+                str(conf),
+            ]
+        )
+        == 2
+    )
+    err = capsys.readouterr().err
+    assert "collinear" in err and "'a'" in err and "'b'" in err
+
+
+def test_not_nifti_and_3d(tmp_path, capsys):
+    rng = np.random.default_rng(9)
+    _, events, _ = _write_run(tmp_path, rng)
+    bad = tmp_path / "notes.nii"
+    bad.write_text("hello")
+    assert main(["fit", str(bad), "--events", str(events), "--voxel", "0", "0", "0"]) == 2
+    assert str(bad) in capsys.readouterr().err
+    img3 = tmp_path / "vol.nii"
+    nib.save(nib.Nifti1Image(np.zeros((3, 3, 3), np.float32), np.eye(4)), img3)
+    assert main(["fit", str(img3), "--events", str(events), "--voxel", "0", "0", "0"]) == 2
+    assert "3D" in capsys.readouterr().err or "4D" in capsys.readouterr().err
+
+
+def test_fit_does_not_import_qt(tmp_path):
+    """The command-line path never loads Qt (design rule)."""
+    rng = np.random.default_rng(10)
+    path, events, _ = _write_run(tmp_path, rng)
+    code = (
+        "import sys, voxelscope.cli as c;"
+        f"r = c.main(['fit', {str(path)!r}, '--events', {str(events)!r}, '--voxel', '1', '1', '1']);"
+        "bad = [m for m in sys.modules if m.startswith(('PySide6', 'pyqtgraph'))];"
+        "assert r == 0 and not bad, bad"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
