@@ -21,7 +21,7 @@ T = 90
 
 
 def _write_run(tmp_path, rng, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
-    data = 500 + rng.standard_normal(shape + (T,)) * 5
+    data = 500 + rng.standard_normal((*shape, T)) * 5
     data[0, 0, 0, :] = 123.0  # a constant voxel
     img = nib.Nifti1Image(data.astype(np.float32), np.diag([3.0, 3.0, 3.5, 1.0]))
     img.header.set_xyzt_units("mm", "sec")
@@ -37,7 +37,7 @@ def _write_run(tmp_path, rng, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
 
 
 def _run_json(capsys, argv):
-    code = main(argv + ["--format", "json"])
+    code = main([*argv, "--format", "json"])
     out = capsys.readouterr()
     assert code == 0, out.err
     return json.loads(out.out)
@@ -247,7 +247,8 @@ def test_fit_does_not_import_qt(tmp_path):
     path, events, _ = _write_run(tmp_path, rng)
     code = (
         "import sys, voxelscope.cli as c;"
-        f"r = c.main(['fit', {str(path)!r}, '--events', {str(events)!r}, '--voxel', '1', '1', '1']);"
+        f"r = c.main(['fit', {str(path)!r}, '--events', {str(events)!r}, "
+        "'--voxel', '1', '1', '1']);"
         "bad = [m for m in sys.modules if m.startswith(('PySide6', 'pyqtgraph'))];"
         "assert r == 0 and not bad, bad"
     )
