@@ -86,6 +86,7 @@ class PreparedDesign:
     rank: int
     df: int
     constant_index: int | None
+    memo: dict = field(default_factory=dict, repr=False)
 
 
 def _collinear_columns(X: np.ndarray, names: Sequence[str]) -> list[str]:
@@ -232,7 +233,8 @@ def parse_contrast(
                 sign = -sign
             pos += 1
         coef = 1.0
-        m = _NUM.match(text, pos)
+        # a known name first, so that names starting with digits ('2back') stay names
+        m = None if _known_name_at(text, pos, known) else _NUM.match(text, pos)
         if m:
             coef = float(m.group(1))
             pos = m.end()
@@ -240,13 +242,7 @@ def parse_contrast(
                 pos += 1
             while pos < len(text) and text[pos].isspace():
                 pos += 1
-        name = None
-        for k in known:
-            if text.startswith(k, pos):
-                end = pos + len(k)
-                if end == len(text) or not (text[end].isalnum() or text[end] == "_"):
-                    name = k
-                    break
+        name = _known_name_at(text, pos, known)
         if name is None:
             mm = re.match(r"[^\s+*]+(?:\s*[^\s+\-*]+)*", text[pos:])
             word = (mm.group(0) if mm else text[pos:]).strip() or text[pos:]
@@ -272,6 +268,16 @@ def parse_contrast(
     if n_terms == 0 or not np.any(w):
         raise InputError(f"contrast '{expr}' has no non-zero weights; name at least one condition")
     return w
+
+
+def _known_name_at(text: str, pos: int, known: Sequence[str]) -> str | None:
+    """The longest known name starting at ``pos`` and ending at a word boundary."""
+    for k in known:
+        if text.startswith(k, pos):
+            end = pos + len(k)
+            if end == len(text) or not (text[end].isalnum() or text[end] == "_"):
+                return k
+    return None
 
 
 def _is_fir_group(names: Sequence[str], group: str, idx: Sequence[int]) -> bool:
@@ -315,7 +321,8 @@ class FitResult:
     df : int
         ``n - rank``.
     sigma2 : residual variance ``sum(r^2) / df`` (of the whitened residuals under AR(1))
-    r2 : ``1 - sum((y - Xb)^2) / sum((y - mean y)^2)`` in data units
+    r2 : ``1 - sum((y - Xb)^2) / sum((y - mean y)^2)`` in data units (uncentred,
+        ``sum(y^2)`` below, when the design has no constant column)
     rho : AR(1) coefficient per voxel (None for OLS)
     fitted, residuals : ndarray (n, n_voxels) or None
         ``X b`` and ``y - X b`` in data units; None when not kept.
@@ -439,6 +446,19 @@ def fit(
         return _fit_checked(prep, Y, c, noise, rho_step, keep_series)
 
 
+def _contrast_variance(prep: PreparedDesign, c: np.ndarray) -> float:
+    """``c' (X'X)^-1 c``, memoised per design and contrast (a click reuses both)."""
+    key = c.tobytes()
+    memo = prep.memo
+    v = memo.get(key)
+    if v is None:
+        v = float(c @ prep.cov_unscaled @ c)
+        if len(memo) > 64:
+            memo.clear()
+        memo[key] = v
+    return v
+
+
 def _fit_checked(
     prep: PreparedDesign,
     Y: np.ndarray,
@@ -495,22 +515,22 @@ def _fit_checked(
     else:
         group = np.zeros(v, dtype=np.int64)
         cov = prep.cov_unscaled[None]
-        cvar = float(c @ prep.cov_unscaled @ c)
+        cvar = _contrast_variance(prep, c)
 
     sigma2 = rss_w / df if df > 0 else np.full(v, np.nan)
     # No residual variance at all: constant voxels or an exact fit, relative to the size of
     # the data (its mean and its spread).
-    degenerate = rss_w <= np.maximum(mean * mean * (1e-20 * n), tss * 1e-20)
+    degenerate = rss_w <= 1e-20 * (mean * mean * n + tss)
     if bad is not None:
         degenerate |= bad
     if df <= 0:
         degenerate[:] = True
-    if centred:
-        B[prep.constant_index] += mean
+    if centred:  # the constant column need not be all ones
+        B[prep.constant_index] += mean / prep.X[0, prep.constant_index]
     beta = c @ B
     variance = sigma2 * cvar
     t = beta / np.sqrt(variance)
-    r2 = np.where(tss > 0, 1.0 - rss / tss, np.nan)
+    r2 = 1.0 - rss / tss  # tss == 0 only for constant voxels, set to NaN below
     if df > 0:
         pval = 2.0 * special.stdtr(df, -np.abs(t))
     else:
@@ -518,6 +538,7 @@ def _fit_checked(
     if degenerate.any():
         for a in (variance, t, pval):
             a[degenerate] = np.nan
+        r2[tss == 0] = np.nan
     fitted = residuals = None
     if keep_series:
         fitted = prep.X @ B
