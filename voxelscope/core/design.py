@@ -9,7 +9,10 @@ Timing conventions
   :mod:`voxelscope.core.run`).
 * The stimulus is built on a fine grid of ``TR / oversampling`` seconds (16 by default),
   convolved there with the kernel, and read at the volume times by linear interpolation.
-  Partial overlap of an event with a fine bin counts in proportion.
+  Partial overlap of an event with a fine bin counts in proportion. Boxcar and FIR
+  columns are computed exactly at the volume times instead: the boxcar is 1 while
+  ``onset <= t < onset + duration`` (brief events last one TR), an FIR column is 1 where
+  the time since an onset lies in its bin.
 
 Column order
 ------------
@@ -205,6 +208,22 @@ def stimulus_regressor(
     return np.interp(times, centres, conv)
 
 
+def _fir_column(condition: Condition, fir: FIR, k: int, times: np.ndarray) -> np.ndarray:
+    """FIR bin ``k`` at ``times``: summed amplitudes of the events whose time since onset
+    lies in ``[k bin_s, (k + 1) bin_s)`` (durations ignored)."""
+    lag = times[:, None] - condition.onsets[None, :]
+    inside = (lag >= k * fir.bin_s - 1e-9) & (lag < (k + 1) * fir.bin_s - 1e-9)
+    return inside.astype(float) @ condition.amplitudes
+
+
+def _boxcar_column(condition: Condition, times: np.ndarray) -> np.ndarray:
+    """The stimulus itself at ``times``: summed amplitudes of the events under way,
+    ``onset <= t < onset + duration`` (exact, no fine-grid interpolation)."""
+    lag = times[:, None] - condition.onsets[None, :]
+    inside = (lag >= -1e-9) & (lag < condition.durations[None, :] - 1e-9)
+    return inside.astype(float) @ condition.amplitudes
+
+
 def build_design(
     conditions: Sequence[Condition],
     n_volumes: int,
@@ -268,7 +287,14 @@ def build_design(
             )
         idx = []
         for j, (suffix, h) in enumerate(basis):
-            cols.append(stimulus_regressor(use_cond, h, times, dt, use_durations=k.uses_durations))
+            if isinstance(k, FIR):  # exact boxes at the volume times, no fine-grid smear
+                cols.append(_fir_column(use_cond, k, j, times))
+            elif isinstance(k, Boxcar):  # the stimulus itself, exact at the volume times
+                cols.append(_boxcar_column(use_cond, times))
+            else:
+                cols.append(
+                    stimulus_regressor(use_cond, h, times, dt, use_durations=k.uses_durations)
+                )
             names.append(cond.name + suffix)
             kinds.append("fir" if isinstance(k, FIR) else ("condition" if j == 0 else "derivative"))
             idx.append(len(cols) - 1)

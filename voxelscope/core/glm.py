@@ -482,6 +482,8 @@ def _fit_checked(
         Y -= mean
     # total sum of squares: centred when the design has a constant, else uncentred
     tss = np.einsum("ij,ij->j", Y, Y)
+    # constant voxels: what is left after centring is only the rounding of the mean
+    flat = tss <= 1e-20 * mean * mean * n
 
     B = prep.pinv @ Y
     R = Y - prep.X @ B
@@ -490,7 +492,7 @@ def _fit_checked(
     rho = None
     rss_w = rss
     if noise == "ar1":
-        rho = ar1_rho(R)  # 0 for constant voxels (no residuals)
+        rho = np.where(flat, 0.0, ar1_rho(R))  # 0 for constant voxels (no residuals)
         key = rho if rho_step is None else np.round(rho / rho_step) * rho_step
         key = np.clip(key, -_RHO_LIMIT, _RHO_LIMIT)
         levels, group = np.unique(key, return_inverse=True)
@@ -530,7 +532,7 @@ def _fit_checked(
     beta = c @ B
     variance = sigma2 * cvar
     t = beta / np.sqrt(variance)
-    r2 = 1.0 - rss / tss  # tss == 0 only for constant voxels, set to NaN below
+    r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     if df > 0:
         pval = 2.0 * special.stdtr(df, -np.abs(t))
     else:
@@ -538,7 +540,7 @@ def _fit_checked(
     if degenerate.any():
         for a in (variance, t, pval):
             a[degenerate] = np.nan
-        r2[tss == 0] = np.nan
+        r2[flat] = np.nan
     fitted = residuals = None
     if keep_series:
         fitted = prep.X @ B

@@ -241,9 +241,9 @@ class FIR(Kernel):
         out = []
         for k in range(self.n_bins):
             box = ((t >= k * self.bin_s - 1e-9) & (t < (k + 1) * self.bin_s - 1e-9)).astype(float)
-            # Convolution with an impulse of area 1 multiplies by dt; undo it so that the
-            # regressor is 1 inside the bin.
-            out.append((f"_fir{k}", box / dt))
+            # an impulse of area 1 (1/dt in one fine bin) convolved with this box, times dt,
+            # is the box itself: height 1
+            out.append((f"_fir{k}", box))
         return out
 
     def bin_centres(self) -> np.ndarray:
