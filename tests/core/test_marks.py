@@ -1,0 +1,173 @@
+"""Tests of voxelscope/core/marks.py: the mark list and the marks TSV file.
+
+Outside reference: Python's ``csv`` module (tab delimiter, no quoting) must read our files
+as a plain table with five fields per row, and list semantics (``list.insert``/``pop``)
+define the expected order after moves and deletions.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import math
+import tempfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+
+from voxelscope.core.errors import InputError
+from voxelscope.core.marks import (
+    Mark,
+    MarkList,
+    escape_field,
+    format_marks_tsv,
+    parse_marks_tsv,
+    read_marks_tsv,
+    unescape_field,
+    write_marks_tsv,
+)
+
+SAMPLE = Path(__file__).resolve().parents[2] / "sample_data" / "demo_marks.tsv"
+
+coords = st.floats(allow_nan=False, allow_infinity=False, width=64)
+marks_st = st.lists(
+    st.builds(Mark, coords, coords, coords, title=st.text(), note=st.text()), max_size=8
+)
+
+
+@given(marks_st)
+def test_tsv_round_trip_of_arbitrary_text(marks):
+    ml = MarkList(marks)
+    text = format_marks_tsv(ml)
+    assert parse_marks_tsv(text) == ml
+    # outside reference: the csv module sees one header and one 5-field row per mark
+    rows = list(csv.reader(io.StringIO(text, newline=""), delimiter="\t", quoting=csv.QUOTE_NONE))
+    assert rows[0] == ["x_mm", "y_mm", "z_mm", "title", "note"]
+    assert len(rows) == len(marks) + 1
+    for row, m in zip(rows[1:], marks):
+        assert len(row) == 5
+        assert float(row[0]) == m.x_mm and float(row[2]) == m.z_mm
+
+
+@given(marks_st)
+def test_file_round_trip(marks):
+    with tempfile.TemporaryDirectory() as d:
+        p = write_marks_tsv(marks, Path(d) / "marks.tsv")
+        assert read_marks_tsv(p) == MarkList(marks)
+        assert [x.name for x in Path(d).iterdir()] == ["marks.tsv"]
+
+
+@given(st.text())
+def test_escape_is_inverted_and_leaves_no_tab_or_newline(s):
+    e = escape_field(s)
+    assert "\t" not in e and "\n" not in e and "\r" not in e
+    assert unescape_field(e) == s
+
+
+def test_literal_backslash_sequences_survive():
+    m = Mark(1, 2, 3, r"C:\new\table", "a\\tb\tc\\\\n")
+    assert parse_marks_tsv(format_marks_tsv([m]))[0] == m
+
+
+def test_windows_line_ends_bom_column_order_and_missing_note():
+    text = "\ufefftitle\tz_mm\ty_mm\tx_mm\textra\r\nA\t3\t2\t1\tjunk\r\n\r\n"
+    ml = parse_marks_tsv(text)
+    assert len(ml) == 1 and ml[0] == Mark(1.0, 2.0, 3.0, "A", "")
+
+
+@pytest.mark.parametrize(
+    ("text", "expected"),
+    [
+        ("x_mm\ty_mm\tz_mm\ttitle\tnote\n1\t2\t3\ta\n", r"m\.tsv: line 2 has 4 .*header has 5"),
+        ("x_mm\ty_mm\tz_mm\ttitle\tnote\n1\t2\t3\ta\tb\n1\tq\t3\ta\tb\n", r"line 3, column 'y_mm'"),
+        ("x_mm\ty_mm\ttitle\n1\t2\ta\n", r"m\.tsv: line 1: the header has no column\(s\) z_mm"),
+        ("x_mm\ty_mm\tz_mm\n1\tinf\t3\n", r"line 2, column 'y_mm' is not a finite number"),
+        ("\n\n", r"m\.tsv: the file is empty"),
+    ],
+)
+def test_bad_rows_give_one_line_naming_file_and_row(text, expected):
+    with pytest.raises(InputError, match=expected) as err:
+        parse_marks_tsv(text, source="m.tsv")
+    assert "\n" not in str(err.value)
+
+
+def test_read_errors_name_the_file(tmp_path):
+    with pytest.raises(InputError, match="no such marks file"):
+        read_marks_tsv(tmp_path / "none.tsv")
+    bad = tmp_path / "latin.tsv"
+    bad.write_bytes(b"x_mm\ty_mm\tz_mm\ttitle\n1\t2\t3\tcaf\xe9\n")
+    with pytest.raises(InputError, match=r"latin\.tsv: line 2 is not UTF-8"):
+        read_marks_tsv(bad)
+
+
+def test_write_refuses_to_overwrite(tmp_path):
+    p = write_marks_tsv([Mark(0, 0, 0, "a")], tmp_path / "m.tsv")
+    with pytest.raises(InputError, match="--force"):
+        write_marks_tsv([], p)
+    write_marks_tsv([], p, force=True)
+    assert len(read_marks_tsv(p)) == 0
+
+
+@given(
+    st.lists(
+        st.tuples(st.sampled_from(["add", "move", "delete", "rename", "note"]), st.integers(0, 9)),
+        max_size=30,
+    )
+)
+def test_operations_follow_list_semantics(ops):
+    """Reference model: a plain Python list with insert/pop (language semantics)."""
+    ml, ref = MarkList(), []
+    rng = np.random.default_rng(len(ops))
+    for op, k in ops:
+        if op == "add":
+            xyz = tuple(float(v) for v in rng.normal(size=3))
+            ml.add(xyz, f"m{k}", "n")
+            ref.append(Mark(*xyz, f"m{k}", "n"))
+            continue
+        if not ref:
+            with pytest.raises(InputError):
+                ml.delete(0)
+            continue
+        i, j = k % len(ref), (k * 7 + 3) % len(ref)
+        if op == "move":
+            ml.move(i, j)
+            ref.insert(j, ref.pop(i))
+        elif op == "delete":
+            assert ml.delete(i) == ref.pop(i)
+        elif op == "rename":
+            ml.rename(i, "renamed")
+            ref[i] = Mark(*ref[i].xyz_mm, "renamed", ref[i].note)
+        else:
+            ml.set_note(i, "new\tnote")
+            ref[i] = Mark(*ref[i].xyz_mm, ref[i].title, "new\tnote")
+        assert list(ml) == ref
+    assert list(ml) == ref
+    for i, m in enumerate(ref):
+        assert ml.jump(i) == m.xyz_mm
+
+
+def test_missing_index_and_default_title():
+    ml = MarkList()
+    m = ml.add([1, 2, 3])
+    assert m.title == "Mark 1"
+    with pytest.raises(InputError, match="no mark number 5"):
+        ml.rename(5, "x")
+    with pytest.raises(InputError, match="finite"):
+        Mark(math.nan, 0, 0)
+
+
+def test_json_round_trip():
+    ml = MarkList([Mark(1.5, -2, 3, "t", "n\nm")])
+    assert MarkList.from_json(ml.to_json()) == ml
+    with pytest.raises(InputError):
+        MarkList.from_json([{"x_mm": "a", "y_mm": 0, "z_mm": 0}])
+
+
+@pytest.mark.skipif(not SAMPLE.exists(), reason="sample data not generated")
+def test_sample_marks_file_reads():
+    ml = read_marks_tsv(SAMPLE)
+    assert len(ml) >= 1
+    assert all(m.title for m in ml)

@@ -1,0 +1,282 @@
+"""Tests of voxelscope/core/report.py: the standalone HTML report, CSVs and figures.
+
+Numbers in the report are compared with ``Analysis.fit_voxel`` on the same voxel (the
+function the window and ``voxelscope fit`` use) and, as an outside reference, with
+statsmodels OLS ``t_test`` on the same design. The HTML is parsed with the standard
+library's ``html.parser``, the CSV with ``csv``, digests checked with ``hashlib``.
+"""
+
+from __future__ import annotations
+
+import base64
+import csv
+import hashlib
+import io
+import os
+import sys
+from html.parser import HTMLParser
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from voxelscope import RESEARCH_CAUTION, __version__
+from voxelscope.core.errors import InputError
+from voxelscope.core.events import read_events
+from voxelscope.core.marks import Mark, MarkList
+from voxelscope.core.model import Analysis, ModelSettings
+from voxelscope.core.report import format_csv, slugify, write_report
+from voxelscope.core.run import open_run
+
+TR = 2.0
+T = 70
+
+
+@pytest.fixture
+def demo(tmp_path):
+    rng = np.random.default_rng(2024)
+    shape = (6, 5, 4)
+    t = np.arange(T) * TR
+    box = ((t % 40) >= 10) & ((t % 40) < 26)
+    data = 300 + rng.normal(0, 3, (*shape, T)) + 6 * box[None, None, None, :]
+    img = nib.Nifti1Image(data.astype(np.float32), np.diag([3.0, 3.0, 4.0, 1.0]))
+    img.header.set_xyzt_units("mm", "sec")
+    img.header["pixdim"][4] = TR
+    run_path = tmp_path / "in" / "sub-02_task-y_bold.nii"
+    run_path.parent.mkdir()
+    nib.save(img, run_path)
+    events = run_path.parent / "sub-02_task-y_events.tsv"
+    events.write_text(
+        "onset\tduration\ttrial_type\n"
+        "6\t12\ttone\n31\t10\ttap\n52\t14\ttone\n77\t12\ttap\n96\t10\ttone\n121\t12\ttap\n"
+    )
+    run = open_run(run_path, use_cache=False)
+    analysis = Analysis(read_events(events), run.n_volumes, run.tr)
+    return run, analysis, run_path, events
+
+
+class _Collect(HTMLParser):
+    def __init__(self):
+        super().__init__()
+        self.attrs: list[tuple[str, str, str]] = []
+        self.cells: list[dict] = []
+        self._cell = None
+        self.tags: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.tags.append(tag)
+        d = dict(attrs)
+        for k, v in attrs:
+            self.attrs.append((tag, k, v or ""))
+        if tag == "tr" and "data-kernel" in d:
+            self.cells.append({"row": d["data-kernel"]})
+        if tag == "td" and self.cells and "class" in d:
+            self._cell = (d["class"].split()[-1], d.get("data-value"))
+            self._buf = ""
+
+    def handle_data(self, data):
+        self.text.append(data)
+        if self._cell is not None:
+            self._buf += data
+
+    def handle_endtag(self, tag):
+        if tag == "td" and self._cell is not None:
+            name, value = self._cell
+            self.cells[-1][name] = (self._buf, value)
+            self._cell = None
+
+
+def _parse(path):
+    p = _Collect()
+    p.feed(path.read_text(encoding="utf-8"))
+    return p
+
+
+def _sha(p):
+    return hashlib.sha256(p.read_bytes()).hexdigest()
+
+
+def test_report_numbers_equal_the_fit(demo, tmp_path):
+    run, analysis, _run_path, events = demo
+    settings = ModelSettings(kernels=("boxcar", "double-gamma", "fir"), contrast="tone - tap")
+    ijk = (2, 3, 1)
+    res = write_report(
+        tmp_path / "out", run, analysis, settings, voxel=ijk, inputs={"events": events}
+    )
+    fits = analysis.fit_voxel(run.timeseries(ijk), settings)
+    html = _parse(res.html)
+    assert [c["row"] for c in html.cells] == ["boxcar", "double-gamma", "fir"]
+    for row, f in zip(html.cells, fits.fits):
+        shown, value = row["t"]
+        assert shown == f"{f.t:.2f}" and float(value) == f.t
+        assert float(row["beta"][1]) == f.beta and float(row["variance"][1]) == f.variance
+        assert int(row["df"][0]) == f.df and float(row["p"][1]) == f.p
+    # outside reference: statsmodels OLS on the same design and contrast
+    sm = pytest.importorskip("statsmodels.api")
+    for row, f in zip(html.cells, fits.fits):
+        tt = sm.OLS(run.timeseries(ijk), f.design.X).fit().t_test(f.result.weights)
+        np.testing.assert_allclose(float(row["t"][1]), float(np.squeeze(tt.tvalue)), rtol=1e-9)
+
+    rows = list(csv.DictReader(io.StringIO((tmp_path / "out" / "timeseries.csv").read_text())))
+    assert len(rows) == run.n_volumes == T  # one row per volume
+    assert list(rows[0]) == [
+        "time_s", "signal",
+        "fitted_boxcar", "residual_boxcar",
+        "fitted_double-gamma", "residual_double-gamma",
+        "fitted_fir", "residual_fir",
+    ]  # fmt: skip
+    col = lambda name: np.array([float(r[name]) for r in rows])  # noqa: E731
+    np.testing.assert_array_equal(col("signal"), run.timeseries(ijk))
+    np.testing.assert_array_equal(col("time_s"), np.arange(T) * TR)
+    for f in fits.fits:
+        np.testing.assert_array_equal(col(f"fitted_{f.kernel}"), f.fitted)
+        np.testing.assert_array_equal(col(f"residual_{f.kernel}"), f.residuals)
+        np.testing.assert_allclose(
+            col(f"fitted_{f.kernel}") + col(f"residual_{f.kernel}"), col("signal"), rtol=1e-12
+        )
+
+
+def test_html_stands_alone(demo, tmp_path):
+    run, analysis, _run_path, events = demo
+    res = write_report(
+        tmp_path / "out",
+        run,
+        analysis,
+        ModelSettings(),
+        marks=[Mark(3, 6, 4, "a"), Mark(6, 3, 0, "b")],
+        inputs={"events": events},
+    )
+    html = _parse(res.html)
+    refs = [(t, k, v) for t, k, v in html.attrs if k in ("src", "href", "srcset", "action", "data")]
+    assert refs, "the page embeds its figures"
+    for tag, k, v in refs:
+        assert v.startswith(("data:", "#")), (tag, k, v)
+    assert "link" not in html.tags and "script" not in html.tags and "iframe" not in html.tags
+    text = res.html.read_text(encoding="utf-8")
+    assert "url(" not in text and "@import" not in text and "http" not in text
+    # every anchor points at a section that exists
+    ids = {v for _t, k, v in html.attrs if k == "id"}
+    assert {v[1:] for _t, k, v in refs if k == "href"} <= ids
+    # the embedded PNG is the figure written beside the page
+    srcs = [v for t, k, v in html.attrs if t == "img" and k == "src"]
+    assert len(srcs) == 2
+    assert (
+        base64.b64decode(srcs[0].split(",", 1)[1]) == (tmp_path / "out" / "01-a.png").read_bytes()
+    )
+    body = "".join(html.text)
+    assert RESEARCH_CAUTION in body and f"voxelscope {__version__}" in body
+
+
+def test_report_lists_inputs_settings_and_leaves_inputs_untouched(demo, tmp_path):
+    run, analysis, run_path, events = demo
+    before = {p: (_sha(p), os.stat(p).st_mtime_ns) for p in (run_path, events)}
+    settings = ModelSettings(noise="ar1", highpass_s=None, onset_shift_s=1.0)
+    res = write_report(
+        tmp_path / "out",
+        run,
+        analysis,
+        settings,
+        voxel=(1, 1, 1),
+        inputs={"events": events, "confounds": None},
+    )
+    assert {p: (_sha(p), os.stat(p).st_mtime_ns) for p in (run_path, events)} == before
+    body = "".join(_parse(res.html).text)
+    for p in (run_path, events):
+        assert p.name in body and _sha(p) in body
+    assert "ar1" in body and "onset_shift_s" in body and "highpass_s" in body
+    assert sorted(x.name for x in (tmp_path / "out").iterdir()) == [
+        "figure.png", "figure.svg", "report.html", "timeseries.csv",
+    ]  # fmt: skip
+
+
+def test_marks_report_one_section_and_csv_per_mark(demo, tmp_path):
+    run, analysis, _run_path, _events = demo
+    marks = MarkList(
+        [Mark(3, 6, 4, "Hearing: left!"), Mark(900, 0, 0, "far away"), Mark(6, 3, 0, "")]
+    )
+    settings = ModelSettings(kernels=("gamma",))
+    res = write_report(tmp_path / "out", run, analysis, settings, marks=marks)
+    names = sorted(p.name for p in (tmp_path / "out").iterdir())
+    assert names == [
+        "01-hearing-left.csv", "01-hearing-left.png", "01-hearing-left.svg",
+        "03-mark-3.csv", "03-mark-3.png", "03-mark-3.svg", "report.html",
+    ]  # fmt: skip
+    assert [s.number for s in res.sections] == [1, 2, 3]
+    assert res.sections[1].error and "far away" in res.sections[1].error
+    assert any("far away" in w for w in res.warnings)
+    html = _parse(res.html)
+    t_rows = [c["t"] for c in html.cells]
+    for sec, shown in zip([res.sections[0], res.sections[2]], t_rows):
+        f = analysis.fit_voxel(run.timeseries(sec.ijk), settings).fits[0]
+        assert sec.ijk == run.mm_to_voxel(marks[sec.number - 1].xyz_mm)
+        assert shown == (f"{f.t:.2f}", repr(f.t))
+        rows = list(csv.reader(io.StringIO((tmp_path / "out" / sec.csv.name).read_text())))
+        assert len(rows) == T + 1
+
+
+def test_existing_outputs_are_not_overwritten_without_force(demo, tmp_path):
+    run, analysis, _run_path, _events = demo
+    out = tmp_path / "out"
+    write_report(out, run, analysis, ModelSettings(), voxel=(0, 0, 0))
+    snapshot = {p.name: p.read_bytes() for p in out.iterdir()}
+    with pytest.raises(InputError, match=r"report\.html already exists; use --force"):
+        write_report(out, run, analysis, ModelSettings(kernels=("gamma",)), voxel=(1, 0, 0))
+    assert {p.name: p.read_bytes() for p in out.iterdir()} == snapshot
+    write_report(out, run, analysis, ModelSettings(kernels=("gamma",)), voxel=(1, 0, 0), force=True)
+    assert sorted(p.name for p in out.iterdir()) == sorted(snapshot)  # no temp files left
+    assert (out / "timeseries.csv").read_bytes() != snapshot["timeseries.csv"]
+
+
+def test_bad_requests_are_one_line_errors(demo, tmp_path):
+    run, analysis, run_path, _events = demo
+    with pytest.raises(InputError, match="either one voxel or a list of marks"):
+        write_report(tmp_path / "o", run, analysis, ModelSettings())
+    with pytest.raises(InputError, match="outside the grid"):
+        write_report(tmp_path / "o", run, analysis, ModelSettings(), voxel=(60, 0, 0))
+    (tmp_path / "file").write_text("")
+    with pytest.raises(InputError, match="is a file, not a folder"):
+        write_report(tmp_path / "file", run, analysis, ModelSettings(), voxel=(0, 0, 0))
+    with pytest.raises(InputError, match="is an input file"):
+        write_report(
+            run_path.parent,
+            run,
+            analysis,
+            ModelSettings(),
+            voxel=(0, 0, 0),
+            inputs={"x": run_path.parent / "report.html"},
+        )
+    assert not (tmp_path / "o").exists()
+
+
+def test_missing_checks_module_is_skipped_with_a_note(demo, tmp_path, monkeypatch):
+    run, analysis, _run_path, _events = demo
+    monkeypatch.setitem(sys.modules, "voxelscope.core.checks", None)  # import fails
+    res = write_report(tmp_path / "out", run, analysis, ModelSettings(), voxel=(0, 0, 0))
+    assert "checks are not available" in res.html.read_text(encoding="utf-8")
+
+
+def test_checks_flags_appear_when_available(demo, tmp_path):
+    checks = pytest.importorskip("voxelscope.core.checks")
+    run, analysis, _run_path, _events = demo
+    settings = ModelSettings(kernels=("gamma",))
+    res = write_report(tmp_path / "out", run, analysis, settings, voxel=(2, 2, 2))
+    y = run.timeseries((2, 2, 2))
+    flags = checks.voxel_checks(analysis, settings, "gamma", y, run=run, ijk=(2, 2, 2)).to_json()[
+        "flags"
+    ]
+    body = "".join(_parse(res.html).text)
+    for fl in flags:
+        assert (fl["text"] if isinstance(fl, dict) else str(fl)) in body
+
+
+def test_format_csv_and_slugify():
+    assert slugify("Édge blob: motion, not brain") == "edge-blob-motion-not-brain"
+    assert slugify("x" * 80) == "x" * 40
+    from voxelscope.core.events import Condition
+
+    an = Analysis([Condition("c", [3.0], [5.0])], n_volumes=12, tr=1.0)
+    y = np.random.default_rng(1).normal(size=12)
+    text = format_csv(an.fit_voxel(y, ModelSettings(kernels=("boxcar",), highpass_s=None)))
+    rows = list(csv.reader(io.StringIO(text)))
+    assert len(rows) == 13 and np.allclose([float(r[1]) for r in rows[1:]], y, rtol=0, atol=0)

@@ -1,0 +1,101 @@
+"""``voxelscope report``: a standalone HTML report, CSVs and figures for a voxel or marks."""
+
+from __future__ import annotations
+
+import argparse
+import math
+from pathlib import Path
+
+from .common import add_model_args, analysis_from_args, print_warnings, voxel_from_args
+
+__all__ = ["register", "run_report"]
+
+
+def _scale(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--scale takes a number, not '{text}'") from None
+    if not (math.isfinite(v) and 0 < v <= 16):
+        raise argparse.ArgumentTypeError("--scale must be between 0 and 16 (2 gives 1800x1120)")
+    return v
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    """Add the ``report`` subcommand."""
+    p = sub.add_parser(
+        "report",
+        help="write an HTML report, CSVs and figures for a voxel or a marks file",
+        description=(
+            "Fit every kernel at one voxel (--voxel or --mm) or at every mark of a marks TSV "
+            "(--marks) and write DIR/report.html (standalone, images embedded), one CSV of "
+            "the time series, fitted signals and residuals per voxel, and the figures as PNG "
+            "and SVG. Existing files are kept unless --force is given."
+        ),
+    )
+    add_model_args(p)
+    g = p.add_mutually_exclusive_group(required=True)
+    g.add_argument(
+        "--voxel", nargs=3, type=int, metavar=("I", "J", "K"), help="voxel indices (0-based)"
+    )
+    g.add_argument(
+        "--mm",
+        nargs=3,
+        type=float,
+        metavar=("X", "Y", "Z"),
+        help="world coordinates in mm (nearest voxel)",
+    )
+    g.add_argument(
+        "--marks",
+        metavar="TSV",
+        help="marks file (x_mm, y_mm, z_mm, title, note): one section each",
+    )
+    p.add_argument("-o", "--output", metavar="DIR", required=True, help="report folder")
+    p.add_argument("--force", action="store_true", help="overwrite existing report files")
+    p.add_argument(
+        "--scale",
+        type=_scale,
+        default=2.0,
+        metavar="N",
+        help="PNG pixels per figure unit (default 2: 1800x1120 pixels)",
+    )
+    p.add_argument("--title", metavar="TEXT", help="report title (default: from the run name)")
+    p.add_argument("--no-checks", action="store_true", help="leave out the diagnostics")
+    p.set_defaults(handler=run_report)
+
+
+def run_report(args: argparse.Namespace) -> int:
+    """Handler of ``voxelscope report``."""
+    from ..core.companions import find_companions
+    from ..core.marks import read_marks_tsv
+    from ..core.report import write_report
+
+    marks = read_marks_tsv(args.marks) if args.marks else None  # fail early on a bad file
+    loaded = analysis_from_args(args)
+    run = loaded.run
+    voxel = None if marks is not None else voxel_from_args(args, run)
+    sidecar = find_companions(Path(args.run)).sidecar
+    inputs = {
+        "run": Path(args.run),
+        "events": loaded.events_path,
+        "confounds": loaded.confounds_path,
+        "sidecar": sidecar,
+        "marks": Path(args.marks) if args.marks else None,
+    }
+    result = write_report(
+        args.output,
+        run,
+        loaded.analysis,
+        loaded.settings,
+        voxel=voxel,
+        marks=marks,
+        inputs=inputs,
+        force=args.force,
+        scale=args.scale,
+        checks=not args.no_checks,
+        title=args.title,
+        warnings=loaded.warnings,
+    )
+    print_warnings(result.warnings)
+    print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")
+    return 0

@@ -1,0 +1,525 @@
+"""Reports to hand around: one standalone HTML page, a CSV per voxel and the figures.
+
+:func:`write_report` is used by ``voxelscope report`` and by the window. For one voxel it
+writes::
+
+    DIR/report.html     standalone page (images embedded as data: URIs, no outside files)
+    DIR/timeseries.csv  time_s, signal, fitted_<kernel>, residual_<kernel>; one row per volume
+    DIR/figure.png      the figure (also DIR/figure.svg)
+
+For marks, one section per mark and per mark ``DIR/NN-<slug>.csv``, ``.png`` and ``.svg``
+(``NN`` the mark's number, ``slug`` its title in plain lower-case letters).
+
+Every number comes from :meth:`voxelscope.core.model.Analysis.fit_voxel`, the function
+the window and ``voxelscope fit`` use. Inputs are never modified; existing outputs are
+not overwritten unless ``force=True``, and every file is written atomically.
+"""
+
+from __future__ import annotations
+
+import base64
+import datetime as _dt
+import html
+import math
+import os
+import re
+import unicodedata
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .atomic import check_outputs, write_bytes, write_text
+from .errors import InputError, VoxelscopeError
+from .events import shift_conditions
+from .figure import signal_figure
+from .marks import Mark
+from .model import Analysis, ModelSettings, VoxelFits
+from .session import file_digest
+
+__all__ = [
+    "ReportResult",
+    "ReportSection",
+    "format_csv",
+    "slugify",
+    "write_report",
+]
+
+
+@dataclass
+class ReportSection:
+    """One voxel of a report: where it is, its fits and the files written for it."""
+
+    number: int
+    title: str
+    note: str
+    ijk: tuple[int, int, int] | None
+    xyz_mm: tuple[float, float, float] | None
+    fits: VoxelFits | None = None
+    checks: dict[str, dict[str, Any]] = field(default_factory=dict)
+    checks_note: str = ""
+    error: str = ""
+    csv: Path | None = None
+    png: Path | None = None
+    svg: Path | None = None
+    png_bytes: bytes = b""
+
+
+@dataclass
+class ReportResult:
+    """What :func:`write_report` wrote."""
+
+    directory: Path
+    html: Path
+    files: list[Path]
+    sections: list[ReportSection]
+    warnings: list[str]
+
+
+def slugify(text: str, limit: int = 40) -> str:
+    """Plain lower-case ASCII letters, digits and hyphens; ``mark`` when nothing is left.
+
+    >>> slugify("Hearing area, right: late peak")
+    'hearing-area-right-late-peak'
+    >>> slugify("  ")
+    'mark'
+    """
+    t = unicodedata.normalize("NFKD", str(text)).encode("ascii", "ignore").decode("ascii")
+    t = re.sub(r"[^a-z0-9]+", "-", t.lower()).strip("-")
+    t = t[:limit].rstrip("-")
+    return t or "mark"
+
+
+def format_csv(fits: VoxelFits) -> str:
+    """Time series CSV of one voxel: ``time_s, signal`` and per kernel ``fitted_<k>``,
+    ``residual_<k>``; one row per volume, full precision.
+
+    >>> from voxelscope.core.events import Condition
+    >>> a = Analysis([Condition("tone", [5.0], [10.0])], n_volumes=20, tr=2.0)
+    >>> y = np.arange(20.0) % 7
+    >>> text = format_csv(a.fit_voxel(y, ModelSettings(kernels=("gamma",))))
+    >>> text.splitlines()[0]
+    'time_s,signal,fitted_gamma,residual_gamma'
+    >>> len(text.splitlines())
+    21
+    """
+    t = fits.fits[0].design.frame_times if fits.fits else np.arange(len(fits.y), dtype=float)
+    cols = [("time_s", np.asarray(t, float)), ("signal", np.asarray(fits.y, float))]
+    for f in fits.fits:
+        cols.append((f"fitted_{f.kernel}", f.fitted))
+        cols.append((f"residual_{f.kernel}", f.residuals))
+    lines = [",".join(name for name, _ in cols)]
+    for i in range(len(fits.y)):
+        lines.append(",".join(repr(float(v[i])) for _, v in cols))
+    return "\n".join(lines) + "\n"
+
+
+# ------------------------------------------------------------------------------- helpers
+
+
+def _fmt(v: float | None, spec: str) -> str:
+    if v is None or not math.isfinite(float(v)):
+        return "-"
+    return format(float(v), spec)
+
+
+def _value_attr(v: float | None) -> str:
+    if v is None or not math.isfinite(float(v)):
+        return ""
+    return f' data-value="{float(v)!r}"'
+
+
+def _e(text: Any) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def _mm(run: Any, ijk: Sequence[int]) -> tuple[float, float, float]:
+    v = np.asarray(run.voxel_to_mm(tuple(int(i) for i in ijk)), dtype=float).reshape(-1)
+    return (float(v[0]), float(v[1]), float(v[2]))
+
+
+def _checks_for(
+    analysis: Analysis, settings: ModelSettings, fits: VoxelFits, run: Any, ijk
+) -> tuple[dict[str, dict[str, Any]], str]:
+    try:
+        from .checks import voxel_checks
+    except ImportError:
+        return {}, "checks are not available in this version of voxelscope"
+    out: dict[str, dict[str, Any]] = {}
+    try:
+        for f in fits.fits:
+            c = voxel_checks(analysis, settings, f.kernel, fits.y, run=run, ijk=tuple(ijk))
+            out[f.kernel] = c.to_json()
+    except VoxelscopeError as err:
+        return out, f"checks could not be run here: {err}"
+    except (AttributeError, TypeError) as err:  # checks API not as expected
+        return out, f"checks are not available in this version of voxelscope ({err})"
+    return out, ""
+
+
+_CHECK_NUMBERS = (
+    ("durbin_watson", "Durbin-Watson", ".2f"),
+    ("ar1", "lag-1 autocorrelation of residuals", ".2f"),
+    ("ljung_box_p", "Ljung-Box p", ".3g"),
+    ("tsnr", "tSNR", ".1f"),
+    ("cooks_distance_max", "largest Cook's distance", ".3g"),
+    ("t_without_influential", "t without influential volumes", ".2f"),
+    ("best_shift_s", "onset shift with the largest t (s)", ".2f"),
+    ("peak_latency_s", "peak latency (s)", ".1f"),
+    ("drift_fraction", "drift fraction", ".2f"),
+)
+
+
+# ---------------------------------------------------------------------------------- HTML
+
+_STYLE = """
+body{font-family:system-ui,sans-serif;max-width:1000px;margin:2em auto;padding:0 1em;
+color:#1f1f1f;background:#fff;line-height:1.45}
+h1{font-size:1.6em;margin-bottom:.2em}h2{border-bottom:1px solid #ddd;padding-bottom:.2em;
+margin-top:2em}
+.caution{background:#fff7e0;border-left:4px solid #e69f00;padding:.5em .8em}
+table{border-collapse:collapse;margin:.6em 0}th,td{padding:.25em .7em;border-bottom:1px solid
+#e4e4e4;text-align:left}td.num{text-align:right;font-variant-numeric:tabular-nums}
+img{max-width:100%;height:auto;border:1px solid #e4e4e4}
+.note{white-space:pre-wrap;font-style:italic}.warn{color:#8a4b00}
+.swatch{display:inline-block;width:.9em;height:.9em;margin-right:.4em;vertical-align:-.1em}
+code{font-size:.95em}.muted{color:#5a5a5a}
+"""
+
+
+def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
+    has_f = any(f.f is not None or f.f_df is not None for f in fits.fits)
+    head = ["kernel", "contrast", "beta", "variance", "t", "df", "p", "R²"]
+    if noise == "ar1":
+        head.append("rho")
+    if has_f:
+        head += ["F", "F df", "F p"]
+    rows = ["<table class='fits'><thead><tr>" + "".join(f"<th>{_e(h)}</th>" for h in head)]
+    rows.append("</tr></thead><tbody>")
+    for f in fits.fits:
+        colour = colours.get(f.kernel, "#777777")
+        cells = [
+            f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
+            f"{_e(f.kernel)}</td>",
+            f"<td class='contrast'>{_e(f.contrast)}</td>",
+            f"<td class='num beta'{_value_attr(f.beta)}>{_fmt(f.beta, '.4g')}</td>",
+            f"<td class='num variance'{_value_attr(f.variance)}>{_fmt(f.variance, '.4g')}</td>",
+            f"<td class='num t'{_value_attr(f.t)}>{_fmt(f.t, '.2f')}</td>",
+            f"<td class='num df' data-value='{f.df}'>{f.df}</td>",
+            f"<td class='num p'{_value_attr(f.p)}>{_fmt(f.p, '.3g')}</td>",
+            f"<td class='num r2'{_value_attr(f.r2)}>{_fmt(f.r2, '.3f')}</td>",
+        ]
+        if noise == "ar1":
+            cells.append(f"<td class='num rho'{_value_attr(f.rho)}>{_fmt(f.rho, '.3f')}</td>")
+        if has_f:
+            fdf = f"{f.f_df[0]}, {f.f_df[1]}" if f.f_df else "-"
+            cells.append(f"<td class='num f'{_value_attr(f.f)}>{_fmt(f.f, '.2f')}</td>")
+            cells.append(f"<td class='num fdf'>{fdf}</td>")
+            cells.append(f"<td class='num fp'{_value_attr(f.f_p)}>{_fmt(f.f_p, '.3g')}</td>")
+        rows.append(f"<tr data-kernel='{_e(f.kernel)}'>" + "".join(cells) + "</tr>")
+    rows.append("</tbody></table>")
+    return "\n".join(rows)
+
+
+def _checks_html(sec: ReportSection) -> str:
+    out = ["<h3>Checks</h3>"]
+    if sec.checks_note:
+        out.append(f"<p class='muted'>{_e(sec.checks_note)}</p>")
+    for kernel, c in sec.checks.items():
+        flags = c.get("flags") or []
+        texts = [fl.get("text", str(fl)) if isinstance(fl, dict) else str(fl) for fl in flags]
+        out.append(f"<h4>{_e(kernel)}</h4>")
+        if texts:
+            out.append("<ul class='flags'>" + "".join(f"<li>{_e(t)}</li>" for t in texts))
+            out.append("</ul>")
+        else:
+            out.append("<p class='muted'>No flags.</p>")
+        nums = []
+        for key, label, spec in _CHECK_NUMBERS:
+            v = c.get(key)
+            if isinstance(v, (int, float)) and not isinstance(v, bool):
+                nums.append(f"<tr><td>{_e(label)}</td><td class='num'>{_fmt(v, spec)}</td></tr>")
+        if nums:
+            out.append("<table class='checks'>" + "".join(nums) + "</table>")
+    return "\n".join(out)
+
+
+def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
+    anchor = f"sec-{sec.number}"
+    out = [f"<section id='{anchor}'>", f"<h2>{sec.number}. {_e(sec.title)}</h2>"]
+    if sec.note:
+        out.append(f"<p class='note'>{_e(sec.note)}</p>")
+    where = []
+    if sec.ijk is not None:
+        where.append("voxel ({}, {}, {})".format(*sec.ijk))
+    if sec.xyz_mm is not None:
+        where.append("world ({:.1f}, {:.1f}, {:.1f}) mm".format(*sec.xyz_mm))
+    if where:
+        out.append(f"<p>{_e(', '.join(where))}</p>")
+    if sec.error:
+        out.append(f"<p class='warn'>{_e(sec.error)}</p></section>")
+        return "\n".join(out)
+    assert sec.fits is not None
+    for w in sec.fits.warnings:
+        out.append(f"<p class='warn'>{_e(w)}</p>")
+    b64 = base64.b64encode(sec.png_bytes).decode("ascii")
+    alt = f"signal, fitted signals and residuals at {sec.title}"
+    out.append(f"<figure><img alt='{_e(alt)}' src='data:image/png;base64,{b64}'>")
+    shift = (
+        f" Onsets shifted by {settings.onset_shift_s:g} s as in the model."
+        if settings.onset_shift_s
+        else ""
+    )
+    out.append(
+        "<figcaption>Time series (grey), each kernel's fitted signal (colour) and the "
+        f"residuals below; shaded bands are the condition blocks.{_e(shift)}</figcaption>"
+        "</figure>"
+    )
+    out.append(_fits_table(sec.fits, settings.noise, colours))
+    out.append(_checks_html(sec))
+    names = [p.name for p in (sec.csv, sec.png, sec.svg) if p is not None]
+    out.append(
+        "<p class='muted'>Files beside this page: "
+        + ", ".join(f"<code>{_e(n)}</code>" for n in names)
+        + "</p>"
+    )
+    out.append("</section>")
+    return "\n".join(out)
+
+
+def _settings_rows(settings: ModelSettings, analysis: Analysis) -> list[tuple[str, str]]:
+    rows = [("TR (s)", f"{analysis.tr:g}"), ("volumes", str(analysis.n_volumes))]
+    rows.append(("conditions", ", ".join(analysis.condition_names)))
+    for f in fields(ModelSettings):
+        v = getattr(settings, f.name)
+        if f.name == "contrast" and v is None:
+            v = f"{analysis.default_contrast()} (first condition)"
+        elif f.name == "confound_columns" and v is None:
+            v = ", ".join(analysis.confound_names) if analysis.confound_names else "none"
+        elif f.name == "highpass_s" and v is None:
+            v = "none"
+        elif f.name == "fir_bin_s" and v is None:
+            v = f"{analysis.tr:g} (one TR)"
+        elif isinstance(v, tuple):
+            v = ", ".join(v) if v else "none"
+        rows.append((f.name, str(v)))
+    return rows
+
+
+def _page(
+    title: str,
+    sections: list[ReportSection],
+    settings: ModelSettings,
+    analysis: Analysis,
+    inputs: list[tuple[str, Path, str, int]],
+    warnings: list[str],
+    colours: Mapping[str, str],
+) -> str:
+    from voxelscope import RESEARCH_CAUTION, __version__
+
+    now = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
+    out = [
+        "<!DOCTYPE html>",
+        "<html lang='en'><head><meta charset='utf-8'>",
+        "<meta name='viewport' content='width=device-width, initial-scale=1'>",
+        f"<title>{_e(title)}</title><style>{_STYLE}</style></head><body>",
+        f"<header><h1>{_e(title)}</h1>",
+        f"<p class='caution'>{_e(RESEARCH_CAUTION)}</p>",
+        f"<p class='muted'>Made {_e(now)} by voxelscope {_e(__version__)}.</p></header>",
+    ]
+    if len(sections) > 1:
+        out.append("<nav><ol>")
+        for s in sections:
+            out.append(f"<li><a href='#sec-{s.number}'>{_e(s.title)}</a></li>")
+        out.append("<li><a href='#model'>Model</a></li><li><a href='#inputs'>Input files</a></li>")
+        out.append("</ol></nav>")
+    out += [_section_html(s, settings, colours) for s in sections]
+    out.append("<section id='model'><h2>Model</h2><table class='settings'>")
+    for k, v in _settings_rows(settings, analysis):
+        out.append(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>")
+    out.append("</table></section>")
+    out.append("<section id='inputs'><h2>Input files</h2><table class='inputs'>")
+    out.append("<tr><th>role</th><th>file</th><th>bytes</th><th>SHA-256</th></tr>")
+    for role, path, digest, size in inputs:
+        out.append(
+            f"<tr><td>{_e(role)}</td><td>{_e(path.name)}</td><td class='num'>{size}</td>"
+            f"<td><code class='sha256'>{_e(digest)}</code></td></tr>"
+        )
+    out.append("</table></section>")
+    if warnings:
+        out.append("<section id='warnings'><h2>Warnings</h2><ul>")
+        out += [f"<li class='warn'>{_e(w)}</li>" for w in warnings]
+        out.append("</ul></section>")
+    out.append(
+        f"<footer><p class='caution'>{_e(RESEARCH_CAUTION)}</p>"
+        f"<p class='muted'>voxelscope {_e(__version__)}</p></footer>"
+    )
+    out.append("</body></html>")
+    return "\n".join(out) + "\n"
+
+
+# ------------------------------------------------------------------------------ writing
+
+
+def write_report(
+    out_dir: str | os.PathLike[str],
+    run: Any,
+    analysis: Analysis,
+    settings: ModelSettings,
+    *,
+    voxel: Sequence[int] | None = None,
+    marks: Iterable[Mark] | None = None,
+    inputs: Mapping[str, str | os.PathLike[str] | None] | None = None,
+    force: bool = False,
+    scale: float = 2.0,
+    size: tuple[float, float] = (900.0, 560.0),
+    checks: bool = True,
+    title: str | None = None,
+    warnings: Sequence[str] = (),
+) -> ReportResult:
+    """Write a report for one voxel or for every mark.
+
+    Parameters
+    ----------
+    out_dir : path-like
+        Output folder, created when missing.
+    run : Run
+        Gives ``timeseries(ijk)``, ``voxel_to_mm``, ``mm_to_voxel``, ``check_voxel`` and
+        ``path`` (see :mod:`voxelscope.core.run`).
+    analysis : Analysis
+    settings : ModelSettings
+    voxel : (i, j, k), optional
+        One voxel. Give exactly one of ``voxel`` and ``marks``.
+    marks : iterable of Mark, optional
+        One section per mark; a mark outside the grid gets a section saying so.
+    inputs : mapping role -> path, optional
+        Input files listed with their SHA-256 (default: the run). None values are skipped.
+    force : bool
+        Overwrite existing outputs (each written atomically). Without it nothing is written
+        when any output exists.
+    scale : float
+        PNG pixels per figure unit; the PNG is ``round(size * scale)`` pixels.
+    size : (width, height)
+        Figure size in units (CSS pixels).
+    checks : bool
+        Add the diagnostics and flags of :func:`voxelscope.core.checks.voxel_checks`.
+    title : str, optional
+    warnings : sequence of str
+        Extra warnings to list (for example from loading the inputs).
+
+    Returns
+    -------
+    ReportResult
+    """
+    if (voxel is None) == (marks is None):
+        raise InputError("a report needs either one voxel or a list of marks")
+    if not (isinstance(scale, (int, float)) and 0 < scale <= 16 and math.isfinite(scale)):
+        raise InputError(f"the figure scale must be between 0 and 16, not {scale}")
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InputError(f"{out} is a file, not a folder; give a folder for the report")
+
+    run_path = Path(getattr(run, "path", "run"))
+    input_paths = {"run": run_path, **{k: v for k, v in (inputs or {}).items() if v is not None}}
+    all_warnings = list(warnings) + [w for w in analysis.warnings if w not in warnings]
+
+    # what to report
+    sections: list[ReportSection] = []
+    if voxel is not None:
+        ijk = tuple(int(v) for v in run.check_voxel(tuple(int(v) for v in voxel)))
+        sec = ReportSection(1, f"voxel ({ijk[0]}, {ijk[1]}, {ijk[2]})", "", ijk, _mm(run, ijk))
+        sec.csv, sec.png, sec.svg = (
+            out / "timeseries.csv",
+            out / "figure.png",
+            out / "figure.svg",
+        )
+        sections.append(sec)
+    else:
+        for n, m in enumerate(marks or (), start=1):
+            title_n = m.title or f"Mark {n}"
+            sec = ReportSection(n, title_n, m.note, None, m.xyz_mm)
+            try:
+                sec.ijk = tuple(int(v) for v in run.mm_to_voxel(m.xyz_mm))
+            except InputError as err:
+                sec.error = f"mark {n} '{title_n}' cannot be reported: {err}"
+                all_warnings.append(sec.error)
+                sections.append(sec)
+                continue
+            stem = f"{n:02d}-{slugify(title_n)}"
+            sec.csv, sec.png, sec.svg = (
+                out / f"{stem}.csv",
+                out / f"{stem}.png",
+                out / f"{stem}.svg",
+            )
+            sections.append(sec)
+        if not sections:
+            raise InputError("the marks list is empty; add marks or report one voxel")
+
+    html_path = out / "report.html"
+    outputs = [html_path] + [p for s in sections for p in (s.csv, s.png, s.svg) if p is not None]
+    resolved_inputs = {Path(os.path.abspath(p)) for p in input_paths.values()}
+    for p in outputs:
+        if Path(os.path.abspath(p)) in resolved_inputs:
+            raise InputError(f"{p} is an input file; choose another output folder")
+    check_outputs(outputs, force=force)
+
+    # compute everything before writing anything
+    from .figure import kernel_colours
+
+    colours = kernel_colours()
+    conditions = shift_conditions(analysis.conditions, settings.onset_shift_s)
+    csv_texts: dict[Path, str] = {}
+    svgs: dict[Path, str] = {}
+    for sec in sections:
+        if sec.error:
+            continue
+        y = run.timeseries(sec.ijk)
+        sec.fits = analysis.fit_voxel(y, settings)
+        all_warnings += [f"{sec.title}: {w}" for w in sec.fits.warnings]
+        if checks:
+            sec.checks, sec.checks_note = _checks_for(analysis, settings, sec.fits, run, sec.ijk)
+        else:
+            sec.checks_note = "checks were not asked for"
+        fig_title = sec.title
+        if sec.ijk is not None and voxel is None:
+            fig_title += " - voxel ({}, {}, {})".format(*sec.ijk)
+        fig = signal_figure(
+            sec.fits.fits[0].design.frame_times,
+            sec.fits.y,
+            [(f.kernel, f.fitted, f.residuals) for f in sec.fits.fits],
+            conditions,
+            title=fig_title,
+            width=size[0],
+            height=size[1],
+            run_length_s=analysis.n_volumes * analysis.tr,
+            colours=colours,
+        )
+        sec.png_bytes = fig.to_png(scale=scale)
+        svgs[sec.svg] = fig.to_svg()
+        csv_texts[sec.csv] = format_csv(sec.fits)
+
+    inputs_rows = []
+    for role, p in input_paths.items():
+        path = Path(p)
+        if path.is_file():
+            inputs_rows.append((role, path, file_digest(path), path.stat().st_size))
+        elif path.is_dir():  # a run given as a folder: list it without a digest
+            inputs_rows.append((role, path, "(folder)", 0))
+    page_title = title or f"voxelscope report: {run_path.name}"
+    page = _page(page_title, sections, settings, analysis, inputs_rows, all_warnings, colours)
+
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as err:
+        raise InputError(f"{out}: cannot create the report folder ({err.strerror})") from None
+    written: list[Path] = []
+    for sec in sections:
+        if sec.error:
+            continue
+        written.append(write_text(sec.csv, csv_texts[sec.csv], force=force))
+        written.append(write_bytes(sec.png, sec.png_bytes, force=force))
+        written.append(write_text(sec.svg, svgs[sec.svg], force=force))
+    written.append(write_text(html_path, page, force=force))
+    return ReportResult(out, html_path, written, sections, list(dict.fromkeys(all_warnings)))
