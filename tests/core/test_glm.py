@@ -545,3 +545,16 @@ def test_condition_f_matrix_matches_statsmodels_f_test():
     assert (q, df2) == (2, n - 3)
     assert_allclose(F[0], float(np.squeeze(ref.fvalue)), rtol=1e-9)
     assert_allclose(pval[0], float(ref.pvalue), rtol=1e-8)
+
+
+def test_non_finite_voxel_has_no_fit():
+    """A voxel with a NaN sample gets NaN everywhere (outside the mask), never zeros."""
+    rng = np.random.default_rng(5)
+    X = np.column_stack([rng.standard_normal(30), np.ones(30)])
+    Y = rng.standard_normal((30, 2))
+    Y[4, 1] = np.nan
+    res = fit(X, Y, [1.0, 0.0])
+    assert np.isfinite(res.t[0]) and res.degenerate[1]
+    for a in (res.t[1], res.beta[1], res.r2[1], res.p[1]):
+        assert np.isnan(a)
+    assert np.all(np.isnan(res.fitted[:, 1])) and np.all(np.isnan(res.residuals[:, 1]))

@@ -545,6 +545,14 @@ def _fit_checked(
     if keep_series:
         fitted = prep.X @ B
         residuals = R
+    if bad is not None:  # voxels with NaN or infinite samples have no fit at all
+        B[:, bad] = np.nan
+        beta[bad] = np.nan
+        r2[bad] = np.nan
+        sigma2[bad] = np.nan
+        if keep_series:
+            fitted[:, bad] = np.nan
+            residuals[:, bad] = np.nan
     return FitResult(
         noise=noise,
         weights=c,
