@@ -15,3 +15,19 @@ settings.register_profile(
     suppress_health_check=[HealthCheck.too_slow],
 )
 settings.load_profile("voxelscope")
+
+
+import pytest  # noqa: E402
+
+
+@pytest.fixture(autouse=True)
+def _private_dirs(tmp_path_factory, monkeypatch):
+    """Keep every test away from the user's real cache, state and settings folders."""
+    base = tmp_path_factory.getbasetemp()
+    for var, sub in (
+        ("XDG_CACHE_HOME", "cache"),
+        ("XDG_STATE_HOME", "state"),
+        ("XDG_CONFIG_HOME", "config"),
+        ("XDG_DATA_HOME", "data"),
+    ):
+        monkeypatch.setenv(var, str(base / sub))

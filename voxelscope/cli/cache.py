@@ -17,6 +17,9 @@ def register(sub: argparse._SubParsersAction) -> None:
     i = s.add_parser("info", help="list cached runs and their size")
     i.set_defaults(handler=run_info)
     c = s.add_parser("clear", help="delete every cached run")
+    c.add_argument(
+        "--stale", action="store_true", help="only entries whose source changed or is gone"
+    )
     c.set_defaults(handler=run_clear)
 
 
@@ -32,17 +35,17 @@ def run_info(args: argparse.Namespace) -> int:
     from ..core import cache
 
     info = cache.cache_info()
-    print(f"cache folder: {info['directory']}")
-    entries = info.get("entries", [])
-    for e in entries:
-        print(f"  {_human(e.get('size_bytes', 0)):>9}  {e.get('source', '?')}")
-    print(f"{len(entries)} cached run(s), {_human(info.get('total_bytes', 0))} in all")
+    print(f"cache folder: {info.directory}")
+    for e in info.entries:
+        note = "  (stale: the source changed or is gone)" if e.stale else ""
+        print(f"  {_human(e.size_bytes):>9}  {e.source}{note}")
+    print(f"{len(info)} cached run(s), {_human(info.total_bytes)} in all")
     return 0
 
 
 def run_clear(args: argparse.Namespace) -> int:
     from ..core import cache
 
-    n = cache.cache_clear()
-    print(f"removed {n} cached run(s)")
+    removed = cache.cache_clear(stale_only=args.stale)
+    print(f"removed {len(removed)} cached run(s), {_human(removed.total_bytes)}")
     return 0
