@@ -186,3 +186,15 @@ def test_get_kernel_names_and_errors():
         get_kernel("gamma", width=3.0)
     with pytest.raises(InputError):
         FIR(n_bins=0)
+
+
+def test_boxcar_ignores_derivatives_in_the_design():
+    """Derivatives are defined for smooth kernels only; the boxcar keeps one column."""
+    from voxelscope.core.events import Condition
+    from voxelscope.core.model import Analysis, ModelSettings
+
+    a = Analysis([Condition("tone", [10.0, 50.0], [15.0, 15.0])], n_volumes=70, tr=1.25)
+    s = ModelSettings(kernels=("boxcar", "gamma"), derivatives=1)
+    fits = a.fit_voxel(np.random.default_rng(0).standard_normal(70), s)
+    assert fits.by_kernel("boxcar").design.condition_columns["tone"] == (0,)
+    assert fits.by_kernel("gamma").design.names[:2] == ("tone", "tone_dt")

@@ -135,6 +135,10 @@ class Boxcar(Kernel):
         out[0] = 1.0
         return out
 
+    def basis(self, dt: float, derivatives: int = 0) -> list[tuple[str, np.ndarray]]:
+        """The stimulus itself; a boxcar has no smooth shape, so no derivative columns."""
+        return [("", np.array([1.0 / dt]))]
+
     def peak_s(self, dt: float = 0.01) -> float:
         return 0.0
 

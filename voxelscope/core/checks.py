@@ -1,0 +1,729 @@
+"""Is it real? Diagnostics of one kernel's fit at one clicked voxel.
+
+:func:`voxel_checks` answers, at a single voxel, the questions a careful reader asks before
+believing an activation: are the residuals white, does one volume drive the t, is the
+timing of the events right, does the response look like the kernel, does the task line up
+with the confounds, is the voxel at the edge of the brain. Each finding that crosses a
+documented threshold (the module-level constants below) becomes a :class:`Flag`: one plain
+sentence plus the name of the plot that shows the evidence (``acf``, ``influence``,
+``shift_scan``, ``fir``, ``spectrum``, ``confounds`` or ``edge``).
+
+What is computed, and how
+-------------------------
+Residual diagnostics and influence measures use the ordinary least squares (OLS) fit of the
+chosen kernel's full design (the quantities the reference definitions describe); every
+*t* that is reported (``t``, ``t_without_influential``, the timing scan) uses the settings'
+noise model and goes through :func:`voxelscope.core.glm.fit`, the same code path as the
+Fits table and the maps.
+
+* **Autocorrelation** (:mod:`voxelscope.core.diagnostics`): ``acf`` at lags 0..20;
+  ``ar1`` is :func:`voxelscope.core.glm.ar1_rho` of the OLS residuals (the estimate the
+  AR(1) model uses); Durbin-Watson (Durbin & Watson, 1950); Ljung-Box p at 10 lags
+  (Ljung & Box, 1978). Under AR(1), ``ar1_whitened`` is the lag-1 estimate left in the
+  prewhitened residuals.
+* **Outlier volumes**: externally studentized residuals beyond the Bonferroni-corrected
+  two-sided quantile ``t_{df-1}(1 - OUTLIER_ALPHA / (2 n))`` (the classical outlier test),
+  together with the run's spikes: volumes whose frame-to-frame RMS change over the brain
+  mask exceeds ``median + RMS_SPIKE_K * 1.4826 * MAD`` (see
+  :class:`~voxelscope.core.diagnostics.RunSummary`).
+* **Influence**: leverage and Cook's distance (Cook, 1977) per volume. The influential
+  volumes are the (at most ``INFLUENTIAL_MAX``) volumes of largest Cook's distance above
+  ``4 / n`` (common practice); ``t_without_influential`` refits without all of them and
+  ``t_dropping[m]`` without the ``m + 1`` most influential.
+* **VIF** of every column of the full design, the constant included: ``1 / (1 - R^2_j)``
+  with ``R^2_j`` from regressing column ``j`` on all the others, columns centred first (so
+  a regressor's VIF is the usual one of a model with an intercept, and the constant's is 1;
+  :func:`~voxelscope.core.diagnostics.variance_inflation`).
+* **Confound correlation**: Pearson r of each condition's regressor with every column of
+  the confounds file (whether or not the model uses it).
+* **tSNR**: mean of the voxel over the run divided by the residual SD (``sqrt(RSS / df)``)
+  of a fit of the drift (discrete cosine, the settings' cutoff) and constant columns only.
+* **Edge distance**: ``scipy.ndimage.distance_transform_edt`` of the brain mask with
+  ``sampling=voxel_size``, the grid border counting as outside; a voxel on the edge is one
+  voxel size away; 0.0 outside the mask.
+* **Timing** (:mod:`voxelscope.core.timing`): the t against an onset shift of -4..+8 s,
+  ``best_shift_s`` and ``peak_latency_s = kernel.peak_s() + best_shift_s``; the FIR
+  estimate (one bin per TR over 24 s) with each kernel's fitted response.
+* **Spectrum**: ``scipy.signal.periodogram`` of the demeaned voxel with ``fs = 1 / TR``;
+  ``task_hz`` is the peak of the condition regressor's periodogram and ``highpass_hz`` is
+  ``1 / highpass_s``; ``drift_fraction`` is the share of the voxel's power below it.
+
+Examples
+--------
+>>> import numpy as np
+>>> from voxelscope.core.events import Condition
+>>> from voxelscope.core.model import Analysis, ModelSettings
+>>> a = Analysis([Condition("tone", np.arange(10.0, 280.0, 30.0), [15.0] * 9)], 240, 1.25)
+>>> s = ModelSettings(kernels=("double-gamma",))
+>>> rng = np.random.default_rng(1)
+>>> y = 100 + 2 * a.design("double-gamma", s).column("tone") + rng.standard_normal(240)
+>>> c = voxel_checks(a, s, "double-gamma", y)
+>>> 1.6 < c.durbin_watson < 2.4, c.flag_ids()
+(True, [])
+>>> sorted(c.to_json())[:4]
+['acf', 'ar1', 'ar1_whitened', 'best_shift_s']
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field, replace
+from typing import Any
+
+import numpy as np
+from scipy import signal, stats
+
+from .design import DesignMatrix, dct_drift
+from .diagnostics import (
+    ACF_LAGS,
+    LJUNG_BOX_LAGS,
+    RMS_SPIKE_K,
+    acf,
+    durbin_watson,
+    influence,
+    ljung_box,
+    run_summary,
+    variance_inflation,
+)
+from .errors import InputError, ModelError
+from .glm import PreparedDesign, ar1_rho, fit, prais_winsten, prepare
+from .hrf import Kernel
+from .model import Analysis, ModelSettings
+from .timing import SHIFTS_S, fir_estimate, shift_scan
+
+__all__ = [
+    "AR1_LIMIT",
+    "CONFOUND_R_LIMIT",
+    "DRIFT_FRACTION_LIMIT",
+    "EDGE_LIMIT_MM",
+    "INFLUENCE_REL_CHANGE",
+    "INFLUENCE_T_CHANGE",
+    "INFLUENTIAL_MAX",
+    "LJUNG_BOX_ALPHA",
+    "OUTLIER_ALPHA",
+    "SHIFT_LIMIT_S",
+    "SHIFT_REL_GAIN",
+    "SHIFT_T_GAIN",
+    "SHIFT_T_MIN",
+    "SLOW_TASK_RATIO",
+    "VIF_LIMIT",
+    "Flag",
+    "VoxelChecks",
+    "voxel_checks",
+]
+
+# ----------------------------------------------------------------------------- thresholds
+
+#: Flag autocorrelation when the lag-1 estimate exceeds this ...
+AR1_LIMIT = 0.3
+#: ... and the Ljung-Box p (10 lags) is below this.
+LJUNG_BOX_ALPHA = 0.01
+#: Family-wise level of the Bonferroni outlier test on externally studentized residuals.
+OUTLIER_ALPHA = 0.01
+#: Drop at most this many influential volumes (largest Cook's distance above 4/n).
+INFLUENTIAL_MAX = 3
+#: Flag influence when dropping volumes changes t by at least this much ...
+INFLUENCE_T_CHANGE = 1.0
+#: ... and by at least this fraction of the larger of the two |t|.
+INFLUENCE_REL_CHANGE = 0.2
+#: Flag a condition regressor that correlates at least this strongly (|r|) with a confound.
+CONFOUND_R_LIMIT = 0.5
+#: Flag a condition regressor whose variance inflation factor exceeds this
+#: (common practice puts the worry line at 5-10).
+VIF_LIMIT = 5.0
+#: Flag a voxel this close to the edge of the brain mask (mm).
+EDGE_LIMIT_MM = 6.0
+#: Flag timing when the best onset shift is at least this far from zero (s) ...
+SHIFT_LIMIT_S = 1.0
+#: ... the best t is at least this large ...
+SHIFT_T_MIN = 3.0
+#: ... and it beats the t at zero shift by at least this much ...
+SHIFT_T_GAIN = 1.0
+#: ... and by at least this fraction of that t. (In simulated block designs with white
+#: noise the scan's best t beats the unshifted t by under 5% in 99% of clean voxels.)
+SHIFT_REL_GAIN = 0.1
+#: Flag slow drift when this share of the voxel's power lies below the high-pass cutoff.
+DRIFT_FRACTION_LIMIT = 0.5
+#: Flag a task whose frequency is below this multiple of the high-pass cutoff frequency.
+SLOW_TASK_RATIO = 1.5
+
+
+# ----------------------------------------------------------------------------- results
+
+
+@dataclass(frozen=True)
+class Flag:
+    """One finding in plain words.
+
+    Attributes
+    ----------
+    id : str
+        Stable identifier: ``autocorrelation``, ``outliers``, ``run-spikes``,
+        ``influence``, ``timing``, ``confound``, ``collinear``, ``edge``, ``outside-mask``,
+        ``drift``, ``slow-task`` or ``no-signal``.
+    text : str
+        One plain sentence.
+    figure : str
+        The plot that supports it: ``acf``, ``influence``, ``shift_scan``, ``fir``,
+        ``spectrum``, ``confounds`` or ``edge``.
+
+    >>> Flag("edge", "The voxel is 2.0 mm from the brain edge.", "edge").to_json()["figure"]
+    'edge'
+    """
+
+    id: str
+    text: str
+    figure: str
+
+    def to_json(self) -> dict[str, str]:
+        return {"id": self.id, "text": self.text, "figure": self.figure}
+
+
+def _nan_array(n: int = 0) -> np.ndarray:
+    return np.full(n, np.nan)
+
+
+@dataclass(frozen=True, eq=False)
+class VoxelChecks:
+    """Every check of one kernel's fit at one voxel (see the module text for definitions).
+
+    Volume indices are 0-based. Undefined scalars are NaN or None; :meth:`to_json` turns
+    NaN and infinities into None.
+
+    Attributes
+    ----------
+    t, df : the contrast's t (settings' noise model) and its degrees of freedom
+    durbin_watson, ar1, ljung_box_q, ljung_box_p, acf : residual autocorrelation (OLS)
+    ar1_whitened : lag-1 estimate left after AR(1) prewhitening (AR(1) settings only)
+    outlier_volumes : studentized outliers and run spikes together, sorted
+    studentized_outliers, outlier_threshold : the studentized part and its threshold
+    leverage, cooks, studentized : per volume, for the influence plot
+    cooks_distance_max, cooks_volume : the largest Cook's distance and its volume
+    influential_volumes, t_dropping, t_without_influential : the refits without them
+    frame_rms_change, rms_spikes, rms_threshold : run-level (None without a run)
+    vif, confound_correlation : design checks
+    tsnr, edge_distance_mm, in_mask : signal quality and place (None without a run/ijk)
+    shifts_s, shift_t, t_at_zero_shift, best_shift_s, kernel_peak_s, peak_latency_s : timing
+    fir : dict with times, estimate, se, bin_s, peak_s, kernels, kernel_times, kernels_fine
+    spectrum : dict with freqs_hz, power, task_hz, highpass_hz
+    drift_fraction : share of the voxel's power below the high-pass cutoff
+    flags : tuple of Flag
+    warnings : notes (e.g. why there is no FIR estimate)
+    """
+
+    kernel: str
+    condition: str
+    contrast: str
+    noise: str
+    n_volumes: int
+    tr: float
+    t: float = math.nan
+    df: int = 0
+    # residual autocorrelation (OLS residuals)
+    durbin_watson: float = math.nan
+    ar1: float = math.nan
+    ljung_box_q: float = math.nan
+    ljung_box_p: float = math.nan
+    acf: np.ndarray = field(default_factory=_nan_array)
+    ar1_whitened: float | None = None
+    # outliers and influence
+    outlier_volumes: tuple[int, ...] = ()
+    studentized_outliers: tuple[int, ...] = ()
+    outlier_threshold: float = math.nan
+    leverage: np.ndarray = field(default_factory=_nan_array)
+    cooks: np.ndarray = field(default_factory=_nan_array)
+    studentized: np.ndarray = field(default_factory=_nan_array)
+    cooks_threshold: float = math.nan
+    cooks_distance_max: float = math.nan
+    cooks_volume: int | None = None
+    influential_volumes: tuple[int, ...] = ()
+    t_without_influential: float = math.nan
+    t_dropping: tuple[float, ...] = ()
+    # run-level spikes (None without a run)
+    frame_rms_change: np.ndarray | None = None
+    rms_spikes: tuple[int, ...] | None = None
+    rms_threshold: float | None = None
+    # design
+    vif: dict[str, float] = field(default_factory=dict)
+    confound_correlation: dict[str, dict[str, float]] = field(default_factory=dict)
+    # signal quality and place
+    tsnr: float = math.nan
+    edge_distance_mm: float | None = None
+    in_mask: bool | None = None
+    # timing
+    shifts_s: np.ndarray = field(default_factory=lambda: np.array(SHIFTS_S))
+    shift_t: np.ndarray = field(default_factory=lambda: _nan_array(len(SHIFTS_S)))
+    t_at_zero_shift: float = math.nan
+    best_shift_s: float | None = None
+    kernel_peak_s: float = math.nan
+    peak_latency_s: float | None = None
+    # shape and spectrum
+    fir: dict[str, Any] = field(default_factory=lambda: {"times": [], "estimate": [], "se": []})
+    spectrum: dict[str, Any] = field(default_factory=dict)
+    drift_fraction: float | None = None
+    flags: tuple[Flag, ...] = ()
+    warnings: tuple[str, ...] = ()
+
+    def flag_ids(self) -> list[str]:
+        """Identifiers of the raised flags, in order."""
+        return [f.id for f in self.flags]
+
+    def to_json(self) -> dict[str, Any]:
+        """Plain, strict-JSON-safe data (``json.dumps(..., allow_nan=False)`` works).
+
+        Keys: every field, with the timing scan as ``shift_scan: {shifts_s, t}`` and the
+        flags as ``{id, text, figure}`` dicts.
+        """
+        out: dict[str, Any] = {}
+        for name in self.__dataclass_fields__:
+            if name in ("shifts_s", "shift_t"):
+                continue
+            out[name] = getattr(self, name)
+        out["shift_scan"] = {"shifts_s": self.shifts_s, "t": self.shift_t}
+        out["flags"] = [f.to_json() for f in self.flags]
+        return _plain(out)
+
+
+def _plain(obj: Any) -> Any:
+    """Recursively: numpy -> Python, NaN/inf -> None, tuples -> lists."""
+    if isinstance(obj, Mapping):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, np.ndarray):
+        return [_plain(v) for v in obj.tolist()]
+    if isinstance(obj, (list, tuple)):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, (bool, np.bool_)):
+        return bool(obj)
+    if isinstance(obj, (int, np.integer)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        v = float(obj)
+        return v if math.isfinite(v) else None
+    return obj
+
+
+# ----------------------------------------------------------------------------- the checks
+
+
+def voxel_checks(
+    analysis: Analysis,
+    settings: ModelSettings,
+    kernel: str | Kernel,
+    y: np.ndarray,
+    *,
+    run: Any = None,
+    ijk: Sequence[int] | None = None,
+    condition: str | None = None,
+) -> VoxelChecks:
+    """Run every check of one kernel's fit at one voxel.
+
+    Parameters
+    ----------
+    analysis : Analysis
+        Conditions and confounds of the run. Designs are cached there, including the 49
+        shifted designs of the timing scan and the FIR design, so the next click is fast.
+    settings : ModelSettings
+        Contrast, noise model, drift, confounds, derivatives and onset shift.
+    kernel : str or Kernel
+        The kernel whose fit is checked.
+    y : ndarray (n_volumes,)
+        The voxel's time series.
+    run : Run, optional
+        For the edge distance and the run's frame-to-frame spikes (computed once per run,
+        see :func:`voxelscope.core.diagnostics.run_summary`); None skips both (None fields).
+    ijk : sequence of 3 int, optional
+        The voxel's index, for the edge distance.
+    condition : str, optional
+        Condition of the FIR estimate, the task frequency and the kernel responses;
+        default: the condition with the largest weight in the contrast.
+
+    Returns
+    -------
+    VoxelChecks
+        A constant or non-finite series gives a result with only the design and run parts
+        filled and one ``no-signal`` flag.
+
+    Raises
+    ------
+    InputError
+        The series length differs from the number of volumes, an unknown condition, or a
+        voxel outside the grid.
+    ModelError
+        The design cannot be fitted (as for the Fits table).
+
+    Examples
+    --------
+    >>> from voxelscope.core.events import Condition
+    >>> a = Analysis([Condition("tap", [20.0, 80.0, 140.0], [15.0] * 3)], 160, 1.25)
+    >>> y = np.random.default_rng(3).standard_normal(160) + 50
+    >>> y[60] += 40
+    >>> c = voxel_checks(a, ModelSettings(kernels=("gamma",)), "gamma", y)
+    >>> 60 in c.outlier_volumes, c.cooks_volume
+    (True, 60)
+    """
+    y = np.asarray(y, dtype=float).reshape(-1)
+    n = analysis.n_volumes
+    if y.size != n:
+        raise InputError(f"the voxel's time series has {y.size} points but the run has {n} volumes")
+    if run is not None and int(run.n_volumes) != n:
+        raise InputError(
+            f"the run has {run.n_volumes} volumes but the model was set up for {n}; "
+            "open the run together with its own events"
+        )
+    k_obj = analysis.kernel(kernel, settings)
+    d, prep = analysis.prepared(kernel, settings)
+    w = analysis.contrast_weights(kernel, settings)
+    cond = _pick_condition(analysis, d, w, condition)
+    tr = analysis.tr
+    base = VoxelChecks(
+        kernel=str(kernel) if isinstance(kernel, str) else k_obj.name,
+        condition=cond,
+        contrast=settings.contrast or analysis.default_contrast(),
+        noise=settings.noise,
+        n_volumes=n,
+        tr=tr,
+        vif=variance_inflation(d.X, d.names),
+        confound_correlation=_confound_correlation(analysis, d),
+        kernel_peak_s=float(k_obj.peak_s()),
+        **_run_part(run, ijk),
+    )
+    if not np.all(np.isfinite(y)) or np.ptp(y) == 0:
+        text = "The voxel's signal is constant or has missing values, so there is nothing to check."
+        flags = (*_edge_flag(base, d), Flag("no-signal", text, "edge"))
+        return replace(base, outlier_volumes=base.rms_spikes or (), flags=flags)
+
+    parts: dict[str, Any] = {}
+    notes: list[str] = []
+    main = fit(prep, y, w, noise=settings.noise)
+    parts.update(t=float(main.t[0]), df=int(main.df))
+    ols = main if settings.noise == "ols" else fit(prep, y, w, noise="ols")
+    r = ols.residuals[:, 0]
+    parts.update(_autocorrelation(r))
+    if settings.noise == "ar1" and main.rho is not None:
+        rw = prais_winsten(main.residuals[:, 0], float(main.rho[0]))
+        parts["ar1_whitened"] = float(ar1_rho(rw)[0])
+    parts.update(_influence_part(prep, y, r, w, settings.noise, base.rms_spikes, parts["t"]))
+    parts["tsnr"] = _tsnr(y, n, tr, settings.highpass_s)
+
+    scan = shift_scan(analysis, settings, kernel, y)
+    parts.update(
+        shifts_s=scan.shifts_s,
+        shift_t=scan.t,
+        t_at_zero_shift=scan.t_at_zero,
+        best_shift_s=scan.best_shift_s,
+        peak_latency_s=scan.peak_latency_s,
+    )
+    try:
+        parts["fir"] = fir_estimate(analysis, settings, y, cond).to_json()
+    except ModelError as exc:
+        notes.append(f"no FIR estimate: {exc}")
+    parts.update(_spectrum_part(y, d, cond, tr, settings.highpass_s))
+    checks = replace(base, warnings=tuple(notes), **parts)
+    return replace(checks, flags=tuple(_flags(checks, d)))
+
+
+def _pick_condition(
+    analysis: Analysis, d: DesignMatrix, w: np.ndarray, condition: str | None
+) -> str:
+    names = analysis.condition_names
+    if condition is not None:
+        if condition not in names:
+            raise InputError(f"unknown condition '{condition}'; use {', '.join(names)}")
+        return condition
+    weight = {c: float(np.sum(np.abs(w[list(d.condition_columns[c])]))) for c in names}
+    best = max(names, key=lambda c: weight[c])
+    return best if weight[best] > 0 else names[0]
+
+
+def _run_part(run: Any, ijk: Sequence[int] | None) -> dict[str, Any]:
+    if run is None:
+        return {}
+    rs = run_summary(run)
+    out: dict[str, Any] = {
+        "frame_rms_change": rs.frame_rms_change,
+        "rms_spikes": tuple(rs.rms_spikes),
+        "rms_threshold": rs.rms_threshold,
+    }
+    if ijk is not None:
+        i, j, k = (int(v) for v in ijk)
+        shape = rs.mask.shape
+        if not all(0 <= a < s for a, s in zip((i, j, k), shape)):
+            raise InputError(
+                f"voxel ({i}, {j}, {k}) is outside the run's grid {shape}; click inside the run"
+            )
+        out["in_mask"] = bool(rs.mask[i, j, k])
+        out["edge_distance_mm"] = float(rs.edge_distance[i, j, k])
+    return out
+
+
+def _autocorrelation(r: np.ndarray) -> dict[str, Any]:
+    q, p = ljung_box(r, LJUNG_BOX_LAGS)
+    return {
+        "acf": acf(r, ACF_LAGS),
+        "ar1": float(ar1_rho(r)[0]),
+        "durbin_watson": durbin_watson(r),
+        "ljung_box_q": q,
+        "ljung_box_p": p,
+    }
+
+
+def _influence_part(
+    prep: PreparedDesign,
+    y: np.ndarray,
+    r: np.ndarray,
+    w: np.ndarray,
+    noise: str,
+    spikes: Sequence[int] | None,
+    t_full: float,
+) -> dict[str, Any]:
+    n = y.size
+    inf = influence(prep, r)
+    thr = float(stats.t.isf(OUTLIER_ALPHA / (2.0 * n), inf.df - 1)) if inf.df > 1 else math.nan
+    big = np.abs(np.nan_to_num(inf.studentized)) > thr
+    stud_out = tuple(int(v) for v in np.flatnonzero(big))
+    cooks = np.where(np.isfinite(inf.cooks), inf.cooks, -np.inf)
+    c_i = int(np.argmax(cooks)) if np.isfinite(cooks).any() else None
+    order = [int(v) for v in np.argsort(-cooks, kind="stable") if cooks[v] > 4.0 / n]
+    infl = tuple(order[:INFLUENTIAL_MAX])
+    t_drop = tuple(_t_without(prep, y, w, noise, infl[: m + 1]) for m in range(len(infl)))
+    return {
+        "outlier_volumes": tuple(sorted(set(stud_out) | set(spikes or ()))),
+        "studentized_outliers": stud_out,
+        "outlier_threshold": thr,
+        "leverage": inf.leverage,
+        "cooks": inf.cooks,
+        "studentized": inf.studentized,
+        "cooks_threshold": 4.0 / n,
+        "cooks_distance_max": math.nan if c_i is None else float(inf.cooks[c_i]),
+        "cooks_volume": c_i,
+        "influential_volumes": infl,
+        "t_dropping": t_drop,
+        "t_without_influential": t_drop[-1] if t_drop else t_full,
+    }
+
+
+def _t_without(
+    prep: PreparedDesign, y: np.ndarray, w: np.ndarray, noise: str, drop: Sequence[int]
+) -> float:
+    """The contrast's t with some volumes left out, through the same glm.fit path.
+
+    Columns that are all zero on the kept rows (a one-volume spike regressor, say) are left
+    out when the contrast does not weight them. Under AR(1) the kept rows are treated as
+    consecutive (an approximation next to the dropped volumes).
+    """
+    keep = np.ones(y.size, dtype=bool)
+    keep[list(drop)] = False
+    X = prep.X[keep]
+    cols = np.flatnonzero(np.any(X != 0, axis=0) | (w != 0))
+    try:
+        reduced = prepare(X[:, cols], [prep.names[c] for c in cols])
+        return float(fit(reduced, y[keep], w[cols], noise=noise).t[0])
+    except ModelError:
+        return math.nan
+
+
+def _tsnr(y: np.ndarray, n: int, tr: float, highpass_s: float | None) -> float:
+    X = np.column_stack([dct_drift(n, tr, highpass_s), np.ones(n)])
+    c = np.zeros(X.shape[1])
+    c[-1] = 1.0
+    try:
+        s2 = float(fit(X, y, c).sigma2[0])
+    except ModelError:
+        return math.nan
+    return float(np.mean(y)) / math.sqrt(s2) if s2 > 0 else math.nan
+
+
+def _confound_correlation(analysis: Analysis, d: DesignMatrix) -> dict[str, dict[str, float]]:
+    conf = analysis.confounds
+    out: dict[str, dict[str, float]] = {}
+    for cond, idx in d.condition_columns.items():
+        x = d.X[:, idx[0]]
+        row: dict[str, float] = {}
+        if conf is not None:
+            for j, name in enumerate(conf.names):
+                row[name] = _pearson(x, conf.values[:, j])
+        out[cond] = row
+    return out
+
+
+def _pearson(a: np.ndarray, b: np.ndarray) -> float:
+    a = np.asarray(a, float) - np.mean(a)
+    b = np.asarray(b, float) - np.mean(b)
+    den = math.sqrt(float(a @ a) * float(b @ b))
+    return float(a @ b) / den if den > 0 else math.nan
+
+
+def _spectrum_part(
+    y: np.ndarray, d: DesignMatrix, cond: str, tr: float, highpass_s: float | None
+) -> dict[str, Any]:
+    freqs, power = signal.periodogram(y - y.mean(), fs=1.0 / tr)
+    x = d.X[:, d.condition_columns[cond][0]]
+    fx, px = signal.periodogram(x - x.mean(), fs=1.0 / tr)
+    task_hz = float(fx[1 + int(np.argmax(px[1:]))]) if np.any(px[1:] > 0) else None
+    hp_hz = None if highpass_s is None else 1.0 / float(highpass_s)
+    drift = None
+    total = float(np.sum(power[1:]))
+    if hp_hz is not None and total > 0:
+        drift = float(np.sum(power[(freqs > 0) & (freqs < hp_hz)]) / total)
+    spectrum = {"freqs_hz": freqs, "power": power, "task_hz": task_hz, "highpass_hz": hp_hz}
+    return {"spectrum": spectrum, "drift_fraction": drift}
+
+
+# ----------------------------------------------------------------------------- flags
+
+
+def _vols(v: Sequence[int], limit: int = 5) -> str:
+    v = list(v)
+    text = ", ".join(str(i) for i in v[:limit])
+    return text + (f" and {len(v) - limit} more" if len(v) > limit else "")
+
+
+def _flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    flags: list[Flag] = []
+    for make in (
+        _edge_flag,
+        _autocorrelation_flag,
+        _outlier_flags,
+        _influence_flag,
+        _timing_flag,
+        _confound_flags,
+        _spectrum_flags,
+    ):
+        flags.extend(make(c, d))
+    return flags
+
+
+def _edge_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    if c.in_mask is False:
+        return [Flag("outside-mask", "The voxel lies outside the brain mask.", "edge")]
+    if c.edge_distance_mm is not None and c.edge_distance_mm <= EDGE_LIMIT_MM:
+        text = (
+            f"The voxel is {c.edge_distance_mm:.1f} mm from the brain edge, where head motion "
+            "can look like activation."
+        )
+        return [Flag("edge", text, "edge")]
+    return []
+
+
+def _autocorrelation_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    if c.noise == "ols" and c.ar1 > AR1_LIMIT and c.ljung_box_p < LJUNG_BOX_ALPHA:
+        text = (
+            f"Residuals are strongly autocorrelated (lag-1 {c.ar1:.2f}), so the OLS t is "
+            "inflated; try AR(1)."
+        )
+        return [Flag("autocorrelation", text, "acf")]
+    if c.noise == "ar1" and c.ar1_whitened is not None and c.ar1_whitened > AR1_LIMIT:
+        text = (
+            f"Residuals stay autocorrelated after AR(1) prewhitening (lag-1 "
+            f"{c.ar1_whitened:.2f}), so the t may still be inflated."
+        )
+        return [Flag("autocorrelation", text, "acf")]
+    return []
+
+
+def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    out = []
+    v = c.studentized_outliers
+    if v:
+        worst = max(v, key=lambda i: abs(c.studentized[i]))
+        size = f"{c.studentized[worst]:.1f}"
+        if len(v) == 1:
+            text = f"Volume {v[0]} is an outlier at this voxel (studentized residual {size})."
+        else:
+            text = (
+                f"Volumes {_vols(v)} are outliers at this voxel (largest studentized residual "
+                f"{size}, at volume {worst})."
+            )
+        out.append(Flag("outliers", text, "influence"))
+    if c.rms_spikes:
+        also = [s for s in c.rms_spikes if s in v]
+        plural = "s" if len(c.rms_spikes) > 1 else ""
+        text = (
+            f"The whole brain changes suddenly at volume{plural} {_vols(c.rms_spikes)} "
+            f"(frame-to-frame change above the median + {RMS_SPIKE_K:g} MAD)"
+        )
+        text += f"; volume {_vols(also)} is an outlier here too." if also else "."
+        out.append(Flag("run-spikes", text, "influence"))
+    return out
+
+
+def _influence_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    if not math.isfinite(c.t):
+        return []
+    for m, tk in enumerate(c.t_dropping, start=1):
+        if not math.isfinite(tk):
+            continue
+        change = abs(c.t - tk)
+        if change >= INFLUENCE_T_CHANGE and change >= INFLUENCE_REL_CHANGE * max(abs(c.t), abs(tk)):
+            vols = c.influential_volumes[:m]
+            who = f"One volume ({vols[0]}) alone" if m == 1 else f"{m} volumes ({_vols(vols)})"
+            verb = (
+                ("raises" if c.t > tk else "lowers")
+                if m == 1
+                else ("raise" if c.t > tk else "lower")
+            )
+            return [Flag("influence", f"{who} {verb} t from {tk:.1f} to {c.t:.1f}.", "influence")]
+    return []
+
+
+def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    if c.best_shift_s is None or c.peak_latency_s is None or not math.isfinite(c.t_at_zero_shift):
+        return []
+    t_best = float(np.nanmax(c.shift_t))
+    if (
+        abs(c.best_shift_s) < SHIFT_LIMIT_S
+        or t_best < SHIFT_T_MIN
+        or t_best - c.t_at_zero_shift < SHIFT_T_GAIN
+        or t_best - c.t_at_zero_shift < SHIFT_REL_GAIN * abs(c.t_at_zero_shift)
+    ):
+        return []
+    when = "later" if c.best_shift_s > 0 else "earlier"
+    text = (
+        f"The response peaks at {c.peak_latency_s:.1f} s, {when} than the kernel's "
+        f"{c.kernel_peak_s:.1f} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
+        f"onsets moved by {c.best_shift_s:+.2f} s)"
+    )
+    if c.best_shift_s in (float(c.shifts_s[0]), float(c.shifts_s[-1])):
+        text += "; the best shift is at the end of the scanned range"
+    return [Flag("timing", text + ".", "shift_scan")]
+
+
+def _confound_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    out = []
+    for cond, row in c.confound_correlation.items():
+        hits = [(k, r) for k, r in row.items() if math.isfinite(r) and abs(r) >= CONFOUND_R_LIMIT]
+        if hits:
+            name, r = max(hits, key=lambda h: abs(h[1]))
+            more = ""
+            if len(hits) > 1:
+                more = f" (and {len(hits) - 1} other column{'s' * (len(hits) > 2)})"
+            text = f"The {cond} regressor correlates {r:.2f} with confound column {name}{more}."
+            out.append(Flag("confound", text, "confounds"))
+    for cond, idx in d.condition_columns.items():
+        v = c.vif.get(d.names[idx[0]], math.nan)
+        if math.isfinite(v) and v > VIF_LIMIT:
+            text = (
+                f"The {cond} regressor overlaps the rest of the model (VIF {v:.1f}), so its "
+                "beta is uncertain."
+            )
+            out.append(Flag("collinear", text, "confounds"))
+    return out
+
+
+def _spectrum_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    out = []
+    if c.drift_fraction is not None and c.drift_fraction >= DRIFT_FRACTION_LIMIT:
+        text = (
+            f"{100 * c.drift_fraction:.0f}% of the voxel's variance is slow drift below the "
+            "high-pass cutoff."
+        )
+        out.append(Flag("drift", text, "spectrum"))
+    task, hp = c.spectrum.get("task_hz"), c.spectrum.get("highpass_hz")
+    if task and hp and task < SLOW_TASK_RATIO * hp:
+        text = (
+            f"The task repeats about every {1 / task:.0f} s, close to the high-pass cutoff of "
+            f"{1 / hp:.0f} s, which removes part of the response."
+        )
+        out.append(Flag("slow-task", text, "spectrum"))
+    return out

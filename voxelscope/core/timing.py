@@ -1,0 +1,274 @@
+"""Timing checks at one voxel: the onset-shift scan and the FIR estimate of the response.
+
+Both go through the same :class:`~voxelscope.core.model.Analysis` design cache and the same
+:func:`voxelscope.core.glm.fit` as the Fits table, so a t shown here is the t the Fits table
+would show with the onsets moved.
+
+* :func:`shift_scan` - the contrast's t with every onset moved by each of :data:`SHIFTS_S`
+  (``-4 .. +8 s`` in steps of 0.25 s, relative to the settings' own ``onset_shift_s``).
+  The best shift maximises the signed t (the contrast's direction); the response's peak
+  latency is the kernel's own time to peak plus that shift.
+* :func:`fir_estimate` - a finite impulse response model with one bin per TR over
+  :data:`FIR_SPAN_S` seconds, with the settings' confounds, drift and noise model; standard
+  errors ``sqrt(sigma2 * diag(cov_unscaled))``. Each bin's time is the mean time after onset
+  of the samples that fall in it (the bin centre when no sample does), so onsets locked to
+  the volume grid are not drawn half a TR late. Each kernel's fitted response to one event
+  of the condition (its median duration) comes with it, for drawing over the estimate.
+
+Examples
+--------
+>>> import numpy as np
+>>> from voxelscope.core.events import Condition
+>>> from voxelscope.core.model import Analysis, ModelSettings
+>>> on = np.arange(6.0, 290.0, 14.0)
+>>> a = Analysis([Condition("tone", on, np.zeros(on.size))], 240, 1.25)
+>>> s = ModelSettings(kernels=("double-gamma",))
+>>> late = s.with_(onset_shift_s=2.0)
+>>> y = 100 + 20 * a.design("double-gamma", late).column("tone")
+>>> y = y + np.random.default_rng(0).standard_normal(240)
+>>> scan = shift_scan(a, s, "double-gamma", y)
+>>> scan.best_shift_s, scan.peak_latency_s
+(2.0, 7.0)
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .design import stimulus_regressor
+from .errors import ModelError
+from .events import Condition
+from .glm import fit
+from .hrf import Kernel, get_kernel
+from .model import Analysis, ModelSettings
+
+__all__ = ["FIR_SPAN_S", "SHIFTS_S", "FirEstimate", "ShiftScan", "fir_estimate", "shift_scan"]
+
+#: Onset shifts of the timing scan, seconds: -4 .. +8 in steps of 0.25 (exact binary values,
+#: so the cached designs are found again on the next click).
+SHIFTS_S: tuple[float, ...] = tuple(float(k) * 0.25 for k in range(-16, 33))
+#: Span of the FIR estimate in seconds (bins of one TR).
+FIR_SPAN_S = 24.0
+_FINE_DT = 0.25  # s, grid of the drawn kernel responses
+
+
+@dataclass(frozen=True, eq=False)
+class ShiftScan:
+    """The contrast's t against an onset shift.
+
+    Attributes
+    ----------
+    shifts_s, t : ndarray
+        Shifts (s) and the t at each (NaN where the shifted design cannot be fitted).
+    t_at_zero : float
+        t with the onsets as the settings give them.
+    best_shift_s : float or None
+        Shift of the largest signed t.
+    kernel_peak_s : float
+        The kernel's own time to peak.
+    peak_latency_s : float or None
+        ``kernel_peak_s + best_shift_s``.
+    """
+
+    shifts_s: np.ndarray
+    t: np.ndarray
+    t_at_zero: float
+    best_shift_s: float | None
+    kernel_peak_s: float
+    peak_latency_s: float | None
+
+    @property
+    def t_best(self) -> float:
+        """The largest t of the scan (NaN when none is finite)."""
+        return float(np.nanmax(self.t)) if np.isfinite(self.t).any() else math.nan
+
+
+def shift_scan(
+    analysis: Analysis,
+    settings: ModelSettings,
+    kernel: str | Kernel,
+    y: np.ndarray,
+    shifts: Sequence[float] = SHIFTS_S,
+) -> ShiftScan:
+    """The contrast's t at one voxel with every onset moved by each shift.
+
+    Parameters
+    ----------
+    analysis, settings, kernel
+        As for :meth:`Analysis.fit_voxel`; the settings' noise model is used.
+    y : ndarray (n_volumes,)
+    shifts : sequence of float
+        Seconds added to the settings' ``onset_shift_s``; must include 0 for ``t_at_zero``.
+
+    Returns
+    -------
+    ShiftScan
+    """
+    y = np.asarray(y, dtype=float).reshape(-1)
+    sh = np.asarray(shifts, dtype=float)
+    t = np.array([_shift_t(analysis, settings, kernel, y, float(s)) for s in sh])
+    zero = np.flatnonzero(sh == 0.0)
+    t0 = float(t[zero[0]]) if zero.size else math.nan
+    best = float(sh[int(np.nanargmax(t))]) if np.isfinite(t).any() else None
+    k_peak = float(analysis.kernel(kernel, settings).peak_s())
+    return ShiftScan(sh, t, t0, best, k_peak, None if best is None else k_peak + best)
+
+
+def _shift_t(
+    analysis: Analysis, settings: ModelSettings, kernel: str | Kernel, y: np.ndarray, s: float
+) -> float:
+    moved = settings.with_(onset_shift_s=float(settings.onset_shift_s) + s)
+    try:
+        _d, prep = analysis.prepared(kernel, moved)
+        w = analysis.contrast_weights(kernel, moved)
+    except ModelError:
+        return math.nan  # e.g. every event of a condition moved out of the run
+    return float(fit(prep, y, w, noise=settings.noise).t[0])
+
+
+@dataclass(frozen=True, eq=False)
+class FirEstimate:
+    """The FIR estimate of one condition's response, with each kernel's fitted response.
+
+    Attributes
+    ----------
+    condition : str
+    times : ndarray (n_bins,)
+        Mean time after onset of the samples in each bin (s).
+    estimate, se : ndarray (n_bins,)
+        FIR betas (data units) and their standard errors.
+    bin_s : float
+    peak_s : float or None
+        Time of the largest estimate (of the smallest when the response is negative overall).
+    kernels : dict
+        Kernel name -> its fitted response at ``times``.
+    kernel_times : ndarray
+        A fine grid (0.25 s) for drawing the kernels' responses.
+    kernels_fine : dict
+        Kernel name -> its fitted response at ``kernel_times``.
+    """
+
+    condition: str
+    times: np.ndarray
+    estimate: np.ndarray
+    se: np.ndarray
+    bin_s: float
+    peak_s: float | None
+    kernels: dict[str, np.ndarray] = field(default_factory=dict)
+    kernel_times: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    kernels_fine: dict[str, np.ndarray] = field(default_factory=dict)
+
+    def to_json(self) -> dict[str, Any]:
+        """Plain lists and floats (NaN left in; the caller cleans them)."""
+        return {
+            "condition": self.condition,
+            "times": self.times.tolist(),
+            "estimate": self.estimate.tolist(),
+            "se": self.se.tolist(),
+            "bin_s": self.bin_s,
+            "peak_s": self.peak_s,
+            "kernels": {k: v.tolist() for k, v in self.kernels.items()},
+            "kernel_times": self.kernel_times.tolist(),
+            "kernels_fine": {k: v.tolist() for k, v in self.kernels_fine.items()},
+        }
+
+
+def fir_estimate(
+    analysis: Analysis,
+    settings: ModelSettings,
+    y: np.ndarray,
+    condition: str,
+    span_s: float = FIR_SPAN_S,
+) -> FirEstimate:
+    """FIR estimate (one bin per TR) of a condition's response at one voxel.
+
+    Every condition gets its FIR bins (the model stays complete); the settings' confounds,
+    drift and noise model are kept, derivatives are not used. Each kernel in
+    ``settings.kernels`` (except FIR) adds its fitted response for drawing.
+
+    Raises
+    ------
+    ModelError
+        The FIR design cannot be fitted (too few volumes for the bins).
+    """
+    y = np.asarray(y, dtype=float).reshape(-1)
+    tr = analysis.tr
+    n_bins = max(1, math.ceil(span_s / tr - 1e-9))
+    fk = get_kernel("fir", n_bins=n_bins, bin_s=tr)
+    d, prep = analysis.prepared(fk, settings.with_(derivatives=0))
+    cols = list(d.condition_columns[condition])
+    w = np.zeros(d.n_columns)
+    w[cols] = 1.0 / len(cols)
+    res = fit(prep, y, w, noise=settings.noise)
+    est = res.betas[cols, 0].copy()
+    cov = res.cov_unscaled[int(res.group[0])]
+    se = np.sqrt(float(res.sigma2[0]) * np.diag(cov)[cols])
+    times = _bin_times(analysis, settings, condition, n_bins, d.frame_times)
+    fine = np.arange(0.0, n_bins * tr + 1e-9, _FINE_DT)
+    at_bins: dict[str, np.ndarray] = {}
+    at_fine: dict[str, np.ndarray] = {}
+    for name in settings.kernels:
+        if isinstance(name, str) and name.lower() == "fir":
+            continue
+        try:
+            both = _kernel_response(analysis, settings, name, y, condition, np.r_[times, fine])
+        except (ModelError, ValueError):
+            # a kernel that cannot be fitted under these settings is not drawn (e.g. boxcar
+            # with derivatives, which the kernel module cannot differentiate)
+            continue
+        at_bins[str(name)], at_fine[str(name)] = both[: times.size], both[times.size :]
+    sign = 1.0 if float(np.sum(est)) >= 0 else -1.0
+    peak = float(times[int(np.argmax(sign * est))]) if est.size else None
+    return FirEstimate(condition, times, est, se, float(tr), peak, at_bins, fine, at_fine)
+
+
+def _bin_times(
+    analysis: Analysis,
+    settings: ModelSettings,
+    condition: str,
+    n_bins: int,
+    frame_times: np.ndarray,
+) -> np.ndarray:
+    tr = analysis.tr
+    c = next(c for c in analysis.conditions if c.name == condition)
+    lag = frame_times[:, None] - (c.onsets + float(settings.onset_shift_s))[None, :]
+    b = np.floor(lag / tr + 1e-9).astype(int)
+    inside = lag >= -1e-9
+    out = (np.arange(n_bins) + 0.5) * tr
+    for k in range(n_bins):
+        sel = inside & (b == k)
+        if sel.any():
+            out[k] = float(lag[sel].mean())
+    return out
+
+
+def _kernel_response(
+    analysis: Analysis,
+    settings: ModelSettings,
+    name: str | Kernel,
+    y: np.ndarray,
+    condition: str,
+    times: np.ndarray,
+) -> np.ndarray:
+    """A kernel's fitted response (all its basis columns) to one event at time 0."""
+    d, prep = analysis.prepared(name, settings)
+    w = analysis.contrast_weights(name, settings)
+    res = fit(prep, y, w, noise=settings.noise)
+    k = d.kernel
+    c = next(c for c in analysis.conditions if c.name == condition)
+    dur = float(np.median(c.durations)) if c.n_events else 0.0
+    if k.name == "boxcar" and dur == 0:
+        dur = analysis.tr  # as the design does for brief events under boxcar
+    one = Condition(condition, [0.0], [dur])
+    dt = analysis.tr / 16.0
+    total = np.zeros(times.size)
+    for suffix, h in k.basis(dt, settings.derivatives):
+        col = d.names.index(condition + suffix)
+        reg = stimulus_regressor(one, h, times, dt, use_durations=k.uses_durations)
+        total += res.betas[col, 0] * reg
+    return total
