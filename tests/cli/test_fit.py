@@ -254,3 +254,55 @@ def test_fit_does_not_import_qt(tmp_path):
     )
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
+
+
+CHECK_KEYS = {
+    "durbin_watson",
+    "ar1",
+    "ljung_box_p",
+    "outlier_volumes",
+    "cooks_distance_max",
+    "cooks_volume",
+    "t_without_influential",
+    "vif",
+    "confound_correlation",
+    "tsnr",
+    "edge_distance_mm",
+    "best_shift_s",
+    "peak_latency_s",
+    "fir",
+    "flags",
+}
+
+
+def test_checks_in_json(tmp_path, capsys):
+    """--checks adds the documented keys; Durbin-Watson equals statsmodels' on the residuals
+    (reference library: statsmodels.stats.stattools.durbin_watson)."""
+    from statsmodels.stats.stattools import durbin_watson
+
+    rng = np.random.default_rng(12)
+    path, events, _ = _write_run(tmp_path, rng)
+    doc = _run_json(
+        capsys,
+        [
+            "fit",
+            str(path),
+            "--events",
+            str(events),
+            "--voxel",
+            "2",
+            "2",
+            "2",
+            "--checks",
+            "--kernels",
+            "double-gamma",
+        ],
+    )
+    f = doc["fits"][0]
+    assert CHECK_KEYS <= set(f["checks"])
+    assert set(f["checks"]["fir"]) >= {"times", "estimate", "se"}
+    assert set(f["checks"]["vif"]) == set(f["columns"])
+    np.testing.assert_allclose(
+        f["checks"]["durbin_watson"], durbin_watson(f["residuals"]), rtol=1e-10
+    )
+    assert isinstance(f["checks"]["flags"], list)
