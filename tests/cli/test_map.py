@@ -1,0 +1,182 @@
+"""Tests of ``voxelscope map`` (voxelscope/cli/map.py) through ``voxelscope.cli.main``.
+
+The written map is read back with nibabel (reference library): float32, the run's affine
+(``nibabel`` reload, compared with ``img.affine``) and spatial header; its values equal a
+statsmodels OLS fit at a sampled voxel. The input run is hashed before and after.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import subprocess
+import sys
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+from voxelscope.cli import main
+
+TR = 1.5
+T = 90
+AFFINE = np.array(
+    [[-3.0, 0.1, 0.0, 60.0], [0.0, 3.0, 0.0, -80.0], [0.0, 0.0, 3.5, -30.0], [0, 0, 0, 1]]
+)
+
+
+def _write_run(tmp_path, seed=0, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
+    rng = np.random.default_rng(seed)
+    data = 10000 + rng.standard_normal((*shape, T)) * 20
+    data[0, 0, 0, :] = 10000.0  # a constant voxel
+    img = nib.Nifti1Image(data.astype(np.float32), AFFINE)
+    img.header.set_xyzt_units("mm", "sec")
+    img.header["pixdim"][4] = TR
+    path = tmp_path / name
+    nib.save(img, path)
+    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
+    events.write_text(
+        "onset\tduration\ttrial_type\n"
+        "6\t12\ttone\n30\t12\ttap\n54\t12\ttone\n78\t12\ttap\n102\t12\ttone\n"
+    )
+    return path, events, data.astype(np.float32)
+
+
+def _sha(path):
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_map_writes_float32_with_run_affine_and_leaves_input(tmp_path, capsys):
+    """float32, affine and zooms survive the round trip (nibabel reload); input unchanged;
+    the constant voxel is 0; t equals statsmodels OLS at a voxel (reference library)."""
+    sm = pytest.importorskip("statsmodels.api")
+    path, events, data = _write_run(tmp_path)
+    before = _sha(path)
+    out = tmp_path / "tone_t.nii.gz"
+    mask = np.ones(data.shape[:3], dtype=np.float32)
+    mask_path = tmp_path / "mask.nii"
+    nib.save(nib.Nifti1Image(mask, AFFINE), mask_path)
+    argv = [
+        "map",
+        str(path),
+        "--events",
+        str(events),
+        "--kernel",
+        "gamma",
+        "--contrast",
+        "tone - tap",
+        "--mask",
+        str(mask_path),
+        "-o",
+        str(out),
+        "--no-cache",
+    ]
+    assert main(argv) == 0, capsys.readouterr().err
+    assert "wrote" in capsys.readouterr().out
+    assert _sha(path) == before
+    img = nib.load(out)
+    assert img.get_data_dtype() == np.float32 and img.shape == data.shape[:3]
+    np.testing.assert_allclose(img.affine, AFFINE, atol=1e-6)
+    np.testing.assert_allclose(img.header.get_zooms()[:3], nib.load(path).header.get_zooms()[:3])
+    t = np.asarray(img.dataobj)
+    assert t[0, 0, 0] == 0.0 and np.all(np.isfinite(t))
+    # statsmodels on the same design (built by the core; checked against statsmodels there).
+    from voxelscope.core.events import read_events
+    from voxelscope.core.model import Analysis, ModelSettings
+
+    a = Analysis(read_events(events), T, TR)
+    s = ModelSettings(contrast="tone - tap")
+    X = a.design("gamma", s).X
+    res = sm.OLS(data[2, 3, 1].astype(np.float64), X).fit()
+    t_ref = float(res.t_test(a.contrast_weights("gamma", s)).tvalue.squeeze())
+    assert t[2, 3, 1] == pytest.approx(t_ref, rel=1e-5)
+    # z map: same sign, and |z| < |t| where |t| > 1 for a t with finite df (scipy.stats)
+    out_z = tmp_path / "z.nii"
+    assert main([*argv[:-3], "--stat", "z", "-o", str(out_z), "--no-cache"]) == 0
+    z = np.asarray(nib.load(out_z).dataobj)
+    big = np.abs(t) > 1
+    assert np.all(np.sign(z[big]) == np.sign(t[big])) and np.all(np.abs(z[big]) < np.abs(t[big]))
+
+
+def test_map_refuses_to_overwrite_input_and_existing_output(tmp_path, capsys):
+    path, events, _ = _write_run(tmp_path)
+    before = _sha(path)
+    code = main(["map", str(path), "--events", str(events), "-o", str(path), "--force"])
+    err = capsys.readouterr().err
+    assert code == 2 and "is an input" in err and err.count("\n") == 1
+    assert _sha(path) == before
+    out = tmp_path / "m.nii"
+    assert main(["map", str(path), "--events", str(events), "-o", str(out)]) == 0
+    capsys.readouterr()
+    code = main(["map", str(path), "--events", str(events), "-o", str(out)])
+    assert code == 2 and "--force" in capsys.readouterr().err
+    assert main(["map", str(path), "--events", str(events), "-o", str(out), "--force"]) == 0
+    leftovers = [p.name for p in tmp_path.iterdir() if p.name.startswith(".")]
+    assert leftovers == []
+    code = main(["map", str(path), "--events", str(events), "-o", str(tmp_path / "m.txt")])
+    assert code == 2 and ".nii" in capsys.readouterr().err
+
+
+def test_map_clusters_and_compare(tmp_path, capsys):
+    path, events, _ = _write_run(tmp_path, seed=1)
+    out = tmp_path / "t.nii"
+    table = tmp_path / "clusters.tsv"
+    assert (
+        main(
+            [
+                "map",
+                str(path),
+                "--events",
+                str(events),
+                "-o",
+                str(out),
+                "--clusters",
+                str(table),
+                "--threshold",
+                "1.0",
+                "--connectivity",
+                "6",
+            ]
+        )
+        == 0
+    )
+    lines = table.read_text().splitlines()
+    assert lines[0].startswith("cluster\tsign\tvoxels") and len(lines) > 1
+    capsys.readouterr()
+    out2 = tmp_path / "t2.nii"
+    assert (
+        main(
+            [
+                "map",
+                str(path),
+                "--events",
+                str(events),
+                "-o",
+                str(out2),
+                "--compare",
+                str(out),
+                "--explain",
+            ]
+        )
+        == 0
+    )
+    text = capsys.readouterr().out
+    assert "agreement with" in text and "r 1.000" in text and "The maps agree" in text
+    code = main(["map", str(path), "--events", str(events), "-o", str(out2), "--clusters", "c.tsv"])
+    assert code == 2 and "--threshold" in capsys.readouterr().err
+
+
+def test_map_path_never_imports_qt(tmp_path):
+    """The command-line map path loads no Qt module (project rule)."""
+    path, events, _ = _write_run(tmp_path)
+    out = tmp_path / "q.nii"
+    code = (
+        "import sys, voxelscope.cli; "
+        f"rc = voxelscope.cli.main(['map', {str(path)!r}, '--events', {str(events)!r}, "
+        f"'-o', {str(out)!r}]); "
+        "assert rc == 0, rc; "
+        "bad = [m for m in sys.modules if m.startswith(('PySide6', 'pyqtgraph'))]; "
+        "assert not bad, bad"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    assert out.exists()

@@ -1,0 +1,247 @@
+"""``voxelscope map``: fit one kernel at every voxel and write a statistic map as NIfTI.
+
+The map is float32 on the run's grid, with the run's affine and spatial header, written
+atomically (temporary file in the same folder, then a rename); the run and every other
+input are only read. Optionally the command also writes a cluster table and compares the
+map with an outside map.
+
+Examples
+--------
+``voxelscope map run_bold.nii.gz --kernel double-gamma --contrast "tap - tone" -o tap.nii.gz``
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+from pathlib import Path
+
+import numpy as np
+
+from ..core.errors import InputError
+from ..core.hrf import get_kernel
+from .common import Loaded, add_model_args, analysis_from_args, print_warnings
+
+__all__ = ["register", "run_map"]
+
+_STATS = ("t", "beta", "variance", "z", "p")
+
+
+def _kernel(text: str) -> str:
+    try:
+        return get_kernel(str(text).strip().lower()).name
+    except Exception as exc:  # InputError with the list of kernels
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _rho_step(text: str) -> float | None:
+    if str(text).strip().lower() == "exact":
+        return None
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"--rho-step takes a step such as 0.01 or 'exact', not '{text}'"
+        ) from None
+    if not (0 < v <= 0.5):
+        raise argparse.ArgumentTypeError("--rho-step must be above 0 and at most 0.5, or 'exact'")
+    return v
+
+
+def _threshold(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--threshold takes a number, not '{text}'") from None
+    if not (v >= 0 and math.isfinite(v)):
+        raise argparse.ArgumentTypeError("--threshold must be a number >= 0")
+    return v
+
+
+def register(sub: argparse._SubParsersAction) -> None:
+    """Add the ``map`` subcommand."""
+    p = sub.add_parser(
+        "map",
+        help="fit one kernel at every voxel and write a statistic map",
+        description=(
+            "Fit the GLM at every voxel of the mask under one kernel and write one statistic "
+            "of the contrast as a float32 NIfTI map on the run's grid (written atomically; "
+            "inputs are never modified). Research software: not for clinical diagnosis."
+        ),
+    )
+    add_model_args(p, kernels=False)
+    p.add_argument(
+        "--kernel",
+        type=_kernel,
+        default="double-gamma",
+        metavar="K",
+        help="kernel: boxcar, gaussian, gamma, double-gamma or fir (default double-gamma)",
+    )
+    p.add_argument("--stat", choices=_STATS, default="t", help="statistic to write (default t)")
+    p.add_argument(
+        "--mask",
+        default="auto",
+        metavar="FILE|auto",
+        help="voxels to fit: a NIfTI mask (non-zero voxels, resampled to the run) or 'auto' "
+        "for the run's own brain mask (default)",
+    )
+    p.add_argument(
+        "--rho-step",
+        type=_rho_step,
+        default=0.01,
+        metavar="STEP|exact",
+        help="AR(1) only: voxels whose rho round to the same step share one prewhitening "
+        "(default 0.01); 'exact' prewhitens every voxel with its own rho (slow)",
+    )
+    p.add_argument("-o", "--output", required=True, metavar="OUT.nii[.gz]", help="map to write")
+    p.add_argument(
+        "--force", action="store_true", help="replace OUT (or the cluster table) if it exists"
+    )
+    g = p.add_argument_group("clusters")
+    g.add_argument(
+        "--clusters", metavar="FILE.tsv", help="also write a table of clusters of the map"
+    )
+    g.add_argument(
+        "--threshold",
+        type=_threshold,
+        metavar="T",
+        help="cluster threshold on |stat| (needed with --clusters)",
+    )
+    g.add_argument(
+        "--connectivity",
+        type=int,
+        choices=(6, 18, 26),
+        default=26,
+        help="neighbourhood (default 26)",
+    )
+    g.add_argument(
+        "--min-voxels", type=int, default=1, metavar="N", help="drop smaller clusters (default 1)"
+    )
+    g.add_argument(
+        "--cluster-sign",
+        choices=("signed", "abs", "positive", "negative"),
+        default="signed",
+        help="positive and negative clusters apart (signed, default), together (abs), or one side",
+    )
+    g = p.add_argument_group("agreement with an outside map")
+    g.add_argument(
+        "--compare", metavar="THEIRS.nii[.gz]", help="print how well THEIRS agrees with the map"
+    )
+    g.add_argument(
+        "--tolerance",
+        type=_threshold,
+        default=1.0,
+        metavar="D",
+        help="a voxel disagrees when the maps differ by more than D (default 1)",
+    )
+    g.add_argument(
+        "--explain",
+        action="store_true",
+        help="with --compare: test kernels, onset shifts of one TR and the noise model as causes",
+    )
+    p.set_defaults(handler=run_map)
+
+
+def _load_mask(args: argparse.Namespace, run, warnings: list[str]) -> np.ndarray | None:
+    text = str(args.mask).strip()
+    if text.lower() == "auto":
+        return None
+    from ..core.images import load_on_grid
+
+    m = load_on_grid(Path(text), run, order=0, warnings=warnings)
+    mask = np.isfinite(m) & (m != 0)
+    if not mask.any():
+        raise InputError(
+            f"{text}: the mask has no non-zero voxels on the run's grid; check the file"
+        )
+    return mask
+
+
+def run_map(args: argparse.Namespace) -> int:
+    """Handler of ``voxelscope map``."""
+    from ..core.atomic import check_outputs, write_text
+    from ..core.niftiout import check_output_path, write_map
+
+    if args.clusters and args.threshold is None:
+        raise InputError("--clusters needs --threshold T (clusters are voxels with |stat| > T)")
+    if args.explain and not args.compare:
+        raise InputError("--explain needs --compare THEIRS.nii (the map to explain)")
+    if args.min_voxels < 1:
+        raise InputError("--min-voxels must be at least 1")
+    inputs = [args.run, args.events, args.confounds, args.compare]
+    if str(args.mask).strip().lower() != "auto":
+        inputs.append(args.mask)
+    out = check_output_path(args.output, inputs, force=args.force)
+    if args.clusters:
+        clusters_path = Path(args.clusters)
+        if clusters_path.resolve() == out.resolve():
+            raise InputError(f"{clusters_path}: the cluster table and the map need different names")
+        check_outputs([clusters_path], force=args.force)
+
+    from ..core.cache import terminal_progress
+    from ..core.maps import compute_map
+
+    loaded: Loaded = analysis_from_args(args)
+    run, analysis = loaded.run, loaded.analysis
+    settings = loaded.settings.with_(kernels=(args.kernel,))
+    warnings = list(loaded.warnings)
+    mask = _load_mask(args, run, warnings)
+    stats = (args.stat,) if args.stat == "t" else ("t", args.stat)
+    result = compute_map(
+        run,
+        analysis,
+        settings,
+        args.kernel,
+        mask=mask,
+        rho_step=args.rho_step,
+        progress=terminal_progress("fitting map"),
+        stats=stats,
+    )
+    data = result.stat(args.stat)
+    desc = f"voxelscope {args.stat} {args.kernel} {result.contrast} df={result.df}"
+    write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc)
+    print_warnings(warnings)
+    print(f"wrote {out}: {args.stat} map, {result.describe()}")
+
+    if args.clusters:
+        from ..core.clusters import find_clusters
+
+        table = find_clusters(
+            data,
+            args.threshold,
+            affine=run.affine,
+            mask=result.mask,
+            mode=args.cluster_sign,
+            connectivity=args.connectivity,
+            min_voxels=args.min_voxels,
+        )
+        write_text(args.clusters, table.to_tsv(), force=args.force)
+        print(
+            f"wrote {args.clusters}: {len(table)} clusters with |{args.stat}| > {args.threshold:g} "
+            f"({args.connectivity}-connected, at least {args.min_voxels} voxels)"
+        )
+
+    if args.compare:
+        from ..core.agreement import compare_maps, explain, load_their_map
+
+        notes: list[str] = []
+        theirs = load_their_map(Path(args.compare), run, warnings=notes)
+        print_warnings(notes)
+        agr = compare_maps(result, theirs, tolerance=args.tolerance, stat=args.stat)
+        print(f"agreement with {args.compare}: {agr.describe()}")
+        if args.explain:
+            ex = explain(
+                run,
+                analysis,
+                settings,
+                theirs,
+                kernel=args.kernel,
+                mask=mask,
+                stat=args.stat,
+                ours=result,
+                progress=terminal_progress("testing alternatives"),
+            )
+            for alt in ex.alternatives:
+                print(f"  r {alt.r:6.3f}  slope {alt.slope:7.3g}  {alt.label}")
+            print(ex.statement)
+    return 0
