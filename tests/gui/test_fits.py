@@ -1,0 +1,93 @@
+"""Fits table: the same numbers as the core's Analysis.fit_voxel, and an outside check."""
+
+import numpy as np
+import pytest
+import statsmodels.api as sm
+from PySide6.QtGui import QGuiApplication
+
+from voxelscope.core.companions import find_companions
+from voxelscope.core.confounds import read_confounds
+from voxelscope.core.events import read_events
+from voxelscope.core.model import Analysis
+from voxelscope.core.run import open_run
+from voxelscope.gui.fits import format_value
+
+COLUMNS = {"beta": "beta", "variance": "variance", "t": "t", "df": "df", "p": "p", "R²": "r2"}
+
+
+def _core(spec, settings, voxel):
+    """Fit the voxel with the core directly, from the files (not from the window's objects)."""
+    run = open_run(spec["run"])
+    comp = find_companions(spec["run"])
+    analysis = Analysis(
+        read_events(comp.events),
+        run.n_volumes,
+        run.tr,
+        read_confounds(comp.confounds),
+        run.reference_time_s,
+    )
+    y = run.timeseries(voxel)
+    return analysis, y, analysis.fit_voxel(y, settings)
+
+
+def _table(window):
+    m = window.fits.model
+    return {m.raw(r, "kernel"): {c: m.raw(r, c) for c in m.columns()} for r in range(m.rowCount())}
+
+
+@pytest.mark.parametrize("noise", ["ols", "ar1"])
+def test_table_equals_core_fit(window, ras_run, noise):
+    assert window.open_run(ras_run["run"], background=False)
+    st = window.state
+    st.set_voxel(ras_run["hot"])
+    # 6 FIR bins: 12 would span the whole 40 s period of this synthetic design (collinear)
+    assert st.update_settings(noise=noise, fir_bins=6)
+    assert st.update_settings(kernels=("boxcar", "gamma", "double-gamma", "fir"))
+    table = _table(window)
+    _a, _y, fits = _core(ras_run, st.settings, ras_run["hot"])
+    assert list(table) == [f.kernel for f in fits.fits]
+    for f in fits.fits:
+        row = table[f.kernel]
+        for col, attr in COLUMNS.items():
+            assert row[col] == pytest.approx(getattr(f, attr), rel=1e-12, abs=1e-300)
+        if noise == "ar1":
+            assert row["rho"] == pytest.approx(f.rho, rel=1e-12)
+        else:
+            assert "rho" not in row
+    assert table["fir"]["F"] == pytest.approx(fits.by_kernel("fir").f, rel=1e-12)
+
+
+def test_boxcar_row_matches_statsmodels(window, ras_run):
+    """OLS t, df and R² of the boxcar row against statsmodels OLS + t_test (outside reference)."""
+    assert window.open_run(ras_run["run"], background=False)
+    st = window.state
+    st.set_voxel(ras_run["hot"])
+    analysis, y, _ = _core(ras_run, st.settings, ras_run["hot"])
+    X = analysis.design("boxcar", st.settings).X
+    w = analysis.contrast_weights("boxcar", st.settings)
+    ref = sm.OLS(y, X).fit()
+    tt = ref.t_test(w[None, :])
+    row = _table(window)["boxcar"]
+    assert row["t"] == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
+    assert row["beta"] == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-8)
+    assert row["df"] == int(ref.df_resid)
+    assert row["R²"] == pytest.approx(ref.rsquared, rel=1e-8)
+
+
+def test_copy_as_tsv(window, ras_run, qtbot):
+    assert window.open_run(ras_run["run"], background=False)
+    text = window.fits.copy()
+    assert QGuiApplication.clipboard().text() == text
+    lines = text.strip().split("\n")
+    assert lines[0].split("\t")[:7] == ["kernel", "beta", "variance", "t", "df", "p", "R²"]
+    kernels = [line.split("\t")[0] for line in lines[1:]]
+    assert kernels == list(window.state.settings.kernels)
+    t_col = [float(line.split("\t")[3]) for line in lines[1:]]
+    assert t_col == [f.t for f in window.state.fits.fits]
+
+
+def test_number_formats():
+    assert format_value("p", 0.5) == "0.5"
+    assert format_value("p", 2e-7) == "2.00e-07"
+    assert format_value("df", 210) == "210"
+    assert format_value("t", float("nan")) == "–"

@@ -1,0 +1,91 @@
+"""Window: empty start, opening (foreground, background, cancel), errors, recent, drop."""
+
+from pathlib import Path
+
+import numpy as np
+from PySide6.QtGui import QImage
+
+import voxelscope
+from voxelscope.gui.app import launch
+from voxelscope.gui.workers import OpenRunJob
+
+
+def test_empty_window_says_how_to_open(window):
+    assert window.stack.currentWidget() is window.welcome
+    assert "Open run" in window.welcome.text()
+
+
+def test_missing_file_is_one_line_in_status_not_a_crash(window, tmp_path):
+    assert not window.open_run(tmp_path / "nope_bold.nii.gz", background=False)
+    msg = window.statusBar().currentMessage()
+    assert "nope_bold.nii.gz" in msg and "\n" not in msg
+    assert window.state.run is None
+
+
+def test_background_open_of_compressed_run(window, qtbot, gz_run):
+    assert window.open_run(gz_run["run"])
+    seen = []
+    window.job.progress.connect(seen.append)
+    qtbot.waitUntil(lambda: window.state.run is not None, timeout=10000)
+    qtbot.waitUntil(lambda: window.job is None, timeout=5000)
+    assert window.state.fits is not None
+    assert not window.progress.isVisible()
+    assert window.recent_runs()[0] == str(gz_run["run"])
+
+
+def test_cancel_stops_the_open(qtbot, gz_run):
+    job = OpenRunJob(run_path=str(gz_run["run"]))
+    job.cancel()
+    with qtbot.waitSignal(job.failed, timeout=10000) as blocker:
+        job.start()
+    assert "cancel" in blocker.args[0]
+    job.wait()
+
+
+def test_drop_opens_a_3d_image_as_map(window, ras_run):
+    assert window.open_run(ras_run["run"], background=False)
+    assert window.open_dropped(str(ras_run["map"]))
+    assert window.state.stat_map is not None
+
+
+def test_about_has_the_research_caution(window):
+    window.about()
+    assert window.statusBar().currentMessage() == voxelscope.RESEARCH_CAUTION
+
+
+def test_start_voxel_by_mm(window, ras_run):
+    run_aff = np.diag([3.0, 3.0, 3.5, 1.0])
+    run_aff[:3, 3] = (-12.0, -15.0, -9.0)
+    mm = tuple(run_aff[:3, :3] @ np.array([5, 6, 2]) + run_aff[:3, 3])
+    assert window.open_run(ras_run["run"], mm=mm, background=False)
+    assert window.state.voxel == (5, 6, 2)
+
+
+def _image_stats(path: Path):
+    img = QImage(str(path)).convertToFormat(QImage.Format.Format_RGB888)
+    arr = np.frombuffer(img.constBits(), np.uint8).reshape(img.height(), img.bytesPerLine())[
+        :, : img.width() * 3
+    ]
+    return img.width(), img.height(), float(arr.astype(float).var())
+
+
+def test_screenshot_has_size_and_is_not_blank(qapp, ras_run, tmp_path):
+    out = tmp_path / "shot.png"
+    assert launch(run=str(ras_run["run"]), screenshot=str(out), size=(1000, 700)) == 0
+    w, h, var = _image_stats(out)
+    assert (w, h) == (1000, 700)
+    assert var > 100.0
+    assert not list(tmp_path.glob(".shot.png*"))  # atomic: no temporary left behind
+
+
+def test_screenshot_of_bad_run_returns_2(qapp, tmp_path):
+    out = tmp_path / "bad.png"
+    assert launch(run=str(tmp_path / "missing.nii"), screenshot=str(out)) == 2
+    assert not out.exists()
+
+
+def test_demo_screenshot(qapp, demo_files, tmp_path):
+    out = tmp_path / "demo.png"
+    assert launch(demo=True, screenshot=str(out), size=(1280, 800)) == 0
+    w, h, var = _image_stats(out)
+    assert (w, h) == (1280, 800) and var > 100.0

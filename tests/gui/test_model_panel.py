@@ -1,0 +1,119 @@
+"""Model: kernels on/off, contrast entry (refit, inline errors), other settings refit."""
+
+import numpy as np
+import pytest
+from PySide6.QtCore import QPoint, Qt
+
+from voxelscope.core.model import ModelSettings
+
+
+def _open(window, spec):
+    assert window.open_run(spec["run"], background=False), window.last_error
+    window.state.set_voxel(spec["hot"])
+    return window.state
+
+
+def test_kernel_toggle_removes_row_and_curve(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    box = window.model_panel.kernel_boxes["gamma"]
+    assert box.isChecked()
+    model = window.fits.model
+    rows = [model.raw(r, "kernel") for r in range(model.rowCount())]
+    assert "gamma" in rows
+    assert window.signal.curves["gamma"].xData is not None
+    qtbot.mouseClick(box, Qt.MouseButton.LeftButton, pos=QPoint(8, box.height() // 2))
+    rows = [model.raw(r, "kernel") for r in range(model.rowCount())]
+    assert "gamma" not in rows and len(rows) == len(ModelSettings().kernels) - 1
+    curve = window.signal.curves["gamma"]
+    assert curve.xData is None or len(curve.xData) == 0
+    assert "gamma" not in st.settings.kernels
+    qtbot.mouseClick(box, Qt.MouseButton.LeftButton, pos=QPoint(8, box.height() // 2))
+    assert "gamma" in [model.raw(r, "kernel") for r in range(model.rowCount())]
+    assert len(window.signal.curves["gamma"].xData) == st.run.n_volumes
+
+
+def test_contrast_edit_refits(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    before = st.fits.by_kernel("boxcar").beta
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    edit.clear()
+    qtbot.keyClicks(edit, "tap - tone")
+    assert st.settings.contrast == "tap - tone"
+    expected = st.analysis.fit_voxel(st.series, ModelSettings(contrast="tap - tone"))
+    after = st.fits.by_kernel("boxcar").beta
+    assert after != before
+    assert after == pytest.approx(expected.by_kernel("boxcar").beta, rel=1e-12)
+    model = window.fits.model
+    assert model.raw(0, "beta") == pytest.approx(after, rel=1e-12)
+    assert not window.model_panel.contrast_error.isVisible()
+
+
+def test_bad_contrast_shows_inline_error_and_keeps_last_good_fit(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    edit.clear()
+    qtbot.keyClicks(edit, "tap")
+    good = [window.fits.model.raw(r, "t") for r in range(window.fits.model.rowCount())]
+    qtbot.keyClicks(edit, " - nosuch")
+    err = window.model_panel.contrast_error
+    assert err.isVisible() and "nosuch" in err.text()
+    assert "\n" not in err.text()
+    assert st.settings.contrast == "tap"
+    assert [window.fits.model.raw(r, "t") for r in range(window.fits.model.rowCount())] == good
+    # fixing the text clears the error and refits
+    for _ in range(len(" - nosuch")):
+        qtbot.keyClick(edit, Qt.Key.Key_Backspace)
+    qtbot.keyClicks(edit, " - tone")
+    assert not err.isVisible()
+    assert st.settings.contrast == "tap - tone"
+
+
+def test_completer_offers_condition_names(window, ras_run, qtbot):
+    _open(window, ras_run)
+    edit = window.model_panel.contrast
+    assert sorted(edit.names()) == ["tap", "tone"]
+    edit.setFocus()
+    edit.clear()
+    qtbot.keyClicks(edit, "tap - to")
+    c = edit.completer_
+    assert c.completionPrefix() == "to" and c.currentCompletion() == "tone"
+
+
+def test_other_settings_refit(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    p = window.model_panel
+    t0 = st.fits.by_kernel("double-gamma").t
+    p.noise.setCurrentIndex(p.noise.findData("ar1"))
+    assert st.settings.noise == "ar1" and st.fits.fits[0].rho is not None
+    assert "rho" in window.fits.model.columns()
+    p.highpass_none.setChecked(True)
+    assert st.settings.highpass_s is None
+    p.highpass_none.setChecked(False)
+    p.highpass.setValue(64.0)
+    assert st.settings.highpass_s == 64.0
+    p.shift.stepBy(2)
+    assert st.settings.onset_shift_s == pytest.approx(0.5)
+    p.derivatives.setCurrentIndex(p.derivatives.findData(1))
+    assert st.settings.derivatives == 1 and "F" in window.fits.model.columns()
+    item = p.confounds.item(0)
+    item.setCheckState(Qt.CheckState.Unchecked)
+    assert st.settings.confound_columns == ("move_b",)
+    expected = st.analysis.fit_voxel(st.series, st.settings)
+    assert st.fits.by_kernel("double-gamma").t == pytest.approx(
+        expected.by_kernel("double-gamma").t, rel=1e-12
+    )
+    assert st.fits.by_kernel("double-gamma").t != t0
+
+
+def test_units_toggle_percent(window, ras_run):
+    st = _open(window, ras_run)
+    window.signal.unit_pct.setChecked(True)
+    assert st.units == "percent"
+    y = st.series
+    shown = window.signal.data_curve.yData
+    # percent signal change relative to the voxel mean (common practice)
+    np.testing.assert_allclose(shown, 100 * (y - y.mean()) / y.mean(), rtol=1e-12)
+    t = window.signal.data_curve.xData
+    np.testing.assert_allclose(np.diff(t), st.run.tr)

@@ -1,0 +1,183 @@
+"""Slices: clicks select the voxel the affine says, crosshairs, keys, overlay."""
+
+import numpy as np
+import pytest
+from nibabel.affines import apply_affine
+from PySide6.QtCore import QPointF, Qt
+from PySide6.QtWidgets import QApplication
+
+from voxelscope.gui.slices import PLANES, overlay_rgba
+
+
+def _open(window, spec):
+    ok = window.open_run(spec["run"], events=spec.get("events"), background=False)
+    assert ok, window.last_error
+    QApplication.processEvents()  # let the workspace take its final size before clicking
+    return window.state
+
+
+def _expected_display(affine, shape, voxel):
+    """Display position from world coordinates only: along world axis d, the rank of the
+    voxel's coordinate among the grid's voxel centres (apply_affine, nibabel)."""
+    voxel = np.asarray(voxel)
+    out = []
+    for d in range(3):
+        a = int(np.argmax(np.abs(affine[d, :3])))  # storage axis that moves along world d
+        idx = np.repeat(voxel[None, :], shape[a], axis=0)
+        idx[:, a] = np.arange(shape[a])
+        coords = apply_affine(affine, idx)[:, d]
+        out.append(int(np.searchsorted(np.sort(coords), coords[voxel[a]])))
+    return out
+
+
+def _screen_point(view, display):
+    """Viewport pixel of a display voxel's centre, through the underlay image item."""
+    f = view.state.underlay.factor
+    h, v = display[view.h_axis], display[view.v_axis]
+    scene = view.under.mapToScene(QPointF((h + 0.5) * f, (v + 0.5) * f))
+    return view.mapFromScene(scene)
+
+
+@pytest.mark.parametrize("fixture", ["las_run", "ras_run", "permuted_run"])
+@pytest.mark.parametrize("plane", list(PLANES))
+def test_click_selects_voxel_the_affine_says(request, window, qtbot, fixture, plane):
+    spec = request.getfixturevalue(fixture)
+    state = _open(window, spec)
+    run = state.run
+    shape, affine = run.shape, run.affine
+    rng = np.random.default_rng(abs(hash((fixture, plane))) % 2**32)
+    view = window.slices.views[plane]
+    for _ in range(4):
+        start = tuple(int(rng.integers(0, n)) for n in shape)
+        state.set_voxel(start)
+        # choose a new in-plane position; the through-plane index stays
+        disp = _expected_display(affine, shape, start)
+        disp[view.h_axis] = int(rng.integers(0, _n(shape, affine, view.h_axis)))
+        disp[view.v_axis] = int(rng.integers(0, _n(shape, affine, view.v_axis)))
+        target = _voxel_from_display(affine, shape, start, disp)
+        qtbot.mouseClick(view.viewport(), Qt.MouseButton.LeftButton, pos=_screen_point(view, disp))
+        assert state.voxel == target
+        np.testing.assert_allclose(
+            apply_affine(affine, state.voxel), apply_affine(affine, target), atol=1e-9
+        )
+
+
+def _n(shape, affine, d):
+    return shape[int(np.argmax(np.abs(affine[d, :3])))]
+
+
+def _voxel_from_display(affine, shape, start, disp):
+    """Inverse of _expected_display by search over the grid (world coordinates only)."""
+    out = list(start)
+    for d in range(3):
+        a = int(np.argmax(np.abs(affine[d, :3])))
+        idx = np.repeat(np.asarray(start)[None, :], shape[a], axis=0)
+        idx[:, a] = np.arange(shape[a])
+        coords = apply_affine(affine, idx)[:, d]
+        out[a] = int(np.argsort(coords)[disp[d]])
+    return tuple(out)
+
+
+@pytest.mark.parametrize("fixture", ["las_run", "ras_run"])
+def test_screen_right_is_subject_right_and_up_is_anterior(request, window, qtbot, fixture):
+    """In the axial view, a click further right selects a voxel further right in world x
+    (R-A-S display convention), and a click higher up one further anterior."""
+    state = _open(window, request.getfixturevalue(fixture))
+    view = window.slices.views["axial"]
+    run = state.run
+    mid = tuple(n // 2 for n in run.shape)
+    state.set_voxel(mid)
+    w0 = apply_affine(run.affine, state.voxel)
+    p = _screen_point(view, state.grid.to_display(mid))
+    dx = view.width() // 8
+    qtbot.mouseClick(view.viewport(), Qt.MouseButton.LeftButton, pos=p + type(p)(dx, 0))
+    w1 = apply_affine(run.affine, state.voxel)
+    assert w1[0] > w0[0] and np.isclose(w1[1], w0[1])
+    state.set_voxel(mid)
+    qtbot.mouseClick(view.viewport(), Qt.MouseButton.LeftButton, pos=p + type(p)(0, -dx))
+    w2 = apply_affine(run.affine, state.voxel)
+    assert w2[1] > w0[1] and np.isclose(w2[0], w0[0])
+
+
+def test_crosshair_moves_in_all_three_views(window, qtbot, las_run):
+    state = _open(window, las_run)
+    target = (3, 15, 2)
+    before = {n: (v.vline.value(), v.hline.value()) for n, v in window.slices.views.items()}
+    state.set_voxel(target)
+    disp = _expected_display(state.run.affine, state.run.shape, target)
+    for name, view in window.slices.views.items():
+        centre = view.under.mapToView(
+            QPointF(disp[view.h_axis] + 0.5, disp[view.v_axis] + 0.5) * state.underlay.factor
+        )
+        assert (view.vline.value(), view.hline.value()) != before[name]
+        assert view.vline.value() == pytest.approx(centre.x())
+        assert view.hline.value() == pytest.approx(centre.y())
+
+
+def test_click_in_one_view_moves_crosshairs_in_the_others(window, qtbot, ras_run):
+    state = _open(window, ras_run)
+    state.set_voxel((4, 5, 3))
+    coronal, sagittal = window.slices.views["coronal"], window.slices.views["sagittal"]
+    before = (coronal.vline.value(), sagittal.vline.value())
+    axial = window.slices.views["axial"]
+    disp = list(state.grid.to_display(state.voxel))
+    disp[0], disp[1] = 7, 9
+    qtbot.mouseClick(axial.viewport(), Qt.MouseButton.LeftButton, pos=_screen_point(axial, disp))
+    assert state.voxel == (7, 9, 3)
+    assert coronal.vline.value() != before[0]  # coronal horizontal axis is x
+    assert sagittal.vline.value() != before[1]  # sagittal horizontal axis is y
+
+
+@pytest.mark.parametrize("fixture", ["las_run", "permuted_run"])
+def test_keys_move_the_voxel_in_world_directions(request, window, qtbot, fixture):
+    """Right arrow -> +x (towards R), Up -> +y in the axial view, Page Up -> +z."""
+    state = _open(window, request.getfixturevalue(fixture))
+    run = state.run
+    view = window.slices.views["axial"]
+    mid = tuple(n // 2 for n in run.shape)
+    for key, axis in ((Qt.Key.Key_Right, 0), (Qt.Key.Key_Up, 1), (Qt.Key.Key_PageUp, 2)):
+        state.set_voxel(mid)
+        w0 = apply_affine(run.affine, state.voxel)
+        view.setFocus()
+        qtbot.keyClick(view, key)
+        w1 = apply_affine(run.affine, state.voxel)
+        step = w1 - w0
+        assert step[axis] > 0
+        assert np.allclose(np.delete(step, axis), 0)
+    state.set_voxel(mid)
+    qtbot.keyClick(view, Qt.Key.Key_Left)
+    qtbot.keyClick(view, Qt.Key.Key_Down)
+    qtbot.keyClick(view, Qt.Key.Key_PageDown)
+    w = apply_affine(run.affine, state.voxel) - apply_affine(run.affine, mid)
+    assert np.all(w < 0)
+
+
+def test_wheel_steps_the_slice(window, qtbot, ras_run):
+    state = _open(window, ras_run)
+    state.set_voxel((4, 5, 3))
+    window.slices.views["axial"].box.stepped.emit(1)
+    assert state.voxel == (4, 5, 4)
+    window.slices.views["sagittal"].box.stepped.emit(-1)
+    assert state.voxel == (3, 5, 4)
+
+
+def test_overlay_threshold_is_signed_and_two_tailed():
+    lut = np.arange(256, dtype=np.uint8)[:, None].repeat(3, axis=1)
+    v = np.array([[-4.0, -2.9, 0.0], [2.9, 3.0, np.nan]])
+    rgba = overlay_rgba(v, lut, 4.0, 3.0, 0.5)
+    assert rgba[..., 3].tolist() == [[128, 0, 0], [0, 128, 0]]
+    # -limit -> first colour, +limit -> last, 0 -> middle
+    assert rgba[0, 0, 0] == 0 and rgba[1, 1, 0] == round((3.0 + 4) / 8 * 255)
+
+
+def test_map_overlay_and_readout(window, qtbot, ras_run):
+    state = _open(window, ras_run)
+    assert window.open_map(ras_run["map"])
+    state.set_voxel(ras_run["hot"])
+    axial = window.slices.views["axial"]
+    assert axial.over.isVisible() and axial.over.image is not None
+    assert "Map</b> 9.000" in window.slices.readout.text()
+    assert window.slices.colour_bar.isVisible()
+    state.set_map_settings(threshold=10.0)
+    img = axial.over.image
+    assert int(img[..., 3].max()) == 0  # nothing reaches |v| >= 10

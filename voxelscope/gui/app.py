@@ -1,0 +1,161 @@
+"""Entry point of the window: :func:`launch` (the command line's ``view`` calls it)."""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+from pathlib import Path
+
+__all__ = ["DEMO_CONTRAST", "demo_paths", "launch"]
+
+#: The demo starts at the tone cluster, so it shows the tone contrast.
+DEMO_CONTRAST = "tone"
+
+
+def demo_paths() -> dict:
+    """Files of the demo scenario and its tone cluster's voxel.
+
+    Raises
+    ------
+    InputError
+        When the sample data are missing.
+    """
+    import voxelscope
+    from voxelscope.core.errors import InputError
+
+    folder = Path(voxelscope.__file__).resolve().parents[1] / "sample_data"
+    run = folder / "sub-demo_task-tonetap_bold.nii.gz"
+    if not run.is_file():
+        raise InputError(
+            f"{run}: the demo run is missing; make it with python sample_data/make_demo.py"
+        )
+    out = {
+        "run": run,
+        "events": folder / "sub-demo_task-tonetap_events.tsv",
+        "confounds": folder / "sub-demo_task-tonetap_confounds.tsv",
+        "anat": folder / "sub-demo_T1w.nii.gz",
+        "stat_map": folder / "sub-demo_task-tonetap_pipeline-t.nii.gz",
+        "voxel": None,
+    }
+    for key in ("events", "confounds", "anat", "stat_map"):
+        if not out[key].is_file():
+            out[key] = None
+    truth = folder / "demo_truth.json"
+    if truth.is_file():
+        try:
+            data = json.loads(truth.read_text(encoding="utf-8"))
+            for f in data.get("features", []):
+                if f.get("name") == "tone_cluster":
+                    v = f.get("voxel") or f.get("ijk") or f.get("centre_voxel")
+                    if v is not None:
+                        out["voxel"] = tuple(int(a) for a in v)
+        except (OSError, ValueError, TypeError):
+            pass
+    return out
+
+
+def _ensure_platform(screenshot: str | None) -> None:
+    if screenshot is not None and not os.environ.get("QT_QPA_PLATFORM"):
+        if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
+            os.environ["QT_QPA_PLATFORM"] = "offscreen"
+
+
+def launch(
+    run: str | None = None,
+    events: str | None = None,
+    confounds: str | None = None,
+    anat: str | None = None,
+    stat_map: str | None = None,
+    voxel: tuple[int, int, int] | None = None,
+    mm: tuple[float, float, float] | None = None,
+    tr: float | None = None,
+    screenshot: str | None = None,
+    size: tuple[int, int] = (1600, 1000),
+    demo: bool = False,
+) -> int:
+    """Open the inspection window; with ``screenshot``, render it to a PNG and return.
+
+    Parameters
+    ----------
+    run : path, optional
+        4D run; its events, sidecar and confounds are found by BIDS names beside it when
+        ``events`` / ``confounds`` are not given. Without a run the window says how to open one.
+    events, confounds, anat, stat_map : path, optional
+        Events TSV, confounds TSV, anatomical underlay, statistic map overlay.
+    voxel : (i, j, k), optional
+        Starting voxel; or ``mm``, a world position.
+    tr : float, optional
+        Overrides the sidecar and header TR.
+    screenshot : path, optional
+        Render the window offscreen at ``size`` once the fits are shown, save the PNG
+        atomically and return without entering the event loop.
+    size : (width, height)
+    demo : bool
+        Open the demo run (sample_data) with its events, confounds, anatomical underlay and
+        earlier t map, at the tone cluster's voxel.
+
+    Returns
+    -------
+    int
+        0 on success; 2 when the screenshot could not be made (the run did not open).
+    """
+    _ensure_platform(screenshot)
+    from PySide6.QtWidgets import QApplication
+
+    from voxelscope.core.errors import VoxelscopeError
+
+    app = QApplication.instance() or QApplication(sys.argv[:1])
+    app.setApplicationName("voxelscope")
+    app.setOrganizationName("voxelscope-project")
+    import pyqtgraph as pg
+
+    pg.setConfigOptions(antialias=True, imageAxisOrder="col-major")
+    from voxelscope.gui.main_window import MainWindow
+
+    window = MainWindow()
+    window.resize(*size)
+    if demo:
+        try:
+            d = demo_paths()
+        except VoxelscopeError as err:
+            if screenshot is not None:
+                print(f"voxelscope: error: {err}", file=sys.stderr)
+                return 2
+            window.show_error(str(err))
+            d = None
+        if d is not None:
+            run = str(d["run"])
+            events = events or (str(d["events"]) if d["events"] else None)
+            confounds = confounds or (str(d["confounds"]) if d["confounds"] else None)
+            anat = anat or (str(d["anat"]) if d["anat"] else None)
+            stat_map = stat_map or (str(d["stat_map"]) if d["stat_map"] else None)
+            if voxel is None and mm is None:
+                voxel = d["voxel"]
+    if screenshot is not None:
+        window.show()
+        if run is not None:
+            ok = window.open_run(
+                run, events, confounds, anat, stat_map, tr, voxel, mm, background=False
+            )
+            if not ok:
+                print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+                return 2
+            if demo:
+                window.set_contrast_text(DEMO_CONTRAST)
+        window.resize(*size)
+        for _ in range(5):
+            app.processEvents()
+        try:
+            window.save_image(screenshot, size)
+        except VoxelscopeError as err:
+            print(f"voxelscope: error: {err}", file=sys.stderr)
+            return 2
+        window.close()
+        return 0
+    window.show()
+    if run is not None:
+        if demo:
+            window.after_open = lambda: window.set_contrast_text(DEMO_CONTRAST)
+        window.open_run(run, events, confounds, anat, stat_map, tr, voxel, mm, background=True)
+    return int(app.exec())

@@ -1,0 +1,254 @@
+"""Fits: one row per kernel at the current voxel (a Qt table model fed from the state).
+
+Columns: colour marker, kernel, beta, variance, t, df, p, R², and rho under AR(1); F, its
+df and p when the model has derivatives or FIR bins. The numbers are the fields of
+:class:`voxelscope.core.model.KernelFit` (from ``Analysis.fit_voxel``), so they equal what
+the command line prints. Copy as tab-separated text with Ctrl+C or the context menu.
+"""
+
+from __future__ import annotations
+
+import math
+
+from PySide6.QtCore import QAbstractTableModel, QModelIndex, Qt
+from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
+from PySide6.QtWidgets import (
+    QAbstractItemView,
+    QHeaderView,
+    QLabel,
+    QTableView,
+    QVBoxLayout,
+    QWidget,
+)
+
+from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.state import ViewerState
+
+__all__ = ["FitsModel", "FitsPanel", "format_value"]
+
+RAW_ROLE = Qt.ItemDataRole.UserRole + 1
+
+_BASE = [
+    ("", "Kernel colour"),
+    ("kernel", "Kernel of the condition regressors"),
+    ("beta", "Contrast estimate c'b (data units)"),
+    ("variance", "Variance of the contrast estimate"),
+    ("t", "t statistic of the contrast"),
+    ("df", "Residual degrees of freedom"),
+    ("p", "Two-sided p value of t"),
+    ("R²", "Fraction of the data variance explained by the whole model"),
+]
+
+
+def format_value(column: str, value) -> str:
+    """Display text of one number in the Fits table.
+
+    Examples
+    --------
+    >>> format_value("p", 0.00001234)
+    '1.23e-05'
+    >>> format_value("t", 4.56789)
+    '4.568'
+    >>> format_value("beta", None)
+    '–'
+    """
+    if value is None:
+        return "–"
+    if isinstance(value, str):
+        return value
+    if column in ("df", "df F"):
+        return str(value)
+    v = float(value)
+    if not math.isfinite(v):
+        return "–"
+    if column in ("p", "p F"):
+        return f"{v:.3g}" if v >= 1e-3 else f"{v:.2e}"
+    if column in ("t", "F", "R²", "rho"):
+        return f"{v:.3f}"
+    return f"{v:.4g}"
+
+
+class FitsModel(QAbstractTableModel):
+    """Table model of the current voxel's fits (rows: kernels)."""
+
+    def __init__(self, state: ViewerState, parent=None) -> None:
+        super().__init__(parent)
+        self.state = state
+        self._columns: list[tuple[str, str]] = list(_BASE)
+        self._rows: list[dict] = []
+        state.fits_changed.connect(self._on_fits)
+
+    # ------------------------------------------------------------------ data
+
+    def _on_fits(self, fits) -> None:
+        self.beginResetModel()
+        self._rows = []
+        cols = list(_BASE)
+        if fits is not None and fits.fits:
+            ar1 = any(f.result.rho is not None for f in fits.fits)
+            has_f = any(f.f_df is not None for f in fits.fits)
+            if ar1:
+                cols.append(("rho", "AR(1) coefficient of the residuals"))
+            if has_f:
+                cols += [
+                    ("F", "F test of all the condition's columns (derivatives or FIR bins)"),
+                    ("df F", "Degrees of freedom of F (numerator, denominator)"),
+                    ("p F", "p value of F"),
+                ]
+            for f in fits.fits:
+                self._rows.append(
+                    {
+                        "": f.kernel,
+                        "kernel": f.kernel,
+                        "beta": f.beta,
+                        "variance": f.variance,
+                        "t": f.t,
+                        "df": f.df,
+                        "p": f.p,
+                        "R²": f.r2,
+                        "rho": f.rho,
+                        "F": f.f,
+                        "df F": None if f.f_df is None else f"{f.f_df[0]}, {f.f_df[1]}",
+                        "p F": f.f_p,
+                    }
+                )
+        self._columns = cols
+        self.endResetModel()
+
+    def columns(self) -> list[str]:
+        return [c for c, _ in self._columns]
+
+    def raw(self, row: int, column: str):
+        """The unformatted value of a cell (None where undefined)."""
+        return self._rows[row][column]
+
+    def rowCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else len(self._rows)
+
+    def columnCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else len(self._columns)
+
+    def data(self, index, role=Qt.ItemDataRole.DisplayRole):
+        if not index.isValid():
+            return None
+        name = self._columns[index.column()][0]
+        row = self._rows[index.row()]
+        value = row[name]
+        if role == Qt.ItemDataRole.DisplayRole:
+            return "" if name == "" else format_value(name, value)
+        if role == Qt.ItemDataRole.DecorationRole and name == "":
+            return QColor(kernel_colour(row["kernel"]))
+        if role == RAW_ROLE:
+            return value
+        if role == Qt.ItemDataRole.TextAlignmentRole:
+            if name in ("", "kernel"):
+                return int(Qt.AlignmentFlag.AlignLeft | Qt.AlignmentFlag.AlignVCenter)
+            return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
+        if role == Qt.ItemDataRole.ForegroundRole and name == "kernel":
+            return QColor("#1f1f1f")
+        if role == Qt.ItemDataRole.ToolTipRole and name not in ("", "kernel"):
+            return None if value is None else repr(value)
+        return None
+
+    def headerData(self, section, orientation, role=Qt.ItemDataRole.DisplayRole):
+        if orientation != Qt.Orientation.Horizontal:
+            return None
+        if role == Qt.ItemDataRole.DisplayRole:
+            return self._columns[section][0]
+        if role == Qt.ItemDataRole.ToolTipRole:
+            return self._columns[section][1]
+        return None
+
+    def to_tsv(self) -> str:
+        """The table as tab-separated text: a header row, then one row per kernel."""
+        names = [c for c in self.columns() if c != ""]
+        lines = ["\t".join(names)]
+        for row in self._rows:
+            cells = []
+            for c in names:
+                v = row[c]
+                if v is None:
+                    cells.append("")
+                elif isinstance(v, float):
+                    cells.append(repr(v))
+                else:
+                    cells.append(str(v))
+            lines.append("\t".join(cells))
+        return "\n".join(lines) + "\n"
+
+
+class FitsPanel(QWidget):
+    """Fits: the table, the contrast and noise model it belongs to, and voxel warnings."""
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("fits_panel")
+        self.state = state
+        self.model = FitsModel(state, self)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(6, 4, 6, 4)
+        lay.setSpacing(3)
+        self.caption = QLabel("")
+        self.caption.setObjectName("fits_caption")
+        lay.addWidget(self.caption)
+        self.table = QTableView()
+        self.table.setObjectName("fits_table")
+        self.table.setModel(self.model)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table.verticalHeader().setVisible(False)
+        self.table.setAlternatingRowColors(True)
+        self.table.setShowGrid(False)
+        self.table.setWordWrap(False)
+        hh = self.table.horizontalHeader()
+        hh.setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
+        hh.setHighlightSections(False)
+        self.table.verticalHeader().setDefaultSectionSize(26)
+        self.table.setContextMenuPolicy(Qt.ContextMenuPolicy.ActionsContextMenu)
+        self.copy_action = QAction("Copy table as TSV", self.table)
+        self.copy_action.setShortcut(QKeySequence.StandardKey.Copy)
+        self.copy_action.setShortcutContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
+        self.copy_action.triggered.connect(self.copy)
+        self.table.addAction(self.copy_action)
+        self.addAction(self.copy_action)
+        lay.addWidget(self.table, 1)
+        self.notes = QLabel("")
+        self.notes.setObjectName("fits_notes")
+        self.notes.setWordWrap(True)
+        lay.addWidget(self.notes)
+        self.model.modelReset.connect(self._layout_columns)
+        state.fits_changed.connect(self._on_fits)
+
+    def _layout_columns(self) -> None:
+        hh = self.table.horizontalHeader()
+        if self.model.columnCount() > 0:
+            hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Fixed)
+            self.table.setColumnWidth(0, 30)
+            hh.setSectionResizeMode(1, QHeaderView.ResizeMode.ResizeToContents)
+
+    def copy(self) -> str:
+        """Put the table on the clipboard as TSV; returns the text."""
+        text = self.model.to_tsv()
+        QGuiApplication.clipboard().setText(text)
+        return text
+
+    def _on_fits(self, fits) -> None:
+        s = self.state.settings
+        analysis = self.state.analysis
+        if analysis is None:
+            self.caption.setText("No model: open an events file to fit this voxel.")
+            self.notes.setText("")
+            return
+        contrast = s.contrast or analysis.default_contrast()
+        noise = "AR(1)" if s.noise == "ar1" else "OLS"
+        hp = "none" if s.highpass_s is None else f"{s.highpass_s:g} s"
+        shift = f", onsets {s.onset_shift_s:+g} s" if s.onset_shift_s else ""
+        self.caption.setText(
+            f"<b>Contrast</b> {contrast}&nbsp;&nbsp;·&nbsp;&nbsp;<b>Noise</b> {noise}"
+            f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>High-pass</b> {hp}{shift}"
+        )
+        notes = list(fits.warnings) if fits is not None else []
+        if fits is not None and not fits.fits:
+            notes.append("No kernel is switched on: choose one in Model.")
+        self.notes.setText("\n".join(notes))
+        self.notes.setVisible(bool(notes))

@@ -1,0 +1,222 @@
+"""Opening a run with its companions, underlay and map: plain functions, no Qt.
+
+The window calls :func:`load_bundle` on a worker thread (see :mod:`voxelscope.gui.workers`);
+screenshot mode and the tests call it directly. Everything that can go wrong becomes a
+:class:`~voxelscope.core.errors.VoxelscopeError` with one line for the user.
+
+Examples
+--------
+>>> from pathlib import Path
+>>> from nibabel.testing import data_path
+>>> b = load_bundle(Path(data_path) / "functional.nii")
+>>> b.run.shape, b.analysis is None
+((17, 21, 3), True)
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from voxelscope.core.companions import find_companions
+from voxelscope.core.confounds import Confounds, read_confounds
+from voxelscope.core.errors import InputError
+from voxelscope.core.events import read_events
+from voxelscope.core.images import grid_overlap, load_image, load_on_grid
+from voxelscope.core.model import Analysis
+
+__all__ = [
+    "Layer",
+    "RunBundle",
+    "check_nifti_kind",
+    "fine_grid",
+    "load_bundle",
+    "load_map",
+    "load_underlay",
+]
+
+#: The underlay is resampled onto the run grid refined by up to this factor per axis.
+MAX_UNDERLAY_REFINE = 4
+
+
+@dataclass(eq=False)
+class Layer:
+    """A 3D image brought onto (a refinement of) the run's grid.
+
+    ``data`` has shape ``factor * run.shape`` and covers exactly the run's field of view.
+    """
+
+    path: Path | None
+    data: np.ndarray
+    factor: int = 1
+    levels: tuple[float, float] = (0.0, 1.0)
+
+
+@dataclass(eq=False)
+class RunBundle:
+    """Everything the window needs from one open: run, model inputs and layers."""
+
+    run: object
+    analysis: Analysis | None
+    events_path: Path | None
+    confounds_path: Path | None
+    underlay: Layer
+    stat_map: Layer | None = None
+    warnings: list[str] = field(default_factory=list)
+
+
+def fine_grid(shape, affine: np.ndarray, factor: int) -> tuple[tuple[int, int, int], np.ndarray]:
+    """A grid ``factor`` times finer than ``(shape, affine)`` over the same field of view.
+
+    Voxel ``a`` of the fine grid has its centre at run voxel ``(a + 0.5) / factor - 0.5``.
+
+    Examples
+    --------
+    >>> s, a = fine_grid((2, 2, 2), np.eye(4), 2)
+    >>> s, float(a[0, 0]), float(a[0, 3])
+    ((4, 4, 4), 0.5, -0.25)
+    """
+    f = int(factor)
+    step = np.eye(4)
+    step[:3, :3] /= f
+    step[:3, 3] = (1.0 / f - 1.0) / 2.0
+    return tuple(int(n) * f for n in shape[:3]), np.asarray(affine, float) @ step
+
+
+def _levels(data: np.ndarray) -> tuple[float, float]:
+    finite = data[np.isfinite(data)]
+    if finite.size == 0:
+        return 0.0, 1.0
+    nonzero = finite[finite != 0]
+    use = nonzero if nonzero.size > finite.size // 20 else finite
+    lo, hi = np.percentile(use, [0.5, 99.5])
+    lo = min(float(lo), 0.0) if float(finite.min()) >= 0 else float(lo)
+    if hi <= lo:
+        hi = lo + 1.0
+    return float(lo), float(hi)
+
+
+def load_underlay(path: str | os.PathLike[str] | None, run, warnings: list[str]) -> Layer:
+    """The run's mean image, or an anatomical image resampled onto a refined run grid.
+
+    The anatomical image is sampled (trilinear, :func:`voxelscope.core.images.resample_to_grid`
+    via ``load_on_grid``) at the centres of a grid up to :data:`MAX_UNDERLAY_REFINE` times
+    finer than the run's, so a 2 mm image over a 4 mm run keeps its detail while sharing the
+    run's field of view and orientation.
+    """
+    if path is None:
+        mean = np.array(run.mean_image(), dtype=np.float32)
+        return Layer(None, mean, 1, _levels(mean))
+    path = Path(path)
+    img = load_image(path)
+    run_mm = min(run.voxel_size)
+    img_mm = float(np.sqrt((img.affine[:3, :3] ** 2).sum(axis=0)).min())
+    factor = int(np.clip(round(run_mm / max(img_mm, 1e-6)), 1, MAX_UNDERLAY_REFINE))
+    shape, affine = fine_grid(run.shape, run.affine, factor)
+    ignored: list[str] = []
+    data = load_on_grid(path, (shape, affine), order=1, warnings=ignored)
+    inside = grid_overlap(img.shape, img.affine, run.shape, run.affine)
+    mask = run.mask()
+    region = mask if mask.any() else np.ones(run.shape, bool)
+    covered = np.count_nonzero(inside & region) / max(1, np.count_nonzero(region))
+    if covered < 0.9:
+        warnings.append(
+            f"{path} covers only {100 * covered:.0f}% of the run's brain mask; "
+            "the rest is shown as empty"
+        )
+    levels = _levels(data)
+    data = np.where(np.isfinite(data), data, levels[0]).astype(np.float32)
+    return Layer(path, data, factor, levels)
+
+
+def load_map(path: str | os.PathLike[str], run, warnings: list[str]) -> Layer:
+    """A statistic map resampled onto the run grid (trilinear; NaN where it has no data)."""
+    path = Path(path)
+    data = load_on_grid(path, run, order=1, warnings=warnings)
+    finite = np.abs(data[np.isfinite(data)])
+    top = float(finite.max()) if finite.size else 1.0
+    top = top if top > 0 else 1.0
+    return Layer(path, data.astype(np.float32), 1, (-top, top))
+
+
+def load_bundle(
+    run_path: str | os.PathLike[str],
+    events: str | os.PathLike[str] | None = None,
+    confounds: str | os.PathLike[str] | None = None,
+    anat: str | os.PathLike[str] | None = None,
+    stat_map: str | os.PathLike[str] | None = None,
+    tr: float | None = None,
+    progress: Callable[[float], bool | None] | None = None,
+) -> RunBundle:
+    """Open a run, its events and confounds (found by BIDS names when not given) and layers.
+
+    Parameters
+    ----------
+    run_path : path
+        4D ``.nii`` / ``.nii.gz``.
+    events, confounds : path, optional
+        Default: the BIDS companions beside the run (``find_companions``).
+    anat : path, optional
+        Anatomical underlay; default the run's mean image.
+    stat_map : path, optional
+        Statistic map overlay.
+    tr : float, optional
+        Overrides the sidecar and header TR.
+    progress : callable, optional
+        ``progress(fraction) -> bool | None``; False cancels.
+
+    Returns
+    -------
+    RunBundle
+        ``analysis`` is None when no events file was given or found.
+
+    Raises
+    ------
+    VoxelscopeError
+        One line naming the file and what to do.
+    """
+    from voxelscope.core.run import open_run
+
+    run_path = Path(run_path)
+    companions = find_companions(run_path)
+    events_path = Path(events) if events is not None else companions.events
+    conf_path = Path(confounds) if confounds is not None else companions.confounds
+    run = open_run(run_path, tr=tr, progress=progress)
+    warnings = list(run.warnings)
+    analysis = None
+    if events_path is not None:
+        conditions = read_events(events_path)
+        conf: Confounds | None = read_confounds(conf_path) if conf_path is not None else None
+        analysis = Analysis(
+            conditions, run.n_volumes, run.tr, confounds=conf, reference_time_s=run.reference_time_s
+        )
+        warnings.extend(analysis.warnings)
+    else:
+        conf_path = None
+        warnings.append(
+            f"{run_path}: no events file found beside it; open one to fit a model "
+            "(File > Open events)"
+        )
+    underlay = load_underlay(anat, run, warnings)
+    layer = load_map(stat_map, run, warnings) if stat_map is not None else None
+    return RunBundle(run, analysis, events_path, conf_path, underlay, layer, warnings)
+
+
+def check_nifti_kind(path: str | os.PathLike[str]) -> int:
+    """Number of dimensions with more than one element-ish: 4 for a run, 3 for an image.
+
+    Raises InputError when the file cannot be read as NIfTI.
+    """
+    from voxelscope.core.images import load_nifti
+
+    img = load_nifti(path, "image")
+    shape = [int(n) for n in img.shape]
+    while len(shape) > 3 and shape[-1] == 1:
+        shape = shape[:-1]
+    if len(shape) not in (3, 4):
+        raise InputError(f"{path}: a {len(shape)}D image is neither a run (4D) nor a map (3D)")
+    return len(shape)

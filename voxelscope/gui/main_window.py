@@ -1,0 +1,492 @@
+"""The inspection window: Slices and Signal in the middle, Model and Map on the right, Fits below.
+
+Parts are dock widgets, so later parts (Findings, Checks, Marks, Show) can be added as
+further docks or tabified with the existing ones (see :meth:`MainWindow.add_part`).
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
+from PySide6.QtWidgets import (
+    QDockWidget,
+    QFileDialog,
+    QLabel,
+    QMainWindow,
+    QMessageBox,
+    QProgressBar,
+    QPushButton,
+    QScrollArea,
+    QSplitter,
+    QStackedWidget,
+    QWidget,
+)
+
+import voxelscope
+from voxelscope.core.confounds import read_confounds
+from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.events import read_events
+from voxelscope.core.model import Analysis
+from voxelscope.gui.colours import stylesheet
+from voxelscope.gui.fits import FitsPanel
+from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, load_map, load_underlay
+from voxelscope.gui.map_panel import MapPanel
+from voxelscope.gui.model_panel import ModelPanel
+from voxelscope.gui.signal import SignalPanel
+from voxelscope.gui.slices import SlicesPanel
+from voxelscope.gui.state import ViewerState
+from voxelscope.gui.workers import OpenRunJob
+
+__all__ = ["ORGANISATION", "MainWindow"]
+
+#: QSettings organisation and application names (recent files).
+ORGANISATION = "voxelscope-project"
+APPLICATION = "voxelscope"
+MAX_RECENT = 8
+NIFTI_FILTER = "NIfTI images (*.nii *.nii.gz);;All files (*)"
+
+WELCOME = (
+    "<div style='text-align:center'>"
+    "<p style='font-size:24px; font-weight:bold; color:#2E3A46'>voxelscope</p>"
+    "<p>Open a run to look at its voxels:</p>"
+    "<p><b>File ▸ Open run…</b> (Ctrl+O), or drop a <b>.nii</b> / <b>.nii.gz</b> run here.</p>"
+    "<p style='color:#5A5A5A; font-size:15px'>The events, sidecar and confounds files are found "
+    "by their BIDS names next to the run.<br>From a terminal: "
+    "<code>voxelscope view RUN_bold.nii.gz</code></p></div>"
+)
+
+
+def _is_nifti(path: str) -> bool:
+    low = path.lower()
+    return low.endswith(".nii") or low.endswith(".nii.gz")
+
+
+class MainWindow(QMainWindow):
+    """The voxelscope inspection window."""
+
+    def __init__(self, settings: QSettings | None = None, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("voxelscope_window")
+        self.setWindowTitle("voxelscope")
+        self.settings = settings if settings is not None else QSettings(ORGANISATION, APPLICATION)
+        self.state = ViewerState(self)
+        self.job: OpenRunJob | None = None
+        self._pending_voxel = None
+        self._pending_mm = None
+        self.after_open = None
+        self.last_error = ""
+        self.setStyleSheet(stylesheet())
+        self.setAcceptDrops(True)
+
+        self.slices = SlicesPanel(self.state)
+        self.signal = SignalPanel(self.state)
+        self.workspace = QSplitter(Qt.Orientation.Vertical)
+        self.workspace.setObjectName("workspace")
+        self.workspace.addWidget(self.slices)
+        self.workspace.addWidget(self.signal)
+        self.workspace.setStretchFactor(0, 5)
+        self.workspace.setStretchFactor(1, 4)
+        self.workspace.setChildrenCollapsible(False)
+        self.welcome = QLabel(WELCOME)
+        self.welcome.setObjectName("welcome")
+        self.welcome.setAlignment(Qt.AlignmentFlag.AlignCenter)
+        self.welcome.setWordWrap(True)
+        self.stack = QStackedWidget()
+        self.stack.addWidget(self.welcome)
+        self.stack.addWidget(self.workspace)
+        self.setCentralWidget(self.stack)
+
+        self.model_panel = ModelPanel(self.state)
+        scroll = QScrollArea()
+        scroll.setWidgetResizable(True)
+        scroll.setWidget(self.model_panel)
+        scroll.setFrameShape(QScrollArea.Shape.NoFrame)
+        self.map_panel = MapPanel(self.state)
+        self.map_panel.open_requested.connect(self.ask_map)
+        self.fits = FitsPanel(self.state)
+        self.setCorner(Qt.Corner.BottomRightCorner, Qt.DockWidgetArea.RightDockWidgetArea)
+        self.setCorner(Qt.Corner.TopRightCorner, Qt.DockWidgetArea.RightDockWidgetArea)
+        self.docks: dict[str, QDockWidget] = {}
+        self.add_part("Model", scroll, Qt.DockWidgetArea.RightDockWidgetArea)
+        self.add_part("Fits", self.fits, Qt.DockWidgetArea.BottomDockWidgetArea)
+        self.add_part("Map", self.map_panel, Qt.DockWidgetArea.BottomDockWidgetArea)
+        self.splitDockWidget(self.docks["Fits"], self.docks["Map"], Qt.Orientation.Horizontal)
+        self.resizeDocks([self.docks["Fits"], self.docks["Map"]], [3, 1], Qt.Orientation.Horizontal)
+        self.resizeDocks([self.docks["Model"]], [330], Qt.Orientation.Horizontal)
+
+        self._build_status()
+        self._build_menus()
+        self.state.message.connect(self._note)
+        self.state.run_changed.connect(self._on_run)
+        self._on_run()
+
+    # ------------------------------------------------------------------ layout
+
+    def add_part(
+        self, title: str, widget: QWidget, area: Qt.DockWidgetArea, tab_with: str | None = None
+    ) -> QDockWidget:
+        """Add a part of the window as a dock (optionally tabbed with an existing one)."""
+        dock = QDockWidget(title, self)
+        dock.setObjectName(f"dock_{title.lower()}")
+        dock.setWidget(widget)
+        dock.setFeatures(
+            QDockWidget.DockWidgetFeature.DockWidgetMovable
+            | QDockWidget.DockWidgetFeature.DockWidgetFloatable
+            | QDockWidget.DockWidgetFeature.DockWidgetClosable
+        )
+        self.addDockWidget(area, dock)
+        if tab_with is not None and tab_with in self.docks:
+            self.tabifyDockWidget(self.docks[tab_with], dock)
+        self.docks[title] = dock
+        return dock
+
+    def _build_status(self) -> None:
+        bar = self.statusBar()
+        self.progress = QProgressBar()
+        self.progress.setRange(0, 1000)
+        self.progress.setFixedWidth(220)
+        self.progress.setFormat("opening run… %p%")
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.clicked.connect(self.cancel_open)
+        bar.addPermanentWidget(self.progress)
+        bar.addPermanentWidget(self.cancel_button)
+        self.progress.setVisible(False)
+        self.cancel_button.setVisible(False)
+        self.run_label = QLabel("")
+        bar.addPermanentWidget(self.run_label)
+
+    def _build_menus(self) -> None:
+        m = self.menuBar().addMenu("&File")
+        act = QAction("Open &run…", self)
+        act.setShortcut(QKeySequence.StandardKey.Open)
+        act.triggered.connect(self.ask_run)
+        m.addAction(act)
+        self.events_action = QAction("Open &events…", self)
+        self.events_action.triggered.connect(self.ask_events)
+        m.addAction(self.events_action)
+        self.underlay_action = QAction("Open &underlay…", self)
+        self.underlay_action.triggered.connect(self.ask_underlay)
+        m.addAction(self.underlay_action)
+        self.map_action = QAction("Open &map…", self)
+        self.map_action.triggered.connect(self.ask_map)
+        m.addAction(self.map_action)
+        self.recent_menu = m.addMenu("Recent runs")
+        self._fill_recent()
+        m.addSeparator()
+        act = QAction("Save window image…", self)
+        act.triggered.connect(self.ask_window_image)
+        m.addAction(act)
+        m.addSeparator()
+        act = QAction("&Quit", self)
+        act.setShortcut(QKeySequence.StandardKey.Quit)
+        act.triggered.connect(self.close)
+        m.addAction(act)
+        v = self.menuBar().addMenu("&View")
+        for dock in self.docks.values():
+            v.addAction(dock.toggleViewAction())
+        v.addSeparator()
+        act = QAction("Reset slice views", self)
+        act.triggered.connect(self.reset_views)
+        v.addAction(act)
+        h = self.menuBar().addMenu("&Help")
+        act = QAction("About voxelscope", self)
+        act.triggered.connect(self.about)
+        h.addAction(act)
+
+    # ------------------------------------------------------------------ messages
+
+    def offscreen(self) -> bool:
+        return QGuiApplication.platformName() in ("offscreen", "minimal")
+
+    def show_error(self, message: str) -> None:
+        """One line for the user: a dialog on screen, the status bar offscreen."""
+        self.statusBar().showMessage(message)
+        self.last_error = message
+        if not self.offscreen():
+            QMessageBox.warning(self, "voxelscope", message)
+
+    def _note(self, message: str) -> None:
+        self.statusBar().showMessage(message, 20000)
+
+    def about(self) -> None:
+        text = (
+            f"<p><b>voxelscope {voxelscope.__version__}</b></p>"
+            "<p>Inspect a first-level fMRI model voxel by voxel.</p>"
+            f"<p>{voxelscope.RESEARCH_CAUTION}</p>"
+        )
+        if self.offscreen():
+            self.statusBar().showMessage(voxelscope.RESEARCH_CAUTION)
+        else:
+            QMessageBox.about(self, "About voxelscope", text)
+
+    # ------------------------------------------------------------------ opening
+
+    def ask_run(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Open run", self._last_dir(), NIFTI_FILTER)
+        if path:
+            self.open_run(path)
+
+    def ask_events(self) -> None:
+        if self.state.run is None:
+            self.show_error("Open a run first (File > Open run).")
+            return
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Open events", self._last_dir(), "Events (*.tsv);;All files (*)"
+        )
+        if path:
+            self.open_events(path)
+
+    def ask_underlay(self) -> None:
+        if self.state.run is None:
+            self.show_error("Open a run first (File > Open run).")
+            return
+        path, _ = QFileDialog.getOpenFileName(self, "Open underlay", self._last_dir(), NIFTI_FILTER)
+        if path:
+            self.open_underlay(path)
+
+    def ask_map(self) -> None:
+        if self.state.run is None:
+            self.show_error("Open a run first (File > Open run).")
+            return
+        path, _ = QFileDialog.getOpenFileName(self, "Open map", self._last_dir(), NIFTI_FILTER)
+        if path:
+            self.open_map(path)
+
+    def ask_window_image(self) -> None:
+        path, _ = QFileDialog.getSaveFileName(self, "Save window image", "", "PNG (*.png)")
+        if path:
+            self.save_image(path)
+
+    def _last_dir(self) -> str:
+        run = self.state.run
+        return str(Path(run.path).parent) if run is not None else ""
+
+    def open_run(
+        self,
+        path,
+        events=None,
+        confounds=None,
+        anat=None,
+        stat_map=None,
+        tr=None,
+        voxel=None,
+        mm=None,
+        background: bool = True,
+    ) -> bool:
+        """Open a run (and companions); in the background with progress unless told not to.
+
+        Returns True when the open succeeded (foreground) or was started (background).
+        """
+        if self.job is not None:
+            self.show_error("A run is still opening; wait for it or cancel it first.")
+            return False
+        kwargs = dict(
+            run_path=str(path),
+            events=events,
+            confounds=confounds,
+            anat=anat,
+            stat_map=stat_map,
+            tr=tr,
+        )
+        self._pending_voxel, self._pending_mm = voxel, mm
+        if not background:
+            try:
+                bundle = load_bundle(**kwargs)
+            except VoxelscopeError as err:
+                self.show_error(str(err))
+                return False
+            return self._opened(bundle)
+        self.job = OpenRunJob(self, **kwargs)
+        self.job.progress.connect(self._progress)
+        self.job.done.connect(self._opened)
+        self.job.failed.connect(self.show_error)
+        self.job.finished.connect(self._job_finished)
+        self.progress.setValue(0)
+        self.progress.setVisible(True)
+        self.cancel_button.setVisible(True)
+        self.statusBar().showMessage(f"Opening {Path(path).name}…")
+        self.job.start()
+        return True
+
+    def cancel_open(self) -> None:
+        if self.job is not None:
+            self.job.cancel()
+
+    def _progress(self, fraction: float) -> None:
+        self.progress.setValue(int(1000 * min(max(fraction, 0.0), 1.0)))
+
+    def _job_finished(self) -> None:
+        if self.job is not None:
+            self.job.wait()
+            self.job.deleteLater()
+        self.job = None
+        self.progress.setVisible(False)
+        self.cancel_button.setVisible(False)
+
+    def _opened(self, bundle: RunBundle) -> bool:
+        voxel = self._pending_voxel
+        try:
+            if voxel is None and self._pending_mm is not None:
+                voxel = bundle.run.mm_to_voxel(self._pending_mm)
+            if voxel is not None:
+                voxel = bundle.run.check_voxel(voxel)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            voxel = None
+        self.state.set_bundle(bundle, voxel)
+        self._add_recent(str(bundle.run.path))
+        if self.after_open is not None:
+            hook, self.after_open = self.after_open, None
+            hook()
+        if not bundle.warnings:
+            self.statusBar().showMessage(f"Opened {Path(bundle.run.path).name}", 8000)
+        return True
+
+    def open_events(self, path, confounds=None) -> bool:
+        run = self.state.run
+        try:
+            conds = read_events(path)
+            conf = read_confounds(confounds) if confounds is not None else None
+            if conf is None and self.state.analysis is not None:
+                conf = self.state.analysis.confounds
+            analysis = Analysis(conds, run.n_volumes, run.tr, conf, run.reference_time_s)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        self.state.set_analysis(
+            analysis, Path(path), None if confounds is None else Path(confounds)
+        )
+        return True
+
+    def open_underlay(self, path) -> bool:
+        warnings: list[str] = []
+        try:
+            layer = load_underlay(path, self.state.run, warnings)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        self.state.set_underlay(layer)
+        for w in warnings:
+            self._note(w)
+        return True
+
+    def open_map(self, path) -> bool:
+        warnings: list[str] = []
+        try:
+            layer = load_map(path, self.state.run, warnings)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        self.state.set_map(layer)
+        for w in warnings:
+            self._note(w)
+        return True
+
+    def open_dropped(self, path: str) -> bool:
+        """A dropped NIfTI: a 4D image opens as the run, a 3D image as the map."""
+        try:
+            dims = check_nifti_kind(path)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        if dims == 4:
+            return self.open_run(path)
+        if self.state.run is None:
+            self.show_error(f"{path}: a 3D image; open a run first, then drop it as a map")
+            return False
+        return self.open_map(path)
+
+    # ------------------------------------------------------------------ recent files
+
+    def recent_runs(self) -> list[str]:
+        value = self.settings.value("recent_runs", [])
+        if isinstance(value, str):
+            value = [value]
+        return [str(v) for v in (value or [])]
+
+    def _add_recent(self, path: str) -> None:
+        items = [p for p in self.recent_runs() if p != path]
+        items.insert(0, path)
+        self.settings.setValue("recent_runs", items[:MAX_RECENT])
+        self._fill_recent()
+
+    def _fill_recent(self) -> None:
+        self.recent_menu.clear()
+        items = self.recent_runs()
+        for p in items:
+            act = QAction(Path(p).name, self)
+            act.setToolTip(p)
+            act.triggered.connect(lambda _c=False, p=p: self.open_run(p))
+            self.recent_menu.addAction(act)
+        self.recent_menu.setEnabled(bool(items))
+
+    # ------------------------------------------------------------------ drag and drop
+
+    def dragEnterEvent(self, ev) -> None:
+        urls = ev.mimeData().urls() if ev.mimeData().hasUrls() else []
+        if urls and all(_is_nifti(u.toLocalFile()) for u in urls):
+            ev.acceptProposedAction()
+        else:
+            ev.ignore()
+
+    def dropEvent(self, ev) -> None:
+        urls = ev.mimeData().urls()
+        if urls:
+            ev.acceptProposedAction()
+            path = urls[0].toLocalFile()
+            QTimer.singleShot(0, lambda: self.open_dropped(path))
+
+    # ------------------------------------------------------------------ misc
+
+    def _on_run(self) -> None:
+        run = self.state.run
+        has = run is not None
+        self.stack.setCurrentIndex(1 if has else 0)
+        for act in (self.events_action, self.underlay_action, self.map_action):
+            act.setEnabled(has)
+        if has:
+            name = Path(run.path).name
+            self.setWindowTitle(f"voxelscope — {name}")
+            x, y, z = run.shape
+            vs = "×".join(f"{v:g}" for v in run.voxel_size)
+            self.run_label.setText(
+                f"{name}   {x}×{y}×{z} × {run.n_volumes} volumes   {vs} mm   "
+                f"TR {run.tr:g} s   {''.join(run.axcodes)}"
+            )
+        else:
+            self.setWindowTitle("voxelscope")
+            self.run_label.setText("")
+
+    def set_contrast_text(self, text: str) -> bool:
+        """Type a contrast into Model (as the user would); returns whether it was accepted."""
+        self.model_panel.contrast.setText(text)
+        return self.state.set_contrast(text)
+
+    def reset_views(self) -> None:
+        for view in self.slices.views.values():
+            view.reset_view()
+
+    def save_image(self, path: str | os.PathLike[str], size: tuple[int, int] | None = None) -> Path:
+        """Render the window to a PNG, written atomically (temporary file, then replace).
+
+        With ``size``, an image of exactly that size: when the window cannot shrink that far
+        (its parts have minimum sizes), the rendering is scaled to fit.
+        """
+        path = Path(path)
+        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp.png")
+        pix = self.grab()
+        if size is not None and (pix.width(), pix.height()) != tuple(size):
+            pix = pix.scaled(
+                int(size[0]),
+                int(size[1]),
+                Qt.AspectRatioMode.IgnoreAspectRatio,
+                Qt.TransformationMode.SmoothTransformation,
+            )
+        if not pix.save(str(tmp), "PNG"):
+            tmp.unlink(missing_ok=True)
+            raise VoxelscopeError(f"{path}: could not write the image; check the folder")
+        os.replace(tmp, path)
+        return path

@@ -1,0 +1,252 @@
+"""Signal: the voxel's time series, each kernel's fitted signal and the residuals.
+
+Time runs in seconds (volume ``n`` at ``n * TR + reference time``). Condition blocks (as the
+model places them, after any onset shift) are light bands, one hue per condition. Values
+are in data units or in percent signal change relative to the voxel's mean
+(``100 * (y - mean) / mean``; residuals ``100 * r / mean``), a common practice.
+
+The curves are made once per kernel and only get new data (``setData``) when the voxel or
+the model changes.
+"""
+
+from __future__ import annotations
+
+import html
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import Qt
+from PySide6.QtGui import QColor, QFont
+from PySide6.QtWidgets import (
+    QButtonGroup,
+    QHBoxLayout,
+    QLabel,
+    QRadioButton,
+    QVBoxLayout,
+    QWidget,
+)
+
+from voxelscope.core.events import shift_conditions
+from voxelscope.core.hrf import KERNEL_NAMES
+from voxelscope.gui.colours import colours, condition_colour, kernel_colour
+from voxelscope.gui.state import ViewerState
+
+__all__ = ["SignalPanel", "to_percent"]
+
+
+def to_percent(values: np.ndarray, mean: float, centre: bool = True) -> np.ndarray:
+    """Percent signal change: ``100 * (v - mean) / mean`` (``100 * v / mean`` if not centred).
+
+    Examples
+    --------
+    >>> to_percent(np.array([100.0, 102.0]), 100.0).tolist()
+    [0.0, 2.0]
+    """
+    if not np.isfinite(mean) or mean == 0:
+        return np.full_like(np.asarray(values, float), np.nan)
+    v = np.asarray(values, float)
+    return 100.0 * ((v - mean) if centre else v) / mean
+
+
+def _style_plot(plot: pg.PlotItem, font: QFont) -> None:
+    for name in ("left", "bottom"):
+        ax = plot.getAxis(name)
+        ax.setTextPen(pg.mkPen("#303030"))
+        ax.setPen(pg.mkPen("#8a8a8a"))
+        ax.setStyle(tickFont=font)
+    plot.setMenuEnabled(False)
+    plot.hideButtons()
+
+
+class SignalPanel(QWidget):
+    """Signal: data, fitted signals, condition bands; residuals below on a linked time axis."""
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("signal_panel")
+        self.state = state
+        c = colours()
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(6, 4, 6, 4)
+        lay.setSpacing(2)
+        head = QHBoxLayout()
+        self.title = QLabel("Signal")
+        self.title.setObjectName("part_title")
+        head.addWidget(self.title)
+        head.addSpacing(12)
+        self.legend = QLabel("")
+        self.legend.setObjectName("legend")
+        self.legend.setTextFormat(Qt.TextFormat.RichText)
+        head.addWidget(self.legend, 1)
+        self.unit_data = QRadioButton("data values")
+        self.unit_pct = QRadioButton("% signal change")
+        self.unit_data.setChecked(True)
+        group = QButtonGroup(self)
+        group.addButton(self.unit_data)
+        group.addButton(self.unit_pct)
+        head.addWidget(self.unit_data)
+        head.addWidget(self.unit_pct)
+        lay.addLayout(head)
+
+        font = QFont()
+        font.setPixelSize(13)
+        label_style = {"color": "#303030", "font-size": "13px"}
+        self.canvas = pg.GraphicsLayoutWidget()
+        self.canvas.setBackground(c["panel_background"])
+        self.canvas.setObjectName("signal_canvas")
+        self.plot = self.canvas.addPlot(row=0, col=0)
+        self.resid = self.canvas.addPlot(row=1, col=0)
+        self.canvas.ci.layout.setRowStretchFactor(0, 3)
+        self.canvas.ci.layout.setRowStretchFactor(1, 1)
+        _style_plot(self.plot, font)
+        _style_plot(self.resid, font)
+        self.resid.setXLink(self.plot)
+        self.plot.getAxis("bottom").setStyle(showValues=False)
+        self.resid.setLabel("bottom", "time (s)", **label_style)
+        self.resid.setLabel("left", "residuals", **label_style)
+        for p in (self.plot, self.resid):
+            p.getAxis("left").setWidth(64)
+        lay.addWidget(self.canvas, 1)
+
+        grey = c["data_trace"]
+        self.data_curve = self.plot.plot(
+            pen=pg.mkPen(grey, width=1),
+            symbol="o",
+            symbolSize=4,
+            symbolPen=None,
+            symbolBrush=pg.mkBrush(grey),
+            name="data",
+        )
+        self.data_curve.setZValue(5)
+        self.zero = pg.InfiniteLine(angle=0, pos=0, movable=False, pen=pg.mkPen("#9a9a9a"))
+        self.resid.addItem(self.zero, ignoreBounds=True)
+        self.curves: dict[str, pg.PlotDataItem] = {}
+        self.resid_curves: dict[str, pg.PlotDataItem] = {}
+        for z, name in enumerate(KERNEL_NAMES):
+            col = kernel_colour(name)
+            self.curves[name] = self.plot.plot(pen=pg.mkPen(col, width=2.2), name=name)
+            self.curves[name].setZValue(10 + z)
+            self.resid_curves[name] = self.resid.plot(pen=pg.mkPen(col, width=1))
+            self.resid_curves[name].setZValue(10 + z)
+        for item in self.curves.values():
+            # wide antialiased paths are slow to stroke in software; segments are ~3x faster
+            item.curve.setSegmentedLineMode("on")
+        self._bands: list[pg.LinearRegionItem] = []
+        self._band_key = None
+        self.unit_data.toggled.connect(self._units_clicked)
+        state.run_changed.connect(self._on_run)
+        state.settings_changed.connect(self._on_settings)
+        state.fits_changed.connect(self._on_fits)
+        state.units_changed.connect(self._on_units)
+
+    # ------------------------------------------------------------------ input
+
+    def _units_clicked(self, data_checked: bool) -> None:
+        self.state.set_units("data" if data_checked else "percent")
+
+    # ------------------------------------------------------------------ state events
+
+    def _on_units(self, units: str) -> None:
+        for button, on in ((self.unit_data, units == "data"), (self.unit_pct, units != "data")):
+            button.blockSignals(True)
+            button.setChecked(on)
+            button.blockSignals(False)
+        self._on_fits(self.state.fits)
+
+    def _on_run(self) -> None:
+        self._band_key = None
+        self._update_bands()
+
+    def _on_settings(self, settings) -> None:
+        self._update_bands()
+
+    def _times(self) -> np.ndarray:
+        run = self.state.run
+        return np.arange(run.n_volumes) * run.tr + run.reference_time_s
+
+    def _update_bands(self) -> None:
+        analysis = self.state.analysis
+        shift = self.state.settings.onset_shift_s
+        key = (id(analysis), shift)
+        if key == self._band_key:
+            return
+        self._band_key = key
+        for band in self._bands:
+            self.plot.removeItem(band)
+        self._bands = []
+        if analysis is None:
+            return
+        alpha = round(255 * float(colours()["condition_band_alpha"]))
+        for n, cond in enumerate(shift_conditions(analysis.conditions, shift)):
+            col = QColor(condition_colour(n))
+            col.setAlpha(alpha)
+            for on, du in zip(cond.onsets, cond.durations):
+                band = pg.LinearRegionItem(
+                    values=(float(on), float(on + max(du, analysis.tr * 0.25))),
+                    movable=False,
+                    brush=pg.mkBrush(col),
+                    pen=pg.mkPen(None),
+                )
+                band.setZValue(-10)
+                self.plot.addItem(band, ignoreBounds=True)
+                self._bands.append(band)
+
+    def _on_fits(self, fits) -> None:
+        run, y = self.state.run, self.state.series
+        if run is None or y is None:
+            return
+        t = self._times()
+        pct = self.state.units == "percent"
+        mean = float(np.mean(y)) if np.all(np.isfinite(y)) else float("nan")
+
+        def scale(v, centre=True):
+            return to_percent(v, mean, centre) if pct else v
+
+        self.data_curve.setData(t, scale(y))
+        shown = {}
+        if fits is not None:
+            for f in fits.fits:
+                shown[f.kernel] = f
+        for name, curve in self.curves.items():
+            f = shown.get(name)
+            if f is None:
+                curve.setData([], [])
+                self.resid_curves[name].setData([], [])
+            else:
+                curve.setData(t, scale(f.fitted))
+                self.resid_curves[name].setData(t, scale(f.residuals, centre=False))
+        self.plot.setLabel(
+            "left",
+            "% change" if pct else "signal",
+            color="#303030",
+            **{"font-size": "13px"},
+        )
+        self.resid.setLabel(
+            "left",
+            "residuals (%)" if pct else "residuals",
+            color="#303030",
+            **{"font-size": "13px"},
+        )
+        self.plot.setXRange(float(t[0]), float(t[-1]), padding=0.01)
+        self.plot.enableAutoRange(axis="y")
+        self.resid.enableAutoRange(axis="y")
+        self._update_legend(shown)
+
+    def _update_legend(self, shown) -> None:
+        grey = colours()["data_trace"]
+        parts = [f'<span style="color:{grey}">&#9679;&#8212;</span>&nbsp;data']
+        for name in shown:
+            col = kernel_colour(name)
+            parts.append(
+                f'<span style="color:{col}; font-weight:bold">&#9473;&#9473;</span>'
+                f"&nbsp;{html.escape(name)}"
+            )
+        analysis = self.state.analysis
+        if analysis is not None:
+            for n, cond in enumerate(analysis.condition_names):
+                col = QColor(condition_colour(n))
+                parts.append(
+                    f'<span style="color:{col.name()}">&#9608;&#9608;</span>&nbsp;'
+                    f"{html.escape(cond)}"
+                )
+        self.legend.setText("&nbsp;&nbsp;&nbsp;".join(parts))

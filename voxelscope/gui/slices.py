@@ -1,0 +1,478 @@
+"""Slices: three orthogonal views through the current voxel, and the Map colour bar.
+
+Each view shows one plane of the R-A-S display layout (:mod:`voxelscope.gui.orient`): the
+underlay in grey, the thresholded statistic map on top, a crosshair at the current voxel
+and the orientation letters at the edges. Pixels have the voxel's size in mm, so the
+aspect ratio is true.
+
+Mouse: left click or drag selects a voxel; the wheel steps through slices; Ctrl + wheel
+zooms about the pointer; right or middle drag pans; double click resets the view.
+Keys (the view under focus): arrows move the voxel in the plane, Page Up / Page Down step
+the slice, Home resets the view.
+
+Items are made once; a change of voxel only replaces image data in place
+(``setImage(..., autoLevels=False)``) and moves the crosshair lines.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pyqtgraph as pg
+from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtGui import QColor, QFont, QPen
+from PySide6.QtWidgets import (
+    QGraphicsSimpleTextItem,
+    QHBoxLayout,
+    QLabel,
+    QSizePolicy,
+    QVBoxLayout,
+    QWidget,
+)
+
+from voxelscope.gui.colours import colours
+from voxelscope.gui.state import ViewerState
+
+__all__ = ["PLANES", "ColourBar", "SliceView", "SlicesPanel"]
+
+#: plane name -> (horizontal display axis, vertical display axis, normal display axis)
+PLANES = {"axial": (0, 1, 2), "coronal": (0, 2, 1), "sagittal": (1, 2, 0)}
+_TITLES = {"axial": "Axial", "coronal": "Coronal", "sagittal": "Sagittal"}
+_WORLD = "xyz"
+
+
+def overlay_rgba(
+    values: np.ndarray, lut: np.ndarray, limit: float, threshold: float, opacity: float
+) -> np.ndarray:
+    """RGBA uint8 image of a signed map slice: colour from ``lut``, hidden below threshold.
+
+    Examples
+    --------
+    >>> lut = np.zeros((256, 3), np.uint8)
+    >>> rgba = overlay_rgba(np.array([[0.5, 4.0], [np.nan, -5.0]]), lut, 5.0, 3.0, 1.0)
+    >>> rgba[..., 3].tolist()
+    [[0, 255], [0, 255]]
+    """
+    v = np.asarray(values, dtype=np.float32)
+    finite = np.isfinite(v)
+    vv = np.where(finite, v, 0.0)
+    idx = np.clip(((vv + limit) / (2.0 * limit) * 255.0 + 0.5).astype(np.int32), 0, 255)
+    rgba = np.empty((*v.shape, 4), dtype=np.uint8)
+    rgba[..., :3] = lut[idx]
+    show = finite & (np.abs(vv) >= threshold)
+    rgba[..., 3] = np.where(show, np.uint8(round(255 * min(max(opacity, 0.0), 1.0))), 0)
+    return rgba
+
+
+class _SliceBox(pg.ViewBox):
+    """ViewBox that turns left clicks/drags into picks and the wheel into slice steps."""
+
+    picked = Signal(float, float)
+    stepped = Signal(int)
+    reset = Signal()
+
+    def __init__(self) -> None:
+        super().__init__(lockAspect=True, enableMenu=False, invertY=False, defaultPadding=0.02)
+
+    def mouseClickEvent(self, ev) -> None:
+        if ev.button() == Qt.MouseButton.LeftButton:
+            ev.accept()
+            if ev.double():
+                self.reset.emit()
+                return
+            p = self.mapSceneToView(ev.scenePos())
+            self.picked.emit(p.x(), p.y())
+        else:
+            ev.ignore()
+
+    def mouseDoubleClickEvent(self, ev) -> None:
+        self.reset.emit()
+        ev.accept()
+
+    def mouseDragEvent(self, ev, axis=None) -> None:
+        if ev.button() == Qt.MouseButton.LeftButton:
+            ev.accept()
+            p = self.mapSceneToView(ev.scenePos())
+            self.picked.emit(p.x(), p.y())
+        elif ev.button() in (Qt.MouseButton.RightButton, Qt.MouseButton.MiddleButton):
+            ev.accept()
+            d = self.mapToView(ev.lastPos()) - self.mapToView(ev.pos())
+            self.translateBy(x=d.x(), y=d.y())
+        else:
+            ev.ignore()
+
+    def wheelEvent(self, ev, axis=None) -> None:
+        if ev.modifiers() & Qt.KeyboardModifier.ControlModifier:
+            super().wheelEvent(ev, axis)
+            return
+        ev.accept()
+        delta = ev.delta()
+        if delta:
+            self.stepped.emit(1 if delta > 0 else -1)
+
+
+class SliceView(pg.GraphicsView):
+    """One plane through the current voxel."""
+
+    def __init__(self, state: ViewerState, plane: str, parent: QWidget | None = None) -> None:
+        c = colours()
+        super().__init__(parent, background=c["slice_background"])
+        self.setObjectName(f"slice_{plane}")
+        self.state = state
+        self.plane = plane
+        self.h_axis, self.v_axis, self.n_axis = PLANES[plane]
+        self.setFocusPolicy(Qt.FocusPolicy.StrongFocus)
+        self.setMinimumSize(120, 120)
+        self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
+        self.box = _SliceBox()
+        self.setCentralItem(self.box)
+        self.under = pg.ImageItem(axisOrder="col-major")
+        self.over = pg.ImageItem(axisOrder="col-major")
+        self.over.setZValue(5)
+        self.box.addItem(self.under)
+        self.box.addItem(self.over)
+        cross = QColor(c["crosshair"])
+        cross.setAlpha(190)
+        pen = QPen(cross)
+        pen.setWidthF(1.2)
+        pen.setCosmetic(True)
+        self.vline = pg.InfiniteLine(angle=90, movable=False, pen=pen)
+        self.hline = pg.InfiniteLine(angle=0, movable=False, pen=pen)
+        for line in (self.vline, self.hline):
+            line.setZValue(10)
+            self.box.addItem(line, ignoreBounds=True)
+        text = QColor(c["slice_text"])
+        self._letters: dict[str, QGraphicsSimpleTextItem] = {}
+        font = QFont()
+        font.setPixelSize(15)
+        font.setBold(True)
+        for where in ("left", "right", "top", "bottom"):
+            item = QGraphicsSimpleTextItem(self.box)
+            item.setBrush(text)
+            item.setFont(font)
+            item.setZValue(20)
+            self._letters[where] = item
+        self.caption = QGraphicsSimpleTextItem(self.box)
+        cap_font = QFont()
+        cap_font.setPixelSize(13)
+        self.caption.setFont(cap_font)
+        self.caption.setBrush(text)
+        self.caption.setZValue(20)
+        self._set_letters()
+        self.box.sigResized.connect(self._place_labels)
+        self.box.picked.connect(self._picked)
+        self.box.stepped.connect(self._stepped)
+        self.box.reset.connect(self.reset_view)
+        self._under_vol: np.ndarray | None = None
+        self._under_factor = 1
+        self._map_vol: np.ndarray | None = None
+        self._shown_under: int | None = None
+        self._shown_map: int | None = None
+        self._sizes = (1.0, 1.0)
+        self._lut = None
+        state.run_changed.connect(self._on_run)
+        state.underlay_changed.connect(self._on_underlay)
+        state.map_changed.connect(self._on_map)
+        state.voxel_changed.connect(self._on_voxel)
+
+    # ------------------------------------------------------------------ geometry
+
+    def _set_letters(self) -> None:
+        from voxelscope.gui.orient import DisplayGrid
+
+        lo_h, hi_h = DisplayGrid.letters(self.h_axis)
+        lo_v, hi_v = DisplayGrid.letters(self.v_axis)
+        for where, letter in (("left", lo_h), ("right", hi_h), ("bottom", lo_v), ("top", hi_v)):
+            self._letters[where].setText(letter)
+        self._place_labels()
+
+    def _place_labels(self, *args) -> None:
+        r = self.box.rect()
+        m = 6.0
+        for where, item in self._letters.items():
+            b = item.boundingRect()
+            if where == "left":
+                pos = QPointF(r.left() + m, r.center().y() - b.height() / 2)
+            elif where == "right":
+                pos = QPointF(r.right() - m - b.width(), r.center().y() - b.height() / 2)
+            elif where == "top":
+                pos = QPointF(r.center().x() - b.width() / 2, r.top() + m)
+            else:
+                pos = QPointF(r.center().x() - b.width() / 2, r.bottom() - m - b.height())
+            item.setPos(pos)
+        self.caption.setPos(QPointF(r.left() + m, r.top() + m))
+
+    def view_point(self, display_ijk) -> QPointF:
+        """View coordinates (mm from the grid corner) of a display voxel's centre."""
+        sh, sv = self._sizes
+        return QPointF((display_ijk[self.h_axis] + 0.5) * sh, (display_ijk[self.v_axis] + 0.5) * sv)
+
+    def viewport_point(self, display_ijk):
+        """Viewport pixel position of a display voxel's centre (for tests and tools)."""
+        scene = self.box.mapViewToScene(self.view_point(display_ijk))
+        return self.mapFromScene(scene)
+
+    def reset_view(self) -> None:
+        grid = self.state.grid
+        if grid is None:
+            return
+        sh, sv = self._sizes
+        w = grid.display_shape[self.h_axis] * sh
+        h = grid.display_shape[self.v_axis] * sv
+        self.box.setRange(QRectF(0, 0, w, h), padding=0.03)
+
+    # ------------------------------------------------------------------ state events
+
+    def _on_run(self) -> None:
+        grid = self.state.grid
+        if grid is None:
+            return
+        self._sizes = (grid.display_voxel_mm[self.h_axis], grid.display_voxel_mm[self.v_axis])
+        self._map_vol = None
+        self.reset_view()
+
+    def _on_underlay(self) -> None:
+        grid, layer = self.state.grid, self.state.underlay
+        if grid is None or layer is None:
+            return
+        self._under_vol = np.ascontiguousarray(grid.display(layer.data))
+        self._under_factor = int(layer.factor)
+        self.under.setImage(self._slice(self._under_vol, 0), autoLevels=False, levels=layer.levels)
+        sh, sv = self._sizes
+        n_h = grid.display_shape[self.h_axis]
+        n_v = grid.display_shape[self.v_axis]
+        self.under.setRect(QRectF(0, 0, n_h * sh, n_v * sv))
+        self._shown_under = None
+        self._update_slices(force=True)
+
+    def _on_map(self) -> None:
+        grid, layer = self.state.grid, self.state.stat_map
+        if grid is None or layer is None or not self.state.map_settings.visible:
+            self._map_vol = None
+            self.over.setVisible(False)
+            return
+        self._map_vol = np.ascontiguousarray(grid.display(layer.data))
+        self._lut = pg.colormap.get(self.state.map_settings.colour_scale).getLookupTable(
+            nPts=256, alpha=False
+        )
+        sh, sv = self._sizes
+        n_h = grid.display_shape[self.h_axis]
+        n_v = grid.display_shape[self.v_axis]
+        self._shown_map = None
+        self._update_slices(force=True)
+        self.over.setRect(QRectF(0, 0, n_h * sh, n_v * sv))
+        self.over.setVisible(True)
+
+    def _on_voxel(self, voxel) -> None:
+        self._update_slices()
+
+    def _slice(self, vol: np.ndarray, index: int) -> np.ndarray:
+        return np.take(vol, index, axis=self.n_axis)
+
+    def _update_slices(self, force: bool = False) -> None:
+        grid = self.state.grid
+        if grid is None:
+            return
+        d = grid.to_display(self.state.voxel)
+        k = d[self.n_axis]
+        if self._under_vol is not None and (force or self._shown_under != k):
+            f = self._under_factor
+            fine = min(k * f + f // 2, self._under_vol.shape[self.n_axis] - 1)
+            self.under.setImage(self._slice(self._under_vol, fine), autoLevels=False)
+            self._shown_under = k
+        if self._map_vol is not None and (force or self._shown_map != k):
+            ms = self.state.map_settings
+            rgba = overlay_rgba(
+                self._slice(self._map_vol, k),
+                self._lut,
+                self.state.map_limit(),
+                ms.threshold,
+                ms.opacity,
+            )
+            self.over.setImage(rgba, autoLevels=False, levels=(0, 255))
+            self._shown_map = k
+        p = self.view_point(d)
+        self.vline.setPos(p.x())
+        self.hline.setPos(p.y())
+        run = self.state.run
+        world = run.voxel_to_mm(self.state.voxel)
+        self.caption.setText(
+            f"{_TITLES[self.plane]}\n{_WORLD[self.n_axis]} = {float(world[self.n_axis]):.1f} mm"
+        )
+
+    # ------------------------------------------------------------------ user input
+
+    def _picked(self, x: float, y: float) -> None:
+        grid = self.state.grid
+        if grid is None:
+            return
+        sh, sv = self._sizes
+        a, b = int(np.floor(x / sh)), int(np.floor(y / sv))
+        if not (
+            0 <= a < grid.display_shape[self.h_axis] and 0 <= b < grid.display_shape[self.v_axis]
+        ):
+            return
+        d = list(grid.to_display(self.state.voxel))
+        d[self.h_axis], d[self.v_axis] = a, b
+        self.state.set_voxel(grid.to_voxel(d))
+
+    def _stepped(self, step: int) -> None:
+        self.state.move_display(self.n_axis, step)
+
+    def keyPressEvent(self, ev) -> None:
+        key = ev.key()
+        moves = {
+            Qt.Key.Key_Left: (self.h_axis, -1),
+            Qt.Key.Key_Right: (self.h_axis, 1),
+            Qt.Key.Key_Up: (self.v_axis, 1),
+            Qt.Key.Key_Down: (self.v_axis, -1),
+            Qt.Key.Key_PageUp: (self.n_axis, 1),
+            Qt.Key.Key_PageDown: (self.n_axis, -1),
+        }
+        if key in moves:
+            self.state.move_display(*moves[key])
+            ev.accept()
+        elif key == Qt.Key.Key_Home:
+            self.reset_view()
+            ev.accept()
+        else:
+            super().keyPressEvent(ev)
+
+
+class ColourBar(QWidget):
+    """The Map colour bar with the threshold drawn on it (hidden values shaded)."""
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        c = colours()
+        self.state = state
+        self.setObjectName("colour_bar")
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(0, 0, 0, 0)
+        lay.setSpacing(2)
+        self.title = QLabel("Map")
+        self.title.setObjectName("colour_bar_title")
+        self.title.setAlignment(Qt.AlignmentFlag.AlignCenter)
+        self.title.setWordWrap(True)
+        lay.addWidget(self.title)
+        self.canvas = pg.GraphicsLayoutWidget()
+        self.canvas.setBackground(c["slice_background"])
+        self.canvas.setFixedWidth(92)
+        self.bar = pg.ColorBarItem(
+            values=(-1, 1),
+            colorMap=pg.colormap.get(state.map_settings.colour_scale),
+            interactive=False,
+            width=18,
+            pen=pg.mkPen(c["slice_text"]),
+            colorMapMenu=False,
+        )
+        axis = self.bar.axis
+        axis.setTextPen(pg.mkPen(c["slice_text"]))
+        axis.setPen(pg.mkPen(c["slice_text"]))
+        tick_font = QFont()
+        tick_font.setPixelSize(12)
+        axis.setStyle(tickFont=tick_font)
+        self.canvas.addItem(self.bar)
+        self.hidden = pg.LinearRegionItem(
+            values=(120, 136),
+            orientation="horizontal",
+            movable=False,
+            brush=pg.mkBrush(43, 45, 48, 200),
+            pen=pg.mkPen(c["crosshair"], width=1.5),
+        )
+        self.hidden.setZValue(10)
+        self.bar.addItem(self.hidden)
+        lay.addWidget(self.canvas, 1)
+        self.note = QLabel("")
+        self.note.setObjectName("colour_bar_note")
+        self.note.setAlignment(Qt.AlignmentFlag.AlignCenter)
+        self.note.setWordWrap(True)
+        lay.addWidget(self.note)
+        self.setFixedWidth(96)
+        state.map_changed.connect(self._on_map)
+        state.run_changed.connect(self._on_map)
+        self._on_map()
+
+    def _on_map(self) -> None:
+        layer = self.state.stat_map
+        if layer is None or not self.state.map_settings.visible:
+            self.setVisible(False)
+            return
+        ms = self.state.map_settings
+        lim = self.state.map_limit()
+        self.bar.setColorMap(pg.colormap.get(ms.colour_scale))
+        self.bar.setLevels((-lim, lim))
+        thr = min(abs(ms.threshold), lim)
+        lo = (-thr + lim) / (2 * lim) * 256
+        hi = (thr + lim) / (2 * lim) * 256
+        self.hidden.setRegion((lo, hi))
+        self.hidden.setVisible(thr > 0)
+        name = layer.path.name if layer.path is not None else "map"
+        for ext in (".nii.gz", ".nii"):
+            if name.endswith(ext):
+                name = name[: -len(ext)]
+        self.title.setText(_short(name))
+        self.title.setToolTip(str(layer.path))
+        self.note.setText(f"hidden\n|v| < {ms.threshold:g}")
+        self.setVisible(True)
+
+
+def _short(name: str, n: int = 14) -> str:
+    parts = name.split("_")
+    tail = parts[-1] if parts else name
+    return tail if len(tail) <= n else tail[: n - 1] + "…"
+
+
+class SlicesPanel(QWidget):
+    """Slices: the three views, the colour bar and the readout line."""
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("slices_panel")
+        self.state = state
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        outer.setSpacing(0)
+        row_widget = QWidget()
+        row_widget.setObjectName("slices_row")
+        row = QHBoxLayout(row_widget)
+        row.setContentsMargins(4, 4, 4, 4)
+        row.setSpacing(4)
+        self.views = {name: SliceView(state, name) for name in PLANES}
+        for view in self.views.values():
+            row.addWidget(view, 1)
+        self.colour_bar = ColourBar(state)
+        row.addWidget(self.colour_bar)
+        outer.addWidget(row_widget, 1)
+        self.readout = QLabel("")
+        self.readout.setObjectName("readout")
+        self.readout.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        outer.addWidget(self.readout)
+        state.voxel_changed.connect(self._on_voxel)
+        state.map_changed.connect(self._refresh)
+        state.underlay_changed.connect(self._refresh)
+
+    def _refresh(self) -> None:
+        if self.state.run is not None:
+            self._on_voxel(self.state.voxel)
+
+    def _on_voxel(self, voxel) -> None:
+        run = self.state.run
+        if run is None:
+            return
+        i, j, k = voxel
+        x, y, z = (float(v) for v in run.voxel_to_mm(voxel))
+        parts = [
+            f"<b>Voxel</b> ({i}, {j}, {k})",
+            f"<b>World</b> ({x:.1f}, {y:.1f}, {z:.1f}) mm",
+            f"<b>Mean</b> {float(run.mean_image()[i, j, k]):.6g}",
+        ]
+        under = self.state.underlay
+        if under is not None and under.path is not None:
+            f = under.factor
+            fi, fj, fk = (v * f + f // 2 for v in voxel)
+            parts.append(f"<b>Underlay</b> {float(under.data[fi, fj, fk]):.5g}")
+        layer = self.state.stat_map
+        if layer is not None:
+            v = float(layer.data[i, j, k])
+            parts.append(f"<b>Map</b> {v:.3f}" if np.isfinite(v) else "<b>Map</b> –")
+        self.readout.setText("&nbsp;&nbsp;&nbsp;&nbsp;".join(parts))

@@ -1,0 +1,268 @@
+"""The one observable state of the window.
+
+Views listen to :class:`ViewerState` and never to each other; user actions call its
+setters. Data flow is one way: input event -> state -> recompute -> views. A voxel's fits
+come from :meth:`voxelscope.core.model.Analysis.fit_voxel`, the same function the command
+line uses, so the window and ``voxelscope fit`` print the same numbers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+
+import numpy as np
+from PySide6.QtCore import QObject, Signal
+
+from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
+from voxelscope.gui import qtfix
+from voxelscope.gui.loading import Layer, RunBundle
+from voxelscope.gui.orient import DisplayGrid
+
+qtfix.install()
+
+__all__ = ["MapSettings", "ViewerState"]
+
+UNITS = ("data", "percent")
+
+
+@dataclass(frozen=True)
+class MapSettings:
+    """How the statistic map is drawn over the underlay.
+
+    Attributes
+    ----------
+    threshold : float
+        Values with ``|v| < threshold`` are not drawn (signed threshold: both tails).
+    opacity : float
+        0..1.
+    limit : float or None
+        Colour scale runs from ``-limit`` to ``+limit``; None: from the map (99.9th
+        percentile of ``|v|``).
+    visible : bool
+    colour_scale : str
+        A pyqtgraph colour map name (a diverging, perceptually uniform one).
+    """
+
+    threshold: float = 3.0
+    opacity: float = 0.8
+    limit: float | None = None
+    visible: bool = True
+    colour_scale: str = "CET-D1"
+
+    def with_(self, **changes) -> MapSettings:
+        return replace(self, **changes)
+
+
+class ViewerState(QObject):
+    """Current run, voxel, model settings, map settings and fits, with change signals."""
+
+    run_changed = Signal()
+    underlay_changed = Signal()
+    map_changed = Signal()
+    voxel_changed = Signal(object)
+    settings_changed = Signal(object)
+    fits_changed = Signal(object)
+    contrast_error = Signal(str)
+    units_changed = Signal(str)
+    message = Signal(str)
+
+    def __init__(self, parent: QObject | None = None) -> None:
+        super().__init__(parent)
+        self.bundle: RunBundle | None = None
+        self.grid: DisplayGrid | None = None
+        self.voxel: tuple[int, int, int] = (0, 0, 0)
+        self.settings = ModelSettings()
+        self.map_settings = MapSettings()
+        self.fits: VoxelFits | None = None
+        self.series: np.ndarray | None = None
+        self.units = "data"
+        self.contrast_text = ""
+        self.contrast_problem = ""
+        qtfix.start_timer(self)
+
+    # ------------------------------------------------------------------ accessors
+
+    @property
+    def run(self):
+        return None if self.bundle is None else self.bundle.run
+
+    @property
+    def analysis(self) -> Analysis | None:
+        return None if self.bundle is None else self.bundle.analysis
+
+    @property
+    def underlay(self) -> Layer | None:
+        return None if self.bundle is None else self.bundle.underlay
+
+    @property
+    def stat_map(self) -> Layer | None:
+        return None if self.bundle is None else self.bundle.stat_map
+
+    def map_limit(self) -> float:
+        """Colour scale limit in use (settings, else from the map)."""
+        if self.map_settings.limit is not None:
+            return float(self.map_settings.limit)
+        layer = self.stat_map
+        top = 1.0 if layer is None else float(layer.levels[1])
+        return top if top > 0 else 1.0
+
+    # ------------------------------------------------------------------ setters
+
+    def set_bundle(self, bundle: RunBundle, voxel: tuple[int, int, int] | None = None) -> None:
+        """A newly opened run; the voxel goes to ``voxel`` or the brain's centre."""
+        self.bundle = bundle
+        run = bundle.run
+        self.grid = DisplayGrid(run.shape, run.affine)
+        settings = ModelSettings()
+        if bundle.analysis is not None and self.contrast_text:
+            try:
+                bundle.analysis.check_contrast(self.contrast_text)
+                settings = settings.with_(contrast=self.contrast_text)
+            except VoxelscopeError:
+                self.contrast_text = ""
+        else:
+            self.contrast_text = ""
+        self.contrast_problem = ""
+        self.settings = settings
+        if bundle.stat_map is not None:
+            self.map_settings = self.map_settings.with_(limit=None)
+        self.voxel = run.check_voxel(voxel) if voxel is not None else self._centre()
+        self.fits = None
+        self.run_changed.emit()
+        self.underlay_changed.emit()
+        self.map_changed.emit()
+        self.settings_changed.emit(self.settings)
+        self.contrast_error.emit("")
+        self.voxel_changed.emit(self.voxel)
+        self.recompute()
+        for w in bundle.warnings:
+            self.message.emit(w)
+
+    def set_underlay(self, layer: Layer) -> None:
+        if self.bundle is None:
+            return
+        self.bundle.underlay = layer
+        self.underlay_changed.emit()
+
+    def set_map(self, layer: Layer | None) -> None:
+        if self.bundle is None:
+            return
+        self.bundle.stat_map = layer
+        self.map_settings = self.map_settings.with_(limit=None)
+        self.map_changed.emit()
+
+    def set_analysis(self, analysis: Analysis | None, events_path=None, confounds_path=None):
+        """New conditions/confounds for the open run (settings back to defaults)."""
+        if self.bundle is None:
+            return
+        self.bundle.analysis = analysis
+        self.bundle.events_path = events_path
+        self.bundle.confounds_path = confounds_path
+        self.settings = ModelSettings()
+        self.contrast_text = ""
+        self.contrast_problem = ""
+        self.run_changed.emit()
+        self.settings_changed.emit(self.settings)
+        self.contrast_error.emit("")
+        self.recompute()
+
+    def set_voxel(self, ijk) -> None:
+        """Move to a voxel (clipped into the grid)."""
+        run = self.run
+        if run is None:
+            return
+        v = tuple(int(min(max(int(a), 0), n - 1)) for a, n in zip(ijk, run.shape))
+        if v == self.voxel and self.series is not None:
+            return
+        self.voxel = v
+        self.voxel_changed.emit(v)
+        self.recompute()
+
+    def set_mm(self, xyz) -> None:
+        """Move to the voxel nearest a world position (mm)."""
+        if self.run is not None:
+            self.set_voxel(self.run.mm_to_voxel(xyz))
+
+    def move_display(self, axis: int, step: int) -> None:
+        """Move the voxel ``step`` voxels along a display axis (0 R, 1 A, 2 S)."""
+        if self.grid is None:
+            return
+        d = list(self.grid.to_display(self.voxel))
+        d[axis] += int(step)
+        self.set_voxel(self.grid.to_voxel(self.grid.clamp_display(d)))
+
+    def update_settings(self, **changes) -> bool:
+        """Change model settings and refit; on a model error the old settings stay."""
+        new = self.settings.with_(**changes)
+        if new == self.settings:
+            return True
+        old = self.settings
+        self.settings = new
+        if not self.recompute():
+            self.settings = old
+            self.settings_changed.emit(old)
+            return False
+        self.settings_changed.emit(new)
+        return True
+
+    def set_contrast(self, text: str) -> bool:
+        """Contrast as typed; a bad one shows an error and keeps the last good fit."""
+        self.contrast_text = text
+        expr = text.strip() or None
+        analysis = self.analysis
+        if analysis is None:
+            return False
+        try:
+            analysis.check_contrast(expr)
+        except VoxelscopeError as err:
+            self.contrast_problem = str(err)
+            self.contrast_error.emit(self.contrast_problem)
+            return False
+        ok = self.update_settings(contrast=expr)
+        self.contrast_problem = "" if ok else self.contrast_problem
+        if ok:
+            self.contrast_error.emit("")
+        return ok
+
+    def set_map_settings(self, **changes) -> None:
+        new = self.map_settings.with_(**changes)
+        if new != self.map_settings:
+            self.map_settings = new
+            self.map_changed.emit()
+
+    def set_units(self, units: str) -> None:
+        if units not in UNITS:
+            raise ValueError(f"units must be one of {UNITS}")
+        if units != self.units:
+            self.units = units
+            self.units_changed.emit(units)
+
+    # ------------------------------------------------------------------ recompute
+
+    def recompute(self) -> bool:
+        """Refit the current voxel under the current settings; emit ``fits_changed``."""
+        qtfix.top_up()
+        run = self.run
+        if run is None:
+            return False
+        try:
+            y = run.timeseries(self.voxel)
+            fits = None if self.analysis is None else self.analysis.fit_voxel(y, self.settings)
+        except VoxelscopeError as err:
+            self.message.emit(str(err))
+            return False
+        self.series = y
+        self.fits = fits
+        self.fits_changed.emit(fits)
+        return True
+
+    def _centre(self) -> tuple[int, int, int]:
+        run = self.run
+        mask = run.mask()
+        if mask.any():
+            idx = np.argwhere(mask)
+            centre = idx.mean(axis=0)
+            best = idx[np.argmin(((idx - centre) ** 2).sum(axis=1))]
+            return tuple(int(v) for v in best)  # type: ignore[return-value]
+        return tuple(int(n) // 2 for n in run.shape)  # type: ignore[return-value]
