@@ -6,7 +6,7 @@ Rows (``name, ours_s, reference_s, ratio, goal, ok``), all measured in this run:
   streaming pass over the same array (``data.sum(axis=-1)``): goal ratio <= 4.
 * The same map against the plain NumPy script a user would write (load with nibabel in
   float64, pinv of the design times the data reshaped to (T, V), residuals, t): goal >= 20x.
-* AR(1) map (rho_step 0.01) against a per-voxel statsmodels GLSAR loop, timed on 50 voxels
+* AR(1) map (exact per-voxel rho) against a per-voxel statsmodels GLSAR loop, timed on 50 voxels
   and extrapolated to the mask: goal >= 100x.
 * Peak memory (``ru_maxrss``) of ``voxelscope map`` in a subprocess on the uncompressed run,
   relative to the data size: goal <= 1.25. Also reported net of the interpreter's own
@@ -213,7 +213,7 @@ def _map_rows(path: Path, label: str, with_reference: bool) -> list[tuple]:
         t_glsar = per_voxel * int(mask.sum())
         rows.append(
             (
-                f"{label}: AR(1) map (rho_step 0.01) vs GLSAR loop (50 voxels, extrap.)",
+                f"{label}: AR(1) map (exact per-voxel rho) vs GLSAR loop (50 voxels, extrap.)",
                 t_ar1,
                 t_glsar,
                 t_glsar / t_ar1,

@@ -88,10 +88,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--rho-step",
         type=_rho_step,
-        default=0.01,
+        default=None,
         metavar="STEP|exact",
-        help="AR(1) only: voxels whose rho round to the same step share one prewhitening "
-        "(default 0.01); 'exact' prewhitens every voxel with its own rho (slow)",
+        help="AR(1) only: round each voxel's rho to this step before prewhitening "
+        "(default 'exact': every voxel's own rho)",
     )
     p.add_argument("-o", "--output", required=True, metavar="OUT.nii[.gz]", help="map to write")
     p.add_argument(

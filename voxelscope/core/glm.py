@@ -20,8 +20,10 @@ by ``sqrt(1 - rho^2)``, row ``t`` replaced by ``y_t - rho y_{t-1}``; then OLS on
 transformed data (one pass). Unlike a transform that drops the first observation, no row is
 lost, so ``df = n - rank``. Fitted signal and residuals are reported in data units
 (``X b`` and ``y - X b``); ``sigma2`` and ``r2`` are described in :class:`FitResult`.
-For many voxels, ``rho_step`` groups voxels whose rho round to the same bin and shares one
-prewhitened solve per bin.
+Every voxel is whitened with its own rho, for one voxel or a million alike: the whitened
+normal equations are quadratic in rho, so they are assembled from a few products of the
+design with the data and solved per voxel as small p x p systems (see ``_ar1_solve``); the
+residual variance comes from explicitly whitened residuals.
 
 Examples
 --------
@@ -329,7 +331,8 @@ class FitResult:
     degenerate : bool per voxel
         True where there is no residual variance (constant or exactly fitted voxel).
     cov_unscaled : ndarray (n_groups, p, p)
-        ``(X'X)^-1`` per whitening group; ``group`` gives each voxel's group.
+        ``(X'X)^-1`` (OLS: one group for all voxels) or ``(X*'X*)^-1`` per voxel (AR(1));
+        ``group`` gives each voxel's row.
     """
 
     noise: str
@@ -420,7 +423,8 @@ def fit(
     contrast : sequence of float, length p
     noise : {"ols", "ar1"}
     rho_step : float, optional
-        Under AR(1), round rho to this step and share one solve per bin (maps). None uses
+        Under AR(1), round rho to this step before whitening (kept for comparisons with
+        binned methods). None uses
         each voxel's own rho.
     keep_series : bool
         Keep ``fitted`` and ``residuals`` (n x n_voxels); maps turn this off.
@@ -459,6 +463,40 @@ def _contrast_variance(prep: PreparedDesign, c: np.ndarray) -> float:
     return v
 
 
+def _ar1_solve(
+    prep: PreparedDesign, Y: np.ndarray, rho: np.ndarray, c: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Exact Prais-Winsten GLS for every voxel's own rho, without a loop over voxels.
+
+    With ``X*`` the transformed design, the normal equations are quadratic in rho:
+    ``X*'X* = (1 + r^2) A - r L - r^2 E`` with ``A = X'X``,
+    ``L = sum_t (x_t x_{t-1}' + x_{t-1} x_t')`` and ``E = x_0 x_0' + x_{n-1} x_{n-1}'``,
+    and ``X*'y* = (1 + r^2) X'y - r (X[1:]'y[:-1] + X[:-1]'y[1:]) - r^2 (x_0 y_0 +
+    x_{n-1} y_{n-1})``. Columns are scaled to unit norm first for conditioning.
+
+    Returns betas (p, V), ``(X*'X*)^-1`` per voxel (V, p, p) and ``c'(X*'X*)^-1 c`` (V,).
+    """
+    X = prep.X
+    norms = np.linalg.norm(X, axis=0)
+    Xs = X / norms
+    A = Xs.T @ Xs
+    L = Xs[1:].T @ Xs[:-1]
+    L = L + L.T
+    E = np.outer(Xs[0], Xs[0]) + np.outer(Xs[-1], Xs[-1])
+    r = rho[:, None, None]
+    G = (1.0 + r * r) * A - r * L - (r * r) * E  # (V, p, p)
+    xy = Xs.T @ Y
+    lag = Xs[1:].T @ Y[:-1] + Xs[:-1].T @ Y[1:]
+    ends = Xs[0][:, None] * Y[0] + Xs[-1][:, None] * Y[-1]
+    g = (1.0 + rho * rho) * xy - rho * lag - (rho * rho) * ends  # (p, V)
+    Ginv = np.linalg.inv(G)
+    Bs = np.einsum("vij,jv->iv", Ginv, g)
+    B = Bs / norms[:, None]
+    cov = Ginv / np.outer(norms, norms)
+    cvar = np.einsum("i,vij,j->v", c, cov, c)
+    return B, cov, cvar
+
+
 def _fit_checked(
     prep: PreparedDesign,
     Y: np.ndarray,
@@ -493,27 +531,17 @@ def _fit_checked(
     rss_w = rss
     if noise == "ar1":
         rho = np.where(flat, 0.0, ar1_rho(R))  # 0 for constant voxels (no residuals)
-        key = rho if rho_step is None else np.round(rho / rho_step) * rho_step
-        key = np.clip(key, -_RHO_LIMIT, _RHO_LIMIT)
-        levels, group = np.unique(key, return_inverse=True)
-        group = group.reshape(-1)
-        covs = []
-        rss_w = np.empty(v)
-        for g, r_level in enumerate(levels):
-            sel = group == g if levels.size > 1 else slice(None)
-            pw = prepare(prais_winsten(prep.X, float(r_level)), prep.names)
-            Yw = prais_winsten(Y[:, sel], float(r_level))
-            Bg = pw.pinv @ Yw
-            Rw = Yw - pw.X @ Bg
-            B[:, sel] = Bg
-            rss_w[sel] = np.einsum("ij,ij->j", Rw, Rw)
-            covs.append(pw.cov_unscaled)
         if rho_step is not None:
-            rho = levels[group]
+            rho = np.round(rho / rho_step) * rho_step
+        rho = np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
+        B, cov, cvar = _ar1_solve(prep, Y, rho, c)
         R = Y - prep.X @ B
         rss = np.einsum("ij,ij->j", R, R)
-        cov = np.stack(covs)
-        cvar = np.einsum("i,gij,j->g", c, cov, c)[group]
+        # whitened residuals: the Prais-Winsten transform is linear, so whiten y - X b
+        Rw0 = np.sqrt(1.0 - rho * rho) * R[0]
+        Rw = R[1:] - rho * R[:-1]
+        rss_w = Rw0 * Rw0 + np.einsum("ij,ij->j", Rw, Rw)
+        group = np.arange(v)
     else:
         group = np.zeros(v, dtype=np.int64)
         cov = prep.cov_unscaled[None]

@@ -8,9 +8,8 @@ explicitly in float64, so a raw-BOLD-like run (mean 10000) keeps its digits. Chu
 few thousand voxels, so the working set stays small and memory stays bounded whatever the
 size of the run.
 
-Under AR(1) noise, voxels whose rho round to the same ``rho_step`` (0.01 by default) share
-one prewhitened solve (see :func:`voxelscope.core.glm.fit`); ``rho_step=None`` gives every
-voxel its own exact prewhitening (slow, for checks).
+Under AR(1) noise every voxel is prewhitened with its own rho, exactly as a single voxel
+is (see :func:`voxelscope.core.glm.fit`); ``rho_step`` optionally rounds rho first.
 
 Values outside the mask, and at degenerate voxels (constant over time, or fitted exactly),
 are 0 in ``t``, ``z``, ``beta`` and ``variance`` and 1 in ``p``: never a huge t. Such voxels
@@ -81,7 +80,7 @@ class MapResult:
     degenerate : ndarray of bool (X, Y, Z)
         Fitted voxels without residual variance (constant over time, or fitted exactly).
     rho : ndarray (X, Y, Z) float32 or None
-        AR(1) coefficient (binned by ``rho_step``) under AR(1); None for OLS.
+        AR(1) coefficient per voxel under AR(1); None for OLS.
     kernel : str
     contrast : str
         The contrast expression.
@@ -359,7 +358,7 @@ def compute_map(
     settings: ModelSettings,
     kernel: str | None = None,
     mask: np.ndarray | None = None,
-    rho_step: float | None = 0.01,
+    rho_step: float | None = None,
     chunk_voxels: int = DEFAULT_CHUNK_VOXELS,
     progress: ProgressCallback | None = None,
     stats: Sequence[str] = STAT_NAMES,
@@ -381,7 +380,7 @@ def compute_map(
     mask : ndarray of bool, optional
         Voxels to fit; default ``run.mask()``.
     rho_step : float or None
-        AR(1) only: bin width of rho for shared prewhitening (None: exact per voxel).
+        AR(1) only: round rho to this step first (None, the default: exact per voxel).
     chunk_voxels : int
         Voxels per fit call.
     progress : callable, optional
