@@ -1,8 +1,8 @@
 """Clusters of a statistic map: connected voxels above a threshold, with their peaks.
 
 A cluster is a connected component of the voxels that pass the threshold, found with
-:func:`scipy.ndimage.label` under 6-, 18- or 26-connectivity (faces; faces and edges;
-faces, edges and corners). The threshold is applied as:
+:func:`scipy.ndimage.label` under 6-, 18- or 26-connectivity (neighbours sharing a side;
+a side or an edge; a side, an edge or a corner). The threshold is applied as:
 
 ``"abs"``
     ``|stat| > threshold``; positive and negative voxels that touch form one cluster.

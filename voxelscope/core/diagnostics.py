@@ -123,11 +123,11 @@ def ljung_box(r: np.ndarray, lags: int = LJUNG_BOX_LAGS) -> tuple[float, float]:
     n = r.size
     if n <= lags + 1:
         return math.nan, math.nan
-    a = acf(r, lags)
-    if not np.all(np.isfinite(a)):
+    autocorr = acf(r, lags)
+    if not np.all(np.isfinite(autocorr)):
         return math.nan, math.nan
     k = np.arange(1, lags + 1)
-    q = float(n * (n + 2) * np.sum(a[1:] ** 2 / (n - k)))
+    q = float(n * (n + 2) * np.sum(autocorr[1:] ** 2 / (n - k)))
     return q, float(stats.chi2.sf(q, lags))
 
 
