@@ -29,7 +29,7 @@ import tempfile
 from collections.abc import Iterable
 from pathlib import Path
 
-from .errors import InputError
+from .errors import InputError, OutputExistsError
 
 __all__ = ["check_outputs", "write_bytes", "write_text"]
 
@@ -47,8 +47,8 @@ def _file_mode(final: Path) -> int:
     return 0o666 & ~mask
 
 
-def _refuse(path: Path) -> InputError:
-    return InputError(f"{path} already exists; use --force to overwrite it")
+def _refuse(path: Path) -> OutputExistsError:
+    return OutputExistsError(path)
 
 
 def check_outputs(paths: Iterable[str | os.PathLike[str]], force: bool = False) -> None:

@@ -18,3 +18,14 @@ class InputError(VoxelscopeError):
 
 class ModelError(VoxelscopeError):
     """A model that cannot be fitted as asked (rank deficiency, too few volumes, ...)."""
+
+
+class OutputExistsError(InputError):
+    """An output file is already there and may not be replaced without ``force``.
+
+    ``path`` is the file; front ends ask (window) or say "use --force" (command line).
+    """
+
+    def __init__(self, path) -> None:
+        self.path = path
+        super().__init__(f"{path} already exists; use --force to overwrite it")

@@ -30,7 +30,7 @@ from typing import Any
 import nibabel as nib
 import numpy as np
 
-from .errors import InputError
+from .errors import InputError, OutputExistsError
 
 __all__ = ["check_output_path", "write_map"]
 
@@ -84,7 +84,7 @@ def check_output_path(
         if p is not None and _same_file(out, Path(p).expanduser()):
             raise InputError(f"{out} is an input of this command; write the map to another file")
     if not force and (out.exists() or out.is_symlink()):
-        raise InputError(f"{out} already exists; use --force to overwrite it")
+        raise OutputExistsError(out)
     return out
 
 
@@ -182,7 +182,7 @@ def write_map(
         with open(tmp, "rb+") as fh:
             os.fsync(fh.fileno())
         if not force and (out.exists() or out.is_symlink()):
-            raise InputError(f"{out} already exists; use --force to overwrite it")
+            raise OutputExistsError(out)
         os.replace(tmp, out)
     except OSError as err:
         raise InputError(f"{out}: cannot write the map ({err.strerror or err})") from None
