@@ -261,18 +261,85 @@ def test_bad_inputs_raise_one_line_errors():
 
 
 def test_workers_do_not_change_results_and_blas_threads_are_restored():
-    """One worker or two give identical maps; the BLAS thread count is the same after a map
-    as before (maps run BLAS on one thread and restore it)."""
-    from voxelscope.core import maps
+    """One worker or two give identical maps; BLAS runs on one thread during a map and has
+    the same thread counts after it as before (read with threadpoolctl, an outside tool)."""
+    from threadpoolctl import threadpool_info
+
+    def blas_threads():
+        return [d["num_threads"] for d in threadpool_info() if d["user_api"] == "blas"]
 
     rng = np.random.default_rng(10)
     run = ArrayRun(_data(rng, ar=0.3))
     a = _analysis()
-    handles = maps._openblas_handles()
-    before = [int(get()) for _set, get in handles]
+    before = blas_threads()
+    inside: list[list[int]] = []
     for s in (ModelSettings(), ModelSettings(noise="ar1")):
         m1 = compute_map(run, a, s, "gamma", chunk_voxels=9, workers=1)
-        m2 = compute_map(run, a, s, "gamma", chunk_voxels=9, workers=2)
+        m2 = compute_map(
+            run,
+            a,
+            s,
+            "gamma",
+            chunk_voxels=9,
+            workers=2,
+            progress=lambda f: inside.append(blas_threads()) if f > 0 else None,
+        )
         np.testing.assert_array_equal(m1.t, m2.t)
         np.testing.assert_array_equal(m1.p, m2.p)
-    assert [int(get()) for _set, get in handles] == before
+    assert inside and all(n == 1 for row in inside for n in row)
+    assert blas_threads() == before
+
+
+def _stores(tmp_path, data):
+    """The same data as .nii (memory-mapped), .nii.gz through the cache and in memory."""
+    plain = _write(tmp_path, data)
+    gz = _write(tmp_path, data, name="sub-01_task-x_bold.nii.gz")
+    return {
+        "memmap": open_run(plain),
+        "cache": open_run(gz, cache_dir=tmp_path / "cache"),
+        "memory": open_run(gz, use_cache=False),
+    }
+
+
+def test_maps_equal_across_stores_and_block_sizes(tmp_path):
+    """The volume-major memory map, the voxel-major cache and the in-memory store give the
+    same OLS and AR(1) maps (each store hands its blocks in its own layout), for a brain-like
+    mask with gaps (partial blocks) and block sizes that do not divide the mask; all equal
+    the per-voxel single-fit reference (glm.fit on float64 series) to 1e-5 relative."""
+    rng = np.random.default_rng(21)
+    data = _data(rng, ar=0.3)
+    runs = _stores(tmp_path, data)
+    assert {k: r.storage for k, r in runs.items()} == {k: k for k in runs}
+    a = _analysis()
+    mask = rng.random(SHAPE) < 0.7
+    for s in (ModelSettings(contrast="tone"), ModelSettings(contrast="tone", noise="ar1")):
+        ref = _per_voxel(a, data, s, "double-gamma", noise=s.noise)
+        maps = {
+            (name, block): compute_map(run, a, s, "double-gamma", mask=mask, chunk_voxels=block)
+            for name, run in runs.items()
+            for block in (5, 64, 1024)
+        }
+        first = maps[("memmap", 1024)]
+        np.testing.assert_allclose(first.t[mask], ref[mask], rtol=1e-5, atol=1e-6)
+        assert np.all(first.t[~mask] == 0) and np.array_equal(first.mask, mask)
+        for m in maps.values():
+            for stat in ("t", "beta", "variance", "z", "p"):
+                np.testing.assert_allclose(m.stat(stat), first.stat(stat), rtol=1e-6, atol=1e-7)
+
+
+def test_t_only_map_equals_t_of_full_map():
+    """A map asked only for t (the fit then skips p) has the same t, bit for bit, as a map
+    with every statistic; its p and z, when asked, equal scipy.stats.t / norm of that t."""
+    rng = np.random.default_rng(22)
+    run = ArrayRun(_data(rng))
+    a = _analysis()
+    s = ModelSettings(contrast="tap")
+    full = compute_map(run, a, s, "gamma")
+    only_t = compute_map(run, a, s, "gamma", stats=("t",))
+    np.testing.assert_array_equal(only_t.t, full.t)
+    assert only_t.p is None and only_t.z is None
+    good = full.mask
+    p_ref = 2 * stats.t.sf(np.abs(full.t[good].astype(np.float64)), full.df)
+    np.testing.assert_allclose(full.p[good], p_ref, rtol=1e-4)
+    z_ref = np.sign(full.t[good]) * stats.norm.isf(p_ref / 2)
+    np.testing.assert_allclose(full.z[good], z_ref, rtol=1e-4, atol=1e-5)

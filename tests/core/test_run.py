@@ -635,3 +635,66 @@ def test_returned_arrays_are_plain_writable_copies(tmp_path, suffix, use_cache, 
         arr[...] = 0
     np.testing.assert_array_equal(run.volume(2), data[..., 2])
     np.testing.assert_array_equal(run.timeseries((1, 1, 1)), data[1, 1, 1])
+
+
+@pytest.mark.parametrize("suffix,use_cache,storage", STORES)
+@pytest.mark.parametrize("scaled", [False, True], ids=["float32", "int16-scaled"])
+def test_iter_blocks_equal_nibabel_every_store(tmp_path, suffix, use_cache, storage, scaled):
+    """iter_blocks yields float32 (T, n) blocks whose columns equal nibabel's get_fdata() at
+    the C-order flat indices given (np.unravel_index in C order, as nibabel's array is
+    indexed); every in-mask voxel appears exactly once, none outside the mask; blocks are
+    at most block_voxels wide. Random masks with gaps, so blocks are partly contiguous."""
+    rng = np.random.default_rng(31)
+    shape = (7, 6, 5, 11)
+    if scaled:
+        raw = rng.integers(-3000, 3000, shape).astype(np.int16)
+        path = _save(tmp_path / f"b{suffix}", raw, slope=0.5, inter=3.0)
+    else:
+        path = _save(tmp_path / f"b{suffix}", rng.normal(100, 5, shape).astype(np.float32))
+    ref = nib.load(str(path)).get_fdata()
+    run = open_run(path, use_cache=use_cache, cache_dir=tmp_path / "c")
+    assert run.storage == storage
+    for mask in (np.ones(shape[:3], bool), rng.random(shape[:3]) < 0.6):
+        for block in (1, 4, 37, 1024):
+            seen = []
+            for idx, Y in run.iter_blocks(mask, block_voxels=block):
+                assert idx.dtype == np.int64 and Y.dtype == np.float32
+                assert Y.shape == (11, idx.size) and 1 <= idx.size <= block
+                expect = ref[np.unravel_index(idx, shape[:3])].T  # (T, n)
+                np.testing.assert_allclose(Y, expect, rtol=1e-6)
+                seen.append(idx)
+            seen = np.concatenate(seen)
+            assert seen.size == int(mask.sum()) and np.unique(seen).size == seen.size
+            np.testing.assert_array_equal(np.sort(seen), np.flatnonzero(mask))
+            assert mask.ravel()[seen].all()
+
+
+@pytest.mark.parametrize("suffix,use_cache,storage", STORES)
+def test_iter_blocks_never_let_callers_change_the_run(tmp_path, suffix, use_cache, storage):
+    """A block is either a read-only view of the run's data (writing raises) or a copy
+    (writing leaves the run as it was); nibabel's reading of the file is the reference."""
+    data = np.random.default_rng(32).normal(size=(4, 3, 5, 6)).astype(np.float32)
+    path = _save(tmp_path / f"w{suffix}", data)
+    run = open_run(path, use_cache=use_cache, cache_dir=tmp_path / "c")
+    assert run.storage == storage
+    for mask in (np.ones(run.shape, bool), np.arange(60).reshape(run.shape) % 3 == 0):
+        for _idx, Y in run.iter_blocks(mask, block_voxels=8):
+            if Y.flags.writeable:
+                Y[...] = -1.0
+            else:
+                with pytest.raises(ValueError):
+                    Y[0, 0] = -1.0
+    np.testing.assert_array_equal(run.volume(2), nib.load(str(path)).get_fdata()[..., 2])
+    full = np.concatenate([Y for _i, Y in run.iter_blocks(np.ones(run.shape, bool))], axis=1)
+    np.testing.assert_array_equal(np.sort(full.ravel()), np.sort(data.ravel()))
+
+
+def test_iter_blocks_default_mask_and_bad_masks():
+    """Without a mask iter_blocks covers run.mask(); a mask of the wrong shape is a one-line
+    InputError; an empty mask yields nothing (functional.nii from nibabel's test data)."""
+    run = open_run(FUNCTIONAL)
+    idx = np.concatenate([i for i, _ in run.iter_blocks()])
+    np.testing.assert_array_equal(np.sort(idx), np.flatnonzero(run.mask()))
+    assert list(run.iter_blocks(np.zeros(run.shape, bool))) == []
+    with pytest.raises(InputError, match="mask shape"):
+        next(run.iter_blocks(np.ones((2, 2, 2), bool)))

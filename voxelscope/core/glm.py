@@ -319,7 +319,8 @@ class FitResult:
     betas : ndarray (p, n_voxels)
     beta : contrast estimate ``c'b``
     variance : ``sigma2 * c'(X'X)^-1 c`` (whitened X under AR(1))
-    t, p : t statistic and its two-sided p value
+    t, p : t statistic and its two-sided p value (``p`` is None when the fit was asked
+        for without it, ``want_p=False``)
     df : int
         ``n - rank``.
     sigma2 : residual variance ``sum(r^2) / df`` (of the whitened residuals under AR(1))
@@ -341,7 +342,7 @@ class FitResult:
     beta: np.ndarray
     variance: np.ndarray
     t: np.ndarray
-    p: np.ndarray
+    p: np.ndarray | None
     df: int
     sigma2: np.ndarray
     r2: np.ndarray
@@ -360,8 +361,11 @@ class FitResult:
     @property
     def z(self) -> np.ndarray:
         """z score with the same two-sided p as ``t`` (sign of ``t``); 0 where degenerate."""
+        p = self.p
+        if p is None:  # fitted with want_p=False
+            p = 2.0 * special.stdtr(self.df, -np.abs(self.t)) if self.df > 0 else self.t * np.nan
         with np.errstate(invalid="ignore"):
-            z = np.sign(self.t) * stats.norm.isf(self.p / 2.0)
+            z = np.sign(self.t) * stats.norm.isf(p / 2.0)
         z = np.where(np.isfinite(z), z, np.where(np.isfinite(self.t), np.sign(self.t) * 38.0, 0.0))
         return np.where(self.degenerate, 0.0, z)
 
@@ -375,8 +379,12 @@ def ar1_rho(residuals: np.ndarray) -> np.ndarray:
     r = np.asarray(residuals, dtype=float)
     if r.ndim == 1:
         r = r[:, None]
+    return _rho_of(r, np.einsum("ij,ij->j", r, r))
+
+
+def _rho_of(r: np.ndarray, den: np.ndarray) -> np.ndarray:
+    """:func:`ar1_rho` of residuals ``r`` (n, V) whose ``sum(r^2)`` per column is ``den``."""
     num = np.einsum("ij,ij->j", r[1:], r[:-1])
-    den = np.einsum("ij,ij->j", r, r)
     with np.errstate(invalid="ignore", divide="ignore"):
         rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
     return np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
@@ -412,6 +420,7 @@ def fit(
     noise: str = "ols",
     rho_step: float | None = None,
     keep_series: bool = True,
+    want_p: bool = True,
 ) -> FitResult:
     """Fit a design to one or many time series and evaluate one t contrast.
 
@@ -419,7 +428,9 @@ def fit(
     ----------
     design : DesignMatrix, PreparedDesign or ndarray (n, p)
     Y : ndarray, shape (n,) or (n, n_voxels)
-        Any float dtype; computed in float64.
+        Any float dtype and memory layout (a C- or Fortran-ordered or strided view, e.g.
+        the transpose of voxel-major rows); computed in float64 in a copy that keeps
+        ``Y``'s layout, so ``Y`` itself is never changed.
     contrast : sequence of float, length p
     noise : {"ols", "ar1"}
     rho_step : float, optional
@@ -428,6 +439,9 @@ def fit(
         each voxel's own rho.
     keep_series : bool
         Keep ``fitted`` and ``residuals`` (n x n_voxels); maps turn this off.
+    want_p : bool
+        Compute ``p`` (default). Maps that keep only ``t``, ``beta`` or ``variance`` turn
+        this off to save the t distribution's tail; ``p`` is then None (``z`` still works).
 
     Returns
     -------
@@ -447,7 +461,7 @@ def fit(
         raise InputError(f"noise model must be 'ols' or 'ar1', not '{noise}'")
 
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        return _fit_checked(prep, Y, c, noise, rho_step, keep_series)
+        return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p)
 
 
 def _contrast_variance(prep: PreparedDesign, c: np.ndarray) -> float:
@@ -483,8 +497,14 @@ def _ar1_solve(
     L = Xs[1:].T @ Xs[:-1]
     L = L + L.T
     E = np.outer(Xs[0], Xs[0]) + np.outer(Xs[-1], Xs[-1])
+    # G = (1 + r^2) A - r L - r^2 E, (V, p, p), built in place (two buffers, same rounding)
     r = rho[:, None, None]
-    G = (1.0 + r * r) * A - r * L - (r * r) * E  # (V, p, p)
+    r2 = r * r
+    G = np.multiply(1.0 + r2, A)
+    tmp = np.multiply(r, L)
+    G -= tmp
+    G -= np.multiply(r2, E, out=tmp)
+    del tmp
     xy = Xs.T @ Y
     lag = Xs[1:].T @ Y[:-1] + Xs[:-1].T @ Y[1:]
     ends = Xs[0][:, None] * Y[0] + Xs[-1][:, None] * Y[-1]
@@ -492,7 +512,7 @@ def _ar1_solve(
     Ginv = np.linalg.inv(G)
     Bs = np.einsum("vij,jv->iv", Ginv, g)
     B = Bs / norms[:, None]
-    cov = Ginv / np.outer(norms, norms)
+    cov = np.divide(Ginv, np.outer(norms, norms), out=Ginv)
     cvar = np.einsum("i,vij,j->v", c, cov, c)
     return B, cov, cvar
 
@@ -504,10 +524,17 @@ def _fit_checked(
     noise: str,
     rho_step: float | None,
     keep_series: bool,
+    want_p: bool = True,
 ) -> FitResult:
-    n = prep.X.shape[0]
+    X = prep.X
+    n = X.shape[0]
     v = Y.shape[1]
-    Y = np.array(Y, dtype=np.float64, order="C", copy=True)
+    # One float64 working copy. OLS keeps Y's own layout (order "K"): a block of voxel-major
+    # rows arrives as an F-ordered view and a block of volumes C-ordered, and neither is
+    # transposed. AR(1) works in C order: rho is a ratio of sums over time whose rounding
+    # depends on the layout, and t is sensitive to rho near 1, so a C-order copy keeps
+    # AR(1) results the same to the last digit whichever store the data come from.
+    Y = np.array(Y, dtype=np.float64, order="C" if noise == "ar1" else "K", copy=True)
     total = Y.sum(axis=0)
     bad = None
     if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
@@ -524,22 +551,26 @@ def _fit_checked(
     flat = tss <= 1e-20 * mean * mean * n
 
     B = prep.pinv @ Y
-    R = Y - prep.X @ B
+    R = np.empty_like(Y)  # residuals, in place: R = Y - X B
+    np.matmul(X, B, out=R)
+    np.subtract(Y, R, out=R)
     rss = np.einsum("ij,ij->j", R, R)
     df = prep.df
     rho = None
     rss_w = rss
     if noise == "ar1":
-        rho = np.where(flat, 0.0, ar1_rho(R))  # 0 for constant voxels (no residuals)
+        rho = np.where(flat, 0.0, _rho_of(R, rss))  # 0 for constant voxels (no residuals)
         if rho_step is not None:
             rho = np.round(rho / rho_step) * rho_step
         rho = np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
         B, cov, cvar = _ar1_solve(prep, Y, rho, c)
-        R = Y - prep.X @ B
+        np.matmul(X, B, out=R)
+        np.subtract(Y, R, out=R)
         rss = np.einsum("ij,ij->j", R, R)
         # whitened residuals: the Prais-Winsten transform is linear, so whiten y - X b
         Rw0 = np.sqrt(1.0 - rho * rho) * R[0]
-        Rw = R[1:] - rho * R[:-1]
+        Rw = np.multiply(R[:-1], rho, out=Y[1:])  # Y is not needed any more
+        np.subtract(R[1:], Rw, out=Rw)
         rss_w = Rw0 * Rw0 + np.einsum("ij,ij->j", Rw, Rw)
         group = np.arange(v)
     else:
@@ -556,22 +587,26 @@ def _fit_checked(
     if df <= 0:
         degenerate[:] = True
     if centred:  # the constant column need not be all ones
-        B[prep.constant_index] += mean / prep.X[0, prep.constant_index]
+        B[prep.constant_index] += mean / X[0, prep.constant_index]
     beta = c @ B
     variance = sigma2 * cvar
     t = beta / np.sqrt(variance)
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
-    if df > 0:
+    pval = None
+    if not want_p:
+        pass
+    elif df > 0:
         pval = 2.0 * special.stdtr(df, -np.abs(t))
     else:
         pval = np.full(v, np.nan)
     if degenerate.any():
         for a in (variance, t, pval):
-            a[degenerate] = np.nan
+            if a is not None:
+                a[degenerate] = np.nan
         r2[flat] = np.nan
     fitted = residuals = None
     if keep_series:
-        fitted = prep.X @ B
+        fitted = X @ B
         residuals = R
     if bad is not None:  # voxels with NaN or infinite samples have no fit at all
         B[:, bad] = np.nan

@@ -1,12 +1,14 @@
 """Whole-volume maps: the single-voxel fit, run on every voxel of a mask.
 
-A map goes through exactly the code that fits one clicked voxel:
-:meth:`voxelscope.core.model.Analysis.fit_many`, i.e. :func:`voxelscope.core.glm.fit`,
-called on chunks of voxels (the columns of ``Y``). Each chunk's data are float32 as
-stored; :func:`~voxelscope.core.glm.fit` centres every voxel and computes its residuals
-explicitly in float64, so a raw-BOLD-like run (mean 10000) keeps its digits. Chunks are a
-few thousand voxels, so the working set stays small and memory stays bounded whatever the
-size of the run.
+A map goes through exactly the code that fits one clicked voxel,
+:func:`voxelscope.core.glm.fit` with the analysis's prepared design and contrast (as
+:meth:`voxelscope.core.model.Analysis.fit_many` calls it), on blocks of voxels (the
+columns of ``Y``). Blocks come from :meth:`voxelscope.core.run.Run.iter_blocks` in the
+store's own layout (a view of the mapped file or of the voxel-major cache where it can
+be, never a transposing copy); :func:`~voxelscope.core.glm.fit` centres every voxel and
+computes its residuals explicitly in float64, so a raw-BOLD-like run (mean 10000) keeps
+its digits. Blocks are about a thousand voxels, so the float64 working set stays in cache
+and memory stays bounded whatever the size of the run.
 
 Under AR(1) noise every voxel is prewhitened with its own rho, exactly as a single voxel
 is (see :func:`voxelscope.core.glm.fit`); ``rho_step`` optionally rounds rho first.
@@ -37,9 +39,11 @@ from typing import Any
 
 import numpy as np
 from scipy import special
+from threadpoolctl import threadpool_limits
 
 from .cache import Cancelled
 from .errors import InputError
+from .glm import fit
 from .model import Analysis, ModelSettings
 
 __all__ = [
@@ -55,11 +59,12 @@ __all__ = [
 #: Statistics a map can hold.
 STAT_NAMES = ("t", "beta", "variance", "z", "p")
 
-#: Voxels per chunk: about 5 MB of float32 for 300 volumes, so the float64 working copies
-#: stay in cache and memory stays bounded. Profiled on the 64x64x40x300 benchmark run
-#: (2 cores): 4096 was fastest for OLS and AR(1); 2048 lost 10-40 % to per-call overhead
-#: (AR(1) prepares one whitened design per rho bin per chunk), 16384 lost to cache misses.
-DEFAULT_CHUNK_VOXELS = 4096
+#: Voxels per block: 1024 x 300 volumes of float64 is 2.4 MB, so each block's working
+#: copies stay in cache. Measured on the 64x64x40x300 benchmark run (2 cores, CPU time per
+#: map, best of several): 1024 was fastest for OLS (0.136 s) and AR(1) (0.65 s); 2048 was
+#: within 3 %, 256-512 lost 5-15 % to per-call overhead and 4096 lost 25-45 % to cache
+#: misses.
+DEFAULT_CHUNK_VOXELS = 1024
 
 ProgressCallback = Callable[[float], "bool | None"]
 
@@ -205,6 +210,13 @@ class ArrayRun:
             idx = flat[a : a + chunk_voxels]
             yield idx, np.asarray(rows[idx], dtype=np.float32)
 
+    def iter_blocks(
+        self, mask: np.ndarray | None = None, block_voxels: int = 1024
+    ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """(flat_idx, float32 (T, n)) blocks in C order, as :meth:`Run.iter_blocks`."""
+        for idx, rows in self.iter_chunks(mask, chunk_voxels=block_voxels):
+            yield idx, rows.T
+
     def voxel_to_mm(self, ijk: Any) -> np.ndarray:
         ijk = np.asarray(ijk, dtype=np.float64)
         return ijk @ self.affine[:3, :3].T + self.affine[:3, 3]
@@ -212,84 +224,17 @@ class ArrayRun:
 
 # ----------------------------------------------------------------------------- BLAS threads
 #
-# A map is thousands of skinny matrix products ((p x T) @ (T x 2048), p ~ 10). A threaded
-# BLAS splits each one over its threads and then waits for them; on a 2-core machine this
-# made every product 3-30x slower than one thread (measured: 8x300 @ 300x2048 took 0.3 ms
-# on one thread, 1.9-35 ms on two, the more so the busier the machine). Maps therefore run
-# with BLAS limited to one thread and restore the previous setting afterwards.
-
-_BLAS_SET = (
-    "openblas_set_num_threads",
-    "scipy_openblas_set_num_threads64_",
-    "scipy_openblas_set_num_threads",
-)
-_BLAS_GET = (
-    "openblas_get_num_threads",
-    "scipy_openblas_get_num_threads64_",
-    "scipy_openblas_get_num_threads",
-)
-_blas_handles: list[tuple[Any, Any]] | None = None
+# A map is many skinny matrix products ((p x T) @ (T x 1024), p ~ 10). A threaded BLAS
+# splits each one over its threads and then waits for them; on a 2-core machine this made
+# every product 3-30x slower than one thread, the more so the busier the machine. Maps
+# therefore run with BLAS limited to one thread (threadpoolctl, which finds every BLAS
+# library loaded in the process) and restore the previous setting afterwards; the
+# parallelism comes from the worker threads fitting blocks side by side instead.
 
 
-def _openblas_handles() -> list[tuple[Any, Any]]:
-    """(set, get) functions of the OpenBLAS libraries loaded in this process."""
-    global _blas_handles
-    if _blas_handles is not None:
-        return _blas_handles
-    import ctypes
-    import glob
-
-    paths: set[str] = set()
-    try:
-        with open("/proc/self/maps") as fh:
-            for line in fh:
-                part = line.split()
-                if len(part) >= 6 and "openblas" in os.path.basename(part[-1]).lower():
-                    paths.add(part[-1])
-    except OSError:  # not Linux: look beside numpy
-        base = os.path.dirname(os.path.dirname(np.__file__))
-        for pattern in ("numpy.libs/*openblas*", "numpy/.dylibs/*openblas*"):
-            paths.update(glob.glob(os.path.join(base, pattern)))
-    handles = []
-    for path in sorted(paths):
-        try:
-            lib = ctypes.CDLL(path)
-        except OSError:
-            continue
-        setter = next((getattr(lib, n) for n in _BLAS_SET if hasattr(lib, n)), None)
-        getter = next((getattr(lib, n) for n in _BLAS_GET if hasattr(lib, n)), None)
-        if setter is not None and getter is not None:
-            setter.argtypes, setter.restype = [ctypes.c_int], None
-            getter.argtypes, getter.restype = [], ctypes.c_int
-            handles.append((setter, getter))
-    _blas_handles = handles
-    return handles
-
-
-class _single_thread_blas:
-    """Context manager: BLAS on one thread inside, the previous thread count restored after.
-
-    Does nothing where the BLAS library cannot be found (then maps are only slower).
-    """
-
-    def __enter__(self) -> _single_thread_blas:
-        self._saved: list[tuple[Any, int]] = []
-        try:
-            for setter, getter in _openblas_handles():
-                n = int(getter())
-                if n > 1:
-                    setter(1)
-                    self._saved.append((setter, n))
-        except Exception:  # pragma: no cover - never let thread tuning break a map
-            self._saved = []
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        for setter, n in self._saved:
-            try:
-                setter(n)
-            except Exception:  # pragma: no cover
-                pass
+def _one_blas_thread() -> threadpool_limits:
+    """Context manager: BLAS on one thread inside, the previous thread counts after."""
+    return threadpool_limits(1, user_api="blas")
 
 
 def _check_mask(run: Any, mask: np.ndarray | None) -> np.ndarray:
@@ -305,12 +250,16 @@ def _check_mask(run: Any, mask: np.ndarray | None) -> np.ndarray:
     return mask.astype(bool, copy=False)
 
 
-def _z_from_t(t: np.ndarray, df: int) -> np.ndarray:
-    """z with the same two-sided p as t; finite even where p underflows."""
+def _z_from_t(t: np.ndarray, df: int, p: np.ndarray | None = None) -> np.ndarray:
+    """z with the same two-sided p as t; finite even where p underflows.
+
+    ``p``, when given, is the fit's ``2 * T_df(-|t|)``; its half is that lower tail exactly
+    (halving is exact in binary floating point), so the t tail is not computed twice.
+    """
     # z = sign(t) * Phi^-1(1 - p/2) with p/2 = T_df(-|t|); computed from the lower tail
     # so that tiny p keep their precision (ndtri of a small number is accurate).
-    lower = special.stdtr(df, -np.abs(t))
-    with np.errstate(divide="ignore"):
+    lower = special.stdtr(df, -np.abs(t)) if p is None else p / 2.0
+    with np.errstate(divide="ignore", invalid="ignore"):
         z = -special.ndtri(lower)
     z = np.where(np.isfinite(z), z, 38.0)
     return np.sign(t) * z
@@ -347,7 +296,7 @@ def _scatter(
     if "p" in want:
         flat["p"][idx] = np.where(good, res.p, 1.0)
     if "z" in want:
-        flat["z"][idx] = np.where(good, _z_from_t(t, res.df), 0.0)
+        flat["z"][idx] = np.where(good, _z_from_t(t, res.df, res.p), 0.0)
     if rho is not None and res.rho is not None:
         rho[idx] = res.rho
 
@@ -369,8 +318,9 @@ def compute_map(
     Parameters
     ----------
     run : Run
-        Anything with ``shape``, ``n_volumes``, ``affine``, ``iter_chunks(mask,
-        chunk_voxels)`` and ``mask()`` (see :class:`voxelscope.core.run.Run`).
+        Anything with ``shape``, ``n_volumes``, ``affine``, ``mask()`` and
+        ``iter_blocks(mask, block_voxels)`` (or only ``iter_chunks(mask, chunk_voxels)``);
+        see :class:`voxelscope.core.run.Run`.
     analysis : Analysis
         Conditions and confounds of the run.
     settings : ModelSettings
@@ -382,14 +332,14 @@ def compute_map(
     rho_step : float or None
         AR(1) only: round rho to this step first (None, the default: exact per voxel).
     chunk_voxels : int
-        Voxels per fit call.
+        Voxels per fit call (one block); default :data:`DEFAULT_CHUNK_VOXELS`.
     progress : callable, optional
         ``progress(fraction)`` after each chunk; returning False cancels.
     stats : sequence of str
         Statistics to keep (any of :data:`STAT_NAMES`).
     workers : int, optional
-        Threads fitting chunks while the next one is read; default ``min(2, cores)``.
-        Results do not depend on it.
+        Threads fitting blocks side by side (each with single-threaded BLAS) while the
+        next block is read; default ``min(2, cores)``. Results do not depend on it.
 
     Returns
     -------
@@ -437,8 +387,14 @@ def compute_map(
     n_workers = _workers(workers)
     step = rho_step if ar1 else None
 
+    need_p = "p" in want or "z" in want
+    noise = settings.noise
+
     def fit_chunk(data: np.ndarray):
-        return analysis.fit_many(np.asarray(data).T, kernel, settings, rho_step=step)
+        # what Analysis.fit_many does, with p only when a map needs it
+        return fit(
+            _prep, data, weights, noise=noise, rho_step=step, keep_series=False, want_p=need_p
+        )
 
     def store(idx: np.ndarray, res) -> None:
         nonlocal done
@@ -447,8 +403,11 @@ def compute_map(
         if progress is not None and progress(done / total if total else 1.0) is False:
             raise Cancelled("the map was cancelled")
 
-    chunks = run.iter_chunks(mask, chunk_voxels=int(chunk_voxels))
-    with _single_thread_blas():
+    if hasattr(run, "iter_blocks"):
+        chunks = run.iter_blocks(mask, block_voxels=int(chunk_voxels))
+    else:  # a run with only the row interface: (n, T) rows, transposed (a view)
+        chunks = ((i, d.T) for i, d in run.iter_chunks(mask, chunk_voxels=int(chunk_voxels)))
+    with _one_blas_thread():
         if n_workers == 1:
             for idx, data in chunks:
                 store(idx, fit_chunk(data))

@@ -5,7 +5,8 @@ and returns a :class:`Run`. Voxel data are served from one of three stores:
 
 ``"memmap"``
     An uncompressed ``.nii`` is memory-mapped as it lies on disk (x fastest). A voxel's
-    time series is one strided read; whole-volume passes go slab by slab.
+    time series is one strided read; whole-volume passes read the file in place, block by
+    block (:meth:`Run.iter_blocks`), or slab by slab in C order (:meth:`Run.iter_chunks`).
 ``"cache"``
     A compressed run is decompressed once into the voxel-major cache
     (:mod:`voxelscope.core.cache`); a time series is then one contiguous row.
@@ -80,8 +81,9 @@ MASK_FRACTION = 0.2
 #: ... where the robust maximum is this percentile of the valid voxels' means.
 MASK_PERCENTILE = 98.0
 
-# Float32 bytes of one slab read while iterating an uncompressed run.
-_SLAB_BYTES = 128 * 1024 * 1024
+# Float32 bytes of one slab copied while iterating an uncompressed run in C order
+# (iter_chunks); iter_blocks reads the file in place and copies at most one block.
+_SLAB_BYTES = 32 * 1024 * 1024
 
 _TIME_FACTORS = {"sec": 1.0, "unknown": 1.0, "msec": 1e-3, "usec": 1e-6}
 
@@ -116,6 +118,21 @@ class _VoxelMajor:
                 yield idx, np.ascontiguousarray(block[idx - lo])
             else:
                 yield idx, np.asarray(self.data[idx])
+
+    def blocks(self, flat: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """(T, n) blocks: ``rows.T`` of the stored rows, a read-only view where the block's
+        voxels are consecutive rows, else a copy of the selected rows (F order either way)."""
+        for a in range(0, flat.size, block):
+            idx = flat[a : a + block]
+            lo, hi = int(idx[0]), int(idx[-1]) + 1
+            if hi - lo == idx.size:
+                rows = self.data[lo:hi].view(np.ndarray)
+                rows.flags.writeable = False  # a view of the run itself
+            elif hi - lo <= 2 * idx.size + 256:
+                rows = self.data[lo:hi][idx - lo]
+            else:
+                rows = self.data[idx]
+            yield idx, rows.T
 
     def volume(self, t: int) -> np.ndarray:
         return np.array(self.data[:, t], dtype=np.float32).reshape(self.shape)
@@ -170,6 +187,34 @@ class _RawMemmap:
             for a in range(0, sel.size, chunk):
                 cols = tmp2[:, local[a : a + chunk]]
                 yield sel[a : a + chunk], self._scale32(np.ascontiguousarray(cols.T))
+
+    def blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """(T, n) blocks straight from the file's layout, in Fortran (x fastest) order.
+
+        The file is a C-order (T, X*Y*Z) array whose column ``f`` is the voxel with Fortran
+        flat index ``f``; a block is a run of ``block`` in-mask columns. Where those columns
+        are consecutive and the file holds unscaled native float32, the block is a read-only
+        view of the mapped file (no copy); otherwise it is a float32 copy of just the
+        block's columns, (T, n) in C order (``block * T * 4`` bytes).
+        """
+        t = self.raw.shape[3]
+        data2d = np.asarray(self.raw).T.reshape(t, -1)  # a view: (T, V) C order
+        ff = np.flatnonzero(mask.ravel(order="F"))
+        if ff.size == 0:
+            return
+        cflat = np.ravel_multi_index(np.unravel_index(ff, self.shape, order="F"), self.shape)
+        cflat = cflat.astype(np.int64, copy=False)
+        plain = not self.scaled and self.raw.dtype == np.dtype(np.float32)
+        for a in range(0, ff.size, block):
+            sel = ff[a : a + block]
+            lo, hi = int(sel[0]), int(sel[-1]) + 1
+            cols = data2d[:, lo:hi]
+            if hi - lo != sel.size:
+                cols = cols[:, sel - lo]  # a copy of the in-mask columns only
+            if plain:
+                yield cflat[a : a + block], cols
+            else:
+                yield cflat[a : a + block], self._scale32(cols)
 
     def volume(self, t: int) -> np.ndarray:
         return self._scale32(self.raw[..., t])
@@ -394,6 +439,62 @@ class Run:
         if flat.size == 0:
             return
         yield from self._store.chunks(flat, int(chunk_voxels))
+
+    def iter_blocks(
+        self, mask: np.ndarray | None = None, block_voxels: int = 1024
+    ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        """Iterate over the voxels of a mask in the store's own order, as (T, n) blocks.
+
+        The fast path for whole-volume passes (maps): each block comes straight from the
+        layout of the data, without transposing copies. An uncompressed run is walked in
+        file order (x fastest, then y, then z) and a block is, where it can be, a
+        read-only view of the mapped file; the voxel-major cache and the in-memory store
+        are walked in C order and a block is the transpose of their rows (a view where
+        the block's voxels are consecutive). Otherwise a block is a float32 copy of just
+        its voxels, so memory stays bounded by ``block_voxels * T * 4`` bytes.
+
+        Parameters
+        ----------
+        mask : ndarray of bool, optional
+            Shape ``run.shape``; default :meth:`mask`.
+        block_voxels : int
+            Voxels per block (at most).
+
+        Yields
+        ------
+        flat_idx : ndarray
+            int64 (n,), C-order flat indices (``np.ravel_multi_index(ijk, run.shape)``)
+            of the block's voxels. All blocks together hold each index of
+            ``np.flatnonzero(mask)`` once, but not necessarily in ascending order
+            (Fortran order for an uncompressed run).
+        data : ndarray
+            float32 (T, n), the scaled time series as columns. It may be a read-only view
+            of the run's data (possibly not contiguous): copy it before changing it.
+
+        Examples
+        --------
+        >>> from nibabel.testing import data_path
+        >>> run = open_run(Path(data_path) / "functional.nii")
+        >>> idx, data = next(run.iter_blocks(np.ones(run.shape, bool), block_voxels=100))
+        >>> ijk = np.unravel_index(idx[5], run.shape)  # C-order flat index -> (i, j, k)
+        >>> data.shape, data.dtype.name, bool(np.allclose(data[:, 5], run.timeseries(ijk)))
+        ((20, 100), 'float32', True)
+        """
+        mask = self.mask() if mask is None else np.asarray(mask, dtype=bool)
+        if mask.shape != self.shape:
+            raise InputError(
+                f"mask shape {mask.shape} does not match the grid {self._grid_text()} "
+                f"of {self.path}"
+            )
+        if block_voxels < 1:
+            raise ValueError("block_voxels must be at least 1")
+        if isinstance(self._store, _RawMemmap):
+            yield from self._store.blocks(mask, int(block_voxels))
+            return
+        flat = np.flatnonzero(mask).astype(np.int64)
+        if flat.size == 0:
+            return
+        yield from self._store.blocks(flat, int(block_voxels))
 
     def volume(self, t: int) -> np.ndarray:
         """Volume ``t`` (0-based) as float32 (X, Y, Z)."""
