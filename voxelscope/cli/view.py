@@ -22,6 +22,7 @@ def _size(text: str) -> tuple[int, int]:
 
 
 def _add_screenshot_args(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--show", action="store_true", help="start in Show mode (step through marks)")
     p.add_argument(
         "--screenshot", metavar="PNG", help="render the window offscreen to this PNG and exit"
     )
@@ -83,6 +84,7 @@ def run_view(args: argparse.Namespace) -> int:
     if args.run is None and not args.session:
         raise InputError("voxelscope view needs a RUN (a 4D NIfTI file) or --session FILE")
     return _launch(
+        show=args.show or None,
         run=args.run,
         events=args.events,
         confounds=args.confounds,
@@ -98,7 +100,7 @@ def run_view(args: argparse.Namespace) -> int:
 
 
 def run_demo(args: argparse.Namespace) -> int:
-    return _launch(demo=True, screenshot=args.screenshot, size=args.size)
+    return _launch(demo=True, screenshot=args.screenshot, size=args.size, show=args.show or None)
 
 
 def open_empty_window() -> int:

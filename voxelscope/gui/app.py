@@ -37,8 +37,9 @@ def demo_paths() -> dict:
         "anat": folder / "sub-demo_T1w.nii.gz",
         "stat_map": folder / "sub-demo_task-tonetap_pipeline-t.nii.gz",
         "voxel": None,
+        "marks": folder / "demo_marks.tsv",
     }
-    for key in ("events", "confounds", "anat", "stat_map"):
+    for key in ("events", "confounds", "anat", "stat_map", "marks"):
         if not out[key].is_file():
             out[key] = None
     truth = folder / "demo_truth.json"
@@ -61,6 +62,46 @@ def _ensure_platform(screenshot: str | None) -> None:
             os.environ["QT_QPA_PLATFORM"] = "offscreen"
 
 
+def _demo_extras(window, marks_path) -> None:
+    """The demo's contrast and its prepared marks."""
+    from voxelscope.core.errors import VoxelscopeError
+    from voxelscope.core.marks import read_marks_tsv
+
+    window.set_contrast_text(DEMO_CONTRAST)
+    if marks_path is not None:
+        try:
+            window.state.set_marks(read_marks_tsv(marks_path))
+        except VoxelscopeError as err:
+            window.show_error(str(err))
+
+
+def _save_session(window, path, ask: bool) -> bool:
+    """``--save-session``: write the session; an existing file is replaced only when asked."""
+    from voxelscope.core.errors import VoxelscopeError
+    from voxelscope.gui.session_io import save_window_session
+
+    force = False
+    if Path(path).exists():
+        if not ask or window.offscreen():
+            window.show_error(
+                f"{path} already exists; choose another session file name or delete it"
+            )
+            return False
+        from PySide6.QtWidgets import QMessageBox
+
+        answer = QMessageBox.question(window, "Save session", f"Replace {path}?")
+        if answer != QMessageBox.StandardButton.Yes:
+            return False
+        force = True
+    try:
+        out = save_window_session(window, path, force=force)
+    except VoxelscopeError as err:
+        window.show_error(str(err))
+        return False
+    window.statusBar().showMessage(f"Saved the session to {out}", 8000)
+    return True
+
+
 def launch(
     run: str | None = None,
     events: str | None = None,
@@ -73,6 +114,10 @@ def launch(
     screenshot: str | None = None,
     size: tuple[int, int] = (1600, 1000),
     demo: bool = False,
+    session: str | None = None,
+    save_session: str | None = None,
+    show: bool = False,
+    recovery: bool = True,
 ) -> int:
     """Open the inspection window; with ``screenshot``, render it to a PNG and return.
 
@@ -92,13 +137,25 @@ def launch(
         atomically and return without entering the event loop.
     size : (width, height)
     demo : bool
-        Open the demo run (sample_data) with its events, confounds, anatomical underlay and
-        earlier t map, at the tone cluster's voxel.
+        Open the demo run (sample_data) with its events, confounds, anatomical underlay,
+        earlier t map and prepared marks, at the tone cluster's voxel.
+    session : path, optional
+        Restore a saved session (``voxelscope view --session FILE``); the run and the other
+        inputs come from it, so ``run`` and its companions are not used. A moved input is
+        asked for on screen; offscreen it is skipped with one status line.
+    save_session : path, optional
+        Save the session to this file once the view is open (``--save-session``); an
+        existing file is only replaced after asking (never offscreen).
+    show : bool
+        Start in Show mode.
+    recovery : bool
+        On screen, offer to restore the view of a window that did not close cleanly.
 
     Returns
     -------
     int
-        0 on success; 2 when the screenshot could not be made (the run did not open).
+        0 on success; 2 when the screenshot could not be made (the run did not open) or the
+        session could not be saved.
     """
     _ensure_platform(screenshot)
     from PySide6.QtWidgets import QApplication
@@ -112,9 +169,11 @@ def launch(
 
     pg.setConfigOptions(antialias=True, imageAxisOrder="col-major")
     from voxelscope.gui.main_window import MainWindow
+    from voxelscope.gui.session_io import offer_recovery, open_session
 
     window = MainWindow()
     window.resize(*size)
+    marks_path = None
     if demo:
         try:
             d = demo_paths()
@@ -130,32 +189,68 @@ def launch(
             confounds = confounds or (str(d["confounds"]) if d["confounds"] else None)
             anat = anat or (str(d["anat"]) if d["anat"] else None)
             stat_map = stat_map or (str(d["stat_map"]) if d["stat_map"] else None)
+            marks_path = d["marks"]
             if voxel is None and mm is None:
                 voxel = d["voxel"]
     if screenshot is not None:
+        window.autosave.enabled = False
         window.show()
-        if run is not None:
+        if session is not None:
+            if not open_session(window, session, locate=None, geometry=False):
+                print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+                window.close()
+                return 2
+        elif run is not None:
             ok = window.open_run(
                 run, events, confounds, anat, stat_map, tr, voxel, mm, background=False
             )
             if not ok:
                 print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+                window.close()
                 return 2
             if demo:
-                window.set_contrast_text(DEMO_CONTRAST)
+                _demo_extras(window, marks_path)
+        if show:
+            window.show_mode.enter()
         window.resize(*size)
         for _ in range(5):
             app.processEvents()
+        code = 0
+        if save_session is not None and not _save_session(window, save_session, ask=False):
+            print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+            code = 2
         try:
             window.save_image(screenshot, size)
         except VoxelscopeError as err:
             print(f"voxelscope: error: {err}", file=sys.stderr)
-            return 2
+            code = 2
         window.close()
-        return 0
+        return code
     window.show()
-    if run is not None:
+
+    def after() -> None:
         if demo:
-            window.after_open = lambda: window.set_contrast_text(DEMO_CONTRAST)
+            _demo_extras(window, marks_path)
+        if save_session is not None:
+            _save_session(window, save_session, ask=True)
+        if show:
+            window.show_mode.enter()
+
+    if recovery and offer_recovery(window):
+        pass  # the recovered view replaces what was asked for
+    elif session is not None:
+        if open_session(window, session, background=True):
+            hook = window.after_open
+
+            def chained() -> None:
+                if hook is not None:
+                    hook()
+                after()
+
+            window.after_open = chained
+    elif run is not None:
+        window.after_open = after
         window.open_run(run, events, confounds, anat, stat_map, tr, voxel, mm, background=True)
+    elif show:
+        window.show_mode.enter()
     return int(app.exec())

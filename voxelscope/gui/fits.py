@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 
-from PySide6.QtCore import QAbstractTableModel, QModelIndex, Qt
+from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt
 from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QAbstractItemView,
@@ -190,6 +190,7 @@ class FitsPanel(QWidget):
         lay.setSpacing(3)
         self.caption = QLabel("")
         self.caption.setObjectName("fits_caption")
+        self.caption.setWordWrap(True)
         lay.addWidget(self.caption)
         self.table = QTableView()
         self.table.setObjectName("fits_table")
@@ -201,8 +202,10 @@ class FitsPanel(QWidget):
         self.table.setShowGrid(False)
         self.table.setWordWrap(False)
         hh = self.table.horizontalHeader()
-        hh.setSectionResizeMode(QHeaderView.ResizeMode.Stretch)
+        hh.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
         hh.setHighlightSections(False)
+        hh.setStretchLastSection(False)
+        self.table.installEventFilter(self)
         self.table.verticalHeader().setDefaultSectionSize(26)
         self.table.setContextMenuPolicy(Qt.ContextMenuPolicy.ActionsContextMenu)
         self.copy_action = QAction("Copy table as TSV", self.table)
@@ -220,11 +223,31 @@ class FitsPanel(QWidget):
         state.fits_changed.connect(self._on_fits)
 
     def _layout_columns(self) -> None:
+        """Every column at least as wide as its header and cells; spare room shared out.
+
+        Stretched columns of equal width clipped headers such as "variance" in a narrow
+        window; now a narrow window gets a horizontal scroll bar instead of cut-off text.
+        """
         hh = self.table.horizontalHeader()
-        if self.model.columnCount() > 0:
-            hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Fixed)
-            self.table.setColumnWidth(0, 30)
-            hh.setSectionResizeMode(1, QHeaderView.ResizeMode.ResizeToContents)
+        n = self.model.columnCount()
+        if n == 0:
+            return
+        hh.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
+        need = [30] + [
+            max(self.table.sizeHintForColumn(c), hh.sectionSizeHint(c)) + 10 for c in range(1, n)
+        ]
+        spare = max(0, self.table.viewport().width() - sum(need))
+        if n > 1:
+            share, rest = divmod(spare, n - 1)
+            for c in range(1, n):
+                need[c] += share + (1 if c <= rest else 0)
+        for c, width in enumerate(need):
+            self.table.setColumnWidth(c, width)
+
+    def eventFilter(self, obj, ev) -> bool:
+        if obj is self.table and ev.type() == QEvent.Type.Resize:
+            self._layout_columns()
+        return super().eventFilter(obj, ev)
 
     def copy(self) -> str:
         """Put the table on the clipboard as TSV; returns the text."""

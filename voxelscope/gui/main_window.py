@@ -30,11 +30,14 @@ from voxelscope.core.confounds import read_confounds
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.events import read_events
 from voxelscope.core.model import Analysis
+from voxelscope.gui.checks_panel import install_checks
 from voxelscope.gui.colours import stylesheet
 from voxelscope.gui.fits import FitsPanel
 from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, load_map, load_underlay
 from voxelscope.gui.map_panel import MapPanel
+from voxelscope.gui.mapjobs import install_map_parts
 from voxelscope.gui.model_panel import ModelPanel
+from voxelscope.gui.session_io import install_lab_kit
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
 from voxelscope.gui.state import ViewerState
@@ -78,6 +81,7 @@ class MainWindow(QMainWindow):
         self._pending_mm = None
         self.after_open = None
         self.last_error = ""
+        self.settle_hooks: list = []  # called before a window image: finish background work
         self.setStyleSheet(stylesheet())
         self.setAcceptDrops(True)
 
@@ -116,9 +120,12 @@ class MainWindow(QMainWindow):
         self.splitDockWidget(self.docks["Fits"], self.docks["Map"], Qt.Orientation.Horizontal)
         self.resizeDocks([self.docks["Fits"], self.docks["Map"]], [3, 1], Qt.Orientation.Horizontal)
         self.resizeDocks([self.docks["Model"]], [330], Qt.Orientation.Horizontal)
+        self.checks = install_checks(self)  # Checks, tabbed with Model (checks_panel.py)
+        install_map_parts(self)  # Findings, Agreement, live map hooks (mapjobs.py)
 
         self._build_status()
         self._build_menus()
+        install_lab_kit(self)  # Marks, Show mode, sessions, export and report (session_io.py)
         self.state.message.connect(self._note)
         self.state.run_changed.connect(self._on_run)
         self._on_run()
@@ -477,6 +484,8 @@ class MainWindow(QMainWindow):
         """
         path = Path(path)
         tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp.png")
+        for hook in self.settle_hooks:  # e.g. the live map being computed
+            hook()
         pix = self.grab()
         if size is not None and (pix.width(), pix.height()) != tuple(size):
             pix = pix.scaled(

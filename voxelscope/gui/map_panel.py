@@ -1,4 +1,11 @@
-"""Map: the statistic map drawn over the Slices (file, signed threshold, opacity, scale)."""
+"""Map: what the overlay shows (live model map, kernel difference, a file) and how.
+
+The live model map is kept up to date by :class:`voxelscope.gui.mapjobs.LiveMap`, which
+this part owns: a change of a model setting, of the map's kernel or statistic, recomputes
+the whole-volume map off the GUI thread (progress bar and Cancel here). Threshold,
+opacity, colour scale limit and colours apply to whatever the overlay shows. Each source
+remembers its own threshold (a t map and a difference map rarely want the same one).
+"""
 
 from __future__ import annotations
 
@@ -7,15 +14,17 @@ from PySide6.QtWidgets import (
     QCheckBox,
     QComboBox,
     QDoubleSpinBox,
-    QFormLayout,
+    QGridLayout,
     QHBoxLayout,
     QLabel,
+    QProgressBar,
     QPushButton,
     QSlider,
     QVBoxLayout,
     QWidget,
 )
 
+from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["COLOUR_SCALES", "MapPanel"]
@@ -30,7 +39,7 @@ COLOUR_SCALES = (
 
 
 class MapPanel(QWidget):
-    """Overlay settings; asks the window to open a map through ``open_requested``."""
+    """Overlay source and settings; asks the window to open a map through ``open_requested``."""
 
     open_requested = Signal()
 
@@ -38,22 +47,65 @@ class MapPanel(QWidget):
         super().__init__(parent)
         self.setObjectName("map_panel")
         self.state = state
+        self.live = LiveMap(state, self)
         lay = QVBoxLayout(self)
         lay.setContentsMargins(8, 6, 8, 6)
-        lay.setSpacing(6)
-        row = QHBoxLayout()
+        lay.setSpacing(5)
+
+        grid = QGridLayout()
+        grid.setHorizontalSpacing(6)
+        grid.setVerticalSpacing(5)
+        grid.setColumnStretch(1, 1)
+        grid.setColumnStretch(3, 1)
+        row = 0
+        self.source = QComboBox()
+        self.source.setObjectName("map_source")
+        for key, text in SOURCES:
+            self.source.addItem(text, key)
+        self.source.setToolTip(
+            "What the overlay shows: the model map of the current Model settings (recomputed "
+            "when they change), t under one kernel minus t under another, a map file, or the "
+            "voxels where our map and the outside map (Agreement) differ"
+        )
+        self.source.currentIndexChanged.connect(self._source_chosen)
+        grid.addWidget(QLabel("Show"), row, 0)
+        grid.addWidget(self.source, row, 1, 1, 2)
+        self.open_button = QPushButton("Open map…")
+        self.open_button.setToolTip("Open a statistic map file (any grid; resampled to the run)")
+        self.open_button.clicked.connect(self.open_requested.emit)
+        grid.addWidget(self.open_button, row, 3)
+        row += 1
+
+        self.kernel_label = QLabel("Kernel")
+        self.kernel = QComboBox()
+        self.kernel.setObjectName("map_kernel")
+        self.kernel.setToolTip("Kernel of the model map (one of the kernels enabled in Model)")
+        self.kernel.currentIndexChanged.connect(self._kernel_chosen)
+        self.stat_label = QLabel("Statistic")
+        self.stat = QComboBox()
+        self.stat.setObjectName("map_stat")
+        for key, text in MAP_STATS:
+            self.stat.addItem(text, key)
+        self.stat.currentIndexChanged.connect(
+            lambda _i: self.state.set_map_settings(stat=self.stat.currentData())
+        )
+        self.other = QComboBox()
+        self.other.setObjectName("map_other_kernel")
+        self.other.setToolTip("t under the kernel on the left minus t under this one")
+        self.other.currentIndexChanged.connect(self._other_chosen)
+        grid.addWidget(self.kernel_label, row, 0)
+        grid.addWidget(self.kernel, row, 1)
+        grid.addWidget(self.stat_label, row, 2)
+        grid.addWidget(self.stat, row, 3)
+        grid.addWidget(self.other, row, 3)
+        row += 1
+
         self.file_label = QLabel("No map open.")
         self.file_label.setObjectName("hint")
         self.file_label.setWordWrap(False)
-        row.addWidget(self.file_label, 1)
-        self.open_button = QPushButton("Open map…")
-        self.open_button.clicked.connect(self.open_requested.emit)
-        row.addWidget(self.open_button)
-        lay.addLayout(row)
-        form = QFormLayout()
-        self.visible = QCheckBox("show the map")
-        self.visible.toggled.connect(lambda on: self.state.set_map_settings(visible=bool(on)))
-        form.addRow("", self.visible)
+        grid.addWidget(self.file_label, row, 0, 1, 4)
+        row += 1
+
         self.threshold = QDoubleSpinBox()
         self.threshold.setObjectName("map_threshold")
         self.threshold.setRange(0.0, 1000.0)
@@ -64,47 +116,139 @@ class MapPanel(QWidget):
         self.threshold.valueChanged.connect(
             lambda v: self.state.set_map_settings(threshold=float(v))
         )
-        form.addRow("Threshold", self.threshold)
+        grid.addWidget(QLabel("Threshold"), row, 0)
+        grid.addWidget(self.threshold, row, 1)
+        lim_row = QHBoxLayout()
+        lim_row.setSpacing(4)
+        self.limit = QDoubleSpinBox()
+        self.limit.setRange(0.01, 1000.0)
+        self.limit.setDecimals(2)
+        self.limit.setPrefix("± ")
+        self.limit.setToolTip("Colour scale from -limit to +limit")
+        self.limit_auto = QCheckBox("auto")
+        self.limit_auto.setToolTip("Take the colour scale from the map's largest |value|")
+        self.limit.valueChanged.connect(self._limit_changed)
+        self.limit_auto.toggled.connect(self._limit_changed)
+        lim_row.addWidget(self.limit, 1)
+        lim_row.addWidget(self.limit_auto)
+        grid.addWidget(QLabel("Scale"), row, 2)
+        grid.addLayout(lim_row, row, 3)
+        row += 1
+
         self.opacity = QSlider(Qt.Orientation.Horizontal)
         self.opacity.setRange(0, 100)
         self.opacity.valueChanged.connect(
             lambda v: self.state.set_map_settings(opacity=float(v) / 100.0)
         )
-        form.addRow("Opacity", self.opacity)
-        lim_row = QHBoxLayout()
-        self.limit = QDoubleSpinBox()
-        self.limit.setRange(0.01, 1000.0)
-        self.limit.setDecimals(2)
-        self.limit.setPrefix("± ")
-        self.limit_auto = QCheckBox("from map")
-        self.limit.valueChanged.connect(self._limit_changed)
-        self.limit_auto.toggled.connect(self._limit_changed)
-        lim_row.addWidget(self.limit, 1)
-        lim_row.addWidget(self.limit_auto)
-        form.addRow("Scale", lim_row)
+        grid.addWidget(QLabel("Opacity"), row, 0)
+        grid.addWidget(self.opacity, row, 1)
         self.scale = QComboBox()
         for name, text in COLOUR_SCALES:
             self.scale.addItem(text, name)
         self.scale.currentIndexChanged.connect(
             lambda _i: self.state.set_map_settings(colour_scale=self.scale.currentData())
         )
-        form.addRow("Colours", self.scale)
-        lay.addLayout(form)
+        grid.addWidget(QLabel("Colours"), row, 2)
+        grid.addWidget(self.scale, row, 3)
+        row += 1
+        lay.addLayout(grid)
+
+        job_row = QHBoxLayout()
+        job_row.setSpacing(6)
+        self.visible = QCheckBox("show the map")
+        self.visible.toggled.connect(lambda on: self.state.set_map_settings(visible=bool(on)))
+        job_row.addWidget(self.visible)
+        self.job_label = QLabel("")
+        self.job_label.setObjectName("hint")
+        job_row.addWidget(self.job_label, 1)
+        self.job_progress = QProgressBar()
+        self.job_progress.setObjectName("map_progress")
+        self.job_progress.setRange(0, 1000)
+        self.job_progress.setTextVisible(False)
+        self.job_progress.setFixedWidth(90)
+        self.job_progress.setFixedHeight(12)
+        job_row.addWidget(self.job_progress)
+        self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.setToolTip(
+            "Stop computing the map (it is recomputed on the next change)"
+        )
+        self.cancel_button.clicked.connect(self.cancel)
+        job_row.addWidget(self.cancel_button)
+        lay.addLayout(job_row)
         lay.addStretch(1)
+        self.job_progress.setVisible(False)
+        self.cancel_button.setVisible(False)
+
+        self.live.busy.connect(self._busy)
+        self.live.progress.connect(
+            lambda f: self.job_progress.setValue(int(1000 * min(max(f, 0.0), 1.0)))
+        )
+        self.live.shown.connect(lambda _layer: self._on_map())
+        self.live.failed.connect(self._failed)
         state.map_changed.connect(self._on_map)
         state.run_changed.connect(self._on_map)
+        state.settings_changed.connect(lambda _s: self._on_map())
         self._on_map()
+
+    # ------------------------------------------------------------------ user input
+
+    def _source_chosen(self, _index: int) -> None:
+        self.live.set_source(self.source.currentData())
+
+    def _kernel_chosen(self, _index: int) -> None:
+        k = self.kernel.currentData()
+        if k is not None:
+            self.state.set_map_settings(kernel=k)
+
+    def _other_chosen(self, _index: int) -> None:
+        k = self.other.currentData()
+        if k is not None:
+            self.state.set_map_settings(other_kernel=k)
 
     def _limit_changed(self, *_args) -> None:
         auto = self.limit_auto.isChecked()
         self.limit.setEnabled(not auto)
         self.state.set_map_settings(limit=None if auto else float(self.limit.value()))
 
+    def cancel(self) -> None:
+        """Stop the running map job."""
+        self.live.cancel()
+        self.job_label.setText("map cancelled; change a setting to compute it again")
+
+    def _busy(self, on: bool) -> None:
+        self.job_progress.setVisible(on)
+        self.cancel_button.setVisible(on)
+        if on:
+            self.job_progress.setValue(0)
+            self.job_label.setText("computing the map…")
+        else:
+            self._on_map()
+
+    def _failed(self, line: str) -> None:
+        self.job_label.setText("the map could not be computed (see the status bar)")
+        self.job_label.setToolTip(line)
+
+    # ------------------------------------------------------------------ state events
+
+    def _fill(self, combo: QComboBox, names, current) -> None:
+        combo.clear()
+        for n in names:
+            combo.addItem(n, n)
+        combo.setCurrentIndex(max(0, combo.findData(current)))
+
     def _on_map(self) -> None:
-        s = self.state.map_settings
-        layer = self.state.stat_map
-        self.open_button.setEnabled(self.state.run is not None)
+        st = self.state
+        s = st.map_settings
+        layer = st.stat_map
+        has_run = st.run is not None
+        has_model = has_run and st.analysis is not None
+        live = self.live
+        kernels = live.kernels() if has_model else ()
         widgets = (
+            self.source,
+            self.kernel,
+            self.stat,
+            self.other,
             self.visible,
             self.threshold,
             self.opacity,
@@ -114,23 +258,89 @@ class MapPanel(QWidget):
         )
         for w in widgets:
             w.blockSignals(True)
-            w.setEnabled(layer is not None)
         try:
+            self.source.setCurrentIndex(max(0, self.source.findData(s.source)))
+            model = self.source.model()
+            enable = {
+                "model": has_model and bool(kernels),
+                "difference": has_model and len(kernels) > 1,
+                "file": live.file_layer is not None,
+                "disagreement": "disagreement" in live.providers and has_model,
+            }
+            for n, (key, _text) in enumerate(SOURCES):
+                item = model.item(n)
+                if item is not None:
+                    item.setEnabled(bool(enable[key]) or key == s.source)
+            self.source.setEnabled(has_run)
+            kernel = live.kernel() if has_model else None
+            self._fill(self.kernel, kernels, kernel)
+            self._fill(self.other, [k for k in kernels if k != kernel], live.other())
+            self.stat.setCurrentIndex(max(0, self.stat.findData(s.stat)))
+            is_model = s.source in ("model", "difference")
+            self.kernel_label.setText("t of" if s.source == "difference" else "Kernel")
+            self.stat_label.setText("minus" if s.source == "difference" else "Statistic")
+            for w in (self.kernel_label, self.kernel, self.stat_label):
+                w.setVisible(is_model)
+            self.stat.setVisible(s.source == "model")
+            self.other.setVisible(s.source == "difference")
+            self.kernel.setEnabled(has_model)
+            self.stat.setEnabled(has_model)
+            self.other.setEnabled(has_model)
+            for w in (self.visible, self.threshold, self.opacity, self.limit_auto, self.scale):
+                w.setEnabled(has_run)
             self.visible.setChecked(s.visible)
             self.threshold.setValue(s.threshold)
             self.opacity.setValue(round(100 * s.opacity))
             self.limit_auto.setChecked(s.limit is None)
-            self.limit.setValue(self.state.map_limit())
-            self.limit.setEnabled(layer is not None and s.limit is not None)
+            self.limit.setValue(st.map_limit())
+            self.limit.setEnabled(has_run and s.limit is not None)
             self.scale.setCurrentIndex(max(0, self.scale.findData(s.colour_scale)))
         finally:
             for w in widgets:
                 w.blockSignals(False)
-        if layer is None:
-            self.file_label.setText("No map open." if self.state.run else "Open a run first.")
-            self.file_label.setToolTip("")
+        self.open_button.setEnabled(has_run)
+        self._describe(layer)
+
+    def _describe(self, layer) -> None:
+        st = self.state
+        s = st.map_settings
+        metrics = self.file_label.fontMetrics()
+        width = max(160, self.file_label.width() - 4)
+        tip = ""
+        if st.run is None:
+            text = "Open a run first."
+        elif s.source == "file":
+            f = self.live.file_layer
+            if f is None:
+                text = "No map file open: Open map…"
+            else:
+                text = f"file: {f.path.name if f.path else 'map'}"
+                tip = str(f.path)
+        elif s.source == "disagreement":
+            text = (
+                "Voxels where our map and the outside map differ beyond the tolerance "
+                "(ours − theirs; set in Agreement)"
+                if isinstance(layer, LiveLayer)
+                else "Load an outside map in Agreement first."
+            )
+        elif st.analysis is None:
+            text = "No model: open an events file (File > Open events)."
+        elif not self.live.kernels():
+            text = "No kernel enabled in Model."
+        elif s.source == "difference" and self.live.other() is None:
+            text = "Enable a second kernel in Model to compare kernels."
+        elif isinstance(layer, LiveLayer) and self.live.model is not None:
+            m = self.live.model
+            text = (
+                f"contrast '{m.contrast}', {m.noise.upper() if m.noise == 'ols' else 'AR(1)'}, "
+                f"df {m.df}, {m.n_voxels} voxels"
+            )
+            if self.live.last_seconds is not None:
+                text += f", {1000 * self.live.last_seconds:.0f} ms"
+            tip = m.describe()
         else:
-            name = layer.path.name if layer.path else "map"
-            metrics = self.file_label.fontMetrics()
-            self.file_label.setText(metrics.elidedText(name, Qt.TextElideMode.ElideLeft, 210))
-            self.file_label.setToolTip(str(layer.path))
+            text = "computing the map…"
+        self.file_label.setText(metrics.elidedText(text, Qt.TextElideMode.ElideRight, width))
+        self.file_label.setToolTip(tip or text)
+        if not self.live.is_busy() and not self.job_label.text().startswith("map cancelled"):
+            self.job_label.setText("")

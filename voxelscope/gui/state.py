@@ -14,6 +14,7 @@ import numpy as np
 from PySide6.QtCore import QObject, Signal
 
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
 from voxelscope.gui import qtfix
 from voxelscope.gui.loading import Layer, RunBundle
@@ -42,6 +43,17 @@ class MapSettings:
     visible : bool
     colour_scale : str
         A pyqtgraph colour map name (a diverging, perceptually uniform one).
+    source : str
+        What the overlay shows (see :data:`voxelscope.gui.mapjobs.SOURCES`): ``"model"``
+        the live model map, ``"difference"`` t under ``kernel`` minus t under
+        ``other_kernel``, ``"file"`` a loaded map file, ``"disagreement"`` where our map
+        and an outside map differ.
+    kernel : str or None
+        Kernel of the model map; None: double-gamma if enabled, else the first enabled one.
+    other_kernel : str or None
+        Kernel subtracted in the difference map; None: the first other enabled kernel.
+    stat : str
+        Statistic of the model map (``t``, ``z``, ``beta``, ``variance``).
     """
 
     threshold: float = 3.0
@@ -49,6 +61,10 @@ class MapSettings:
     limit: float | None = None
     visible: bool = True
     colour_scale: str = "CET-D1"
+    source: str = "model"
+    kernel: str | None = None
+    other_kernel: str | None = None
+    stat: str = "t"
 
     def with_(self, **changes) -> MapSettings:
         return replace(self, **changes)
@@ -66,6 +82,7 @@ class ViewerState(QObject):
     contrast_error = Signal(str)
     units_changed = Signal(str)
     message = Signal(str)
+    marks_changed = Signal()
 
     def __init__(self, parent: QObject | None = None) -> None:
         super().__init__(parent)
@@ -79,6 +96,7 @@ class ViewerState(QObject):
         self.units = "data"
         self.contrast_text = ""
         self.contrast_problem = ""
+        self.marks = MarkList()
         qtfix.start_timer(self)
 
     # ------------------------------------------------------------------ accessors
@@ -145,11 +163,13 @@ class ViewerState(QObject):
         self.bundle.underlay = layer
         self.underlay_changed.emit()
 
-    def set_map(self, layer: Layer | None) -> None:
+    def set_map(self, layer: Layer | None, keep_scale: bool = False) -> None:
+        """Show ``layer`` as the overlay; ``keep_scale`` keeps a fixed colour scale limit."""
         if self.bundle is None:
             return
         self.bundle.stat_map = layer
-        self.map_settings = self.map_settings.with_(limit=None)
+        if not keep_scale:
+            self.map_settings = self.map_settings.with_(limit=None)
         self.map_changed.emit()
 
     def set_analysis(self, analysis: Analysis | None, events_path=None, confounds_path=None):
@@ -237,6 +257,24 @@ class ViewerState(QObject):
         if units != self.units:
             self.units = units
             self.units_changed.emit(units)
+
+    # ------------------------------------------------------------------ marks
+
+    def set_marks(self, marks: MarkList) -> None:
+        """Replace the marks (import, session); views listen to ``marks_changed``."""
+        self.marks = marks if isinstance(marks, MarkList) else MarkList(marks)
+        self.marks_changed.emit()
+
+    def jump_to_mark(self, index: int) -> bool:
+        """Move to the voxel nearest a mark; a mark outside the grid is a one-line message."""
+        if self.run is None:
+            return False
+        try:
+            self.set_voxel(self.run.mm_to_voxel(self.marks.jump(index)))
+        except VoxelscopeError as err:
+            self.message.emit(str(err))
+            return False
+        return True
 
     # ------------------------------------------------------------------ recompute
 

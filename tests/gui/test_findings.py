@@ -1,0 +1,86 @@
+"""Findings: the cluster table of the overlay.
+
+Reference: voxelscope.core.clusters.find_clusters called directly on the same map,
+threshold and options (the table must show exactly its clusters); the peak positions are
+checked against the run's affine (voxel -> mm, NIfTI standard: mm = A @ (i, j, k, 1)).
+"""
+
+import numpy as np
+from PySide6.QtCore import Qt
+from PySide6.QtTest import QTest
+
+from voxelscope.core.clusters import find_clusters
+
+
+def _open(window, files):
+    assert window.open_run(files["run"], background=False)
+    assert window.map_panel.live.flush(20000)
+    window.findings.refresh()
+    return window.state, window.findings
+
+
+def _rows(table):
+    return [(c.sign, c.size_voxels, c.size_mm3, c.peak_value, c.peak_voxel) for c in table.clusters]
+
+
+def test_table_equals_find_clusters(window, ras_run):
+    state, panel = _open(window, ras_run)
+    data = state.stat_map.data
+    ref = find_clusters(data, 3.0, affine=state.run.affine)
+    assert len(ref) > 0
+    assert _rows(panel.table) == _rows(ref)
+    assert panel.model.rowCount() == len(ref)
+    c = ref.clusters[0]
+    assert panel.model.index(0, 2).data() == str(c.size_voxels)
+    assert panel.model.index(0, 4).data() == f"{c.peak_value:.2f}"
+    assert panel.model.headerData(4, Qt.Orientation.Horizontal) == "peak t"
+    mm = state.run.affine @ np.array([*c.peak_voxel, 1.0])
+    assert panel.model.index(0, 5).data() == "({:.1f}, {:.1f}, {:.1f})".format(*mm[:3])
+
+
+def test_threshold_and_options_update_the_table(window, qtbot, ras_run):
+    state, panel = _open(window, ras_run)
+    state.set_map_settings(threshold=2.0)
+    qtbot.waitUntil(lambda: panel.table is not None and panel.table.threshold == 2.0)
+    panel.connectivity.setCurrentIndex(panel.connectivity.findData(6))
+    panel.min_voxels.setValue(2)
+    panel.mode.setCurrentIndex(panel.mode.findData("positive"))
+    ref = find_clusters(
+        state.stat_map.data,
+        2.0,
+        affine=state.run.affine,
+        connectivity=6,
+        min_voxels=2,
+        mode="positive",
+    )
+    assert _rows(panel.table) == _rows(ref)
+    assert panel.threshold.value() == 2.0
+    panel.threshold.setValue(4.0)  # the Findings spin box is the Map threshold
+    assert state.map_settings.threshold == 4.0
+
+
+def test_table_follows_the_map(window, qtbot, ras_run):
+    state, panel = _open(window, ras_run)
+    assert window.open_map(ras_run["map"])  # planted 9.0 at the hot voxel
+    qtbot.waitUntil(
+        lambda: (
+            panel.table is not None
+            and panel.model.headerData(4, Qt.Orientation.Horizontal) == "peak value"
+        )
+    )
+    ref = find_clusters(state.stat_map.data, 3.0, affine=state.run.affine)
+    assert _rows(panel.table) == _rows(ref)
+
+
+def test_clicking_a_row_moves_to_the_peak(window, qtbot, ras_run):
+    state, panel = _open(window, ras_run)
+    state.set_map_settings(threshold=2.0)
+    qtbot.waitUntil(lambda: panel.table is not None and len(panel.table) > 1)
+    window.docks["Findings"].raise_()
+    qtbot.wait(50)
+    row = len(panel.table) - 1
+    target = panel.table.clusters[row].peak_voxel
+    rect = panel.view.visualRect(panel.model.index(row, 1))
+    QTest.mouseClick(panel.view.viewport(), Qt.MouseButton.LeftButton, pos=rect.center())
+    assert state.voxel == target
+    assert panel.view.selectionModel().selectedRows()[0].row() == row

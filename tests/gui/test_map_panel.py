@@ -1,0 +1,173 @@
+"""Map: the live model map (background, debounced, cancellable), kernel difference, sources.
+
+References: the core's own whole-volume fit (voxelscope.core.maps.compute_map and
+kernel_difference) called directly on the same run and settings; the window must show
+exactly those numbers (design rule: the window never re-does the maths).
+"""
+
+import threading
+import time
+
+import numpy as np
+import pytest
+
+from voxelscope.core.cache import Cancelled
+from voxelscope.core.errors import ModelError
+from voxelscope.core.maps import compute_map, kernel_difference
+from voxelscope.gui import mapjobs
+from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, default_kernel
+
+
+def _open(window, files):
+    assert window.open_run(files["run"], background=False)
+    live = window.map_panel.live
+    assert live.flush(20000)
+    return window.state, live
+
+
+def test_default_kernel_rule():
+    assert default_kernel(("boxcar", "gamma", "double-gamma")) == "double-gamma"
+    assert default_kernel(("boxcar", "gamma")) == "boxcar"
+    assert default_kernel(("boxcar", "gamma"), wanted="gamma") == "gamma"
+    assert default_kernel(("boxcar",), wanted="fir") == "boxcar"
+
+
+def test_live_map_equals_compute_map(window, ras_run):
+    state, live = _open(window, ras_run)
+    layer = state.stat_map
+    assert isinstance(layer, LiveLayer) and layer.source == "model"
+    ref = compute_map(state.run, state.analysis, state.settings, "double-gamma")
+    np.testing.assert_array_equal(layer.data, ref.t)
+    assert live.model.kernel == "double-gamma"
+    # another statistic and kernel, chosen in the Map part's combos
+    window.map_panel.stat.setCurrentIndex(window.map_panel.stat.findData("z"))
+    window.map_panel.kernel.setCurrentIndex(window.map_panel.kernel.findData("gamma"))
+    assert live.flush(20000)
+    ref = compute_map(state.run, state.analysis, state.settings, "gamma")
+    np.testing.assert_array_equal(state.stat_map.data, ref.z)
+    assert "z · gamma" in window.slices.colour_bar.title.text()
+
+
+def test_quick_changes_give_one_job(window, qtbot, ras_run):
+    state, live = _open(window, ras_run)
+    started, done = live.jobs_started, live.jobs_done
+    for hp in (100.0, 90.0, 80.0):  # three changes well inside the 300 ms debounce
+        state.update_settings(highpass_s=hp)
+    assert live.timer.isActive()
+    qtbot.waitUntil(lambda: not live.is_busy(), timeout=20000)
+    assert (live.jobs_started - started, live.jobs_done - done) == (1, 1)
+    ref = compute_map(state.run, state.analysis, state.settings, "double-gamma")
+    assert state.settings.highpass_s == 80.0
+    np.testing.assert_array_equal(state.stat_map.data, ref.t)
+
+
+def _slow_compute_map(started: threading.Event):
+    """A stand-in for compute_map that runs until its progress callback says stop."""
+
+    def fake(run, analysis, settings, kernel=None, progress=None, stats=("t",), **kw):
+        started.set()
+        t0 = time.perf_counter()
+        while time.perf_counter() - t0 < 10:
+            if progress(0.1) is False:
+                raise Cancelled("the map was cancelled")
+            time.sleep(0.005)
+        raise AssertionError("never cancelled")
+
+    return fake
+
+
+def test_cancel_stops_the_job_and_clicks_stay_live(window, qtbot, ras_run, monkeypatch):
+    state, live = _open(window, ras_run)
+    before = state.stat_map
+    started = threading.Event()
+    monkeypatch.setattr(mapjobs, "compute_map", _slow_compute_map(started))
+    done = live.jobs_done
+    state.update_settings(highpass_s=64.0)
+    qtbot.waitUntil(started.is_set, timeout=5000)
+    assert live.job is not None and window.map_panel.cancel_button.isVisibleTo(window)
+    # a click while the map job runs: the voxel's fits are recomputed at once
+    state.set_voxel(ras_run["hot"])
+    assert state.voxel == ras_run["hot"] and state.fits is not None
+    assert state.fits.fits[0].design.names  # fitted under the new settings
+    window.map_panel.cancel_button.click()
+    qtbot.waitUntil(lambda: not live.is_busy(), timeout=5000)
+    assert live.jobs_done == done and state.stat_map is before
+    assert "cancelled" in window.map_panel.job_label.text()
+
+
+def test_background_job_cancel():
+    ran = threading.Event()
+
+    def fn(progress):
+        ran.set()
+        while progress(0.5) is not False:
+            time.sleep(0.002)
+        raise Cancelled("stopped")
+
+    job = BackgroundJob(fn)
+    got = []
+    job.cancelled.connect(lambda: got.append("cancelled"))
+    job.done.connect(lambda r: got.append("done"))
+    job.start()
+    assert ran.wait(5)
+    job.cancel()
+    assert mapjobs.wait_for_jobs(5000)
+    assert got == ["cancelled"]
+
+
+def test_failed_map_is_one_line_in_status_bar(window, qtbot, ras_run, monkeypatch):
+    state, live = _open(window, ras_run)
+
+    def broken(*a, **k):
+        raise ModelError("design: the columns 'tone' and 'drift_1' are collinear; drop one")
+
+    monkeypatch.setattr(mapjobs, "compute_map", broken)
+    state.update_settings(highpass_s=70.0)
+    qtbot.waitUntil(lambda: not live.is_busy(), timeout=5000)
+    msg = window.statusBar().currentMessage()
+    assert "collinear" in msg and "\n" not in msg
+
+
+def test_kernel_difference_source(window, ras_run):
+    state, live = _open(window, ras_run)
+    window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("difference"))
+    assert live.flush(20000)
+    a = compute_map(state.run, state.analysis, state.settings, "double-gamma")
+    b = compute_map(state.run, state.analysis, state.settings, "boxcar")
+    layer = state.stat_map
+    assert layer.source == "difference"
+    np.testing.assert_array_equal(layer.data, kernel_difference(a, b, "t"))
+    assert state.map_settings.threshold == 1.0  # the difference source's own threshold
+    window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("model"))
+    assert live.flush(20000)
+    assert state.map_settings.threshold == 3.0
+    np.testing.assert_array_equal(state.stat_map.data, a.t)
+
+
+def test_opened_file_becomes_the_source_and_model_is_one_choice_away(window, ras_run):
+    state, live = _open(window, ras_run)
+    assert window.open_map(ras_run["map"])
+    assert state.map_settings.source == "file"
+    assert state.stat_map is live.file_layer and state.stat_map.path == ras_run["map"]
+    window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("model"))
+    assert live.flush(20000)
+    assert isinstance(state.stat_map, LiveLayer)
+    window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("file"))
+    assert state.stat_map is live.file_layer
+
+
+def test_run_without_events_shows_no_model(window, las_run):
+    assert window.open_run(las_run["run"], background=False)  # no events beside it
+    live = window.map_panel.live
+    assert live.flush(5000)
+    assert window.state.stat_map is None
+    assert "events" in window.map_panel.file_label.toolTip()
+
+
+@pytest.mark.parametrize("size", [(1600, 1000), (1280, 800)])
+def test_demo_window_shows_the_live_map(qapp, demo_files, tmp_path, size):
+    from voxelscope.gui.app import launch
+
+    out = tmp_path / "demo.png"
+    assert launch(demo=True, screenshot=str(out), size=size) == 0
+    assert out.is_file()

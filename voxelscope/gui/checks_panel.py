@@ -1,0 +1,650 @@
+"""Checks: is the fit at this voxel to be believed? Flags, key numbers and figures.
+
+Everything shown comes from :func:`voxelscope.core.checks.voxel_checks` (the function the
+command line's ``voxelscope fit --checks`` uses); the part only formats and draws it.
+
+* **Flags**: each warning sign as the core's plain sentence; clicking one shows its figure.
+  "No warning signs at this voxel" when there are none.
+* **Numbers**: a small table (a Qt table model) of Durbin-Watson, lag-1 autocorrelation,
+  Ljung-Box p, tSNR, distance to the edge, best onset shift, peak latency, t with and
+  without the influential volumes and the largest Cook's distance.
+* **Figures**: one reusable plot per figure (see :mod:`voxelscope.gui.checks_figures`).
+
+The checks of one kernel's fit are computed off the GUI thread, after the fits of a click
+are shown: the part listens to ``fits_changed``, coalesces requests with a zero-time timer
+and hands the latest one to a one-thread pool, so a click never waits for them (the first
+call under new settings builds the 49 designs of the timing scan). A hidden part computes
+nothing; it catches up when it is shown.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from PySide6.QtCore import (
+    QAbstractTableModel,
+    QModelIndex,
+    QObject,
+    QRunnable,
+    QSize,
+    Qt,
+    QThreadPool,
+    QTimer,
+    Signal,
+)
+from PySide6.QtWidgets import (
+    QAbstractItemView,
+    QButtonGroup,
+    QComboBox,
+    QGridLayout,
+    QHBoxLayout,
+    QHeaderView,
+    QLabel,
+    QPushButton,
+    QScrollArea,
+    QStackedWidget,
+    QTableView,
+    QVBoxLayout,
+    QWidget,
+)
+
+from voxelscope.core.checks import VoxelChecks, voxel_checks
+from voxelscope.core.errors import VoxelscopeError
+from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
+from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.state import ViewerState
+
+__all__ = ["ChecksModel", "ChecksPanel", "FlagLabel", "default_kernel", "install_checks"]
+
+RAW_ROLE = Qt.ItemDataRole.UserRole + 1
+NO_FLAGS = "No warning signs at this voxel."
+
+#: Rows of the numbers table: (key, label, tooltip).
+ROWS: tuple[tuple[str, str, str], ...] = (
+    ("t", "t", "The contrast's t under the settings' noise model (as in Fits)"),
+    (
+        "t_without_influential",
+        "t without influential",
+        "t refitted without the influential volumes (up to 3 of largest Cook's distance above 4/n)",
+    ),
+    ("influential_volumes", "Influential volumes", "Volumes of largest Cook's distance above 4/n"),
+    (
+        "cooks_distance_max",
+        "Largest Cook's distance",
+        "Cook (1977): how much one volume moves the fit; above 4/n is worth a look",
+    ),
+    ("durbin_watson", "Durbin–Watson", "2 for white residuals; below 2 for positive lag-1"),
+    ("ar1", "Lag-1 autocorrelation", "AR(1) coefficient of the OLS residuals"),
+    ("ar1_whitened", "Lag-1 after AR(1)", "Lag-1 left in the prewhitened residuals"),
+    ("ljung_box_p", "Ljung–Box p (10 lags)", "Small p: the residuals are not white noise"),
+    ("tsnr", "tSNR", "Mean over the residual SD of a drift-only fit"),
+    ("edge_distance_mm", "Distance to edge", "mm to the nearest voxel outside the brain mask"),
+    ("best_shift_s", "Best onset shift", "Onset shift (s) that gives the largest t"),
+    ("peak_latency_s", "Peak latency", "Kernel's time to peak plus the best shift"),
+)
+
+
+def _fmt(key: str, value: Any, c: VoxelChecks) -> str:
+    """Display text of one number of the table."""
+    if key == "influential_volumes":
+        return ", ".join(str(v) for v in value) if value else "none"
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        if key == "edge_distance_mm" and c.in_mask is False:
+            return "outside the mask"
+        return "–"
+    v = float(value)
+    if key == "ljung_box_p":
+        return f"{v:.3g}" if v >= 1e-3 else f"{v:.1e}"
+    if key in ("durbin_watson", "ar1", "ar1_whitened"):
+        return f"{v:.2f}"
+    if key == "tsnr":
+        return f"{v:.1f}"
+    if key == "edge_distance_mm":
+        return "outside the mask" if c.in_mask is False else f"{v:.1f} mm"
+    if key == "best_shift_s":
+        return f"{v:+.2f} s"
+    if key == "peak_latency_s":
+        return f"{v:.2f} s (kernel {c.kernel_peak_s:.1f} s)"
+    if key == "cooks_distance_max":
+        at = "" if c.cooks_volume is None else f" (volume {c.cooks_volume})"
+        return f"{v:.3f}{at}"
+    if key == "t_without_influential":
+        return f"{v:.2f}"
+    if key == "t":
+        return f"{v:.2f}"
+    return f"{v:.4g}"
+
+
+class FlagLabel(QLabel):
+    """One flag's sentence; a click shows its figure (``clicked(figure)``)."""
+
+    clicked = Signal(str)
+
+    def __init__(self, text: str, figure: str | None, ident: str | None) -> None:
+        super().__init__(text)
+        self.figure = figure
+        self.ident = ident
+        self.setWordWrap(True)
+        self.setObjectName("flag" if figure is not None else "no_flags")
+        if figure is not None:
+            self.setCursor(Qt.CursorShape.PointingHandCursor)
+            self.setToolTip(f"Click to see the evidence ({FIGURE_TITLES.get(figure, figure)})")
+
+    def mousePressEvent(self, ev) -> None:
+        if self.figure is not None and ev.button() == Qt.MouseButton.LeftButton:
+            self.clicked.emit(self.figure)
+        super().mousePressEvent(ev)
+
+
+class ChecksModel(QAbstractTableModel):
+    """The key numbers of one :class:`VoxelChecks` (rows: quantities; columns: name, value)."""
+
+    def __init__(self, parent: QObject | None = None) -> None:
+        super().__init__(parent)
+        self.checks: VoxelChecks | None = None
+        self._rows: list[tuple[str, str, str]] = []
+
+    def set_checks(self, checks: VoxelChecks | None) -> None:
+        self.beginResetModel()
+        self.checks = checks
+        rows = []
+        if checks is not None:
+            for key, label, tip in ROWS:
+                if key == "ar1_whitened" and checks.ar1_whitened is None:
+                    continue
+                rows.append((key, label, tip))
+        self._rows = rows
+        self.endResetModel()
+
+    def keys(self) -> list[str]:
+        return [k for k, _, _ in self._rows]
+
+    def raw(self, key: str) -> Any:
+        """The core's unformatted value of a row (KeyError for a row not shown)."""
+        if key not in self.keys():
+            raise KeyError(key)
+        return getattr(self.checks, key)
+
+    def rowCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else len(self._rows)
+
+    def columnCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else 2
+
+    def data(self, index, role=Qt.ItemDataRole.DisplayRole):
+        if not index.isValid() or self.checks is None:
+            return None
+        key, label, tip = self._rows[index.row()]
+        value = getattr(self.checks, key)
+        if role == Qt.ItemDataRole.DisplayRole:
+            return label if index.column() == 0 else _fmt(key, value, self.checks)
+        if role == RAW_ROLE:
+            return value
+        if role == Qt.ItemDataRole.ToolTipRole:
+            return tip
+        if role == Qt.ItemDataRole.TextAlignmentRole and index.column() == 1:
+            return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
+        return None
+
+    def headerData(self, section, orientation, role=Qt.ItemDataRole.DisplayRole):
+        if orientation == Qt.Orientation.Horizontal and role == Qt.ItemDataRole.DisplayRole:
+            return ("quantity", "value")[section]
+        return None
+
+
+# ----------------------------------------------------------------------------- background
+
+
+@dataclass(frozen=True)
+class _Request:
+    key: tuple
+    analysis: Any
+    settings: Any
+    kernel: str
+    y: np.ndarray
+    run: Any
+    ijk: tuple[int, int, int]
+
+
+class _Relay(QObject):
+    """Carries results from the pool's thread to the GUI thread (lives as long as the app)."""
+
+    done = Signal(object, object)
+    failed = Signal(object, str)
+
+
+_POOL: dict[str, Any] = {}
+
+
+def _relay() -> _Relay:
+    if "relay" not in _POOL:
+        _POOL["relay"] = _Relay()
+    return _POOL["relay"]
+
+
+def _pool() -> QThreadPool:
+    if "pool" not in _POOL:
+        pool = QThreadPool()
+        pool.setMaxThreadCount(1)
+        _POOL["pool"] = pool
+    return _POOL["pool"]
+
+
+class _ChecksJob(QRunnable):
+    def __init__(self, ticket: tuple, request: _Request) -> None:
+        super().__init__()
+        self.setAutoDelete(False)
+        self.ticket = ticket
+        self.request = request
+
+    def run(self) -> None:
+        r = self.request
+        relay = _relay()
+        try:
+            checks = voxel_checks(r.analysis, r.settings, r.kernel, r.y, run=r.run, ijk=r.ijk)
+        except VoxelscopeError as err:
+            relay.failed.emit(self.ticket, str(err))
+        except MemoryError:
+            relay.failed.emit(self.ticket, "not enough memory for the checks of this voxel")
+        except Exception as err:  # never let a worker take the window down
+            text = " ".join(str(err).split())[:160]
+            relay.failed.emit(
+                self.ticket, f"the checks of this voxel failed ({type(err).__name__}: {text})"
+            )
+        else:
+            relay.done.emit(self.ticket, checks)
+
+
+def default_kernel(enabled, map_kernel: str | None = None) -> str | None:
+    """The kernel the Checks part starts with.
+
+    The map's kernel when it is switched on, else double-gamma when switched on, else the
+    first kernel switched on; None when none is.
+
+    Examples
+    --------
+    >>> default_kernel(("boxcar", "gamma"))
+    'boxcar'
+    >>> default_kernel(("boxcar", "double-gamma"), map_kernel="boxcar")
+    'boxcar'
+    >>> default_kernel(("boxcar", "double-gamma"))
+    'double-gamma'
+    """
+    names = [str(k) for k in enabled]
+    if map_kernel is not None and str(map_kernel) in names:
+        return str(map_kernel)
+    if "double-gamma" in names:
+        return "double-gamma"
+    return names[0] if names else None
+
+
+# ----------------------------------------------------------------------------- the part
+
+
+class _FigureStack(QStackedWidget):
+    """The figure pages; a modest size hint, so the part fits its dock without scrolling
+    when there is room (the plots' own hints are large) and the figure takes what is left."""
+
+    def sizeHint(self) -> QSize:
+        return QSize(320, 260)
+
+    def hasHeightForWidth(self) -> bool:
+        return False
+
+    def heightForWidth(self, _width: int) -> int:
+        return -1
+
+
+_SERIAL = itertools.count(1)
+
+
+class ChecksPanel(QWidget):
+    """Checks of one kernel's fit at the current voxel."""
+
+    #: Emitted with each newly shown result (None when cleared).
+    checks_shown = Signal(object)
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("checks_panel")
+        self.state = state
+        self.checks: VoxelChecks | None = None
+        self.shown_key: tuple | None = None
+        self.computing = False
+        self.calls = 0
+        self._serial = next(_SERIAL)
+        self._seq = 0
+        self._in_flight: tuple | None = None
+        self._job: _ChecksJob | None = None
+        self._pending: _Request | None = None
+        self._chosen: str | None = None
+
+        outer = QVBoxLayout(self)
+        outer.setContentsMargins(0, 0, 0, 0)
+        self.scroll = QScrollArea()
+        self.scroll.setObjectName("checks_scroll")
+        self.scroll.setWidgetResizable(True)
+        self.scroll.setFrameShape(QScrollArea.Shape.NoFrame)
+        self.scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        outer.addWidget(self.scroll)
+        body = QWidget()
+        body.setObjectName("checks_body")
+        self.scroll.setWidget(body)
+        lay = QVBoxLayout(body)
+        lay.setContentsMargins(6, 4, 6, 4)
+        lay.setSpacing(5)
+        head = QHBoxLayout()
+        head.addWidget(QLabel("Kernel"))
+        self.kernel_box = QComboBox()
+        self.kernel_box.setObjectName("checks_kernel")
+        self.kernel_box.setToolTip("The kernel whose fit is checked")
+        self.kernel_box.activated.connect(self._kernel_picked)
+        head.addWidget(self.kernel_box, 1)
+        self.status = QLabel("")
+        self.status.setObjectName("hint")
+        head.addWidget(self.status)
+        lay.addLayout(head)
+        self.caption = QLabel("")
+        self.caption.setObjectName("checks_caption")
+        self.caption.setWordWrap(True)
+        lay.addWidget(self.caption)
+        self.error = QLabel("")
+        self.error.setObjectName("error_text")
+        self.error.setWordWrap(True)
+        self.error.setVisible(False)
+        lay.addWidget(self.error)
+
+        self.flags_box = QWidget()
+        self.flags_box.setObjectName("checks_flags")
+        self.flags_layout = QVBoxLayout(self.flags_box)
+        self.flags_layout.setContentsMargins(0, 0, 0, 0)
+        self.flags_layout.setSpacing(3)
+        self.flag_labels: list[FlagLabel] = []
+        lay.addWidget(self.flags_box)
+
+        figures = QWidget()
+        fl = QVBoxLayout(figures)
+        fl.setContentsMargins(0, 0, 0, 0)
+        fl.setSpacing(3)
+        grid = QGridLayout()
+        grid.setSpacing(3)
+        self.figure_buttons: dict[str, QPushButton] = {}
+        self.figure_group = QButtonGroup(self)
+        self.figure_group.setExclusive(True)
+        for n, key in enumerate(FIGURES):
+            b = QPushButton(FIGURE_TITLES[key])
+            b.setObjectName("figure_button")
+            b.setCheckable(True)
+            b.clicked.connect(lambda _c=False, k=key: self.show_figure(k))
+            self.figure_group.addButton(b)
+            grid.addWidget(b, n // 3, n % 3)
+            self.figure_buttons[key] = b
+        fl.addLayout(grid)
+        self.stack = _FigureStack()
+        self.stack.setMinimumHeight(230)
+        self.stack.setObjectName("checks_figures")
+        self.figures = make_figures()
+        for key in FIGURES:
+            self.stack.addWidget(self.figures[key])
+        fl.addWidget(self.stack, 1)
+
+        self.model = ChecksModel(self)
+        self.table = QTableView()
+        self.table.setObjectName("checks_table")
+        self.table.setModel(self.model)
+        self.table.verticalHeader().setVisible(False)
+        self.table.horizontalHeader().setVisible(False)
+        self.table.setShowGrid(False)
+        self.table.setAlternatingRowColors(True)
+        self.table.setWordWrap(False)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
+        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.table.verticalHeader().setDefaultSectionSize(21)
+        hh = self.table.horizontalHeader()
+        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
+        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
+
+        lay.addWidget(figures, 1)
+        lay.addWidget(self.table)
+        self.show_figure(FIGURES[0])
+
+        self._timer = QTimer(self)
+        self._timer.setSingleShot(True)
+        self._timer.setInterval(0)
+        self._timer.timeout.connect(self._launch)
+        relay = _relay()
+        relay.done.connect(self._done)
+        relay.failed.connect(self._failed)
+        state.fits_changed.connect(self._on_fits)
+        state.run_changed.connect(self._on_run)
+        state.map_changed.connect(self.request)
+        self._on_run()
+
+    # ------------------------------------------------------------------ figures and flags
+
+    def show_figure(self, key: str) -> None:
+        """Bring a figure to the front (``acf``, ``influence``, ``shift_scan``, ...)."""
+        page = self.figures.get(key)
+        if page is None:
+            return
+        self.stack.setCurrentWidget(page)
+        button = self.figure_buttons[key]
+        if not button.isChecked():
+            button.setChecked(True)
+
+    def current_figure(self) -> str:
+        return self.stack.currentWidget().key
+
+    def flag_items(self) -> list[FlagLabel]:
+        """The shown flag labels (one per flag; one "no warning signs" label when none)."""
+        return list(self.flag_labels)
+
+    def _fill_flags(self, checks: VoxelChecks | None) -> None:
+        for label in self.flag_labels:
+            self.flags_layout.removeWidget(label)
+            label.deleteLater()
+        self.flag_labels = []
+        if checks is not None:
+            items = [(f.text, f.figure, f.id) for f in checks.flags] or [(NO_FLAGS, None, None)]
+            for n, (text, figure, ident) in enumerate(items):
+                label = FlagLabel(text, figure, ident)
+                if figure is not None:
+                    label.clicked.connect(self.show_figure)
+                self.flags_layout.insertWidget(n, label)
+                self.flag_labels.append(label)
+
+    # ------------------------------------------------------------------ kernel choice
+
+    def _map_kernel(self) -> str | None:
+        for source in (self.state, getattr(self.state, "map_settings", None)):
+            k = getattr(source, "map_kernel", None) or getattr(source, "kernel", None)
+            if isinstance(k, str):
+                return k
+        return None
+
+    def kernel(self) -> str | None:
+        """The kernel whose fit is checked (None when no kernel is switched on)."""
+        enabled = [str(k) for k in self.state.settings.kernels]
+        if self._chosen in enabled:
+            return self._chosen
+        return default_kernel(enabled, self._map_kernel())
+
+    def set_kernel(self, name: str) -> None:
+        """Check another kernel's fit (one that is switched on in Model)."""
+        self._chosen = str(name)
+        self._sync_kernels()
+        self.request()
+
+    def _kernel_picked(self, index: int) -> None:
+        name = self.kernel_box.itemData(index)
+        if name:
+            self.set_kernel(str(name))
+
+    def _sync_kernels(self) -> None:
+        from voxelscope.gui.model_panel import swatch_icon
+
+        enabled = [str(k) for k in self.state.settings.kernels]
+        current = self.kernel()
+        self.kernel_box.blockSignals(True)
+        if [self.kernel_box.itemData(i) for i in range(self.kernel_box.count())] != enabled:
+            self.kernel_box.clear()
+            for name in enabled:
+                self.kernel_box.addItem(swatch_icon(kernel_colour(name)), name, name)
+        if current is not None:
+            self.kernel_box.setCurrentIndex(max(0, self.kernel_box.findData(current)))
+        self.kernel_box.blockSignals(False)
+
+    # ------------------------------------------------------------------ requests
+
+    def _on_run(self) -> None:
+        self._chosen = None
+        self._show(None, None)
+        self.request()
+
+    def _on_fits(self, _fits) -> None:
+        self.request()
+
+    def request(self) -> None:
+        """Ask for the checks of the current voxel (coalesced; after the fits are shown)."""
+        self._sync_kernels()
+        self._timer.start()
+
+    def showEvent(self, ev) -> None:
+        super().showEvent(ev)
+        self.request()
+
+    def wanted(self) -> bool:
+        """Whether the part is on screen (a hidden part computes nothing).
+
+        A dock tabbed behind another one stays "visible" to Qt but is moved out of view, so
+        the visible region is what counts.
+        """
+        return self.isVisible() and not self.visibleRegion().isEmpty()
+
+    def _current_request(self) -> _Request | str:
+        st = self.state
+        analysis, run = st.analysis, st.run
+        if run is None:
+            return ""
+        if analysis is None:
+            return "No model: open an events file to check this voxel."
+        kernel = self.kernel()
+        if kernel is None:
+            return "No kernel is switched on: choose one in Model."
+        if st.series is None:
+            return ""
+        key = (id(run), id(analysis), st.settings, kernel, tuple(st.voxel))
+        return _Request(key, analysis, st.settings, kernel, st.series.copy(), run, st.voxel)
+
+    def _launch(self) -> None:
+        if not self.wanted():
+            return
+        req = self._current_request()
+        if isinstance(req, str):
+            self._show(None, None)
+            self.caption.setText(req)
+            return
+        if req.key == self.shown_key or (self._in_flight == req.key):
+            self._pending = None
+            self._set_status()
+            return
+        if self._in_flight is not None:
+            self._pending = req
+            self._set_status()
+            return
+        self._start(req)
+
+    def _start(self, req: _Request) -> None:
+        self._seq += 1
+        ticket = (self._serial, self._seq, req.key)
+        self._in_flight = req.key
+        self._pending = None
+        self.calls += 1
+        self._job = _ChecksJob(ticket, req)
+        _pool().start(self._job)
+        self._set_status()
+
+    def _finish(self, ticket) -> bool:
+        """Book-keeping of a finished job; True when it is this part's current one."""
+        if ticket[0] != self._serial:
+            return False
+        self._in_flight = None
+        self._job = None
+        pending, self._pending = self._pending, None
+        if pending is not None and self.wanted():
+            self._start(pending)
+        current = self._current_request()
+        return not isinstance(current, str) and current.key == ticket[2]
+
+    def _done(self, ticket, checks) -> None:
+        if ticket[0] != self._serial:
+            return
+        if self._finish(ticket):
+            self.error.setVisible(False)
+            self._show(ticket[2], checks)
+        self._set_status()
+
+    def _failed(self, ticket, message: str) -> None:
+        if ticket[0] != self._serial:
+            return
+        if self._finish(ticket):
+            self._show(ticket[2], None)
+            self.error.setText(message)
+            self.error.setVisible(True)
+            self.state.message.emit(message)
+        self._set_status()
+
+    def _set_status(self) -> None:
+        self.computing = self._in_flight is not None
+        self.status.setText("checking…" if self.computing else "")
+
+    def is_current(self) -> bool:
+        """Whether the shown checks belong to the current voxel, settings and kernel."""
+        req = self._current_request()
+        return not isinstance(req, str) and req.key == self.shown_key
+
+    # ------------------------------------------------------------------ display
+
+    def _show(self, key, checks: VoxelChecks | None) -> None:
+        self.shown_key = key
+        self.checks = checks
+        self.model.set_checks(checks)
+        self.table.resizeColumnToContents(0)
+        rows = self.model.rowCount()
+        self.table.setVisible(rows > 0)
+        self.table.setFixedHeight(rows * self.table.verticalHeader().defaultSectionSize() + 4)
+        self._fill_flags(checks)
+        for page in self.figures.values():
+            if checks is None:
+                page.clear()
+            else:
+                page.update_checks(checks)
+        if checks is None:
+            self.caption.setText("")
+        else:
+            i, j, k = key[4]
+            noise = "AR(1)" if checks.noise == "ar1" else "OLS"
+            self.caption.setText(
+                f"<b>{checks.kernel}</b> fit at voxel ({i}, {j}, {k}) · contrast "
+                f"{checks.contrast} · {noise} · response of {checks.condition}"
+            )
+        self.checks_shown.emit(checks)
+
+
+def install_checks(window) -> ChecksPanel:
+    """Add the Checks part to a :class:`~voxelscope.gui.main_window.MainWindow`.
+
+    Tabbed with Model on the right (Model stays in front); a hidden part computes nothing.
+    Call before the window builds its View menu so the part gets a toggle there.
+    """
+    panel = ChecksPanel(window.state)
+    dock = window.add_part("Checks", panel, Qt.DockWidgetArea.RightDockWidgetArea, tab_with="Model")
+    dock.visibilityChanged.connect(lambda on: panel.request() if on else None)
+    model = window.docks.get("Model")
+    if model is not None:
+        model.raise_()
+    return panel

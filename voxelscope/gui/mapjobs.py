@@ -1,0 +1,694 @@
+"""The live model map: whole-volume fits off the GUI thread, debounced and cancellable.
+
+:class:`LiveMap` listens to the state. When a model setting or the map's kernel, statistic
+or source changes, it waits :attr:`LiveMap.debounce_ms` (300 ms) for further changes, then
+runs :func:`voxelscope.core.maps.compute_map` on a worker thread (the same fit path as a
+clicked voxel) and shows the result as the overlay. A change while a job runs cancels it
+(the core's progress callback returns False) and starts one job for the newest settings.
+The GUI thread only swaps image data, so clicks and their per-voxel fits stay instant.
+
+Overlay sources (:data:`SOURCES`):
+
+``"model"``        the model map of one kernel and one statistic (live);
+``"difference"``   t under one kernel minus t under another
+                   (:func:`voxelscope.core.maps.kernel_difference`);
+``"file"``         a map file opened by the user (File > Open map, drop, ``--map``);
+``"disagreement"`` where our map and an outside map differ beyond a tolerance (provided
+                   by the Agreement part, :mod:`voxelscope.gui.agreement_panel`).
+
+:class:`BackgroundJob` is the small worker used here and by the Agreement part: a function
+``fn(progress)`` run on a QThread with ``progress``, ``done``, ``failed`` and
+``cancelled`` signals. :func:`wait_for_jobs` lets the window finish or stop them before a
+screenshot or when it closes.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from collections import OrderedDict
+from collections.abc import Callable
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+from PySide6.QtCore import (
+    QCoreApplication,
+    QElapsedTimer,
+    QObject,
+    Qt,
+    QThread,
+    QTimer,
+    Signal,
+    Slot,
+)
+
+from voxelscope.core.cache import Cancelled
+from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.maps import MapResult, compute_map, kernel_difference
+from voxelscope.core.model import ModelSettings
+from voxelscope.gui.loading import Layer
+from voxelscope.gui.state import ViewerState
+
+__all__ = [
+    "MAP_STATS",
+    "SOURCES",
+    "BackgroundJob",
+    "LiveLayer",
+    "LiveMap",
+    "MapOutcome",
+    "MapRequest",
+    "compute_request",
+    "default_kernel",
+    "install_map_parts",
+    "other_kernel",
+    "wait_for_jobs",
+]
+
+#: Overlay sources, with the words the Map part shows for them.
+SOURCES = (
+    ("model", "model map (live)"),
+    ("difference", "kernel difference"),
+    ("file", "map file"),
+    ("disagreement", "where the maps differ"),
+)
+
+#: Statistics the model map can show, with their labels.
+MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "beta"), ("variance", "variance"))
+
+#: Threshold a source starts with the first time it is shown (others keep the current one).
+FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
+
+#: Model maps kept for quick switching between kernels, statistics and sources.
+CACHE_SIZE = 6
+
+_JOBS: set[BackgroundJob] = set()
+
+
+def default_kernel(kernels, wanted: str | None = None) -> str | None:
+    """The map's kernel: ``wanted`` if enabled, else double-gamma if enabled, else the first.
+
+    Examples
+    --------
+    >>> default_kernel(("boxcar", "double-gamma"))
+    'double-gamma'
+    >>> default_kernel(("boxcar", "gamma"), wanted="gamma"), default_kernel(())
+    ('gamma', None)
+    """
+    kernels = tuple(kernels)
+    if wanted is not None and wanted in kernels:
+        return wanted
+    if "double-gamma" in kernels:
+        return "double-gamma"
+    return kernels[0] if kernels else None
+
+
+def other_kernel(kernels, kernel: str | None, wanted: str | None = None) -> str | None:
+    """Kernel subtracted in the difference map: ``wanted``, else the first other enabled one.
+
+    Examples
+    --------
+    >>> other_kernel(("boxcar", "gamma", "double-gamma"), "double-gamma")
+    'boxcar'
+    >>> other_kernel(("double-gamma",), "double-gamma") is None
+    True
+    """
+    others = [k for k in kernels if k != kernel]
+    if wanted is not None and wanted in others:
+        return wanted
+    return others[0] if others else None
+
+
+@dataclass(frozen=True)
+class MapRequest:
+    """What one map job computes: the model map, and for a difference the second kernel."""
+
+    settings: ModelSettings
+    kernel: str
+    stat: str = "t"
+    other: str | None = None
+
+    @property
+    def stats(self) -> tuple[str, ...]:
+        return ("t",) if self.stat == "t" else ("t", self.stat)
+
+
+@dataclass(eq=False)
+class MapOutcome:
+    """A finished map job.
+
+    ``model`` is the map of ``request.kernel`` (what the Agreement part compares with);
+    ``difference`` is ``t(kernel) - t(other)`` when the request had ``other``.
+    """
+
+    request: MapRequest
+    model: MapResult
+    other: MapResult | None = None
+    difference: np.ndarray | None = None
+    seconds: float = 0.0
+
+
+@dataclass(eq=False)
+class LiveLayer(Layer):
+    """An overlay made in the window (no file): ``title`` names it on the colour bar."""
+
+    title: str = ""
+    stat: str = "t"
+    source: str = "model"
+
+
+def compute_request(
+    run: Any,
+    analysis: Any,
+    request: MapRequest,
+    progress: Callable[[float], bool | None] | None = None,
+    cache: dict | None = None,
+) -> MapOutcome:
+    """Run one map request through :func:`voxelscope.core.maps.compute_map` (no Qt).
+
+    ``cache`` maps ``(settings, kernel, stats)`` to finished :class:`MapResult` objects;
+    maps found there are not computed again. ``progress(fraction)`` returning False cancels
+    (:class:`voxelscope.core.cache.Cancelled`).
+    """
+    t0 = time.perf_counter()
+    parts = [(request.kernel, request.stats)]
+    if request.other is not None:
+        parts.append((request.other, ("t",)))
+    results: list[MapResult] = []
+    for n, (kernel, stats) in enumerate(parts):
+        key = (request.settings, kernel, stats)
+        hit = None if cache is None else cache.get(key)
+        if hit is None:
+            sub = None
+            if progress is not None:
+
+                def sub(f: float, n: int = n) -> bool | None:
+                    return progress((n + f) / len(parts))
+
+            hit = compute_map(run, analysis, request.settings, kernel, progress=sub, stats=stats)
+        results.append(hit)
+    diff = None
+    if request.other is not None:
+        diff = kernel_difference(results[0], results[1], "t")
+    return MapOutcome(
+        request,
+        results[0],
+        results[1] if len(results) > 1 else None,
+        diff,
+        time.perf_counter() - t0,
+    )
+
+
+# ----------------------------------------------------------------------------- worker
+
+
+class _Worker(QObject):
+    progress = Signal(float)
+    done = Signal(object)
+    failed = Signal(str)
+    cancelled = Signal()
+
+    def __init__(self, fn: Callable, cancel: threading.Event, what: str) -> None:
+        super().__init__()
+        self.fn = fn
+        self.cancel = cancel
+        self.what = what
+
+    def _progress(self, fraction: float) -> bool:
+        self.progress.emit(float(fraction))
+        return not self.cancel.is_set()
+
+    @Slot()
+    def run(self) -> None:
+        try:
+            out = self.fn(self._progress)
+        except Cancelled:
+            self.cancelled.emit()
+        except VoxelscopeError as err:
+            self.failed.emit(str(err))
+        except MemoryError:
+            self.failed.emit(f"{self.what}: not enough memory")
+        except Exception as err:  # never let a worker take the window down
+            self.failed.emit(
+                f"{self.what} failed ({type(err).__name__}: {' '.join(str(err).split())[:160]})"
+            )
+        else:
+            if self.cancel.is_set():
+                self.cancelled.emit()
+            else:
+                self.done.emit(out)
+
+
+class BackgroundJob(QObject):
+    """Run ``fn(progress)`` on a worker thread; ``done(result)``, ``failed(line)`` or
+    ``cancelled()`` follows, then ``finished()``.
+
+    ``progress(fraction)`` returns False after :meth:`cancel`, which makes the core
+    functions stop at their next step.
+    """
+
+    progress = Signal(float)
+    done = Signal(object)
+    failed = Signal(str)
+    cancelled = Signal()
+    finished = Signal()
+
+    def __init__(self, fn: Callable, what: str = "the job", parent: QObject | None = None):
+        super().__init__(parent)
+        self._cancel = threading.Event()
+        self.thread = QThread()
+        self.worker = _Worker(fn, self._cancel, what)
+        self.worker.moveToThread(self.thread)
+        self.thread.started.connect(self.worker.run)
+        self.worker.progress.connect(self.progress)
+        self.worker.done.connect(self.done)
+        self.worker.failed.connect(self.failed)
+        self.worker.cancelled.connect(self.cancelled)
+        for sig in (self.worker.done, self.worker.failed, self.worker.cancelled):
+            sig.connect(self.thread.quit)
+        self.thread.finished.connect(self._finished)
+        self._running = False
+
+    def start(self) -> None:
+        _JOBS.add(self)
+        self._running = True
+        self.thread.start()
+
+    def cancel(self) -> None:
+        self._cancel.set()
+
+    @property
+    def is_cancelled(self) -> bool:
+        return self._cancel.is_set()
+
+    def is_running(self) -> bool:
+        return self._running
+
+    def wait(self, ms: int = 60000) -> bool:
+        return self.thread.wait(ms)
+
+    def _finished(self) -> None:
+        self._running = False
+        _JOBS.discard(self)
+        self.finished.emit()
+
+
+def wait_for_jobs(timeout_ms: int = 20000, cancel: bool = False) -> bool:
+    """Let running background jobs finish (or cancel them), delivering their results.
+
+    Returns True when none is left running.
+    """
+    clock = QElapsedTimer()
+    clock.start()
+    app = QCoreApplication.instance()
+    while _JOBS and clock.elapsed() < timeout_ms:
+        for job in list(_JOBS):
+            if cancel:
+                job.cancel()
+            job.wait(20)
+        if app is not None:
+            app.processEvents()
+    if app is not None:
+        app.processEvents()
+    return not _JOBS
+
+
+# ----------------------------------------------------------------------------- live map
+
+
+class LiveMap(QObject):
+    """Keeps the overlay in step with the Map settings and the model settings.
+
+    Signals
+    -------
+    busy(bool)
+        A map job started (True) or ended (False).
+    progress(float)
+        Fraction of the running job.
+    shown(object)
+        The overlay was replaced (the new layer, or None).
+    model_ready(object)
+        A model map (MapResult of the map's kernel and statistic) for the current model
+        settings is available; the Agreement part compares it with the outside map.
+    failed(str)
+        A job failed: one line (also sent to the status bar through ``state.message``).
+    """
+
+    busy = Signal(bool)
+    progress = Signal(float)
+    shown = Signal(object)
+    model_ready = Signal(object)
+    failed = Signal(str)
+
+    def __init__(self, state: ViewerState, parent: QObject | None = None) -> None:
+        super().__init__(parent)
+        self.state = state
+        self.debounce_ms = 300
+        self.timer = QTimer(self)
+        self.timer.setSingleShot(True)
+        self.timer.timeout.connect(self._start)
+        self.job: BackgroundJob | None = None
+        self.jobs_started = 0
+        self.jobs_done = 0
+        self.outcome: MapOutcome | None = None
+        self.model: MapResult | None = None
+        self.file_layer: Layer | None = None
+        self.providers: dict[str, Callable[[], Layer | None]] = {}
+        self.cache: OrderedDict = OrderedDict()
+        self.last_seconds: float | None = None
+        self.last_latency_s: float | None = None
+        self._changed_at: float | None = None
+        self._pending = False
+        self._mine: Layer | None = None
+        self._seen = self._key()
+        self._thresholds: dict[str, float] = {}
+        state.run_changed.connect(self._on_run)
+        state.settings_changed.connect(self._on_settings)
+        state.map_changed.connect(self._on_map)
+
+    # ------------------------------------------------------------------ what to show
+
+    def kernels(self) -> tuple[str, ...]:
+        return tuple(self.state.settings.kernels)
+
+    def kernel(self) -> str | None:
+        """The model map's kernel under the current settings."""
+        return default_kernel(self.kernels(), self.state.map_settings.kernel)
+
+    def other(self) -> str | None:
+        """The kernel subtracted in the difference map."""
+        return other_kernel(self.kernels(), self.kernel(), self.state.map_settings.other_kernel)
+
+    def request(self, source: str | None = None) -> MapRequest | None:
+        """The job the current settings ask for (None without a model or kernel)."""
+        st = self.state
+        if st.run is None or st.analysis is None:
+            return None
+        kernel = self.kernel()
+        if kernel is None:
+            return None
+        source = source or st.map_settings.source
+        stat = st.map_settings.stat
+        other = self.other() if source == "difference" else None
+        if source == "difference" and other is None:
+            return None
+        return MapRequest(st.settings, kernel, stat, other)
+
+    def is_busy(self) -> bool:
+        return self.job is not None or self.timer.isActive() or self._pending
+
+    def set_source(self, source: str) -> None:
+        """Show another source; each source keeps the threshold it was last shown with."""
+        ms = self.state.map_settings
+        if source == ms.source:
+            return
+        if source not in dict(SOURCES):
+            raise ValueError(f"unknown map source {source!r}")
+        self._thresholds[ms.source] = ms.threshold
+        thr = self._thresholds.get(source, FIRST_THRESHOLD.get(source, ms.threshold))
+        self.state.set_map_settings(source=source, threshold=float(thr))
+
+    def set_provider(self, source: str, fn: Callable[[], Layer | None]) -> None:
+        """Register the maker of an overlay for ``source`` (e.g. ``"disagreement"``)."""
+        self.providers[source] = fn
+
+    # ------------------------------------------------------------------ state events
+
+    def _key(self):
+        ms = self.state.map_settings
+        return (ms.source, ms.kernel, ms.other_kernel, ms.stat)
+
+    def _on_run(self) -> None:
+        self.cancel()
+        self.cache.clear()
+        self.outcome = None
+        self.model = None
+        self._mine = None
+        bundle = self.state.bundle
+        self.file_layer = None if bundle is None else bundle.stat_map
+        if self.state.analysis is not None and self.state.map_settings.source in (
+            "model",
+            "difference",
+        ):
+            # the file stays one choice away; the model map replaces it shortly
+            if bundle is not None and bundle.stat_map is not None:
+                bundle.stat_map = None
+            self.schedule(now=True)
+        elif self.state.map_settings.source != "file" and self.file_layer is not None:
+            self.state.map_settings = self.state.map_settings.with_(source="file")
+        self._seen = self._key()
+
+    def _on_settings(self, _settings) -> None:
+        if self.state.run is not None and self.state.analysis is not None:
+            self.schedule()
+
+    def _on_map(self) -> None:
+        layer = self.state.stat_map
+        if layer is not None and layer is not self._mine and layer is not self.file_layer:
+            # a map file was opened (menu, drop): it becomes the file source and is shown
+            self.file_layer = layer
+            self._mine = None
+            if self.state.map_settings.source != "file":
+                self.state.map_settings = self.state.map_settings.with_(source="file")
+            self._seen = self._key()
+            return
+        key = self._key()
+        if key != self._seen:
+            self._seen = key
+            self.apply()
+
+    # ------------------------------------------------------------------ jobs
+
+    def schedule(self, now: bool = False) -> None:
+        """Recompute after the debounce delay (restarted by every further change)."""
+        if self._changed_at is None or not self.is_busy():
+            self._changed_at = time.perf_counter()
+        if self.job is not None:
+            self.job.cancel()
+        if not now and self.timer.isActive() and self.timer.interval() == 0:
+            return  # a new run's first map is already on its way
+        self.timer.start(0 if now else self.debounce_ms)
+
+    def cancel(self) -> None:
+        """Stop the running job and any scheduled one."""
+        self.timer.stop()
+        self._pending = False
+        if self.job is not None:
+            self.job.cancel()
+
+    def flush(self, timeout_ms: int = 20000) -> bool:
+        """Start a scheduled job now and wait until the maps are shown (screenshots, tests)."""
+        clock = QElapsedTimer()
+        clock.start()
+        if self.timer.isActive():
+            self.timer.stop()
+            self._start()
+        app = QCoreApplication.instance()
+        while self.is_busy() and clock.elapsed() < timeout_ms:
+            if self.job is not None:
+                self.job.wait(20)
+            if app is not None:
+                app.processEvents()
+            if self.timer.isActive() and self.job is None:
+                self.timer.stop()
+                self._start()
+        return not self.is_busy()
+
+    def _start(self) -> None:
+        if self.job is not None:
+            self.job.cancel()
+            self._pending = True
+            return
+        self._pending = False
+        req = self.request()
+        if req is None:
+            self.apply()
+            return
+        # the model map for Agreement is wanted whatever the source shows
+        if self.state.map_settings.source not in ("model", "difference"):
+            req = self.request("model")
+            if req is None:
+                return
+        run, analysis = self.state.run, self.state.analysis
+        cache = dict(self.cache)
+
+        def fn(progress):
+            return compute_request(run, analysis, req, progress=progress, cache=cache)
+
+        job = BackgroundJob(fn, "the model map")
+        job.progress.connect(self.progress)
+        job.done.connect(self._done)
+        job.failed.connect(self._failed)
+        job.finished.connect(lambda job=job: self._job_finished(job))
+        self.job = job
+        self.jobs_started += 1
+        self.busy.emit(True)
+        job.start()
+
+    def _job_finished(self, job: BackgroundJob) -> None:
+        job.wait()
+        if self.job is job:
+            self.job = None
+        job.deleteLater()
+        if self._pending:
+            self._start()
+        if not self.is_busy():
+            self.busy.emit(False)
+
+    def _done(self, outcome: MapOutcome) -> None:
+        if self._pending or outcome.request != self.request(
+            "difference" if outcome.request.other is not None else "model"
+        ):
+            return  # settings changed meanwhile; a newer job follows
+        self.jobs_done += 1
+        self.last_seconds = outcome.seconds
+        self._remember(outcome.model)
+        if outcome.other is not None:
+            self._remember(outcome.other)
+        self.outcome = outcome
+        self.model = outcome.model
+        self.apply()
+        if self._changed_at is not None:
+            self.last_latency_s = time.perf_counter() - self._changed_at
+            self._changed_at = None
+        self.model_ready.emit(outcome.model)
+
+    def _failed(self, line: str) -> None:
+        self._changed_at = None
+        self.failed.emit(line)
+        self.state.message.emit(line)
+
+    def _remember(self, m: MapResult) -> None:
+        stats = tuple(s for s in ("t", "beta", "variance", "z", "p") if getattr(m, s) is not None)
+        key = (m.settings, m.kernel, stats)
+        self.cache[key] = m
+        self.cache.move_to_end(key)
+        while len(self.cache) > CACHE_SIZE:
+            self.cache.popitem(last=False)
+
+    # ------------------------------------------------------------------ showing
+
+    def apply(self) -> None:
+        """Show the overlay the Map settings ask for (start a job when it is not ready)."""
+        st = self.state
+        if st.run is None:
+            return
+        source = st.map_settings.source
+        layer: Layer | None = None
+        if source in ("model", "difference"):
+            req = self.request()
+            out = self.outcome
+            if req is None:
+                layer = None
+            elif out is None or out.request != req:
+                hit = self._from_cache(req)
+                if hit is None:
+                    self.schedule(now=True)
+                    return
+                out = self.outcome = hit
+                self.model = hit.model
+                self.model_ready.emit(hit.model)
+            if req is not None and out is not None:
+                layer = self._layer(out, source)
+        elif source == "file":
+            layer = self.file_layer
+        else:
+            fn = self.providers.get(source)
+            layer = fn() if fn is not None else None
+            if isinstance(layer, LiveLayer):
+                self._mine = layer
+        if layer is not st.stat_map:
+            keep = isinstance(layer, LiveLayer) and isinstance(st.stat_map, LiveLayer)
+            keep = keep and layer.source == st.stat_map.source and layer.stat == st.stat_map.stat
+            st.set_map(layer, keep_scale=keep)
+        self.shown.emit(layer)
+
+    def _from_cache(self, req: MapRequest) -> MapOutcome | None:
+        try:
+            return compute_request(None, None, req, cache=_StrictCache(self.cache))
+        except KeyError:
+            return None
+
+    def _layer(self, out: MapOutcome, source: str) -> LiveLayer:
+        req = out.request
+        if source == "difference" and out.difference is not None:
+            data = out.difference
+            title = f"t {req.kernel} − {req.other}"
+            stat = "t difference"
+        else:
+            data = out.model.stat(req.stat)
+            title = f"{req.stat} · {req.kernel}"
+            stat = req.stat
+        data = np.asarray(data, dtype=np.float32)
+        finite = np.abs(data[np.isfinite(data)])
+        top = float(finite.max()) if finite.size else 1.0
+        top = top if top > 0 else 1.0
+        layer = LiveLayer(None, data, 1, (-top, top), title=title, stat=stat, source=source)
+        self._mine = layer
+        return layer
+
+    def wait(self, timeout_ms: int = 20000) -> bool:
+        return self.flush(timeout_ms)
+
+
+class _StrictCache(dict):
+    """A read-only view of the map cache that raises KeyError on a miss (no computing)."""
+
+    def __init__(self, cache) -> None:
+        super().__init__(cache)
+
+    def get(self, key, default=None):
+        return self[key]
+
+
+# ----------------------------------------------------------------------------- window
+
+
+class _CloseGuard(QObject):
+    """Stops background jobs when the window closes (a running QThread must not be lost)."""
+
+    def eventFilter(self, obj, ev) -> bool:
+        from PySide6.QtCore import QEvent
+
+        if ev.type() == QEvent.Type.Close:
+            wait_for_jobs(5000, cancel=True)
+        return False
+
+
+def install_map_parts(window) -> None:
+    """Add Findings and Agreement to the window and tie the live map to it.
+
+    Findings is tabbed with Fits and Agreement with Model; the colour bar names live
+    overlays; a window image waits for the map that is being computed; closing the
+    window stops background jobs.
+    """
+    from voxelscope.gui.agreement_panel import AgreementPanel
+    from voxelscope.gui.findings import FindingsPanel
+
+    live: LiveMap = window.map_panel.live
+    window.live_map = live
+    window.findings = FindingsPanel(window.state)
+    window.agreement = AgreementPanel(window.state, live)
+    area = Qt.DockWidgetArea
+    window.add_part("Findings", window.findings, area.BottomDockWidgetArea, tab_with="Fits")
+    window.add_part("Agreement", window.agreement, area.RightDockWidgetArea, tab_with="Model")
+    window.docks["Fits"].raise_()
+    window.docks["Model"].raise_()
+    bar = window.slices.colour_bar
+
+    def title() -> None:
+        layer = window.state.stat_map
+        if isinstance(layer, LiveLayer) and bar.isVisible():
+            bar.title.setText(layer.title)
+            bar.title.setToolTip(layer.title)
+
+    window.state.map_changed.connect(title)
+    guard = _CloseGuard(window)
+    window.installEventFilter(guard)
+    window._map_close_guard = guard
+    hooks = getattr(window, "settle_hooks", None)
+    if hooks is not None:
+        hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
+    app = QCoreApplication.instance()
+    if app is not None:
+        app.aboutToQuit.connect(lambda: wait_for_jobs(5000, cancel=True))

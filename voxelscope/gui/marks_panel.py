@@ -1,0 +1,543 @@
+"""Marks: saved places with a title and a note; add, rename, reorder, delete, jump, TSV.
+
+The list lives in the state (``ViewerState.marks``, a core
+:class:`~voxelscope.core.marks.MarkList`); :class:`MarksModel` is a table model over it and
+the only place that edits it in the window. Every edit emits ``state.marks_changed``, so
+the session autosave and Show mode see it. Marks are kept in world coordinates (mm) and a
+jump goes to the nearest voxel of the open run (``Run.mm_to_voxel``).
+
+The window gets the part through :func:`install` (one line in ``main_window``): a Marks
+dock tabbed with Model, **Marks ▸ Add mark** (Ctrl+M or M), import and export as TSV.
+"""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+
+from PySide6.QtCore import QAbstractTableModel, QMimeData, QModelIndex, Qt, Signal
+from PySide6.QtGui import QAction, QKeySequence
+from PySide6.QtWidgets import (
+    QAbstractItemView,
+    QDialog,
+    QDialogButtonBox,
+    QFileDialog,
+    QFormLayout,
+    QHBoxLayout,
+    QHeaderView,
+    QLabel,
+    QLineEdit,
+    QMenu,
+    QMessageBox,
+    QPlainTextEdit,
+    QPushButton,
+    QTableView,
+    QVBoxLayout,
+    QWidget,
+)
+
+from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.marks import Mark, MarkList, read_marks_tsv, write_marks_tsv
+from voxelscope.gui.state import ViewerState
+
+__all__ = ["MARKS_FILTER", "AddMarkDialog", "MarksModel", "MarksPanel", "install"]
+
+MARKS_FILTER = "Marks (*.tsv);;All files (*)"
+_MIME = "application/x-voxelscope-mark-row"
+COLUMNS = ("Title", "Note", "Position (mm)")
+
+
+def _one_line(text: str, limit: int = 90) -> str:
+    line = " ".join(text.split())
+    return line if len(line) <= limit else line[: limit - 1] + "…"
+
+
+class MarksModel(QAbstractTableModel):
+    """Table model over ``state.marks``: Title and Note editable, rows movable.
+
+    Every change goes through the core :class:`MarkList` operations and is followed by
+    ``state.marks_changed``. A change made elsewhere (import, session) resets the model.
+    """
+
+    def __init__(self, state: ViewerState, parent=None) -> None:
+        super().__init__(parent)
+        self.state = state
+        self._own = False
+        state.marks_changed.connect(self._on_marks)
+
+    @property
+    def marks(self) -> MarkList:
+        return self.state.marks
+
+    def _changed(self) -> None:
+        self._own = True
+        try:
+            self.state.marks_changed.emit()
+        finally:
+            self._own = False
+
+    def _on_marks(self) -> None:
+        if not self._own:
+            self.beginResetModel()
+            self.endResetModel()
+
+    # ------------------------------------------------------------------ operations
+
+    def add(self, xyz_mm, title: str | None = None, note: str = "", row: int | None = None) -> int:
+        """Add a mark (at the end or before ``row``); returns its row."""
+        n = len(self.marks)
+        row = n if row is None else max(0, min(int(row), n))
+        self.beginInsertRows(QModelIndex(), row, row)
+        self.marks.add(xyz_mm, title, note, index=row)
+        self.endInsertRows()
+        self._changed()
+        return row
+
+    def rename(self, row: int, title: str) -> Mark:
+        mark = self.marks.rename(row, title)
+        self._row_changed(row)
+        return mark
+
+    def set_note(self, row: int, note: str) -> Mark:
+        mark = self.marks.set_note(row, note)
+        self._row_changed(row)
+        return mark
+
+    def move(self, source: int, destination: int) -> bool:
+        """Move the mark at ``source`` so that it ends up at row ``destination``."""
+        n = len(self.marks)
+        if not (0 <= source < n and 0 <= destination < n) or source == destination:
+            return False
+        # Qt counts the destination before the move: moving down lands before row dst + 1.
+        qt_dest = destination + 1 if destination > source else destination
+        if not self.beginMoveRows(QModelIndex(), source, source, QModelIndex(), qt_dest):
+            return False
+        self.marks.move(source, destination)
+        self.endMoveRows()
+        self._changed()
+        return True
+
+    def delete(self, row: int) -> Mark:
+        self.marks[row]  # raises InputError for a row that does not exist
+        self.beginRemoveRows(QModelIndex(), row, row)
+        mark = self.marks.delete(row)
+        self.endRemoveRows()
+        self._changed()
+        return mark
+
+    def _row_changed(self, row: int) -> None:
+        self.dataChanged.emit(self.index(row, 0), self.index(row, len(COLUMNS) - 1))
+        self._changed()
+
+    # ------------------------------------------------------------------ Qt model
+
+    def rowCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else len(self.marks)
+
+    def columnCount(self, parent=QModelIndex()) -> int:  # noqa: B008
+        return 0 if parent.isValid() else len(COLUMNS)
+
+    def data(self, index, role=Qt.ItemDataRole.DisplayRole):
+        if not index.isValid() or index.row() >= len(self.marks):
+            return None
+        m = self.marks[index.row()]
+        col = index.column()
+        if role == Qt.ItemDataRole.DisplayRole:
+            if col == 0:
+                return m.title
+            if col == 1:
+                return _one_line(m.note)
+            return "({:.1f}, {:.1f}, {:.1f})".format(*m.xyz_mm)
+        if role == Qt.ItemDataRole.EditRole:
+            return m.title if col == 0 else m.note if col == 1 else None
+        if role == Qt.ItemDataRole.ToolTipRole:
+            return f"{m.title}\n{m.note}" if m.note else m.title
+        return None
+
+    def setData(self, index, value, role=Qt.ItemDataRole.EditRole) -> bool:
+        if not index.isValid() or role != Qt.ItemDataRole.EditRole:
+            return False
+        if index.column() == 0:
+            self.rename(index.row(), str(value))
+            return True
+        if index.column() == 1:
+            self.set_note(index.row(), str(value))
+            return True
+        return False
+
+    def headerData(self, section, orientation, role=Qt.ItemDataRole.DisplayRole):
+        if role != Qt.ItemDataRole.DisplayRole:
+            return None
+        if orientation == Qt.Orientation.Horizontal:
+            return COLUMNS[section] if 0 <= section < len(COLUMNS) else None
+        return str(section + 1)
+
+    def flags(self, index):
+        base = Qt.ItemFlag.ItemIsDropEnabled
+        if not index.isValid():
+            return base
+        f = base | Qt.ItemFlag.ItemIsEnabled | Qt.ItemFlag.ItemIsSelectable
+        f |= Qt.ItemFlag.ItemIsDragEnabled
+        if index.column() in (0, 1):
+            f |= Qt.ItemFlag.ItemIsEditable
+        return f
+
+    # drag and drop: rows move inside the list -------------------------------------------
+
+    def supportedDropActions(self):
+        return Qt.DropAction.MoveAction
+
+    def supportedDragActions(self):
+        return Qt.DropAction.MoveAction
+
+    def mimeTypes(self) -> list[str]:
+        return [_MIME]
+
+    def mimeData(self, indexes) -> QMimeData:
+        data = QMimeData()
+        rows = sorted({i.row() for i in indexes if i.isValid()})
+        data.setData(_MIME, (str(rows[0]) if rows else "").encode())
+        return data
+
+    def dropMimeData(self, data, action, row, column, parent) -> bool:
+        if action != Qt.DropAction.MoveAction or not data.hasFormat(_MIME):
+            return False
+        try:
+            source = int(bytes(data.data(_MIME)).decode())
+        except ValueError:
+            return False
+        n = len(self.marks)
+        if row < 0:
+            row = parent.row() if parent.isValid() else n
+        destination = row - 1 if row > source else row
+        self.move(source, max(0, min(destination, n - 1)))
+        # The move is done here; returning False keeps the view from also removing the row.
+        return False
+
+    def moveRows(self, source_parent, source_row, count, dest_parent, dest_child) -> bool:
+        if count != 1 or source_parent.isValid() or dest_parent.isValid():
+            return False
+        dest = dest_child - 1 if dest_child > source_row else dest_child
+        return self.move(source_row, dest)
+
+
+class AddMarkDialog(QDialog):
+    """Title and note for a new mark at the current voxel."""
+
+    def __init__(self, default_title: str, where: str, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setWindowTitle("Add mark")
+        form = QFormLayout(self)
+        form.addRow(QLabel(where))
+        self.title = QLineEdit(default_title)
+        self.title.selectAll()
+        form.addRow("Title", self.title)
+        self.note = QPlainTextEdit()
+        self.note.setPlaceholderText("What to look at here (shown large in Show mode)")
+        self.note.setMinimumSize(380, 110)
+        form.addRow("Note", self.note)
+        buttons = QDialogButtonBox(
+            QDialogButtonBox.StandardButton.Ok | QDialogButtonBox.StandardButton.Cancel
+        )
+        buttons.accepted.connect(self.accept)
+        buttons.rejected.connect(self.reject)
+        form.addRow(buttons)
+
+
+class MarksPanel(QWidget):
+    """Marks: the list, buttons to add, go to, move, delete, import and export, the note."""
+
+    jumped = Signal(int)
+
+    def __init__(self, state: ViewerState, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setObjectName("marks_panel")
+        self.state = state
+        self.model = MarksModel(state, self)
+        lay = QVBoxLayout(self)
+        lay.setContentsMargins(6, 4, 6, 4)
+        lay.setSpacing(4)
+        top = QHBoxLayout()
+        self.add_button = QPushButton("Add mark")
+        self.add_button.setToolTip("Save the current voxel as a mark (Ctrl+M)")
+        self.go_button = QPushButton("Go to")
+        self.up_button = QPushButton("Up")
+        self.down_button = QPushButton("Down")
+        self.delete_button = QPushButton("Delete")
+        for b in (
+            self.add_button,
+            self.go_button,
+            self.up_button,
+            self.down_button,
+            self.delete_button,
+        ):
+            top.addWidget(b)
+        top.addStretch(1)
+        lay.addLayout(top)
+        self.table = QTableView()
+        self.table.setObjectName("marks_table")
+        self.table.setModel(self.model)
+        self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        self.table.setEditTriggers(
+            QAbstractItemView.EditTrigger.DoubleClicked
+            | QAbstractItemView.EditTrigger.EditKeyPressed
+        )
+        self.table.setDragEnabled(True)
+        self.table.setAcceptDrops(True)
+        self.table.setDropIndicatorShown(True)
+        self.table.setDragDropMode(QAbstractItemView.DragDropMode.InternalMove)
+        self.table.setDefaultDropAction(Qt.DropAction.MoveAction)
+        self.table.setAlternatingRowColors(True)
+        self.table.setShowGrid(False)
+        self.table.setWordWrap(False)
+        hh = self.table.horizontalHeader()
+        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Interactive)
+        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
+        hh.setSectionResizeMode(2, QHeaderView.ResizeMode.ResizeToContents)
+        self.table.setColumnWidth(0, 170)
+        self.table.verticalHeader().setDefaultSectionSize(24)
+        lay.addWidget(self.table, 3)
+        note_label = QLabel("Note of the selected mark")
+        note_label.setObjectName("hint")
+        lay.addWidget(note_label)
+        self.note = QPlainTextEdit()
+        self.note.setObjectName("mark_note")
+        self.note.setPlaceholderText("Select a mark to read or edit its note.")
+        self.note.setMaximumHeight(110)
+        self.note.setEnabled(False)
+        lay.addWidget(self.note, 1)
+        bottom = QHBoxLayout()
+        self.import_button = QPushButton("Import…")
+        self.import_button.setToolTip("Read marks from a TSV file (x_mm, y_mm, z_mm, title, note)")
+        self.export_button = QPushButton("Export…")
+        self.export_button.setToolTip("Write the marks to a TSV file")
+        bottom.addWidget(self.import_button)
+        bottom.addWidget(self.export_button)
+        bottom.addStretch(1)
+        self.count = QLabel("")
+        self.count.setObjectName("hint")
+        bottom.addWidget(self.count)
+        lay.addLayout(bottom)
+
+        self.add_button.clicked.connect(lambda: self.ask_add())
+        self.go_button.clicked.connect(lambda: self.jump(self.current_row()))
+        self.up_button.clicked.connect(lambda: self.move_selected(-1))
+        self.down_button.clicked.connect(lambda: self.move_selected(1))
+        self.delete_button.clicked.connect(lambda: self.delete(self.current_row()))
+        self.import_button.clicked.connect(self.ask_import)
+        self.export_button.clicked.connect(self.ask_export)
+        self.table.clicked.connect(lambda idx: self.jump(idx.row()))
+        self.table.activated.connect(lambda idx: self.jump(idx.row()))
+        self.table.selectionModel().currentRowChanged.connect(lambda *_: self._show_note())
+        self.note.textChanged.connect(self._note_edited)
+        self.model.modelReset.connect(self._refresh)
+        self.model.rowsInserted.connect(self._refresh)
+        self.model.rowsRemoved.connect(self._refresh)
+        self.model.rowsMoved.connect(self._refresh)
+        self.model.dataChanged.connect(lambda *_: self._show_note())
+        state.run_changed.connect(self._refresh)
+        self._refresh()
+
+    # ------------------------------------------------------------------ helpers
+
+    def current_row(self) -> int:
+        idx = self.table.currentIndex()
+        return idx.row() if idx.isValid() else -1
+
+    def select(self, row: int) -> None:
+        if 0 <= row < self.model.rowCount():
+            self.table.selectRow(row)
+            self.table.setCurrentIndex(self.model.index(row, 0))
+
+    def _refresh(self, *args) -> None:
+        n = len(self.state.marks)
+        has_run = self.state.run is not None
+        self.add_button.setEnabled(has_run)
+        row = self.current_row()
+        for b in (self.go_button, self.delete_button):
+            b.setEnabled(0 <= row < n)
+        self.up_button.setEnabled(0 < row < n)
+        self.down_button.setEnabled(0 <= row < n - 1)
+        self.export_button.setEnabled(n > 0)
+        self.count.setText(f"{n} mark{'s' if n != 1 else ''}")
+        self._show_note()
+
+    def _show_note(self) -> None:
+        row = self.current_row()
+        n = len(self.state.marks)
+        self.note.blockSignals(True)
+        if 0 <= row < n:
+            text = self.state.marks[row].note
+            if self.note.toPlainText() != text:
+                self.note.setPlainText(text)
+            self.note.setEnabled(True)
+        else:
+            self.note.setPlainText("")
+            self.note.setEnabled(False)
+        self.note.blockSignals(False)
+        self.up_button.setEnabled(0 < row < n)
+        self.down_button.setEnabled(0 <= row < n - 1)
+        for b in (self.go_button, self.delete_button):
+            b.setEnabled(0 <= row < n)
+
+    def _note_edited(self) -> None:
+        row = self.current_row()
+        if 0 <= row < len(self.state.marks):
+            self.model.set_note(row, self.note.toPlainText())
+
+    def _message(self, text: str) -> None:
+        self.state.message.emit(text)
+
+    # ------------------------------------------------------------------ actions
+
+    def add_current(self, title: str | None = None, note: str = "") -> int:
+        """Save the current voxel (its centre in mm) as a mark; returns its row, -1 if no run."""
+        run = self.state.run
+        if run is None:
+            self._message("Open a run first: a mark saves the current voxel.")
+            return -1
+        xyz = tuple(float(v) for v in run.voxel_to_mm(self.state.voxel))
+        row = self.model.add(xyz, title, note)
+        self.select(row)
+        self._message(f"Added mark {row + 1}: {self.state.marks[row].title}")
+        return row
+
+    def ask_add(self, offscreen: bool | None = None) -> int:
+        """Ask for a title and a note (a dialog on screen; offscreen the default title)."""
+        if self.state.run is None:
+            return self.add_current()
+        if offscreen is None:
+            from PySide6.QtGui import QGuiApplication
+
+            offscreen = QGuiApplication.platformName() in ("offscreen", "minimal")
+        if offscreen:
+            return self.add_current()
+        i, j, k = self.state.voxel
+        x, y, z = (float(v) for v in self.state.run.voxel_to_mm(self.state.voxel))
+        where = f"Voxel ({i}, {j}, {k}) at ({x:.1f}, {y:.1f}, {z:.1f}) mm"
+        dialog = AddMarkDialog(f"Mark {len(self.state.marks) + 1}", where, self)
+        if dialog.exec() != QDialog.DialogCode.Accepted:
+            return -1
+        return self.add_current(dialog.title.text().strip() or None, dialog.note.toPlainText())
+
+    def jump(self, row: int) -> bool:
+        """Go to the voxel nearest a mark."""
+        if not 0 <= row < len(self.state.marks):
+            return False
+        self.select(row)
+        ok = self.state.jump_to_mark(row)
+        if ok:
+            self.jumped.emit(row)
+        return ok
+
+    def move_selected(self, step: int) -> bool:
+        row = self.current_row()
+        target = row + int(step)
+        if not self.model.move(row, target):
+            return False
+        self.select(target)
+        return True
+
+    def delete(self, row: int) -> bool:
+        if not 0 <= row < len(self.state.marks):
+            return False
+        mark = self.model.delete(row)
+        self.select(min(row, len(self.state.marks) - 1))
+        self._message(f"Deleted mark '{mark.title}'")
+        return True
+
+    def import_tsv(self, path: str | os.PathLike[str], replace: bool = True) -> bool:
+        """Read marks from a TSV file (replacing the list, or added after it)."""
+        try:
+            marks = read_marks_tsv(path)
+        except VoxelscopeError as err:
+            self._message(str(err))
+            self._last_error = str(err)
+            return False
+        if not replace:
+            marks = MarkList([*self.state.marks, *marks])
+        self.state.set_marks(marks)
+        self._message(f"Read {len(marks)} marks from {Path(path).name}")
+        return True
+
+    def export_tsv(self, path: str | os.PathLike[str], force: bool = False) -> Path | None:
+        """Write the marks as TSV (atomically; an existing file only with ``force``)."""
+        try:
+            out = write_marks_tsv(self.state.marks, path, force=force)
+        except VoxelscopeError as err:
+            self._message(str(err))
+            return None
+        self._message(f"Wrote {len(self.state.marks)} marks to {out}")
+        return out
+
+    def _folder(self) -> str:
+        run = self.state.run
+        return str(Path(run.path).parent) if run is not None else ""
+
+    def ask_import(self) -> None:
+        path, _ = QFileDialog.getOpenFileName(self, "Import marks", self._folder(), MARKS_FILTER)
+        if not path:
+            return
+        replace = True
+        if len(self.state.marks):
+            box = QMessageBox(self)
+            box.setWindowTitle("Import marks")
+            box.setText(f"There are {len(self.state.marks)} marks already.")
+            add = box.addButton("Add to them", QMessageBox.ButtonRole.AcceptRole)
+            box.addButton("Replace them", QMessageBox.ButtonRole.DestructiveRole)
+            cancel = box.addButton(QMessageBox.StandardButton.Cancel)
+            box.exec()
+            if box.clickedButton() is cancel:
+                return
+            replace = box.clickedButton() is not add
+        self.import_tsv(path, replace=replace)
+
+    def ask_export(self) -> None:
+        start = str(Path(self._folder()) / "marks.tsv") if self._folder() else "marks.tsv"
+        path, _ = QFileDialog.getSaveFileName(self, "Export marks", start, MARKS_FILTER)
+        if path:
+            # the file dialog has already asked before overwriting
+            self.export_tsv(path, force=True)
+
+
+def install(window) -> MarksPanel:
+    """Add the Marks part (tabbed with Model) and Marks ▸ Add mark (Ctrl+M, M)."""
+    from PySide6.QtCore import Qt as _Qt
+
+    panel = MarksPanel(window.state)
+    window.marks_panel = panel
+    window.add_part("Marks", panel, _Qt.DockWidgetArea.RightDockWidgetArea, tab_with="Model")
+    if "Model" in window.docks:
+        window.docks["Model"].raise_()
+    act = QAction("Add &mark", window)
+    act.setShortcuts([QKeySequence("Ctrl+M"), QKeySequence("M")])
+    act.setToolTip("Save the current voxel as a mark with a title and a note")
+    act.triggered.connect(lambda: panel.ask_add())
+    window.addAction(act)
+    window.add_mark_action = act
+    from voxelscope.gui.session_io import menu_named
+
+    view = menu_named(window, "View")
+    if view is not None:
+        seps = [a for a in view.actions() if a.isSeparator()]
+        toggle = window.docks["Marks"].toggleViewAction()
+        if seps:
+            view.insertAction(seps[0], toggle)
+        else:
+            view.addAction(toggle)
+    menu = QMenu("&Marks", window)
+    menu.addAction(act)
+    imp = QAction("Import marks…", window)
+    imp.triggered.connect(panel.ask_import)
+    exp = QAction("Export marks…", window)
+    exp.triggered.connect(panel.ask_export)
+    menu.addAction(imp)
+    menu.addAction(exp)
+    help_menu = menu_named(window, "Help")
+    if help_menu is not None:
+        window.menuBar().insertMenu(help_menu.menuAction(), menu)
+    else:
+        window.menuBar().addMenu(menu)
+    window.marks_menu = menu
+    return panel
