@@ -680,8 +680,8 @@ def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         return []
     when = "later" if c.best_shift_s > 0 else "earlier"
     text = (
-        f"The response peaks at {c.peak_latency_s:.1f} s, {when} than the kernel's "
-        f"{c.kernel_peak_s:.1f} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
+        f"The response peaks at {c.peak_latency_s:.2f} s, {when} than the kernel's "
+        f"{c.kernel_peak_s:.2f} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
         f"onsets moved by {c.best_shift_s:+.2f} s)"
     )
     if c.best_shift_s in (float(c.shifts_s[0]), float(c.shifts_s[-1])):
