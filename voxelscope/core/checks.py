@@ -667,6 +667,16 @@ def _influence_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     return []
 
 
+def _secs(x: float) -> str:
+    """Seconds to two decimals without trailing zeros beyond one: 8.0, 7.5, 7.25.
+
+    >>> _secs(8.0), _secs(7.5), _secs(7.25)
+    ('8.0', '7.5', '7.25')
+    """
+    text = f"{x:.2f}"
+    return text[:-1] if text.endswith("0") else text
+
+
 def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     if c.best_shift_s is None or c.peak_latency_s is None or not math.isfinite(c.t_at_zero_shift):
         return []
@@ -680,8 +690,8 @@ def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         return []
     when = "later" if c.best_shift_s > 0 else "earlier"
     text = (
-        f"The response peaks at {c.peak_latency_s:.2f} s, {when} than the kernel's "
-        f"{c.kernel_peak_s:.2f} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
+        f"The response peaks at {_secs(c.peak_latency_s)} s, {when} than the kernel's "
+        f"{_secs(c.kernel_peak_s)} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
         f"onsets moved by {c.best_shift_s:+.2f} s)"
     )
     if c.best_shift_s in (float(c.shifts_s[0]), float(c.shifts_s[-1])):
