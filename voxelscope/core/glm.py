@@ -593,12 +593,8 @@ def _fit_checked(
     t = beta / np.sqrt(variance)
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     pval = None
-    if not want_p:
-        pass
-    elif df > 0:
-        pval = 2.0 * special.stdtr(df, -np.abs(t))
-    else:
-        pval = np.full(v, np.nan)
+    if want_p:
+        pval = 2.0 * special.stdtr(df, -np.abs(t)) if df > 0 else np.full(v, np.nan)
     if degenerate.any():
         for a in (variance, t, pval):
             if a is not None:
