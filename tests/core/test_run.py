@@ -698,3 +698,26 @@ def test_iter_blocks_default_mask_and_bad_masks():
     assert list(run.iter_blocks(np.zeros(run.shape, bool))) == []
     with pytest.raises(InputError, match="mask shape"):
         next(run.iter_blocks(np.ones((2, 2, 2), bool)))
+
+
+def test_memmap_blocks_release_pages_and_stay_correct(tmp_path, monkeypatch):
+    """Released pages of a mapped run are read back from the file on demand: blocks kept
+    from before a release still hold nibabel's values (reference: nibabel get_fdata)."""
+    import voxelscope.core.run as run_mod
+
+    monkeypatch.setattr(run_mod, "_RELEASE_COLUMNS", 1)
+    monkeypatch.setattr(run_mod, "_RELEASE_LAG_BLOCKS", 0)
+    rng = np.random.default_rng(9)
+    data = (500 + rng.standard_normal((30, 20, 12, 15)) * 5).astype(np.float32)
+    path = tmp_path / "big.nii"
+    nib.save(nib.Nifti1Image(data, np.eye(4)), path)
+    run = open_run(path, tr=2.0)
+    calls = []
+    store = run._store
+    orig = store.release
+    monkeypatch.setattr(store, "release", lambda a, b: (calls.append((a, b)), orig(a, b)))
+    ref = nib.load(path).get_fdata().reshape(-1, 15)  # C-order flat index -> series
+    kept = list(run.iter_blocks(np.ones(run.shape, bool), block_voxels=1024))
+    assert calls  # pages were released while iterating
+    for idx, Y in kept:
+        np.testing.assert_array_equal(Y.T, ref[idx].astype(np.float32))

@@ -44,6 +44,7 @@ from __future__ import annotations
 
 import json
 import math
+import mmap
 import os
 import threading
 from collections.abc import Callable, Iterator, Sequence
@@ -84,6 +85,10 @@ MASK_PERCENTILE = 98.0
 # Float32 bytes of one slab copied while iterating an uncompressed run in C order
 # (iter_chunks); iter_blocks reads the file in place and copies at most one block.
 _SLAB_BYTES = 32 * 1024 * 1024
+# Columns of a memory-mapped run handed out as blocks before their pages are released.
+_RELEASE_COLUMNS = 16384
+# Blocks handed out but perhaps not yet consumed, whose pages are left alone.
+_RELEASE_LAG_BLOCKS = 16
 
 _TIME_FACTORS = {"sec": 1.0, "unknown": 1.0, "msec": 1e-3, "usec": 1e-6}
 
@@ -147,6 +152,28 @@ class _RawMemmap:
         self.inter = float(inter)
         self.shape = tuple(int(n) for n in raw.shape[:3])
         self.scaled = not (self.slope == 1.0 and self.inter == 0.0)
+        self._map = getattr(raw, "_mmap", None)
+        # where the array's first byte lies inside the mapping (numpy aligns the mapping
+        # to the allocation granularity)
+        self._shift = int(getattr(raw, "offset", 0)) % mmap.ALLOCATIONGRANULARITY
+
+    def release(self, start: int, stop: int) -> None:
+        """Drop the pages of array bytes ``[start, stop)`` from this process's memory.
+
+        The file is mapped read-only, so the pages stay in the system's page cache and are
+        read back on demand; this only keeps a pass over a large run from counting the
+        whole file as the program's own memory. Partial pages at the ends are kept.
+        """
+        if self._map is None or not hasattr(self._map, "madvise"):
+            return
+        page = mmap.PAGESIZE
+        lo = -(-(start + self._shift) // page) * page
+        hi = ((stop + self._shift) // page) * page
+        if hi > lo:
+            try:
+                self._map.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
+            except (OSError, ValueError, AttributeError):  # pragma: no cover - best effort
+                self._map = None
 
     def _scale32(self, a: np.ndarray) -> np.ndarray:
         """Scaled float32 copy (never a view of the file)."""
@@ -205,6 +232,8 @@ class _RawMemmap:
         cflat = np.ravel_multi_index(np.unravel_index(ff, self.shape, order="F"), self.shape)
         cflat = cflat.astype(np.int64, copy=False)
         plain = not self.scaled and self.raw.dtype == np.dtype(np.float32)
+        row_bytes = data2d.shape[1] * self.raw.dtype.itemsize
+        done = 0  # columns before this one have been handed out and may be released
         for a in range(0, ff.size, block):
             sel = ff[a : a + block]
             lo, hi = int(sel[0]), int(sel[-1]) + 1
@@ -215,6 +244,15 @@ class _RawMemmap:
                 yield cflat[a : a + block], cols
             else:
                 yield cflat[a : a + block], self._scale32(cols)
+            # Release every row's pages of the columns handed out well before this block:
+            # the consumer may still be working on the last few blocks (maps keep up to
+            # 2 per worker thread in flight), which would only fault their pages back in.
+            safe = lo - _RELEASE_LAG_BLOCKS * block
+            if safe - done >= _RELEASE_COLUMNS:
+                size = self.raw.dtype.itemsize
+                for v in range(t):
+                    self.release(v * row_bytes + done * size, v * row_bytes + safe * size)
+                done = safe
 
     def volume(self, t: int) -> np.ndarray:
         return self._scale32(self.raw[..., t])
@@ -223,8 +261,10 @@ class _RawMemmap:
         """Raw volumes as C-ordered (B, Z, Y, X) views, a batch at a time."""
         x, y, z, t = self.raw.shape
         b = int(max(1, min(t, batch_bytes // max(1, x * y * z * 4))))
+        vol_bytes = x * y * z * self.raw.dtype.itemsize
         for t0 in range(0, t, b):
             yield np.asarray(self.raw[..., t0 : t0 + b]).T
+            self.release(t0 * vol_bytes, min(t, t0 + b) * vol_bytes)
 
 
 # --------------------------------------------------------------------------- the run
