@@ -548,7 +548,7 @@ def _fit_checked(
     # total sum of squares: centred when the design has a constant, else uncentred
     tss = np.einsum("ij,ij->j", Y, Y)
     # constant voxels: what is left after centring is only the rounding of the mean
-    flat = tss <= 1e-20 * mean * mean * n
+    flat = None if noise == "ols" else tss <= 1e-20 * mean * mean * n
 
     B = prep.pinv @ Y
     R = np.empty_like(Y)  # residuals, in place: R = Y - X B
@@ -599,6 +599,8 @@ def _fit_checked(
         for a in (variance, t, pval):
             if a is not None:
                 a[degenerate] = np.nan
+        if flat is None:
+            flat = tss <= 1e-20 * mean * mean * n
         r2[flat] = np.nan
     fitted = residuals = None
     if keep_series:
