@@ -64,7 +64,44 @@ def register(sub: argparse._SubParsersAction) -> None:
     d.set_defaults(handler=run_demo)
 
 
+def display_problem(environ=None, find_library=None) -> str | None:
+    """Why a window cannot open on this machine, or None (checked before Qt is loaded).
+
+    Qt aborts the process when it finds no display, or, from Qt 6.5 on X11, when the
+    system library ``libxcb-cursor0`` is missing; we say so in one line instead.
+
+    >>> display_problem({"QT_QPA_PLATFORM": "offscreen"}) is None
+    True
+    """
+    import ctypes.util
+    import os
+    import sys
+
+    env = os.environ if environ is None else environ
+    find = ctypes.util.find_library if find_library is None else find_library
+    if env.get("QT_QPA_PLATFORM") or not sys.platform.startswith("linux"):
+        return None
+    if env.get("WAYLAND_DISPLAY"):
+        return None
+    if not env.get("DISPLAY"):
+        return (
+            "no display found (DISPLAY and WAYLAND_DISPLAY are unset); run voxelscope on a "
+            "desktop, or add --screenshot FILE.png to render the window offscreen"
+        )
+    if find("xcb-cursor") is None:
+        return (
+            "the window needs the system library libxcb-cursor0 on X11 (Debian/Ubuntu: "
+            "sudo apt-get install libxcb-cursor0); or add --screenshot FILE.png to render "
+            "offscreen"
+        )
+    return None
+
+
 def _launch(**kwargs) -> int:
+    if not kwargs.get("screenshot"):
+        problem = display_problem()
+        if problem:
+            raise InputError(problem)
     try:
         from ..gui.app import launch
     except ImportError as exc:
