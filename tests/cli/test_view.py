@@ -21,7 +21,7 @@ def test_no_display_is_one_clear_line():
 @linux
 def test_missing_xcb_cursor_names_the_package():
     msg = display_problem({"DISPLAY": ":0"}, find_library=lambda name: None)
-    assert "libxcb-cursor0" in msg
+    assert "libxcb-cursor0" in msg and "libxcb-icccm4" in msg and "apt-get install" in msg
 
 
 def test_good_setups_pass():

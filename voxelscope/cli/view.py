@@ -67,8 +67,9 @@ def register(sub: argparse._SubParsersAction) -> None:
 def display_problem(environ=None, find_library=None) -> str | None:
     """Why a window cannot open on this machine, or None (checked before Qt is loaded).
 
-    Qt aborts the process when it finds no display, or, from Qt 6.5 on X11, when the
-    system library ``libxcb-cursor0`` is missing; we say so in one line instead.
+    Qt aborts the process when it finds no display, or on X11 when a system library its
+    plugin needs (``libxcb-cursor0`` and a few others) is missing; we say so in one line
+    instead, naming the packages.
 
     >>> display_problem({"QT_QPA_PLATFORM": "offscreen"}) is None
     True
@@ -88,13 +89,28 @@ def display_problem(environ=None, find_library=None) -> str | None:
             "no display found (DISPLAY and WAYLAND_DISPLAY are unset); run voxelscope on a "
             "desktop, or add --screenshot FILE.png to render the window offscreen"
         )
-    if find("xcb-cursor") is None:
+    missing = [pkg for lib, pkg in _X11_LIBRARIES if find(lib) is None]
+    if missing:
         return (
-            "the window needs the system library libxcb-cursor0 on X11 (Debian/Ubuntu: "
-            "sudo apt-get install libxcb-cursor0); or add --screenshot FILE.png to render "
-            "offscreen"
+            f"the window needs system libraries that Qt uses on X11: {' '.join(missing)} "
+            f"(Debian/Ubuntu: sudo apt-get install {' '.join(missing)}); or add "
+            "--screenshot FILE.png to render offscreen"
         )
     return None
+
+
+# Libraries Qt's X11 plugin loads (from Qt 6.5), with their Debian/Ubuntu package names.
+_X11_LIBRARIES = (
+    ("xcb-cursor", "libxcb-cursor0"),
+    ("xcb-icccm", "libxcb-icccm4"),
+    ("xcb-keysyms", "libxcb-keysyms1"),
+    ("xcb-image", "libxcb-image0"),
+    ("xcb-render-util", "libxcb-render-util0"),
+    ("xcb-shape", "libxcb-shape0"),
+    ("xcb-randr", "libxcb-randr0"),
+    ("xcb-xkb", "libxcb-xkb1"),
+    ("xkbcommon-x11", "libxkbcommon-x11-0"),
+)
 
 
 def _launch(**kwargs) -> int:
