@@ -45,6 +45,8 @@ def test_value_at_voxel_is_their_resampled_value(window, qtbot, ras_run, tmp_pat
     path = _linear_map(tmp_path, ras_run["affine"], ras_run["shape"])
     assert panel.load_their_map(path)
     _wait(qtbot, panel)
+    window.docks["Agreement"].raise_()  # a part behind another tab draws nothing
+    qtbot.waitUntil(lambda: not panel.visibleRegion().isEmpty(), timeout=5000)
     for v in [(4, 5, 3), ras_run["hot"], (1, 1, 1)]:
         state.set_voxel(v)
         x, y, z = state.run.voxel_to_mm(v)

@@ -37,6 +37,7 @@ from voxelscope.core.agreement import Agreement, compare_maps, explain, load_the
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.colours import colours
 from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, LiveMap
+from voxelscope.gui.sizing import compact_spin, shrinkable
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["MAX_POINTS", "AgreementPanel", "scatter_sample"]
@@ -79,6 +80,7 @@ class AgreementPanel(QWidget):
         self.compare_job: BackgroundJob | None = None
         self.explain_job: BackgroundJob | None = None
         self._again = False
+        self._voxel_stale = False
         self._sample = np.zeros(0, dtype=np.int64)
         c = colours()
         lay = QVBoxLayout(self)
@@ -88,6 +90,7 @@ class AgreementPanel(QWidget):
         top = QHBoxLayout()
         self.file_label = QLabel("No outside map.")
         self.file_label.setObjectName("hint")
+        shrinkable(self.file_label, 80)
         top.addWidget(self.file_label, 1)
         self.open_button = QPushButton("Their map…")
         self.open_button.setToolTip(
@@ -107,13 +110,16 @@ class AgreementPanel(QWidget):
         self.tolerance.setDecimals(2)
         self.tolerance.setSingleStep(0.25)
         self.tolerance.setValue(1.0)
-        self.tolerance.setPrefix("|ours − theirs| > ")
+        self.tolerance.setPrefix("|difference| > ")
         self.tolerance.setToolTip("Voxels whose values differ by more than this count as differing")
         self.tolerance.valueChanged.connect(lambda _v: self.recompare())
+        compact_spin(self.tolerance, 120)
         grid.addWidget(self.tolerance, 0, 1)
-        self.show_differ = QCheckBox("show where they differ on the Slices")
+        self.show_differ = QCheckBox("show where they differ")
         self.show_differ.setObjectName("agreement_show_differ")
-        self.show_differ.setToolTip("Map source 'where the maps differ': ours − theirs there")
+        self.show_differ.setToolTip(
+            "On the Slices: the Map source 'where the maps differ', ours − theirs there"
+        )
         self.show_differ.toggled.connect(self._toggle_overlay)
         grid.addWidget(self.show_differ, 1, 0, 1, 2)
         grid.setColumnStretch(1, 1)
@@ -256,7 +262,7 @@ class AgreementPanel(QWidget):
         def fn(progress):
             return compare_maps(model, theirs, tolerance=tol, stat=stat), model
 
-        job = BackgroundJob(fn, "the comparison with their map")
+        job = BackgroundJob(fn, "the comparison with their map", owner=self)
         job.done.connect(self._compared)
         job.failed.connect(self._failed)
         job.finished.connect(lambda job=job: self._compare_finished(job))
@@ -343,7 +349,7 @@ class AgreementPanel(QWidget):
                 progress=progress,
             )
 
-        job = BackgroundJob(fn, "the search for causes")
+        job = BackgroundJob(fn, "the search for causes", owner=self)
         job.progress.connect(lambda f: self.explain_progress.setValue(int(1000 * f)))
         job.done.connect(self._explained)
         job.failed.connect(self._failed)
@@ -435,10 +441,27 @@ class AgreementPanel(QWidget):
         elif self.live.model is not None:
             m = self.live.model
             stat = self.state.map_settings.stat
-            ours = float(getattr(m, stat) if getattr(m, stat, None) is not None else m.t)
+            vol = getattr(m, stat, None)
+            vol = m.t if vol is None else vol
+            v = float(np.asarray(vol)[i, j, k])
+            ours = v if math.isfinite(v) else None
         return ours, theirs
 
+    def showEvent(self, ev) -> None:
+        super().showEvent(ev)
+        self.catch_up()
+
+    def catch_up(self) -> None:
+        """Show the current voxel's values if they changed while the part was hidden."""
+        if self._voxel_stale:
+            self._on_voxel(self.state.voxel)
+
     def _on_voxel(self, voxel) -> None:
+        # a part tabbed behind another is not drawn: it catches up when it is shown
+        if self.theirs is not None and (not self.isVisible() or self.visibleRegion().isEmpty()):
+            self._voxel_stale = True
+            return
+        self._voxel_stale = False
         if self.state.run is None or self.theirs is None:
             self.at_voxel.setText("")
             self.here.setData([], [])

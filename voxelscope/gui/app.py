@@ -7,7 +7,36 @@ import os
 import sys
 from pathlib import Path
 
-__all__ = ["DEMO_CONTRAST", "demo_paths", "launch"]
+__all__ = ["DEMO_CONTRAST", "QUIET_MESSAGES", "demo_paths", "install_message_filter", "launch"]
+
+#: Qt messages that say nothing to the user (the offscreen platform has no window manager).
+QUIET_MESSAGES = ("This plugin does not support propagateSizeHints()",)
+
+_FILTER: dict = {}
+
+
+def install_message_filter() -> None:
+    """Drop exactly the Qt messages in :data:`QUIET_MESSAGES`; pass all others on.
+
+    Other messages go to the handler that was installed before, or to stderr as Qt
+    prints them. Installed once per process.
+    """
+    if _FILTER:
+        return
+    from PySide6.QtCore import qInstallMessageHandler
+
+    def handler(kind, context, message) -> None:
+        if message in QUIET_MESSAGES:
+            return
+        previous = _FILTER.get("previous")
+        if previous is not None:
+            previous(kind, context, message)
+        else:
+            print(message, file=sys.stderr)
+
+    _FILTER["handler"] = handler
+    _FILTER["previous"] = qInstallMessageHandler(handler)
+
 
 #: The demo starts at the tone cluster, so it shows the tone contrast.
 DEMO_CONTRAST = "tone"
@@ -162,6 +191,7 @@ def launch(
 
     from voxelscope.core.errors import VoxelscopeError
 
+    install_message_filter()
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setApplicationName("voxelscope")
     app.setOrganizationName("voxelscope-project")

@@ -58,7 +58,14 @@ from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["ChecksModel", "ChecksPanel", "FlagLabel", "default_kernel", "install_checks"]
+__all__ = [
+    "ChecksModel",
+    "ChecksPanel",
+    "FlagLabel",
+    "default_kernel",
+    "install_checks",
+    "stop_checks",
+]
 
 RAW_ROLE = Qt.ItemDataRole.UserRole + 1
 NO_FLAGS = "No warning signs at this voxel."
@@ -232,6 +239,15 @@ def _pool() -> QThreadPool:
         pool.setMaxThreadCount(1)
         _POOL["pool"] = pool
     return _POOL["pool"]
+
+
+def stop_checks(timeout_ms: int = 10000) -> bool:
+    """Drop queued checks and wait for the running one (the window is closing)."""
+    pool = _POOL.get("pool")
+    if pool is None:
+        return True
+    pool.clear()
+    return bool(pool.waitForDone(int(timeout_ms)))
 
 
 class _ChecksJob(QRunnable):

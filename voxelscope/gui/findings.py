@@ -27,6 +27,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.clusters import CONNECTIVITIES, ClusterTable, find_clusters
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.gui.sizing import compact_combo, compact_spin, shrinkable
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["MODES", "ClusterModel", "FindingsPanel"]
@@ -162,9 +163,15 @@ class FindingsPanel(QWidget):
         self.copy_button.setToolTip("Copy the table as tab-separated text")
         self.copy_button.clicked.connect(self.copy)
         row.addWidget(self.copy_button)
+        for combo in (self.mode, self.connectivity):
+            compact_combo(combo, 7)
+        compact_spin(self.threshold, 100)
+        compact_spin(self.min_voxels, 76)
         lay.addLayout(row)
         self.summary = QLabel("")
         self.summary.setObjectName("hint")
+        self.summary.setWordWrap(True)
+        shrinkable(self.summary, 80)
         lay.addWidget(self.summary)
         self.model = ClusterModel(self)
         self.view = QTableView()

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import math
 
-from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt
+from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt, Signal
 from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QAbstractItemView,
@@ -38,6 +38,10 @@ _BASE = [
     ("p", "Two-sided p value of t"),
     ("R²", "Fraction of the data variance explained by the whole model"),
 ]
+
+
+#: Typical widest cell texts of a column, for laying out the table before any fit.
+_TYPICAL = {"kernel": "double-gamma", "p": "1.00e-10", "p F": "1.00e-10", "df F": "00, 000"}
 
 
 def format_value(column: str, value) -> str:
@@ -69,7 +73,13 @@ def format_value(column: str, value) -> str:
 
 
 class FitsModel(QAbstractTableModel):
-    """Table model of the current voxel's fits (rows: kernels)."""
+    """Table model of the current voxel's fits (rows: kernels).
+
+    A new voxel with the same kernels and columns only changes the numbers
+    (``dataChanged`` and ``values_changed``); other changes reset the model.
+    """
+
+    values_changed = Signal()
 
     def __init__(self, state: ViewerState, parent=None) -> None:
         super().__init__(parent)
@@ -81,8 +91,7 @@ class FitsModel(QAbstractTableModel):
     # ------------------------------------------------------------------ data
 
     def _on_fits(self, fits) -> None:
-        self.beginResetModel()
-        self._rows = []
+        rows: list[dict] = []
         cols = list(_BASE)
         if fits is not None and fits.fits:
             ar1 = any(f.result.rho is not None for f in fits.fits)
@@ -96,7 +105,7 @@ class FitsModel(QAbstractTableModel):
                     ("p F", "p value of F"),
                 ]
             for f in fits.fits:
-                self._rows.append(
+                rows.append(
                     {
                         "": f.kernel,
                         "kernel": f.kernel,
@@ -112,6 +121,17 @@ class FitsModel(QAbstractTableModel):
                         "p F": f.f_p,
                     }
                 )
+        same_shape = cols == self._columns and [r["kernel"] for r in rows] == [
+            r["kernel"] for r in self._rows
+        ]
+        if same_shape and rows:
+            # same kernels and columns (a click): new numbers only, no reset of the view
+            self._rows = rows
+            self.dataChanged.emit(self.index(0, 0), self.index(len(rows) - 1, len(cols) - 1))
+            self.values_changed.emit()
+            return
+        self.beginResetModel()
+        self._rows = rows
         self._columns = cols
         self.endResetModel()
 
@@ -205,7 +225,8 @@ class FitsPanel(QWidget):
         hh.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
         hh.setHighlightSections(False)
         hh.setStretchLastSection(False)
-        self.table.installEventFilter(self)
+        self.table.installEventFilter(self)  # font and style changes
+        self.table.viewport().installEventFilter(self)  # its size (after the table's)
         self.table.verticalHeader().setDefaultSectionSize(26)
         self.table.setContextMenuPolicy(Qt.ContextMenuPolicy.ActionsContextMenu)
         self.copy_action = QAction("Copy table as TSV", self.table)
@@ -219,34 +240,90 @@ class FitsPanel(QWidget):
         self.notes.setObjectName("fits_notes")
         self.notes.setWordWrap(True)
         lay.addWidget(self.notes)
+        self.fit_width = False  # Show mode: squeeze the columns into the width
+        self._widths: list[int] = []
+        self._header_key = None
+        self._header_widths: list[int] = []
         self.model.modelReset.connect(self._layout_columns)
+        self.model.values_changed.connect(self._layout_columns)
         state.fits_changed.connect(self._on_fits)
 
     def _layout_columns(self) -> None:
         """Every column at least as wide as its header and cells; spare room shared out.
 
         Stretched columns of equal width clipped headers such as "variance" in a narrow
-        window; now a narrow window gets a horizontal scroll bar instead of cut-off text.
+        window. Now each column gets its content width plus a little padding; when the
+        padding does not fit, it shrinks first; only when even the bare text does not fit
+        does the table scroll sideways. With :attr:`fit_width` (Show mode) the columns are
+        always squeezed into the width (long numbers are then elided).
+        Widths are only set when they change, so a click that keeps the shape is cheap.
         """
         hh = self.table.horizontalHeader()
         n = self.model.columnCount()
         if n == 0:
             return
-        hh.setSectionResizeMode(QHeaderView.ResizeMode.Fixed)
-        need = [30] + [
-            max(self.table.sizeHintForColumn(c), hh.sectionSizeHint(c)) + 10 for c in range(1, n)
-        ]
-        spare = max(0, self.table.viewport().width() - sum(need))
-        if n > 1:
-            share, rest = divmod(spare, n - 1)
-            for c in range(1, n):
-                need[c] += share + (1 if c <= rest else 0)
-        for c, width in enumerate(need):
-            self.table.setColumnWidth(c, width)
+        base = self._content_widths()
+        first = max(30, hh.minimumSectionSize())  # the colour marker column
+        room = self.table.viewport().width() - first
+        pad = 8
+        while pad > 0 and sum(base) + pad * len(base) > room:
+            pad -= 2
+        need = [b + pad for b in base]
+        spare = room - sum(need)
+        if spare >= 0:
+            share, rest = divmod(spare, len(need))
+            need = [w + share + (1 if c < rest else 0) for c, w in enumerate(need)]
+        elif self.fit_width and room > 0:
+            scale = room / sum(need)
+            need = [max(24, int(w * scale)) for w in need]
+        widths = [first, *need]
+        if widths != self._widths:
+            self._widths = widths
+            for c, width in enumerate(widths):
+                self.table.setColumnWidth(c, width)
+
+    def relayout(self) -> None:
+        """Lay the columns out again (after a change of font or of ``fit_width``)."""
+        self._widths = []
+        self._header_key = None
+        self._layout_columns()
+
+    def _content_widths(self) -> list[int]:
+        """Width of each column after the marker: its header or its widest cell text.
+
+        Measured with the font metrics of the shown texts (a few dozen strings), not the
+        view's per-cell size hints, which cost a layout pass of every cell on each click.
+        Header widths are kept until the columns or the font change.
+        """
+        hh = self.table.horizontalHeader()
+        n = self.model.columnCount()
+        key = (tuple(self.model.columns()), self.table.font().key(), hh.font().key())
+        if key != self._header_key:
+            self._header_key = key
+            self._header_widths = [hh.sectionSizeHint(c) for c in range(n)]
+        fm = self.table.fontMetrics()
+        model = self.model
+        columns = model.columns()
+        out = []
+        for c in range(1, n):
+            cells = [model.data(model.index(r, c)) or "" for r in range(model.rowCount())]
+            if not cells:  # no fit yet: typical widest texts, so the first layout is right
+                cells = [_TYPICAL.get(columns[c], "-00.000")]
+            text = max((fm.horizontalAdvance(t) for t in cells), default=0) + 12
+            out.append(max(text, self._header_widths[c]))
+        return out
+
+    def table_width(self) -> int:
+        """Pixels the table needs to show every column without scrolling."""
+        need = 30 + sum(w + 8 for w in self._content_widths())
+        margins = self.layout().contentsMargins()
+        return need + 2 * self.table.frameWidth() + margins.left() + margins.right() + 4
 
     def eventFilter(self, obj, ev) -> bool:
-        if obj is self.table and ev.type() == QEvent.Type.Resize:
+        if obj is self.table.viewport() and ev.type() == QEvent.Type.Resize:
             self._layout_columns()
+        elif obj is self.table and ev.type() in (QEvent.Type.FontChange, QEvent.Type.StyleChange):
+            self.relayout()
         return super().eventFilter(obj, ev)
 
     def copy(self) -> str:

@@ -9,7 +9,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from PySide6.QtCore import QSettings, Qt, QTimer
+from PySide6.QtCore import QCoreApplication, QEvent, QSettings, Qt, QTimer
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QDockWidget,
@@ -108,6 +108,14 @@ class MainWindow(QMainWindow):
         scroll.setWidgetResizable(True)
         scroll.setWidget(self.model_panel)
         scroll.setFrameShape(QScrollArea.Shape.NoFrame)
+        # Model scrolls up and down only: the column is as wide as its narrowest layout
+        scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        scroll.setMinimumWidth(
+            self.model_panel.minimumSizeHint().width()
+            + scroll.verticalScrollBar().sizeHint().width()
+            + 2
+        )
+        self.model_scroll = scroll
         self.map_panel = MapPanel(self.state)
         self.map_panel.open_requested.connect(self.ask_map)
         self.fits = FitsPanel(self.state)
@@ -118,14 +126,14 @@ class MainWindow(QMainWindow):
         self.add_part("Fits", self.fits, Qt.DockWidgetArea.BottomDockWidgetArea)
         self.add_part("Map", self.map_panel, Qt.DockWidgetArea.BottomDockWidgetArea)
         self.splitDockWidget(self.docks["Fits"], self.docks["Map"], Qt.Orientation.Horizontal)
-        self.resizeDocks([self.docks["Fits"], self.docks["Map"]], [3, 1], Qt.Orientation.Horizontal)
-        self.resizeDocks([self.docks["Model"]], [330], Qt.Orientation.Horizontal)
         self.checks = install_checks(self)  # Checks, tabbed with Model (checks_panel.py)
         install_map_parts(self)  # Findings, Agreement, live map hooks (mapjobs.py)
 
         self._build_status()
         self._build_menus()
         install_lab_kit(self)  # Marks, Show mode, sessions, export and report (session_io.py)
+        self._arranged = False
+        self.auto_arrange = True  # False once a saved layout was restored
         self.state.message.connect(self._note)
         self.state.run_changed.connect(self._on_run)
         self._on_run()
@@ -149,6 +157,42 @@ class MainWindow(QMainWindow):
             self.tabifyDockWidget(self.docks[tab_with], dock)
         self.docks[title] = dock
         return dock
+
+    def arrange(self, width: int | None = None) -> None:
+        """Share the width out for a window ``width`` pixels wide (default: its own width).
+
+        The right column gets about a fifth (never less than Model needs, at most 440 px);
+        below it, Map gets what Fits leaves once Fits shows every column. Called when the
+        window is first shown and for a screenshot; the user's own dock sizes (and a
+        session's layout) are left alone after that.
+        """
+        width = int(width or self.width())
+        right = self.docks["Model"]
+        need = right.minimumSizeHint().width()
+        col = max(need, min(440, round(0.22 * width)))
+        self.resizeDocks([right], [col], Qt.Orientation.Horizontal)
+        bottom = max(0, width - col - 24)  # less the separators between docks
+        fits_need = self.fits.table_width()
+        map_min = self.docks["Map"].minimumSizeHint().width()
+        map_w = max(map_min, min(560, bottom - fits_need))
+        self.resizeDocks(
+            [self.docks["Fits"], self.docks["Map"]],
+            [max(120, bottom - map_w), map_w],
+            Qt.Orientation.Horizontal,
+        )
+        # the bottom row only as tall as Map needs (Slices and Signal get the rest)
+        height = self.height()
+        low = max(self.docks["Map"].minimumSizeHint().height() + 8, round(0.24 * height))
+        self.resizeDocks([self.docks["Fits"]], [min(low, 340)], Qt.Orientation.Vertical)
+        # apply the new sizes now, so nothing moves under the next click
+        self.layout().activate()
+        QCoreApplication.sendPostedEvents(None, QEvent.Type.LayoutRequest)
+
+    def showEvent(self, ev) -> None:
+        super().showEvent(ev)
+        if not self._arranged and self.auto_arrange:
+            self._arranged = True
+            self.arrange()
 
     def _build_status(self) -> None:
         bar = self.statusBar()
@@ -472,6 +516,44 @@ class MainWindow(QMainWindow):
         self.model_panel.contrast.setText(text)
         return self.state.set_contrast(text)
 
+    def shutdown(self, timeout_ms: int = 10000) -> None:
+        """Stop every background job of the window and wait for its thread (on close).
+
+        The live map's timer, the map, comparison and explanation jobs, the Checks pool,
+        a run being opened and a report being written: each is cancelled, cut off from the
+        window (no late result reaches a deleted part) and waited for, so no thread
+        outlives the window.
+        """
+        from voxelscope.gui.checks_panel import stop_checks
+        from voxelscope.gui.mapjobs import disconnect_all, stop_jobs
+
+        live = getattr(self, "live_map", None)
+        if live is not None:
+            live.cancel()
+        for name in ("job", "report_job"):
+            job = getattr(self, name, None)
+            if job is None:
+                continue
+            cancel = getattr(job, "cancel", None)
+            if cancel is not None:
+                cancel()
+            signals = [getattr(job, n, None) for n in ("progress", "done", "failed", "finished")]
+            disconnect_all(*[sig for sig in signals if sig is not None])
+            job.thread.quit()
+            job.wait(timeout_ms)
+            setattr(self, name, None)
+        self.progress.setVisible(False)
+        self.cancel_button.setVisible(False)
+        stop_jobs(self, timeout_ms)
+        stop_checks(timeout_ms)
+        if live is not None:
+            live.job = None
+            live.cancel()
+        agreement = getattr(self, "agreement", None)
+        if agreement is not None:
+            agreement.compare_job = None
+            agreement.explain_job = None
+
     def reset_views(self) -> None:
         for view in self.slices.views.values():
             view.reset_view()
@@ -479,15 +561,22 @@ class MainWindow(QMainWindow):
     def save_image(self, path: str | os.PathLike[str], size: tuple[int, int] | None = None) -> Path:
         """Render the window to a PNG, written atomically (temporary file, then replace).
 
-        With ``size``, an image of exactly that size: when the window cannot shrink that far
-        (its parts have minimum sizes), the rendering is scaled to fit.
+        With ``size``, the window is first resized to exactly that size and rendered at it
+        (1:1): every part fits in 1280 x 800 and more. Only a size below the window's
+        minimum is reached by scaling the rendering.
         """
         path = Path(path)
         tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp.png")
+        if size is not None and (self.width(), self.height()) != tuple(size):
+            self.resize(int(size[0]), int(size[1]))
+            QCoreApplication.processEvents()
+            self.arrange()
+            QCoreApplication.processEvents()
         for hook in self.settle_hooks:  # e.g. the live map being computed
             hook()
         pix = self.grab()
         if size is not None and (pix.width(), pix.height()) != tuple(size):
+            # only below the window's minimum size (about 1250 x 540): scaled to fit
             pix = pix.scaled(
                 int(size[0]),
                 int(size[1]),

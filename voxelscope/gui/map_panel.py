@@ -25,6 +25,7 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
+from voxelscope.gui.sizing import compact_combo, compact_spin, shrinkable
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["COLOUR_SCALES", "MapPanel"]
@@ -55,7 +56,7 @@ class MapPanel(QWidget):
         grid = QGridLayout()
         grid.setHorizontalSpacing(6)
         grid.setVerticalSpacing(5)
-        grid.setColumnStretch(1, 1)
+        grid.setColumnStretch(1, 2)
         grid.setColumnStretch(3, 1)
         row = 0
         self.source = QComboBox()
@@ -103,6 +104,7 @@ class MapPanel(QWidget):
         self.file_label = QLabel("No map open.")
         self.file_label.setObjectName("hint")
         self.file_label.setWordWrap(False)
+        shrinkable(self.file_label, 80)  # elided to the width it gets (see _describe)
         grid.addWidget(self.file_label, row, 0, 1, 4)
         row += 1
 
@@ -152,6 +154,13 @@ class MapPanel(QWidget):
         grid.addWidget(self.scale, row, 3)
         row += 1
         lay.addLayout(grid)
+        for combo in (self.source, self.scale):
+            compact_combo(combo, 7)
+        compact_combo(self.stat, 5)
+        for combo in (self.kernel, self.other):
+            compact_combo(combo, 11)  # "double-gamma" stays readable
+        compact_spin(self.threshold, 90)
+        compact_spin(self.limit, 72)
 
         job_row = QHBoxLayout()
         job_row.setSpacing(6)
@@ -160,6 +169,7 @@ class MapPanel(QWidget):
         job_row.addWidget(self.visible)
         self.job_label = QLabel("")
         self.job_label.setObjectName("hint")
+        shrinkable(self.job_label, 40)
         job_row.addWidget(self.job_label, 1)
         self.job_progress = QProgressBar()
         self.job_progress.setObjectName("map_progress")

@@ -24,8 +24,10 @@ screenshot or when it closes.
 
 from __future__ import annotations
 
+import atexit
 import threading
 import time
+import warnings
 from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -60,8 +62,10 @@ __all__ = [
     "MapRequest",
     "compute_request",
     "default_kernel",
+    "disconnect_all",
     "install_map_parts",
     "other_kernel",
+    "stop_jobs",
     "wait_for_jobs",
 ]
 
@@ -253,8 +257,15 @@ class BackgroundJob(QObject):
     cancelled = Signal()
     finished = Signal()
 
-    def __init__(self, fn: Callable, what: str = "the job", parent: QObject | None = None):
+    def __init__(
+        self,
+        fn: Callable,
+        what: str = "the job",
+        parent: QObject | None = None,
+        owner: QObject | None = None,
+    ):
         super().__init__(parent)
+        self.owner = owner
         self._cancel = threading.Event()
         self.thread = QThread()
         self.worker = _Worker(fn, self._cancel, what)
@@ -265,9 +276,14 @@ class BackgroundJob(QObject):
         self.worker.failed.connect(self.failed)
         self.worker.cancelled.connect(self.cancelled)
         for sig in (self.worker.done, self.worker.failed, self.worker.cancelled):
-            sig.connect(self.thread.quit)
+            # direct: the thread ends as soon as the work does, even while the GUI thread
+            # is blocked waiting for it (a queued quit would wait for the GUI's event loop)
+            sig.connect(self.thread.quit, Qt.ConnectionType.DirectConnection)
         self.thread.finished.connect(self._finished)
         self._running = False
+        if owner is not None:
+            # the owner going away must not receive late results (its C++ side is gone)
+            owner.destroyed.connect(self.detach)
 
     def start(self) -> None:
         _JOBS.add(self)
@@ -287,10 +303,69 @@ class BackgroundJob(QObject):
     def wait(self, ms: int = 60000) -> bool:
         return self.thread.wait(ms)
 
+    def detach(self, *_args) -> None:
+        """Cancel and drop every connection to the outside (the job runs out on its own)."""
+        self._cancel.set()
+        disconnect_all(self.progress, self.done, self.failed, self.cancelled, self.finished)
+
+    def stop(self, timeout_ms: int = 10000) -> bool:
+        """Detach, then wait for the worker thread to end; True when it has."""
+        self.detach()
+        self.thread.quit()  # ends the thread's event loop once the work returns
+        ok = self.thread.wait(int(timeout_ms))
+        if ok:
+            self._running = False
+            _JOBS.discard(self)
+        return ok
+
     def _finished(self) -> None:
         self._running = False
         _JOBS.discard(self)
         self.finished.emit()
+
+
+def disconnect_all(*signals) -> None:
+    """Disconnect every slot of each signal (quietly when none is connected)."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        for sig in signals:
+            try:
+                sig.disconnect()
+            except (RuntimeError, TypeError):
+                pass
+
+
+def _owned_by(obj: QObject | None, root: QObject) -> bool:
+    """Whether ``obj`` is ``root`` or one of its descendants."""
+    while obj is not None:
+        if obj is root:
+            return True
+        try:
+            obj = obj.parent()
+        except RuntimeError:  # C++ side already deleted
+            return False
+    return False
+
+
+def stop_jobs(root: QObject | None = None, timeout_ms: int = 10000) -> bool:
+    """Stop the background jobs owned by ``root`` (all jobs when None) and wait for them.
+
+    Their results are dropped (nothing is delivered to their owners). Returns True when
+    every stopped job's thread has ended.
+    """
+    ok = True
+    for job in list(_JOBS):
+        if root is None or _owned_by(job.owner, root):
+            ok &= job.stop(timeout_ms)
+    return ok
+
+
+def _stop_all_at_exit() -> None:
+    # a QThread destroyed while running aborts the process with a warning
+    stop_jobs(None, 5000)
+
+
+atexit.register(_stop_all_at_exit)
 
 
 def wait_for_jobs(timeout_ms: int = 20000, cancel: bool = False) -> bool:
@@ -515,7 +590,7 @@ class LiveMap(QObject):
         def fn(progress):
             return compute_request(run, analysis, req, progress=progress, cache=cache)
 
-        job = BackgroundJob(fn, "the model map")
+        job = BackgroundJob(fn, "the model map", owner=self)
         job.progress.connect(self.progress)
         job.done.connect(self._done)
         job.failed.connect(self._failed)
@@ -651,7 +726,11 @@ class _CloseGuard(QObject):
         from PySide6.QtCore import QEvent
 
         if ev.type() == QEvent.Type.Close:
-            wait_for_jobs(5000, cancel=True)
+            shutdown = getattr(obj, "shutdown", None)
+            if shutdown is not None:
+                shutdown()
+            else:
+                stop_jobs(obj)
         return False
 
 
@@ -674,6 +753,10 @@ def install_map_parts(window) -> None:
     window.add_part("Agreement", window.agreement, area.RightDockWidgetArea, tab_with="Model")
     window.docks["Fits"].raise_()
     window.docks["Model"].raise_()
+    agreement = window.agreement
+    window.docks["Agreement"].visibilityChanged.connect(
+        lambda on: agreement.catch_up() if on else None
+    )
     bar = window.slices.colour_bar
 
     def title() -> None:
@@ -691,4 +774,4 @@ def install_map_parts(window) -> None:
         hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
     app = QCoreApplication.instance()
     if app is not None:
-        app.aboutToQuit.connect(lambda: wait_for_jobs(5000, cancel=True))
+        app.aboutToQuit.connect(_stop_all_at_exit)

@@ -234,7 +234,7 @@ class AddMarkDialog(QDialog):
         form.addRow("Title", self.title)
         self.note = QPlainTextEdit()
         self.note.setPlaceholderText("What to look at here (shown large in Show mode)")
-        self.note.setMinimumSize(380, 110)
+        self.note.setMinimumSize(300, 110)
         form.addRow("Note", self.note)
         buttons = QDialogButtonBox(
             QDialogButtonBox.StandardButton.Ok | QDialogButtonBox.StandardButton.Cancel
@@ -271,6 +271,8 @@ class MarksPanel(QWidget):
             self.down_button,
             self.delete_button,
         ):
+            b.setObjectName("small_button")
+            b.setMinimumWidth(20)
             top.addWidget(b)
         top.addStretch(1)
         lay.addLayout(top)

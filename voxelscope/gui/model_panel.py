@@ -29,6 +29,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.hrf import KERNEL_NAMES
 from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.sizing import compact_combo, compact_spin
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["ContrastEdit", "ModelPanel", "swatch_icon"]
@@ -148,8 +149,15 @@ class ModelPanel(QWidget):
         form = QFormLayout(noise)
         form.setLabelAlignment(Qt.AlignmentFlag.AlignLeft)
         self.noise = QComboBox()
-        self.noise.addItem("OLS (white noise)", "ols")
-        self.noise.addItem("AR(1) prewhitened", "ar1")
+        self.noise.addItem("OLS", "ols")
+        self.noise.addItem("AR(1)", "ar1")
+        self.noise.setItemData(
+            0, "Ordinary least squares: white noise", Qt.ItemDataRole.ToolTipRole
+        )
+        self.noise.setItemData(
+            1, "AR(1) prewhitened: autocorrelated noise", Qt.ItemDataRole.ToolTipRole
+        )
+        self.noise.setToolTip("OLS assumes white noise; AR(1) prewhitens autocorrelated noise")
         self.noise.currentIndexChanged.connect(
             lambda _i: self.state.update_settings(noise=self.noise.currentData())
         )
@@ -186,6 +194,10 @@ class ModelPanel(QWidget):
         )
         form.addRow("Derivatives", self.derivatives)
         lay.addWidget(noise)
+        for combo in (self.noise, self.derivatives):
+            compact_combo(combo, 8)
+        compact_spin(self.highpass, 90)
+        compact_spin(self.shift, 90)
 
         conf = QGroupBox("Confounds")
         fl = QVBoxLayout(conf)

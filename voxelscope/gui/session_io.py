@@ -192,6 +192,7 @@ def restore_layout(window, layout, geometry: bool = True) -> None:
         return
     state = _unb64(layout.get("state"))
     if state is not None:
+        window.auto_arrange = False
         window.restoreState(state)
     geom = _unb64(layout.get("geometry")) if geometry else None
     if geom is not None:

@@ -175,11 +175,16 @@ class ShowMode(QObject):
             self._in_splitter = True
         self.banner.show()
         self.banner.fit_height()
+        w.fits.fit_width = True  # every Fits column on screen, at the larger font
+        QApplication.processEvents()  # let the larger style reach the table first
         self._fit_fits()
         self._share_workspace()
+        QApplication.processEvents()
+        self._fit_fits()
+        w.fits.relayout()
         self.active = True
         QApplication.instance().installEventFilter(self)
-        w.state.fits_changed.connect(self._restyle_labels)
+        w.state.units_changed.connect(self._restyle_labels)
         panel = getattr(w, "marks_panel", None)
         row = panel.current_row() if panel is not None else -1
         n = len(w.state.marks)
@@ -196,11 +201,12 @@ class ShowMode(QObject):
         w = self.window
         QApplication.instance().removeEventFilter(self)
         try:
-            w.state.fits_changed.disconnect(self._restyle_labels)
+            w.state.units_changed.disconnect(self._restyle_labels)
         except (RuntimeError, TypeError):
             pass
         self.active = False
         self.banner.hide()
+        w.fits.fit_width = False
         self._shrink()
         w.setStyleSheet(self._saved.get("sheet", w.styleSheet()))
         w.menuBar().setVisible(self._saved.get("menu", True))
@@ -210,11 +216,12 @@ class ShowMode(QObject):
         sizes = self._saved.get("workspace")
         if sizes and len(sizes) == w.workspace.count():
             w.workspace.setSizes(sizes)
+        w.fits.relayout()
         self._saved_state = None
         self.left.emit()
 
-    def _share_workspace(self, signal_share: float = 0.56) -> None:
-        """Give Signal a little more room than Slices (its plots carry the story)."""
+    def _share_workspace(self, signal_share: float = 0.42) -> None:
+        """Give Slices the larger share (the room must see where the voxel is)."""
         ws = self.window.workspace
         sizes = ws.sizes()
         i_sl, i_sg = ws.indexOf(self.window.slices), ws.indexOf(self.window.signal)
@@ -239,7 +246,9 @@ class ShowMode(QObject):
             + rows * table.verticalHeader().defaultSectionSize()
             + fits.caption.sizeHint().height()
             + (fits.notes.sizeHint().height() if fits.notes.isVisible() else 0)
-            + 64
+            + dock.widget().layout().spacing() * 2
+            + 2 * table.frameWidth()
+            + 30  # the dock's title bar and margins
         )
         w.resizeDocks([dock], [int(need)], Qt.Orientation.Vertical)
 
@@ -340,6 +349,10 @@ class ShowMode(QObject):
                 f.setPixelSize(int(f.pixelSize() * 1.5) if f.pixelSize() > 0 else 22)
                 item.setFont(f)
             view._place_labels()
+        lay = sig.canvas.ci.layout
+        keep["stretch"] = (lay.rowStretchFactor(0), lay.rowStretchFactor(1))
+        lay.setRowStretchFactor(0, 5)  # the signal itself gets most of the height
+        lay.setRowStretchFactor(1, 2)
         table = w.fits.table
         keep["row"] = table.verticalHeader().defaultSectionSize()
         table.verticalHeader().setDefaultSectionSize(38)
@@ -377,6 +390,10 @@ class ShowMode(QObject):
         for view in w.slices.views.values():
             view._place_labels()
         w.fits.table.verticalHeader().setDefaultSectionSize(keep["row"])
+        if "stretch" in keep:
+            lay = sig.canvas.ci.layout
+            lay.setRowStretchFactor(0, keep["stretch"][0])
+            lay.setRowStretchFactor(1, keep["stretch"][1])
         for plot in (sig.plot, sig.resid):
             for name in ("left", "bottom"):
                 ax = plot.getAxis(name)

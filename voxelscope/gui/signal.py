@@ -22,6 +22,7 @@ from PySide6.QtWidgets import (
     QHBoxLayout,
     QLabel,
     QRadioButton,
+    QSizePolicy,
     QVBoxLayout,
     QWidget,
 )
@@ -77,6 +78,10 @@ class SignalPanel(QWidget):
         self.legend = QLabel("")
         self.legend.setObjectName("legend")
         self.legend.setTextFormat(Qt.TextFormat.RichText)
+        # the legend wraps (items never split) so it never sets the window's width
+        self.legend.setWordWrap(True)
+        self.legend.setMinimumWidth(120)
+        self.legend.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
         head.addWidget(self.legend, 1)
         self.unit_data = QRadioButton("data values")
         self.unit_pct = QRadioButton("% signal change")
@@ -133,6 +138,8 @@ class SignalPanel(QWidget):
             item.curve.setSegmentedLineMode("on")
         self._bands: list[pg.LinearRegionItem] = []
         self._band_key = None
+        self._label_key: bool | None = None
+        self._x_span: tuple[float, float] | None = None
         self.unit_data.toggled.connect(self._units_clicked)
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
@@ -155,6 +162,7 @@ class SignalPanel(QWidget):
 
     def _on_run(self) -> None:
         self._band_key = None
+        self._x_span = None
         self._update_bands()
 
     def _on_settings(self, settings) -> None:
@@ -215,19 +223,24 @@ class SignalPanel(QWidget):
             else:
                 curve.setData(t, scale(f.fitted))
                 self.resid_curves[name].setData(t, scale(f.residuals, centre=False))
-        self.plot.setLabel(
-            "left",
-            "% change" if pct else "signal",
-            color="#303030",
-            **{"font-size": "13px"},
-        )
-        self.resid.setLabel(
-            "left",
-            "residuals (%)" if pct else "residuals",
-            color="#303030",
-            **{"font-size": "13px"},
-        )
-        self.plot.setXRange(float(t[0]), float(t[-1]), padding=0.01)
+        if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
+            self._label_key = pct
+            self.plot.setLabel(
+                "left",
+                "% change" if pct else "signal",
+                color="#303030",
+                **{"font-size": "13px"},
+            )
+            self.resid.setLabel(
+                "left",
+                "residuals (%)" if pct else "residuals",
+                color="#303030",
+                **{"font-size": "13px"},
+            )
+        span = (float(t[0]), float(t[-1]))
+        if self._x_span != span:
+            self._x_span = span
+            self.plot.setXRange(*span, padding=0.01)
         self.plot.enableAutoRange(axis="y")
         self.resid.enableAutoRange(axis="y")
         self._update_legend(shown)
@@ -249,4 +262,7 @@ class SignalPanel(QWidget):
                     f'<span style="color:{col.name()}">&#9608;&#9608;</span>&nbsp;'
                     f"{html.escape(cond)}"
                 )
-        self.legend.setText("&nbsp;&nbsp;&nbsp;".join(parts))
+        # non-breaking inside an item, breakable between items
+        text = "&nbsp;&nbsp; ".join(parts)
+        if text != self.legend.text():  # a rich-text relayout costs a few ms per click
+            self.legend.setText(text)

@@ -446,6 +446,10 @@ class SlicesPanel(QWidget):
         self.readout = QLabel("")
         self.readout.setObjectName("readout")
         self.readout.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        # one line that never widens the window (cut at the right when very narrow); no
+        # word wrap, so its height, and with it the views, never jump from click to click
+        self.readout.setMinimumWidth(100)
+        self.readout.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
         outer.addWidget(self.readout)
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._refresh)
@@ -475,4 +479,4 @@ class SlicesPanel(QWidget):
         if layer is not None:
             v = float(layer.data[i, j, k])
             parts.append(f"<b>Map</b> {v:.3f}" if np.isfinite(v) else "<b>Map</b> –")
-        self.readout.setText("&nbsp;&nbsp;&nbsp;&nbsp;".join(parts))
+        self.readout.setText("&nbsp;&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for p in parts))
