@@ -9,7 +9,8 @@ remembers its own threshold (a t map and a difference map rarely want the same o
 
 from __future__ import annotations
 
-from PySide6.QtCore import Qt, Signal
+from PySide6.QtCore import QSize, Qt, Signal
+from PySide6.QtGui import QColor, QIcon, QImage, QPixmap
 from PySide6.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -30,12 +31,25 @@ from voxelscope.gui.state import ViewerState
 
 __all__ = ["COLOUR_SCALES", "MapPanel"]
 
+
+def _scale_icon(name: str) -> QIcon:
+    """A small swatch of a diverging colour scale, for the choice of scale."""
+    import pyqtgraph as pg
+
+    lut = pg.colormap.get(name).getLookupTable(nPts=28, alpha=False)
+    img = QImage(28, 10, QImage.Format.Format_RGB32)
+    for x, (r, g, b) in enumerate(lut[:, :3]):
+        for y in range(10):
+            img.setPixel(x, y, QColor(int(r), int(g), int(b)).rgb())
+    return QIcon(QPixmap.fromImage(img))
+
+
 #: Diverging, perceptually uniform colour maps shipped with pyqtgraph (from colorcet).
 COLOUR_SCALES = (
-    ("CET-D1", "blue – white – red"),
-    ("CET-D1A", "blue – white – red, deeper"),
-    ("CET-D3", "green – white – red"),
-    ("CET-D9", "light blue – white – red"),
+    ("CET-D1", "blue–red"),
+    ("CET-D1A", "blue–red, deep"),
+    ("CET-D3", "green–red"),
+    ("CET-D9", "light blue–red"),
 )
 
 
@@ -56,7 +70,7 @@ class MapPanel(QWidget):
         grid = QGridLayout()
         grid.setHorizontalSpacing(6)
         grid.setVerticalSpacing(5)
-        grid.setColumnStretch(1, 2)
+        grid.setColumnStretch(1, 1)
         grid.setColumnStretch(3, 1)
         row = 0
         self.source = QComboBox()
@@ -146,7 +160,11 @@ class MapPanel(QWidget):
         grid.addWidget(self.opacity, row, 1)
         self.scale = QComboBox()
         for name, text in COLOUR_SCALES:
-            self.scale.addItem(text, name)
+            self.scale.addItem(_scale_icon(name), text, name)
+            self.scale.setItemData(
+                self.scale.count() - 1, f"{text} (through white at 0)", Qt.ItemDataRole.ToolTipRole
+            )
+        self.scale.setIconSize(QSize(28, 10))
         self.scale.currentIndexChanged.connect(
             lambda _i: self.state.set_map_settings(colour_scale=self.scale.currentData())
         )
