@@ -117,6 +117,14 @@ class ShowBanner(QFrame):
             self.fit_height()
 
 
+def _wrapped_height(label) -> int:
+    """Height of a (possibly word-wrapped) label at its current width."""
+    width = label.width() or label.sizeHint().width()
+    if label.hasHeightForWidth():
+        return int(label.heightForWidth(width))
+    return int(label.sizeHint().height())
+
+
 class ShowMode(QObject):
     """Show mode of one window (see the module notes)."""
 
@@ -220,7 +228,7 @@ class ShowMode(QObject):
         self._saved_state = None
         self.left.emit()
 
-    def _share_workspace(self, signal_share: float = 0.42) -> None:
+    def _share_workspace(self, signal_share: float = 0.5) -> None:
         """Give Slices the larger share (the room must see where the voxel is)."""
         ws = self.window.workspace
         sizes = ws.sizes()
@@ -244,11 +252,11 @@ class ShowMode(QObject):
         need = (
             table.horizontalHeader().sizeHint().height()
             + rows * table.verticalHeader().defaultSectionSize()
-            + fits.caption.sizeHint().height()
-            + (fits.notes.sizeHint().height() if fits.notes.isVisible() else 0)
+            + _wrapped_height(fits.caption)
+            + (_wrapped_height(fits.notes) if fits.notes.isVisible() else 0)
             + dock.widget().layout().spacing() * 2
             + 2 * table.frameWidth()
-            + 30  # the dock's title bar and margins
+            + 48  # the dock's title bar, margins and the caption's spacing
         )
         w.resizeDocks([dock], [int(need)], Qt.Orientation.Vertical)
 
