@@ -228,7 +228,7 @@ class ShowMode(QObject):
         self._saved_state = None
         self.left.emit()
 
-    def _share_workspace(self, signal_share: float = 0.5) -> None:
+    def _share_workspace(self, signal_share: float = 0.46) -> None:
         """Give Slices the larger share (the room must see where the voxel is)."""
         ws = self.window.workspace
         sizes = ws.sizes()
