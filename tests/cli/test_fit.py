@@ -187,43 +187,12 @@ def test_bad_confounds_rows_and_rank_deficiency(tmp_path, capsys):
     rng = np.random.default_rng(8)
     path, events, _ = _write_run(tmp_path, rng)
     conf = tmp_path / "conf.tsv"
+    argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1"]
     conf.write_text("a\tb\n" + "".join(f"{i}\t{2 * i}\n" for i in range(T - 1)))
-    assert (
-        main(
-            [
-                "fit",
-                str(path),
-                "--events",
-                str(events),
-                "--voxel",
-                "1",
-                "1",
-                "1",
-                "--confounds",
-                str(conf),
-            ]
-        )
-        == 2
-    )
+    assert main([*argv, "--confounds", str(conf)]) == 2
     assert "rows" in capsys.readouterr().err
     conf.write_text("a\tb\n" + "".join(f"{i}\t{2 * i}\n" for i in range(T)))
-    assert (
-        main(
-            [
-                "fit",
-                str(path),
-                "--events",
-                str(events),
-                "--voxel",
-                "1",
-                "1",
-                "1",
-                "--confounds",
-                str(conf),
-            ]
-        )
-        == 2
-    )
+    assert main([*argv, "--confounds", str(conf)]) == 2
     err = capsys.readouterr().err
     assert "collinear" in err and "'a'" in err and "'b'" in err
 

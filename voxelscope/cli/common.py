@@ -137,8 +137,8 @@ def add_model_args(p: argparse.ArgumentParser, kernels: bool = True) -> None:
     )
 
 
-def add_voxel_args(p: argparse.ArgumentParser, required: bool = True) -> None:
-    """``--voxel I J K`` or ``--mm X Y Z``."""
+def add_voxel_args(p: argparse.ArgumentParser, required: bool = True):
+    """``--voxel I J K`` or ``--mm X Y Z``; returns the group, for further choices."""
     g = p.add_mutually_exclusive_group(required=required)
     g.add_argument(
         "--voxel", nargs=3, type=int, metavar=("I", "J", "K"), help="voxel indices (0-based)"
@@ -150,6 +150,7 @@ def add_voxel_args(p: argparse.ArgumentParser, required: bool = True) -> None:
         metavar=("X", "Y", "Z"),
         help="world coordinates in mm (nearest voxel)",
     )
+    return g
 
 
 @dataclass

@@ -6,7 +6,13 @@ import argparse
 import math
 from pathlib import Path
 
-from .common import add_model_args, analysis_from_args, print_warnings, voxel_from_args
+from .common import (
+    add_model_args,
+    add_voxel_args,
+    analysis_from_args,
+    print_warnings,
+    voxel_from_args,
+)
 
 __all__ = ["register", "run_report"]
 
@@ -34,17 +40,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         ),
     )
     add_model_args(p)
-    g = p.add_mutually_exclusive_group(required=True)
-    g.add_argument(
-        "--voxel", nargs=3, type=int, metavar=("I", "J", "K"), help="voxel indices (0-based)"
-    )
-    g.add_argument(
-        "--mm",
-        nargs=3,
-        type=float,
-        metavar=("X", "Y", "Z"),
-        help="world coordinates in mm (nearest voxel)",
-    )
+    g = add_voxel_args(p)
     g.add_argument(
         "--marks",
         metavar="TSV",
