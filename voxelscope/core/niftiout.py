@@ -21,8 +21,8 @@ Examples
 
 from __future__ import annotations
 
+import gzip
 import os
-import tempfile
 from collections.abc import Iterable
 from pathlib import Path
 from typing import Any
@@ -30,6 +30,7 @@ from typing import Any
 import nibabel as nib
 import numpy as np
 
+from .atomic import write_bytes
 from .errors import InputError, OutputExistsError
 
 __all__ = ["check_output_path", "write_map"]
@@ -168,25 +169,10 @@ def write_map(
     img = nib.Nifti1Image(arr, affine, header=hdr)
     img.set_sform(affine, code=int(hdr["sform_code"]))
     img.set_qform(affine, code=int(hdr["qform_code"]))
-    suffix = ".nii.gz" if out.name.lower().endswith(".nii.gz") else ".nii"
-    try:
-        fd, tmp_name = tempfile.mkstemp(
-            prefix=f".{out.name}.", suffix=f".tmp{suffix}", dir=out.parent
-        )
-    except OSError as err:
-        raise InputError(f"{out}: cannot write in {out.parent} ({err.strerror})") from None
-    os.close(fd)
-    tmp = Path(tmp_name)
-    try:
-        nib.save(img, str(tmp))
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        if not force and (out.exists() or out.is_symlink()):
-            raise OutputExistsError(out)
-        os.replace(tmp, out)
-    except OSError as err:
-        raise InputError(f"{out}: cannot write the map ({err.strerror or err})") from None
-    finally:
-        if tmp.exists():
-            tmp.unlink()
+    # The map is small: build the file in memory and write it through the project's one
+    # atomic writer (temporary file beside the output, then os.replace).
+    data = img.to_bytes()
+    if out.name.lower().endswith(".gz"):
+        data = gzip.compress(data, compresslevel=6, mtime=0)
+    write_bytes(out, data, force=force)
     return out
