@@ -14,6 +14,7 @@ import nibabel as nib
 import numpy as np
 import pytest
 
+from tests.cli.runs import write_run
 from voxelscope.cli import main
 
 TR = 1.5
@@ -23,16 +24,7 @@ T = 90
 def _write_run(tmp_path, rng, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
     data = 500 + rng.standard_normal((*shape, T)) * 5
     data[0, 0, 0, :] = 123.0  # a constant voxel
-    img = nib.Nifti1Image(data.astype(np.float32), np.diag([3.0, 3.0, 3.5, 1.0]))
-    img.header.set_xyzt_units("mm", "sec")
-    img.header["pixdim"][4] = TR
-    path = tmp_path / name
-    nib.save(img, path)
-    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
-    events.write_text(
-        "onset\tduration\ttrial_type\n"
-        "6\t12\ttone\n30\t12\ttap\n54\t12\ttone\n78\t12\ttap\n102\t12\ttone\n"
-    )
+    path, events = write_run(tmp_path, data, TR, name=name)
     return path, events, data
 
 

@@ -15,6 +15,7 @@ import nibabel as nib
 import numpy as np
 import pytest
 
+from tests.cli.runs import write_run
 from voxelscope.cli import main
 
 TR = 1.5
@@ -28,16 +29,7 @@ def _write_run(tmp_path, seed=0, shape=(5, 6, 4), name="sub-01_task-x_bold.nii")
     rng = np.random.default_rng(seed)
     data = 10000 + rng.standard_normal((*shape, T)) * 20
     data[0, 0, 0, :] = 10000.0  # a constant voxel
-    img = nib.Nifti1Image(data.astype(np.float32), AFFINE)
-    img.header.set_xyzt_units("mm", "sec")
-    img.header["pixdim"][4] = TR
-    path = tmp_path / name
-    nib.save(img, path)
-    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
-    events.write_text(
-        "onset\tduration\ttrial_type\n"
-        "6\t12\ttone\n30\t12\ttap\n54\t12\ttone\n78\t12\ttap\n102\t12\ttone\n"
-    )
+    path, events = write_run(tmp_path, data, TR, affine=AFFINE, name=name)
     return path, events, data.astype(np.float32)
 
 

@@ -15,10 +15,10 @@ import subprocess
 import sys
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import pytest
 
+from tests.cli.runs import write_run
 from voxelscope.cli import main
 
 TR = 1.5
@@ -29,17 +29,7 @@ SAMPLE = Path(__file__).resolve().parents[2] / "sample_data"
 def _write_run(tmp_path, seed=3, shape=(5, 6, 4), name="sub-01_task-x_bold.nii"):
     rng = np.random.default_rng(seed)
     data = 400 + rng.standard_normal((*shape, T)) * 4
-    img = nib.Nifti1Image(data.astype(np.float32), np.diag([3.0, 3.0, 3.5, 1.0]))
-    img.header.set_xyzt_units("mm", "sec")
-    img.header["pixdim"][4] = TR
-    path = tmp_path / name
-    nib.save(img, path)
-    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
-    events.write_text(
-        "onset\tduration\ttrial_type\n"
-        "6\t12\ttone\n30\t12\ttap\n54\t12\ttone\n78\t12\ttap\n102\t12\ttone\n"
-    )
-    return path, events
+    return write_run(tmp_path, data, TR, name=name)
 
 
 def _t_values(html: str) -> dict[str, tuple[str, float]]:
