@@ -37,7 +37,7 @@ from voxelscope.core.agreement import Agreement, compare_maps, explain, load_the
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.colours import colours
 from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, LiveMap
-from voxelscope.gui.sizing import compact_spin, shrinkable
+from voxelscope.gui.sizing import breakable, compact_spin, scroll_body
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["MAX_POINTS", "AgreementPanel", "scatter_sample"]
@@ -83,14 +83,15 @@ class AgreementPanel(QWidget):
         self._voxel_stale = False
         self._sample = np.zeros(0, dtype=np.int64)
         c = colours()
-        lay = QVBoxLayout(self)
+        lay = QVBoxLayout(scroll_body(self, "agreement"))
         lay.setContentsMargins(8, 6, 8, 6)
         lay.setSpacing(5)
 
         top = QHBoxLayout()
         self.file_label = QLabel("No outside map.")
         self.file_label.setObjectName("hint")
-        shrinkable(self.file_label, 80)
+        self.file_label.setWordWrap(True)  # long file names wrap (see breakable)
+        self.file_label.setMinimumWidth(60)
         top.addWidget(self.file_label, 1)
         self.open_button = QPushButton("Their map…")
         self.open_button.setToolTip(
@@ -113,7 +114,7 @@ class AgreementPanel(QWidget):
         self.tolerance.setPrefix("|difference| > ")
         self.tolerance.setToolTip("Voxels whose values differ by more than this count as differing")
         self.tolerance.valueChanged.connect(lambda _v: self.recompare())
-        compact_spin(self.tolerance, 120)
+        compact_spin(self.tolerance, 80, sample="|difference| > 99.99")
         grid.addWidget(self.tolerance, 0, 1)
         self.show_differ = QCheckBox("show where they differ")
         self.show_differ.setObjectName("agreement_show_differ")
@@ -220,7 +221,7 @@ class AgreementPanel(QWidget):
             return False
         self.theirs = np.asarray(theirs)
         self.their_path = Path(path)
-        self.file_label.setText(f"theirs: {self.their_path.name}")
+        self.file_label.setText(f"theirs: {breakable(self.their_path.name)}")
         self.file_label.setToolTip(str(self.their_path))
         for w in warnings:
             self.state.message.emit(w)

@@ -343,7 +343,7 @@ class FirFigure(FigurePage):
         peak_text = f"; FIR peak at {peak:.1f} s" if _finite(peak) else ""
         self.caption.setText(
             f"Response to <b>{html.escape(str(fir.get('condition', c.condition)))}</b>, free "
-            f"shape (one bin per TR){peak_text}.<br>" + "&nbsp;&nbsp;".join(legend)
+            f"shape (one bin per TR){peak_text}.<br>" + "&nbsp; ".join(legend)
         )
         self.plot.enableAutoRange()
 
@@ -478,7 +478,7 @@ class ConfoundsFigure(FigurePage):
         vif_text = f" VIF: {', '.join(vif)}." if vif else ""
         self.caption.setText(
             f"Correlation of each condition's regressor with the confound columns (dashed: "
-            f"±{CONFOUND_R_LIMIT:g}).{vif_text}<br>" + "&nbsp;&nbsp;".join(legend)
+            f"±{CONFOUND_R_LIMIT:g}).{vif_text}<br>" + "&nbsp; ".join(legend)
         )
 
     def clear(self) -> None:

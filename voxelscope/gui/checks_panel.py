@@ -40,12 +40,12 @@ from PySide6.QtWidgets import (
     QAbstractItemView,
     QButtonGroup,
     QComboBox,
-    QGridLayout,
     QHBoxLayout,
     QHeaderView,
     QLabel,
     QPushButton,
     QScrollArea,
+    QSizePolicy,
     QStackedWidget,
     QTableView,
     QVBoxLayout,
@@ -56,12 +56,14 @@ from voxelscope.core.checks import VoxelChecks, voxel_checks
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.sizing import FlowButtons
 from voxelscope.gui.state import ViewerState
 
 __all__ = [
     "ChecksModel",
     "ChecksPanel",
     "FlagLabel",
+    "NumbersTable",
     "default_kernel",
     "install_checks",
     "stop_checks",
@@ -315,6 +317,50 @@ class _FigureStack(QStackedWidget):
         return -1
 
 
+class NumbersTable(QTableView):
+    """The numbers table: values right-aligned and always whole, names wrapped to what is
+    left; exactly as tall as its rows (the part scrolls, never the table)."""
+
+    def __init__(self, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.verticalHeader().setVisible(False)
+        self.horizontalHeader().setVisible(False)
+        self.setShowGrid(False)
+        self.setAlternatingRowColors(True)
+        self.setWordWrap(True)
+        self.setTextElideMode(Qt.TextElideMode.ElideRight)
+        self.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
+        self.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
+        self.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.setVerticalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.setSizeAdjustPolicy(QAbstractItemView.SizeAdjustPolicy.AdjustIgnored)
+        self.verticalHeader().setMinimumSectionSize(20)
+        self.horizontalHeader().setMinimumSectionSize(40)
+        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+
+    def setModel(self, model) -> None:
+        super().setModel(model)
+        hh = self.horizontalHeader()
+        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)
+        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.ResizeToContents)
+        model.modelReset.connect(self.fit_rows)
+
+    def minimumSizeHint(self) -> QSize:
+        return QSize(120, super().minimumSizeHint().height())
+
+    def fit_rows(self) -> None:
+        """Row heights to the (wrapped) names at the current width; height to the rows."""
+        self.resizeRowsToContents()
+        vh = self.verticalHeader()
+        height = sum(vh.sectionSize(r) for r in range(vh.count()))
+        self.setFixedHeight(height + 2 * self.frameWidth() + 2)
+
+    def resizeEvent(self, ev) -> None:
+        super().resizeEvent(ev)
+        if ev.oldSize().width() != ev.size().width():
+            QTimer.singleShot(0, self.fit_rows)
+
+
 _SERIAL = itertools.count(1)
 
 
@@ -386,20 +432,20 @@ class ChecksPanel(QWidget):
         fl = QVBoxLayout(figures)
         fl.setContentsMargins(0, 0, 0, 0)
         fl.setSpacing(3)
-        grid = QGridLayout()
-        grid.setSpacing(3)
+        self.figure_row = FlowButtons(max_columns=3, spacing=3)
+        self.figure_row.setObjectName("checks_figure_buttons")
         self.figure_buttons: dict[str, QPushButton] = {}
         self.figure_group = QButtonGroup(self)
         self.figure_group.setExclusive(True)
-        for n, key in enumerate(FIGURES):
+        for key in FIGURES:
             b = QPushButton(FIGURE_TITLES[key])
             b.setObjectName("figure_button")
             b.setCheckable(True)
             b.clicked.connect(lambda _c=False, k=key: self.show_figure(k))
             self.figure_group.addButton(b)
-            grid.addWidget(b, n // 3, n % 3)
+            self.figure_row.add(b)
             self.figure_buttons[key] = b
-        fl.addLayout(grid)
+        fl.addWidget(self.figure_row)
         self.stack = _FigureStack()
         self.stack.setMinimumHeight(230)
         self.stack.setObjectName("checks_figures")
@@ -409,20 +455,9 @@ class ChecksPanel(QWidget):
         fl.addWidget(self.stack, 1)
 
         self.model = ChecksModel(self)
-        self.table = QTableView()
+        self.table = NumbersTable()
         self.table.setObjectName("checks_table")
         self.table.setModel(self.model)
-        self.table.verticalHeader().setVisible(False)
-        self.table.horizontalHeader().setVisible(False)
-        self.table.setShowGrid(False)
-        self.table.setAlternatingRowColors(True)
-        self.table.setWordWrap(False)
-        self.table.setSelectionMode(QAbstractItemView.SelectionMode.NoSelection)
-        self.table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
-        self.table.verticalHeader().setDefaultSectionSize(21)
-        hh = self.table.horizontalHeader()
-        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.ResizeToContents)
-        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
 
         lay.addWidget(figures, 1)
         lay.addWidget(self.table)
@@ -629,10 +664,8 @@ class ChecksPanel(QWidget):
         self.shown_key = key
         self.checks = checks
         self.model.set_checks(checks)
-        self.table.resizeColumnToContents(0)
-        rows = self.model.rowCount()
-        self.table.setVisible(rows > 0)
-        self.table.setFixedHeight(rows * self.table.verticalHeader().defaultSectionSize() + 4)
+        self.table.setVisible(self.model.rowCount() > 0)
+        self.table.fit_rows()
         self._fill_flags(checks)
         for page in self.figures.values():
             if checks is None:

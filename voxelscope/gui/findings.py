@@ -144,7 +144,7 @@ class FindingsPanel(QWidget):
         self.mode.currentIndexChanged.connect(self.refresh)
         row.addWidget(self.mode)
         self.connectivity = QComboBox()
-        for c, text in zip(CONNECTIVITIES, ("faces", "faces + edges", "faces + edges + corners")):
+        for c, text in zip(CONNECTIVITIES, ("sides", "sides + edges", "sides + edges + corners")):
             self.connectivity.addItem(f"{c} ({text})", c)
         self.connectivity.setCurrentIndex(CONNECTIVITIES.index(26))
         self.connectivity.setToolTip("Which neighbours join a cluster: 6, 18 or 26 neighbours")

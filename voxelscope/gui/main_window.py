@@ -110,12 +110,9 @@ class MainWindow(QMainWindow):
         scroll.setFrameShape(QScrollArea.Shape.NoFrame)
         # Model scrolls up and down only: the column is as wide as its narrowest layout
         scroll.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
-        scroll.setMinimumWidth(
-            self.model_panel.minimumSizeHint().width()
-            + scroll.verticalScrollBar().sizeHint().width()
-            + 2
-        )
         self.model_scroll = scroll
+        self.fit_model_column()
+        self.model_panel.installEventFilter(self)
         self.map_panel = MapPanel(self.state)
         self.map_panel.open_requested.connect(self.ask_map)
         self.fits = FitsPanel(self.state)
@@ -158,6 +155,20 @@ class MainWindow(QMainWindow):
         self.docks[title] = dock
         return dock
 
+    def fit_model_column(self) -> None:
+        """Keep the Model scroll area at least as wide as Model's content needs (with its
+        scroll bar), so Model never has to be cut at the right; called again when Model's
+        items change (a run's confounds, longer choices)."""
+        bar = self.model_scroll.verticalScrollBar().sizeHint().width()
+        need = self.model_panel.minimumSizeHint().width() + bar + 4
+        if self.model_scroll.minimumWidth() != need:
+            self.model_scroll.setMinimumWidth(need)
+
+    def eventFilter(self, obj, ev) -> bool:
+        if obj is self.model_panel and ev.type() == QEvent.Type.LayoutRequest:
+            self.fit_model_column()
+        return super().eventFilter(obj, ev)
+
     def arrange(self, width: int | None = None) -> None:
         """Share the width out for a window ``width`` pixels wide (default: its own width).
 
@@ -168,6 +179,7 @@ class MainWindow(QMainWindow):
         """
         width = int(width or self.width())
         right = self.docks["Model"]
+        self.fit_model_column()
         need = right.minimumSizeHint().width()
         col = max(need, min(440, round(0.22 * width)))
         self.resizeDocks([right], [col], Qt.Orientation.Horizontal)

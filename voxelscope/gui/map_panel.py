@@ -26,7 +26,7 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
-from voxelscope.gui.sizing import compact_combo, compact_spin, shrinkable
+from voxelscope.gui.sizing import ElidedLabel, compact_spin, fit_combo
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["COLOUR_SCALES", "MapPanel"]
@@ -67,12 +67,28 @@ class MapPanel(QWidget):
         lay.setContentsMargins(8, 6, 8, 6)
         lay.setSpacing(5)
 
+        # One row per line, the row labels in a column of their own. Each row shares its
+        # width out by itself (a four-column grid made the kernel names and the colour
+        # scale share one column width and cut both at 1280x800).
         grid = QGridLayout()
         grid.setHorizontalSpacing(6)
         grid.setVerticalSpacing(5)
         grid.setColumnStretch(1, 1)
-        grid.setColumnStretch(3, 1)
-        row = 0
+        self.rows: dict[str, QHBoxLayout] = {}
+
+        def add_row(row: int, label: QLabel | str, *items) -> QHBoxLayout:
+            box = QHBoxLayout()
+            box.setSpacing(6)
+            for item in items:
+                if isinstance(item, tuple):
+                    box.addWidget(*item)
+                else:
+                    box.addWidget(item)
+            label = QLabel(label) if isinstance(label, str) else label
+            grid.addWidget(label, row, 0)
+            grid.addLayout(box, row, 1)
+            return box
+
         self.source = QComboBox()
         self.source.setObjectName("map_source")
         for key, text in SOURCES:
@@ -83,13 +99,10 @@ class MapPanel(QWidget):
             "voxels where our map and the outside map (Agreement) differ"
         )
         self.source.currentIndexChanged.connect(self._source_chosen)
-        grid.addWidget(QLabel("Show"), row, 0)
-        grid.addWidget(self.source, row, 1, 1, 2)
         self.open_button = QPushButton("Open map…")
         self.open_button.setToolTip("Open a statistic map file (any grid; resampled to the run)")
         self.open_button.clicked.connect(self.open_requested.emit)
-        grid.addWidget(self.open_button, row, 3)
-        row += 1
+        self.rows["show"] = add_row(0, "Show", (self.source, 1), self.open_button)
 
         self.kernel_label = QLabel("Kernel")
         self.kernel = QComboBox()
@@ -104,23 +117,19 @@ class MapPanel(QWidget):
         self.stat.currentIndexChanged.connect(
             lambda _i: self.state.set_map_settings(stat=self.stat.currentData())
         )
+        self.rows["kernel"] = add_row(
+            1, self.kernel_label, (self.kernel, 1), self.stat_label, self.stat
+        )
+        self.other_label = QLabel("minus")
         self.other = QComboBox()
         self.other.setObjectName("map_other_kernel")
-        self.other.setToolTip("t under the kernel on the left minus t under this one")
+        self.other.setToolTip("t under the kernel above minus t under this one")
         self.other.currentIndexChanged.connect(self._other_chosen)
-        grid.addWidget(self.kernel_label, row, 0)
-        grid.addWidget(self.kernel, row, 1)
-        grid.addWidget(self.stat_label, row, 2)
-        grid.addWidget(self.stat, row, 3)
-        grid.addWidget(self.other, row, 3)
-        row += 1
+        self.rows["other"] = add_row(2, self.other_label, (self.other, 1))
 
-        self.file_label = QLabel("No map open.")
+        self.file_label = ElidedLabel("No map open.", min_width=60)
         self.file_label.setObjectName("hint")
-        self.file_label.setWordWrap(False)
-        shrinkable(self.file_label, 80)  # elided to the width it gets (see _describe)
-        grid.addWidget(self.file_label, row, 0, 1, 4)
-        row += 1
+        grid.addWidget(self.file_label, 3, 0, 1, 2)
 
         self.threshold = QDoubleSpinBox()
         self.threshold.setObjectName("map_threshold")
@@ -132,11 +141,8 @@ class MapPanel(QWidget):
         self.threshold.valueChanged.connect(
             lambda v: self.state.set_map_settings(threshold=float(v))
         )
-        grid.addWidget(QLabel("Threshold"), row, 0)
-        grid.addWidget(self.threshold, row, 1)
-        lim_row = QHBoxLayout()
-        lim_row.setSpacing(4)
         self.limit = QDoubleSpinBox()
+        self.limit.setObjectName("map_limit")
         self.limit.setRange(0.01, 1000.0)
         self.limit.setDecimals(2)
         self.limit.setPrefix("± ")
@@ -145,20 +151,23 @@ class MapPanel(QWidget):
         self.limit_auto.setToolTip("Take the colour scale from the map's largest |value|")
         self.limit.valueChanged.connect(self._limit_changed)
         self.limit_auto.toggled.connect(self._limit_changed)
-        lim_row.addWidget(self.limit, 1)
-        lim_row.addWidget(self.limit_auto)
-        grid.addWidget(QLabel("Scale"), row, 2)
-        grid.addLayout(lim_row, row, 3)
-        row += 1
+        self.rows["threshold"] = add_row(
+            4,
+            "Threshold",
+            (self.threshold, 1),
+            QLabel("Scale"),
+            (self.limit, 1),
+            self.limit_auto,
+        )
 
         self.opacity = QSlider(Qt.Orientation.Horizontal)
         self.opacity.setRange(0, 100)
+        self.opacity.setMinimumWidth(60)
         self.opacity.valueChanged.connect(
             lambda v: self.state.set_map_settings(opacity=float(v) / 100.0)
         )
-        grid.addWidget(QLabel("Opacity"), row, 0)
-        grid.addWidget(self.opacity, row, 1)
         self.scale = QComboBox()
+        self.scale.setObjectName("map_colours")
         for name, text in COLOUR_SCALES:
             self.scale.addItem(_scale_icon(name), text, name)
             self.scale.setItemData(
@@ -168,17 +177,18 @@ class MapPanel(QWidget):
         self.scale.currentIndexChanged.connect(
             lambda _i: self.state.set_map_settings(colour_scale=self.scale.currentData())
         )
-        grid.addWidget(QLabel("Colours"), row, 2)
-        grid.addWidget(self.scale, row, 3)
-        row += 1
+        self.rows["opacity"] = add_row(
+            5, "Opacity", (self.opacity, 1), QLabel("Colours"), self.scale
+        )
         lay.addLayout(grid)
-        for combo in (self.source, self.scale):
-            compact_combo(combo, 7)
-        compact_combo(self.stat, 5)
+        # every item of a choice shows whole (the combo is as wide as its longest item)
+        fit_combo(self.source, grow=True)
+        fit_combo(self.stat)
+        fit_combo(self.scale)
         for combo in (self.kernel, self.other):
-            compact_combo(combo, 11)  # "double-gamma" stays readable
-        compact_spin(self.threshold, 90)
-        compact_spin(self.limit, 72)
+            fit_combo(combo, grow=True)
+        compact_spin(self.threshold, 60, sample="|v| ≥ 99.99")
+        compact_spin(self.limit, 60, sample="± 999.99")
 
         job_row = QHBoxLayout()
         job_row.setSpacing(6)
@@ -187,7 +197,7 @@ class MapPanel(QWidget):
         job_row.addWidget(self.visible)
         self.job_label = QLabel("")
         self.job_label.setObjectName("hint")
-        shrinkable(self.job_label, 40)
+        self.job_label.setWordWrap(True)
         job_row.addWidget(self.job_label, 1)
         self.job_progress = QProgressBar()
         self.job_progress.setObjectName("map_progress")
@@ -306,10 +316,11 @@ class MapPanel(QWidget):
             self.stat.setCurrentIndex(max(0, self.stat.findData(s.stat)))
             is_model = s.source in ("model", "difference")
             self.kernel_label.setText("t of" if s.source == "difference" else "Kernel")
-            self.stat_label.setText("minus" if s.source == "difference" else "Statistic")
-            for w in (self.kernel_label, self.kernel, self.stat_label):
+            for w in (self.kernel_label, self.kernel):
                 w.setVisible(is_model)
+            self.stat_label.setVisible(s.source == "model")
             self.stat.setVisible(s.source == "model")
+            self.other_label.setVisible(s.source == "difference")
             self.other.setVisible(s.source == "difference")
             self.kernel.setEnabled(has_model)
             self.stat.setEnabled(has_model)
@@ -332,8 +343,6 @@ class MapPanel(QWidget):
     def _describe(self, layer) -> None:
         st = self.state
         s = st.map_settings
-        metrics = self.file_label.fontMetrics()
-        width = max(160, self.file_label.width() - 4)
         tip = ""
         if st.run is None:
             text = "Open a run first."
@@ -368,7 +377,7 @@ class MapPanel(QWidget):
             tip = m.describe()
         else:
             text = "computing the map…"
-        self.file_label.setText(metrics.elidedText(text, Qt.TextElideMode.ElideRight, width))
+        self.file_label.setText(text)  # shortened with "…" to the width it gets
         self.file_label.setToolTip(tip or text)
         if not self.live.is_busy() and not self.job_label.text().startswith("map cancelled"):
             self.job_label.setText("")

@@ -38,9 +38,10 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import Mark, MarkList, read_marks_tsv, write_marks_tsv
+from voxelscope.gui.sizing import FlowButtons
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["MARKS_FILTER", "AddMarkDialog", "MarksModel", "MarksPanel", "install"]
+__all__ = ["MARKS_FILTER", "AddMarkDialog", "MarksModel", "MarksPanel", "MarksTable", "install"]
 
 MARKS_FILTER = "Marks (*.tsv);;All files (*)"
 _MIME = "application/x-voxelscope-mark-row"
@@ -244,6 +245,52 @@ class AddMarkDialog(QDialog):
         form.addRow(buttons)
 
 
+class MarksTable(QTableView):
+    """The marks list: its columns always share the visible width (no sideways scrolling).
+
+    Title and note are cut with "…" (the whole note is in the box below, the tooltip shows
+    both); the world position keeps its full width. When the part is too narrow for three
+    columns the note column is left out.
+    """
+
+    NOTE_MIN = 80
+
+    def __init__(self, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
+        self.setTextElideMode(Qt.TextElideMode.ElideRight)
+        self.horizontalHeader().setMinimumSectionSize(40)
+
+    def setModel(self, model) -> None:
+        super().setModel(model)
+        hh = self.horizontalHeader()
+        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Interactive)
+        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
+        hh.setSectionResizeMode(2, QHeaderView.ResizeMode.Fixed)
+        model.modelReset.connect(self.fit_columns)
+        model.rowsInserted.connect(self.fit_columns)
+        model.dataChanged.connect(self.fit_columns)
+        self.fit_columns()
+
+    def fit_columns(self, *_args) -> None:
+        """Share the viewport's width out between title, note and position."""
+        hh = self.horizontalHeader()
+        if hh.count() < 3:
+            return
+        width = self.viewport().width()
+        pos = max(self.sizeHintForColumn(2), hh.sectionSizeHint(2))
+        rest = max(0, width - pos)
+        show_note = rest >= 2 * self.NOTE_MIN
+        self.setColumnHidden(1, not show_note)
+        hh.resizeSection(2, pos)
+        title = int(rest * 0.55) if show_note else rest
+        hh.resizeSection(0, max(hh.minimumSectionSize(), title))
+
+    def resizeEvent(self, ev) -> None:
+        super().resizeEvent(ev)
+        self.fit_columns()
+
+
 class MarksPanel(QWidget):
     """Marks: the list, buttons to add, go to, move, delete, import and export, the note."""
 
@@ -257,7 +304,8 @@ class MarksPanel(QWidget):
         lay = QVBoxLayout(self)
         lay.setContentsMargins(6, 4, 6, 4)
         lay.setSpacing(4)
-        top = QHBoxLayout()
+        top = FlowButtons(max_columns=5, spacing=4)
+        top.setObjectName("marks_buttons")
         self.add_button = QPushButton("Add mark")
         self.add_button.setToolTip("Save the current voxel as a mark (Ctrl+M)")
         self.go_button = QPushButton("Go to")
@@ -272,11 +320,9 @@ class MarksPanel(QWidget):
             self.delete_button,
         ):
             b.setObjectName("small_button")
-            b.setMinimumWidth(20)
-            top.addWidget(b)
-        top.addStretch(1)
-        lay.addLayout(top)
-        self.table = QTableView()
+            top.add(b)
+        lay.addWidget(top)
+        self.table = MarksTable()
         self.table.setObjectName("marks_table")
         self.table.setModel(self.model)
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
@@ -293,11 +339,6 @@ class MarksPanel(QWidget):
         self.table.setAlternatingRowColors(True)
         self.table.setShowGrid(False)
         self.table.setWordWrap(False)
-        hh = self.table.horizontalHeader()
-        hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Interactive)
-        hh.setSectionResizeMode(1, QHeaderView.ResizeMode.Stretch)
-        hh.setSectionResizeMode(2, QHeaderView.ResizeMode.ResizeToContents)
-        self.table.setColumnWidth(0, 170)
         self.table.verticalHeader().setDefaultSectionSize(24)
         lay.addWidget(self.table, 3)
         note_label = QLabel("Note of the selected mark")

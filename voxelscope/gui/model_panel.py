@@ -196,8 +196,8 @@ class ModelPanel(QWidget):
         lay.addWidget(noise)
         for combo in (self.noise, self.derivatives):
             compact_combo(combo, 8)
-        compact_spin(self.highpass, 90)
-        compact_spin(self.shift, 90)
+        compact_spin(self.highpass, 60, sample="2000 s")
+        compact_spin(self.shift, 60, sample="-20.00 s")
 
         conf = QGroupBox("Confounds")
         fl = QVBoxLayout(conf)
