@@ -529,3 +529,52 @@ def test_every_kernel_and_setting_gives_consistent_results(kernel, changes):
     assert c.condition == ("tap" if changes.get("contrast") else "tone")
     json.dumps(c.to_json(), allow_nan=False)
     assert {"gamma", "double-gamma"} <= set(c.fir["kernels"]) <= {"boxcar", "gamma", "double-gamma"}
+
+
+def _motion_case(spike_in_voxel: bool, include: bool):
+    """A block-design voxel; the confounds jump at volume 70 (head moves and comes back);
+    optionally the voxel jumps there too (planted, so the truth is known)."""
+    from voxelscope.core.checks import confound_spikes, voxel_checks
+
+    rng = np.random.default_rng(21)
+    n, tr = 160, 1.25
+    conds = [Condition("tap", [12.0, 60.0, 110.0, 160.0], [15.0] * 4)]
+    move = np.cumsum(rng.standard_normal(n)) * 0.005
+    move[70:73] += 1.5  # a jolt lasting three volumes
+    conf = Confounds(("move_y",), move[:, None])
+    a = Analysis(conds, n, tr, conf)
+    s = ModelSettings(kernels=("double-gamma",), confound_columns=("move_y",) if include else ())
+    x = a.design("double-gamma", ModelSettings(confound_columns=())).column("tap")
+    y = 1000 + 8 * x + rng.standard_normal(n) * 2
+    if spike_in_voxel:
+        y[70:73] += 25
+    return confound_spikes(a), voxel_checks(a, s, "double-gamma", y)
+
+
+def test_confound_jumps_are_found_by_the_run_spike_rule():
+    """The jump's start and end are spikes of the frame-to-frame change (median + 5 MAD,
+    checked against scipy.stats.median_abs_deviation(scale='normal'))."""
+    spikes, _ = _motion_case(False, False)
+    assert set(spikes["move_y"]) == {70, 73}
+    rng = np.random.default_rng(21)
+    move = np.cumsum(rng.standard_normal(160)) * 0.005
+    move[70:73] += 1.5
+    step = np.abs(np.diff(move))
+    thr = np.median(step) + 5 * stats.median_abs_deviation(step, scale="normal")
+    assert set(np.flatnonzero(step > thr) + 1) == {70, 73}
+
+
+def test_motion_flag_when_voxel_outliers_sit_on_confound_jumps():
+    _, c = _motion_case(True, include=False)
+    assert "motion" in c.flag_ids()
+    text = next(f.text for f in c.flags if f.id == "motion")
+    assert "move_y" in text and "70" in text and "leaves these columns out" in text
+    _, c_in = _motion_case(True, include=True)
+    motion = [f.text for f in c_in.flags if f.id == "motion"]
+    assert all("leaves these columns out" not in t for t in motion)
+
+
+def test_no_motion_flag_for_a_clean_voxel_during_motion():
+    _, c = _motion_case(False, include=False)
+    assert "motion" not in c.flag_ids()
+    assert c.to_json()["confound_spikes"] == {"move_y": [70, 73]}

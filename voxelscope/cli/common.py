@@ -196,7 +196,7 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
     if confounds_path is not None:
         confounds = read_confounds(confounds_path)
         if columns is not None:
-            confounds = confounds.select(columns)
+            confounds.select(columns)  # unknown names: one clear line now
         confounds.check_rows(run.n_volumes)
     elif columns is not None:
         raise InputError("--confound-columns needs --confounds FILE")
@@ -212,6 +212,7 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
         derivatives=int(args.derivatives),
         fir_bins=int(args.fir_bins),
         fir_bin_s=args.fir_bin,
+        confound_columns=columns,
     )
     if settings.fir_bins < 1:
         raise InputError("--fir-bins must be at least 1")

@@ -83,6 +83,7 @@ from .diagnostics import (
     durbin_watson,
     influence,
     ljung_box,
+    robust_spikes,
     run_summary,
     variance_inflation,
 )
@@ -203,6 +204,9 @@ class VoxelChecks:
     influential_volumes, t_dropping, t_without_influential : the refits without them
     frame_rms_change, rms_spikes, rms_threshold : run-level (None without a run)
     vif, confound_correlation : design checks
+    confound_spikes : confound column -> volumes where its frame-to-frame change is a spike
+        (above the median + RMS_SPIKE_K MAD of that change), from every column of the
+        confounds file, in the model or not
     tsnr, edge_distance_mm, in_mask : signal quality and place (None without a run/ijk)
     shifts_s, shift_t, t_at_zero_shift, best_shift_s, kernel_peak_s, peak_latency_s : timing
     fir : dict with times, estimate, se, bin_s, peak_s, kernels, kernel_times, kernels_fine
@@ -247,6 +251,8 @@ class VoxelChecks:
     # design
     vif: dict[str, float] = field(default_factory=dict)
     confound_correlation: dict[str, dict[str, float]] = field(default_factory=dict)
+    confound_spikes: dict[str, tuple[int, ...]] = field(default_factory=dict)
+    confounds_in_model: tuple[str, ...] = ()
     # signal quality and place
     tsnr: float = math.nan
     edge_distance_mm: float | None = None
@@ -385,6 +391,8 @@ def voxel_checks(
         tr=tr,
         vif=variance_inflation(d.X, d.names),
         confound_correlation=_confound_correlation(analysis, d),
+        confound_spikes=confound_spikes(analysis),
+        confounds_in_model=tuple(n for n, k in zip(d.names, d.kinds) if k == "confound"),
         kernel_peak_s=float(k_obj.peak_s()),
         **_run_part(run, ijk),
     )
@@ -421,6 +429,34 @@ def voxel_checks(
     parts.update(_spectrum_part(y, d, cond, tr, settings.highpass_s))
     checks = replace(base, warnings=tuple(notes), **parts)
     return replace(checks, flags=tuple(_flags(checks, d)))
+
+
+def confound_spikes(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, tuple[int, ...]]:
+    """Volumes where a confound column jumps: its absolute frame-to-frame change exceeds
+    ``median + k * 1.4826 * MAD`` of that change (the rule of the run's RMS spikes).
+
+    A jump between volumes ``v - 1`` and ``v`` is reported at ``v``. Every column of the
+    confounds file counts, whether or not the model includes it.
+
+    >>> from voxelscope.core.confounds import Confounds
+    >>> from voxelscope.core.events import Condition
+    >>> col = np.sin(np.arange(60) / 5.0) * 0.1
+    >>> col[30:] += 2.0  # the head moves between volumes 29 and 30
+    >>> conf = Confounds(("move_z",), col[:, None])
+    >>> a = Analysis([Condition("tap", [10.0], [15.0])], 60, 2.0, conf)
+    >>> confound_spikes(a)
+    {'move_z': (30,)}
+    """
+    conf = analysis.confounds
+    if conf is None:
+        return {}
+    out: dict[str, tuple[int, ...]] = {}
+    for j, name in enumerate(conf.names):
+        step = np.abs(np.diff(conf.values[:, j]))
+        idx, _thr = robust_spikes(step, k)
+        if idx:
+            out[name] = tuple(i + 1 for i in idx)
+    return out
 
 
 def _pick_condition(
@@ -585,6 +621,7 @@ def _flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         _edge_flag,
         _autocorrelation_flag,
         _outlier_flags,
+        _motion_flag,
         _influence_flag,
         _timing_flag,
         _confound_flags,
@@ -646,6 +683,32 @@ def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         text += f"; volume {_vols(also)} is an outlier here too." if also else "."
         out.append(Flag("run-spikes", text, "influence"))
     return out
+
+
+def _motion_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
+    """Outlying or influential volumes of this voxel that fall on confound jumps."""
+    if not c.confound_spikes:
+        return []
+    suspects = set(c.studentized_outliers) | set(c.influential_volumes)
+    hits: dict[int, list[str]] = {}
+    for name, vols in c.confound_spikes.items():
+        for v in vols:
+            for u in (v - 1, v, v + 1):  # a jump shows at the volume before or after too
+                if u in suspects:
+                    hits.setdefault(u, []).append(name)
+    if not hits:
+        return []
+    vols = sorted(hits)
+    cols = sorted({n for names in hits.values() for n in names})
+    where = "volume" if len(vols) == 1 else "volumes"
+    text = (
+        f"At {where} {_vols(vols)}, where this voxel stands out, the confounds jump "
+        f"({', '.join(cols)}): head motion is a likely cause"
+    )
+    left_out = [n for n in cols if n not in c.confounds_in_model]
+    if left_out:
+        text += "; the model leaves these columns out, so try including them"
+    return [Flag("motion", text + ".", "influence")]
 
 
 def _influence_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
