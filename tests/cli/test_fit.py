@@ -267,3 +267,21 @@ def test_checks_in_json(tmp_path, capsys):
         f["checks"]["durbin_watson"], durbin_watson(f["residuals"]), rtol=1e-10
     )
     assert isinstance(f["checks"]["flags"], list)
+
+
+def test_confound_columns_pick_some(tmp_path, capsys):
+    """--confound-columns keeps only the named columns in the design; an unknown name is one
+    clear line."""
+    rng = np.random.default_rng(13)
+    path, events, _ = _write_run(tmp_path, rng)
+    conf = tmp_path / "conf.tsv"
+    rows = rng.standard_normal((T, 2))
+    conf.write_text("a\tb\n" + "".join(f"{r[0]:.6f}\t{r[1]:.6f}\n" for r in rows))
+    argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1"]
+    doc = _run_json(capsys, [*argv, "--confounds", str(conf), "--confound-columns", "b"])
+    cols = doc["fits"][0]["columns"]
+    assert "b" in cols and "a" not in cols
+    X = np.asarray(doc["fits"][0]["design"])
+    np.testing.assert_allclose(X[:, cols.index("b")], np.round(rows[:, 1], 6), atol=1e-12)
+    assert main([*argv, "--confounds", str(conf), "--confound-columns", "c"]) == 2
+    assert "'c'" in capsys.readouterr().err
