@@ -40,7 +40,10 @@ def test_contrast_edit_refits(window, ras_run, qtbot):
     edit.clear()
     qtbot.keyClicks(edit, "tap - tone")
     assert st.settings.contrast == "tap - tone"
-    expected = st.analysis.fit_voxel(st.series, ModelSettings(contrast="tap - tone"))
+    # a run starts with the default model exactly: no confound columns until picked
+    expected = st.analysis.fit_voxel(
+        st.series, ModelSettings(contrast="tap - tone", confound_columns=())
+    )
     after = st.fits.by_kernel("boxcar").beta
     assert after != before
     assert after == pytest.approx(expected.by_kernel("boxcar").beta, rel=1e-12)
@@ -97,8 +100,13 @@ def test_other_settings_refit(window, ras_run, qtbot):
     assert st.settings.onset_shift_s == pytest.approx(0.5)
     p.derivatives.setCurrentIndex(p.derivatives.findData(1))
     assert st.settings.derivatives == 1 and "F" in window.fits.model.columns()
-    item = p.confounds.item(0)
-    item.setCheckState(Qt.CheckState.Unchecked)
+    assert st.settings.confound_columns == ()  # found beside the run, switched off
+    assert all(
+        p.confounds.item(r).checkState() == Qt.CheckState.Unchecked
+        for r in range(p.confounds.count())
+    )
+    item = p.confounds.item(1)
+    item.setCheckState(Qt.CheckState.Checked)
     assert st.settings.confound_columns == ("move_b",)
     expected = st.analysis.fit_voxel(st.series, st.settings)
     assert st.fits.by_kernel("double-gamma").t == pytest.approx(

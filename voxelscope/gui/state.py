@@ -27,6 +27,12 @@ __all__ = ["MapSettings", "ViewerState"]
 UNITS = ("data", "percent")
 
 
+#: Model settings a newly opened run starts with: the default model exactly (conditions,
+#: cosine drift, constant), as on the command line. Confound columns found beside the run
+#: are listed in Model but switched off until the user picks them.
+START_SETTINGS = ModelSettings(confound_columns=())
+
+
 @dataclass(frozen=True)
 class MapSettings:
     """How the statistic map is drawn over the underlay.
@@ -132,7 +138,7 @@ class ViewerState(QObject):
         self.bundle = bundle
         run = bundle.run
         self.grid = DisplayGrid(run.shape, run.affine)
-        settings = ModelSettings()
+        settings = START_SETTINGS
         if bundle.analysis is not None and self.contrast_text:
             try:
                 bundle.analysis.check_contrast(self.contrast_text)
@@ -179,7 +185,7 @@ class ViewerState(QObject):
         self.bundle.analysis = analysis
         self.bundle.events_path = events_path
         self.bundle.confounds_path = confounds_path
-        self.settings = ModelSettings()
+        self.settings = START_SETTINGS
         self.contrast_text = ""
         self.contrast_problem = ""
         self.run_changed.emit()
