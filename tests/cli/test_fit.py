@@ -285,3 +285,5 @@ def test_confound_columns_pick_some(tmp_path, capsys):
     np.testing.assert_allclose(X[:, cols.index("b")], np.round(rows[:, 1], 6), atol=1e-12)
     assert main([*argv, "--confounds", str(conf), "--confound-columns", "c"]) == 2
     assert "'c'" in capsys.readouterr().err
+    doc = _run_json(capsys, [*argv, "--confounds", str(conf), "--confound-columns", "none"])
+    assert not {"a", "b"} & set(doc["fits"][0]["columns"])

@@ -83,7 +83,8 @@ def add_model_args(p: argparse.ArgumentParser, kernels: bool = True) -> None:
     p.add_argument(
         "--confound-columns",
         metavar="A,B",
-        help="use only these confound columns (default: all numeric)",
+        help="use only these confound columns (default: all numeric); 'none' reads the file "
+        "for the checks but puts no column in the model",
     )
     p.add_argument(
         "--tr",
@@ -190,7 +191,10 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
     conditions = read_events(events_path, amplitude_column=getattr(args, "amplitude_column", None))
     columns = None
     if getattr(args, "confound_columns", None):
-        columns = tuple(c.strip() for c in args.confound_columns.split(",") if c.strip())
+        if args.confound_columns.strip().lower() == "none":
+            columns = ()  # read the file (for the checks) but put no column in the model
+        else:
+            columns = tuple(c.strip() for c in args.confound_columns.split(",") if c.strip())
     confounds = None
     confounds_path = Path(args.confounds) if args.confounds else None
     if confounds_path is not None:
