@@ -86,9 +86,9 @@ MASK_PERCENTILE = 98.0
 # (iter_chunks); iter_blocks reads the file in place and copies at most one block.
 _SLAB_BYTES = 32 * 1024 * 1024
 # Columns of a memory-mapped run handed out as blocks before their pages are released.
-_RELEASE_COLUMNS = 16384
+_RELEASE_COLUMNS = 8192
 # Blocks handed out but perhaps not yet consumed, whose pages are left alone.
-_RELEASE_LAG_BLOCKS = 16
+_RELEASE_LAG_BLOCKS = 8
 
 _TIME_FACTORS = {"sec": 1.0, "unknown": 1.0, "msec": 1e-3, "usec": 1e-6}
 
