@@ -124,3 +124,31 @@ def demo_files():
     if not (SAMPLE / "sub-demo_task-tonetap_bold.nii.gz").is_file():
         pytest.skip("sample_data not generated")
     return SAMPLE
+
+
+@pytest.fixture
+def demo_window(qtbot, tmp_path, demo_files):
+    """Factory: ``demo_window(size)`` opens the demo run in a shown window of that size."""
+
+    def make(size):
+        from PySide6.QtCore import QSettings
+
+        from voxelscope.gui.app import DEMO_CONTRAST, demo_paths
+        from voxelscope.gui.main_window import MainWindow
+
+        settings = QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat)
+        w = MainWindow(settings=settings)
+        qtbot.addWidget(w)
+        w.resize(*size)
+        w.show()
+        qtbot.waitExposed(w)
+        d = demo_paths()
+        ok = w.open_run(
+            d["run"], d["events"], d["confounds"], d["anat"], d["stat_map"],
+            voxel=d["voxel"], background=False,
+        )  # fmt: skip
+        assert ok, w.last_error
+        w.set_contrast_text(DEMO_CONTRAST)
+        return w
+
+    return make

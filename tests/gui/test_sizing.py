@@ -10,7 +10,7 @@ import json
 import re
 
 import pytest
-from PySide6.QtCore import QPoint, QSettings, QSize
+from PySide6.QtCore import QPoint, QSize
 from PySide6.QtWidgets import (
     QAbstractButton,
     QAbstractSpinBox,
@@ -23,29 +23,9 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from voxelscope.gui.app import DEMO_CONTRAST, demo_paths
 from voxelscope.gui.sizing import ElidedLabel, FlowButtons, breakable
 
 PARTS = ("Model", "Checks", "Agreement", "Marks", "Map")
-
-
-def _window(qtbot, tmp_path, size):
-    from voxelscope.gui.main_window import MainWindow
-
-    settings = QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat)
-    w = MainWindow(settings=settings)
-    qtbot.addWidget(w)
-    w.resize(*size)
-    w.show()
-    qtbot.waitExposed(w)
-    d = demo_paths()
-    ok = w.open_run(
-        d["run"], d["events"], d["confounds"], d["anat"], d["stat_map"],
-        voxel=d["voxel"], background=False,
-    )  # fmt: skip
-    assert ok, w.last_error
-    w.set_contrast_text(DEMO_CONTRAST)
-    return w
 
 
 def _late_voxel(root):
@@ -127,11 +107,13 @@ def _problems(part: QWidget) -> list[str]:
 
 
 @pytest.mark.parametrize("size", [(1280, 800), (1600, 1000)])
-def test_right_column_and_map_show_all_their_text(qtbot, qapp, demo_files, tmp_path, size):
+def test_right_column_and_map_show_all_their_text(
+    demo_window, qtbot, qapp, demo_files, tmp_path, size
+):
     """At the late cluster voxel (long flag sentence, long numbers) nothing is cut at the
     right in Model, Checks, Agreement, Marks or Map, and the numbers table of Checks shows
     both its columns whole without a sideways scroll bar."""
-    w = _window(qtbot, tmp_path, size)
+    w = demo_window(size)
     marks = w.docks["Marks"].widget()
     marks.model.add((54.0, -18.0, -2.0), "a long title for the late cluster peak", "note")
     w.state.set_voxel(_late_voxel(demo_files))

@@ -1,37 +1,16 @@
 """The window fits common screens, renders screenshots 1:1, and closes without stray threads."""
 
 import pytest
-from PySide6.QtCore import QSettings, qInstallMessageHandler
-
-from voxelscope.gui.app import DEMO_CONTRAST, demo_paths
-
-
-def _demo_window(qtbot, tmp_path, size):
-    from voxelscope.gui.main_window import MainWindow
-
-    settings = QSettings(str(tmp_path / "settings.ini"), QSettings.Format.IniFormat)
-    w = MainWindow(settings=settings)
-    qtbot.addWidget(w)
-    w.resize(*size)
-    w.show()
-    qtbot.waitExposed(w)
-    d = demo_paths()
-    ok = w.open_run(
-        d["run"], d["events"], d["confounds"], d["anat"], d["stat_map"],
-        voxel=d["voxel"], background=False,
-    )  # fmt: skip
-    assert ok, w.last_error
-    w.set_contrast_text(DEMO_CONTRAST)
-    return w
+from PySide6.QtCore import qInstallMessageHandler
 
 
 @pytest.mark.parametrize("size", [(1280, 800), (1600, 1000), (1920, 1080)])
 def test_demo_window_fits_the_screen_and_renders_at_its_size(
-    qtbot, qapp, demo_files, tmp_path, size
+    demo_window, qtbot, qapp, demo_files, tmp_path, size
 ):
     """1280 x 800 is a common small laptop screen (common practice): nothing may force the
     window wider, and the screenshot must be the window itself, not a scaled-down copy."""
-    w = _demo_window(qtbot, tmp_path, size)
+    w = demo_window(size)
     qapp.processEvents()
     hint = w.minimumSizeHint()
     assert hint.width() <= 1280 and hint.height() <= 800, hint
@@ -43,8 +22,8 @@ def test_demo_window_fits_the_screen_and_renders_at_its_size(
     assert total <= table.viewport().width()
 
 
-def test_show_mode_fits_every_column(qtbot, qapp, demo_files, tmp_path):
-    w = _demo_window(qtbot, tmp_path, (1600, 1000))
+def test_show_mode_fits_every_column(demo_window, qtbot, qapp, demo_files, tmp_path):
+    w = demo_window((1600, 1000))
     w.show_mode.enter()
     qapp.processEvents()
     table = w.fits.table
@@ -57,7 +36,7 @@ def test_show_mode_fits_every_column(qtbot, qapp, demo_files, tmp_path):
     assert not w.fits.fit_width
 
 
-def test_closing_during_a_map_job_leaves_no_thread(qtbot, qapp, demo_files, tmp_path):
+def test_closing_during_a_map_job_leaves_no_thread(demo_window, qtbot, qapp, demo_files, tmp_path):
     """Close the window right after a map job started: the job is stopped and waited for,
     no late result reaches a deleted part (pytest-qt fails the test on any exception in a
     Qt callback) and Qt never warns that a running thread was destroyed."""
@@ -68,7 +47,7 @@ def test_closing_during_a_map_job_leaves_no_thread(qtbot, qapp, demo_files, tmp_
 
     previous = qInstallMessageHandler(handler)
     try:
-        w = _demo_window(qtbot, tmp_path, (1280, 800))
+        w = demo_window((1280, 800))
         live = w.live_map
         live.flush()
         live.debounce_ms = 0
@@ -81,7 +60,7 @@ def test_closing_during_a_map_job_leaves_no_thread(qtbot, qapp, demo_files, tmp_
         w.deleteLater()
         for _ in range(20):
             qapp.processEvents()
-        w2 = _demo_window(qtbot, tmp_path, (1280, 800))  # a second window still works
+        w2 = demo_window((1280, 800))  # a second window still works
         w2.live_map.flush()
         assert w2.live_map.model is not None
         w2.close()
