@@ -34,6 +34,7 @@ from typing import Any
 
 from .atomic import write_text
 from .errors import InputError
+from .inputs import read_input_bytes
 
 __all__ = [
     "MARK_COLUMNS",
@@ -328,12 +329,7 @@ def parse_marks_tsv(text: str, source: str = "marks.tsv") -> MarkList:
 def read_marks_tsv(path: str | os.PathLike[str]) -> MarkList:
     """Read a marks TSV file (see the module notes); raises InputError with one line."""
     p = Path(path)
-    try:
-        data = p.read_bytes()
-    except FileNotFoundError:
-        raise InputError(f"{p}: no such marks file; check the path") from None
-    except OSError as err:
-        raise InputError(f"{p}: cannot read the marks file ({err.strerror})") from None
+    data = read_input_bytes(p, "marks")
     try:
         text = data.decode("utf-8")
     except UnicodeDecodeError as err:

@@ -56,6 +56,7 @@ from typing import Any
 from .atomic import write_text
 from .errors import InputError
 from .hrf import KERNEL_NAMES
+from .inputs import read_input_bytes
 from .marks import MarkList
 from .model import ModelSettings
 
@@ -499,12 +500,7 @@ def load_session(path: str | os.PathLike[str], verify: bool = True) -> LoadedSes
     """
     p = Path(path)
     source = str(p)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise InputError(f"{p}: no such session file; check the path") from None
-    except OSError as err:
-        raise InputError(f"{p}: cannot read the session file ({err.strerror})") from None
+    raw = read_input_bytes(p, "session")
     try:
         data = json.loads(raw.decode("utf-8"))
     except UnicodeDecodeError:
