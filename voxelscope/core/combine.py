@@ -1,0 +1,669 @@
+"""Several runs of one subject: fixed effects across runs and whether the runs agree.
+
+Each run is fitted on its own, through the one fitting path
+(:meth:`voxelscope.core.model.Analysis.fit_voxel` for a voxel,
+:func:`voxelscope.core.maps.compute_map` for a volume); this module only combines the
+runs' contrast estimates and their variances, per kernel.
+
+Fixed effects (common practice for the runs of one subject)
+------------------------------------------------------------
+With run estimates ``b_i``, their variances ``v_i`` and residual degrees of freedom
+``df_i`` (``k`` runs), and weights ``w_i = 1 / v_i``:
+
+* combined estimate ``b = sum(w_i b_i) / sum(w_i)``;
+* its variance ``v = 1 / sum(w_i)``;
+* ``t = b / sqrt(v)`` on ``df = sum(df_i)`` degrees of freedom, two-sided ``p``.
+
+Agreement between runs
+----------------------
+Cochran's heterogeneity statistic (Cochran 1954, Biometrics 10:101-129)
+``Q = sum(w_i (b_i - b)^2)``, referred to the chi-square distribution on ``k - 1``
+degrees of freedom (``q_p``). Flags, each a plain sentence:
+
+* ``runs-disagree`` when ``q_p`` is below :data:`DISAGREE_P` (0.05);
+* ``one-run`` when the combined effect is present (``p`` below :data:`EFFECT_P`, 0.001)
+  but leaving one run out removes it (``p`` of the other runs at or above
+  :data:`GONE_P`, 0.05, or the estimate changes sign), naming that run. Two thresholds
+  rather than one keep a borderline voxel from being flagged because any run tips it.
+
+A run whose fit has no residual variance at a voxel (constant, exactly fitted, outside
+its brain) leaves the combination undefined there: every combined number is NaN
+(``null`` in JSON, 0 in maps), with a flag naming the run; never an infinity.
+
+Examples
+--------
+>>> fe = fixed_effects([2.0, 4.0], [1.0, 1.0], [100, 100])
+>>> float(fe.beta[0]), float(fe.variance[0]), int(fe.df[0]), float(fe.q[0])
+(3.0, 0.5, 200, 2.0)
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from scipy import special
+
+from .errors import InputError
+from .maps import MapResult, compute_map
+
+__all__ = [
+    "COMBINED_STATS",
+    "DISAGREE_P",
+    "EFFECT_P",
+    "GONE_P",
+    "CombinedFit",
+    "CombinedMapResult",
+    "FixedEffects",
+    "LeftOut",
+    "RunFlag",
+    "combine_fits",
+    "compute_combined_map",
+    "fixed_effects",
+    "nearest_on_grid",
+    "run_labels",
+    "same_grid",
+    "voxel_in_runs",
+]
+
+#: Cochran's Q p below this: the runs disagree.
+DISAGREE_P = 0.05
+#: Combined p below this: the combined effect is present.
+EFFECT_P = 0.001
+#: Leaving a run out leaves p at or above this (or flips the sign): that run carried it.
+GONE_P = 0.05
+
+
+# ----------------------------------------------------------------------------- arithmetic
+
+
+@dataclass(frozen=True, eq=False)
+class FixedEffects:
+    """Fixed-effects combination of ``k`` runs at ``n`` voxels (arrays of shape (n,)).
+
+    Attributes
+    ----------
+    beta, variance, t, p : float64
+        Combined estimate, its variance, t and two-sided p; NaN where undefined.
+    df : float64
+        ``sum(df_i)``.
+    q, q_p : float64
+        Cochran's Q and its chi-square p on ``k - 1`` df (NaN for one run).
+    valid : bool
+        False where a run has no finite positive variance (the combination is undefined).
+    n_runs : int
+    """
+
+    beta: np.ndarray
+    variance: np.ndarray
+    t: np.ndarray
+    df: np.ndarray
+    p: np.ndarray
+    q: np.ndarray
+    q_p: np.ndarray
+    valid: np.ndarray
+    n_runs: int
+
+
+def _as_2d(a: Any, name: str) -> np.ndarray:
+    arr = np.asarray(a, dtype=np.float64)
+    if arr.ndim == 1:
+        arr = arr[:, None]
+    if arr.ndim != 2:
+        raise InputError(f"{name} must be one value per run, or runs x voxels")
+    return arr
+
+
+def fixed_effects(betas: Any, variances: Any, dfs: Any, want_p: bool = True) -> FixedEffects:
+    """Combine run estimates by inverse-variance weighting, with Cochran's Q.
+
+    Parameters
+    ----------
+    betas, variances : array, shape (k,) or (k, n)
+        Per-run contrast estimates and their variances.
+    dfs : array, shape (k,) or (k, n)
+        Per-run residual degrees of freedom.
+    want_p : bool
+        Compute ``p`` and ``q_p`` (maps that need only t skip the tails).
+
+    Returns
+    -------
+    FixedEffects
+
+    Examples
+    --------
+    >>> fe = fixed_effects([[1.0, 1.0], [3.0, 1.0]], [[1.0, 1.0], [1.0, np.nan]], [10, 10])
+    >>> fe.beta.tolist()[0], bool(fe.valid[1]), bool(np.isnan(fe.t[1]))
+    (2.0, False, True)
+    """
+    b = _as_2d(betas, "betas")
+    v = _as_2d(variances, "variances")
+    if b.shape != v.shape:
+        raise InputError(f"betas {b.shape} and variances {v.shape} differ in shape")
+    k, n = b.shape
+    if k < 1:
+        raise InputError("no runs to combine")
+    d = np.asarray(dfs, dtype=np.float64)
+    if d.ndim == 1:
+        d = d[:, None]
+    d = np.broadcast_to(d, (k, n))
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        valid = np.all(np.isfinite(b) & np.isfinite(v) & (v > 0), axis=0)
+        w = np.where(valid, 1.0 / np.where(valid, v, 1.0), np.nan)
+        sw = w.sum(axis=0)
+        beta = (w * b).sum(axis=0) / sw
+        variance = 1.0 / sw
+        t = beta / np.sqrt(variance)
+        df = d.sum(axis=0)
+        q = (w * (b - beta) ** 2).sum(axis=0)
+        if want_p:
+            p = 2.0 * special.stdtr(df, -np.abs(t))
+            q_p = special.chdtrc(k - 1, q) if k > 1 else np.full(n, np.nan)
+        else:
+            p = q_p = np.full(n, np.nan)
+    nan = np.full(n, np.nan)
+    if k == 1:
+        q = nan.copy()
+    return FixedEffects(
+        beta=np.where(valid, beta, np.nan),
+        variance=np.where(valid, variance, np.nan),
+        t=np.where(valid, t, np.nan),
+        df=df,
+        p=np.where(valid, p, np.nan),
+        q=np.where(valid, q, np.nan),
+        q_p=np.where(valid, q_p, np.nan),
+        valid=valid,
+        n_runs=k,
+    )
+
+
+# ----------------------------------------------------------------------------- one voxel
+
+
+@dataclass(frozen=True)
+class RunFlag:
+    """A statement about the runs at one voxel.
+
+    ``id`` is ``runs-disagree``, ``one-run`` or ``run-undefined``; ``run`` names the run
+    it is about (None when it is about all of them).
+
+    >>> RunFlag("one-run", "Only run-2 shows it.", "run-2").to_json()["run"]
+    'run-2'
+    """
+
+    id: str
+    text: str
+    run: str | None = None
+
+    def to_json(self) -> dict[str, str | None]:
+        return {"id": self.id, "text": self.text, "run": self.run}
+
+
+@dataclass(frozen=True)
+class LeftOut:
+    """The combination of every run but one."""
+
+    run: str
+    beta: float | None
+    t: float | None
+    p: float | None
+
+    def to_json(self) -> dict[str, Any]:
+        return {"run": self.run, "beta": self.beta, "t": self.t, "p": self.p}
+
+
+def _num(x: Any) -> float | None:
+    v = float(np.asarray(x).reshape(-1)[0])
+    return v if np.isfinite(v) else None
+
+
+@dataclass(frozen=True)
+class CombinedFit:
+    """One kernel's fixed-effects combination at one voxel.
+
+    Numbers that are undefined are None. ``runs`` holds each run's label, beta, variance,
+    t and df in order, so a table can show rows per run and the combined row together.
+    """
+
+    kernel: str
+    contrast: str
+    beta: float | None
+    variance: float | None
+    t: float | None
+    df: float
+    p: float | None
+    q: float | None
+    q_p: float | None
+    n_runs: int
+    flags: tuple[RunFlag, ...] = ()
+    leave_one_out: tuple[LeftOut, ...] = ()
+    runs: tuple[dict[str, Any], ...] = field(default=())
+
+    def to_json(self) -> dict[str, Any]:
+        """The documented JSON object: kernel, beta, variance, t, df, p, q, q_p, flags."""
+        df = int(self.df) if float(self.df).is_integer() else float(self.df)
+        return {
+            "kernel": self.kernel,
+            "contrast": self.contrast,
+            "beta": self.beta,
+            "variance": self.variance,
+            "t": self.t,
+            "df": df,
+            "p": self.p,
+            "q": self.q,
+            "q_p": self.q_p,
+            "n_runs": self.n_runs,
+            "flags": [f.to_json() for f in self.flags],
+            "leave_one_out": [x.to_json() for x in self.leave_one_out],
+        }
+
+
+def _fmt_p(p: float) -> str:
+    return f"{p:.2g}" if p >= 1e-4 else f"{p:.1e}"
+
+
+def combine_fits(
+    kernel: str,
+    contrast: str,
+    labels: Sequence[str],
+    betas: Sequence[float | None],
+    variances: Sequence[float | None],
+    dfs: Sequence[float],
+) -> CombinedFit:
+    """Combine one kernel's per-run fits at one voxel, with agreement flags.
+
+    Parameters
+    ----------
+    kernel, contrast : str
+    labels : sequence of str
+        One short name per run (see :func:`run_labels`), used in the flags.
+    betas, variances : sequence of float or None
+        Per-run contrast estimate and variance (None where the run's fit is undefined).
+    dfs : sequence of float
+
+    Examples
+    --------
+    >>> c = combine_fits("gamma", "tap", ["a", "b"], [1.0, 1.2], [0.01, 0.01], [90, 90])
+    >>> round(c.beta, 6), c.df, [f.id for f in c.flags]
+    (1.1, 180.0, [])
+    >>> c = combine_fits("gamma", "tap", ["a", "b", "c"], [3.0, 0, 0.1], [.1, .1, .1], [90] * 3)
+    >>> [(f.id, f.run) for f in c.flags]
+    [('runs-disagree', None), ('one-run', 'a')]
+    """
+    k = len(labels)
+    if not (len(betas) == len(variances) == len(dfs) == k) or k == 0:
+        raise InputError("give one beta, variance and df per run")
+    b = np.array([np.nan if x is None else x for x in betas], dtype=np.float64)
+    v = np.array([np.nan if x is None else x for x in variances], dtype=np.float64)
+    d = np.asarray(dfs, dtype=np.float64)
+    fe = fixed_effects(b, v, d)
+    flags: list[RunFlag] = []
+    bad = [lab for lab, bi, vi in zip(labels, b, v) if not (np.isfinite(bi) and vi > 0)]
+    for lab in bad:
+        flags.append(
+            RunFlag(
+                "run-undefined",
+                f"{lab} has no residual variance at this voxel (constant, exactly fitted or "
+                "outside its brain), so the runs cannot be combined here.",
+                lab,
+            )
+        )
+    loo: list[LeftOut] = []
+    p = _num(fe.p)
+    q_p = _num(fe.q_p)
+    if not bad and k > 1:
+        if q_p is not None and q_p < DISAGREE_P:
+            flags.append(
+                RunFlag(
+                    "runs-disagree",
+                    f"The runs disagree here (Cochran's Q = {float(fe.q[0]):.3g} on {k - 1} "
+                    f"df, p = {_fmt_p(q_p)} < {DISAGREE_P:g}); look at each run before "
+                    "trusting the combined estimate.",
+                )
+            )
+        for i, lab in enumerate(labels):
+            keep = np.arange(k) != i
+            sub = fixed_effects(b[keep], v[keep], d[keep])
+            loo.append(LeftOut(lab, _num(sub.beta), _num(sub.t), _num(sub.p)))
+        if p is not None and p < EFFECT_P:
+            sign = np.sign(fe.beta[0])
+            for x in loo:
+                gone = x.p is None or x.p >= GONE_P or np.sign(x.beta or 0.0) != sign
+                if gone:
+                    flags.append(
+                        RunFlag(
+                            "one-run",
+                            f"The combined effect (p = {_fmt_p(p)}) rests on {x.run}: without "
+                            f"it the other runs give p = "
+                            f"{'undefined' if x.p is None else _fmt_p(x.p)}.",
+                            x.run,
+                        )
+                    )
+    runs = tuple(
+        {
+            "run": lab,
+            "beta": None if not np.isfinite(bi) else float(bi),
+            "variance": None if not np.isfinite(vi) else float(vi),
+            "t": float(bi / np.sqrt(vi)) if np.isfinite(bi) and vi > 0 else None,
+            "df": float(di),
+        }
+        for lab, bi, vi, di in zip(labels, b, v, d)
+    )
+    return CombinedFit(
+        kernel=str(kernel),
+        contrast=str(contrast),
+        beta=_num(fe.beta),
+        variance=_num(fe.variance),
+        t=_num(fe.t),
+        df=float(fe.df[0]),
+        p=p,
+        q=_num(fe.q),
+        q_p=q_p,
+        n_runs=k,
+        flags=tuple(flags),
+        leave_one_out=tuple(loo),
+        runs=runs,
+    )
+
+
+# ----------------------------------------------------------------------------- runs
+
+
+_RUN_ENTITY = re.compile(r"(?:^|_)(run-[A-Za-z0-9]+)(?:_|$)")
+
+
+def _stem(path: Path) -> str:
+    name = path.name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            return name[: -len(ext)]
+    return path.stem
+
+
+def run_labels(paths: Sequence[str | os.PathLike[str]]) -> list[str]:
+    """Short, unique names for runs: the BIDS ``run-`` entity when that tells them apart,
+    else the file name without its extension, else a number.
+
+    >>> run_labels(["a/sub-1_task-x_run-1_bold.nii.gz", "a/sub-1_task-x_run-2_bold.nii.gz"])
+    ['run-1', 'run-2']
+    >>> run_labels(["x/one.nii", "y/two.nii.gz"])
+    ['one', 'two']
+    >>> run_labels(["x/r.nii", "y/r.nii"])
+    ['1: r', '2: r']
+    """
+    stems = [_stem(Path(p)) for p in paths]
+    ents = []
+    for s in stems:
+        m = _RUN_ENTITY.search(s)
+        ents.append(m.group(1) if m else None)
+    if all(ents) and len(set(ents)) == len(ents):
+        return [str(e) for e in ents]
+    if len(set(stems)) == len(stems):
+        return stems
+    return [f"{i + 1}: {s}" for i, s in enumerate(stems)]
+
+
+def same_grid(runs: Sequence[Any], atol: float = 1e-4) -> bool:
+    """True when every run has the first run's shape and affine (to ``atol`` mm).
+
+    >>> from types import SimpleNamespace as NS
+    >>> a = NS(shape=(2, 2, 2), affine=np.eye(4))
+    >>> b, c = NS(shape=(2, 2, 2), affine=np.eye(4)), NS(shape=(2, 2, 3), affine=np.eye(4))
+    >>> same_grid([a, b]), same_grid([a, c])
+    (True, False)
+    """
+    first = runs[0]
+    for r in runs[1:]:
+        if tuple(r.shape[:3]) != tuple(first.shape[:3]):
+            return False
+        if not np.allclose(np.asarray(r.affine), np.asarray(first.affine), atol=atol):
+            return False
+    return True
+
+
+def voxel_in_runs(
+    runs: Sequence[Any],
+    voxel: Sequence[int] | None = None,
+    mm: Sequence[float] | None = None,
+) -> list[tuple[int, int, int]]:
+    """Each run's voxel for one place: by index when the runs share a grid, by mm always.
+
+    ``mm`` goes to each run's nearest voxel (:meth:`voxelscope.core.run.Run.mm_to_voxel`);
+    ``voxel`` is the same index in every run and needs the runs on one grid.
+
+    Raises
+    ------
+    InputError
+        Both or neither given; indices on runs with different grids; a place outside a run.
+    """
+    if (voxel is None) == (mm is None):
+        raise InputError("give either a voxel (I J K) or a position in mm (X Y Z)")
+    if voxel is not None:
+        if not same_grid(runs):
+            raise InputError(
+                f"the runs are on different grids ({_grids_text(runs)}); voxel indices "
+                "mean different places in each, so give a position with --mm X Y Z"
+            )
+        return [r.check_voxel(tuple(voxel)) for r in runs]
+    return [r.mm_to_voxel(tuple(mm)) for r in runs]  # type: ignore[arg-type]
+
+
+def _grids_text(runs: Sequence[Any]) -> str:
+    return ", ".join(
+        f"{Path(str(getattr(r, 'path', '?'))).name} {'x'.join(str(int(n)) for n in r.shape[:3])}"
+        for r in runs
+    )
+
+
+# ----------------------------------------------------------------------------- maps
+
+
+def nearest_on_grid(
+    data: np.ndarray,
+    affine: np.ndarray,
+    target_shape: Sequence[int],
+    target_affine: np.ndarray,
+    fill: float = np.nan,
+) -> np.ndarray:
+    """Sample a 3D array at the nearest source voxel of each target voxel centre.
+
+    The nearest voxel is chosen exactly as a position in mm is turned into a voxel
+    (``floor(index + 0.5)`` through the inverse affine), so a combined map at a voxel
+    uses the very voxels that ``fit --mm`` at that voxel's centre uses. Target voxels
+    whose nearest voxel is outside the source grid get ``fill``.
+
+    >>> src = np.arange(4.0).reshape(4, 1, 1)
+    >>> nearest_on_grid(src, np.eye(4), (3, 1, 1), np.diag([2.0, 1, 1, 1])).ravel().tolist()
+    [0.0, 2.0, nan]
+    """
+    data = np.asarray(data)
+    shape = tuple(int(n) for n in target_shape)
+    m = np.linalg.inv(np.asarray(affine, np.float64)) @ np.asarray(target_affine, np.float64)
+    ijk = np.indices(shape, dtype=np.float64).reshape(3, -1)
+    src = m[:3, :3] @ ijk + m[:3, 3:4]
+    idx = np.floor(src + 0.5).astype(np.int64)
+    ok = np.ones(idx.shape[1], dtype=bool)
+    for axis, n in enumerate(data.shape[:3]):
+        ok &= (idx[axis] >= 0) & (idx[axis] < n)
+    out = np.full(idx.shape[1], fill, dtype=np.result_type(data.dtype, np.float32))
+    out[ok] = data[idx[0, ok], idx[1, ok], idx[2, ok]]
+    return out.reshape(shape)
+
+
+#: Statistics a combined map can hold (a single-run map's, plus Cochran's Q and its p).
+COMBINED_STATS = ("t", "beta", "variance", "z", "p", "q", "q_p")
+
+
+@dataclass(eq=False)
+class CombinedMapResult(MapResult):
+    """A fixed-effects map across runs: a :class:`~voxelscope.core.maps.MapResult` whose
+    ``df`` is ``sum(df_i)``, plus Cochran's ``q`` and ``q_p`` volumes, each run's own map
+    (``run_maps``, on its own grid), the run ``labels`` and the runs ``resampled`` onto the
+    first run's grid."""
+
+    q: np.ndarray | None = None
+    q_p: np.ndarray | None = None
+    run_maps: tuple[Any, ...] = ()
+    labels: tuple[str, ...] = ()
+    resampled: tuple[str, ...] = ()
+
+    def stat(self, name: str) -> np.ndarray:
+        """One statistic by name, including ``q`` and ``q_p``."""
+        if name in ("q", "q_p"):
+            value = getattr(self, name)
+            if value is None:
+                raise InputError(f"the combined map has no '{name}'; ask for it")
+            return value
+        return super().stat(name)
+
+    def describe(self) -> str:
+        """One line: the combination, kernel, contrast, df, voxels and any resampling."""
+        text = (
+            f"fixed effects over {len(self.labels)} runs ({', '.join(self.labels)}): "
+            + super().describe()
+        )
+        if self.resampled:
+            text += f"; {', '.join(self.resampled)} sampled on the first run's grid (nearest voxel)"
+        return text
+
+
+def _z_of(t: np.ndarray, p: np.ndarray) -> np.ndarray:
+    """z with the same two-sided p as t (p/2 is the lower tail), finite where p underflows."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        z = -special.ndtri(p / 2.0)
+    z = np.where(np.isfinite(z), z, 38.0)
+    return np.sign(t) * z
+
+
+def compute_combined_map(
+    runs: Sequence[Any],
+    analyses: Sequence[Any],
+    settings: Any,
+    kernel: str | None = None,
+    labels: Sequence[str] | None = None,
+    stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
+    progress: Any = None,
+    workers: int | None = None,
+):
+    """Fixed-effects map across runs on the first run's grid.
+
+    Every run is mapped on its own grid by :func:`voxelscope.core.maps.compute_map` (the
+    single-run map, so the one fitting path and its options flow through), keeping only
+    beta and variance; runs on another grid are sampled at the first run's voxel centres
+    (nearest voxel, :func:`nearest_on_grid`), then combined voxel by voxel with
+    :func:`fixed_effects`. A voxel is in the combined mask when it is inside every run's
+    mask and no run is degenerate there.
+
+    Parameters
+    ----------
+    runs, analyses : sequences of the same length
+        Each run with its own :class:`~voxelscope.core.model.Analysis`.
+    settings : ModelSettings
+    kernel : str, optional
+        Default the first of ``settings.kernels``.
+    labels : sequence of str, optional
+        Run names (default :func:`run_labels` of the paths).
+    stats : sequence of str
+        Any of :data:`COMBINED_STATS`.
+    progress : callable, optional
+        ``progress(fraction)``; returning False cancels
+        (:class:`voxelscope.core.cache.Cancelled`).
+
+    Returns
+    -------
+    CombinedMapResult
+        A :class:`~voxelscope.core.maps.MapResult` (``df = sum(df_i)``) with ``q``,
+        ``q_p``, the per-run maps, the labels and which runs were resampled.
+    """
+    if len(runs) != len(analyses) or not runs:
+        raise InputError("give one analysis per run")
+    stats = tuple(stats)
+    for s in stats:
+        if s not in COMBINED_STATS:
+            raise InputError(f"unknown map statistic '{s}'; use {', '.join(COMBINED_STATS)}")
+    labels = (
+        list(labels)
+        if labels is not None
+        else run_labels([getattr(r, "path", "run") for r in runs])
+    )
+    kernel = str(kernel if kernel is not None else settings.kernels[0])
+    k = len(runs)
+    first = runs[0]
+    shape = tuple(int(n) for n in first.shape[:3])
+    aff0 = np.asarray(first.affine, dtype=np.float64)
+    run_maps = []
+    for i, (run, an) in enumerate(zip(runs, analyses)):
+        sub = None
+        if progress is not None:
+
+            def sub(f, i=i):
+                return progress((i + f) / k)
+
+        run_maps.append(
+            compute_map(
+                run,
+                an,
+                settings,
+                kernel,
+                stats=("beta", "variance"),
+                progress=sub,
+                workers=workers,
+            )
+        )
+    B = np.empty((k, int(np.prod(shape))), dtype=np.float64)
+    V = np.empty_like(B)
+    resampled = []
+    for i, (run, m) in enumerate(zip(runs, run_maps)):
+        beta = np.where(m.mask, m.beta, np.nan)
+        var = np.where(m.mask, m.variance, np.nan)
+        if i and not same_grid([first, run]):
+            beta = nearest_on_grid(beta, run.affine, shape, aff0)
+            var = nearest_on_grid(var, run.affine, shape, aff0)
+            resampled.append(labels[i])
+        B[i] = beta.reshape(-1)
+        V[i] = var.reshape(-1)
+    dfs = np.array([m.df for m in run_maps], dtype=np.float64)
+    want_p = any(s in stats for s in ("p", "z", "q_p"))
+    fe = fixed_effects(B, V, dfs, want_p=want_p)
+    valid = fe.valid
+    df_total = float(dfs.sum())
+
+    def vol(name: str, values: np.ndarray, outside: float = 0.0) -> np.ndarray | None:
+        if name not in stats:
+            return None
+        return np.where(valid, values, outside).astype(np.float32).reshape(shape)
+
+    z = vol("z", _z_of(fe.t, fe.p)) if "z" in stats else None
+    first_map = run_maps[0]
+    out = CombinedMapResult(
+        t=np.where(valid, fe.t, 0.0).astype(np.float32).reshape(shape),
+        beta=vol("beta", fe.beta),
+        variance=vol("variance", fe.variance),
+        z=z,
+        p=vol("p", fe.p, 1.0),
+        mask=valid.reshape(shape),
+        degenerate=np.zeros(shape, dtype=bool),
+        rho=None,
+        kernel=kernel,
+        contrast=first_map.contrast,
+        noise=first_map.noise,
+        df=int(df_total) if df_total.is_integer() else df_total,
+        weights=first_map.weights,
+        columns=first_map.columns,
+        affine=aff0,
+        settings=settings,
+        rho_step=None,
+        q=vol("q", fe.q),
+        q_p=vol("q_p", fe.q_p, 1.0),
+        run_maps=tuple(run_maps),
+        labels=tuple(labels),
+        resampled=tuple(resampled),
+    )
+    if "t" not in stats:
+        out.t = None
+    return out
