@@ -67,18 +67,60 @@ def _positive_float(text: str) -> float:
     return v
 
 
-def add_model_args(p: argparse.ArgumentParser, kernels: bool = True) -> None:
-    """Add the run, events, confounds and model options."""
-    p.add_argument("run", help="4D NIfTI run (.nii or .nii.gz)")
+class _Runs(argparse.Action):
+    """``RUN [RUN ...]``: ``args.run`` is the first run (one-run code reads it), ``args.runs``
+    every run in order."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        values = list(values) if isinstance(values, (list, tuple)) else [values]
+        namespace.run = values[0]
+        namespace.runs = values
+
+
+class _EachRun(argparse.Action):
+    """An option given once, or once per run: ``args.X`` keeps the last value (one run),
+    ``args.X_each`` every value in order (several runs)."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        setattr(namespace, self.dest, values)
+        each = list(getattr(namespace, f"{self.dest}_each", None) or [])
+        each.append(values)
+        setattr(namespace, f"{self.dest}_each", each)
+
+
+def add_model_args(
+    p: argparse.ArgumentParser, kernels: bool = True, several_runs: bool = False
+) -> None:
+    """Add the run, events, confounds and model options.
+
+    With ``several_runs`` the command takes ``RUN [RUN ...]`` (``args.runs``; ``args.run``
+    is the first) and ``--events`` / ``--confounds`` may be given once per run, in order.
+    """
+    if several_runs:
+        p.add_argument(
+            "run",
+            nargs="+",
+            action=_Runs,
+            metavar="RUN",
+            help="4D NIfTI run(s) (.nii or .nii.gz); several runs of one subject are fitted "
+            "each on its own and combined by fixed effects",
+        )
+    else:
+        p.add_argument("run", help="4D NIfTI run (.nii or .nii.gz)")
+    each = {"action": _EachRun} if several_runs else {}
     p.add_argument(
         "--events",
+        **each,
         metavar="FILE",
         help="BIDS events.tsv (onset, duration in seconds; trial_type); "
         "default: the BIDS-named file beside the run",
     )
     p.add_argument("--amplitude-column", metavar="NAME", help="events column giving amplitudes")
     p.add_argument(
-        "--confounds", metavar="FILE", help="TSV or CSV of nuisance regressors with a header row"
+        "--confounds",
+        **each,
+        metavar="FILE",
+        help="TSV or CSV of nuisance regressors with a header row",
     )
     p.add_argument(
         "--confound-columns",

@@ -9,18 +9,25 @@ import sys
 
 import numpy as np
 
+from ..core.combine import CombinedFit, combine_fits
 from ..core.model import KernelFit, VoxelFits
 from .common import (
     Loaded,
     add_model_args,
     add_voxel_args,
-    analysis_from_args,
     dump_json,
     print_warnings,
     voxel_from_args,
 )
+from .multirun import load_runs, run_paths, voxels_from_args
 
-__all__ = ["fit_to_json", "format_table", "register"]
+__all__ = [
+    "combine_voxel_fits",
+    "fit_to_json",
+    "format_combined_table",
+    "format_table",
+    "register",
+]
 
 
 def register(sub: argparse._SubParsersAction) -> None:
@@ -28,10 +35,12 @@ def register(sub: argparse._SubParsersAction) -> None:
         "fit",
         help="fit one voxel under every kernel",
         description=(
-            "Fit the GLM at one voxel under each kernel and print beta, variance, t, df, p and R²."
+            "Fit the GLM at one voxel under each kernel and print beta, variance, t, df, p and "
+            "R². With several runs of one subject, each run is fitted on its own and the runs "
+            "are combined per kernel by fixed effects, with Cochran's Q for their agreement."
         ),
     )
-    add_model_args(p)
+    add_model_args(p, several_runs=True)
     add_voxel_args(p)
     p.add_argument(
         "--format",
@@ -110,33 +119,171 @@ def fit_to_json(f: KernelFit, checks: dict | None = None) -> dict:
     return out
 
 
-def run_fit(args: argparse.Namespace) -> int:
-    loaded: Loaded = analysis_from_args(args)
+def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
+    """Fit one run at one voxel: the fits, the checks per kernel and the JSON object."""
     run = loaded.run
-    ijk = voxel_from_args(args, run)
     y = run.timeseries(ijk)
     fits = loaded.analysis.fit_voxel(y, loaded.settings)
     warnings = list(loaded.warnings) + list(fits.warnings)
-
     checks_by_kernel: dict[str, dict] = {}
-    if args.checks:
+    if checks:
         from ..core.checks import voxel_checks
 
         for f in fits.fits:
             c = voxel_checks(loaded.analysis, loaded.settings, f.kernel, y, run=run, ijk=ijk)
             checks_by_kernel[f.kernel] = c.to_json()
-
     mm = [float(v) for v in np.asarray(run.voxel_to_mm(ijk)).reshape(-1)]
+    doc = {
+        "voxel": list(ijk),
+        "mm": mm,
+        "tr": run.tr,
+        "n_volumes": run.n_volumes,
+        "y": y.tolist(),
+        "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel)) for f in fits.fits],
+        "warnings": list(dict.fromkeys(warnings)),
+    }
+    return fits, checks_by_kernel, doc, warnings
+
+
+def combine_voxel_fits(all_fits: list[VoxelFits], labels: list[str]) -> list[CombinedFit]:
+    """Per kernel, the fixed-effects combination of the runs' fits at their voxels."""
+    out = []
+    for i, first in enumerate(all_fits[0].fits):
+        per_run = [vf.fits[i] for vf in all_fits]
+        out.append(
+            combine_fits(
+                first.kernel,
+                first.contrast,
+                labels,
+                [f.beta for f in per_run],
+                [f.variance for f in per_run],
+                [f.df for f in per_run],
+            )
+        )
+    return out
+
+
+def format_combined_table(combined: list[CombinedFit]) -> str:
+    """Aligned table of the combined rows, one per kernel, then the flags."""
+    head = ["kernel", "beta", "variance", "t", "df", "p", "Q", "Q p"]
+    rows = [head]
+    for c in combined:
+        rows.append(
+            [
+                c.kernel,
+                _fmt(c.beta, ".5g"),
+                _fmt(c.variance, ".5g"),
+                _fmt(c.t, ".3f"),
+                f"{c.df:g}",
+                _fmt(c.p, ".3g"),
+                _fmt(c.q, ".3g"),
+                _fmt(c.q_p, ".3g"),
+            ]
+        )
+    widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
+    lines = []
+    for n, r in enumerate(rows):
+        cells = [r[0].ljust(widths[0])] + [c.rjust(w) for c, w in zip(r[1:], widths[1:])]
+        lines.append("  ".join(cells).rstrip())
+        if n == 0:
+            lines.append("  ".join("-" * w for w in widths))
+    for c in combined:
+        for flag in c.flags:
+            lines.append(f"[{c.kernel}] {flag.text}")
+    return "\n".join(lines)
+
+
+def _run_fit_several(args: argparse.Namespace) -> int:
+    loads, labels = load_runs(args)
+    places = voxels_from_args(args, loads)
+    results = [_fit_one(ld, ijk, args.checks) for ld, ijk in zip(loads, places)]
+    combined = combine_voxel_fits([r[0] for r in results], labels)
+    warnings: list[str] = []
+    for r in results:
+        warnings.extend(r[3])
     if args.format == "json":
+        runs = []
+        for label, ld, r in zip(labels, loads, results):
+            runs.append({"run": label, "path": str(ld.run.path), **r[2]})
         doc = {
-            "voxel": list(ijk),
-            "mm": mm,
-            "tr": run.tr,
-            "n_volumes": run.n_volumes,
-            "y": y.tolist(),
-            "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel)) for f in fits.fits],
+            "runs": runs,
+            "combined": [c.to_json() for c in combined],
             "warnings": list(dict.fromkeys(warnings)),
         }
+        sys.stdout.write(dump_json(doc) + "\n")
+        return 0
+    print_warnings(warnings)
+    noise = loads[0].settings.noise
+    if args.format == "csv":
+        buf = io.StringIO()
+        w = csv.writer(buf, lineterminator="\n")
+        w.writerow(
+            [
+                "run",
+                "kernel",
+                "contrast",
+                "beta",
+                "variance",
+                "t",
+                "df",
+                "p",
+                "r2",
+                "noise",
+                "rho",
+                "q",
+                "q_p",
+            ]
+        )
+
+        def num(v):
+            return "" if v is None else repr(float(v))
+
+        for label, r in zip(labels, results):
+            for f in r[0].fits:
+                w.writerow(
+                    [label, f.kernel, f.contrast]
+                    + [num(v) for v in (f.beta, f.variance, f.t)]
+                    + [f.df]
+                    + [num(v) for v in (f.p, f.r2)]
+                    + [f.result.noise, num(f.rho), "", ""]
+                )
+        for c in combined:
+            w.writerow(
+                ["combined", c.kernel, c.contrast]
+                + [num(v) for v in (c.beta, c.variance, c.t)]
+                + [f"{c.df:g}", num(c.p), "", noise, "", num(c.q), num(c.q_p)]
+            )
+        sys.stdout.write(buf.getvalue())
+        return 0
+    for label, ld, ijk, r in zip(labels, loads, places, results):
+        mm = r[2]["mm"]
+        print(
+            f"{label}: voxel {tuple(int(v) for v in ijk)}  mm ({mm[0]:.1f}, {mm[1]:.1f}, "
+            f"{mm[2]:.1f})  TR {ld.run.tr:g} s  {ld.run.n_volumes} volumes"
+        )
+        print(format_table(r[0], noise))
+        for kernel, c in r[1].items():
+            for flag in c.get("flags", []):
+                text = flag.get("text") if isinstance(flag, dict) else str(flag)
+                print(f"[{kernel}] {text}")
+        print()
+    print(
+        f"combined: fixed effects over {len(loads)} runs  contrast {combined[0].contrast}  "
+        f"noise {noise}"
+    )
+    print(format_combined_table(combined))
+    return 0
+
+
+def run_fit(args: argparse.Namespace) -> int:
+    if len(run_paths(args)) > 1:
+        return _run_fit_several(args)
+    loaded: Loaded = load_runs(args)[0][0]
+    run = loaded.run
+    ijk = voxel_from_args(args, run)
+    fits, checks_by_kernel, doc, warnings = _fit_one(loaded, ijk, args.checks)
+    mm = doc["mm"]
+    if args.format == "json":
         sys.stdout.write(dump_json(doc) + "\n")
         return 0
     print_warnings(warnings)

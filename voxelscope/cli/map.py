@@ -21,10 +21,13 @@ import numpy as np
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
 from .common import Loaded, add_model_args, analysis_from_args, print_warnings
+from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]
 
 _STATS = ("t", "beta", "variance", "z", "p")
+#: With several runs the combined map also has Cochran's Q and its p.
+_RUN_STATS = ("q", "q_p")
 
 
 def _kernel(text: str) -> str:
@@ -66,10 +69,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         description=(
             "Fit the GLM at every voxel of the mask under one kernel and write one statistic "
             "of the contrast as a float32 NIfTI map on the run's grid (written atomically; "
-            "inputs are never modified). Research software: not for clinical diagnosis."
+            "inputs are never modified). With several runs of one subject, every run is "
+            "mapped on its own and the runs are combined by fixed effects on the first run's "
+            "grid (runs on other grids are sampled at its voxel centres, nearest voxel). "
+            "Research software: not for clinical diagnosis."
         ),
     )
-    add_model_args(p, kernels=False)
+    add_model_args(p, kernels=False, several_runs=True)
     p.add_argument(
         "--kernel",
         type=_kernel,
@@ -77,7 +83,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         metavar="K",
         help="kernel: boxcar, gaussian, gamma, double-gamma or fir (default double-gamma)",
     )
-    p.add_argument("--stat", choices=_STATS, default="t", help="statistic to write (default t)")
+    p.add_argument(
+        "--stat",
+        choices=_STATS + _RUN_STATS,
+        default="t",
+        help="statistic to write (default t); with several runs also q (Cochran's Q) and q_p "
+        "(its chi-square p)",
+    )
     p.add_argument(
         "--mask",
         default="auto",
@@ -168,6 +180,10 @@ def run_map(args: argparse.Namespace) -> int:
         raise InputError("--explain needs --compare THEIRS.nii (the map to explain)")
     if args.min_voxels < 1:
         raise InputError("--min-voxels must be at least 1")
+    if len(run_paths(args)) > 1:
+        return _run_map_several(args)
+    if args.stat in _RUN_STATS:
+        raise InputError(f"--stat {args.stat} needs several runs (Cochran's Q compares runs)")
     inputs = [args.run, args.events, args.confounds, args.compare]
     if str(args.mask).strip().lower() != "auto":
         inputs.append(args.mask)
@@ -244,4 +260,83 @@ def run_map(args: argparse.Namespace) -> int:
             for alt in ex.alternatives:
                 print(f"  r {alt.r:6.3f}  slope {alt.slope:7.3g}  {alt.label}")
             print(ex.statement)
+    return 0
+
+
+def _write_clusters(args: argparse.Namespace, data, run, result) -> None:
+    from ..core.atomic import write_text
+    from ..core.clusters import find_clusters
+
+    table = find_clusters(
+        data,
+        args.threshold,
+        affine=run.affine,
+        mask=result.mask,
+        mode=args.cluster_sign,
+        connectivity=args.connectivity,
+        min_voxels=args.min_voxels,
+    )
+    write_text(args.clusters, table.to_tsv(), force=args.force)
+    print(
+        f"wrote {args.clusters}: {len(table)} clusters with |{args.stat}| > {args.threshold:g} "
+        f"({args.connectivity}-connected, at least {args.min_voxels} voxels)"
+    )
+
+
+def _run_map_several(args: argparse.Namespace) -> int:
+    """``map RUN RUN ...``: the fixed-effects map across runs on the first run's grid."""
+    from ..core.atomic import check_outputs
+    from ..core.cache import terminal_progress
+    from ..core.combine import compute_combined_map
+    from ..core.niftiout import check_output_path, write_map
+
+    if args.explain:
+        raise InputError(
+            "--explain works on one run; give one run to test which change explains a map"
+        )
+    paths = run_paths(args)
+    inputs = [*paths, *(getattr(args, "events_each", None) or [])]
+    inputs += [*(getattr(args, "confounds_each", None) or []), args.compare]
+    if str(args.mask).strip().lower() != "auto":
+        inputs.append(args.mask)
+    out = check_output_path(args.output, inputs, force=args.force)
+    if args.clusters:
+        clusters_path = Path(args.clusters)
+        if clusters_path.resolve() == out.resolve():
+            raise InputError(f"{clusters_path}: the cluster table and the map need different names")
+        check_outputs([clusters_path], force=args.force)
+    loads, labels = load_runs(args)
+    runs = [ld.run for ld in loads]
+    settings = loads[0].settings.with_(kernels=(args.kernel,))
+    warnings: list[str] = []
+    for ld in loads:
+        warnings.extend(ld.warnings)
+    mask = _load_mask(args, runs[0], warnings)
+    stats = (args.stat,) if args.stat == "t" else ("t", args.stat)
+    result = compute_combined_map(
+        runs,
+        [ld.analysis for ld in loads],
+        settings,
+        args.kernel,
+        labels=labels,
+        stats=stats,
+        mask=mask,
+        rho_step=args.rho_step,
+        progress=terminal_progress(f"fitting {len(runs)} runs"),
+    )
+    data = result.stat(args.stat)
+    desc = f"voxelscope fixed-effects {args.stat} {args.kernel} {result.contrast} df={result.df}"
+    write_map(out, data, run=runs[0], inputs=inputs, force=args.force, description=desc[:79])
+    print_warnings(warnings)
+    print(f"wrote {out}: {args.stat} map, {result.describe()}")
+    if args.clusters:
+        _write_clusters(args, data, runs[0], result)
+    if args.compare:
+        from ..core.agreement import compare_maps, load_their_map
+
+        notes: list[str] = []
+        theirs = load_their_map(Path(args.compare), runs[0], warnings=notes)
+        print_warnings(notes)
+        agr = compare_maps(result, theirs, tolerance=args.tolerance, stat=args.stat)
+        print(f"agreement with {args.compare}: {agr.describe()}")
     return 0

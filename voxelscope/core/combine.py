@@ -549,7 +549,9 @@ def compute_combined_map(
     stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
     progress: Any = None,
     workers: int | None = None,
-):
+    mask: np.ndarray | None = None,
+    rho_step: float | None = None,
+) -> CombinedMapResult:
     """Fixed-effects map across runs on the first run's grid.
 
     Every run is mapped on its own grid by :func:`voxelscope.core.maps.compute_map` (the
@@ -573,6 +575,11 @@ def compute_combined_map(
     progress : callable, optional
         ``progress(fraction)``; returning False cancels
         (:class:`voxelscope.core.cache.Cancelled`).
+    workers, rho_step
+        Passed to :func:`~voxelscope.core.maps.compute_map` for every run.
+    mask : ndarray of bool, optional
+        Voxels on the first run's grid; runs on that grid are fitted there only, runs on
+        other grids within their own brain mask, and the combination is kept inside it.
 
     Returns
     -------
@@ -596,6 +603,13 @@ def compute_combined_map(
     first = runs[0]
     shape = tuple(int(n) for n in first.shape[:3])
     aff0 = np.asarray(first.affine, dtype=np.float64)
+    if mask is not None:
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != shape:
+            raise InputError(
+                f"the mask has shape {mask.shape} but the first run's grid is "
+                f"{'x'.join(map(str, shape))}; give a mask on that grid"
+            )
     run_maps = []
     for i, (run, an) in enumerate(zip(runs, analyses)):
         sub = None
@@ -610,6 +624,8 @@ def compute_combined_map(
                 an,
                 settings,
                 kernel,
+                mask=mask if (mask is not None and (i == 0 or same_grid([first, run]))) else None,
+                rho_step=rho_step,
                 stats=("beta", "variance"),
                 progress=sub,
                 workers=workers,
@@ -631,6 +647,8 @@ def compute_combined_map(
     want_p = any(s in stats for s in ("p", "z", "q_p"))
     fe = fixed_effects(B, V, dfs, want_p=want_p)
     valid = fe.valid
+    if mask is not None:
+        valid = valid & mask.reshape(-1)
     df_total = float(dfs.sum())
 
     def vol(name: str, values: np.ndarray, outside: float = 0.0) -> np.ndarray | None:
