@@ -324,3 +324,18 @@ def test_bad_arguments():
         build_design([TONE], 150, 1.25, highpass_s=-5.0)
     with pytest.raises(InputError, match="repeat"):
         build_design([TONE, Condition("tone", [1.0], [1.0])], 150, 1.25)
+
+
+@pytest.mark.parametrize("na, nb", [(1, 1), (7, 3), (100, 1), (480, 410), (4801, 257), (333, 999)])
+def test_fft_convolution_equals_direct_convolution(na, nb):
+    """The design's FFT convolution equals numpy.convolve (direct sums, reference library)
+    on random signals, to rounding relative to the largest value."""
+    from voxelscope.core.design import _convolve_head
+
+    rng = np.random.default_rng(na * 1000 + nb)
+    a, b = rng.standard_normal(na), rng.random(nb)
+    ref = np.convolve(a, b)
+    for n in (1, na, na + nb - 1):
+        got = _convolve_head(a, b, n)
+        assert got.shape == (n,)
+        assert_allclose(got, ref[:n], rtol=0, atol=1e-13 * np.abs(ref).max())

@@ -198,3 +198,17 @@ def test_boxcar_ignores_derivatives_in_the_design():
     fits = a.fit_voxel(np.random.default_rng(0).standard_normal(70), s)
     assert fits.by_kernel("boxcar").design.condition_columns["tone"] == (0,)
     assert fits.by_kernel("gamma").design.names[:2] == ("tone", "tone_dt")
+
+
+@pytest.mark.parametrize("shape_", [1.0, 1.5, 3.0, 6.0, 16.0, 40.0])
+@pytest.mark.parametrize("scale", [0.3, 1.0, 2.5])
+def test_gamma_density_equals_scipy_stats(shape_, scale):
+    """The module's own gamma density equals scipy.stats.gamma.pdf (reference library),
+    including t <= 0 (zero) and the far tail (underflow to zero, never NaN)."""
+    from voxelscope.core.hrf import _gamma_pdf
+
+    t = np.concatenate([[-5.0, -1e-9], np.linspace(1e-6, 60.0, 997), [500.0, 5000.0]])
+    ours = _gamma_pdf(t, shape_, scale)
+    ref = stats.gamma.pdf(t, shape_, scale=scale)
+    assert np.all(np.isfinite(ours))
+    assert_allclose(ours, ref, rtol=1e-12, atol=1e-300)

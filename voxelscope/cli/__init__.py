@@ -20,10 +20,28 @@ from ..core.errors import VoxelscopeError
 __all__ = ["build_parser", "main"]
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """The argument parser with every subcommand registered."""
-    from . import cache, fit, view
+#: Command name -> the module that registers it. ``main`` registers only the module of the
+#: command being run (start-up stays short); anything else builds the full parser.
+_COMMAND_MODULES = {
+    "fit": "fit",
+    "map": "map",
+    "report": "report",
+    "view": "view",
+    "demo": "view",
+    "cache": "cache",
+}
 
+
+def _parser_for(command: str) -> argparse.ArgumentParser:
+    """A parser with only ``command`` registered (its help and errors are the same)."""
+    parser = _top_parser()
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND")
+    module = __import__(f"{__package__}.{_COMMAND_MODULES[command]}", fromlist=["register"])
+    module.register(sub)
+    return parser
+
+
+def _top_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(
         prog="voxelscope",
         description=(
@@ -32,6 +50,14 @@ def build_parser() -> argparse.ArgumentParser:
         ),
     )
     parser.add_argument("--version", action="version", version=f"voxelscope {__version__}")
+    return parser
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser with every subcommand registered."""
+    from . import cache, fit, view
+
+    parser = _top_parser()
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     modules = [fit, view, cache]
     for name in ("map", "report"):
@@ -47,11 +73,17 @@ def build_parser() -> argparse.ArgumentParser:
 def main(argv: Sequence[str] | None = None) -> int:
     """Run the command line; returns the process exit code."""
     argv = list(sys.argv[1:] if argv is None else argv)
+    if argv == ["--version"]:  # answered before any command module (and numpy) is imported
+        print(f"voxelscope {__version__}")
+        return 0
     if not argv:
         from .view import open_empty_window
 
         return open_empty_window()
-    parser = build_parser()
+    if argv[0] in _COMMAND_MODULES:
+        parser = _parser_for(argv[0])
+    else:
+        parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "handler", None):
         parser.print_help()

@@ -43,7 +43,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy import special, stats
 
 from .errors import InputError, ModelError
 
@@ -361,11 +360,13 @@ class FitResult:
     @property
     def z(self) -> np.ndarray:
         """z score with the same two-sided p as ``t`` (sign of ``t``); 0 where degenerate."""
+        from scipy import special
+
         p = self.p
         if p is None:  # fitted with want_p=False
             p = 2.0 * special.stdtr(self.df, -np.abs(self.t)) if self.df > 0 else self.t * np.nan
         with np.errstate(invalid="ignore"):
-            z = np.sign(self.t) * stats.norm.isf(p / 2.0)
+            z = -np.sign(self.t) * special.ndtri(p / 2.0)  # = norm.isf(p / 2)
         z = np.where(np.isfinite(z), z, np.where(np.isfinite(self.t), np.sign(self.t) * 38.0, 0.0))
         return np.where(self.degenerate, 0.0, z)
 
@@ -594,6 +595,8 @@ def _fit_checked(
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     pval = None
     if want_p:
+        from scipy import special  # imported where used: start-up stays short
+
         pval = 2.0 * special.stdtr(df, -np.abs(t)) if df > 0 else np.full(v, np.nan)
     if degenerate.any():
         for a in (variance, t, pval):
@@ -660,5 +663,7 @@ def f_test(result: FitResult, C: np.ndarray) -> tuple[np.ndarray, np.ndarray, in
         F[sel] = np.einsum("ij,ij->j", cb[:, sel], sol) / q
     with np.errstate(invalid="ignore", divide="ignore"):
         F = np.where(result.degenerate, np.nan, F / result.sigma2)
-    p = np.where(result.degenerate, np.nan, stats.f.sf(np.nan_to_num(F), q, result.df))
+    from scipy import special
+
+    p = np.where(result.degenerate, np.nan, special.fdtrc(q, result.df, np.nan_to_num(F)))
     return F, p, q, result.df

@@ -1,0 +1,54 @@
+"""What the command line imports before it does any work (voxelscope/cli/__init__.py).
+
+Start-up time is measured in tests/benchmarks/bench_startup.py; these tests only check the
+imports that make it: ``--version`` loads no numpy, ``--help`` and ``fit --help`` load no
+scipy, and ``fit`` on a run loads none of the heavy scipy subpackages (stats, signal,
+optimize, interpolate, ndimage) and no Qt. Each runs in a fresh interpreter.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+from tests.cli.runs import write_run
+
+HEAVY = ("scipy.stats", "scipy.signal", "scipy.optimize", "scipy.interpolate", "scipy.ndimage")
+QT = ("PySide6", "pyqtgraph")
+
+
+def _loaded_after(argv: list[str], prefixes: tuple[str, ...]) -> list[str]:
+    code = (
+        "import sys, contextlib, io\n"
+        "from voxelscope.cli import main\n"
+        "with contextlib.redirect_stdout(io.StringIO()):\n"
+        "    try:\n"
+        f"        code = main({argv!r})\n"
+        "    except SystemExit as e:\n"
+        "        code = e.code\n"
+        "assert code == 0, code\n"
+        f"print(sorted({{m.split('.')[0] + '.' + m.split('.')[1] if m.count('.') else m "
+        f"for m in sys.modules if m.startswith({prefixes!r})}}))\n"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr
+    return eval(proc.stdout.strip().splitlines()[-1])
+
+
+def test_version_loads_no_numpy():
+    assert _loaded_after(["--version"], ("numpy", "scipy", "nibabel", *QT)) == []
+
+
+@pytest.mark.parametrize("argv", [["--help"], ["fit", "--help"], ["map", "--help"]])
+def test_help_loads_no_scipy(argv):
+    assert _loaded_after(argv, ("scipy", "nibabel", *QT)) == []
+
+
+def test_fit_loads_no_heavy_scipy(tmp_path):
+    rng = np.random.default_rng(3)
+    path, events = write_run(tmp_path, 500 + rng.standard_normal((4, 5, 3, 60)), 1.5)
+    argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1"]
+    assert _loaded_after(argv, (*HEAVY, *QT)) == []
