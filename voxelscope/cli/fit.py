@@ -6,10 +6,13 @@ import argparse
 import csv
 import io
 import sys
+from typing import TYPE_CHECKING
 
 import numpy as np
 
-from ..core.combine import CombinedFit, combine_fits
+if TYPE_CHECKING:  # imported where used: --help and start-up stay short
+    from ..core.combine import CombinedFit
+
 from ..core.model import KernelFit, VoxelFits
 from .common import (
     Loaded,
@@ -147,6 +150,8 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
 
 def combine_voxel_fits(all_fits: list[VoxelFits], labels: list[str]) -> list[CombinedFit]:
     """Per kernel, the fixed-effects combination of the runs' fits at their voxels."""
+    from ..core.combine import combine_fits
+
     out = []
     for i, first in enumerate(all_fits[0].fits):
         per_run = [vf.fits[i] for vf in all_fits]

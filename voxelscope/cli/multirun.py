@@ -13,7 +13,6 @@ import argparse
 import copy
 from pathlib import Path
 
-from ..core.combine import run_labels, voxel_in_runs
 from ..core.errors import InputError, VoxelscopeError
 from .common import Loaded, analysis_from_args
 
@@ -55,6 +54,8 @@ def load_runs(args: argparse.Namespace, progress: bool = True) -> tuple[list[Loa
         A run that cannot be loaded (the message names it), mismatched ``--events`` /
         ``--confounds`` counts, or the same run twice.
     """
+    from ..core.combine import run_labels  # here: --help and start-up stay short
+
     paths = run_paths(args)
     n = len(paths)
     events = _per_run(args, "events", n, shared_ok=True)
@@ -90,6 +91,8 @@ def load_runs(args: argparse.Namespace, progress: bool = True) -> tuple[list[Loa
 
 def voxels_from_args(args: argparse.Namespace, loads: list[Loaded]) -> list[tuple[int, int, int]]:
     """Each run's voxel for ``--voxel`` (runs on one grid) or ``--mm`` (any grids)."""
+    from ..core.combine import voxel_in_runs
+
     runs = [ld.run for ld in loads]
     if getattr(args, "voxel", None) is not None:
         return voxel_in_runs(runs, voxel=tuple(args.voxel))
