@@ -120,13 +120,16 @@ def add_model_args(
         "--confounds",
         **each,
         metavar="FILE",
-        help="TSV or CSV of nuisance regressors with a header row",
+        help="TSV or CSV of nuisance regressors with a header row; default: the confounds "
+        "table beside the run, read for the checks and excluded volumes but adding no "
+        "column until --confound-columns chooses some",
     )
     p.add_argument(
         "--confound-columns",
         metavar="A,B",
-        help="use only these confound columns (default: all numeric); 'none' reads the file "
-        "for the checks but puts no column in the model",
+        help="confound columns for the model: names, wildcards (trans_?, a_comp_cor_0[0-4]) "
+        "and sets (motion6, motion12, motion24, acompcorN, csf, wm, global, outliers, all, "
+        "none), comma-separated; default: all columns of a --confounds table of at most 30",
     )
     p.add_argument(
         "--tr",
@@ -212,7 +215,6 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
     """Open the run, read events and confounds and build the :class:`Analysis`."""
     from ..core.cache import terminal_progress
     from ..core.companions import find_companions
-    from ..core.confounds import read_confounds
     from ..core.events import read_events
     from ..core.run import open_run
 
@@ -231,21 +233,7 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
             "(a BIDS events.tsv with onset and duration in seconds)"
         )
     conditions = read_events(events_path, amplitude_column=getattr(args, "amplitude_column", None))
-    columns = None
-    if getattr(args, "confound_columns", None):
-        if args.confound_columns.strip().lower() == "none":
-            columns = ()  # read the file (for the checks) but put no column in the model
-        else:
-            columns = tuple(c.strip() for c in args.confound_columns.split(",") if c.strip())
-    confounds = None
-    confounds_path = Path(args.confounds) if args.confounds else None
-    if confounds_path is not None:
-        confounds = read_confounds(confounds_path)
-        if columns is not None:
-            confounds.select(columns)  # unknown names: one clear line now
-        confounds.check_rows(run.n_volumes)
-    elif columns is not None:
-        raise InputError("--confound-columns needs --confounds FILE")
+    confounds, columns, confounds_path, conf_warnings = _confounds_from_args(args, comp, run)
     analysis = Analysis(
         conditions, run.n_volumes, run.tr, confounds, reference_time_s=run.reference_time_s
     )
@@ -264,8 +252,41 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
         raise InputError("--fir-bins must be at least 1")
     # Check the contrast once, against the condition names, before any fitting.
     analysis.check_contrast(settings.contrast)
-    warnings = list(run.warnings) + list(analysis.warnings)
+    warnings = list(run.warnings) + list(analysis.warnings) + conf_warnings
     return Loaded(run, analysis, settings, Path(events_path), confounds_path, warnings)
+
+
+def _confounds_from_args(args: argparse.Namespace, comp, run):
+    """The confounds table (named or found beside the run) and the chosen columns.
+
+    A file named with ``--confounds`` and no ``--confound-columns`` gives all columns of a
+    small table (else one line listing the sets); a file found beside the run adds no column
+    until some are chosen, and one that cannot be read is then skipped with a warning.
+    """
+    from ..core.confounds import choose_columns, read_confounds
+
+    choice = getattr(args, "confound_columns", None)
+    choice = choice if choice is None or choice.strip() else None
+    explicit = bool(args.confounds)
+    path = Path(args.confounds) if explicit else comp.confounds
+    if path is None:
+        if choice is not None and choice.strip().lower() != "none":
+            raise InputError(
+                "--confound-columns needs a confounds table: pass --confounds FILE (none was "
+                "found beside the run)"
+            )
+        return None, None, None, []
+    warnings: list[str] = []
+    try:
+        confounds = read_confounds(path)
+    except InputError as err:
+        if explicit or choice is not None:
+            raise
+        return None, None, None, [f"{err} (the confounds file beside the run is not used)"]
+    confounds.check_rows(run.n_volumes)
+    columns = choose_columns(confounds, choice, explicit)
+    warnings.extend(confounds.missing_warnings(columns))
+    return confounds, columns, path, warnings
 
 
 def voxel_from_args(args: argparse.Namespace, run) -> tuple[int, int, int]:

@@ -141,6 +141,8 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
         "mm": mm,
         "tr": run.tr,
         "n_volumes": run.n_volumes,
+        "confounds": loaded.confounds_path,
+        "confound_columns": list(loaded.settings.confound_columns or ()),
         "y": y.tolist(),
         "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel)) for f in fits.fits],
         "warnings": list(dict.fromkeys(warnings)),

@@ -451,8 +451,8 @@ def confound_spikes(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, tup
     if conf is None:
         return {}
     out: dict[str, tuple[int, ...]] = {}
-    for j, name in enumerate(conf.names):
-        step = np.abs(np.diff(conf.values[:, j]))
+    for name in conf.file_columns:
+        step = np.abs(np.diff(conf.column(name)))
         idx, _thr = robust_spikes(step, k)
         if idx:
             out[name] = tuple(i + 1 for i in idx)
@@ -577,8 +577,8 @@ def _confound_correlation(analysis: Analysis, d: DesignMatrix) -> dict[str, dict
         x = d.X[:, idx[0]]
         row: dict[str, float] = {}
         if conf is not None:
-            for j, name in enumerate(conf.names):
-                row[name] = _pearson(x, conf.values[:, j])
+            for name in conf.file_columns:
+                row[name] = _pearson(x, conf.column(name))
         out[cond] = row
     return out
 

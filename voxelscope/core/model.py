@@ -192,7 +192,7 @@ class Analysis:
 
     @property
     def confound_names(self) -> tuple[str, ...]:
-        return () if self.confounds is None else self.confounds.names
+        return () if self.confounds is None else self.confounds.file_columns
 
     def kernel(self, name: str | Kernel, settings: ModelSettings) -> Kernel:
         """The kernel object for a name under these settings (FIR bins from settings)."""
