@@ -114,7 +114,11 @@ def test_table_and_csv_formats(tmp_path, capsys):
     path, events, _ = _write_run(tmp_path, rng)
     assert main(["fit", str(path), "--events", str(events), "--voxel", "1", "2", "3"]) == 0
     table = capsys.readouterr().out.splitlines()
-    assert table[1].split()[0] == "kernel" and len(table) == 3 + 4
+    assert table[1].split()[0] == "kernel"
+    # after the header, the rule and 4 kernels: the files used and the sampling reference
+    used = table[3 + 4 :]
+    assert used[0] == f"events     {events}" and used[-2] == "mask       intensity rule (auto)"
+    assert used[-1].startswith("reference  0 s into each TR")
     assert (
         main(
             [
@@ -287,3 +291,49 @@ def test_confound_columns_pick_some(tmp_path, capsys):
     assert "'c'" in capsys.readouterr().err
     doc = _run_json(capsys, [*argv, "--confounds", str(conf), "--confound-columns", "none"])
     assert not {"a", "b"} & set(doc["fits"][0]["columns"])
+
+
+@pytest.mark.parametrize(
+    "option, values",
+    [
+        ("--events", ["a_events.tsv", "b_events.tsv"]),
+        ("--tr", ["2", "2"]),
+        ("--contrast", ["tone", "tap"]),
+        ("--format", ["json", "csv"]),
+        ("--voxel", ["1 1 1", "2 2 2"]),
+    ],
+)
+def test_single_valued_option_twice_is_an_error(tmp_path, capsys, option, values):
+    """Every single-valued option given twice: exit 2 naming the option (issue 10), instead
+    of silently taking the last value."""
+    rng = np.random.default_rng(2)
+    path, _events, _ = _write_run(tmp_path, rng)
+    argv = ["fit", str(path)]
+    for v in values:
+        argv += [option, *v.split()]
+    if option != "--voxel":
+        argv += ["--voxel", "1", "1", "1"]
+    with pytest.raises(SystemExit) as exc:
+        main(argv)
+    err = capsys.readouterr().err
+    assert exc.value.code == 2
+    assert f"argument {option}" in err and "given more than once" in err
+
+
+def test_json_reports_companions_and_reference_time(tmp_path, capsys):
+    """``companions`` (events, sidecars nearest last, confounds, mask) and
+    ``reference_time_s`` (BIDS StartTime of a slice-time corrected run)."""
+    rng = np.random.default_rng(4)
+    path, events, _ = _write_run(tmp_path, rng)
+    sidecar = tmp_path / "sub-01_task-x_bold.json"
+    sidecar.write_text(
+        json.dumps({"RepetitionTime": TR, "SliceTimingCorrected": True, "StartTime": 0.6})
+    )
+    doc = _run_json(capsys, ["fit", str(path), "--voxel", "1", "2", "3"])
+    assert doc["reference_time_s"] == 0.6
+    assert doc["companions"] == {
+        "events": str(events),
+        "sidecars": [str(sidecar)],
+        "confounds": None,
+        "mask": None,
+    }

@@ -34,6 +34,7 @@ def test_bold_run(tmp_path, ext):
         events=tmp_path / "sub-01_task-tt_run-1_events.tsv",
         sidecar=tmp_path / "sub-01_task-tt_run-1_bold.json",
         confounds=tmp_path / "sub-01_task-tt_run-1_confounds.tsv",
+        sidecars=(tmp_path / "sub-01_task-tt_run-1_bold.json",),
     )
 
 

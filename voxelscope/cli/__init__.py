@@ -38,6 +38,7 @@ def _parser_for(command: str) -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     module = __import__(f"{__package__}.{_COMMAND_MODULES[command]}", fromlist=["register"])
     module.register(sub)
+    _once_each(parser)
     return parser
 
 
@@ -67,7 +68,31 @@ def build_parser() -> argparse.ArgumentParser:
             pass
     for m in modules:
         m.register(sub)
+    _once_each(parser)
     return parser
+
+
+class _StoreOnce(argparse._StoreAction):
+    """A single-valued option: giving it twice is an error, not "the last one wins"."""
+
+    def __call__(self, parser, namespace, values, option_string=None):
+        seen = namespace.__dict__.setdefault("_given_options", set())
+        if self.dest in seen:
+            raise argparse.ArgumentError(
+                self, f"given more than once; give {option_string or self.dest} once"
+            )
+        seen.add(self.dest)
+        super().__call__(parser, namespace, values, option_string)
+
+
+def _once_each(parser: argparse.ArgumentParser) -> None:
+    """Make every single-valued option of ``parser`` and its subcommands an error when repeated."""
+    for action in parser._actions:
+        if type(action) is argparse._StoreAction and action.option_strings:
+            action.__class__ = _StoreOnce
+        if isinstance(action, argparse._SubParsersAction):
+            for sub in dict.fromkeys(action.choices.values()):
+                _once_each(sub)
 
 
 def main(argv: Sequence[str] | None = None) -> int:

@@ -20,9 +20,11 @@ __all__ = [
     "add_model_args",
     "add_voxel_args",
     "analysis_from_args",
+    "companions_text",
     "json_safe",
     "parse_highpass",
     "parse_kernels",
+    "request_from_args",
     "voxel_from_args",
 ]
 
@@ -179,6 +181,19 @@ def add_model_args(
         "--fir-bin", type=_positive_float, metavar="SECONDS", help="FIR bin width (default one TR)"
     )
     p.add_argument(
+        "--mask",
+        metavar="FILE|auto",
+        help="brain mask for maps, checks and findings: a NIfTI mask (non-zero voxels; "
+        "another grid is resampled by nearest neighbour) or 'auto' for the run's own "
+        "intensity mask (default: the run's desc-brain_mask when found, else auto)",
+    )
+    p.add_argument(
+        "--bids-root",
+        metavar="DIR",
+        help="the raw BIDS dataset a derivative run comes from (default: the folder "
+        "above derivatives/)",
+    )
+    p.add_argument(
         "--no-cache", action="store_true", help="do not build or use the voxel-major cache"
     )
 
@@ -201,7 +216,11 @@ def add_voxel_args(p: argparse.ArgumentParser, required: bool = True):
 
 @dataclass
 class Loaded:
-    """What a model command needs: the run, the analysis, the settings, and warnings."""
+    """What a model command needs: the run, the analysis, the settings, and warnings.
+
+    ``inputs`` is the core's :class:`~voxelscope.core.loader.Inputs` (companions used,
+    mask source, reference time).
+    """
 
     run: object
     analysis: Analysis
@@ -209,34 +228,43 @@ class Loaded:
     events_path: Path
     confounds_path: Path | None
     warnings: list[str] = field(default_factory=list)
+    inputs: object = None
 
 
-def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loaded:
-    """Open the run, read events and confounds and build the :class:`Analysis`."""
-    from ..core.cache import terminal_progress
-    from ..core.companions import find_companions
-    from ..core.events import read_events
-    from ..core.run import open_run
+def request_from_args(args: argparse.Namespace, summarize: bool = True):
+    """The core :class:`~voxelscope.core.loader.InputRequest` for the shared options."""
+    from ..core.loader import InputRequest
 
-    run_path = Path(args.run)
-    run = open_run(
-        run_path,
-        tr=args.tr,
+    return InputRequest(
+        run=Path(args.run),
+        events=getattr(args, "events", None) or None,
+        confounds=getattr(args, "confounds", None) or None,
+        confound_columns=getattr(args, "confound_columns", None),
+        amplitude_column=getattr(args, "amplitude_column", None),
+        tr=getattr(args, "tr", None),
+        mask=getattr(args, "mask", None),
+        bids_root=getattr(args, "bids_root", None),
         use_cache=not getattr(args, "no_cache", False),
-        progress=terminal_progress() if progress else None,
+        events_required=True,
+        summarize=summarize,
     )
-    comp = find_companions(run_path)
-    events_path = Path(args.events) if args.events else comp.events
-    if events_path is None:
-        raise InputError(
-            f"{run_path}: no events file given and none found beside it; pass --events FILE "
-            "(a BIDS events.tsv with onset and duration in seconds)"
-        )
-    conditions = read_events(events_path, amplitude_column=getattr(args, "amplitude_column", None))
-    confounds, columns, confounds_path, conf_warnings = _confounds_from_args(args, comp, run)
-    analysis = Analysis(
-        conditions, run.n_volumes, run.tr, confounds, reference_time_s=run.reference_time_s
-    )
+
+
+def analysis_from_args(
+    args: argparse.Namespace, progress: bool = True, summarize: bool = True
+) -> Loaded:
+    """Open the run with its companions through the core's one way in.
+
+    See :func:`voxelscope.core.loader.load_inputs`; ``summarize=False`` skips the pass
+    over the data that only the mask needs (``fit`` without ``--checks``).
+    """
+    from ..core.cache import terminal_progress
+    from ..core.loader import load_inputs
+
+    request = request_from_args(args, summarize=summarize)
+    if int(args.fir_bins) < 1:
+        raise InputError("--fir-bins must be at least 1")
+    got = load_inputs(request, progress=terminal_progress() if progress else None)
     settings = ModelSettings(
         kernels=tuple(getattr(args, "kernels", DEFAULT_KERNELS)),
         contrast=args.contrast,
@@ -246,47 +274,37 @@ def analysis_from_args(args: argparse.Namespace, progress: bool = True) -> Loade
         derivatives=int(args.derivatives),
         fir_bins=int(args.fir_bins),
         fir_bin_s=args.fir_bin,
-        confound_columns=columns,
+        confound_columns=got.confound_columns,
     )
-    if settings.fir_bins < 1:
-        raise InputError("--fir-bins must be at least 1")
     # Check the contrast once, against the condition names, before any fitting.
-    analysis.check_contrast(settings.contrast)
-    warnings = list(run.warnings) + list(analysis.warnings) + conf_warnings
-    return Loaded(run, analysis, settings, Path(events_path), confounds_path, warnings)
+    got.analysis.check_contrast(settings.contrast)
+    return Loaded(
+        got.run,
+        got.analysis,
+        settings,
+        Path(got.events_path),
+        got.confounds_path,
+        list(got.warnings),
+        got,
+    )
 
 
-def _confounds_from_args(args: argparse.Namespace, comp, run):
-    """The confounds table (named or found beside the run) and the chosen columns.
-
-    A file named with ``--confounds`` and no ``--confound-columns`` gives all columns of a
-    small table (else one line listing the sets); a file found beside the run adds no column
-    until some are chosen, and one that cannot be read is then skipped with a warning.
-    """
-    from ..core.confounds import choose_columns, read_confounds
-
-    choice = getattr(args, "confound_columns", None)
-    choice = choice if choice is None or choice.strip() else None
-    explicit = bool(args.confounds)
-    path = Path(args.confounds) if explicit else comp.confounds
-    if path is None:
-        if choice is not None and choice.strip().lower() != "none":
-            raise InputError(
-                "--confound-columns needs a confounds table: pass --confounds FILE (none was "
-                "found beside the run)"
-            )
-        return None, None, None, []
-    warnings: list[str] = []
-    try:
-        confounds = read_confounds(path)
-    except InputError as err:
-        if explicit or choice is not None:
-            raise
-        return None, None, None, [f"{err} (the confounds file beside the run is not used)"]
-    confounds.check_rows(run.n_volumes)
-    columns = choose_columns(confounds, choice, explicit)
-    warnings.extend(confounds.missing_warnings(columns))
-    return confounds, columns, path, warnings
+def companions_text(loaded: Loaded) -> list[str]:
+    """Lines for the table output: which files were used and the sampling reference."""
+    got = loaded.inputs
+    if got is None:
+        return []
+    used = got.used_files()
+    lines = [f"events     {used['events']}"]
+    for sc in used["sidecars"]:
+        lines.append(f"sidecar    {sc}")
+    if used["confounds"]:
+        lines.append(f"confounds  {used['confounds']}")
+    lines.append(f"mask       {used['mask'] or 'intensity rule (auto)'}")
+    lines.append(
+        f"reference  {got.run.reference_time_s:g} s into each TR ({got.run.reference_source})"
+    )
+    return lines
 
 
 def voxel_from_args(args: argparse.Namespace, run) -> tuple[int, int, int]:

@@ -18,6 +18,7 @@ from .common import (
     Loaded,
     add_model_args,
     add_voxel_args,
+    companions_text,
     dump_json,
     print_warnings,
     voxel_from_args,
@@ -141,6 +142,8 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
         "mm": mm,
         "tr": run.tr,
         "n_volumes": run.n_volumes,
+        "reference_time_s": run.reference_time_s,
+        "companions": loaded.inputs.used_files() if loaded.inputs is not None else None,
         "confounds": loaded.confounds_path,
         "confound_columns": list(loaded.settings.confound_columns or ()),
         "y": y.tolist(),
@@ -201,7 +204,7 @@ def format_combined_table(combined: list[CombinedFit]) -> str:
 
 
 def _run_fit_several(args: argparse.Namespace) -> int:
-    loads, labels = load_runs(args)
+    loads, labels = load_runs(args, summarize=bool(args.checks))
     places = voxels_from_args(args, loads)
     results = [_fit_one(ld, ijk, args.checks) for ld, ijk in zip(loads, places)]
     combined = combine_voxel_fits([r[0] for r in results], labels)
@@ -285,7 +288,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
 def run_fit(args: argparse.Namespace) -> int:
     if len(run_paths(args)) > 1:
         return _run_fit_several(args)
-    loaded: Loaded = load_runs(args)[0][0]
+    loaded: Loaded = load_runs(args, summarize=bool(args.checks))[0][0]
     run = loaded.run
     ijk = voxel_from_args(args, run)
     fits, checks_by_kernel, doc, warnings = _fit_one(loaded, ijk, args.checks)
@@ -314,6 +317,8 @@ def run_fit(args: argparse.Namespace) -> int:
         f"noise {loaded.settings.noise}"
     )
     print(format_table(fits, loaded.settings.noise))
+    for line in companions_text(loaded):
+        print(line)
     for kernel, c in checks_by_kernel.items():
         for flag in c.get("flags", []):
             text = flag.get("text") if isinstance(flag, dict) else str(flag)

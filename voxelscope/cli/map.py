@@ -16,8 +16,6 @@ import argparse
 import math
 from pathlib import Path
 
-import numpy as np
-
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
 from .common import Loaded, add_model_args, analysis_from_args, print_warnings
@@ -91,13 +89,6 @@ def register(sub: argparse._SubParsersAction) -> None:
         "(its chi-square p)",
     )
     p.add_argument(
-        "--mask",
-        default="auto",
-        metavar="FILE|auto",
-        help="voxels to fit: a NIfTI mask (non-zero voxels, resampled to the run) or 'auto' "
-        "for the run's own brain mask (default)",
-    )
-    p.add_argument(
         "--rho-step",
         type=_rho_step,
         default=None,
@@ -154,21 +145,6 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(handler=run_map)
 
 
-def _load_mask(args: argparse.Namespace, run, warnings: list[str]) -> np.ndarray | None:
-    text = str(args.mask).strip()
-    if text.lower() == "auto":
-        return None
-    from ..core.images import load_on_grid
-
-    m = load_on_grid(Path(text), run, order=0, warnings=warnings)
-    mask = np.isfinite(m) & (m != 0)
-    if not mask.any():
-        raise InputError(
-            f"{text}: the mask has no non-zero voxels on the run's grid; check the file"
-        )
-    return mask
-
-
 def run_map(args: argparse.Namespace) -> int:
     """Handler of ``voxelscope map``."""
     from ..core.atomic import check_outputs, write_text
@@ -185,7 +161,7 @@ def run_map(args: argparse.Namespace) -> int:
     if args.stat in _RUN_STATS:
         raise InputError(f"--stat {args.stat} needs several runs (Cochran's Q compares runs)")
     inputs = [args.run, args.events, args.confounds, args.compare]
-    if str(args.mask).strip().lower() != "auto":
+    if args.mask is not None and str(args.mask).strip().lower() != "auto":
         inputs.append(args.mask)
     out = check_output_path(args.output, inputs, force=args.force)
     if args.clusters:
@@ -201,7 +177,7 @@ def run_map(args: argparse.Namespace) -> int:
     run, analysis = loaded.run, loaded.analysis
     settings = loaded.settings.with_(kernels=(args.kernel,))
     warnings = list(loaded.warnings)
-    mask = _load_mask(args, run, warnings)
+    mask = run.mask()  # the run's brain mask file, --mask FILE or the intensity rule
     stats = (args.stat,) if args.stat == "t" else ("t", args.stat)
     result = compute_map(
         run,
@@ -297,7 +273,7 @@ def _run_map_several(args: argparse.Namespace) -> int:
     paths = run_paths(args)
     inputs = [*paths, *(getattr(args, "events_each", None) or [])]
     inputs += [*(getattr(args, "confounds_each", None) or []), args.compare]
-    if str(args.mask).strip().lower() != "auto":
+    if args.mask is not None and str(args.mask).strip().lower() != "auto":
         inputs.append(args.mask)
     out = check_output_path(args.output, inputs, force=args.force)
     if args.clusters:
@@ -311,7 +287,7 @@ def _run_map_several(args: argparse.Namespace) -> int:
     warnings: list[str] = []
     for ld in loads:
         warnings.extend(ld.warnings)
-    mask = _load_mask(args, runs[0], warnings)
+    mask = None  # each run keeps its own mask (mask file or intensity rule), set by the loader
     stats = (args.stat,) if args.stat == "t" else ("t", args.stat)
     result = compute_combined_map(
         runs,

@@ -45,8 +45,12 @@ def _per_run(args: argparse.Namespace, name: str, n: int, shared_ok: bool) -> li
     )
 
 
-def load_runs(args: argparse.Namespace, progress: bool = True) -> tuple[list[Loaded], list[str]]:
+def load_runs(
+    args: argparse.Namespace, progress: bool = True, summarize: bool = True
+) -> tuple[list[Loaded], list[str]]:
     """Load every run as the one-run commands do; returns the loads and the run labels.
+
+    ``summarize`` is passed to :func:`~voxelscope.cli.common.analysis_from_args`.
 
     Raises
     ------
@@ -61,7 +65,7 @@ def load_runs(args: argparse.Namespace, progress: bool = True) -> tuple[list[Loa
     events = _per_run(args, "events", n, shared_ok=True)
     confounds = _per_run(args, "confounds", n, shared_ok=False)
     if n == 1:
-        return [analysis_from_args(args, progress=progress)], run_labels(paths)
+        return [analysis_from_args(args, progress=progress, summarize=summarize)], run_labels(paths)
     seen: dict[str, str] = {}
     for p in paths:
         key = str(Path(p).resolve())
@@ -73,7 +77,7 @@ def load_runs(args: argparse.Namespace, progress: bool = True) -> tuple[list[Loa
         one = copy.copy(args)
         one.run, one.runs, one.events, one.confounds = path, [path], ev, conf
         try:
-            loaded = analysis_from_args(one, progress=progress)
+            loaded = analysis_from_args(one, progress=progress, summarize=summarize)
         except VoxelscopeError as exc:
             text = str(exc)
             if str(path) in text or Path(path).name in text:

@@ -62,7 +62,6 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def run_report(args: argparse.Namespace) -> int:
     """Handler of ``voxelscope report``."""
-    from ..core.companions import find_companions
     from ..core.marks import read_marks_tsv
     from ..core.report import write_report
 
@@ -70,7 +69,7 @@ def run_report(args: argparse.Namespace) -> int:
     loaded = analysis_from_args(args)
     run = loaded.run
     voxel = None if marks is not None else voxel_from_args(args, run)
-    sidecar = find_companions(Path(args.run)).sidecar
+    sidecar = run.sidecar
     inputs = {
         "run": Path(args.run),
         "events": loaded.events_path,

@@ -23,12 +23,17 @@ Examples
 
 from __future__ import annotations
 
+import json
 import os
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
-__all__ = ["Companions", "find_companions", "run_stem"]
+from .errors import InputError
+
+__all__ = ["Companions", "find_companions", "merge_sidecars", "read_sidecar", "run_stem"]
 
 _NIFTI_SUFFIXES = (".nii.gz", ".nii.bz2", ".nii.zst", ".nii")
 _DROPPABLE = re.compile(r"_(?:space|res|den|desc)-[A-Za-z0-9]+")
@@ -36,11 +41,18 @@ _DROPPABLE = re.compile(r"_(?:space|res|den|desc)-[A-Za-z0-9]+")
 
 @dataclass(frozen=True)
 class Companions:
-    """Files found beside a run; each is a path or None."""
+    """Files found for a run; each is a path or None.
+
+    ``sidecar`` is the run's nearest sidecar; ``sidecars`` every sidecar that applies,
+    farthest first and nearest last (BIDS inheritance: the nearest wins). ``mask`` is a
+    brain mask made for the run (``desc-brain_mask``).
+    """
 
     events: Path | None
     sidecar: Path | None
     confounds: Path | None
+    sidecars: tuple[Path, ...] = ()
+    mask: Path | None = None
 
 
 def run_stem(path: str | os.PathLike[str]) -> str:
@@ -100,7 +112,7 @@ def find_companions(run_path: str | os.PathLike[str]) -> Companions:
     Examples
     --------
     >>> find_companions("/nonexistent/run_bold.nii.gz")
-    Companions(events=None, sidecar=None, confounds=None)
+    Companions(events=None, sidecar=None, confounds=None, sidecars=(), mask=None)
     """
     path = Path(run_path)
     folder = path.parent
@@ -111,4 +123,68 @@ def find_companions(run_path: str | os.PathLike[str]) -> Companions:
     if reduced != stem and None in found:
         alt = _candidates(reduced)
         found = [f if f is not None else _first(folder, a) for f, a in zip(found, alt)]
-    return Companions(events=found[0], sidecar=found[1], confounds=found[2])
+    mask = None
+    if stem.endswith("_bold"):
+        base = re.sub(r"_desc-[A-Za-z0-9]+", "", stem[: -len("_bold")])
+        mask = _first(folder, [f"{base}_desc-brain_mask{ext}" for ext in (".nii.gz", ".nii")])
+    sidecars = (found[1],) if found[1] is not None else ()
+    return Companions(
+        events=found[0], sidecar=found[1], confounds=found[2], sidecars=sidecars, mask=mask
+    )
+
+
+def read_sidecar(path: str | os.PathLike[str]) -> dict[str, Any]:
+    """One JSON sidecar as a dict; one clear line when it cannot be used.
+
+    Raises
+    ------
+    InputError
+        Unreadable, not JSON, or not a JSON object.
+    """
+    path = Path(path)
+    try:
+        data = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError) as err:
+        raise InputError(f"{path}: cannot read the sidecar ({err}); fix or remove it") from None
+    except ValueError as err:
+        raise InputError(
+            f"{path}: the sidecar is not valid JSON ({err}); fix or remove it"
+        ) from None
+    if not isinstance(data, dict):
+        raise InputError(f"{path}: the sidecar must hold a JSON object; fix or remove it")
+    return data
+
+
+def merge_sidecars(
+    paths: Sequence[str | os.PathLike[str]],
+) -> tuple[dict[str, Any], dict[str, Path]]:
+    """Merge sidecars given farthest first: a later (nearer) file's fields win.
+
+    This is the BIDS inheritance principle: a key defined at several levels of the
+    hierarchy takes the value from the file closest to the data.
+
+    Returns
+    -------
+    meta : dict
+        The merged fields.
+    origin : dict
+        For each field, the file its value came from.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> _ = (d / "task-a_bold.json").write_text('{"RepetitionTime": 2, "X": 1}')
+    >>> _ = (d / "sub-1_task-a_bold.json").write_text('{"RepetitionTime": 1.5}')
+    >>> meta, origin = merge_sidecars([d / "task-a_bold.json", d / "sub-1_task-a_bold.json"])
+    >>> meta["RepetitionTime"], meta["X"], origin["RepetitionTime"].name
+    (1.5, 1, 'sub-1_task-a_bold.json')
+    """
+    meta: dict[str, Any] = {}
+    origin: dict[str, Path] = {}
+    for p in paths:
+        p = Path(p)
+        for key, value in read_sidecar(p).items():
+            meta[key] = value
+            origin[key] = p
+    return meta, origin

@@ -42,7 +42,6 @@ Examples
 
 from __future__ import annotations
 
-import json
 import math
 import mmap
 import os
@@ -57,7 +56,7 @@ import numpy as np
 from nibabel.affines import apply_affine, voxel_sizes
 
 from voxelscope.core import cache as _cache
-from voxelscope.core.companions import find_companions
+from voxelscope.core.companions import find_companions, merge_sidecars, read_sidecar
 from voxelscope.core.errors import InputError
 from voxelscope.core.images import _check_affine, _check_dtype, load_nifti, nifti_affine
 
@@ -70,6 +69,7 @@ __all__ = [
     "brain_mask",
     "open_run",
     "resolve_tr",
+    "sampling_reference",
 ]
 
 #: A header TR above this many seconds is taken to be milliseconds (with a warning).
@@ -326,11 +326,33 @@ class Run:
     affine_source: str = "sform"
     sidecar: Path | None = None
     cache_path: Path | None = None
+    sidecars: tuple[Path, ...] = ()
+    reference_source: str = "start of each volume"
+    mask_source: str = "intensity"
     _store: Any = field(default=None, repr=False)
     _summary: Any = field(default=None, repr=False)
     _mean: np.ndarray | None = field(default=None, repr=False)
     _mask: np.ndarray | None = field(default=None, repr=False)
+    _given_mask: np.ndarray | None = field(default=None, repr=False)
     _lock: Any = field(default_factory=threading.RLock, repr=False)
+
+    def set_mask(self, mask: np.ndarray, source: str) -> None:
+        """Use ``mask`` (bool, the run's grid) as the brain mask instead of the intensity rule.
+
+        Voxels whose time series is NaN or constant are still left out when the mask is
+        first used. ``source`` (the mask file) names it in messages and in
+        :attr:`mask_source`.
+        """
+        mask = np.asarray(mask, dtype=bool)
+        if mask.shape != self.shape:
+            raise InputError(
+                f"{source}: mask shape {mask.shape} does not match the grid "
+                f"{self._grid_text()} of {self.path}"
+            )
+        with self._lock:
+            self._given_mask = mask.copy()
+            self._mask = None
+            self.mask_source = str(source)
 
     # ----------------------------------------------------------------- geometry
 
@@ -576,6 +598,17 @@ class Run:
         Voxels with a NaN/inf value or a constant time series are always outside.
         """
         with self._lock:
+            if self._mask is None and self._given_mask is not None:
+                s = self.summary()
+                mask = self._given_mask & ~s.nonfinite & ~s.constant
+                if not mask.any():
+                    raise InputError(
+                        f"{self.mask_source}: no voxel of the mask holds a usable time series "
+                        f"of {self.path} (all are NaN or constant); give this run's mask "
+                        "(--mask FILE) or use --mask auto"
+                    )
+                mask.flags.writeable = False
+                self._mask = mask
             if self._mask is None:
                 s = self.summary()
                 valid = ~s.nonfinite & ~s.constant
@@ -688,17 +721,7 @@ def _header_tr(path: Path, header: Any) -> _HeaderTR:
 
 
 def _read_sidecar(sidecar: Path) -> dict[str, Any]:
-    try:
-        data = json.loads(sidecar.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError) as err:
-        raise InputError(f"{sidecar}: cannot read the sidecar ({err}); fix or remove it") from None
-    except ValueError as err:
-        raise InputError(
-            f"{sidecar}: the sidecar is not valid JSON ({err}); fix or remove it"
-        ) from None
-    if not isinstance(data, dict):
-        raise InputError(f"{sidecar}: the sidecar must hold a JSON object; fix or remove it")
-    return data
+    return read_sidecar(sidecar)
 
 
 def _number(value: Any) -> float | None:
@@ -714,6 +737,8 @@ def resolve_tr(
     tr: float | None = None,
     sidecar: Path | None = None,
     n_slices: int | None = None,
+    meta: dict[str, Any] | None = None,
+    origin: dict[str, Path] | None = None,
 ) -> tuple[float, str, np.ndarray | None, list[str]]:
     """Decide the TR of a run and read its slice timing.
 
@@ -728,6 +753,10 @@ def resolve_tr(
         BIDS JSON sidecar (``RepetitionTime``, ``SliceTiming``, seconds).
     n_slices : int, optional
         Expected length of ``SliceTiming``.
+    meta, origin : dict, optional
+        The merged sidecar fields (BIDS inheritance, see
+        :func:`voxelscope.core.companions.merge_sidecars`) and the file each came from;
+        when given, ``sidecar`` is not read again.
 
     Returns
     -------
@@ -745,7 +774,13 @@ def resolve_tr(
         No usable TR anywhere, an implausible TR, or an unreadable sidecar.
     """
     notes: list[str] = []
-    meta = _read_sidecar(sidecar) if sidecar is not None else {}
+    if meta is None:
+        meta = _read_sidecar(sidecar) if sidecar is not None else {}
+    origin = dict(origin or {})
+
+    def where(key: str) -> Path | None:
+        return origin.get(key, sidecar)
+
     head = _header_tr(path, header)
     lo, hi = PLAUSIBLE_TR_S
 
@@ -762,14 +797,15 @@ def resolve_tr(
         value = _number(meta["RepetitionTime"])
         if value is None or not lo <= value <= hi:
             raise InputError(
-                f"{sidecar}: RepetitionTime {meta['RepetitionTime']!r} is not a plausible "
-                f"TR in seconds (BIDS); fix the sidecar or give --tr"
+                f"{where('RepetitionTime')}: RepetitionTime {meta['RepetitionTime']!r} is not "
+                f"a plausible TR in seconds (BIDS); fix the sidecar or give --tr"
             )
         chosen, source = value, "sidecar"
         if head.value is not None and abs(head.value - value) > 1e-3 * max(value, 1.0):
             notes.append(
-                f"{path}: TR differs between the sidecar ({value:g} s, {sidecar.name}) and "
-                f"the header ({head.value:g} s); using the sidecar"
+                f"{path}: TR differs between the sidecar ({value:g} s, "
+                f"{where('RepetitionTime').name}) and the header ({head.value:g} s); "
+                f"using the sidecar"
             )
     elif head.value is not None:
         chosen, source = head.value, "header"
@@ -782,9 +818,62 @@ def resolve_tr(
         )
 
     timing = None
-    if "SliceTiming" in meta:
-        timing = _slice_timing(sidecar, meta["SliceTiming"], chosen, n_slices, notes)
+    if "SliceTiming" in meta and meta.get("SliceTimingCorrected") is not True:
+        timing = _slice_timing(where("SliceTiming"), meta["SliceTiming"], chosen, n_slices, notes)
     return chosen, source, timing, notes
+
+
+def sampling_reference(
+    meta: dict[str, Any],
+    origin: dict[str, Path],
+    tr: float,
+    timing: np.ndarray | None,
+) -> tuple[float, str]:
+    """The time within each TR at which regressors are sampled, and why.
+
+    BIDS (derivatives, preprocessed BOLD sidecars): when ``SliceTimingCorrected`` is true,
+    every slice was interpolated to ``StartTime`` seconds after the start of the volume's
+    acquisition, so that is the reference, and raw ``SliceTiming`` no longer describes the
+    data (it is set aside). Otherwise, with a usable ``SliceTiming`` (one value per slice
+    of the grid), the median slice time; otherwise 0, the start of each volume.
+
+    Returns
+    -------
+    reference_time_s : float
+    source : str
+        Plain words for the status line and the table output.
+
+    Raises
+    ------
+    InputError
+        ``StartTime`` not a number, negative, or not below the TR.
+
+    Examples
+    --------
+    >>> sampling_reference({"SliceTimingCorrected": True, "StartTime": 0.975}, {}, 2.0, None)
+    (0.975, 'StartTime 0.975 s (slice-time corrected)')
+    >>> sampling_reference({}, {}, 2.0, np.array([0.0, 1.0, 0.5]))
+    (0.5, 'median SliceTiming 0.5 s')
+    >>> sampling_reference({}, {}, 2.0, None)
+    (0.0, 'start of each volume')
+    """
+    corrected = meta.get("SliceTimingCorrected") is True
+    set_aside = "; SliceTiming set aside" if corrected and "SliceTiming" in meta else ""
+    if corrected and "StartTime" in meta:
+        where = origin.get("StartTime", "the sidecar")
+        value = _number(meta["StartTime"])
+        if value is None or not 0.0 <= value < tr:
+            raise InputError(
+                f"{where}: StartTime {meta['StartTime']!r} must be a number of seconds from 0 "
+                f"up to but not including the TR ({tr:g} s) (BIDS); fix the sidecar"
+            )
+        return value, f"StartTime {value:g} s (slice-time corrected{set_aside})"
+    if corrected:
+        return 0.0, f"start of each volume (slice-time corrected, no StartTime{set_aside})"
+    if timing is not None:
+        ref = float(np.median(timing))
+        return ref, f"median SliceTiming {ref:g} s"
+    return 0.0, "start of each volume"
 
 
 def _slice_timing(
@@ -862,6 +951,7 @@ def open_run(
     use_cache: bool = True,
     progress: Callable[[float], bool | None] | None = None,
     cache_dir: str | os.PathLike[str] | None = None,
+    sidecars: Sequence[str | os.PathLike[str]] | None = None,
 ) -> Run:
     """Open a 4D NIfTI run for fast voxel access.
 
@@ -879,6 +969,10 @@ def open_run(
         cancel (:class:`voxelscope.core.cache.Cancelled`).
     cache_dir : path-like, optional
         Cache directory; default ``platformdirs.user_cache_dir("voxelscope")/runs``.
+    sidecars : sequence of path-like, optional
+        The JSON sidecars that apply to the run, farthest first and the run's own last
+        (BIDS inheritance; :func:`voxelscope.core.companions.find_companions`). Default:
+        the companions found for the run.
 
     Returns
     -------
@@ -916,11 +1010,18 @@ def open_run(
             f"sizes only (orientation unknown)"
         )
 
-    sidecar = find_companions(path).sidecar
+    if sidecars is None:
+        sidecars = find_companions(path).sidecars
+    sidecar_list = tuple(Path(p) for p in sidecars)
+    meta, origin = merge_sidecars(sidecar_list)
+    sidecar = sidecar_list[-1] if sidecar_list else None
     slice_dim = header.get_dim_info()[2]
     n_slices = (x, y, z)[slice_dim if slice_dim is not None and slice_dim < 3 else 2]
-    tr_s, tr_source, timing, tr_notes = resolve_tr(path, header, tr, sidecar, n_slices)
+    tr_s, tr_source, timing, tr_notes = resolve_tr(
+        path, header, tr, sidecar, n_slices, meta=meta, origin=origin
+    )
     notes.extend(tr_notes)
+    reference_s, reference_source = sampling_reference(meta, origin, tr_s, timing)
 
     slope, inter = float(img.dataobj.slope), float(img.dataobj.inter)
     layout = _cache.RawLayout(
@@ -979,7 +1080,7 @@ def open_run(
         tr=float(tr_s),
         tr_source=tr_source,
         slice_timing=timing,
-        reference_time_s=float(np.median(timing)) if timing is not None else 0.0,
+        reference_time_s=float(reference_s),
         axcodes=tuple(nib.aff2axcodes(affine)),  # type: ignore[arg-type]
         voxel_size=tuple(float(v) for v in voxel_sizes(affine)),  # type: ignore[arg-type]
         warnings=notes,
@@ -988,6 +1089,8 @@ def open_run(
         affine_source=affine_source,
         sidecar=sidecar,
         cache_path=cache_path,
+        sidecars=sidecar_list,
+        reference_source=reference_source,
         _store=store,
         _summary=summary,
     )

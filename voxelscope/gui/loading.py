@@ -22,10 +22,7 @@ from pathlib import Path
 
 import numpy as np
 
-from voxelscope.core.companions import find_companions
-from voxelscope.core.confounds import Confounds, read_confounds
 from voxelscope.core.errors import InputError
-from voxelscope.core.events import read_events
 from voxelscope.core.images import grid_overlap, load_image, load_on_grid
 from voxelscope.core.model import Analysis
 
@@ -67,6 +64,7 @@ class RunBundle:
     underlay: Layer
     stat_map: Layer | None = None
     warnings: list[str] = field(default_factory=list)
+    inputs: object = None  # the core's loader.Inputs: companions used, mask, reference time
 
 
 def fine_grid(shape, affine: np.ndarray, factor: int) -> tuple[tuple[int, int, int], np.ndarray]:
@@ -151,8 +149,13 @@ def load_bundle(
     stat_map: str | os.PathLike[str] | None = None,
     tr: float | None = None,
     progress: Callable[[float], bool | None] | None = None,
+    mask: str | os.PathLike[str] | None = None,
+    bids_root: str | os.PathLike[str] | None = None,
 ) -> RunBundle:
     """Open a run, its events and confounds (found by BIDS names when not given) and layers.
+
+    The run and its companions come through the core's one way in,
+    :func:`voxelscope.core.loader.load_inputs`, as on the command line.
 
     Parameters
     ----------
@@ -166,6 +169,11 @@ def load_bundle(
         Statistic map overlay.
     tr : float, optional
         Overrides the sidecar and header TR.
+    mask : path or "auto", optional
+        Brain mask; default the run's ``desc-brain_mask`` when found, else the intensity
+        rule.
+    bids_root : path, optional
+        The raw dataset a derivative run comes from.
     progress : callable, optional
         ``progress(fraction) -> bool | None``; False cancels.
 
@@ -179,31 +187,31 @@ def load_bundle(
     VoxelscopeError
         One line naming the file and what to do.
     """
-    from voxelscope.core.run import open_run
+    from voxelscope.core.loader import InputRequest, load_inputs
 
-    run_path = Path(run_path)
-    companions = find_companions(run_path)
-    events_path = Path(events) if events is not None else companions.events
-    conf_path = Path(confounds) if confounds is not None else companions.confounds
-    run = open_run(run_path, tr=tr, progress=progress)
-    warnings = list(run.warnings)
-    analysis = None
-    if events_path is not None:
-        conditions = read_events(events_path)
-        conf: Confounds | None = read_confounds(conf_path) if conf_path is not None else None
-        analysis = Analysis(
-            conditions, run.n_volumes, run.tr, confounds=conf, reference_time_s=run.reference_time_s
-        )
-        warnings.extend(analysis.warnings)
-    else:
-        conf_path = None
-        warnings.append(
-            f"{run_path}: no events file found beside it; open one to fit a model "
-            "(File > Open events)"
-        )
-    underlay = load_underlay(anat, run, warnings)
-    layer = load_map(stat_map, run, warnings) if stat_map is not None else None
-    return RunBundle(run, analysis, events_path, conf_path, underlay, layer, warnings)
+    request = InputRequest(
+        run=Path(run_path),
+        events=events,
+        confounds=confounds,
+        tr=tr,
+        mask=mask,
+        bids_root=bids_root,
+        events_required=False,
+    )
+    got = load_inputs(request, progress=progress)
+    warnings = list(got.warnings)
+    underlay = load_underlay(anat, got.run, warnings)
+    layer = load_map(stat_map, got.run, warnings) if stat_map is not None else None
+    return RunBundle(
+        got.run,
+        got.analysis,
+        got.events_path if got.analysis is not None else None,
+        got.confounds_path if got.analysis is not None else None,
+        underlay,
+        layer,
+        warnings,
+        got,
+    )
 
 
 def check_nifti_kind(path: str | os.PathLike[str]) -> int:

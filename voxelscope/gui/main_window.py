@@ -26,10 +26,8 @@ from PySide6.QtWidgets import (
 )
 
 import voxelscope
-from voxelscope.core.confounds import read_confounds
 from voxelscope.core.errors import VoxelscopeError
-from voxelscope.core.events import read_events
-from voxelscope.core.model import Analysis
+from voxelscope.core.loader import open_events as core_open_events
 from voxelscope.gui.checks_panel import install_checks
 from voxelscope.gui.colours import stylesheet
 from voxelscope.gui.fits import FitsPanel
@@ -404,18 +402,20 @@ class MainWindow(QMainWindow):
         if self.after_open is not None:
             hook, self.after_open = self.after_open, None
             hook()
+        files = bundle.inputs.files_line() if bundle.inputs is not None else ""
+        self.run_label.setToolTip(files)
         if not bundle.warnings:
-            self.statusBar().showMessage(f"Opened {Path(bundle.run.path).name}", 8000)
+            name = Path(bundle.run.path).name
+            self.statusBar().showMessage(f"Opened {name}" + (f" — {files}" if files else ""))
         return True
 
     def open_events(self, path, confounds=None) -> bool:
         run = self.state.run
         try:
-            conds = read_events(path)
-            conf = read_confounds(confounds) if confounds is not None else None
+            conf = confounds
             if conf is None and self.state.analysis is not None:
                 conf = self.state.analysis.confounds
-            analysis = Analysis(conds, run.n_volumes, run.tr, conf, run.reference_time_s)
+            analysis = core_open_events(run, path, conf)
         except VoxelscopeError as err:
             self.show_error(str(err))
             return False

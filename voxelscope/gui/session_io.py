@@ -27,7 +27,6 @@ from PySide6.QtCore import QByteArray, QEvent, QObject, QTimer
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import QApplication, QFileDialog, QMenu, QMessageBox
 
-from voxelscope.core.companions import find_companions
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import MarkList
 from voxelscope.core.model import ModelSettings
@@ -156,7 +155,7 @@ def collect_session(window) -> Session:
             files["events"] = Path(bundle.events_path)
         if bundle.confounds_path is not None:
             files["confounds"] = Path(bundle.confounds_path)
-        sidecar = find_companions(run_path).sidecar
+        sidecar = getattr(bundle.run, "sidecar", None)
         if sidecar is not None and sidecar.is_file():
             files["sidecar"] = sidecar
         if bundle.underlay is not None and bundle.underlay.path is not None:
