@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import nibabel as nib
 import numpy as np
 
@@ -22,3 +24,55 @@ def test_cache_info_and_clear(tmp_path, capsys):
     assert "removed 1 cached run(s)" in capsys.readouterr().out
     assert main(["cache", "info"]) == 0
     assert "0 cached run(s)" in capsys.readouterr().out
+
+
+def test_cache_clear_one_run_and_info_lists_last_use(tmp_path, capsys):
+    """Issue 18: ``cache clear RUN`` removes that run's entry only; ``cache info`` lists
+    each run with its size and last use, and the limit."""
+    paths = []
+    for i in range(2):
+        data = np.random.default_rng(i).standard_normal((4, 5, 3, 12)).astype(np.float32)
+        paths.append(tmp_path / f"r{i}.nii.gz")
+        nib.save(nib.Nifti1Image(data + 100, np.eye(4)), paths[-1])
+        open_run(paths[-1], tr=2.0)
+    assert main(["cache", "info"]) == 0
+    out = capsys.readouterr().out
+    assert "last use" in out and "2 cached run(s)" in out and "(limit 18.6 GB)" in out
+    assert main(["cache", "clear", str(paths[0])]) == 0
+    assert "removed 1 cached run(s)" in capsys.readouterr().out
+    assert main(["cache", "info"]) == 0
+    out = capsys.readouterr().out
+    assert "1 cached run(s)" in out and "r1.nii.gz" in out and "r0.nii.gz" not in out
+
+
+def test_fit_on_a_damaged_cache_gives_the_same_numbers_and_says_so(tmp_path, capsys, monkeypatch):
+    """Issue 11 item 2, end to end: bytes flipped all through the cached rows of the demo
+    run do not change ``voxelscope fit`` (reference: the numbers of the first, clean run);
+    its warnings say the cache was damaged and rebuilt; exit 0."""
+    import json
+    import shutil
+
+    from voxelscope.core import cache
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
+    sample = Path(__file__).resolve().parents[2] / "sample_data"
+    for name in (
+        "sub-demo_task-tonetap_bold.nii.gz",
+        "sub-demo_task-tonetap_events.tsv",
+        "sub-demo_task-tonetap_bold.json",
+    ):
+        shutil.copy(sample / name, tmp_path / name)
+    run = tmp_path / "sub-demo_task-tonetap_bold.nii.gz"
+    argv = ["fit", str(run), "--voxel", "6", "23", "15", "--format", "json"]
+    assert main(argv) == 0
+    clean = json.loads(capsys.readouterr().out)
+    (rows,) = cache.default_cache_dir().glob("vxs-*.rows")
+    blob = bytearray(rows.read_bytes())
+    for at in range(0, len(blob), 997):
+        blob[at] ^= 0x41
+    rows.write_bytes(bytes(blob))
+    assert main(argv) == 0
+    again = json.loads(capsys.readouterr().out)
+    assert again["fits"] == clean["fits"]
+    said = [w for w in again["warnings"] if "is damaged" in w and "rebuilt" in w]
+    assert len(said) == 1

@@ -1,17 +1,23 @@
 """Tests of voxelscope.core.cache: the voxel-major cache of compressed runs.
 
-References: nibabel's reading of the same .nii.gz (``nibabel.load(...).get_fdata()``) for
-the served values; SHA-256 of the input bytes before/after for "never touches the input";
-the gzip format (RFC 1952) for the trailer CRC-32 that makes a rewritten file detectable;
-platformdirs' documented Linux rule (``$XDG_CACHE_HOME/<app>``) for the default location.
+Each test is named for the promise it protects. References: nibabel's reading of the same
+file (``nibabel.load(...).get_fdata()``) for every served value; SHA-256 of the input bytes
+before/after for "never touches the input"; the gzip format (RFC 1952: members, each with a
+CRC-32 and length trailer) for the multi-member cases, built with the standard library's
+``zlib``; platformdirs' documented Linux rule (``$XDG_CACHE_HOME/<app>``) for the default
+location; POSIX ``kill(pid, 0)`` for "the writing process is gone".
 """
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import io
 import os
+import signal
+import subprocess
 import sys
+import zlib
 from pathlib import Path
 
 import nibabel as nib
@@ -24,17 +30,23 @@ from voxelscope.core.cache import (
     cache_clear,
     cache_info,
     default_cache_dir,
+    parse_size,
     terminal_progress,
 )
+from voxelscope.core.errors import InputError
 from voxelscope.core.run import open_run
+
+ROOT = Path(__file__).resolve().parents[2]
 
 
 @pytest.fixture(autouse=True)
 def _private_cache(tmp_path, monkeypatch):
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg-cache"))
+    monkeypatch.delenv(cache.LIMIT_ENV, raising=False)
 
 
 def _write_gz(path: Path, seed: int, shape=(7, 6, 5, 11), slope=0.5, inter=3.0) -> np.ndarray:
+    """Random int16 everywhere (no background): every voxel varies."""
     rng = np.random.default_rng(seed)
     raw = rng.integers(-2000, 2000, shape).astype(np.int16)
     img = nib.Nifti1Image(raw, np.diag([2.0, 2.0, 2.5, 1.0]))
@@ -43,6 +55,27 @@ def _write_gz(path: Path, seed: int, shape=(7, 6, 5, 11), slope=0.5, inter=3.0) 
     img.header.set_xyzt_units("mm", "sec")
     nib.save(img, str(path))
     return raw.astype(np.float64) * slope + inter
+
+
+def _phantom(shape=(16, 14, 12, 20), seed=0, background=0.0) -> tuple[np.ndarray, np.ndarray]:
+    """A bright ellipsoid 'brain' in zeros (or in noise of the given level), float32."""
+    rng = np.random.default_rng(seed)
+    x, y, z, t = shape
+    g = np.meshgrid(*(np.linspace(-1, 1, n) for n in (x, y, z)), indexing="ij")
+    brain = (g[0] ** 2 + g[1] ** 2 + g[2] ** 2) < 0.6
+    data = rng.normal(0.0, 10.0, shape).astype(np.float32) + 800.0
+    data[~brain] = 0.0
+    if background:
+        data[~brain] = np.abs(rng.normal(0.0, background, (int((~brain).sum()), t)))
+    return data, brain
+
+
+def _save(path: Path, data: np.ndarray) -> Path:
+    img = nib.Nifti1Image(data, np.diag([3.0, 3.0, 3.0, 1.0]))
+    img.header.set_zooms((3.0, 3.0, 3.0, 2.0))
+    img.header.set_xyzt_units("mm", "sec")
+    nib.save(img, str(path))
+    return path
 
 
 def _sha(path: Path) -> str:
@@ -57,18 +90,90 @@ def _all_series(run) -> np.ndarray:
     return run.timeseries_many(np.arange(run.n_voxels))
 
 
+def _ref(path: Path) -> np.ndarray:
+    """nibabel's values, (X*Y*Z, T) in C-order voxel rows."""
+    data = nib.load(str(path)).get_fdata()
+    return data.reshape(-1, data.shape[3])
+
+
+def _entry(cdir: Path) -> tuple[Path, Path, Path]:
+    (meta,) = [p for p in cdir.iterdir() if p.name.endswith(".json")]
+    base = meta.name[: -len(".json")]
+    return cdir / f"{base}.rows", cdir / f"{base}.summary.npz", meta
+
+
+def _flip(path: Path, offset: int) -> None:
+    with open(path, "r+b") as f:
+        f.seek(offset)
+        b = f.read(1)
+        f.seek(offset)
+        f.write(bytes([b[0] ^ 0x5A]))
+
+
+# --------------------------------------------------------------------------- serving
+
+
 def test_served_data_equal_nibabel(tmp_path):
-    """The cache holds nibabel's scaled values (float32 precision), row = C-order voxel."""
+    """Every voxel (stored or not) equals nibabel's scaled value (float32 precision)."""
     path = tmp_path / "r_bold.nii.gz"
     _write_gz(path, 1)
-    ref = nib.load(str(path)).get_fdata()
     run = open_run(path, cache_dir=tmp_path / "c")
     assert run.storage == "cache" and run.cache_path.parent == tmp_path / "c"
-    stored = np.load(run.cache_path, mmap_mode="r")
-    assert stored.shape == (run.n_voxels, run.n_volumes) and stored.dtype == np.float32
-    np.testing.assert_allclose(stored, ref.reshape(-1, ref.shape[3]), rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    ref = nib.load(str(path)).get_fdata()
     for ijk in [(0, 0, 0), (6, 5, 4), (3, 1, 2)]:
         np.testing.assert_allclose(run.timeseries(ijk), ref[ijk], rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(run.volume(4), ref[..., 4], rtol=1e-6, atol=1e-5)
+
+
+def test_cache_keeps_brain_voxels_only(tmp_path):
+    """Issue 18: the rows hold the brain mask's voxels (<= 1.15x their float32 data, the
+    whole entry included); voxels outside that are zero are served as zeros, exactly."""
+    data, _brain = _phantom((24, 22, 20, 100))  # T = 100 as in the issue's example
+    path = _save(tmp_path / "p.nii.gz", data)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    mask = run.mask()
+    in_mask = int(mask.sum()) * run.n_volumes * 4
+    info = cache_info(tmp_path / "c")
+    assert len(info) == 1 and info.entries[0].stored_voxels >= mask.sum()
+    assert info.total_bytes <= 1.15 * in_mask, (info.total_bytes, in_mask)
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 100))
+    assert not any("read from the run file" in w for w in run.warnings)
+
+
+def test_outside_voxels_that_vary_are_read_from_the_file(tmp_path):
+    """Noise outside the brain is not cached, yet every such voxel is answered with the
+    file's own values (one pass), and a warning says it is slower."""
+    data, brain = _phantom((16, 14, 12, 20), background=20.0)
+    path = _save(tmp_path / "n.nii.gz", data)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert cache_info(tmp_path / "c").entries[0].stored_voxels < data[..., 0].size
+    outside = tuple(int(v) for v in np.argwhere(~brain)[0])
+    np.testing.assert_array_equal(run.timeseries(outside), data[outside])
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 20))
+    blocks = list(run.iter_blocks(np.ones(run.shape, bool), block_voxels=100))
+    got = np.zeros((run.n_voxels, 20), np.float32)
+    for idx, y in blocks:
+        got[idx] = y.T
+    np.testing.assert_array_equal(got, data.reshape(-1, 20))
+    np.testing.assert_array_equal(run.volume(7), data[..., 7])
+    assert sum("read from the run file" in w for w in run.warnings) == 1
+
+
+def test_first_volumes_unlike_the_rest_still_store_the_whole_mask(tmp_path, monkeypatch):
+    """The stored voxels are chosen from the first batch; a brain voxel dark there but
+    bright later is still stored (fetched in a second pass), so maps never go to the file."""
+    monkeypatch.setattr(cache, "BATCH_BYTES", 16 * 14 * 12 * 4)  # one volume per batch
+    data, brain = _phantom((16, 14, 12, 20))
+    late = (8, 7, 6)
+    assert brain[late]
+    data[late][:2] = 0.0  # dark in the first volumes only
+    path = _save(tmp_path / "late.nii.gz", data)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.mask()[late]
+    flat = np.ravel_multi_index(late, run.shape)
+    assert run._store._pos[flat] >= 0
+    np.testing.assert_array_equal(run.timeseries(late), data[late])
 
 
 def test_second_open_reuses_the_entry(tmp_path):
@@ -91,10 +196,27 @@ def test_batched_build_equals_nibabel(tmp_path, monkeypatch):
     _write_gz(path, 3)
     fractions = []
     run = open_run(path, cache_dir=tmp_path / "c", progress=fractions.append)
-    ref = nib.load(str(path)).get_fdata()
-    np.testing.assert_allclose(_all_series(run), ref.reshape(-1, 11), rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
     assert fractions[0] == 0.0 and fractions[-1] == 1.0 and len(fractions) == 12
     assert fractions == sorted(fractions)
+
+
+def test_pure_zlib_inflater_gives_the_same_entry(tmp_path, monkeypatch):
+    """The standard library's inflater (the fallback) and ISA-L's give identical rows, and
+    their CRC-32s agree (the same polynomial, RFC 1952)."""
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 31)
+    a = open_run(path, cache_dir=tmp_path / "a")
+    monkeypatch.setenv(cache.INFLATER_ENV, "zlib")
+    assert cache._zlib_module() is zlib
+    b = open_run(path, cache_dir=tmp_path / "b")
+    assert a.cache_path.read_bytes() == b.cache_path.read_bytes()
+    monkeypatch.delenv(cache.INFLATER_ENV)
+    blob = os.urandom(100_003)
+    assert cache._crc32(blob) == zlib.crc32(blob)
+
+
+# --------------------------------------------------------------------------- staleness
 
 
 def test_rewritten_file_is_never_served_stale(tmp_path):
@@ -107,13 +229,169 @@ def test_rewritten_file_is_never_served_stale(tmp_path):
     np.testing.assert_allclose(run.timeseries((1, 1, 1)), old[1, 1, 1], rtol=1e-6)
     new = _write_gz(path, 5)
     os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
-    assert path.stat().st_mtime_ns == st.st_mtime_ns
     run2 = open_run(path, cache_dir=tmp_path / "c")
-    assert run2.cache_path != run.cache_path
     np.testing.assert_allclose(run2.timeseries((1, 1, 1)), new[1, 1, 1], rtol=1e-6)
     assert not np.allclose(new[1, 1, 1], old[1, 1, 1])
-    entries = cache_info(tmp_path / "c").entries
-    assert len(entries) == 1 and entries[0].data_path == run2.cache_path
+    assert len(cache_info(tmp_path / "c")) == 1
+
+
+def _multi_member(path: Path, raw: bytes, member_bytes: int) -> None:
+    """A concatenated gzip file (RFC 1952 members), stored blocks (level 0): the size
+    does not depend on the content, so an edit keeps the file size."""
+    with open(path, "wb") as f:
+        for a in range(0, len(raw), member_bytes):
+            c = zlib.compressobj(0, zlib.DEFLATED, 31)
+            f.write(c.compress(raw[a : a + member_bytes]) + c.flush())
+
+
+def test_multi_member_gzip_changed_in_an_early_member_is_not_served_stale(tmp_path):
+    """Issue 11 item 3: same size, same mtime, same header, same last member; only a voxel
+    in the first member changed. The recorded member CRCs catch it."""
+    data, _ = _phantom((12, 10, 8, 16))
+    img = nib.Nifti1Image(data, np.eye(4))
+    img.header.set_zooms((3.0, 3.0, 3.0, 2.0))
+    raw = bytearray(img.to_bytes())
+    path = tmp_path / "multi.nii.gz"
+    _multi_member(path, bytes(raw), 4096)
+    st = path.stat()
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 16))
+    flat_f = int(np.flatnonzero(run.mask().ravel(order="F"))[0])  # first brain voxel on disk
+    ijk = np.unravel_index(flat_f, run.shape, order="F")
+    at = 352 + 4 * flat_f  # NIfTI-1 single file: data at byte 352 (the standard), volume 0
+    assert at + 4 <= 4096  # inside the first member
+    raw[at : at + 4] = np.float32(12345.0).tobytes()
+    _multi_member(path, bytes(raw), 4096)
+    os.utime(path, ns=(st.st_atime_ns, st.st_mtime_ns))
+    assert path.stat().st_size == st.st_size and path.stat().st_mtime_ns == st.st_mtime_ns
+    assert cache.cache_key(run._store.layout) == run.cache_path.name[4:-5]  # same old key
+    again = open_run(path, cache_dir=tmp_path / "c")
+    assert again.timeseries(tuple(int(v) for v in ijk))[0] == 12345.0
+
+
+def test_damaged_gzip_member_is_an_input_error(tmp_path):
+    """A wrong CRC-32 in a member's trailer (RFC 1952) is refused with one line."""
+    data, _ = _phantom((8, 8, 6, 5))
+    path = tmp_path / "bad.nii.gz"
+    _multi_member(path, nib.Nifti1Image(data, np.eye(4)).to_bytes(), 2048)
+    raw = bytearray(path.read_bytes())
+    raw[-8] ^= 0xFF  # the last member's CRC
+    path.write_bytes(bytes(raw))
+    with pytest.raises(InputError, match="truncated or corrupt"):
+        open_run(path, tr=2.0, cache_dir=tmp_path / "c")
+    assert not [p for p in (tmp_path / "c").glob("*") if not p.name.startswith(".")]
+
+
+# --------------------------------------------------------------------------- integrity
+
+
+def test_flipped_byte_in_cached_rows_is_caught_and_rebuilt(tmp_path):
+    """Issue 11 item 2: a flipped byte inside the cached array never reaches a fit; the
+    block's CRC-32 fails on first read, the entry is rebuilt and one warning says so."""
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 40)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, _ = _entry(tmp_path / "c")
+    _flip(rows, rows.stat().st_size // 2)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    said = [w for w in run.warnings if "is damaged" in w and "rebuilt" in w]
+    assert len(said) == 1
+    fresh = open_run(path, cache_dir=tmp_path / "c")  # the rebuilt entry is good
+    np.testing.assert_allclose(_all_series(fresh), _ref(path), rtol=1e-6, atol=1e-5)
+    assert not any("is damaged" in w for w in fresh.warnings)
+
+
+def test_flipped_byte_caught_in_map_blocks_too(tmp_path):
+    """The views handed to whole-volume passes are checked before they are handed out."""
+    data, _ = _phantom((16, 14, 12, 20))
+    path = _save(tmp_path / "p.nii.gz", data)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, _ = _entry(tmp_path / "c")
+    _flip(rows, 17)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    got = np.zeros((run.n_voxels, 20), np.float32)
+    for idx, y in run.iter_blocks(block_voxels=64):
+        got[idx] = y.T
+    m = run.mask().ravel()
+    np.testing.assert_array_equal(got[m], data.reshape(-1, 20)[m])
+    assert sum("is damaged" in w for w in run.warnings) == 1
+
+
+@pytest.mark.parametrize("cut", [0, 100, -4])
+def test_truncated_rows_file_is_rebuilt(tmp_path, cut):
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 41)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, _ = _entry(tmp_path / "c")
+    blob = rows.read_bytes()
+    rows.write_bytes(blob[:cut])
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert sum("is damaged" in w for w in run.warnings) == 1
+
+
+@pytest.mark.parametrize("how", ["flip", "truncate", "empty", "garbage"])
+def test_damaged_summary_is_rebuilt_not_a_crash(tmp_path, how):
+    """Issue 11 item 6: a corrupt or truncated summary file is rebuilt with one warning
+    (every later open works, no 'cache clear' needed)."""
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 42)
+    open_run(path, cache_dir=tmp_path / "c")
+    _, summary, _ = _entry(tmp_path / "c")
+    blob = summary.read_bytes()
+    if how == "flip":
+        _flip(summary, len(blob) // 2)
+    elif how == "truncate":
+        summary.write_bytes(blob[: len(blob) // 3])
+    elif how == "empty":
+        summary.write_bytes(b"")
+    else:
+        summary.write_bytes(os.urandom(len(blob)))
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.storage == "cache"
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert sum("is damaged" in w for w in run.warnings) == 1
+    assert not any("is damaged" in w for w in open_run(path, cache_dir=tmp_path / "c").warnings)
+
+
+@pytest.mark.parametrize(
+    "field,value",
+    [("rows_shape", [10, 11]), ("block_rows", 1), ("summary_sha256", "0" * 64), ("x", 1)],
+)
+def test_tampered_metadata_is_detected(tmp_path, field, value):
+    """The metadata decides how the rows are read (shape, type, blocks): any change to it
+    (the analogue of a changed ``fortran_order`` in an array header) fails its SHA-256."""
+    import json
+
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 43)
+    open_run(path, cache_dir=tmp_path / "c")
+    _, _, meta = _entry(tmp_path / "c")
+    m = json.loads(meta.read_text())
+    m[field] = value
+    meta.write_text(json.dumps(m))
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert sum("is damaged" in w for w in run.warnings) == 1
+
+
+def test_rows_file_header_bytes_cannot_change_the_layout(tmp_path):
+    """The rows file has no header of its own: writing an array header over its first
+    bytes (e.g. one saying Fortran order) only damages a block, which the CRC catches."""
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 44)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, _ = _entry(tmp_path / "c")
+    fake = b"\x93NUMPY\x01\x00v\x00{'descr': '<f4', 'fortran_order': True, 'shape': (210, 11), }"
+    with open(rows, "r+b") as f:
+        f.write(fake)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert sum("is damaged" in w for w in run.warnings) == 1
+
+
+# --------------------------------------------------------------------------- failures
 
 
 def test_input_bytes_unchanged(tmp_path):
@@ -134,7 +412,7 @@ def test_cancel_midway_leaves_nothing(tmp_path, monkeypatch):
     next open builds a correct entry."""
     monkeypatch.setattr(cache, "BATCH_BYTES", 7 * 6 * 5 * 4 * 2)
     path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 7)
+    _write_gz(path, 7)
 
     def stop_half(fraction):
         return fraction < 0.5
@@ -145,7 +423,7 @@ def test_cancel_midway_leaves_nothing(tmp_path, monkeypatch):
     with pytest.raises(Cancelled):
         open_run(path, use_cache=False, progress=stop_half)
     run = open_run(path, cache_dir=tmp_path / "c")
-    np.testing.assert_allclose(_all_series(run), ref.reshape(-1, 11), rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
 
 
 def test_exception_midway_leaves_nothing(tmp_path, monkeypatch):
@@ -163,43 +441,27 @@ def test_exception_midway_leaves_nothing(tmp_path, monkeypatch):
 
 
 def test_half_written_entry_is_not_used(tmp_path):
-    """An entry without its metadata (a build killed before the end), or with bad
-    metadata or a wrong-size array, is rebuilt, not served."""
+    """An entry without its metadata (a build killed before the end) is rebuilt, not
+    served, and needs no warning: it was never complete."""
     path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 9).reshape(-1, 11)
-    run = open_run(path, cache_dir=tmp_path / "c")
-    npy = run.cache_path
-    meta = npy.with_name(npy.name[: -len(".npy")] + ".json")
-    assert meta.exists()
-    del run
-    # 1) metadata missing, array garbage
+    _write_gz(path, 9)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, meta = _entry(tmp_path / "c")
     meta.unlink()
-    garbage = np.lib.format.open_memmap(npy, mode="r+")
-    garbage[:] = -1.0
-    garbage.flush()
-    del garbage
+    rows.write_bytes(b"\xff" * rows.stat().st_size)
     run = open_run(path, cache_dir=tmp_path / "c")
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
-    del run
-    # 2) metadata that is not JSON
-    meta.write_text("{half")
-    run = open_run(path, cache_dir=tmp_path / "c")
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
-    del run
-    # 3) array cut short
-    npy.write_bytes(npy.read_bytes()[:200])
-    run = open_run(path, cache_dir=tmp_path / "c")
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert not any("is damaged" in w for w in run.warnings)
 
 
 def test_use_cache_false_writes_nothing(tmp_path):
     path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 10).reshape(-1, 11)
+    _write_gz(path, 10)
     run = open_run(path, use_cache=False, cache_dir=tmp_path / "c")
     assert run.storage == "memory" and run.cache_path is None
     assert not (tmp_path / "c").exists()
     assert not (tmp_path / "xdg-cache").exists()
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
 
 
 def test_default_location_honours_xdg_cache_home(tmp_path, monkeypatch):
@@ -218,11 +480,266 @@ def test_unwritable_cache_falls_back_to_memory(tmp_path):
     blocker = tmp_path / "a_file"
     blocker.write_text("not a directory")
     path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 12).reshape(-1, 11)
+    _write_gz(path, 12)
     run = open_run(path, cache_dir=blocker / "sub")
     assert run.storage == "memory"
-    assert any("cache" in w and "memory" in w for w in run.warnings)
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
+    assert sum("cache" in w and "memory" in w for w in run.warnings) == 1
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+
+
+def _read_only(folder: Path, monkeypatch) -> None:
+    """Make a folder read-only; as root (who writes anyway) refuse its writes instead."""
+    folder.chmod(0o555)
+    if os.access(folder, os.W_OK):
+        real = cache.tempfile.mkstemp
+
+        def refuse(*args, dir=None, **kw):
+            if dir is not None and Path(dir) == folder:
+                raise PermissionError(errno.EACCES, "Permission denied", str(folder))
+            return real(*args, dir=dir, **kw)
+
+        monkeypatch.setattr(cache.tempfile, "mkstemp", refuse)
+
+
+def test_read_only_cache_folder_below_the_top_falls_back_to_memory(tmp_path, monkeypatch):
+    """Issue 11 item 6: an existing, read-only cache folder: no crash, one warning, the run
+    in memory; an entry already there is still served from it."""
+    cdir = tmp_path / "top" / "runs"
+    cdir.mkdir(parents=True)
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 13)
+    other = tmp_path / "o.nii.gz"
+    _write_gz(other, 14)
+    open_run(other, cache_dir=cdir)
+    _read_only(cdir, monkeypatch)
+    try:
+        run = open_run(path, cache_dir=cdir)
+        assert run.storage == "memory"
+        assert sum("cannot write the cache" in w for w in run.warnings) == 1
+        np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+        served = open_run(other, cache_dir=cdir)
+        assert served.storage == "cache" and not served.warnings
+    finally:
+        cdir.chmod(0o755)
+
+
+@pytest.fixture
+def tiny_fs(tmp_path):
+    """A 200 KB tmpfs where the machine allows it (root), else None."""
+    mnt = tmp_path / "tiny"
+    mnt.mkdir()
+    ok = (
+        sys.platform.startswith("linux")
+        and os.geteuid() == 0
+        and subprocess.run(
+            ["mount", "-t", "tmpfs", "-o", "size=200k", "tmpfs", str(mnt)], capture_output=True
+        ).returncode
+        == 0
+    )
+    yield mnt if ok else None
+    if ok:
+        subprocess.run(["umount", str(mnt)], capture_output=True)
+
+
+def test_disk_full_during_the_build_falls_back_to_memory(tmp_path, monkeypatch, tiny_fs):
+    """Issue 11 item 6: the disk fills while the cache is written: one warning, the run in
+    memory, nothing left behind. On a real 200 KB file system where the machine allows it
+    (the free-space check is told there is room, so the write itself fails), else with
+    ENOSPC injected into the space reservation."""
+    data, _ = _phantom((30, 28, 24, 40))  # about 1 MB of brain rows
+    path = _save(tmp_path / "big.nii.gz", data)
+    if tiny_fs is not None:
+        cdir = tiny_fs / "runs"
+        real = cache.shutil.disk_usage
+        monkeypatch.setattr(cache.shutil, "disk_usage", lambda p: real(p)._replace(free=10**12))
+    else:
+        cdir = tmp_path / "c"
+
+        def full(fd, offset, length):
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        monkeypatch.setattr(cache.os, "posix_fallocate", full)
+    run = open_run(path, cache_dir=cdir)
+    assert run.storage == "memory"
+    assert sum("cannot write the cache" in w for w in run.warnings) == 1
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 40))
+    assert [p.name for p in cdir.iterdir()] == []
+
+
+def test_disk_full_while_writing_the_summary(tmp_path, monkeypatch):
+    """ENOSPC injected at the last writes (summary, metadata): memory, one warning, no
+    file left, and the next open builds normally."""
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 15)
+    real = cache._write_bytes_atomic
+
+    def full(p, data):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(cache, "_write_bytes_atomic", full)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.storage == "memory" and sum("No space" in w for w in run.warnings) == 1
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    assert _files(tmp_path / "c") == []
+    monkeypatch.setattr(cache, "_write_bytes_atomic", real)
+    assert open_run(path, cache_dir=tmp_path / "c").storage == "cache"
+
+
+def test_too_little_disk_space_falls_back_to_memory(tmp_path, monkeypatch):
+    real = cache.shutil.disk_usage
+    monkeypatch.setattr(cache.shutil, "disk_usage", lambda p: real(p)._replace(free=1000))
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 16)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.storage == "memory"
+    assert sum("MB are free" in w and str(tmp_path / "c") in w for w in run.warnings) == 1
+    assert _files(tmp_path / "c") == []
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+
+
+_KILLED_CHILD = """
+import os, signal, sys
+from voxelscope.core import cache
+from voxelscope.core.run import open_run
+cache.BATCH_BYTES = 30 * 28 * 24 * 4  # one volume per batch
+
+def die(fraction):
+    if fraction >= 0.5:
+        os.kill(os.getpid(), signal.SIGKILL)
+
+open_run(sys.argv[1], cache_dir=sys.argv[2], progress=die)
+"""
+
+
+def test_killed_build_leaves_temporaries_that_the_next_open_removes(tmp_path):
+    """Issue 11 item 6: a build killed outright (SIGKILL half way) leaves its full-size
+    temporaries; the next open sees their process is gone and removes them."""
+    data, _ = _phantom((30, 28, 24, 40))
+    path = _save(tmp_path / "k.nii.gz", data)
+    cdir = tmp_path / "c"
+    env = dict(os.environ, PYTHONPATH=str(ROOT))
+    proc = subprocess.run(
+        [sys.executable, "-c", _KILLED_CHILD, str(path), str(cdir)], env=env, capture_output=True
+    )
+    assert proc.returncode == -signal.SIGKILL, proc.stderr.decode()[-500:]
+    left = [p for p in cdir.iterdir() if p.name.endswith(".tmp")]
+    assert left and max(p.stat().st_size for p in left) > 100_000
+    run = open_run(path, cache_dir=cdir)
+    assert not [p for p in cdir.iterdir() if p.name.endswith(".tmp")]
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 40))
+    info = cache_info(cdir)
+    assert info.total_bytes == sum(p.stat().st_size for p in cdir.iterdir())
+
+
+def test_temporaries_of_a_running_build_are_kept(tmp_path):
+    """A temporary whose writer is alive (another process) is not touched; one whose
+    writer is gone is removed; one older than a day is removed whoever wrote it."""
+    cdir = tmp_path / "c"
+    cdir.mkdir()
+    sleeper = subprocess.Popen([sys.executable, "-c", "import time; time.sleep(60)"])
+    try:
+        host = cache._HOST
+        alive = cdir / f".vxs-{'a' * 32}.rows.{host}.{sleeper.pid}.x1.tmp"
+        dead_pid = subprocess.run(
+            [sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True
+        ).stdout.strip()
+        gone = cdir / f".vxs-{'b' * 32}.rows.{host}.{dead_pid}.x2.tmp"
+        old = cdir / f".vxs-{'c' * 32}.rows.otherhost.1.x3.tmp"
+        for p in (alive, gone, old):
+            p.write_bytes(b"\0" * 100)
+        os.utime(old, (1e9, 1e9))
+        path = tmp_path / "r.nii.gz"
+        _write_gz(path, 17)
+        open_run(path, cache_dir=cdir)
+        assert alive.exists() and not gone.exists() and not old.exists()
+    finally:
+        sleeper.kill()
+        sleeper.wait()
+
+
+# --------------------------------------------------------------------------- size limit
+
+
+def _entry_bytes(tmp_path) -> int:
+    probe = tmp_path / "probe.nii.gz"
+    _write_gz(probe, 99)
+    open_run(probe, cache_dir=tmp_path / "probe")
+    return cache_info(tmp_path / "probe").total_bytes
+
+
+def test_lru_eviction_keeps_the_cache_under_its_limit(tmp_path, monkeypatch):
+    """Issue 18: with room for two entries, a third evicts the least recently used one
+    (last use = last open, not creation), said in one line."""
+    size = _entry_bytes(tmp_path)
+    monkeypatch.setenv(cache.LIMIT_ENV, str(int(2.5 * size)))
+    cdir = tmp_path / "c"
+    runs = [tmp_path / f"r{i}.nii.gz" for i in range(3)]
+    for i, p in enumerate(runs):
+        _write_gz(p, 50 + i)
+    open_run(runs[0], cache_dir=cdir)
+    open_run(runs[1], cache_dir=cdir)
+    for e in cache_info(cdir):  # r0 created first but used last
+        if e.source.endswith("r0.nii.gz"):
+            os.utime(e.data_path.with_suffix(".json"), (2e9, 2e9))
+        else:
+            os.utime(e.data_path.with_suffix(".json"), (1.5e9, 1.5e9))
+    run = open_run(runs[2], cache_dir=cdir)
+    assert [w for w in run.warnings if "least recently used" in w] == [
+        w for w in run.warnings if "removed 1 least recently used" in w
+    ] and len(run.warnings) == 1
+    left = {Path(e.source).name for e in cache_info(cdir)}
+    assert left == {"r0.nii.gz", "r2.nii.gz"}
+    assert cache_info(cdir).total_bytes <= 2.5 * size
+
+
+def test_run_bigger_than_the_limit_is_not_cached(tmp_path, monkeypatch):
+    """A run whose entry alone exceeds the limit is refused from the cache with one line
+    and held in memory; nothing is written (issue 11 item 8)."""
+    monkeypatch.setenv(cache.LIMIT_ENV, "1KB")
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 18)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.storage == "memory"
+    assert sum("more than the cache limit" in w for w in run.warnings) == 1
+    assert _files(tmp_path / "c") == []
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+
+
+def test_big_cache_is_announced_before_it_is_written(tmp_path, monkeypatch):
+    """Issue 11 item 8: one line with the size, said before any cache file exists."""
+    monkeypatch.setattr(cache, "ANNOUNCE_BYTES", 1)
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 19)
+    cdir = tmp_path / "c"
+    said = []
+
+    def notify(line):
+        said.append((line, _files(cdir)))
+
+    run = open_run(path, cache_dir=cdir, notify=notify)
+    assert len(said) == 1
+    line, files_then = said[0]
+    assert "writing a" in line and "MB cache" in line and files_then == []
+    assert run.storage == "cache" and not run.warnings
+
+
+def test_bad_limit_variable_is_one_clear_line(tmp_path, monkeypatch):
+    monkeypatch.setenv(cache.LIMIT_ENV, "lots")
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 20)
+    with pytest.raises(InputError, match="VOXELSCOPE_CACHE_LIMIT='lots' is not a size"):
+        open_run(path, cache_dir=tmp_path / "c")
+
+
+def test_parse_size():
+    assert parse_size("20GB") == 20 * 10**9 and parse_size("2GiB") == 2 * 2**30
+    assert parse_size("1.5t") == 1.5e12 and parse_size(" 500 mb ") == 5 * 10**8
+    for bad in ("", "GB", "-1GB", "1XB", "inf", "nan"):
+        with pytest.raises(ValueError):
+            parse_size(bad)
+
+
+# --------------------------------------------------------------------------- listing
 
 
 def test_cache_info_and_clear(tmp_path):
@@ -236,8 +753,7 @@ def test_cache_info_and_clear(tmp_path):
     assert {Path(e.source).name for e in info} == {"r0.nii.gz", "r1.nii.gz"}
     ours = [p for p in cdir.iterdir() if p.name.startswith("vxs-")]
     assert info.total_bytes == sum(p.stat().st_size for p in ours)
-    assert all(not e.stale and e.shape == (7, 6, 5, 11) for e in info)
-    # a stale entry: its source is deleted
+    assert all(not e.stale and e.shape == (7, 6, 5, 11) and e.last_used > 0 for e in info)
     (tmp_path / "r0.nii.gz").unlink()
     stale = cache_clear(cdir, stale_only=True)
     assert [Path(e.source).name for e in stale] == ["r0.nii.gz"]
@@ -246,6 +762,19 @@ def test_cache_info_and_clear(tmp_path):
     assert len(removed) == 1 and removed.total_bytes > 0
     assert _files(cdir) == ["someone_elses.txt"]
     assert cache_info(cdir).total_bytes == 0
+
+
+def test_cache_clear_one_run(tmp_path):
+    """Issue 18: clearing one run removes its entry only (the path may be relative)."""
+    cdir = tmp_path / "c"
+    for i in range(2):
+        _write_gz(tmp_path / f"r{i}.nii.gz", 60 + i)
+        open_run(tmp_path / f"r{i}.nii.gz", cache_dir=cdir)
+    os.chdir(tmp_path)
+    removed = cache_clear(cdir, source="r1.nii.gz")
+    assert [Path(e.source).name for e in removed] == ["r1.nii.gz"]
+    assert [Path(e.source).name for e in cache_info(cdir)] == ["r0.nii.gz"]
+    assert len(cache_clear(cdir, source="nothing.nii.gz")) == 0
 
 
 def test_cache_info_of_missing_directory(tmp_path):
@@ -271,43 +800,3 @@ def test_terminal_progress():
     cb2 = terminal_progress(stream=quiet)
     cb2(1.0)  # a run that was ready at once draws nothing
     assert quiet.getvalue() == ""
-
-
-def test_leftover_temp_files_from_a_killed_build(tmp_path):
-    """A build killed outright leaves only temporary names: never read as an entry,
-    counted by cache_info and removed by cache_clear."""
-    cdir = tmp_path / "c"
-    cdir.mkdir()
-    leftover = cdir / ".vxs-0123456789abcdef0123456789abcdef.npy.x1y2.tmp"
-    leftover.write_bytes(b"\0" * 1000)
-    path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 13).reshape(-1, 11)
-    run = open_run(path, cache_dir=cdir)
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)
-    info = cache_info(cdir)
-    assert len(info) == 1
-    assert info.total_bytes == sum(p.stat().st_size for p in cdir.iterdir())
-    removed = cache_clear(cdir)
-    assert removed.total_bytes == info.total_bytes
-    assert _files(cdir) == []
-
-
-def test_too_little_disk_space_falls_back_to_memory(tmp_path, monkeypatch):
-    """Not enough free space for the cache: said in one line, run held in memory instead,
-    and nothing is left in the cache directory."""
-    import shutil as _shutil
-
-    real = _shutil.disk_usage
-
-    def tiny(path):
-        u = real(path)
-        return type(u)(u.total, u.used, 1000)
-
-    monkeypatch.setattr(cache.shutil, "disk_usage", tiny)
-    path = tmp_path / "r.nii.gz"
-    ref = _write_gz(path, 14).reshape(-1, 11)
-    run = open_run(path, cache_dir=tmp_path / "c")
-    assert run.storage == "memory"
-    assert any("MB are free" in w and str(tmp_path / "c") in w for w in run.warnings)
-    assert _files(tmp_path / "c") == []
-    np.testing.assert_allclose(_all_series(run), ref, rtol=1e-6, atol=1e-5)

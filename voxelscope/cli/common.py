@@ -264,7 +264,11 @@ def analysis_from_args(
     request = request_from_args(args, summarize=summarize)
     if int(args.fir_bins) < 1:
         raise InputError("--fir-bins must be at least 1")
-    got = load_inputs(request, progress=terminal_progress() if progress else None)
+    got = load_inputs(
+        request,
+        progress=terminal_progress() if progress else None,
+        notify=lambda line: print(f"voxelscope: {line}", file=sys.stderr, flush=True),
+    )
     settings = ModelSettings(
         kernels=tuple(getattr(args, "kernels", DEFAULT_KERNELS)),
         contrast=args.contrast,

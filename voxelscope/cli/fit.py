@@ -136,6 +136,7 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
         for f in fits.fits:
             c = voxel_checks(loaded.analysis, loaded.settings, f.kernel, y, run=run, ijk=ijk)
             checks_by_kernel[f.kernel] = c.to_json()
+    warnings += list(run.warnings)  # what the run said while read (a rebuilt cache)
     mm = [float(v) for v in np.asarray(run.voxel_to_mm(ijk)).reshape(-1)]
     doc = {
         "voxel": list(ijk),

@@ -192,7 +192,7 @@ def run_map(args: argparse.Namespace) -> int:
     data = result.stat(args.stat)
     desc = f"voxelscope {args.stat} {args.kernel} {result.contrast} df={result.df}"
     write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc)
-    print_warnings(warnings)
+    print_warnings(warnings + list(run.warnings))  # + what the run said while read
     print(f"wrote {out}: {args.stat} map, {result.describe()}")
 
     if args.clusters:

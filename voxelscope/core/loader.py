@@ -323,6 +323,7 @@ def _apply_mask(run, path: Path, warnings: list[str]) -> None:
 def load_inputs(
     request: InputRequest,
     progress: Callable[[float], bool | None] | None = None,
+    notify: Callable[[str], None] | None = None,
 ) -> Inputs:
     """Resolve, check, open and model one run: the one way in for every front end.
 
@@ -332,6 +333,9 @@ def load_inputs(
     progress : callable, optional
         ``progress(fraction) -> bool | None`` while a compressed run is decompressed;
         False cancels.
+    notify : callable, optional
+        Called at once with a line the user should see before a long step (a big cache
+        announced before it is written); without it the line joins the warnings.
 
     Returns
     -------
@@ -363,6 +367,7 @@ def load_inputs(
         use_cache=request.use_cache,
         progress=progress,
         sidecars=resolved.companions.sidecars,
+        notify=notify,
     )
     mask_source = "intensity"
     mask_notes: list[str] = []

@@ -9,10 +9,15 @@ and returns a :class:`Run`. Voxel data are served from one of three stores:
     block (:meth:`Run.iter_blocks`), or slab by slab in C order (:meth:`Run.iter_chunks`).
 ``"cache"``
     A compressed run is decompressed once into the voxel-major cache
-    (:mod:`voxelscope.core.cache`); a time series is then one contiguous row.
+    (:mod:`voxelscope.core.cache`), which keeps the brain voxels; a time series is then
+    one contiguous row. Voxels outside that never change are served exactly; any other
+    voxel is read from the file.
 ``"memory"``
-    A compressed run opened with ``use_cache=False`` is decompressed into memory in the
-    same voxel-major float32 layout.
+    A compressed run opened with ``use_cache=False`` (or whose cache cannot be written)
+    is decompressed into memory in the same voxel-major float32 layout.
+``"file"``
+    A compressed run too big for the cache and for memory: voxels are read from the file
+    on demand (slow, said in a warning).
 
 All values are scaled (``scl_slope`` / ``scl_inter`` applied, as nibabel does).
 
@@ -93,53 +98,6 @@ _TIME_FACTORS = {"sec": 1.0, "unknown": 1.0, "msec": 1e-3, "usec": 1e-6}
 
 
 # --------------------------------------------------------------------------- stores
-
-
-class _VoxelMajor:
-    """(X*Y*Z, T) float32 rows: the cache memmap or an in-memory array."""
-
-    def __init__(self, data: np.ndarray, shape: tuple[int, int, int]):
-        self.data = data
-        self.shape = shape
-
-    def row(self, flat: int) -> np.ndarray:
-        return np.array(self.data[flat], dtype=np.float64)
-
-    def rows(self, flat_idx: np.ndarray) -> np.ndarray:
-        if flat_idx.size == 0:
-            return np.empty((0, self.data.shape[1]), dtype=np.float32)
-        order = np.argsort(flat_idx, kind="stable")
-        out = np.empty((flat_idx.size, self.data.shape[1]), dtype=np.float32)
-        out[order] = self.data[flat_idx[order]]
-        return out
-
-    def chunks(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        for a in range(0, flat.size, chunk):
-            idx = flat[a : a + chunk]
-            lo, hi = int(idx[0]), int(idx[-1]) + 1
-            if hi - lo <= 2 * idx.size + 256:  # dense: one contiguous read, then pick
-                block = np.asarray(self.data[lo:hi])
-                yield idx, np.ascontiguousarray(block[idx - lo])
-            else:
-                yield idx, np.asarray(self.data[idx])
-
-    def blocks(self, flat: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        """(T, n) blocks: ``rows.T`` of the stored rows, a read-only view where the block's
-        voxels are consecutive rows, else a copy of the selected rows (F order either way)."""
-        for a in range(0, flat.size, block):
-            idx = flat[a : a + block]
-            lo, hi = int(idx[0]), int(idx[-1]) + 1
-            if hi - lo == idx.size:
-                rows = self.data[lo:hi].view(np.ndarray)
-                rows.flags.writeable = False  # a view of the run itself
-            elif hi - lo <= 2 * idx.size + 256:
-                rows = self.data[lo:hi][idx - lo]
-            else:
-                rows = self.data[idx]
-            yield idx, rows.T
-
-    def volume(self, t: int) -> np.ndarray:
-        return np.array(self.data[:, t], dtype=np.float32).reshape(self.shape)
 
 
 class _RawMemmap:
@@ -301,7 +259,7 @@ class Run:
     header : nibabel header
         A 3D float32 copy of the run's header, for writing maps on the run's grid.
     storage : str
-        ``"memmap"``, ``"cache"`` or ``"memory"``.
+        ``"memmap"``, ``"cache"``, ``"memory"`` or ``"file"``.
     affine_source : str
         ``"sform"``, ``"qform"`` or ``"pixdim"``.
     sidecar : Path or None
@@ -610,11 +568,8 @@ class Run:
                 mask.flags.writeable = False
                 self._mask = mask
             if self._mask is None:
-                s = self.summary()
-                valid = ~s.nonfinite & ~s.constant
-                mask = brain_mask(self.mean_image(), valid)
-                if not mask.any() and valid.any():
-                    mask = valid.copy()
+                mask, fallback = _summary_mask(self.summary())
+                if fallback:
                     self.warnings.append(
                         f"{self.path}: no voxel is bright enough for an intensity mask; "
                         f"using every voxel that varies over time"
@@ -622,6 +577,27 @@ class Run:
                 mask.flags.writeable = False
                 self._mask = mask
             return self._mask
+
+
+def _summary_mask(s: _cache.Summary) -> tuple[np.ndarray, bool]:
+    """The run's brain mask from its summary (the one rule, used by :meth:`Run.mask` and by
+    the cache to decide which voxels it must keep), and whether the fallback was used."""
+    valid = ~s.nonfinite & ~s.constant
+    mask = brain_mask(s.mean, valid)
+    if not mask.any() and valid.any():
+        return valid.copy(), True
+    return mask, False
+
+
+def _cache_selection(s: _cache.Summary) -> np.ndarray:
+    """Voxels the cache stores, chosen from the first volumes: the brain-mask rule with a
+    margin (a lower intensity fraction, every component), so that the mask of the whole
+    run almost always lies inside it (the cache fetches any voxel it missed)."""
+    return brain_mask(s.mean, ~s.nonfinite, fraction=0.75 * MASK_FRACTION, largest_component=False)
+
+
+def _run_mask_of(s: _cache.Summary) -> np.ndarray:
+    return _summary_mask(s)[0]
 
 
 # --------------------------------------------------------------------------- mask
@@ -952,6 +928,7 @@ def open_run(
     progress: Callable[[float], bool | None] | None = None,
     cache_dir: str | os.PathLike[str] | None = None,
     sidecars: Sequence[str | os.PathLike[str]] | None = None,
+    notify: Callable[[str], None] | None = None,
 ) -> Run:
     """Open a 4D NIfTI run for fast voxel access.
 
@@ -973,6 +950,9 @@ def open_run(
         The JSON sidecars that apply to the run, farthest first and the run's own last
         (BIDS inheritance; :func:`voxelscope.core.companions.find_companions`). Default:
         the companions found for the run.
+    notify : callable, optional
+        Called with a line to show at once (a big cache announced before it is written);
+        without it the line joins :attr:`Run.warnings`.
 
     Returns
     -------
@@ -1052,24 +1032,18 @@ def open_run(
         if progress is not None:
             progress(1.0)  # nothing to prepare: the file is mapped as it lies
     else:
-        data = None
-        if use_cache:
-            try:
-                data, summary, cache_path = _cache.open_or_build(layout, cache_dir, progress)
-                storage = "cache"
-            except _cache.CacheUnavailable as err:
-                notes.append(f"{err}; the run is held in memory instead")
-        if data is None:
-            try:
-                data = np.empty((x * y * z, t), dtype=np.float32)
-            except MemoryError:
-                raise InputError(
-                    f"{path}: not enough memory to decompress the run "
-                    f"({x * y * z * t * 4 / 1e9:.1f} GB); open it with the cache"
-                ) from None
-            summary = _cache.build_voxel_major(layout, data, progress)
-            storage = "memory"
-        store = _VoxelMajor(data, (x, y, z))
+        opened = _cache.open_store(
+            layout,
+            _cache_selection,
+            _run_mask_of,
+            use_cache=use_cache,
+            cache_dir=cache_dir,
+            progress=progress,
+            notify=notify,
+        )
+        store, summary = opened.store, opened.summary
+        storage, cache_path = opened.storage, opened.cache_path
+        notes.extend(opened.notes)
 
     affine = np.array(affine, dtype=np.float64)
     run = Run(
@@ -1096,4 +1070,6 @@ def open_run(
     )
     if summary is not None:
         run._note_summary()
+    if isinstance(store, _cache.VoxelStore):
+        store.notes = run.warnings  # later notes (a failed checksum, file reads) join them
     return run
