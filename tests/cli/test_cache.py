@@ -6,9 +6,17 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+import pytest
 
 from voxelscope.cli import main
 from voxelscope.core.run import open_run
+
+
+@pytest.fixture(autouse=True)
+def _own_cache(tmp_path, monkeypatch):
+    """A cache folder of this test's own (the shared one holds other tests' entries)."""
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "own-cache"))
+    monkeypatch.delenv("VOXELSCOPE_CACHE_LIMIT", raising=False)
 
 
 def test_cache_info_and_clear(tmp_path, capsys):
@@ -54,7 +62,6 @@ def test_fit_on_a_damaged_cache_gives_the_same_numbers_and_says_so(tmp_path, cap
 
     from voxelscope.core import cache
 
-    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "xdg"))
     sample = Path(__file__).resolve().parents[2] / "sample_data"
     for name in (
         "sub-demo_task-tonetap_bold.nii.gz",
