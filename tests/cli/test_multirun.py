@@ -181,3 +181,20 @@ def test_multi_run_fit_and_map_do_not_import_qt(tmp_path):
     )
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
+
+
+def test_report_of_several_runs_matches_fit(tmp_path, capsys):
+    paths = _three_runs(tmp_path, active_run=2)
+    doc = _json(capsys, ["fit", *paths, "--mm", "6", "9", "3.5", "--kernels", "gamma"])
+    out = tmp_path / "rep"
+    argv = ["report", *paths, "--mm", "6", "9", "3.5", "--kernels", "gamma", "-o", str(out)]
+    assert main([*argv, "--scale", "1", "--no-checks"]) == 0
+    assert "report.html" in capsys.readouterr().out
+    page = (out / "report.html").read_text(encoding="utf-8")
+    combined = page.split("class='combined'")[1]
+    shown = float(combined.split("class='num t' data-value=\"")[1].split('"')[0])
+    assert shown == doc["combined"][0]["t"]
+    assert "rests on run-3" in page and "not for clinical diagnosis" in page.lower()
+    # a second time without --force keeps the files and says so
+    assert main(argv) == 2
+    assert "--force" in capsys.readouterr().err

@@ -9,10 +9,10 @@ from pathlib import Path
 from .common import (
     add_model_args,
     add_voxel_args,
-    analysis_from_args,
     print_warnings,
     voxel_from_args,
 )
+from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_report"]
 
@@ -36,10 +36,12 @@ def register(sub: argparse._SubParsersAction) -> None:
             "Fit every kernel at one voxel (--voxel or --mm) or at every mark of a marks TSV "
             "(--marks) and write DIR/report.html (standalone, images embedded), one CSV of "
             "the time series, fitted signals and residuals per voxel, and the figures as PNG "
-            "and SVG. Existing files are kept unless --force is given."
+            "and SVG. Existing files are kept unless --force is given. With several runs of "
+            "one subject: each run's fits, figures and checks, and the runs combined by fixed "
+            "effects with their agreement (Cochran's Q)."
         ),
     )
-    add_model_args(p)
+    add_model_args(p, several_runs=True)
     g = add_voxel_args(p)
     g.add_argument(
         "--marks",
@@ -66,7 +68,9 @@ def run_report(args: argparse.Namespace) -> int:
     from ..core.report import write_report
 
     marks = read_marks_tsv(args.marks) if args.marks else None  # fail early on a bad file
-    loaded = analysis_from_args(args)
+    if len(run_paths(args)) > 1:
+        return _run_report_several(args, marks)
+    loaded = load_runs(args)[0][0]
     run = loaded.run
     voxel = None if marks is not None else voxel_from_args(args, run)
     sidecar = run.sidecar
@@ -90,6 +94,42 @@ def run_report(args: argparse.Namespace) -> int:
         checks=not args.no_checks,
         title=args.title,
         warnings=loaded.warnings,
+    )
+    print_warnings(result.warnings)
+    print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")
+    return 0
+
+
+def _run_report_several(args: argparse.Namespace, marks) -> int:
+    """``report RUN RUN ...``: per-run and combined tables and figures."""
+    from ..core.companions import find_companions
+    from ..core.runs_report import write_runs_report
+
+    loads, labels = load_runs(args)
+    inputs: list[tuple[str, Path | None]] = []
+    warnings: list[str] = []
+    for label, ld in zip(labels, loads):
+        inputs.append((f"events {label}", ld.events_path))
+        inputs.append((f"confounds {label}", ld.confounds_path))
+        inputs.append((f"sidecar {label}", find_companions(Path(ld.run.path)).sidecar))
+        warnings += [f"{label}: {w}" for w in ld.warnings]
+    if args.marks:
+        inputs.append(("marks", Path(args.marks)))
+    result = write_runs_report(
+        args.output,
+        [ld.run for ld in loads],
+        [ld.analysis for ld in loads],
+        loads[0].settings,
+        labels,
+        voxel=tuple(args.voxel) if marks is None and args.voxel is not None else None,
+        mm=tuple(args.mm) if marks is None and args.mm is not None else None,
+        marks=marks,
+        inputs=inputs,
+        force=args.force,
+        scale=args.scale,
+        checks=not args.no_checks,
+        title=args.title,
+        warnings=warnings,
     )
     print_warnings(result.warnings)
     print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")

@@ -63,8 +63,10 @@ __all__ = [
     "LeftOut",
     "RunFlag",
     "combine_fits",
+    "combine_maps",
     "compute_combined_map",
     "fixed_effects",
+    "nearest_index",
     "nearest_on_grid",
     "run_labels",
     "same_grid",
@@ -463,36 +465,71 @@ def _grids_text(runs: Sequence[Any]) -> str:
 # ----------------------------------------------------------------------------- maps
 
 
+def nearest_index(
+    shape: Sequence[int],
+    affine: np.ndarray,
+    target_shape: Sequence[int],
+    target_affine: np.ndarray,
+) -> np.ndarray:
+    """Flat index into a source grid of the nearest source voxel of each target voxel
+    centre (-1 where it falls outside), shape ``target_shape``.
+
+    The nearest voxel is chosen exactly as a position in mm is turned into a voxel
+    (``floor(index + 0.5)`` through the inverse affine; see
+    :meth:`voxelscope.core.run.Run.mm_to_voxel`).
+
+    >>> nearest_index((4, 1, 1), np.eye(4), (3, 1, 1), np.diag([2.0, 1, 1, 1])).ravel().tolist()
+    [0, 2, -1]
+    """
+    src_shape = tuple(int(n) for n in shape[:3])
+    tshape = tuple(int(n) for n in target_shape)
+    m = np.linalg.inv(np.asarray(affine, np.float64)) @ np.asarray(target_affine, np.float64)
+    axes = [np.arange(n, dtype=np.float64) for n in tshape]
+    flat = np.zeros(tshape, dtype=np.int64)
+    ok = np.ones(tshape, dtype=bool)
+    stride = 1
+    for a in (2, 1, 0):  # C order: the last axis varies fastest
+        coord = (
+            m[a, 0] * axes[0][:, None, None]
+            + m[a, 1] * axes[1][None, :, None]
+            + m[a, 2] * axes[2][None, None, :]
+            + m[a, 3]
+        )
+        idx = np.floor(coord + 0.5).astype(np.int64)
+        ok &= (idx >= 0) & (idx < src_shape[a])
+        flat += idx * stride
+        stride *= src_shape[a]
+    flat[~ok] = -1
+    return flat
+
+
 def nearest_on_grid(
     data: np.ndarray,
     affine: np.ndarray,
     target_shape: Sequence[int],
     target_affine: np.ndarray,
     fill: float = np.nan,
+    index: np.ndarray | None = None,
 ) -> np.ndarray:
     """Sample a 3D array at the nearest source voxel of each target voxel centre.
 
     The nearest voxel is chosen exactly as a position in mm is turned into a voxel
-    (``floor(index + 0.5)`` through the inverse affine), so a combined map at a voxel
-    uses the very voxels that ``fit --mm`` at that voxel's centre uses. Target voxels
-    whose nearest voxel is outside the source grid get ``fill``.
+    (:func:`nearest_index`), so a combined map at a voxel uses the very voxels that
+    ``fit --mm`` at that voxel's centre uses. Target voxels whose nearest voxel is outside
+    the source grid get ``fill``. ``index`` reuses a :func:`nearest_index` result.
 
     >>> src = np.arange(4.0).reshape(4, 1, 1)
     >>> nearest_on_grid(src, np.eye(4), (3, 1, 1), np.diag([2.0, 1, 1, 1])).ravel().tolist()
     [0.0, 2.0, nan]
     """
     data = np.asarray(data)
-    shape = tuple(int(n) for n in target_shape)
-    m = np.linalg.inv(np.asarray(affine, np.float64)) @ np.asarray(target_affine, np.float64)
-    ijk = np.indices(shape, dtype=np.float64).reshape(3, -1)
-    src = m[:3, :3] @ ijk + m[:3, 3:4]
-    idx = np.floor(src + 0.5).astype(np.int64)
-    ok = np.ones(idx.shape[1], dtype=bool)
-    for axis, n in enumerate(data.shape[:3]):
-        ok &= (idx[axis] >= 0) & (idx[axis] < n)
-    out = np.full(idx.shape[1], fill, dtype=np.result_type(data.dtype, np.float32))
-    out[ok] = data[idx[0, ok], idx[1, ok], idx[2, ok]]
-    return out.reshape(shape)
+    if index is None:
+        index = nearest_index(data.shape, affine, target_shape, target_affine)
+    src = data.reshape(-1)
+    out = np.full(index.shape, fill, dtype=np.result_type(data.dtype, np.float32))
+    ok = index >= 0
+    out[ok] = src[index[ok]]
+    return out
 
 
 #: Statistics a combined map can hold (a single-run map's, plus Cochran's Q and its p).
@@ -602,7 +639,6 @@ def compute_combined_map(
     k = len(runs)
     first = runs[0]
     shape = tuple(int(n) for n in first.shape[:3])
-    aff0 = np.asarray(first.affine, dtype=np.float64)
     if mask is not None:
         mask = np.asarray(mask, dtype=bool)
         if mask.shape != shape:
@@ -631,40 +667,74 @@ def compute_combined_map(
                 workers=workers,
             )
         )
-    B = np.empty((k, int(np.prod(shape))), dtype=np.float64)
-    V = np.empty_like(B)
-    resampled = []
+    return combine_maps(runs, run_maps, labels, stats, mask=mask, settings=settings)
+
+
+def combine_maps(
+    runs: Sequence[Any],
+    run_maps: Sequence[MapResult],
+    labels: Sequence[str],
+    stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
+    mask: np.ndarray | None = None,
+    settings: Any = None,
+) -> CombinedMapResult:
+    """Combine single-run maps (each with ``beta`` and ``variance``, on its run's grid)
+    into the fixed-effects map on the first run's grid; see :func:`compute_combined_map`.
+    """
+    first = runs[0]
+    shape = tuple(int(n) for n in first.shape[:3])
+    aff0 = np.asarray(first.affine, dtype=np.float64)
+    kernel = run_maps[0].kernel
+    stats = tuple(stats)
+    for s in stats:
+        if s not in COMBINED_STATS:
+            raise InputError(f"unknown map statistic '{s}'; use {', '.join(COMBINED_STATS)}")
+    if not (len(runs) == len(run_maps) == len(labels)) or not runs:
+        raise InputError("give one map and one label per run")
+    for lab, m in zip(labels, run_maps):
+        if m.beta is None or m.variance is None:
+            raise InputError(f"the map of {lab} has no beta or variance; compute them to combine")
+    n_all = int(np.prod(shape))
+    inside = np.ones(n_all, dtype=bool) if mask is None else mask.reshape(-1).copy()
+    betas, variances, resampled = [], [], []
     for i, (run, m) in enumerate(zip(runs, run_maps)):
-        beta = np.where(m.mask, m.beta, np.nan)
-        var = np.where(m.mask, m.variance, np.nan)
+        beta, var, ok = m.beta.reshape(-1), m.variance.reshape(-1), m.mask.reshape(-1)
         if i and not same_grid([first, run]):
-            beta = nearest_on_grid(beta, run.affine, shape, aff0)
-            var = nearest_on_grid(var, run.affine, shape, aff0)
+            index = nearest_index(run.shape, run.affine, shape, aff0).reshape(-1)
+            there = index >= 0
+            index = np.where(there, index, 0)
+            beta, var, ok = beta[index], var[index], ok[index] & there
             resampled.append(labels[i])
-        B[i] = beta.reshape(-1)
-        V[i] = var.reshape(-1)
+        inside &= ok
+        betas.append(beta)
+        variances.append(var)
+    sel = np.flatnonzero(inside)
+    B = np.stack([b_[sel] for b_ in betas]).astype(np.float64)
+    V = np.stack([v_[sel] for v_ in variances]).astype(np.float64)
     dfs = np.array([m.df for m in run_maps], dtype=np.float64)
     want_p = any(s in stats for s in ("p", "z", "q_p"))
     fe = fixed_effects(B, V, dfs, want_p=want_p)
-    valid = fe.valid
-    if mask is not None:
-        valid = valid & mask.reshape(-1)
+    good = sel[fe.valid]
     df_total = float(dfs.sum())
 
     def vol(name: str, values: np.ndarray, outside: float = 0.0) -> np.ndarray | None:
-        if name not in stats:
+        if name not in stats and name != "t":
             return None
-        return np.where(valid, values, outside).astype(np.float32).reshape(shape)
+        out = np.full(n_all, outside, dtype=np.float32)
+        out[good] = values[fe.valid]
+        return out.reshape(shape)
 
     z = vol("z", _z_of(fe.t, fe.p)) if "z" in stats else None
+    valid_mask = np.zeros(n_all, dtype=bool)
+    valid_mask[good] = True
     first_map = run_maps[0]
     out = CombinedMapResult(
-        t=np.where(valid, fe.t, 0.0).astype(np.float32).reshape(shape),
+        t=vol("t", fe.t),
         beta=vol("beta", fe.beta),
         variance=vol("variance", fe.variance),
         z=z,
         p=vol("p", fe.p, 1.0),
-        mask=valid.reshape(shape),
+        mask=valid_mask.reshape(shape),
         degenerate=np.zeros(shape, dtype=bool),
         rho=None,
         kernel=kernel,
@@ -674,7 +744,7 @@ def compute_combined_map(
         weights=first_map.weights,
         columns=first_map.columns,
         affine=aff0,
-        settings=settings,
+        settings=settings if settings is not None else run_maps[0].settings,
         rho_step=None,
         q=vol("q", fe.q),
         q_p=vol("q_p", fe.q_p, 1.0),
