@@ -31,3 +31,12 @@ def _private_dirs(tmp_path_factory, monkeypatch):
         ("XDG_DATA_HOME", "data"),
     ):
         monkeypatch.setenv(var, str(base / sub))
+
+
+@pytest.fixture(autouse=True)
+def _fresh_inputs():
+    """Each test is one 'command': inputs noted by earlier tests do not protect its outputs."""
+    from voxelscope.core.outputs import input_scope
+
+    with input_scope():
+        yield

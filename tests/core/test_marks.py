@@ -95,11 +95,13 @@ def test_bad_rows_give_one_line_naming_file_and_row(text, expected):
 
 
 def test_read_errors_name_the_file(tmp_path):
-    with pytest.raises(InputError, match="no such marks file"):
+    with pytest.raises(InputError, match="marks file not found"):
         read_marks_tsv(tmp_path / "none.tsv")
     bad = tmp_path / "latin.tsv"
     bad.write_bytes(b"x_mm\ty_mm\tz_mm\ttitle\n1\t2\t3\tcaf\xe9\n")
-    with pytest.raises(InputError, match=r"latin\.tsv: line 2 is not UTF-8"):
+    with pytest.raises(
+        InputError, match=r"latin\.tsv: the marks file is not UTF-8 text \(byte 0xe9 at line 2"
+    ):
         read_marks_tsv(bad)
 
 

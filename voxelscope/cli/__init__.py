@@ -5,19 +5,89 @@ Every command calls :mod:`voxelscope.core`; none re-does its maths. Only ``view`
 only inside their handlers, so ``fit``, ``map``, ``report`` and ``cache`` never load it.
 
 Errors the user can fix print one line, ``voxelscope: error: ...``, and exit with code 2.
+
+Terminal hygiene: everything a command prints passes a filter that removes control
+characters (terminal escape sequences, bidirectional overrides) that file content such as
+condition names could carry; library log lines and Python warnings (numpy's
+RuntimeWarnings, nibabel's header notes) are kept off stderr unless ``VOXELSCOPE_DEBUG``
+is set; each command runs in a fresh scope of noted inputs, so no output of the command
+can replace one of its inputs (:mod:`voxelscope.core.outputs`).
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import os
 import sys
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 
 from .. import __version__
 from ..core.errors import VoxelscopeError
 
-__all__ = ["build_parser", "main"]
+__all__ = ["build_parser", "main", "quiet_libraries", "terminal_safe"]
+
+#: Longest error line printed (a message that quotes file content is cut here).
+MAX_ERROR_CHARS = 1000
+
+# C0 controls except tab, newline and carriage return (progress lines use it), DEL, C1
+# controls and the bidirectional overrides and isolates.
+_STRIP = {c: None for c in [*range(0x00, 0x09), 0x0B, 0x0C, *range(0x0E, 0x20), 0x7F]}
+_STRIP.update({c: None for c in range(0x80, 0xA0)})
+_STRIP.update({c: None for c in [*range(0x202A, 0x202F), *range(0x2066, 0x206A)]})
+
+
+def terminal_safe(text: str) -> str:
+    """``text`` without control characters a terminal would act on.
+
+    >>> terminal_safe("tone\x1b[2J\u202e")
+    'tone[2J'
+    """
+    return str(text).translate(_STRIP)
+
+
+class _SafeStream:
+    """A text stream wrapper that writes :func:`terminal_safe` text."""
+
+    def __init__(self, stream) -> None:
+        self._stream = stream
+
+    def write(self, text: str) -> int:
+        self._stream.write(terminal_safe(text))
+        return len(text)
+
+    def __getattr__(self, name: str):
+        return getattr(self._stream, name)
+
+
+@contextlib.contextmanager
+def quiet_libraries() -> Iterator[None]:
+    """Keep library log lines and Python warnings off stderr (unless VOXELSCOPE_DEBUG)."""
+    if os.environ.get("VOXELSCOPE_DEBUG"):
+        yield
+        return
+    import logging
+    import warnings
+
+    nib_logger = logging.getLogger("nibabel")
+    old_level = nib_logger.level
+    old_last_resort = logging.lastResort
+    nib_logger.setLevel(logging.CRITICAL + 1)
+    logging.lastResort = logging.NullHandler()  # unconfigured loggers stay silent
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            yield
+    finally:
+        nib_logger.setLevel(old_level)
+        logging.lastResort = old_last_resort
+
+
+def _error_line(exc: BaseException) -> str:
+    text = " ".join(str(exc).split())
+    if len(text) > MAX_ERROR_CHARS:
+        text = text[:MAX_ERROR_CHARS] + "…"
+    return text
 
 
 #: Command name -> the module that registers it. ``main`` registers only the module of the
@@ -105,6 +175,18 @@ def main(argv: Sequence[str] | None = None) -> int:
         from .view import open_empty_window
 
         return open_empty_window()
+    from ..core.outputs import input_scope
+
+    out, err = sys.stdout, sys.stderr
+    sys.stdout, sys.stderr = _SafeStream(out), _SafeStream(err)  # type: ignore[assignment]
+    try:
+        with quiet_libraries(), input_scope():
+            return _run(argv)
+    finally:
+        sys.stdout, sys.stderr = out, err
+
+
+def _run(argv: list[str]) -> int:
     if argv[0] in _COMMAND_MODULES:
         parser = _parser_for(argv[0])
     else:
@@ -116,7 +198,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         return int(args.handler(args) or 0)
     except VoxelscopeError as exc:
-        print(f"voxelscope: error: {exc}", file=sys.stderr)
+        print(f"voxelscope: error: {_error_line(exc)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("voxelscope: interrupted", file=sys.stderr)
@@ -127,7 +209,7 @@ def main(argv: Sequence[str] | None = None) -> int:
         if os.environ.get("VOXELSCOPE_DEBUG"):
             raise
         print(
-            f"voxelscope: internal error: {exc.__class__.__name__}: {exc} "
+            f"voxelscope: internal error: {exc.__class__.__name__}: {_error_line(exc)} "
             "(set VOXELSCOPE_DEBUG=1 for details and please report it)",
             file=sys.stderr,
         )

@@ -27,6 +27,11 @@ def _add_screenshot_args(p: argparse.ArgumentParser) -> None:
         "--screenshot", metavar="PNG", help="render the window offscreen to this PNG and exit"
     )
     p.add_argument(
+        "--force",
+        action="store_true",
+        help="let --screenshot (and --save-session) replace an existing file",
+    )
+    p.add_argument(
         "--size",
         type=_size,
         default=(1600, 1000),
@@ -148,12 +153,19 @@ def run_view(args: argparse.Namespace) -> int:
         mm=tuple(args.mm) if args.mm else None,
         screenshot=args.screenshot,
         size=args.size,
+        force=args.force or None,
         **extra,
     )
 
 
 def run_demo(args: argparse.Namespace) -> int:
-    return _launch(demo=True, screenshot=args.screenshot, size=args.size, show=args.show or None)
+    return _launch(
+        demo=True,
+        screenshot=args.screenshot,
+        size=args.size,
+        show=args.show or None,
+        force=args.force or None,
+    )
 
 
 def open_empty_window() -> int:

@@ -2,8 +2,9 @@
 
 Every output goes to a temporary file in the destination folder first and is then moved
 over the final name with :func:`os.replace`, so a reader never sees half a file and an
-interrupted write leaves the old file (or nothing) in place. Existing outputs are never
-overwritten unless ``force=True``.
+interrupted write leaves the old file (or nothing) in place. Every path passes the one
+output guard (:func:`voxelscope.core.outputs.guard_output`): never an input of the same
+command, and an existing output is never overwritten unless ``force=True``.
 
 Examples
 --------
@@ -16,7 +17,7 @@ Examples
 >>> write_text(d / "a.txt", "again\\n")
 Traceback (most recent call last):
 ...
-voxelscope.core.errors.InputError: ...a.txt already exists; use --force to overwrite it
+voxelscope.core.errors.OutputExistsError: ...a.txt already exists; use --force to overwrite it
 >>> _ = write_text(d / "a.txt", "again\\n", force=True)
 >>> sorted(x.name for x in d.iterdir())
 ['a.txt']
@@ -29,7 +30,8 @@ import tempfile
 from collections.abc import Iterable
 from pathlib import Path
 
-from .errors import InputError, OutputExistsError
+from .errors import InputError
+from .outputs import guard_output
 
 __all__ = ["check_outputs", "write_bytes", "write_text"]
 
@@ -47,28 +49,32 @@ def _file_mode(final: Path) -> int:
     return 0o666 & ~mask
 
 
-def _refuse(path: Path) -> OutputExistsError:
-    return OutputExistsError(path)
+def check_outputs(
+    paths: Iterable[str | os.PathLike[str]],
+    force: bool = False,
+    inputs: Iterable[str | os.PathLike[str] | None] = (),
+) -> None:
+    """Pass every path through the output guard before anything is written.
 
-
-def check_outputs(paths: Iterable[str | os.PathLike[str]], force: bool = False) -> None:
-    """Raise :class:`InputError` for the first path that exists, unless ``force``.
-
-    Call this before writing a set of files, so nothing is written when one would be refused.
+    Raises for the first path that is an input of the command (always) or that exists
+    (unless ``force``), so nothing is written when one file would be refused.
 
     Examples
     --------
     >>> check_outputs(["/nonexistent/voxelscope-out.csv"])
     """
-    if force:
-        return
+    inputs = list(inputs)
     for p in paths:
-        path = Path(p)
-        if path.exists() or path.is_symlink():
-            raise _refuse(path)
+        guard_output(p, inputs, force=force)
 
 
-def write_bytes(path: str | os.PathLike[str], data: bytes, force: bool = False) -> Path:
+def write_bytes(
+    path: str | os.PathLike[str],
+    data: bytes,
+    force: bool = False,
+    kind: str | None = None,
+    inputs: Iterable[str | os.PathLike[str] | None] = (),
+) -> Path:
     """Write ``data`` to ``path`` atomically; returns the path.
 
     Parameters
@@ -78,6 +84,11 @@ def write_bytes(path: str | os.PathLike[str], data: bytes, force: bool = False) 
     data : bytes
     force : bool
         Overwrite an existing file. Without it an existing file raises :class:`InputError`.
+        An input of the command is never overwritten.
+    kind : str, optional
+        ``"session"`` or ``"marks"``: may be saved back over the document it was read from.
+    inputs : iterable of path-like
+        Further files that must not be overwritten.
 
     Examples
     --------
@@ -87,10 +98,7 @@ def write_bytes(path: str | os.PathLike[str], data: bytes, force: bool = False) 
     >>> p.read_bytes()
     b'\\x00\\x01'
     """
-    final = Path(path)
-    if final.is_dir():
-        raise InputError(f"{final} is a folder; give a file name for the output")
-    check_outputs([final], force=force)
+    final = guard_output(path, inputs, force=force, kind=kind)
     folder = final.parent
     if not folder.is_dir():
         raise InputError(f"{final}: the folder {folder} does not exist; create it first")
@@ -105,8 +113,7 @@ def write_bytes(path: str | os.PathLike[str], data: bytes, force: bool = False) 
             fh.flush()
             os.fsync(fh.fileno())
         os.chmod(tmp, _file_mode(final))
-        if not force and (final.exists() or final.is_symlink()):
-            raise _refuse(final)  # appeared while we were writing
+        guard_output(final, inputs, force=force, kind=kind)  # appeared while we wrote
         os.replace(tmp, final)
     except OSError as err:
         raise InputError(f"{final}: cannot write the file ({err.strerror})") from None
@@ -117,7 +124,12 @@ def write_bytes(path: str | os.PathLike[str], data: bytes, force: bool = False) 
 
 
 def write_text(
-    path: str | os.PathLike[str], text: str, force: bool = False, encoding: str = "utf-8"
+    path: str | os.PathLike[str],
+    text: str,
+    force: bool = False,
+    encoding: str = "utf-8",
+    kind: str | None = None,
+    inputs: Iterable[str | os.PathLike[str] | None] = (),
 ) -> Path:
     """Write ``text`` to ``path`` atomically (no newline translation); returns the path.
 
@@ -128,4 +140,4 @@ def write_text(
     >>> write_text(Path(tempfile.mkdtemp()) / "t.tsv", "a\\tb\\n").read_text()
     'a\\tb\\n'
     """
-    return write_bytes(path, text.encode(encoding), force=force)
+    return write_bytes(path, text.encode(encoding), force=force, kind=kind, inputs=inputs)

@@ -23,7 +23,6 @@ Examples
 
 from __future__ import annotations
 
-import json
 import os
 import re
 from collections.abc import Sequence
@@ -141,15 +140,11 @@ def read_sidecar(path: str | os.PathLike[str]) -> dict[str, Any]:
     InputError
         Unreadable, not JSON, or not a JSON object.
     """
+    from .inputs import parse_json, read_input_text
+
     path = Path(path)
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError) as err:
-        raise InputError(f"{path}: cannot read the sidecar ({err}); fix or remove it") from None
-    except ValueError as err:
-        raise InputError(
-            f"{path}: the sidecar is not valid JSON ({err}); fix or remove it"
-        ) from None
+    # the one bounded text reader; JSON nesting limited; one line for every failure
+    data = parse_json(read_input_text(path, "sidecar"), str(path), "sidecar")
     if not isinstance(data, dict):
         raise InputError(f"{path}: the sidecar must hold a JSON object; fix or remove it")
     return data

@@ -544,31 +544,12 @@ def parse_confounds(
 def read_confounds(path: str | Path, columns: Sequence[str] | None = None) -> Confounds:
     """Read a confounds file; see :func:`parse_confounds`.
 
-    Files over :data:`MAX_CONFOUNDS_BYTES` (or endless ones such as devices) are refused
-    after reading that much.
+    Read through the one bounded text reader: files over :data:`MAX_CONFOUNDS_BYTES` are
+    refused by their size before reading, devices are refused, endless streams are read only
+    that far; other encodings get one line saying to save the file as UTF-8.
     """
+    from .inputs import read_input_text
+
     p = Path(path)
-    try:
-        with open(p, "rb") as fh:
-            raw = fh.read(MAX_CONFOUNDS_BYTES + 1)
-    except FileNotFoundError:
-        raise InputError(f"{p}: confounds file not found; check --confounds") from None
-    except IsADirectoryError:
-        raise InputError(f"{p}: is a folder, not a confounds file; check --confounds") from None
-    except OSError as exc:
-        raise InputError(
-            f"{p}: cannot read the confounds file ({exc.strerror or exc.__class__.__name__})"
-        ) from None
-    if len(raw) > MAX_CONFOUNDS_BYTES:
-        raise InputError(
-            f"{p}: the confounds file is larger than {MAX_CONFOUNDS_BYTES // 2**20} MiB; "
-            "give a table with one row per volume"
-        )
-    try:
-        text = raw.decode("utf-8-sig")
-    except UnicodeDecodeError as exc:
-        raise InputError(
-            f"{p}: the confounds file is not UTF-8 text (byte {exc.start}); "
-            "save it as UTF-8 (plain tab- or comma-separated text)"
-        ) from None
+    text = read_input_text(p, "confounds", limit=MAX_CONFOUNDS_BYTES)
     return parse_confounds(io.StringIO(text), source=str(p), columns=columns)

@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import InputError
+from .inputs import excerpt
 
 __all__ = ["Condition", "check_events_in_run", "parse_events", "read_events", "shift_conditions"]
 
@@ -81,12 +82,20 @@ class Condition:
         return hash(self.key())
 
 
+def _names(header: list[str], most: int = 12) -> str:
+    """Column names for a message: short printable excerpts, at most ``most`` of them."""
+    if not header:
+        return "none"
+    shown = ", ".join(excerpt(h) for h in header[:most])
+    return shown + (f" and {len(header) - most} more" if len(header) > most else "")
+
+
 def _number(cell: str, path: str, row: int, column: str) -> float:
     try:
         value = float(cell)
     except ValueError:
         raise InputError(
-            f"{path}: row {row}, column '{column}' is '{cell}', not a number; "
+            f"{path}: row {row}, column '{column}' is '{excerpt(cell)}', not a number; "
             f"give {column} in seconds"
         ) from None
     if not math.isfinite(value):
@@ -125,7 +134,7 @@ def parse_events(
     for needed in ("onset", "duration"):
         if needed not in header:
             raise InputError(
-                f"{source}: no '{needed}' column (found: {', '.join(header) or 'none'}); "
+                f"{source}: no '{needed}' column (found: {_names(header)}); "
                 "a BIDS events file needs tab-separated onset and duration columns in seconds"
             )
     i_on, i_du = header.index("onset"), header.index("duration")
@@ -134,7 +143,8 @@ def parse_events(
     if amplitude_column is not None:
         if amplitude_column not in header:
             raise InputError(
-                f"{source}: no amplitude column '{amplitude_column}' (found: {', '.join(header)})"
+                f"{source}: no amplitude column '{excerpt(amplitude_column)}' "
+                f"(found: {_names(header)})"
             )
         i_am = header.index(amplitude_column)
 
@@ -181,15 +191,10 @@ def parse_events(
 
 def read_events(path: str | Path, amplitude_column: str | None = None) -> list[Condition]:
     """Read a BIDS ``events.tsv`` file. See :func:`parse_events`."""
+    from .inputs import read_input_text
+
     p = Path(path)
-    try:
-        text = p.read_text(encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise InputError(
-            f"{p}: events file not found; pass --events with a BIDS events.tsv"
-        ) from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"{p}: cannot read the events file ({exc.__class__.__name__})") from None
+    text = read_input_text(p, "events")  # bounded; one line for size, encoding, access
     return parse_events(io.StringIO(text), source=str(p), amplitude_column=amplitude_column)
 
 

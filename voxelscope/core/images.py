@@ -134,13 +134,32 @@ def load_nifti(path: str | os.PathLike[str], what: str = "image") -> Any:
     -------
     nibabel.Nifti1Image or nibabel.Nifti2Image
     """
-    path = Path(path)
+    from voxelscope.core.headercheck import check_nifti_header
+    from voxelscope.core.outputs import note_input
+
+    path = Path(path).expanduser()
     if not path.exists():
         raise InputError(f"{path}: file not found; check the {what} path")
     if not path.is_file():
         raise InputError(f"{path}: not a file; give the path of a .nii or .nii.gz {what}")
+    if not os.access(path, os.R_OK):
+        raise InputError(
+            f"{path}: the {what} file is unreadable (permission denied); check its permissions"
+        )
+    note_input(path)  # from here on, no output of this command may replace it
+    check_nifti_header(path, what)
     try:
-        img = nib.load(str(path), mmap=False)
+        # nibabel logs header repairs; the user gets our one line instead
+        with nib.imageglobals.LoggingOutputSuppressor():
+            img = nib.load(str(path), mmap=False)
+    except nib.spatialimages.HeaderDataError as err:
+        raise InputError(
+            f"{path}: the NIfTI header is invalid ({_one_line(err)}); re-export the {what}"
+        ) from None
+    except PermissionError:
+        raise InputError(
+            f"{path}: the {what} file is unreadable (permission denied); check its permissions"
+        ) from None
     except nib.filebasedimages.ImageFileError as err:
         raise InputError(
             f"{path}: not a NIfTI image ({_one_line(err)}); give a .nii or .nii.gz {what}"

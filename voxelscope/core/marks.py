@@ -34,7 +34,7 @@ from typing import Any
 
 from .atomic import write_text
 from .errors import InputError
-from .inputs import read_input_bytes
+from .inputs import read_input_text
 
 __all__ = [
     "MARK_COLUMNS",
@@ -49,8 +49,9 @@ __all__ = [
 ]
 
 MARK_COLUMNS = ("x_mm", "y_mm", "z_mm", "title", "note")
-_ESCAPES = {"\\": "\\\\", "\t": "\\t", "\n": "\\n", "\r": "\\r"}
-_UNESCAPES = {"\\": "\\", "t": "\t", "n": "\n", "r": "\r"}
+# NUL is escaped too, so a marks file is always text (the text reader refuses NUL bytes)
+_ESCAPES = {"\\": "\\\\", "\t": "\\t", "\n": "\\n", "\r": "\\r", "\x00": "\\0"}
+_UNESCAPES = {"\\": "\\", "t": "\t", "n": "\n", "r": "\r", "0": "\x00"}
 
 
 @dataclass(frozen=True)
@@ -211,7 +212,7 @@ class MarkList:
 
 
 def escape_field(text: str) -> str:
-    r"""Escape backslash, tab, newline and carriage return for one TSV cell.
+    r"""Escape backslash, tab, newline, carriage return and NUL for one TSV cell.
 
     >>> escape_field("a\tb\\c\n")
     'a\\tb\\\\c\\n'
@@ -329,12 +330,7 @@ def parse_marks_tsv(text: str, source: str = "marks.tsv") -> MarkList:
 def read_marks_tsv(path: str | os.PathLike[str]) -> MarkList:
     """Read a marks TSV file (see the module notes); raises InputError with one line."""
     p = Path(path)
-    data = read_input_bytes(p, "marks")
-    try:
-        text = data.decode("utf-8")
-    except UnicodeDecodeError as err:
-        line = data[: err.start].count(b"\n") + 1
-        raise InputError(f"{p}: line {line} is not UTF-8 text; save the file as UTF-8") from None
+    text = read_input_text(p, "marks")  # bounded; one line for other encodings
     return parse_marks_tsv(text, source=str(p))
 
 
@@ -342,4 +338,4 @@ def write_marks_tsv(
     marks: Iterable[Mark], path: str | os.PathLike[str], force: bool = False
 ) -> Path:
     """Write marks as TSV atomically; refuses to overwrite unless ``force``."""
-    return write_text(path, format_marks_tsv(marks), force=force)
+    return write_text(path, format_marks_tsv(marks), force=force, kind="marks")

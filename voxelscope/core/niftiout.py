@@ -31,18 +31,10 @@ import nibabel as nib
 import numpy as np
 
 from .atomic import write_bytes
-from .errors import InputError, OutputExistsError
+from .errors import InputError
+from .outputs import guard_output
 
 __all__ = ["check_output_path", "write_map"]
-
-
-def _same_file(a: Path, b: Path) -> bool:
-    try:
-        if a.exists() and b.exists():
-            return os.path.samefile(a, b)
-    except OSError:
-        pass
-    return a.resolve() == b.resolve()
 
 
 def check_output_path(
@@ -81,12 +73,7 @@ def check_output_path(
         raise InputError(f"{out} is a folder; give a file name for the map")
     if not out.parent.is_dir():
         raise InputError(f"{out}: the folder {out.parent} does not exist; create it first")
-    for p in inputs:
-        if p is not None and _same_file(out, Path(p).expanduser()):
-            raise InputError(f"{out} is an input of this command; write the map to another file")
-    if not force and (out.exists() or out.is_symlink()):
-        raise OutputExistsError(out)
-    return out
+    return guard_output(out, inputs, force=force)
 
 
 def _header_for(data: np.ndarray, affine: np.ndarray, header: Any | None) -> nib.Nifti1Header:
@@ -174,5 +161,5 @@ def write_map(
     data = img.to_bytes()
     if out.name.lower().endswith(".gz"):
         data = gzip.compress(data, compresslevel=6, mtime=0)
-    write_bytes(out, data, force=force)
+    write_bytes(out, data, force=force, inputs=ins)
     return out

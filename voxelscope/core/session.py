@@ -56,7 +56,7 @@ from typing import Any
 from .atomic import write_text
 from .errors import InputError
 from .hrf import KERNEL_NAMES
-from .inputs import read_input_bytes
+from .inputs import parse_json, read_input_text
 from .marks import MarkList
 from .model import ModelSettings
 
@@ -276,7 +276,7 @@ def save_session(
         raise InputError(
             f"{p}: the map settings or layout are not plain JSON data ({err})"
         ) from None
-    return write_text(p, text + "\n", force=force)
+    return write_text(p, text + "\n", force=force, kind="session")
 
 
 # --------------------------------------------------------------------------- from JSON
@@ -500,15 +500,8 @@ def load_session(path: str | os.PathLike[str], verify: bool = True) -> LoadedSes
     """
     p = Path(path)
     source = str(p)
-    raw = read_input_bytes(p, "session")
-    try:
-        data = json.loads(raw.decode("utf-8"))
-    except UnicodeDecodeError:
-        raise InputError(f"{p}: not a voxelscope session (not UTF-8 text)") from None
-    except json.JSONDecodeError as err:
-        raise InputError(
-            f"{p}: not a voxelscope session (invalid JSON at line {err.lineno}: {err.msg})"
-        ) from None
+    text = read_input_text(p, "session")  # bounded; one line for size, encoding, access
+    data = parse_json(text, source, "session")
     session, records, warnings = session_from_json(data, p.parent, source)
     problems = []
     for role in list(session.files):

@@ -104,13 +104,13 @@ def _demo_extras(window, marks_path) -> None:
             window.show_error(str(err))
 
 
-def _save_session(window, path, ask: bool) -> bool:
-    """``--save-session``: write the session; an existing file is replaced only when asked."""
+def _save_session(window, path, ask: bool, force: bool = False) -> bool:
+    """``--save-session``: write the session; an existing file is replaced only when asked
+    (or with ``force``, the command line's ``--force``)."""
     from voxelscope.core.errors import VoxelscopeError
     from voxelscope.gui.session_io import save_window_session
 
-    force = False
-    if Path(path).exists():
+    if Path(path).exists() and not force:
         if not ask or window.offscreen():
             window.show_error(
                 f"{path} already exists; choose another session file name or delete it"
@@ -147,6 +147,7 @@ def launch(
     save_session: str | None = None,
     show: bool = False,
     recovery: bool = True,
+    force: bool = False,
 ) -> int:
     """Open the inspection window; with ``screenshot``, render it to a PNG and return.
 
@@ -179,6 +180,8 @@ def launch(
         Start in Show mode.
     recovery : bool
         On screen, offer to restore the view of a window that did not close cleanly.
+    force : bool
+        Let ``screenshot`` replace an existing file (never an input).
 
     Returns
     -------
@@ -203,6 +206,8 @@ def launch(
 
     window = MainWindow()
     window.resize(*size)
+    if screenshot is not None:
+        window.record_recent = False  # a one-off rendering is not the user's history
     marks_path = None
     if demo:
         try:
@@ -223,7 +228,16 @@ def launch(
             if voxel is None and mm is None:
                 voxel = d["voxel"]
     if screenshot is not None:
+        from voxelscope.core.outputs import guard_output
+
         window.autosave.enabled = False
+        inputs = [run, events, confounds, anat, stat_map, session, marks_path]
+        try:  # refuse a bad screenshot path before the run is opened
+            guard_output(screenshot, inputs, force=force)
+        except VoxelscopeError as err:
+            print(f"voxelscope: error: {err}", file=sys.stderr)
+            window.close()
+            return 2
         window.show()
         if session is not None:
             if not open_session(window, session, locate=None, geometry=False):
@@ -246,11 +260,13 @@ def launch(
         for _ in range(5):
             app.processEvents()
         code = 0
-        if save_session is not None and not _save_session(window, save_session, ask=False):
+        if save_session is not None and not _save_session(
+            window, save_session, ask=False, force=force
+        ):
             print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
             code = 2
         try:
-            window.save_image(screenshot, size)
+            window.save_image(screenshot, size, force=force)
         except VoxelscopeError as err:
             print(f"voxelscope: error: {err}", file=sys.stderr)
             code = 2
@@ -262,7 +278,7 @@ def launch(
         if demo:
             _demo_extras(window, marks_path)
         if save_session is not None:
-            _save_session(window, save_session, ask=True)
+            _save_session(window, save_session, ask=True, force=force)
         if show:
             window.show_mode.enter()
 

@@ -9,7 +9,16 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from PySide6.QtCore import QCoreApplication, QEvent, QSettings, Qt, QTimer
+from PySide6.QtCore import (
+    QBuffer,
+    QByteArray,
+    QCoreApplication,
+    QEvent,
+    QIODevice,
+    QSettings,
+    Qt,
+    QTimer,
+)
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QDockWidget,
@@ -80,6 +89,7 @@ class MainWindow(QMainWindow):
         self.after_open = None
         self.last_error = ""
         self.settle_hooks: list = []  # called before a window image: finish background work
+        self.record_recent = True  # False for a one-off offscreen rendering (--screenshot)
         self.setStyleSheet(stylesheet())
         self.setAcceptDrops(True)
 
@@ -317,9 +327,15 @@ class MainWindow(QMainWindow):
             self.open_map(path)
 
     def ask_window_image(self) -> None:
+        # the file dialog has already asked before replacing an existing file
         path, _ = QFileDialog.getSaveFileName(self, "Save window image", "", "PNG (*.png)")
         if path:
-            self.save_image(path)
+            try:
+                out = self.save_image(path, force=True)
+            except VoxelscopeError as err:
+                self.show_error(str(err))
+                return
+            self.statusBar().showMessage(f"Saved the window image to {out}", 8000)
 
     def _last_dir(self) -> str:
         run = self.state.run
@@ -471,6 +487,8 @@ class MainWindow(QMainWindow):
         return [str(v) for v in (value or [])]
 
     def _add_recent(self, path: str) -> None:
+        if not self.record_recent:
+            return
         items = [p for p in self.recent_runs() if p != path]
         items.insert(0, path)
         self.settings.setValue("recent_runs", items[:MAX_RECENT])
@@ -570,15 +588,23 @@ class MainWindow(QMainWindow):
         for view in self.slices.views.values():
             view.reset_view()
 
-    def save_image(self, path: str | os.PathLike[str], size: tuple[int, int] | None = None) -> Path:
-        """Render the window to a PNG, written atomically (temporary file, then replace).
+    def save_image(
+        self,
+        path: str | os.PathLike[str],
+        size: tuple[int, int] | None = None,
+        force: bool = False,
+    ) -> Path:
+        """Render the window to a PNG, written atomically through the output guard.
 
         With ``size``, the window is first resized to exactly that size and rendered at it
         (1:1): every part fits in 1280 x 800 and more. Only a size below the window's
-        minimum is reached by scaling the rendering.
+        minimum is reached by scaling the rendering. The path is never an input the window
+        opened, and an existing file is replaced only with ``force``.
         """
-        path = Path(path)
-        tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp.png")
+        from voxelscope.core.atomic import write_bytes
+        from voxelscope.core.outputs import guard_output
+
+        path = guard_output(path, force=force)  # before any rendering
         if size is not None and (self.width(), self.height()) != tuple(size):
             self.resize(int(size[0]), int(size[1]))
             QCoreApplication.processEvents()
@@ -595,8 +621,11 @@ class MainWindow(QMainWindow):
                 Qt.AspectRatioMode.IgnoreAspectRatio,
                 Qt.TransformationMode.SmoothTransformation,
             )
-        if not pix.save(str(tmp), "PNG"):
-            tmp.unlink(missing_ok=True)
-            raise VoxelscopeError(f"{path}: could not write the image; check the folder")
-        os.replace(tmp, path)
-        return path
+        data = QByteArray()
+        buf = QBuffer(data)
+        buf.open(QIODevice.OpenModeFlag.WriteOnly)
+        ok = pix.save(buf, "PNG")
+        buf.close()
+        if not ok:
+            raise VoxelscopeError(f"{path}: could not encode the window image as PNG")
+        return write_bytes(path, bytes(data), force=force)
