@@ -300,10 +300,10 @@ def parse_json(text: str, source: str, what: str, max_depth: int = JSON_MAX_DEPT
         return json.loads(text, parse_constant=_no_constants)
     except json.JSONDecodeError as err:
         raise InputError(
-            f"{source}: the {what} file is not valid JSON (line {err.lineno}, column "
+            f"{source}: the {what} is not valid JSON (line {err.lineno}, column "
             f"{err.colno}: {err.msg}); fix it or save it again"
         ) from None
     except (ValueError, RecursionError) as err:
         raise InputError(
-            f"{source}: the {what} file is not valid JSON ({excerpt(err, 60)}); fix it"
+            f"{source}: the {what} is not valid JSON ({excerpt(err, 60)}); fix it"
         ) from None

@@ -161,7 +161,7 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
         raise InputError(f"{run}: run file not found; check the path (a 4D .nii or .nii.gz)")
     comp = find_companions(run)
     for label, given in (("events", request.events), ("confounds", request.confounds)):
-        if given is not None and not given.is_file():
+        if given is not None and not given.exists():  # devices, folders: the reader says
             raise InputError(f"{given}: {label} file not found; check --{label}")
     if isinstance(request.mask, Path) and not request.mask.is_file():
         raise InputError(f"{request.mask}: mask file not found; check --mask (or use 'auto')")
