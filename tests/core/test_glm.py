@@ -558,3 +558,112 @@ def test_non_finite_voxel_has_no_fit():
     for a in (res.t[1], res.beta[1], res.r2[1], res.p[1]):
         assert np.isnan(a)
     assert np.all(np.isnan(res.fitted[:, 1])) and np.all(np.isnan(res.residuals[:, 1]))
+
+
+# ----------------------------------------------------------------------------- one product
+
+
+def _near_exact_problem(seed: int, n: int = 240, p: int = 9, mean: float = 10000.0):
+    """A BOLD-like design (constant, cosine drifts, block regressors) and voxels whose
+    fraction of unexplained variance 1 - R^2 runs from 0.5 down to 1e-16 and to an
+    exact fit, each on a raw-BOLD-like mean."""
+    rng = np.random.default_rng(seed)
+    t = np.arange(n)
+    X = np.column_stack(
+        [np.sin(2 * np.pi * t / rng.uniform(20, 60)) + rng.normal(0, 0.1, n) for _ in range(p - 4)]
+        + [np.cos(np.pi * k * (2 * t + 1) / (2 * n)) for k in (1, 2, 3)]
+        + [np.ones(n)]
+    )
+    signal = X[:, :-1] @ rng.normal(0, 50, p - 1)
+    noise = rng.standard_normal((n, 1))
+    noise -= X @ np.linalg.lstsq(X, noise, rcond=None)[0]  # exactly orthogonal to X
+    noise /= np.linalg.norm(noise)
+    ratios = np.concatenate([[0.5], 10.0 ** -np.arange(1, 17, 0.5), [0.0]])  # 1 - R^2
+    # ||signal||^2 (1 - r) / r is the residual sum of squares that gives 1 - R^2 = r
+    ss = float(signal @ signal)
+    scale = np.sqrt(ss * ratios / np.where(ratios < 1, 1 - ratios, 1.0))
+    Y = mean + signal[:, None] + noise * scale[None, :]
+    return X, Y, ratios
+
+
+def _explicit_rss(X: np.ndarray, Y: np.ndarray) -> np.ndarray:
+    """The explicit computation, in extended precision: centre in long double, beta by
+    least squares on the centred data, residuals r = y - X b and sum(r^2) in long double."""
+    Yl = Y.astype(np.longdouble)
+    Yc = Yl - Yl.mean(axis=0)
+    b = np.linalg.lstsq(X, Yc.astype(np.float64), rcond=None)[0]
+    R = Yc - X.astype(np.longdouble) @ b.astype(np.longdouble)
+    return (R * R).sum(axis=0)
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_one_product_rss_equals_explicit_residuals_near_exact_fits(seed):
+    """rss = ||y||^2 - ||Q'y||^2 on centred float64 data, with explicit residuals below the
+    guard, against the explicit residual sum of squares computed here independently in
+    long double, at every 1 - R^2 from 0.5 down to 3e-17, on raw-BOLD-like means.
+
+    Error bounds (numerical analysis, common practice): the shortcut subtracts two sums
+    accurate to a few eps * ||y||^2, so its relative error is about eps / (1 - R^2)
+    (measured: at most 6.4 eps / (1 - R^2) over 12 seeds; allowed 10); explicit float64
+    residuals of centred data carry about eps / sqrt(1 - R^2) (measured at most 0.21 of
+    that; allowed 1). Overall below 2.5e-9. An exact fit is degenerate (NaN t).
+    """
+    from voxelscope.core.glm import RSS_GUARD
+
+    eps = np.finfo(float).eps
+    X, Y, ratios = _near_exact_problem(seed)
+    res = fit(X, Y, np.eye(X.shape[1])[0], keep_series=False)
+    ref = np.asarray(_explicit_rss(X, Y), dtype=np.float64)
+    df = X.shape[0] - X.shape[1]
+    exact = ratios == 0
+    r = ratios[~exact]
+    rel = np.abs(res.sigma2[~exact] * df - ref[~exact]) / ref[~exact]
+    shortcut = r >= RSS_GUARD  # the voxel's own 1 - R^2 decides; these are above the guard
+    assert np.all(rel[shortcut] <= 10 * eps / r[shortcut]), rel[shortcut] * r[shortcut] / eps
+    assert np.all(rel[~shortcut] <= eps / np.sqrt(r[~shortcut])), rel[~shortcut]
+    assert rel[r >= 1e-16].max() < 2.5e-9
+    assert res.degenerate[exact].all() and np.isnan(res.t[exact]).all()
+    # residuals at the rounding level of a mean of 1e4 count as none (glm's documented
+    # rule); everything above has a finite t, and nothing anywhere is infinite
+    assert np.isfinite(res.t[ratios >= 1e-14]).all()
+    assert not np.isinf(res.t).any()
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_one_product_matches_statsmodels_near_exact_fits(seed):
+    """t, standard error, residual variance and R^2 equal statsmodels OLS (reference
+    library) down to 1 - R^2 = 1e-8. statsmodels works on the uncentred data, whose
+    residuals carry rounding of about eps * mean * sqrt(n); the tolerance is that error
+    relative to the residual size, which is why the check stops at 1e-8."""
+    X, Y, ratios = _near_exact_problem(seed + 100)
+    c = np.zeros(X.shape[1])
+    c[0], c[1] = 1.0, -0.5
+    res = fit(X, Y, c, keep_series=True)
+    for v in np.flatnonzero((ratios >= 1e-8) & (ratios > 0)):
+        sm_fit = sm.OLS(Y[:, v], X).fit()
+        tt = sm_fit.t_test(c)
+        tol = 1e-10 + 50 * np.finfo(float).eps * 1e4 * np.sqrt(X.shape[0]) / np.sqrt(
+            sm_fit.ssr
+        )
+        assert_allclose(res.sigma2[v], sm_fit.scale, rtol=tol)
+        assert_allclose(res.t[v], float(np.squeeze(tt.tvalue)), rtol=tol)
+        assert_allclose(np.sqrt(res.variance[v]), float(np.squeeze(tt.sd)), rtol=tol)
+        assert_allclose(res.r2[v], sm_fit.rsquared, rtol=1e-12)
+        assert_allclose(res.betas[:, v], sm_fit.params, rtol=1e-9, atol=1e-9)
+
+
+def test_one_product_same_for_one_voxel_and_a_batch():
+    """One fitting path: a voxel fitted alone, with or without its residuals kept, gives
+    the same t as in a batch of thousands (to rounding of the block's BLAS product)."""
+    X, Y, ratios = _near_exact_problem(7)
+    rng = np.random.default_rng(7)
+    big = np.column_stack([Y, 10000 + rng.normal(0, 30, (Y.shape[0], 3000))])
+    c = np.eye(X.shape[1])[1]
+    batch = fit(X, big, c, keep_series=False)
+    for v in range(0, Y.shape[1], 5):
+        one = fit(X, Y[:, v], c, keep_series=True)
+        if ratios[v] == 0:
+            assert one.degenerate[0] and batch.degenerate[v]
+            continue
+        assert_allclose(one.t[0], batch.t[v], rtol=1e-9)
+        assert_allclose(one.sigma2[0], batch.sigma2[v], rtol=1e-9)

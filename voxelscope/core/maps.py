@@ -38,7 +38,6 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from scipy import special
 from threadpoolctl import threadpool_limits
 
 from .cache import Cancelled
@@ -256,6 +255,8 @@ def _z_from_t(t: np.ndarray, df: int, p: np.ndarray | None = None) -> np.ndarray
     ``p``, when given, is the fit's ``2 * T_df(-|t|)``; its half is that lower tail exactly
     (halving is exact in binary floating point), so the t tail is not computed twice.
     """
+    from scipy import special  # imported where used: a t map does not need it
+
     # z = sign(t) * Phi^-1(1 - p/2) with p/2 = T_df(-|t|); computed from the lower tail
     # so that tiny p keep their precision (ndtri of a small number is accurate).
     lower = special.stdtr(df, -np.abs(t)) if p is None else p / 2.0
