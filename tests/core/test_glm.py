@@ -642,9 +642,7 @@ def test_one_product_matches_statsmodels_near_exact_fits(seed):
     for v in np.flatnonzero((ratios >= 1e-8) & (ratios > 0)):
         sm_fit = sm.OLS(Y[:, v], X).fit()
         tt = sm_fit.t_test(c)
-        tol = 1e-10 + 50 * np.finfo(float).eps * 1e4 * np.sqrt(X.shape[0]) / np.sqrt(
-            sm_fit.ssr
-        )
+        tol = 1e-10 + 50 * np.finfo(float).eps * 1e4 * np.sqrt(X.shape[0]) / np.sqrt(sm_fit.ssr)
         assert_allclose(res.sigma2[v], sm_fit.scale, rtol=tol)
         assert_allclose(res.t[v], float(np.squeeze(tt.tvalue)), rtol=tol)
         assert_allclose(np.sqrt(res.variance[v]), float(np.squeeze(tt.sd)), rtol=tol)
