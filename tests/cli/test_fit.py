@@ -340,3 +340,25 @@ def test_json_reports_companions_and_reference_time(tmp_path, capsys):
         "confounds": None,
         "mask": None,
     }
+
+
+def test_fit_json_states_tail_z_and_neglog10p(tmp_path, capsys):
+    """JSON names the tail; p, -log10 p and z follow scipy.stats.t / norm (references)."""
+    from scipy import stats
+
+    rng = np.random.default_rng(12)
+    path, events, _ = _write_run(tmp_path, rng)
+    base = ["fit", str(path), "--events", str(events), "--voxel", "2", "1", "1", "--noise", "ols"]
+    for tail, ref in (
+        ("two", lambda t, df: 2 * stats.t.sf(abs(t), df)),
+        ("positive", stats.t.sf),
+        ("negative", stats.t.cdf),
+    ):
+        doc = _run_json(capsys, [*base, "--tail", tail])
+        for f in doc["fits"]:
+            assert f["tail"] == tail
+            np.testing.assert_allclose(f["p"], ref(f["t"], f["df"]), rtol=1e-9)
+            np.testing.assert_allclose(f["neglog10p"], -np.log10(ref(f["t"], f["df"])), rtol=1e-9)
+            np.testing.assert_allclose(
+                f["z"], stats.norm.isf(stats.t.sf(f["t"], f["df"])), rtol=1e-8
+            )

@@ -578,3 +578,64 @@ def test_no_motion_flag_for_a_clean_voxel_during_motion():
     _, c = _motion_case(False, include=False)
     assert "motion" not in c.flag_ids()
     assert c.to_json()["confound_spikes"] == {"move_y": [70, 73]}
+
+
+def _ar2_noise(rng, n, phi1, phi2, burn=200):
+    e = rng.standard_normal(n + burn)
+    out = np.zeros(n + burn)
+    for t in range(2, n + burn):
+        out[t] = phi1 * out[t - 1] + phi2 * out[t - 2] + e[t]
+    return out[burn:]
+
+
+def test_ljung_box_is_on_the_models_whitened_residuals():
+    """Under AR(1) the Ljung-Box test and ACF are of the Prais-Winsten whitened residuals
+    (Prais & Winsten 1954, written out here), equal to statsmodels ``acorr_ljungbox``
+    (lags=10) and ``tsa.stattools.acf`` on them; under OLS they are of the OLS residuals."""
+    from voxelscope.core.glm import fit
+
+    rng = np.random.default_rng(41)
+    a, sig = blocks(1)
+    y = 100 + sig + ar1_noise(rng, N, 0.5)
+    s = ModelSettings(kernels=(KERNEL,), noise="ar1")
+    c = voxel_checks(a, s, KERNEL, y)
+    _d, prep = a.prepared(KERNEL, s)
+    res = fit(prep, y, a.contrast_weights(KERNEL, s), noise="ar1")
+    rho, r = float(res.rho[0]), res.residuals[:, 0]
+    rw = np.concatenate([[math.sqrt(1 - rho**2) * r[0]], r[1:] - rho * r[:-1]])
+    lb = acorr_ljungbox(rw, lags=[10])
+    assert c.whitened_ljung_box_p == pytest.approx(float(lb["lb_pvalue"].iloc[0]), rel=1e-7)
+    assert c.whitened_ljung_box_q == pytest.approx(float(lb["lb_stat"].iloc[0]), rel=1e-9)
+    np.testing.assert_allclose(c.whitened_acf, sm_acf(rw, nlags=20, fft=False), atol=1e-10)
+    c_ols = voxel_checks(a, s.with_(noise="ols"), KERNEL, y)
+    assert c_ols.whitened_ljung_box_p == c_ols.ljung_box_p
+
+
+def test_ar2_noise_is_flagged_after_ar1_prewhitening():
+    """The issue's case: AR(2) noise (phi 0.2, 0.5) leaves the residuals autocorrelated
+    after AR(1) prewhitening; lag 1 alone would miss it, Ljung-Box does not. Several draws."""
+    flagged = 0
+    for seed in range(5):
+        rng = np.random.default_rng(500 + seed)
+        a, sig = blocks(seed % 2)
+        y = 100 + sig + _ar2_noise(rng, N, 0.2, 0.5)
+        c = voxel_checks(a, ModelSettings(kernels=(KERNEL,), noise="ar1"), KERNEL, y)
+        if "autocorrelation" in c.flag_ids():
+            flagged += 1
+            text = next(f.text for f in c.flags if f.id == "autocorrelation")
+            assert "after AR(1) prewhitening" in text and "higher order" in text
+    assert flagged == 5
+
+
+def test_moderate_lag1_with_small_ljung_box_p_is_flagged():
+    """The issue's demo case: lag-1 near 0.27 with a Ljung-Box p near 1e-4 must not pass
+    silently under OLS (the old rule needed lag-1 above 0.3)."""
+    rng = np.random.default_rng(77)
+    hits = []
+    for seed in range(6):
+        a, sig = blocks(seed % 2)
+        y = 100 + sig + ar1_noise(rng, N, 0.3)
+        c = voxel_checks(a, ModelSettings(kernels=(KERNEL,), noise="ols"), KERNEL, y)
+        if c.ar1 < 0.3 and c.whitened_ljung_box_p < 1e-3:
+            hits.append("autocorrelation" in c.flag_ids())
+    assert hits and all(hits)

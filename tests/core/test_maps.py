@@ -343,3 +343,52 @@ def test_t_only_map_equals_t_of_full_map():
     np.testing.assert_allclose(full.p[good], p_ref, rtol=1e-4)
     z_ref = np.sign(full.t[good]) * stats.norm.isf(p_ref / 2)
     np.testing.assert_allclose(full.z[good], z_ref, rtol=1e-4, atol=1e-5)
+
+
+def test_z_and_neglog10p_maps_are_exact_at_extreme_t():
+    """z and -log10 p keep growing where the float32 p map underflows (the issue: z
+    saturated at 38); mpmath (50 digits) gives the reference at the largest t of the map."""
+    mp = pytest.importorskip("mpmath")
+    mp.mp.dps = 50
+    rng = np.random.default_rng(11)
+    a = _analysis()
+    s = ModelSettings(kernels=("double-gamma",), noise="ols")
+    x = a.design("double-gamma", s).column("tone")
+    data = 1000 + rng.standard_normal((*SHAPE, T))
+    data[0, 0, 0] += 400 * x  # a huge, noise-free-looking response: t in the hundreds
+    data[1, 0, 0] += 4 * x
+    m = compute_map(ArrayRun(data), a, s, stats=("t", "z", "p", "neglog10p"))
+    ref = glm.fit(
+        a.prepared("double-gamma", s)[1], data[0, 0, 0], a.contrast_weights("double-gamma", s)
+    )
+    t, df = float(ref.t[0]), ref.df
+    assert t > 100 and m.p[0, 0, 0] == 0.0  # p underflows in float32 ...
+    x_ = mp.mpf(df) / (df + mp.mpf(t) ** 2)
+    low = mp.betainc(mp.mpf(df) / 2, mp.mpf(1) / 2, 0, x_, regularized=True) / 2
+    z_ref = mp.findroot(lambda z: mp.log(mp.ncdf(-z)) - mp.log(low), mp.sqrt(-2 * mp.log(low)))
+    assert float(m.z[0, 0, 0]) == pytest.approx(float(z_ref), rel=1e-6)  # float32 map
+    assert float(m.neglog10p[0, 0, 0]) == pytest.approx(float(-mp.log10(2 * low)), rel=1e-6)
+    # moderate t: scipy.stats.t / norm agree with the map
+    t1 = float(m.t[1, 0, 0])
+    assert float(m.neglog10p[1, 0, 0]) == pytest.approx(
+        -np.log10(2 * stats.t.sf(abs(t1), m.df)), rel=1e-5
+    )
+    assert float(m.z[1, 0, 0]) == pytest.approx(stats.norm.isf(stats.t.sf(t1, m.df)), rel=1e-5)
+    assert m.tail == "two" and "two-sided" in m.describe()
+
+
+def test_one_sided_tails_in_maps_match_scipy():
+    """p and -log10 p for each tail equal scipy.stats.t sf / cdf of the map's t."""
+    rng = np.random.default_rng(5)
+    a = _analysis()
+    s = ModelSettings(kernels=("gamma",), noise="ols")
+    run = ArrayRun(_data(rng))
+    for tail, ref in (("positive", stats.t.sf), ("negative", stats.t.cdf)):
+        m = compute_map(run, a, s, stats=("t", "p", "neglog10p"), tail=tail)
+        t = m.t[m.mask].astype(np.float64)
+        np.testing.assert_allclose(m.p[m.mask], ref(t, m.df), rtol=2e-5, atol=1e-30)
+        np.testing.assert_allclose(
+            m.neglog10p[m.mask], -np.log10(ref(t, m.df)), rtol=2e-5, atol=1e-6
+        )
+    with pytest.raises(Exception, match="tail must be one of"):
+        compute_map(run, a, s, tail="left")

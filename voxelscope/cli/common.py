@@ -14,6 +14,7 @@ import numpy as np
 from ..core.errors import InputError
 from ..core.hrf import DEFAULT_KERNELS, get_kernel
 from ..core.model import Analysis, ModelSettings
+from ..core.pvalues import TAILS
 
 __all__ = [
     "Loaded",
@@ -154,6 +155,12 @@ def add_model_args(
     )
     p.add_argument(
         "--noise", choices=("ols", "ar1"), default="ols", help="noise model (default ols)"
+    )
+    p.add_argument(
+        "--tail",
+        choices=TAILS,
+        default="two",
+        help="tail of p and -log10 p: two-sided (default), positive or negative",
     )
     p.add_argument(
         "--highpass",

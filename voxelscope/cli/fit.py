@@ -64,9 +64,29 @@ def _fmt(v, spec: str) -> str:
     return format(v, spec)
 
 
-def format_table(fits: VoxelFits, noise: str) -> str:
-    """Aligned, human-readable table, one row per kernel."""
-    head = ["kernel", "beta", "variance", "t", "df", "p", "R2"]
+_TAIL_HEAD = {"two": "p(2-sided)", "positive": "p(t>0)", "negative": "p(t<0)"}
+
+
+def _tail_p(f: KernelFit, tail: str) -> float | None:
+    if tail == "two":
+        return f.p
+    v = float(f.result.p_tail(tail)[0])
+    return v if np.isfinite(v) else None
+
+
+def _neglog10p(f: KernelFit, tail: str) -> float | None:
+    v = float(f.result.neglog10p(tail)[0])
+    return v if np.isfinite(v) else None
+
+
+def _z(f: KernelFit) -> float | None:
+    v = float(f.result.z[0])
+    return v if np.isfinite(v) and f.t is not None else None
+
+
+def format_table(fits: VoxelFits, noise: str, tail: str = "two") -> str:
+    """Aligned, human-readable table, one row per kernel (p for ``tail``)."""
+    head = ["kernel", "beta", "variance", "t", "df", _TAIL_HEAD[tail], "R2"]
     if noise == "ar1":
         head.append("rho")
     rows = [head]
@@ -77,7 +97,7 @@ def format_table(fits: VoxelFits, noise: str) -> str:
             _fmt(f.variance, ".5g"),
             _fmt(f.t, ".3f"),
             str(f.df),
-            _fmt(f.p, ".3g"),
+            _fmt(_tail_p(f, tail), ".3g"),
             _fmt(f.r2, ".3f"),
         ]
         if noise == "ar1":
@@ -93,8 +113,9 @@ def format_table(fits: VoxelFits, noise: str) -> str:
     return "\n".join(lines)
 
 
-def fit_to_json(f: KernelFit, checks: dict | None = None) -> dict:
-    """One kernel's fit as the documented JSON object."""
+def fit_to_json(f: KernelFit, checks: dict | None = None, tail: str = "two") -> dict:
+    """One kernel's fit as the documented JSON object (``p`` and ``neglog10p`` for
+    ``tail``, named in ``tail``; ``z`` exact at any t)."""
     d = f.design
     out = {
         "kernel": f.kernel,
@@ -106,7 +127,10 @@ def fit_to_json(f: KernelFit, checks: dict | None = None) -> dict:
         "variance": f.variance,
         "t": f.t,
         "df": f.df,
-        "p": f.p,
+        "p": _tail_p(f, tail),
+        "tail": tail,
+        "neglog10p": _neglog10p(f, tail),
+        "z": _z(f),
         "r2": f.r2,
         "noise": f.result.noise,
         "rho": f.rho,
@@ -123,7 +147,7 @@ def fit_to_json(f: KernelFit, checks: dict | None = None) -> dict:
     return out
 
 
-def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
+def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str = "two"):
     """Fit one run at one voxel: the fits, the checks per kernel and the JSON object."""
     run = loaded.run
     y = run.timeseries(ijk)
@@ -148,7 +172,7 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool):
         "confounds": loaded.confounds_path,
         "confound_columns": list(loaded.settings.confound_columns or ()),
         "y": y.tolist(),
-        "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel)) for f in fits.fits],
+        "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel), tail) for f in fits.fits],
         "warnings": list(dict.fromkeys(warnings)),
     }
     return fits, checks_by_kernel, doc, warnings
@@ -207,7 +231,7 @@ def format_combined_table(combined: list[CombinedFit]) -> str:
 def _run_fit_several(args: argparse.Namespace) -> int:
     loads, labels = load_runs(args, summarize=bool(args.checks))
     places = voxels_from_args(args, loads)
-    results = [_fit_one(ld, ijk, args.checks) for ld, ijk in zip(loads, places)]
+    results = [_fit_one(ld, ijk, args.checks, args.tail) for ld, ijk in zip(loads, places)]
     combined = combine_voxel_fits([r[0] for r in results], labels)
     warnings: list[str] = []
     for r in results:
@@ -292,7 +316,7 @@ def run_fit(args: argparse.Namespace) -> int:
     loaded: Loaded = load_runs(args, summarize=bool(args.checks))[0][0]
     run = loaded.run
     ijk = voxel_from_args(args, run)
-    fits, checks_by_kernel, doc, warnings = _fit_one(loaded, ijk, args.checks)
+    fits, checks_by_kernel, doc, warnings = _fit_one(loaded, ijk, args.checks, args.tail)
     mm = doc["mm"]
     if args.format == "json":
         sys.stdout.write(dump_json(doc) + "\n")
@@ -301,14 +325,21 @@ def run_fit(args: argparse.Namespace) -> int:
     if args.format == "csv":
         buf = io.StringIO()
         w = csv.writer(buf, lineterminator="\n")
-        w.writerow(["kernel", "contrast", "beta", "variance", "t", "df", "p", "r2", "noise", "rho"])
+        w.writerow(
+            [
+                *("kernel", "contrast", "beta", "variance", "t", "df", "p", "r2", "noise", "rho"),
+                *("tail", "neglog10p", "z"),
+            ]
+        )
         for f in fits.fits:
             w.writerow(
                 [f.kernel, f.contrast]
                 + ["" if v is None else repr(float(v)) for v in (f.beta, f.variance, f.t)]
                 + [f.df]
-                + ["" if v is None else repr(float(v)) for v in (f.p, f.r2)]
+                + ["" if v is None else repr(float(v)) for v in (_tail_p(f, args.tail), f.r2)]
                 + [f.result.noise, "" if f.rho is None else repr(float(f.rho))]
+                + [args.tail]
+                + ["" if v is None else repr(float(v)) for v in (_neglog10p(f, args.tail), _z(f))]
             )
         sys.stdout.write(buf.getvalue())
         return 0
@@ -317,7 +348,7 @@ def run_fit(args: argparse.Namespace) -> int:
         f"TR {run.tr:g} s  {run.n_volumes} volumes  contrast {fits.fits[0].contrast}  "
         f"noise {loaded.settings.noise}"
     )
-    print(format_table(fits, loaded.settings.noise))
+    print(format_table(fits, loaded.settings.noise, args.tail))
     for line in companions_text(loaded):
         print(line)
     for kernel, c in checks_by_kernel.items():

@@ -23,7 +23,7 @@ from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]
 
-_STATS = ("t", "beta", "variance", "z", "p")
+_STATS = ("t", "beta", "variance", "z", "p", "neglog10p")
 #: With several runs the combined map also has Cochran's Q and its p.
 _RUN_STATS = ("q", "q_p")
 
@@ -188,9 +188,14 @@ def run_map(args: argparse.Namespace) -> int:
         rho_step=args.rho_step,
         progress=terminal_progress("fitting map"),
         stats=stats,
+        tail=args.tail,
     )
     data = result.stat(args.stat)
-    desc = f"voxelscope {args.stat} {args.kernel} {result.contrast} df={result.df}"
+    tail = f" tail={args.tail}" if args.stat in ("p", "neglog10p") else ""
+    desc = (
+        f"voxelscope {args.stat} {args.kernel} noise={result.noise} df={result.df}{tail} "
+        f"{result.contrast}"
+    )
     write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc)
     print_warnings(warnings + list(run.warnings))  # + what the run said while read
     print(f"wrote {out}: {args.stat} map, {result.describe()}")

@@ -20,7 +20,11 @@ Fits table and the maps.
   ``ar1`` is :func:`voxelscope.core.glm.ar1_rho` of the OLS residuals (the estimate the
   AR(1) model uses); Durbin-Watson (Durbin & Watson, 1950); Ljung-Box p at 10 lags
   (Ljung & Box, 1978). Under AR(1), ``ar1_whitened`` is the lag-1 estimate left in the
-  prewhitened residuals.
+  prewhitened residuals. The flag judges the residuals the model's t assumes to be white
+  (OLS: the OLS residuals; AR(1): the Prais-Winsten whitened residuals; AR(p): the AR(p)
+  whitened residuals): ``whitened_acf`` (lags 0..20) and ``whitened_ljung_box_q`` /
+  ``whitened_ljung_box_p`` (10 lags) of those, and it is raised when that Ljung-Box p is
+  below ``LJUNG_BOX_ALPHA``, whatever the lag-1 value (AR(2) noise can leave lag 1 small).
 * **Outlier volumes**: externally studentized residuals beyond the Bonferroni-corrected
   two-sided quantile ``t_{df-1}(1 - OUTLIER_ALPHA / (2 n))`` (the classical outlier test),
   together with the run's spikes: volumes whose frame-to-frame RMS change over the brain
@@ -94,10 +98,12 @@ from .model import Analysis, ModelSettings
 from .timing import SHIFTS_S, fir_estimate, shift_scan
 
 __all__ = [
+    "ACF_POSITIVE",
     "AR1_LIMIT",
     "CONFOUND_R_LIMIT",
     "DRIFT_FRACTION_LIMIT",
     "EDGE_LIMIT_MM",
+    "FLAG_LAGS",
     "INFLUENCE_REL_CHANGE",
     "INFLUENCE_T_CHANGE",
     "INFLUENTIAL_MAX",
@@ -116,10 +122,16 @@ __all__ = [
 
 # ----------------------------------------------------------------------------- thresholds
 
-#: Flag autocorrelation when the lag-1 estimate exceeds this ...
+#: Lag-1 autocorrelation called strong in the flag's wording (no longer a condition for it).
 AR1_LIMIT = 0.3
-#: ... and the Ljung-Box p (10 lags) is below this.
+#: Flag autocorrelation when the Ljung-Box p (10 lags) of the model's whitened residuals
+#: is below this.
 LJUNG_BOX_ALPHA = 0.01
+#: Autocorrelations of the whitened residuals quoted in the flag (lags 1..this) ...
+FLAG_LAGS = 3
+#: ... of which at least one must exceed this: positive autocorrelation is what makes t
+#: too large (residuals of a fit with drift columns are slightly negatively correlated).
+ACF_POSITIVE = 0.1
 #: Family-wise level of the Bonferroni outlier test on externally studentized residuals.
 OUTLIER_ALPHA = 0.01
 #: Drop at most this many influential volumes (largest Cook's distance above 4/n).
@@ -197,6 +209,9 @@ class VoxelChecks:
     t, df : the contrast's t (settings' noise model) and its degrees of freedom
     durbin_watson, ar1, ljung_box_q, ljung_box_p, acf : residual autocorrelation (OLS)
     ar1_whitened : lag-1 estimate left after AR(1) prewhitening (AR(1) settings only)
+    whitened_acf, whitened_ljung_box_q, whitened_ljung_box_p : autocorrelation (lags
+        0..20) and Ljung-Box test (10 lags) of the residuals the model's t assumes white
+        (the OLS residuals under OLS, the prewhitened residuals otherwise)
     outlier_volumes : studentized outliers and run spikes together, sorted
     studentized_outliers, outlier_threshold : the studentized part and its threshold
     leverage, cooks, studentized : per volume, for the influence plot
@@ -231,6 +246,9 @@ class VoxelChecks:
     ljung_box_p: float = math.nan
     acf: np.ndarray = field(default_factory=_nan_array)
     ar1_whitened: float | None = None
+    whitened_acf: np.ndarray = field(default_factory=_nan_array)
+    whitened_ljung_box_q: float = math.nan
+    whitened_ljung_box_p: float = math.nan
     # outliers and influence
     outlier_volumes: tuple[int, ...] = ()
     studentized_outliers: tuple[int, ...] = ()
@@ -408,9 +426,11 @@ def voxel_checks(
     ols = main if settings.noise == "ols" else fit(prep, y, w, noise="ols")
     r = ols.residuals[:, 0]
     parts.update(_autocorrelation(r))
+    rw = r
     if settings.noise == "ar1" and main.rho is not None:
         rw = prais_winsten(main.residuals[:, 0], float(main.rho[0]))
         parts["ar1_whitened"] = float(ar1_rho(rw)[0])
+    parts.update(_whitened_part(rw))
     parts.update(_influence_part(prep, y, r, w, settings.noise, base.rms_spikes, parts["t"]))
     parts["tsnr"] = _tsnr(y, n, tr, settings.highpass_s)
 
@@ -502,6 +522,11 @@ def _autocorrelation(r: np.ndarray) -> dict[str, Any]:
         "ljung_box_q": q,
         "ljung_box_p": p,
     }
+
+
+def _whitened_part(rw: np.ndarray) -> dict[str, Any]:
+    q, p = ljung_box(rw, LJUNG_BOX_LAGS)
+    return {"whitened_acf": acf(rw, ACF_LAGS), "whitened_ljung_box_q": q, "whitened_ljung_box_p": p}
 
 
 def _influence_part(
@@ -643,20 +668,34 @@ def _edge_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     return []
 
 
+_NEXT_MODEL = {
+    "ols": "Fit with a noise model that allows for autocorrelation (--noise ar1)",
+    "ar1": "AR(1) does not describe this noise; a model of higher order is needed",
+}
+
+
 def _autocorrelation_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
-    if c.noise == "ols" and c.ar1 > AR1_LIMIT and c.ljung_box_p < LJUNG_BOX_ALPHA:
-        text = (
-            f"Residuals are strongly autocorrelated (lag-1 {c.ar1:.2f}), so the OLS t is "
-            "inflated; try AR(1)."
-        )
-        return [Flag("autocorrelation", text, "acf")]
-    if c.noise == "ar1" and c.ar1_whitened is not None and c.ar1_whitened > AR1_LIMIT:
-        text = (
-            f"Residuals stay autocorrelated after AR(1) prewhitening (lag-1 "
-            f"{c.ar1_whitened:.2f}), so the t may still be inflated."
-        )
-        return [Flag("autocorrelation", text, "acf")]
-    return []
+    p = c.whitened_ljung_box_p
+    first = np.asarray(c.whitened_acf, dtype=float)[1 : FLAG_LAGS + 1]
+    if not (math.isfinite(p) and p < LJUNG_BOX_ALPHA and np.nanmax(first) > ACF_POSITIVE):
+        return []
+    lags = ", ".join(f"{v:.2f}" for v in first)
+    strong = "strongly " if abs(float(np.asarray(c.whitened_acf)[1])) > AR1_LIMIT else ""
+    where = {"ols": "Residuals", "ar1": "Residuals after AR(1) prewhitening"}.get(
+        c.noise, "Residuals after AR(p) prewhitening"
+    )
+    text = (
+        f"{where} are {strong}autocorrelated (lags 1-{FLAG_LAGS}: {lags}; Ljung-Box p "
+        f"{p:.2g} over {LJUNG_BOX_LAGS} lags), so the t is likely too large. "
+    )
+    text += _NEXT_MODEL.get(
+        c.noise,
+        "Look for what the model misses: slow drift (lower the high-pass cutoff), "
+        "a missing confound, or a response the kernel does not fit.",
+    )
+    if c.noise in _NEXT_MODEL:
+        text += "."
+    return [Flag("autocorrelation", text, "acf")]
 
 
 def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:

@@ -50,6 +50,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from .errors import InputError, ModelError
+from .pvalues import neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
     "FitResult",
@@ -405,16 +406,21 @@ class FitResult:
 
     @property
     def z(self) -> np.ndarray:
-        """z score with the same two-sided p as ``t`` (sign of ``t``); 0 where degenerate."""
-        from scipy import special
-
-        p = self.p
-        if p is None:  # fitted with want_p=False
-            p = 2.0 * special.stdtr(self.df, -np.abs(self.t)) if self.df > 0 else self.t * np.nan
-        with np.errstate(invalid="ignore"):
-            z = -np.sign(self.t) * special.ndtri(p / 2.0)  # = norm.isf(p / 2)
-        z = np.where(np.isfinite(z), z, np.where(np.isfinite(self.t), np.sign(self.t) * 38.0, 0.0))
+        """Exact z with the same tail probability as ``t`` (sign of ``t``), at any t; 0
+        where degenerate (see :mod:`voxelscope.core.pvalues`)."""
+        z = z_from_t(self.t, self.df) if self.df > 0 else np.full(self.t.shape, np.nan)
         return np.where(self.degenerate, 0.0, z)
+
+    def p_tail(self, tail: str = "two") -> np.ndarray:
+        """p of ``t`` for ``tail`` (``two``, ``positive`` or ``negative``); NaN where
+        degenerate."""
+        p = p_from_t(self.t, self.df, tail) if self.df > 0 else np.full(self.t.shape, np.nan)
+        return np.where(self.degenerate, np.nan, p)
+
+    def neglog10p(self, tail: str = "two") -> np.ndarray:
+        """``-log10 p`` of ``t`` for ``tail``, finite at any t; NaN where degenerate."""
+        q = neglog10p_from_t(self.t, self.df, tail) if self.df > 0 else self.t * np.nan
+        return np.where(self.degenerate, np.nan, q)
 
 
 def ar1_rho(residuals: np.ndarray) -> np.ndarray:

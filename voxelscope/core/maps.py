@@ -44,6 +44,7 @@ from .cache import Cancelled
 from .errors import InputError
 from .glm import fit
 from .model import Analysis, ModelSettings
+from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
     "DEFAULT_CHUNK_VOXELS",
@@ -56,7 +57,7 @@ __all__ = [
 ]
 
 #: Statistics a map can hold.
-STAT_NAMES = ("t", "beta", "variance", "z", "p")
+STAT_NAMES = ("t", "beta", "variance", "z", "p", "neglog10p")
 
 #: Voxels per block: 1024 x 300 volumes of float64 is 2.4 MB, so each block's working
 #: copies stay in cache. Measured on the 64x64x40x300 benchmark run (2 cores, CPU time per
@@ -68,6 +69,11 @@ DEFAULT_CHUNK_VOXELS = 1024
 ProgressCallback = Callable[[float], "bool | None"]
 
 _NOISE_LABEL = {"ols": "OLS", "ar1": "AR(1)"}
+_TAIL_LABEL = {
+    "two": "two-sided",
+    "positive": "one-sided (positive)",
+    "negative": "one-sided (negative)",
+}
 
 
 @dataclass(eq=False)
@@ -78,7 +84,9 @@ class MapResult:
     ----------
     t, beta, variance, z, p : ndarray (X, Y, Z) float32 or None
         The statistics asked for (None for the others). Outside :attr:`mask` they are 0
-        (``p`` is 1).
+        (``p`` is 1). ``z`` is exact at any t (:func:`voxelscope.core.pvalues.z_from_t`);
+        ``p`` is for :attr:`tail` (two-sided by default) and underflows to 0 in float32
+        from about t = 19; :attr:`neglog10p` does not.
     mask : ndarray of bool (X, Y, Z)
         Voxels that were fitted and are not degenerate.
     degenerate : ndarray of bool (X, Y, Z)
@@ -99,6 +107,10 @@ class MapResult:
         The run's voxel -> mm affine.
     settings : ModelSettings or None
     rho_step : float or None
+    neglog10p : ndarray (X, Y, Z) float32 or None
+        ``-log10 p`` for :attr:`tail`; 0 outside the mask.
+    tail : {"two", "positive", "negative"}
+        The tail ``p`` and ``neglog10p`` are stated for.
     """
 
     t: np.ndarray | None
@@ -118,6 +130,8 @@ class MapResult:
     affine: np.ndarray | None = None
     settings: ModelSettings | None = None
     rho_step: float | None = None
+    neglog10p: np.ndarray | None = None
+    tail: str = "two"
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -129,7 +143,8 @@ class MapResult:
         return int(np.count_nonzero(self.mask))
 
     def stat(self, name: str) -> np.ndarray:
-        """One statistic by name (``t``, ``beta``, ``variance``, ``z``, ``p`` or ``rho``).
+        """One statistic by name (``t``, ``beta``, ``variance``, ``z``, ``p``, ``neglog10p``
+        or ``rho``).
 
         Raises
         ------
@@ -152,7 +167,7 @@ class MapResult:
         text = (
             f"kernel {self.kernel}, contrast '{self.contrast}', "
             f"{_NOISE_LABEL.get(self.noise, self.noise)} noise, "
-            f"df {self.df}, {self.n_voxels} voxels"
+            f"df {self.df}, {self.n_voxels} voxels, p {_TAIL_LABEL.get(self.tail, self.tail)}"
         )
         if deg:
             text += f" ({deg} constant or exactly fitted voxels set to 0)"
@@ -249,23 +264,6 @@ def _check_mask(run: Any, mask: np.ndarray | None) -> np.ndarray:
     return mask.astype(bool, copy=False)
 
 
-def _z_from_t(t: np.ndarray, df: int, p: np.ndarray | None = None) -> np.ndarray:
-    """z with the same two-sided p as t; finite even where p underflows.
-
-    ``p``, when given, is the fit's ``2 * T_df(-|t|)``; its half is that lower tail exactly
-    (halving is exact in binary floating point), so the t tail is not computed twice.
-    """
-    from scipy import special  # imported where used: a t map does not need it
-
-    # z = sign(t) * Phi^-1(1 - p/2) with p/2 = T_df(-|t|); computed from the lower tail
-    # so that tiny p keep their precision (ndtri of a small number is accurate).
-    lower = special.stdtr(df, -np.abs(t)) if p is None else p / 2.0
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = -special.ndtri(lower)
-    z = np.where(np.isfinite(z), z, 38.0)
-    return np.sign(t) * z
-
-
 def _workers(workers: int | None) -> int:
     if workers is None:
         return max(1, min(2, os.cpu_count() or 1))
@@ -282,6 +280,7 @@ def _scatter(
     fitted: np.ndarray,
     degenerate: np.ndarray,
     rho: np.ndarray | None,
+    tail: str = "two",
 ) -> None:
     """Copy one chunk's fit into the flat output maps (0 / p = 1 where degenerate)."""
     deg = res.degenerate
@@ -295,9 +294,12 @@ def _scatter(
     if "variance" in want:
         flat["variance"][idx] = np.where(good, res.variance, 0.0)
     if "p" in want:
-        flat["p"][idx] = np.where(good, res.p, 1.0)
+        p = res.p if tail == "two" and res.p is not None else p_from_t(t, res.df, tail)
+        flat["p"][idx] = np.where(good, p, 1.0)
     if "z" in want:
-        flat["z"][idx] = np.where(good, _z_from_t(t, res.df, res.p), 0.0)
+        flat["z"][idx] = np.where(good, z_from_t(t, res.df), 0.0)
+    if "neglog10p" in want:
+        flat["neglog10p"][idx] = np.where(good, neglog10p_from_t(t, res.df, tail), 0.0)
     if rho is not None and res.rho is not None:
         rho[idx] = res.rho
 
@@ -313,6 +315,7 @@ def compute_map(
     progress: ProgressCallback | None = None,
     stats: Sequence[str] = STAT_NAMES,
     workers: int | None = None,
+    tail: str = "two",
 ) -> MapResult:
     """Fit one kernel at every voxel of a mask and return the contrast's maps.
 
@@ -341,6 +344,8 @@ def compute_map(
     workers : int, optional
         Threads fitting blocks side by side (each with single-threaded BLAS) while the
         next block is read; default ``min(2, cores)``. Results do not depend on it.
+    tail : {"two", "positive", "negative"}
+        Tail of ``p`` and ``neglog10p`` (two-sided by default; ``z`` does not depend on it).
 
     Returns
     -------
@@ -354,6 +359,7 @@ def compute_map(
         Bad mask, contrast or model (one line each).
     """
     stats = tuple(stats)
+    check_tail(tail)
     for s in stats:
         if s not in STAT_NAMES:
             raise InputError(f"unknown map statistic '{s}'; use {', '.join(STAT_NAMES)}")
@@ -388,7 +394,7 @@ def compute_map(
     n_workers = _workers(workers)
     step = rho_step if ar1 else None
 
-    need_p = "p" in want or "z" in want
+    need_p = "p" in want and tail == "two"
     noise = settings.noise
 
     def fit_chunk(data: np.ndarray):
@@ -399,7 +405,7 @@ def compute_map(
 
     def store(idx: np.ndarray, res) -> None:
         nonlocal done
-        _scatter(res, idx, flat, want, fitted, degenerate, rho)
+        _scatter(res, idx, flat, want, fitted, degenerate, rho, tail)
         done += idx.size
         if progress is not None and progress(done / total if total else 1.0) is False:
             raise Cancelled("the map was cancelled")
@@ -453,6 +459,8 @@ def compute_map(
         affine=np.asarray(getattr(run, "affine", np.eye(4)), dtype=np.float64),
         settings=settings,
         rho_step=rho_step if ar1 else None,
+        neglog10p=vol("neglog10p"),
+        tail=tail,
     )
 
 

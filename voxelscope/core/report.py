@@ -163,6 +163,7 @@ _CHECK_NUMBERS = (
     ("durbin_watson", "Durbin-Watson", ".2f"),
     ("ar1", "lag-1 autocorrelation of residuals", ".2f"),
     ("ljung_box_p", "Ljung-Box p", ".3g"),
+    ("whitened_ljung_box_p", "Ljung-Box p, model's residuals", ".3g"),
     ("tsnr", "tSNR", ".1f"),
     ("cooks_distance_max", "largest Cook's distance", ".3g"),
     ("t_without_influential", "t without influential volumes", ".2f"),

@@ -90,6 +90,12 @@ ROWS: tuple[tuple[str, str, str], ...] = (
     ("ar1", "Lag-1 autocorrelation", "AR(1) coefficient of the OLS residuals"),
     ("ar1_whitened", "Lag-1 after AR(1)", "Lag-1 left in the prewhitened residuals"),
     ("ljung_box_p", "Ljung–Box p (10 lags)", "Small p: the residuals are not white noise"),
+    (
+        "whitened_ljung_box_p",
+        "Ljung–Box p, model's residuals",
+        "Ljung–Box (10 lags) of the residuals the noise model leaves (prewhitened under "
+        "AR(1) and AR(p)); the autocorrelation flag is judged on this",
+    ),
     ("tsnr", "tSNR", "Mean over the residual SD of a drift-only fit"),
     ("edge_distance_mm", "Distance to edge", "mm to the nearest voxel outside the brain mask"),
     ("best_shift_s", "Best onset shift", "Onset shift (s) that gives the largest t"),
@@ -106,7 +112,7 @@ def _fmt(key: str, value: Any, c: VoxelChecks) -> str:
             return "outside the mask"
         return "–"
     v = float(value)
-    if key == "ljung_box_p":
+    if key in ("ljung_box_p", "whitened_ljung_box_p"):
         return f"{v:.3g}" if v >= 1e-3 else f"{v:.1e}"
     if key in ("durbin_watson", "ar1", "ar1_whitened"):
         return f"{v:.2f}"
