@@ -26,10 +26,11 @@ from __future__ import annotations
 import os
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from .bids import find_for_run
 from .errors import InputError
 
 __all__ = ["Companions", "find_companions", "merge_sidecars", "read_sidecar", "run_stem"]
@@ -52,6 +53,8 @@ class Companions:
     confounds: Path | None
     sidecars: tuple[Path, ...] = ()
     mask: Path | None = None
+    ambiguous: dict = field(default_factory=dict, compare=False, repr=False)
+    dataset: Any = field(default=None, compare=False, repr=False)
 
 
 def run_stem(path: str | os.PathLike[str]) -> str:
@@ -95,7 +98,9 @@ def _candidates(stem: str) -> tuple[list[str], list[str], list[str]]:
     return events, sidecar, confounds
 
 
-def find_companions(run_path: str | os.PathLike[str]) -> Companions:
+def find_companions(
+    run_path: str | os.PathLike[str], bids_root: str | os.PathLike[str] | None = None
+) -> Companions:
     """Find the events, sidecar and confounds files named after a run.
 
     Parameters
@@ -103,10 +108,17 @@ def find_companions(run_path: str | os.PathLike[str]) -> Companions:
     run_path : str or path-like
         The run (``.nii`` or ``.nii.gz``); it need not exist.
 
+    bids_root : path-like, optional
+        The raw dataset a derivative run comes from (default: the folder above
+        ``derivatives/``).
+
     Returns
     -------
     Companions
-        ``events``, ``sidecar`` and ``confounds``: existing paths, or None.
+        ``events``, ``sidecar`` and ``confounds``: existing paths, or None. Inside a BIDS
+        dataset they are found by entities (:func:`voxelscope.core.bids.find_for_run`),
+        with ``sidecars`` (inheritance chain), ``mask`` and ``ambiguous`` (a role with
+        several equally good candidates, which is left unset).
 
     Examples
     --------
@@ -122,13 +134,20 @@ def find_companions(run_path: str | os.PathLike[str]) -> Companions:
     if reduced != stem and None in found:
         alt = _candidates(reduced)
         found = [f if f is not None else _first(folder, a) for f, a in zip(found, alt)]
-    mask = None
-    if stem.endswith("_bold"):
-        base = re.sub(r"_desc-[A-Za-z0-9]+", "", stem[: -len("_bold")])
-        mask = _first(folder, [f"{base}_desc-brain_mask{ext}" for ext in (".nii.gz", ".nii")])
     sidecars = (found[1],) if found[1] is not None else ()
+    bids = find_for_run(path, None if bids_root is None else Path(bids_root))
+    if bids.dataset is None and not (bids.mask or bids.ambiguous):
+        return Companions(events=found[0], sidecar=found[1], confounds=found[2], sidecars=sidecars)
+    if bids.sidecars:
+        sidecars = bids.sidecars
     return Companions(
-        events=found[0], sidecar=found[1], confounds=found[2], sidecars=sidecars, mask=mask
+        events=bids.events or (None if "events" in bids.ambiguous else found[0]),
+        sidecar=sidecars[-1] if sidecars else None,
+        confounds=bids.confounds or found[2],
+        sidecars=sidecars,
+        mask=bids.mask,
+        ambiguous=dict(bids.ambiguous),
+        dataset=bids.dataset,
     )
 
 

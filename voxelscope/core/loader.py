@@ -159,7 +159,19 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
     run = request.run
     if not run.is_file():
         raise InputError(f"{run}: run file not found; check the path (a 4D .nii or .nii.gz)")
-    comp = find_companions(run)
+    comp = find_companions(run, request.bids_root)
+    for role, option, given in (
+        ("events", "--events", request.events),
+        ("confounds", "--confounds", request.confounds),
+        ("mask", "--mask", request.mask),
+    ):
+        both = comp.ambiguous.get(role)
+        if both and given is None:
+            names = " and ".join(str(p) for p in both)
+            raise InputError(
+                f"{run}: {len(both)} {role} files match this run ({names}); "
+                f"name the one to use with {option} FILE"
+            )
     for label, given in (("events", request.events), ("confounds", request.confounds)):
         if given is not None and not given.exists():  # devices, folders: the reader says
             raise InputError(f"{given}: {label} file not found; check --{label}")
