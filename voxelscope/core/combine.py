@@ -548,6 +548,7 @@ class CombinedMapResult(MapResult):
     run_maps: tuple[Any, ...] = ()
     labels: tuple[str, ...] = ()
     resampled: tuple[str, ...] = ()
+    paths: tuple[str, ...] = ()
 
     def stat(self, name: str) -> np.ndarray:
         """One statistic by name, including ``q`` and ``q_p``."""
@@ -751,6 +752,7 @@ def combine_maps(
         run_maps=tuple(run_maps),
         labels=tuple(labels),
         resampled=tuple(resampled),
+        paths=tuple(str(getattr(r, "path", "")) for r in runs),
     )
     if "t" not in stats:
         out.t = None

@@ -425,6 +425,12 @@ class ChecksPanel(QWidget):
         self.error.setWordWrap(True)
         self.error.setVisible(False)
         lay.addWidget(self.error)
+        # several runs: whether they agree here, for the checked kernel (core.combine)
+        self.runs_note = QLabel("")
+        self.runs_note.setObjectName("checks_runs")
+        self.runs_note.setWordWrap(True)
+        self.runs_note.setVisible(False)
+        lay.addWidget(self.runs_note)
 
         self.flags_box = QWidget()
         self.flags_box.setObjectName("checks_flags")
@@ -568,7 +574,38 @@ class ChecksPanel(QWidget):
     def request(self) -> None:
         """Ask for the checks of the current voxel (coalesced; after the fits are shown)."""
         self._sync_kernels()
+        self._show_runs()
         self._timer.start()
+
+    def runs_text(self) -> str:
+        """The agreement between runs for the checked kernel ('' with one run)."""
+        st = self.state
+        if not getattr(st, "run_fits", None):
+            return ""
+        kernel = self.kernel()
+        c = next((c for c in st.combined if c.kernel == kernel), None)
+        lines = [f"{r.label}: {r.note}" for r in st.run_fits if r.note]
+        if c is None:
+            lines.insert(0, f"Runs: {len(st.run_fits)} open; too few can be fitted here.")
+            return "\n".join(lines)
+        if c.q is None or c.q_p is None:
+            head = f"Runs ({c.n_runs}, {kernel}): agreement undefined here."
+        else:
+            p = f"{c.q_p:.3g}" if c.q_p >= 1e-3 else f"{c.q_p:.2e}"
+            verdict = "they disagree" if c.q_p < 0.05 else "no sign that they disagree"
+            head = (
+                f"Runs ({c.n_runs}, {kernel}): Cochran's Q = {c.q:.3g} on {c.n_runs - 1} df, "
+                f"p = {p}: {verdict}."
+            )
+        lines.insert(0, head)
+        lines += [f.text for f in c.flags]
+        return "\n".join(lines)
+
+    def _show_runs(self) -> None:
+        text = self.runs_text()
+        if text != self.runs_note.text():
+            self.runs_note.setText(text)
+        self.runs_note.setVisible(bool(text))
 
     def showEvent(self, ev) -> None:
         super().showEvent(ev)

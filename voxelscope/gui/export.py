@@ -303,10 +303,8 @@ class _ReportWorker(QObject):
 
     @Slot()
     def run(self) -> None:
-        from voxelscope.core.report import write_report
-
         try:
-            result = write_report(**self.kwargs)
+            result = _write_any(self.kwargs)
         except VoxelscopeError as err:
             self.failed.emit(str(err))
         except Exception as err:  # never let a worker take the window down
@@ -344,6 +342,51 @@ class ReportJob(QObject):
         return self.thread.wait(ms)
 
 
+def _write_any(kwargs: dict):
+    """The one-run report, or with several runs open the several-run report."""
+    if "runs" in kwargs:
+        from voxelscope.core.runs_report import write_runs_report
+
+        return write_runs_report(**kwargs)
+    from voxelscope.core.report import write_report
+
+    return write_report(**kwargs)
+
+
+def _runs_report_kwargs(window, out_dir, what: str, force: bool) -> dict:
+    """Arguments of :func:`voxelscope.core.runs_report.write_runs_report` for every open run."""
+    from voxelscope.core.combine import same_grid
+    from voxelscope.core.marks import MarkList
+
+    state = window.state
+    bundles = state.bundles
+    labels = state.labels()
+    inputs = []
+    warnings = []
+    for label, b in zip(labels, bundles):
+        inputs += [(f"events {label}", b.events_path), (f"confounds {label}", b.confounds_path)]
+        warnings += [f"{label}: {w}" for w in b.warnings]
+    kwargs = dict(
+        out_dir=Path(out_dir),
+        runs=[b.run for b in bundles],
+        analyses=[b.analysis for b in bundles],
+        settings=state.settings,
+        labels=labels,
+        inputs=inputs,
+        force=force,
+        warnings=warnings,
+    )
+    if what == "marks":
+        if not len(state.marks):
+            raise InputError("there are no marks to report; add marks or report the voxel")
+        kwargs["marks"] = list(MarkList(state.marks))
+    elif same_grid([b.run for b in bundles]):
+        kwargs["voxel"] = tuple(state.voxel)
+    else:
+        kwargs["mm"] = tuple(float(v) for v in state.run.voxel_to_mm(tuple(state.voxel)))
+    return kwargs
+
+
 def _exists_error(message: str) -> bool:
     return "already exists" in message
 
@@ -354,6 +397,8 @@ def _report_kwargs(window, out_dir, what: str, force: bool) -> dict:
     state = window.state
     if state.run is None or state.analysis is None:
         raise InputError("a report needs an open run with its events (File > Open run)")
+    if getattr(state, "extra", None):
+        return _runs_report_kwargs(window, out_dir, what, force)
     bundle = state.bundle
     inputs = {
         "events": bundle.events_path,
@@ -417,10 +462,8 @@ def write_window_report(
         return None
 
     if not background:
-        from voxelscope.core.report import write_report
-
         try:
-            result = write_report(**kwargs)
+            result = _write_any(kwargs)
         except VoxelscopeError as err:
             return failed(str(err))
         finished_ok(result)

@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 
 from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt, Signal
-from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
+from PySide6.QtGui import QAction, QColor, QFont, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QHeaderView,
@@ -24,7 +24,7 @@ from PySide6.QtWidgets import (
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["FitsModel", "FitsPanel", "format_value"]
+__all__ = ["FitsModel", "FitsPanel", "format_value", "runs_summary"]
 
 RAW_ROLE = Qt.ItemDataRole.UserRole + 1
 
@@ -41,7 +41,14 @@ _BASE = [
 
 
 #: Typical widest cell texts of a column, for laying out the table before any fit.
-_TYPICAL = {"kernel": "double-gamma", "p": "1.00e-10", "p F": "1.00e-10", "df F": "00, 000"}
+_TYPICAL = {
+    "kernel": "double-gamma",
+    "p": "1.00e-10",
+    "p F": "1.00e-10",
+    "df F": "00, 000",
+    "run": "combined",
+    "Q p": "1.00e-10",
+}
 
 
 def format_value(column: str, value) -> str:
@@ -65,11 +72,37 @@ def format_value(column: str, value) -> str:
     v = float(value)
     if not math.isfinite(v):
         return "–"
-    if column in ("p", "p F"):
+    if column in ("p", "p F", "Q p"):
         return f"{v:.3g}" if v >= 1e-3 else f"{v:.2e}"
-    if column in ("t", "F", "R²", "rho"):
+    if column in ("t", "F", "R²", "rho", "Q"):
         return f"{v:.3f}"
     return f"{v:.4g}"
+
+
+def runs_summary(combined) -> list[str]:
+    """One line per kind of flag across kernels (the Checks part has the full sentences).
+
+    Examples
+    --------
+    >>> from voxelscope.core.combine import combine_fits
+    >>> c = combine_fits("gamma", "tap", ["a", "b", "c"], [3.0, 0, 0.1], [.1] * 3, [90] * 3)
+    >>> runs_summary([c])[1]
+    'The combined effect rests on a alone (gamma).'
+    """
+    seen: dict[tuple, list[str]] = {}
+    for c in combined:
+        for f in c.flags:
+            seen.setdefault((f.id, f.run), []).append(c.kernel)
+    out = []
+    for (ident, run), kernels in seen.items():
+        under = ", ".join(kernels)
+        if ident == "runs-disagree":
+            out.append(f"The runs disagree here (Cochran's Q p < 0.05) ({under}).")
+        elif ident == "one-run":
+            out.append(f"The combined effect rests on {run} alone ({under}).")
+        else:
+            out.append(f"{run} cannot be combined here ({under}).")
+    return out
 
 
 class FitsModel(QAbstractTableModel):
@@ -87,13 +120,68 @@ class FitsModel(QAbstractTableModel):
         self._columns: list[tuple[str, str]] = list(_BASE)
         self._rows: list[dict] = []
         state.fits_changed.connect(self._on_fits)
+        state.runs_changed.connect(lambda: self._on_fits(state.fits))
 
     # ------------------------------------------------------------------ data
+
+    def _several(self) -> tuple[list[tuple[str, str]], list[dict]] | None:
+        """Columns and rows with several runs: per kernel a row per run, then the combined
+        row (fixed effects, with Cochran's Q and its p)."""
+        st = self.state
+        if not st.run_fits:
+            return None
+        cols = list(_BASE)
+        cols.insert(2, ("run", "The run, or the fixed-effects combination of the runs"))
+        cols += [
+            ("Q", "Cochran's Q: how far the runs' estimates disagree (combined rows)"),
+            ("Q p", "Chi-square p of Q on (runs - 1) df; small p: the runs disagree"),
+        ]
+        rows: list[dict] = []
+        combined = {c.kernel: c for c in st.combined}
+        kernels = [f.kernel for f in (st.fits.fits if st.fits is not None else ())]
+        for i, kernel in enumerate(kernels):
+            for rf in st.run_fits:
+                f = rf.fits.fits[i] if rf.fits is not None and i < len(rf.fits.fits) else None
+                rows.append(
+                    {
+                        "": kernel,
+                        "kernel": kernel,
+                        "run": rf.label,
+                        "beta": None if f is None else f.beta,
+                        "variance": None if f is None else f.variance,
+                        "t": None if f is None else f.t,
+                        "df": None if f is None else f.df,
+                        "p": None if f is None else f.p,
+                        "R²": None if f is None else f.r2,
+                        "Q": None,
+                        "Q p": None,
+                    }
+                )
+            c = combined.get(kernel)
+            rows.append(
+                {
+                    "": kernel,
+                    "kernel": kernel,
+                    "run": "combined",
+                    "beta": None if c is None else c.beta,
+                    "variance": None if c is None else c.variance,
+                    "t": None if c is None else c.t,
+                    "df": None if c is None else (int(c.df) if float(c.df).is_integer() else c.df),
+                    "p": None if c is None else c.p,
+                    "R²": None,
+                    "Q": None if c is None else c.q,
+                    "Q p": None if c is None else c.q_p,
+                }
+            )
+        return cols, rows
 
     def _on_fits(self, fits) -> None:
         rows: list[dict] = []
         cols = list(_BASE)
-        if fits is not None and fits.fits:
+        several = self._several()
+        if several is not None:
+            cols, rows = several
+        elif fits is not None and fits.fits:
             ar1 = any(f.result.rho is not None for f in fits.fits)
             has_f = any(f.f_df is not None for f in fits.fits)
             if ar1:
@@ -121,8 +209,8 @@ class FitsModel(QAbstractTableModel):
                         "p F": f.f_p,
                     }
                 )
-        same_shape = cols == self._columns and [r["kernel"] for r in rows] == [
-            r["kernel"] for r in self._rows
+        same_shape = cols == self._columns and [(r["kernel"], r.get("run")) for r in rows] == [
+            (r["kernel"], r.get("run")) for r in self._rows
         ]
         if same_shape and rows:
             # same kernels and columns (a click): new numbers only, no reset of the view
@@ -161,12 +249,16 @@ class FitsModel(QAbstractTableModel):
         if role == RAW_ROLE:
             return value
         if role == Qt.ItemDataRole.TextAlignmentRole:
-            if name in ("", "kernel"):
+            if name in ("", "kernel", "run"):
                 return int(Qt.AlignmentFlag.AlignLeft | Qt.AlignmentFlag.AlignVCenter)
             return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
         if role == Qt.ItemDataRole.ForegroundRole and name == "kernel":
             return QColor("#1f1f1f")
-        if role == Qt.ItemDataRole.ToolTipRole and name not in ("", "kernel"):
+        if role == Qt.ItemDataRole.FontRole and row.get("run") == "combined":
+            font = QFont()
+            font.setBold(True)
+            return font
+        if role == Qt.ItemDataRole.ToolTipRole and name not in ("", "kernel", "run"):
             return None if value is None else repr(value)
         return None
 
@@ -348,6 +440,15 @@ class FitsPanel(QWidget):
             f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>High-pass</b> {hp}{shift}"
         )
         notes = list(fits.warnings) if fits is not None else []
+        st = self.state
+        if st.run_fits:
+            self.caption.setText(
+                self.caption.text()
+                + f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>Runs</b> {len(st.run_fits)}, combined by "
+                "fixed effects"
+            )
+            notes += [f"{r.label}: {r.note}" for r in st.run_fits if r.note]
+            notes += runs_summary(st.combined)
         if fits is not None and not fits.fits:
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))

@@ -44,6 +44,7 @@ from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, loa
 from voxelscope.gui.map_panel import MapPanel
 from voxelscope.gui.mapjobs import install_map_parts
 from voxelscope.gui.model_panel import ModelPanel
+from voxelscope.gui.runs import install as install_runs
 from voxelscope.gui.session_io import install_lab_kit
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
@@ -137,6 +138,7 @@ class MainWindow(QMainWindow):
         self._build_status()
         self._build_menus()
         install_lab_kit(self)  # Marks, Show mode, sessions, export and report (session_io.py)
+        install_runs(self)  # File > Add runs: several runs of one subject (runs.py)
         self._arranged = False
         self.auto_arrange = True  # False once a saved layout was restored
         self.state.message.connect(self._note)

@@ -131,6 +131,8 @@ class MapRequest:
     kernel: str
     stat: str = "t"
     other: str | None = None
+    #: several runs: the paths of every run; the map is their fixed-effects combination
+    runs: tuple[str, ...] = ()
 
     @property
     def stats(self) -> tuple[str, ...]:
@@ -167,12 +169,16 @@ def compute_request(
     request: MapRequest,
     progress: Callable[[float], bool | None] | None = None,
     cache: dict | None = None,
+    extra: tuple = (),
 ) -> MapOutcome:
     """Run one map request through :func:`voxelscope.core.maps.compute_map` (no Qt).
 
-    ``cache`` maps ``(settings, kernel, stats)`` to finished :class:`MapResult` objects;
-    maps found there are not computed again. ``progress(fraction)`` returning False cancels
-    (:class:`voxelscope.core.cache.Cancelled`).
+    ``cache`` maps ``(settings, kernel, stats)`` (plus the run paths for several runs) to
+    finished :class:`MapResult` objects; maps found there are not computed again.
+    ``progress(fraction)`` returning False cancels
+    (:class:`voxelscope.core.cache.Cancelled`). With ``request.runs``, ``extra`` holds the
+    other runs' ``(run, analysis)`` and the map is the fixed-effects combination
+    (:func:`voxelscope.core.combine.compute_combined_map`, the single-run map per run).
     """
     t0 = time.perf_counter()
     parts = [(request.kernel, request.stats)]
@@ -180,7 +186,7 @@ def compute_request(
         parts.append((request.other, ("t",)))
     results: list[MapResult] = []
     for n, (kernel, stats) in enumerate(parts):
-        key = (request.settings, kernel, stats)
+        key = (request.settings, kernel, stats) + ((request.runs,) if request.runs else ())
         hit = None if cache is None else cache.get(key)
         if hit is None:
             sub = None
@@ -189,7 +195,21 @@ def compute_request(
                 def sub(f: float, n: int = n) -> bool | None:
                     return progress((n + f) / len(parts))
 
-            hit = compute_map(run, analysis, request.settings, kernel, progress=sub, stats=stats)
+            if request.runs:
+                from voxelscope.core.combine import compute_combined_map
+
+                hit = compute_combined_map(
+                    [run, *(r for r, _a in extra)],
+                    [analysis, *(a for _r, a in extra)],
+                    request.settings,
+                    kernel,
+                    progress=sub,
+                    stats=stats,
+                )
+            else:
+                hit = compute_map(
+                    run, analysis, request.settings, kernel, progress=sub, stats=stats
+                )
         results.append(hit)
     diff = None
     if request.other is not None:
@@ -440,6 +460,7 @@ class LiveMap(QObject):
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
         state.map_changed.connect(self._on_map)
+        state.runs_changed.connect(self._on_runs)
 
     # ------------------------------------------------------------------ what to show
 
@@ -467,7 +488,8 @@ class LiveMap(QObject):
         other = self.other() if source == "difference" else None
         if source == "difference" and other is None:
             return None
-        return MapRequest(st.settings, kernel, stat, other)
+        runs = tuple(str(b.run.path) for b in st.bundles) if st.extra else ()
+        return MapRequest(st.settings, kernel, stat, other, runs)
 
     def is_busy(self) -> bool:
         return self.job is not None or self.timer.isActive() or self._pending
@@ -512,6 +534,11 @@ class LiveMap(QObject):
         elif self.state.map_settings.source != "file" and self.file_layer is not None:
             self.state.map_settings = self.state.map_settings.with_(source="file")
         self._seen = self._key()
+
+    def _on_runs(self) -> None:
+        """Runs added or removed: the model map becomes (or stops being) the combination."""
+        if self.state.run is not None and self.state.analysis is not None:
+            self.schedule(now=True)
 
     def _on_settings(self, _settings) -> None:
         if self.state.run is not None and self.state.analysis is not None:
@@ -586,9 +613,10 @@ class LiveMap(QObject):
                 return
         run, analysis = self.state.run, self.state.analysis
         cache = dict(self.cache)
+        extra = tuple((b.run, b.analysis) for b in self.state.extra) if req.runs else ()
 
         def fn(progress):
-            return compute_request(run, analysis, req, progress=progress, cache=cache)
+            return compute_request(run, analysis, req, progress=progress, cache=cache, extra=extra)
 
         job = BackgroundJob(fn, "the model map", owner=self)
         job.progress.connect(self.progress)
@@ -635,7 +663,8 @@ class LiveMap(QObject):
 
     def _remember(self, m: MapResult) -> None:
         stats = tuple(s for s in ("t", "beta", "variance", "z", "p") if getattr(m, s) is not None)
-        key = (m.settings, m.kernel, stats)
+        paths = tuple(getattr(m, "paths", ()))
+        key = (m.settings, m.kernel, stats) + ((paths,) if paths else ())
         self.cache[key] = m
         self.cache.move_to_end(key)
         while len(self.cache) > CACHE_SIZE:
@@ -693,6 +722,8 @@ class LiveMap(QObject):
         else:
             data = out.model.stat(req.stat)
             title = f"{req.stat} · {req.kernel}"
+            if req.runs:
+                title += f" · {len(req.runs)} runs"
             stat = req.stat
         data = np.asarray(data, dtype=np.float32)
         finite = np.abs(data[np.isfinite(data)])

@@ -163,6 +163,16 @@ def collect_session(window) -> Session:
         overlay = _overlay_path(window)
         if overlay is not None:
             files["overlay"] = overlay
+        # several runs: the added runs and their companions, as "run 2", "events 2", ...
+        from voxelscope.gui.runs import run_roles
+
+        for n, b in enumerate(getattr(state, "extra", ()), start=2):
+            role_run, role_events, role_conf = run_roles(n)
+            files[role_run] = Path(b.run.path)
+            if b.events_path is not None:
+                files[role_events] = Path(b.events_path)
+            if b.confounds_path is not None:
+                files[role_conf] = Path(b.confounds_path)
     map_settings = dataclasses.asdict(state.map_settings)
     return Session(
         files=files,
@@ -304,6 +314,7 @@ def apply_session(
     name = Path(loaded.path).name if loaded.path is not None else "session"
 
     def finish() -> None:
+        _add_session_runs(window, files, notes)
         _apply_settings(window, s, notes)
         window.state.set_marks(MarkList(s.marks))
         restore_layout(window, s.layout, geometry=geometry)
@@ -342,6 +353,26 @@ def apply_session(
     if not background:
         finish()
     return True
+
+
+def _add_session_runs(window, files: dict, notes: list[str]) -> None:
+    """Open the session's added runs ("run 2", "run 3", ...) with their companions."""
+    from voxelscope.gui.runs import add_run, run_roles
+
+    numbers = sorted(
+        int(r.split()[1]) for r in files if r.startswith("run ") and r.split()[1].isdigit()
+    )
+    for n in numbers:
+        role_run, role_events, role_conf = run_roles(n)
+        ok = add_run(
+            window,
+            files[role_run],
+            events=files.get(role_events),
+            confounds=files.get(role_conf),
+            background=False,
+        )
+        if not ok:
+            notes.append(f"the session's {role_run} could not be added: {window.last_error}")
 
 
 def _apply_settings(window, s: Session, notes: list[str]) -> None:

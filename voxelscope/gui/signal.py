@@ -19,6 +19,7 @@ from PySide6.QtCore import Qt
 from PySide6.QtGui import QColor, QFont
 from PySide6.QtWidgets import (
     QButtonGroup,
+    QComboBox,
     QHBoxLayout,
     QLabel,
     QRadioButton,
@@ -74,6 +75,13 @@ class SignalPanel(QWidget):
         self.title = QLabel("Signal")
         self.title.setObjectName("part_title")
         head.addWidget(self.title)
+        # several runs: which run is drawn (one at a time, each with its own fits)
+        self.run_box = QComboBox()
+        self.run_box.setObjectName("signal_run")
+        self.run_box.setToolTip("The run whose signal and fits are drawn")
+        self.run_box.setVisible(False)
+        self.run_box.activated.connect(self.state.set_signal_run)
+        head.addWidget(self.run_box)
         head.addSpacing(12)
         self.legend = QLabel("")
         self.legend.setObjectName("legend")
@@ -145,6 +153,7 @@ class SignalPanel(QWidget):
         state.settings_changed.connect(self._on_settings)
         state.fits_changed.connect(self._on_fits)
         state.units_changed.connect(self._on_units)
+        state.runs_changed.connect(self._on_runs)
 
     # ------------------------------------------------------------------ input
 
@@ -160,6 +169,24 @@ class SignalPanel(QWidget):
             button.blockSignals(False)
         self._on_fits(self.state.fits)
 
+    def _on_runs(self) -> None:
+        labels = self.state.labels() if len(self.state.bundles) > 1 else []
+        self.run_box.blockSignals(True)
+        self.run_box.clear()
+        self.run_box.addItems(labels)
+        self.run_box.setCurrentIndex(min(self.state.signal_run, max(0, len(labels) - 1)))
+        self.run_box.blockSignals(False)
+        self.run_box.setVisible(bool(labels))
+        self._x_span = None
+
+    def _shown(self):
+        """(run, analysis, series, fits) of the run drawn: the first, or the chosen one."""
+        st = self.state
+        other = st.shown_run() if st.signal_run > 0 else None
+        if other is None:
+            return st.run, st.analysis, st.series, st.fits
+        return other.bundle.run, other.bundle.analysis, other.series, other.fits
+
     def _on_run(self) -> None:
         self._band_key = None
         self._x_span = None
@@ -168,12 +195,12 @@ class SignalPanel(QWidget):
     def _on_settings(self, settings) -> None:
         self._update_bands()
 
-    def _times(self) -> np.ndarray:
-        run = self.state.run
+    def _times(self, run=None) -> np.ndarray:
+        run = self.state.run if run is None else run
         return np.arange(run.n_volumes) * run.tr + run.reference_time_s
 
     def _update_bands(self) -> None:
-        analysis = self.state.analysis
+        analysis = self._shown()[1]
         shift = self.state.settings.onset_shift_s
         key = (id(analysis), shift)
         if key == self._band_key:
@@ -200,10 +227,21 @@ class SignalPanel(QWidget):
                 self._bands.append(band)
 
     def _on_fits(self, fits) -> None:
-        run, y = self.state.run, self.state.series
-        if run is None or y is None:
+        run, _analysis, y, fits = self._shown()
+        if self.run_box.isVisible() and self.run_box.currentIndex() != self.state.signal_run:
+            self.run_box.setCurrentIndex(self.state.signal_run)
+        self._update_bands()
+        if run is None:
             return
-        t = self._times()
+        if y is None:  # the place is outside this run: nothing to draw
+            other = self.state.shown_run()
+            self.data_curve.setData([], [])
+            for name in self.curves:
+                self.curves[name].setData([], [])
+                self.resid_curves[name].setData([], [])
+            self.legend.setText(html.escape(other.note if other is not None else ""))
+            return
+        t = self._times(run)
         pct = self.state.units == "percent"
         mean = float(np.mean(y)) if np.all(np.isfinite(y)) else float("nan")
 
@@ -254,7 +292,7 @@ class SignalPanel(QWidget):
                 f'<span style="color:{col}; font-weight:bold">&#9473;&#9473;</span>'
                 f"&nbsp;{html.escape(name)}"
             )
-        analysis = self.state.analysis
+        analysis = self._shown()[1]
         if analysis is not None:
             for n, cond in enumerate(analysis.condition_names):
                 col = QColor(condition_colour(n))

@@ -13,6 +13,7 @@ from dataclasses import dataclass, replace
 import numpy as np
 from PySide6.QtCore import QObject, Signal
 
+from voxelscope.core.combine import CombinedFit, combine_fits, run_labels
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
@@ -22,7 +23,7 @@ from voxelscope.gui.orient import DisplayGrid
 
 qtfix.install()
 
-__all__ = ["MapSettings", "ViewerState"]
+__all__ = ["MapSettings", "RunFit", "ViewerState"]
 
 UNITS = ("data", "percent")
 
@@ -76,6 +77,21 @@ class MapSettings:
         return replace(self, **changes)
 
 
+@dataclass(frozen=True, eq=False)
+class RunFit:
+    """One run's fit at the current place (several runs): its voxel, series and fits.
+
+    ``voxel``, ``series`` and ``fits`` are None with a one-line ``note`` when the place is
+    outside that run or its model does not fit."""
+
+    label: str
+    bundle: RunBundle
+    voxel: tuple[int, int, int] | None
+    series: np.ndarray | None
+    fits: VoxelFits | None
+    note: str = ""
+
+
 class ViewerState(QObject):
     """Current run, voxel, model settings, map settings and fits, with change signals."""
 
@@ -89,6 +105,7 @@ class ViewerState(QObject):
     units_changed = Signal(str)
     message = Signal(str)
     marks_changed = Signal()
+    runs_changed = Signal()
 
     def __init__(self, parent: QObject | None = None) -> None:
         super().__init__(parent)
@@ -103,6 +120,13 @@ class ViewerState(QObject):
         self.contrast_text = ""
         self.contrast_problem = ""
         self.marks = MarkList()
+        # several runs of one subject: the other runs, each run's fit at the current place
+        # (label, voxel or None, series, fits or None, note) and the combination per kernel
+        self.extra: list[RunBundle] = []
+        self.run_fits: list[RunFit] = []
+        self.combined: list[CombinedFit] = []
+        self.signal_run = 0
+        self.refusal = ""
         qtfix.start_timer(self)
 
     # ------------------------------------------------------------------ accessors
@@ -153,7 +177,12 @@ class ViewerState(QObject):
             self.map_settings = self.map_settings.with_(limit=None)
         self.voxel = run.check_voxel(voxel) if voxel is not None else self._centre()
         self.fits = None
+        self.extra = []
+        self.run_fits = []
+        self.combined = []
+        self.signal_run = 0
         self.run_changed.emit()
+        self.runs_changed.emit()
         self.underlay_changed.emit()
         self.map_changed.emit()
         self.settings_changed.emit(self.settings)
@@ -298,8 +327,109 @@ class ViewerState(QObject):
             return False
         self.series = y
         self.fits = fits
+        self._fit_runs()
         self.fits_changed.emit(fits)
         return True
+
+    # ------------------------------------------------------------------ several runs
+
+    @property
+    def bundles(self) -> list[RunBundle]:
+        """Every open run: the first (shown in Slices), then the added ones."""
+        return ([] if self.bundle is None else [self.bundle]) + list(self.extra)
+
+    def labels(self) -> list[str]:
+        """Short names of the open runs (the BIDS ``run-`` entity where it tells them apart)."""
+        return run_labels([b.run.path for b in self.bundles])
+
+    def add_run(self, bundle: RunBundle) -> bool:
+        """Add another run of the subject; it is fitted at the same place (by mm) and
+        combined with the others. A run without a model, or whose conditions do not have
+        the current contrast, is refused with a message."""
+        if self.bundle is None or self.analysis is None:
+            return self._refuse("Open a run with its events first; then add the other runs.")
+        path = str(bundle.run.path)
+        if any(str(b.run.path) == path for b in self.bundles):
+            return self._refuse(f"{path} is already open")
+        if bundle.analysis is None:
+            return self._refuse(
+                f"{path}: no events file was found beside it; a run needs its events to be "
+                "combined (name it as BIDS does, X_events.tsv)"
+            )
+        try:
+            bundle.analysis.check_contrast(self.settings.contrast)
+        except VoxelscopeError as err:
+            return self._refuse(f"{path}: {err}")
+        self.extra.append(bundle)
+        for w in bundle.warnings:
+            self.message.emit(w)
+        self.runs_changed.emit()
+        self.recompute()
+        return True
+
+    def _refuse(self, text: str) -> bool:
+        self.refusal = text
+        self.message.emit(text)
+        return False
+
+    def remove_runs(self) -> None:
+        """Back to the first run alone."""
+        if not self.extra:
+            return
+        self.extra = []
+        self.signal_run = 0
+        self.runs_changed.emit()
+        self.recompute()
+
+    def set_signal_run(self, index: int) -> None:
+        """Which run Signal draws (0 the first)."""
+        index = int(min(max(index, 0), len(self.bundles) - 1)) if self.bundles else 0
+        if index != self.signal_run:
+            self.signal_run = index
+            self.fits_changed.emit(self.fits)
+
+    def shown_run(self) -> RunFit | None:
+        """The run Signal draws, with its fit (None for the first run alone)."""
+        if not self.run_fits or self.signal_run >= len(self.run_fits):
+            return None
+        return self.run_fits[self.signal_run]
+
+    def _fit_runs(self) -> None:
+        """Fit every added run at the place of the current voxel (its nearest voxel in mm)
+        and combine the runs per kernel; a run that cannot be fitted there is left out of
+        the combination with a note."""
+        self.run_fits = []
+        self.combined = []
+        if not self.extra or self.bundle is None:
+            return
+        labels = self.labels()
+        mm = self.run.voxel_to_mm(self.voxel)
+        out = [RunFit(labels[0], self.bundle, tuple(self.voxel), self.series, self.fits)]
+        for label, b in zip(labels[1:], self.extra):
+            try:
+                ijk = b.run.mm_to_voxel(tuple(float(v) for v in mm))
+                y = b.run.timeseries(ijk)
+                f = b.analysis.fit_voxel(y, self.settings)
+            except VoxelscopeError as err:
+                out.append(RunFit(label, b, None, None, None, str(err)))
+                continue
+            out.append(RunFit(label, b, ijk, y, f))
+        self.run_fits = out
+        usable = [r for r in out if r.fits is not None and r.fits.fits]
+        if len(usable) < 2:
+            return
+        for i, first in enumerate(usable[0].fits.fits):
+            per = [r.fits.fits[i] for r in usable]
+            self.combined.append(
+                combine_fits(
+                    first.kernel,
+                    first.contrast,
+                    [r.label for r in usable],
+                    [f.beta for f in per],
+                    [f.variance for f in per],
+                    [f.df for f in per],
+                )
+            )
 
     def _centre(self) -> tuple[int, int, int]:
         run = self.run
