@@ -286,3 +286,48 @@ def test_control_characters_in_condition_names_do_not_reach_the_terminal(tmp_pat
     out = capsys.readouterr()
     assert "\x1b" not in out.out + out.err and "\u202e" not in out.out + out.err
     assert "tone" in out.out
+
+
+# ------------------------------------------------------------------ absurd option values
+
+
+@pytest.mark.parametrize(
+    ("option", "says"),
+    [
+        (["--kernels", "fir", "--fir-bin", "1e9"], "--fir-bin must be at most 600 s"),
+        (["--kernels", "fir", "--fir-bins", "1000000000"], "--fir-bins must be at most 1000"),
+        (["--highpass", "1e-320"], "--highpass must be at least 1 s"),
+        (["--onset-shift", "nan"], "--onset-shift must be a finite number of seconds"),
+        (["--onset-shift", "inf"], "--onset-shift must be a finite number"),
+        (["--tr", "1e-320"], "--tr must be at least 0.01 s"),
+        (["--contrast", "1e309*tap"], "coefficient 1e309 is not a number between"),
+        (["--contrast", "nan*tap"], "unknown name"),
+    ],
+)
+def test_absurd_option_values_are_one_line(tmp_path, capsys, option, says):
+    run, events = _run(tmp_path)
+    assert main(_fit(run, "--events", events, *option)) == 2
+    assert says in _one_error_line(capsys)
+
+
+def test_long_contrast_is_echoed_only_as_an_excerpt(tmp_path, capsys):
+    run, events = _run(tmp_path)
+    assert main(_fit(run, "--events", events, "--contrast", "q" * 100_000)) == 2
+    line = _one_error_line(capsys)
+    assert "100000 characters" in line and len(line) < 300
+
+
+def test_unknown_contrast_name_is_echoed_only_as_an_excerpt(tmp_path, capsys):
+    run, events = _run(tmp_path)
+    assert main(_fit(run, "--events", events, "--contrast", "z" * 1500)) == 2
+    line = _one_error_line(capsys)
+    assert "unknown name" in line and "z" * 100 not in line
+
+
+def test_long_bad_option_value_is_cut(tmp_path, capsys):
+    run, events = _run(tmp_path)
+    with pytest.raises(SystemExit) as info:
+        main(_fit(run, "--events", events, "--kernels", "k" * 50_000))
+    assert info.value.code == 2
+    line = _one_error_line(capsys)
+    assert len(line) < 500

@@ -112,8 +112,18 @@ def _parser_for(command: str) -> argparse.ArgumentParser:
     return parser
 
 
+class _OneLineParser(argparse.ArgumentParser):
+    """Argument errors as one line (``voxelscope: error: ...``, exit 2), not usage + error."""
+
+    def error(self, message: str) -> None:  # type: ignore[override]
+        text = _error_line(Exception(message))
+        if len(text) > 300:
+            text = text[:300] + "…"
+        self.exit(2, f"voxelscope: error: {text} (see {self.prog} --help)\n")
+
+
 def _top_parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(
+    parser = _OneLineParser(
         prog="voxelscope",
         description=(
             "Inspect a first-level fMRI model voxel by voxel. Run without a command to open "

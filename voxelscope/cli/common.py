@@ -268,9 +268,8 @@ def analysis_from_args(
     from ..core.cache import terminal_progress
     from ..core.loader import load_inputs
 
+    check_model_args(args)  # absurd values: one line before anything is opened
     request = request_from_args(args, summarize=summarize)
-    if int(args.fir_bins) < 1:
-        raise InputError("--fir-bins must be at least 1")
     got = load_inputs(
         request,
         progress=terminal_progress() if progress else None,
@@ -298,6 +297,40 @@ def analysis_from_args(
         list(got.warnings),
         got,
     )
+
+
+#: Model fields and the options that set them (for messages).
+_OPTIONS = {
+    "highpass_s": "--highpass",
+    "onset_shift_s": "--onset-shift",
+    "fir_bins": "--fir-bins",
+    "fir_bin_s": "--fir-bin",
+    "tr": "--tr",
+}
+
+
+def check_model_args(args: argparse.Namespace) -> None:
+    """One line for a model option outside its plausible range (see core.limits)."""
+    from ..core.inputs import excerpt
+    from ..core.limits import CONTRAST_CHARS, setting_problem
+
+    values = {
+        "highpass_s": getattr(args, "highpass", None),
+        "onset_shift_s": getattr(args, "onset_shift", None),
+        "fir_bins": getattr(args, "fir_bins", None),
+        "fir_bin_s": getattr(args, "fir_bin", None),
+        "tr": getattr(args, "tr", None),
+    }
+    for name, value in values.items():
+        problem = setting_problem(name, value)
+        if problem is not None:
+            raise InputError(f"{_OPTIONS[name]} {problem}")
+    contrast = getattr(args, "contrast", None)
+    if contrast is not None and len(str(contrast)) > CONTRAST_CHARS:
+        raise InputError(
+            f"--contrast '{excerpt(contrast)}' is {len(str(contrast))} characters long; "
+            f"a contrast has at most {CONTRAST_CHARS}"
+        )
 
 
 def companions_text(loaded: Loaded) -> list[str]:

@@ -249,7 +249,16 @@ def parse_contrast(
         if default is None:
             raise InputError("no contrast given; name a condition, e.g. --contrast tone")
         expr = default
+    from .inputs import excerpt
+    from .limits import CONTRAST_CHARS, CONTRAST_COEFFICIENT
+
     text = str(expr)
+    if len(text) > CONTRAST_CHARS:
+        raise InputError(
+            f"contrast '{excerpt(text)}' is {len(text)} characters long; "
+            f"a contrast has at most {CONTRAST_CHARS}"
+        )
+    expr = excerpt(text, 80)  # messages quote at most this much
     lookup: dict[str, list[int]] = {}
     for i, n in enumerate(names):
         lookup[n] = [i]
@@ -285,6 +294,11 @@ def parse_contrast(
         m = None if _known_name_at(text, pos, known) else _NUM.match(text, pos)
         if m:
             coef = float(m.group(1))
+            if not abs(coef) <= CONTRAST_COEFFICIENT:  # also NaN and inf (1e309)
+                raise InputError(
+                    f"contrast '{expr}': coefficient {excerpt(m.group(1), 20)} is not a "
+                    f"number between -{CONTRAST_COEFFICIENT:g} and {CONTRAST_COEFFICIENT:g}"
+                )
             pos = m.end()
             if pos < len(text) and text[pos] == "*":
                 pos += 1
@@ -310,8 +324,10 @@ def parse_contrast(
         conds = list(groups) if groups else []
         offer = conds if conds else names
         raise InputError(
-            f"contrast '{expr}': unknown name(s) {', '.join(repr(u) for u in unknown)}; "
-            f"use {', '.join(offer)}"
+            f"contrast '{expr}': unknown name(s) "
+            f"{', '.join(repr(excerpt(u)) for u in unknown[:5])}; "
+            f"use {', '.join(excerpt(o) for o in offer[:20])}"
+            + (f" and {len(offer) - 20} more" if len(offer) > 20 else "")
         )
     if n_terms == 0 or not np.any(w):
         raise InputError(f"contrast '{expr}' has no non-zero weights; name at least one condition")
