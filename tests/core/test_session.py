@@ -173,7 +173,7 @@ def _write(tmp_path, data, name="s.voxelscope.json"):
         ({"version": "1"}, r"field 'version' must be a whole number"),
         ({"model": {"noise": "ar2"}}, r"field 'model.noise' must be 'ols' or 'ar1'"),
         ({"model": {"kernels": ["spline"]}}, r"field 'model.kernels' has unknown kernel"),
-        ({"model": {"highpass_s": -5}}, r"field 'model.highpass_s' must be a positive"),
+        ({"model": {"highpass_s": -5}}, r"field 'model.highpass_s' must be at least 1 s"),
         ({"voxel": [1, 2]}, r"field 'voxel' must be \[i, j, k\]"),
         ({"files": {"run": {"sha256": "x"}}}, r"field 'files.run.path' must be text"),
         ({"marks": [{"x_mm": "a"}]}, r"field 'marks' is not valid"),

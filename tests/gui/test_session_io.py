@@ -141,7 +141,8 @@ def test_moved_files_can_be_located(qtbot, ras_run, tmp_path):
     assert b.state.settings.contrast == "tone - tap"
 
 
-def test_changed_input_is_used_with_a_warning(qtbot, ras_run, tmp_path):
+def test_changed_input_is_not_read_until_located(qtbot, ras_run, tmp_path):
+    """A changed input (digest differs) is asked for; offscreen it is skipped, one line."""
     a = new_window(qtbot, tmp_path, "a")
     prepare_view(a, ras_run)
     path = save_window_session(a, tmp_path / "view.voxelscope.json")

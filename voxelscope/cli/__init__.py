@@ -83,7 +83,7 @@ def quiet_libraries() -> Iterator[None]:
         logging.lastResort = old_last_resort
 
 
-def _error_line(exc: BaseException) -> str:
+def _error_line(exc: object) -> str:
     text = " ".join(str(exc).split())
     if len(text) > MAX_ERROR_CHARS:
         text = text[:MAX_ERROR_CHARS] + "…"
@@ -208,7 +208,8 @@ def _run(argv: list[str]) -> int:
     try:
         return int(args.handler(args) or 0)
     except VoxelscopeError as exc:
-        print(f"voxelscope: error: {_error_line(exc)}", file=sys.stderr)
+        for line in getattr(exc, "problems", None) or [exc]:  # a session: one line each
+            print(f"voxelscope: error: {_error_line(line)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("voxelscope: interrupted", file=sys.stderr)

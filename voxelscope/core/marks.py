@@ -93,6 +93,11 @@ class Mark:
             raise InputError(
                 "a mark needs numeric x_mm, y_mm and z_mm; fix or delete that mark"
             ) from None
+        if not all(abs(v) <= 1e6 for v in xyz):  # also NaN and inf
+            raise InputError(
+                "a mark's x_mm, y_mm and z_mm must be finite positions within 1 km of the "
+                "origin; fix or delete that mark"
+            )
         title, note = data.get("title", ""), data.get("note", "")
         if not isinstance(title, str) or not isinstance(note, str):
             raise InputError("a mark's title and note must be text")

@@ -56,17 +56,23 @@ from typing import Any
 from .atomic import write_text
 from .errors import InputError
 from .hrf import KERNEL_NAMES
-from .inputs import parse_json, read_input_text
+from .inputs import excerpt, parse_json, read_input_text
+from .limits import CONTRAST_CHARS, setting_problem
 from .marks import MarkList
 from .model import ModelSettings
 
 __all__ = [
+    "MAP_COLOUR_SCALES",
+    "MAP_SOURCES",
+    "MAP_STATS",
+    "MAX_VOXEL_INDEX",
     "SCHEMA",
     "SESSION_SUFFIX",
     "VERSION",
     "FileProblem",
     "LoadedSession",
     "Session",
+    "SessionInvalid",
     "autosave_dir",
     "autosave_path",
     "clear_recovery",
@@ -83,6 +89,15 @@ SCHEMA = "voxelscope-session"
 VERSION = 1
 SESSION_SUFFIX = ".voxelscope.json"
 _CHUNK = 1 << 20
+
+#: Colour scales, overlay sources and statistics a session's map settings may name.
+MAP_COLOUR_SCALES = ("CET-D1", "CET-D1A", "CET-D3", "CET-D9")
+MAP_SOURCES = ("model", "difference", "file", "disagreement")
+MAP_STATS = ("t", "z", "beta", "variance", "p", "log10p")
+#: No grid has more voxels along an axis than this (NIfTI-1 stores dimensions as int16).
+MAX_VOXEL_INDEX = 1_000_000
+#: Most problems listed for one session file.
+_MAX_PROBLEMS = 20
 
 # version n -> function turning a version-n dict into a version-(n+1) dict
 _UPGRADES: dict[int, Callable[[dict[str, Any]], dict[str, Any]]] = {}
@@ -128,7 +143,9 @@ class FileProblem:
         The path as written in the session file.
     path : Path
         Where it was looked for (resolved against the session's folder).
-    kind : {"missing", "digest"}
+    kind : {"missing", "digest", "unverified"}
+        ``"digest"``: the content differs from the recorded SHA-256; ``"unverified"``: no
+        digest was recorded. Neither file is read before the user confirms it.
     message : str
         One line for the user.
     """
@@ -155,6 +172,17 @@ class LoadedSession:
             more = len(self.problems) - 1
             extra = f" (and {more} more file problem{'s' if more > 1 else ''})" if more else ""
             raise InputError(self.problems[0].message + extra)
+
+
+class SessionInvalid(InputError):
+    """A session file with one or more bad fields; ``problems`` holds one line each.
+
+    ``str(err)`` is the lines joined by newlines; front ends show one line per problem.
+    """
+
+    def __init__(self, problems: list[str]) -> None:
+        self.problems = list(problems)
+        super().__init__("\n".join(self.problems))
 
 
 # ----------------------------------------------------------------------------- digests
@@ -287,6 +315,16 @@ class _Check:
 
     def __init__(self, source: str) -> None:
         self.source = source
+        self.problems: list[str] = []
+
+    def collect(self, fn: Callable[[], Any], default: Any = None) -> Any:
+        """Run one field's check; a problem is recorded and ``default`` returned."""
+        try:
+            return fn()
+        except InputError as err:
+            if len(self.problems) < _MAX_PROBLEMS:
+                self.problems.append(str(err))
+            return default
 
     def fail(self, fieldname: str, what: str) -> InputError:
         return InputError(
@@ -302,19 +340,23 @@ class _Check:
         if v is None and allow_none:
             return None
         if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise self.fail(name, f"must be a number{' or null' if allow_none else ''}, not {v!r}")
+            raise self.fail(
+                name, f"must be a number{' or null' if allow_none else ''}, not {excerpt(repr(v))}"
+            )
         return float(v)
 
     def integer(self, v: Any, name: str) -> int:
         if isinstance(v, bool) or not isinstance(v, int):
-            raise self.fail(name, f"must be a whole number, not {v!r}")
+            raise self.fail(name, f"must be a whole number, not {excerpt(repr(v))}")
         return int(v)
 
     def text(self, v: Any, name: str, allow_none: bool = False) -> str | None:
         if v is None and allow_none:
             return None
         if not isinstance(v, str):
-            raise self.fail(name, f"must be text{' or null' if allow_none else ''}, not {v!r}")
+            raise self.fail(
+                name, f"must be text{' or null' if allow_none else ''}, not {excerpt(repr(v))}"
+            )
         return v
 
     def texts(self, v: Any, name: str, allow_none: bool = False) -> tuple[str, ...] | None:
@@ -326,61 +368,143 @@ class _Check:
 
 
 def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> ModelSettings:
+    """Model settings; each bad field is one problem in ``c`` (and the default is kept)."""
     known = {f.name for f in fields(ModelSettings)}
     for k in sorted(set(d) - known):
-        warnings.append(f"{c.source}: unknown model setting '{k}' ignored")
+        warnings.append(f"{c.source}: unknown model setting '{excerpt(k)}' ignored")
     kw: dict[str, Any] = {}
-    if "kernels" in d:
+
+    def kernels() -> tuple[str, ...]:
         ks = c.texts(d["kernels"], "model.kernels")
-        bad = [k for k in ks if k.lower() not in KERNEL_NAMES]
+        bad = [excerpt(k) for k in ks if k.lower() not in KERNEL_NAMES]
         if bad or not ks:
             raise c.fail(
                 "model.kernels",
-                f"has unknown kernel(s) {', '.join(bad)}; use {', '.join(KERNEL_NAMES)}"
+                f"has unknown kernel(s) {', '.join(bad[:5])}; use {', '.join(KERNEL_NAMES)}"
                 if bad
                 else "is empty; list at least one kernel",
             )
-        kw["kernels"] = ks
-    if "contrast" in d:
-        kw["contrast"] = c.text(d["contrast"], "model.contrast", allow_none=True)
-    if "noise" in d:
-        noise = c.text(d["noise"], "model.noise")
-        if noise not in ("ols", "ar1"):
-            raise c.fail("model.noise", f"must be 'ols' or 'ar1', not {noise!r}")
-        kw["noise"] = noise
-    if "highpass_s" in d:
-        hp = c.number(d["highpass_s"], "model.highpass_s", allow_none=True)
-        if hp is not None and hp <= 0:
-            raise c.fail("model.highpass_s", "must be a positive number of seconds or null")
-        kw["highpass_s"] = hp
-    if "confound_columns" in d:
-        kw["confound_columns"] = c.texts(
-            d["confound_columns"], "model.confound_columns", allow_none=True
-        )
-    if "onset_shift_s" in d:
-        kw["onset_shift_s"] = c.number(d["onset_shift_s"], "model.onset_shift_s")
-    if "derivatives" in d:
+        return ks
+
+    def contrast() -> str | None:
+        text = c.text(d["contrast"], "model.contrast", allow_none=True)
+        if text is not None and len(text) > CONTRAST_CHARS:
+            raise c.fail("model.contrast", f"is {len(text)} characters long")
+        return text
+
+    def noise() -> str:
+        value = c.text(d["noise"], "model.noise")
+        if value not in ("ols", "ar1"):
+            raise c.fail("model.noise", f"must be 'ols' or 'ar1', not '{excerpt(value)}'")
+        return value
+
+    def ranged(name: str, integer: bool = False, allow_none: bool = False):
+        def check():
+            where = f"model.{name}"
+            v = d[name]
+            if v is None and allow_none:
+                return None
+            v = c.integer(v, where) if integer else c.number(v, where)
+            problem = setting_problem(name, v)
+            if problem is not None:
+                raise c.fail(where, problem)
+            return v
+
+        return check
+
+    def derivatives() -> int:
         der = c.integer(d["derivatives"], "model.derivatives")
         if der not in (0, 1, 2):
             raise c.fail("model.derivatives", f"must be 0, 1 or 2, not {der}")
-        kw["derivatives"] = der
-    if "fir_bins" in d:
-        nb = c.integer(d["fir_bins"], "model.fir_bins")
-        if nb < 1:
-            raise c.fail("model.fir_bins", "must be at least 1")
-        kw["fir_bins"] = nb
-    if "fir_bin_s" in d:
-        bs = c.number(d["fir_bin_s"], "model.fir_bin_s", allow_none=True)
-        if bs is not None and bs <= 0:
-            raise c.fail("model.fir_bin_s", "must be a positive number of seconds or null")
-        kw["fir_bin_s"] = bs
-    return ModelSettings(**kw)
+        return der
+
+    checks = {
+        "kernels": kernels,
+        "contrast": contrast,
+        "noise": noise,
+        "highpass_s": ranged("highpass_s", allow_none=True),
+        "confound_columns": lambda: c.texts(
+            d["confound_columns"], "model.confound_columns", allow_none=True
+        ),
+        "onset_shift_s": ranged("onset_shift_s"),
+        "derivatives": derivatives,
+        "fir_bins": ranged("fir_bins", integer=True),
+        "fir_bin_s": ranged("fir_bin_s", allow_none=True),
+    }
+    bad = object()
+    for name, check in checks.items():
+        if name in d:
+            value = c.collect(check, bad)
+            if value is not bad:
+                kw[name] = value
+    for name in sorted(known - set(checks)):  # fields added later: passed on as given
+        if name in d:
+            kw[name] = tuple(d[name]) if isinstance(d[name], list) else d[name]
+    try:
+        return ModelSettings(**kw)
+    except (TypeError, ValueError, InputError) as err:
+        c.problems.append(f"{c.source}: field 'model' is not valid ({excerpt(err, 80)})")
+        return ModelSettings()
+
+
+def _map_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> dict[str, Any]:
+    """Map settings checked field by field: numbers in range, names from the known lists."""
+    out: dict[str, Any] = {}
+
+    def number(name: str, allow_none: bool = False):
+        def check():
+            v = c.number(d[name], f"map.{name}", allow_none=allow_none)
+            problem = setting_problem(name, v)
+            if problem is not None:
+                raise c.fail(f"map.{name}", problem)
+            return v
+
+        return check
+
+    def boolean(name: str):
+        def check():
+            if not isinstance(d[name], bool):
+                raise c.fail(f"map.{name}", f"must be true or false, not {excerpt(repr(d[name]))}")
+            return d[name]
+
+        return check
+
+    def one_of(name: str, allowed: tuple[str, ...], allow_none: bool = False):
+        def check():
+            v = c.text(d[name], f"map.{name}", allow_none=allow_none)
+            if v is not None and v not in allowed:
+                raise c.fail(f"map.{name}", f"is '{excerpt(v)}'; use one of {', '.join(allowed)}")
+            return v
+
+        return check
+
+    checks = {
+        "threshold": number("threshold"),
+        "opacity": number("opacity"),
+        "limit": number("limit", allow_none=True),
+        "visible": boolean("visible"),
+        "colour_scale": one_of("colour_scale", MAP_COLOUR_SCALES),
+        "source": one_of("source", MAP_SOURCES),
+        "kernel": one_of("kernel", KERNEL_NAMES, allow_none=True),
+        "other_kernel": one_of("other_kernel", KERNEL_NAMES, allow_none=True),
+        "stat": one_of("stat", MAP_STATS),
+    }
+    bad = object()
+    for name in d:
+        check = checks.get(name)
+        if check is None:  # the window's own extra fields: kept as they are
+            out[name] = d[name]
+            continue
+        v = c.collect(check, bad)
+        if v is not bad:
+            out[name] = v
+    return out
 
 
 def _upgrade(data: dict[str, Any], c: _Check) -> dict[str, Any]:
     version = data.get("version")
     if isinstance(version, bool) or not isinstance(version, int):
-        raise c.fail("version", f"must be a whole number, not {version!r}")
+        raise c.fail("version", f"must be a whole number, not {excerpt(repr(version))}")
     if version > VERSION:
         raise InputError(
             f"{c.source}: session version {version} was written by a newer voxelscope "
@@ -420,43 +544,78 @@ def session_from_json(
 
     files: dict[str, Path] = {}
     records: dict[str, dict[str, Any]] = {}
-    for role, rec in c.obj(data.get("files", {}), "files").items():
-        rec = c.obj(rec, f"files.{role}")
-        stored = c.text(rec.get("path"), f"files.{role}.path")
-        absolute = c.text(rec.get("absolute"), f"files.{role}.absolute", allow_none=True)
-        digest = c.text(rec.get("sha256"), f"files.{role}.sha256", allow_none=True)
-        size = rec.get("size")
-        if size is not None:
-            size = c.integer(size, f"files.{role}.size")
-        p = Path(stored).expanduser()
-        files[role] = Path(os.path.abspath(p if p.is_absolute() else base / p))
-        records[role] = {"path": stored, "absolute": absolute, "sha256": digest, "size": size}
+    for role, rec in (c.collect(lambda: c.obj(data.get("files", {}), "files"), {}) or {}).items():
 
-    model = _model_from_json(c.obj(data.get("model", {}), "model"), c, warnings)
+        def one_file(role=role, rec=rec) -> None:
+            rec = c.obj(rec, f"files.{role}")
+            stored = c.text(rec.get("path"), f"files.{role}.path")
+            absolute = c.text(rec.get("absolute"), f"files.{role}.absolute", allow_none=True)
+            digest = c.text(rec.get("sha256"), f"files.{role}.sha256", allow_none=True)
+            size = rec.get("size")
+            if size is not None:
+                size = c.integer(size, f"files.{role}.size")
+                if size < 0:
+                    raise c.fail(f"files.{role}.size", "must not be negative")
+            if "\x00" in stored or (absolute and "\x00" in absolute):
+                raise c.fail(f"files.{role}.path", "holds a NUL character")
+            p = Path(stored).expanduser()
+            files[role] = Path(os.path.abspath(p if p.is_absolute() else base / p))
+            records[role] = {"path": stored, "absolute": absolute, "sha256": digest, "size": size}
+
+        c.collect(one_file)
+
+    model_json = c.collect(lambda: c.obj(data.get("model", {}), "model"), {})
+    model = _model_from_json(model_json or {}, c, warnings)
 
     kernels: dict[str, dict[str, float]] = {}
-    for name, params in c.obj(data.get("kernels", {}), "kernels").items():
-        if name.lower() not in KERNEL_NAMES:
-            raise c.fail(f"kernels.{name}", f"is not a kernel; use {', '.join(KERNEL_NAMES)}")
-        params = c.obj(params, f"kernels.{name}")
-        kernels[name] = {k: c.number(v, f"kernels.{name}.{k}") for k, v in params.items()}
+    for name, params in (
+        c.collect(lambda: c.obj(data.get("kernels", {}), "kernels"), {}) or {}
+    ).items():
 
-    voxel = data.get("voxel")
-    if voxel is not None:
+        def one_kernel(name=name, params=params) -> None:
+            if name.lower() not in KERNEL_NAMES:
+                raise c.fail(
+                    f"kernels.{excerpt(name)}", f"is not a kernel; use {', '.join(KERNEL_NAMES)}"
+                )
+            params = c.obj(params, f"kernels.{name}")
+            kernels[name] = {k: c.number(v, f"kernels.{name}.{k}") for k, v in params.items()}
+
+        c.collect(one_kernel)
+
+    def get_voxel() -> tuple[int, int, int] | None:
+        voxel = data.get("voxel")
+        if voxel is None:
+            return None
         if not isinstance(voxel, list) or len(voxel) != 3:
             raise c.fail("voxel", "must be [i, j, k] or null")
-        voxel = tuple(c.integer(v, "voxel") for v in voxel)
-        if min(voxel) < 0:
+        ijk = tuple(c.integer(v, "voxel") for v in voxel)
+        if min(ijk) < 0:
             raise c.fail("voxel", "must not be negative")
+        if max(ijk) > MAX_VOXEL_INDEX:
+            raise c.fail("voxel", f"has an index above {MAX_VOXEL_INDEX}, larger than any grid")
+        return ijk  # type: ignore[return-value]
 
-    map_settings = c.obj(data.get("map", {}), "map")
-    try:
-        marks = MarkList.from_json(data.get("marks", []))
-    except InputError as err:
-        raise c.fail("marks", f"is not valid: {err}") from None
-    layout = data.get("layout")
-    if layout is not None and not isinstance(layout, (dict, str)):
-        raise c.fail("layout", "must be an object, text or null")
+    voxel = c.collect(get_voxel)
+    map_json = c.collect(lambda: c.obj(data.get("map", {}), "map"), {})
+    map_settings = _map_from_json(map_json or {}, c, warnings)
+
+    def get_marks() -> MarkList:
+        try:
+            return MarkList.from_json(data.get("marks", []))
+        except InputError as err:
+            raise c.fail("marks", f"is not valid: {excerpt(err, 120)}") from None
+
+    marks = c.collect(get_marks, MarkList())
+
+    def get_layout():
+        layout = data.get("layout")
+        if layout is not None and not isinstance(layout, (dict, str)):
+            raise c.fail("layout", "must be an object, text or null")
+        return layout
+
+    layout = c.collect(get_layout)
+    if c.problems:
+        raise SessionInvalid(c.problems)
     session = Session(files, model, kernels, voxel, map_settings, marks, layout)
     return session, records, warnings
 
@@ -473,6 +632,12 @@ def _check_file(
         msg = f"{source}: the {role} file {stored} is missing; open it again from where it moved"
         return path, FileProblem(role, stored, path, "missing", msg)
     digest = rec.get("sha256")
+    if verify and not digest:
+        msg = (
+            f"{source}: the {role} file {stored} has no recorded content digest; locate it "
+            "to confirm it is the right file"
+        )
+        return found, FileProblem(role, stored, found, "unverified", msg)
     if verify and digest:
         size = rec.get("size")
         same = (size is None or found.stat().st_size == size) and file_digest(found) == digest

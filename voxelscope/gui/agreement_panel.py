@@ -14,6 +14,7 @@ each alternative) and shows its plain statement.
 
 from __future__ import annotations
 
+import html
 import math
 from pathlib import Path
 
@@ -127,10 +128,12 @@ class AgreementPanel(QWidget):
         lay.addLayout(grid)
 
         self.summary = QLabel("")
+        self.summary.setTextFormat(Qt.TextFormat.RichText)  # numbers only
         self.summary.setObjectName("agreement_summary")
         self.summary.setWordWrap(True)
         lay.addWidget(self.summary)
         self.at_voxel = QLabel("")
+        self.at_voxel.setTextFormat(Qt.TextFormat.RichText)  # numbers only
         self.at_voxel.setObjectName("agreement_at_voxel")
         self.at_voxel.setWordWrap(True)
         lay.addWidget(self.at_voxel)
@@ -426,7 +429,7 @@ class AgreementPanel(QWidget):
             name = self.their_path.name if self.their_path else "theirs"
             for ext in (".nii.gz", ".nii"):
                 name = name[: -len(ext)] if name.endswith(ext) else name
-            self.plot.setLabel("left", f"theirs ({name.split('_')[-1]})")
+            self.plot.setLabel("left", f"theirs ({html.escape(name.split('_')[-1])})")
         self._on_voxel(self.state.voxel)
 
     def value_at(self, voxel) -> tuple[float | None, float | None]:

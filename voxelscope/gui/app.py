@@ -85,6 +85,12 @@ def demo_paths() -> dict:
     return out
 
 
+def _print_errors(message: str) -> None:
+    """The window's last error on stderr, one ``voxelscope: error:`` line per problem."""
+    for line in str(message).splitlines() or [""]:
+        print(f"voxelscope: error: {line}", file=sys.stderr)
+
+
 def _ensure_platform(screenshot: str | None) -> None:
     if screenshot is not None and not os.environ.get("QT_QPA_PLATFORM"):
         if not os.environ.get("DISPLAY") and not os.environ.get("WAYLAND_DISPLAY"):
@@ -241,7 +247,7 @@ def launch(
         window.show()
         if session is not None:
             if not open_session(window, session, locate=None, geometry=False):
-                print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+                _print_errors(window.last_error)
                 window.close()
                 return 2
         elif run is not None:
@@ -249,7 +255,7 @@ def launch(
                 run, events, confounds, anat, stat_map, tr, voxel, mm, background=False
             )
             if not ok:
-                print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+                _print_errors(window.last_error)
                 window.close()
                 return 2
             if demo:
@@ -263,7 +269,7 @@ def launch(
         if save_session is not None and not _save_session(
             window, save_session, ask=False, force=force
         ):
-            print(f"voxelscope: error: {window.last_error}", file=sys.stderr)
+            _print_errors(window.last_error)
             code = 2
         try:
             window.save_image(screenshot, size, force=force)

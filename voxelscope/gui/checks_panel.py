@@ -56,6 +56,7 @@ from voxelscope.core.checks import VoxelChecks, voxel_checks
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.plaintext import esc
 from voxelscope.gui.sizing import FlowButtons
 from voxelscope.gui.state import ViewerState
 
@@ -417,6 +418,7 @@ class ChecksPanel(QWidget):
         head.addWidget(self.status)
         lay.addLayout(head)
         self.caption = QLabel("")
+        self.caption.setTextFormat(Qt.TextFormat.RichText)  # outside text escaped (esc)
         self.caption.setObjectName("checks_caption")
         self.caption.setWordWrap(True)
         lay.addWidget(self.caption)
@@ -721,8 +723,8 @@ class ChecksPanel(QWidget):
             i, j, k = key[4]
             noise = "AR(1)" if checks.noise == "ar1" else "OLS"
             self.caption.setText(
-                f"<b>{checks.kernel}</b> fit at voxel ({i}, {j}, {k}) · contrast "
-                f"{checks.contrast} · {noise} · response of {checks.condition}"
+                f"<b>{esc(checks.kernel)}</b> fit at voxel ({i}, {j}, {k}) · contrast "
+                f"{esc(checks.contrast)} · {noise} · response of {esc(checks.condition)}"
             )
         self.checks_shown.emit(checks)
 

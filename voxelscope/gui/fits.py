@@ -22,6 +22,7 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.plaintext import esc
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["FitsModel", "FitsPanel", "format_value", "runs_summary"]
@@ -301,6 +302,7 @@ class FitsPanel(QWidget):
         lay.setContentsMargins(6, 4, 6, 4)
         lay.setSpacing(3)
         self.caption = QLabel("")
+        self.caption.setTextFormat(Qt.TextFormat.RichText)  # outside text escaped (esc)
         self.caption.setObjectName("fits_caption")
         self.caption.setWordWrap(True)
         lay.addWidget(self.caption)
@@ -436,7 +438,7 @@ class FitsPanel(QWidget):
         hp = "none" if s.highpass_s is None else f"{s.highpass_s:g} s"
         shift = f", onsets {s.onset_shift_s:+g} s" if s.onset_shift_s else ""
         self.caption.setText(
-            f"<b>Contrast</b> {contrast}&nbsp;&nbsp;·&nbsp;&nbsp;<b>Noise</b> {noise}"
+            f"<b>Contrast</b> {esc(contrast)}&nbsp;&nbsp;·&nbsp;&nbsp;<b>Noise</b> {noise}"
             f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>High-pass</b> {hp}{shift}"
         )
         notes = list(fits.warnings) if fits is not None else []

@@ -44,6 +44,7 @@ from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, loa
 from voxelscope.gui.map_panel import MapPanel
 from voxelscope.gui.mapjobs import install_map_parts
 from voxelscope.gui.model_panel import ModelPanel
+from voxelscope.gui.plaintext import make_plain, plain_tooltip
 from voxelscope.gui.runs import install as install_runs
 from voxelscope.gui.session_io import install_lab_kit
 from voxelscope.gui.signal import SignalPanel
@@ -104,6 +105,7 @@ class MainWindow(QMainWindow):
         self.workspace.setStretchFactor(1, 4)
         self.workspace.setChildrenCollapsible(False)
         self.welcome = QLabel(WELCOME)
+        self.welcome.setTextFormat(Qt.TextFormat.RichText)
         self.welcome.setObjectName("welcome")
         self.welcome.setAlignment(Qt.AlignmentFlag.AlignCenter)
         self.welcome.setWordWrap(True)
@@ -144,6 +146,7 @@ class MainWindow(QMainWindow):
         self.state.message.connect(self._note)
         self.state.run_changed.connect(self._on_run)
         self._on_run()
+        make_plain(self)  # names from files show literally (see gui/plaintext.py)
 
     # ------------------------------------------------------------------ layout
 
@@ -279,7 +282,9 @@ class MainWindow(QMainWindow):
         self.statusBar().showMessage(message)
         self.last_error = message
         if not self.offscreen():
-            QMessageBox.warning(self, "voxelscope", message)
+            box = QMessageBox(QMessageBox.Icon.Warning, "voxelscope", message, parent=self)
+            box.setTextFormat(Qt.TextFormat.PlainText)  # file content is never markup
+            box.exec()
 
     def _note(self, message: str) -> None:
         self.statusBar().showMessage(message, 20000)
@@ -421,7 +426,8 @@ class MainWindow(QMainWindow):
             hook, self.after_open = self.after_open, None
             hook()
         files = bundle.inputs.files_line() if bundle.inputs is not None else ""
-        self.run_label.setToolTip(files)
+        self.run_label.setToolTip(plain_tooltip(files))
+        make_plain(self)  # labels the parts added for this run show outside text literally
         if not bundle.warnings:
             name = Path(bundle.run.path).name
             self.statusBar().showMessage(f"Opened {name}" + (f" — {files}" if files else ""))

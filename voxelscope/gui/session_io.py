@@ -6,9 +6,10 @@ digests, written atomically). This module turns the window into a
 
 - :func:`collect_session` — input files, model settings, voxel, map settings, marks and the
   window layout (``QMainWindow.saveState()`` / ``saveGeometry()`` as base64 in ``layout``).
-- :func:`open_session` — restores all that. A moved or missing input is asked for (locate it
-  with a file dialog, or skip it); offscreen there is one status line and the window goes on
-  with what is available. A changed input (digest differs) is used, with a status line.
+- :func:`open_session` — restores all that. A moved or missing input, and an input whose
+  content digest differs from the one recorded, is asked for before it is read (locate it
+  with a file dialog, or skip it); offscreen it is skipped with one status line and the
+  window goes on with what is available.
 - :class:`Autosave` — writes a recovery file (core ``write_recovery``) every
   ``interval_s`` seconds when something changed and shortly after each significant change;
   a clean close deletes it. Recovery files are named after the process id, so a file whose
@@ -23,7 +24,7 @@ import os
 from collections.abc import Callable
 from pathlib import Path
 
-from PySide6.QtCore import QByteArray, QEvent, QObject, QTimer
+from PySide6.QtCore import QByteArray, QEvent, QObject, Qt, QTimer
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import QApplication, QFileDialog, QMenu, QMessageBox
 
@@ -221,7 +222,10 @@ def ask_for_file(window, problem: FileProblem) -> Path | None:
     """On screen: tell the user which file moved and let them locate it or skip it."""
     box = QMessageBox(window)
     box.setIcon(QMessageBox.Icon.Warning)
-    box.setWindowTitle("Session file missing")
+    box.setWindowTitle(
+        "Session file changed" if problem.kind == "digest" else "Session file missing"
+    )
+    box.setTextFormat(Qt.TextFormat.PlainText)  # paths and names are never markup
     box.setText(problem.message)
     locate = box.addButton("Locate…", QMessageBox.ButtonRole.AcceptRole)
     box.addButton("Skip", QMessageBox.ButtonRole.RejectRole)
@@ -239,15 +243,17 @@ def _resolve_files(window, loaded: LoadedSession, locate: Locate | None) -> tupl
     """Paths to open per role, after asking for moved files; and the notes to show."""
     files = dict(loaded.session.files)
     notes: list[str] = []
-    missing = [p for p in loaded.problems if p.kind == "missing"]
+    # a changed file is not read until the user locates the right one (digest check first)
+    asked = ("missing", "digest", "unverified")
+    missing = [p for p in loaded.problems if p.kind in asked]
     for p in loaded.problems:
-        if p.kind != "missing":
+        if p.kind not in asked:
             notes.append(p.message)
     # the run first: once it is located, look beside it for the other moved files
     missing.sort(key=lambda p: p.role != "run")
     new_folder: Path | None = None
     for p in missing:
-        if new_folder is not None:
+        if new_folder is not None and p.kind == "missing":
             beside = new_folder / p.path.name
             if beside.is_file():
                 files[p.role] = beside
