@@ -116,7 +116,7 @@ __all__ = [
 FORMAT_VERSION = 2
 
 #: Target size of one batch of volumes as float32 (the raw batch is at most this big too).
-BATCH_BYTES = 64 * 1024 * 1024
+BATCH_BYTES = 16 * 1024 * 1024
 
 #: Target size of one checksummed block of rows.
 BLOCK_BYTES = 256 * 1024
@@ -139,7 +139,7 @@ INFLATER_ENV = "VOXELSCOPE_INFLATER"
 _PREFIX = "vxs-"
 _TAIL_BYTES = 64
 _READ_BYTES = 1 << 20  # compressed bytes read at a time
-_GATHER = 4096  # voxels gathered and transposed at a time (fits the CPU cache)
+_PIECE = 1 << 20  # decompressed bytes produced at a time
 _HOST = hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
 
 ProgressCallback = Callable[[float], "bool | None"]
@@ -266,7 +266,8 @@ class _GzipStream:
                 self._d = self._lib.decompressobj(31)
             if not self._buf and not self._more():
                 raise EOFError("the compressed stream ends before its end marker")
-            out = self._d.decompress(self._buf, max(want, 1 << 16))
+            # bounded pieces: the allocator reuses them (no fresh pages for every batch)
+            out = self._d.decompress(self._buf, min(max(want, 1 << 16), _PIECE))
             if self._d.eof:
                 rest = self._d.unused_data
                 end = self._pos - len(rest)
@@ -389,7 +390,7 @@ def _stream_batches(
         batch_bytes = BATCH_BYTES
     batch = int(max(1, min(t, batch_bytes // max(1, n_vox * 4))))
     starts = list(range(0, t, batch))
-    bufs = [bytearray(batch * layout.volume_bytes) for _ in range(min(2, len(starts)))]
+    bufs = [np.empty(batch * layout.volume_bytes, np.uint8) for _ in range(min(2, len(starts)))]
     try:
         f = _open_stream(layout)
     except OSError as err:
@@ -398,7 +399,7 @@ def _stream_batches(
     def read_batch(n: int) -> memoryview:
         t0 = starts[n]
         nbytes = (min(t, t0 + batch) - t0) * layout.volume_bytes
-        view = memoryview(bufs[n % len(bufs)])[:nbytes]
+        view = memoryview(bufs[n % len(bufs)].data)[:nbytes]
         got = f.readinto(view)
         if got != nbytes:
             raise EOFError(f"data end after {t0 + got // layout.volume_bytes} of {t} volumes")
@@ -469,10 +470,11 @@ class _Stats:
 
     def add(self, v: np.ndarray) -> None:
         with np.errstate(invalid="ignore", over="ignore"):
-            s = v.sum(axis=0, dtype=np.float64)
+            # per batch in the data's own precision (integers: int64), summed in float64
+            s = v.sum(axis=0).astype(np.float64, copy=False)
             bmin, bmax = v.min(axis=0), v.max(axis=0)
         if self.total is None:
-            self.total, self.vmin, self.vmax = s, bmin, bmax
+            self.total, self.vmin, self.vmax = s.copy(), bmin, bmax
         else:
             self.total += s
             np.minimum(self.vmin, bmin, out=self.vmin)
@@ -531,10 +533,9 @@ def _c_order(flat_f: np.ndarray, shape: tuple[int, int, int]) -> np.ndarray:
 
 
 def _gather(v2: np.ndarray, sel_f: np.ndarray, out: np.ndarray, t0: int, t1: int, layout) -> None:
-    """out[r, t0:t1] = scaled v2[:, sel_f[r]], a few thousand voxels at a time."""
-    for a in range(0, sel_f.size, _GATHER):
-        cols = v2[:, sel_f[a : a + _GATHER]]
-        _scale(cols.T, layout, out=out[a : a + cols.shape[1], t0:t1])
+    """out[r, t0:t1] = scaled v2[:, sel_f[r]] (one sequential gather, one transposed write)."""
+    if sel_f.size:
+        _scale(np.take(v2, sel_f, axis=1).T, layout, out=out[:, t0:t1])
 
 
 def read_voxels(
@@ -1424,9 +1425,9 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
         try:
             built = _build(layout, select, final, allocate, progress)
             rows = built.rows
+            # no flush: the pages reach the disk in their own time, and a block that
+            # does not (a power cut) fails its checksum instead of being served
             crcs = _block_crcs(rows, _block_rows(layout.shape[3]))
-            if isinstance(rows, np.memmap):
-                rows.flush()
             blob = _summary_blob(built, crcs)
             with open(tmp_data, "r+b") as fh:  # a second allocation may have grown it
                 fh.truncate(rows.shape[0] * layout.shape[3] * 4)

@@ -580,8 +580,8 @@ class Run:
 
 
 def _summary_mask(s: _cache.Summary) -> tuple[np.ndarray, bool]:
-    """The run's brain mask from its summary (the one rule, used by :meth:`Run.mask` and by
-    the cache to decide which voxels it must keep), and whether the fallback was used."""
+    """The run's brain mask from its summary (the one rule: :meth:`Run.mask`; the cache
+    keeps a superset of it, :func:`_cache_must_keep`), and whether the fallback was used."""
     valid = ~s.nonfinite & ~s.constant
     mask = brain_mask(s.mean, valid)
     if not mask.any() and valid.any():
@@ -589,15 +589,52 @@ def _summary_mask(s: _cache.Summary) -> tuple[np.ndarray, bool]:
     return mask, False
 
 
+def _enclosed(mask: np.ndarray) -> np.ndarray:
+    """Voxels outside ``mask`` that meet it in all six axis directions.
+
+    A superset of the holes that :func:`scipy.ndimage.binary_fill_holes` fills: a hole's
+    straight path to the edge of the grid must cross the mask (numpy only, no scipy).
+
+    Examples
+    --------
+    >>> m = np.zeros((5, 5, 5), bool); m[1:4, 1:4, 1:4] = True; m[2, 2, 2] = False
+    >>> np.argwhere(_enclosed(m)).tolist()
+    [[2, 2, 2]]
+    """
+    out = ~mask
+    for ax in range(3):
+        fwd = np.logical_or.accumulate(mask, axis=ax)
+        bwd = np.flip(np.logical_or.accumulate(np.flip(mask, ax), axis=ax), ax)
+        out &= fwd & bwd
+    return out
+
+
+def _mask_superset(s: _cache.Summary, fraction: float, valid: np.ndarray) -> np.ndarray:
+    """The intensity rule of :func:`brain_mask` without its scipy steps: every voxel over
+    the threshold (any component) and every voxel they enclose; contains the mask."""
+    mean = np.asarray(s.mean, dtype=np.float64)
+    ok = valid & np.isfinite(mean)
+    if not ok.any():
+        return ok
+    ref = float(np.percentile(mean[ok], MASK_PERCENTILE))
+    over = ok & (mean > fraction * ref) if ref > 0 else ok & (mean > 0)
+    if not over.any():
+        return ok  # the mask falls back to every valid voxel
+    return (over | _enclosed(over)) & ok
+
+
 def _cache_selection(s: _cache.Summary) -> np.ndarray:
-    """Voxels the cache stores, chosen from the first volumes: the brain-mask rule with a
-    margin (a lower intensity fraction, every component), so that the mask of the whole
-    run almost always lies inside it (the cache fetches any voxel it missed)."""
-    return brain_mask(s.mean, ~s.nonfinite, fraction=0.75 * MASK_FRACTION, largest_component=False)
+    """Voxels the cache stores, chosen from the summary of the first volumes: the mask
+    rule with a margin (three quarters of the intensity fraction). Voxels that are zero in
+    every one of those volumes are left to the final check (they are background)."""
+    valid = ~s.nonfinite & ~(s.constant & (s.mean == 0))
+    return _mask_superset(s, 0.75 * MASK_FRACTION, valid)
 
 
-def _run_mask_of(s: _cache.Summary) -> np.ndarray:
-    return _summary_mask(s)[0]
+def _cache_must_keep(s: _cache.Summary) -> np.ndarray:
+    """A superset of :meth:`Run.mask` from the whole run's summary: the cache stores all
+    of it, so maps over the mask never read the file."""
+    return _mask_superset(s, MASK_FRACTION, ~s.nonfinite & ~s.constant)
 
 
 # --------------------------------------------------------------------------- mask
@@ -1035,7 +1072,7 @@ def open_run(
         opened = _cache.open_store(
             layout,
             _cache_selection,
-            _run_mask_of,
+            _cache_must_keep,
             use_cache=use_cache,
             cache_dir=cache_dir,
             progress=progress,
