@@ -800,3 +800,17 @@ def test_terminal_progress():
     cb2 = terminal_progress(stream=quiet)
     cb2(1.0)  # a run that was ready at once draws nothing
     assert quiet.getvalue() == ""
+
+
+def test_a_click_outside_reads_the_file_once_for_its_neighbourhood(tmp_path, monkeypatch):
+    """A noisy voxel outside the brain costs one pass over the file, which brings its
+    neighbours too: the next click beside it reads nothing (values equal nibabel's)."""
+    data, brain = _phantom((16, 14, 12, 20), background=20.0)
+    path = _save(tmp_path / "n.nii.gz", data)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    passes = []
+    real = cache.read_voxels
+    monkeypatch.setattr(cache, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k))
+    np.testing.assert_array_equal(run.timeseries((0, 0, 0)), data[0, 0, 0])
+    np.testing.assert_array_equal(run.timeseries((1, 1, 0)), data[1, 1, 0])
+    assert len(passes) == 1 and not brain[0, 0, 0] and not brain[1, 1, 0]

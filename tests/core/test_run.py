@@ -22,6 +22,8 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from nibabel.affines import apply_affine
 from nibabel.testing import data_path
 
@@ -721,3 +723,37 @@ def test_memmap_blocks_release_pages_and_stay_correct(tmp_path, monkeypatch):
     assert calls  # pages were released while iterating
     for idx, Y in kept:
         np.testing.assert_array_equal(Y.T, ref[idx].astype(np.float32))
+
+
+@settings(max_examples=60)
+@given(
+    seed=st.integers(0, 2**31 - 1),
+    n_blobs=st.integers(1, 4),
+    hollow=st.booleans(),
+    constant_share=st.floats(0.0, 0.3),
+)
+def test_cache_keeps_a_superset_of_the_mask(seed, n_blobs, hollow, constant_share):
+    """The cache decides which voxels to keep without scipy (a threshold and the voxels it
+    encloses along the axes); that choice must contain the run's mask, whose holes are
+    filled and components chosen by scipy.ndimage (the outside reference here) on random
+    images of bright blobs, hollow ones included, with constant and NaN voxels."""
+    from voxelscope.core.cache import Summary
+    from voxelscope.core.run import _cache_must_keep, _summary_mask
+
+    rng = np.random.default_rng(seed)
+    shape = (14, 12, 10)
+    g = np.meshgrid(*(np.arange(n) for n in shape), indexing="ij")
+    mean = rng.uniform(0, 30, shape)
+    for _ in range(n_blobs):
+        c = [rng.uniform(0, n) for n in shape]
+        r = rng.uniform(2, 5)
+        d = np.sqrt(sum((gi - ci) ** 2 for gi, ci in zip(g, c)))
+        mean[d < r] = rng.uniform(500, 1000)
+        if hollow:
+            mean[d < r / 2] = rng.uniform(0, 40)
+    constant = rng.random(shape) < constant_share
+    nonfinite = rng.random(shape) < 0.02
+    s = Summary(mean=mean.astype(np.float32), nonfinite=nonfinite, constant=constant & ~nonfinite)
+    mask, _fallback = _summary_mask(s)
+    keep = _cache_must_keep(s)
+    assert not (mask & ~keep).any()

@@ -815,9 +815,20 @@ class VoxelStore:
         return out
 
     def row(self, flat: int) -> np.ndarray:
+        flat = int(flat)
+        if self._pos[flat] < 0 and not self._known[flat] and flat not in self._fetched:
+            self._from_file(self._around(flat))  # a click outside: its neighbours come too
         return self._guarded(
             lambda: self._gather(np.array([flat], dtype=np.int64))[0].astype(np.float64)
         )
+
+    def _around(self, flat: int) -> np.ndarray:
+        """The voxel and its neighbours within two voxels that the file must give."""
+        ijk = np.unravel_index(flat, self.shape)
+        box = [np.arange(max(0, c - 2), min(n, c + 3)) for c, n in zip(ijk, self.shape)]
+        grid = np.ravel_multi_index(np.meshgrid(*box, indexing="ij"), self.shape).ravel()
+        grid = grid[(self._pos[grid] < 0) & ~self._known[grid]]
+        return np.unique(np.concatenate([[flat], grid])).astype(np.int64)
 
     def rows(self, flat_idx: np.ndarray) -> np.ndarray:
         return self._guarded(lambda: self._gather(np.asarray(flat_idx, dtype=np.int64)))
