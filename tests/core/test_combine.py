@@ -355,3 +355,53 @@ def test_nearest_on_grid_fills_outside():
     src = np.arange(8.0).reshape(2, 2, 2)
     out = nearest_on_grid(src, np.eye(4), (3, 2, 2), np.eye(4))
     assert out[:2].tolist() == src.tolist() and np.all(np.isnan(out[2]))
+
+
+def test_combined_tails_z_and_neglog10p_against_scipy():
+    """p for each tail from scipy.stats.t on sum(df_i), -log10 p from it, and z with the
+    same two-sided p from scipy.stats.norm; at an extreme t, -log10 p and z against mpmath
+    (the reference for tails beyond float64)."""
+    for tail, ref in (
+        ("two", lambda t, d: 2 * stats.t.sf(abs(t), d)),
+        ("positive", lambda t, d: stats.t.sf(t, d)),
+        ("negative", lambda t, d: stats.t.cdf(t, d)),
+    ):
+        c = combine_fits("gamma", "tone", ["a", "b"], [1.0, 1.4], [0.2, 0.3], [40, 50], tail)
+        assert c.tail == tail
+        assert c.to_json()["p"] == pytest.approx(ref(c.t, 90), rel=1e-9)
+        assert c.neglog10p == pytest.approx(-np.log10(ref(c.t, 90)), rel=1e-9)
+        assert c.z == pytest.approx(stats.norm.isf(stats.t.sf(c.t, 90)), rel=1e-9)
+    mpmath = pytest.importorskip("mpmath")
+    c = combine_fits("gamma", "tone", ["a", "b"], [10.0, 10.0], [1e-4, 1e-4], [100, 100])
+    mpmath.mp.dps = 60
+    t, df = mpmath.mpf(c.t), 200
+    # two-sided tail of t: I_x(df/2, 1/2) with x = df / (df + t^2) (closed form)
+    tail = mpmath.betainc(df / 2, 0.5, 0, df / (df + t * t), regularized=True)
+    assert c.neglog10p == pytest.approx(float(-mpmath.log10(tail)), rel=1e-9)
+    assert c.neglog10p > 330  # beyond float64: p itself underflows, -log10 p does not
+    # z with the same two-sided tail: erfc(z / sqrt 2) = tail, solved in logs
+    z = mpmath.findroot(
+        lambda z: mpmath.log(mpmath.erfc(z / mpmath.sqrt(2))) - mpmath.log(tail), 40
+    )
+    assert c.z == pytest.approx(float(z), rel=1e-9)
+
+
+def test_combined_map_neglog10p_and_tail(tmp_path):
+    rng = np.random.default_rng(8)
+    aff = np.diag([3.0, 3.0, 3.5, 1.0])
+    runs, analyses = [], []
+    for i in range(2):
+        data, a = _planted_run(rng, (5, 4, 3), aff)
+        runs.append(open_run(_write(tmp_path, data, aff, f"s_run-{i + 1}_bold.nii")))
+        analyses.append(a)
+    m = compute_combined_map(
+        runs, analyses, ModelSettings(), stats=("t", "p", "neglog10p", "z"), tail="positive"
+    )
+    assert m.tail == "positive"
+    inside = m.mask
+    t = m.t[inside].astype(float)
+    np.testing.assert_allclose(m.p[inside], stats.t.sf(t, m.df), rtol=2e-4, atol=1e-30)
+    small = stats.t.sf(t, m.df) > 1e-30
+    np.testing.assert_allclose(
+        m.neglog10p[inside][small], -np.log10(stats.t.sf(t[small], m.df)), rtol=2e-4
+    )

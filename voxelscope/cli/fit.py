@@ -178,7 +178,9 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str 
     return fits, checks_by_kernel, doc, warnings
 
 
-def combine_voxel_fits(all_fits: list[VoxelFits], labels: list[str]) -> list[CombinedFit]:
+def combine_voxel_fits(
+    all_fits: list[VoxelFits], labels: list[str], tail: str = "two"
+) -> list[CombinedFit]:
     """Per kernel, the fixed-effects combination of the runs' fits at their voxels."""
     from ..core.combine import combine_fits
 
@@ -193,14 +195,15 @@ def combine_voxel_fits(all_fits: list[VoxelFits], labels: list[str]) -> list[Com
                 [f.beta for f in per_run],
                 [f.variance for f in per_run],
                 [f.df for f in per_run],
+                tail=tail,
             )
         )
     return out
 
 
-def format_combined_table(combined: list[CombinedFit]) -> str:
-    """Aligned table of the combined rows, one per kernel, then the flags."""
-    head = ["kernel", "beta", "variance", "t", "df", "p", "Q", "Q p"]
+def format_combined_table(combined: list[CombinedFit], tail: str = "two") -> str:
+    """Aligned table of the combined rows, one per kernel (p for ``tail``), then the flags."""
+    head = ["kernel", "beta", "variance", "t", "df", _TAIL_HEAD[tail], "Q", "Q p"]
     rows = [head]
     for c in combined:
         rows.append(
@@ -210,7 +213,7 @@ def format_combined_table(combined: list[CombinedFit]) -> str:
                 _fmt(c.variance, ".5g"),
                 _fmt(c.t, ".3f"),
                 f"{c.df:g}",
-                _fmt(c.p, ".3g"),
+                _fmt(c.p if tail == "two" else c.p_tail, ".3g"),
                 _fmt(c.q, ".3g"),
                 _fmt(c.q_p, ".3g"),
             ]
@@ -232,7 +235,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
     loads, labels = load_runs(args, summarize=bool(args.checks))
     places = voxels_from_args(args, loads)
     results = [_fit_one(ld, ijk, args.checks, args.tail) for ld, ijk in zip(loads, places)]
-    combined = combine_voxel_fits([r[0] for r in results], labels)
+    combined = combine_voxel_fits([r[0] for r in results], labels, args.tail)
     warnings: list[str] = []
     for r in results:
         warnings.extend(r[3])
@@ -279,14 +282,15 @@ def _run_fit_several(args: argparse.Namespace) -> int:
                     [label, f.kernel, f.contrast]
                     + [num(v) for v in (f.beta, f.variance, f.t)]
                     + [f.df]
-                    + [num(v) for v in (f.p, f.r2)]
+                    + [num(v) for v in (_tail_p(f, args.tail), f.r2)]
                     + [f.result.noise, num(f.rho), "", ""]
                 )
         for c in combined:
             w.writerow(
                 ["combined", c.kernel, c.contrast]
                 + [num(v) for v in (c.beta, c.variance, c.t)]
-                + [f"{c.df:g}", num(c.p), "", noise, "", num(c.q), num(c.q_p)]
+                + [f"{c.df:g}", num(c.p if args.tail == "two" else c.p_tail), ""]
+                + [noise, "", num(c.q), num(c.q_p)]
             )
         sys.stdout.write(buf.getvalue())
         return 0
@@ -306,7 +310,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
         f"combined: fixed effects over {len(loads)} runs  contrast {combined[0].contrast}  "
         f"noise {noise}"
     )
-    print(format_combined_table(combined))
+    print(format_combined_table(combined, args.tail))
     return 0
 
 

@@ -304,9 +304,13 @@ def _run_map_several(args: argparse.Namespace) -> int:
         mask=mask,
         rho_step=args.rho_step,
         progress=terminal_progress(f"fitting {len(runs)} runs"),
+        tail=args.tail,
     )
     data = result.stat(args.stat)
-    desc = f"voxelscope fixed-effects {args.stat} {args.kernel} {result.contrast} df={result.df}"
+    tail = f" tail={args.tail}" if args.stat in ("p", "neglog10p") else ""
+    desc = (
+        f"voxelscope fixed-effects {args.stat} {args.kernel} df={result.df}{tail} {result.contrast}"
+    )
     write_map(out, data, run=runs[0], inputs=inputs, force=args.force, description=desc[:79])
     print_warnings(warnings)
     print(f"wrote {out}: {args.stat} map, {result.describe()}")

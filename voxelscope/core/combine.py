@@ -50,7 +50,8 @@ import numpy as np
 from scipy import special
 
 from .errors import InputError
-from .maps import MapResult, compute_map
+from .maps import STAT_NAMES, MapResult, compute_map
+from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
     "COMBINED_STATS",
@@ -245,9 +246,14 @@ class CombinedFit:
     flags: tuple[RunFlag, ...] = ()
     leave_one_out: tuple[LeftOut, ...] = ()
     runs: tuple[dict[str, Any], ...] = field(default=())
+    tail: str = "two"
+    p_tail: float | None = None
+    neglog10p: float | None = None
+    z: float | None = None
 
     def to_json(self) -> dict[str, Any]:
-        """The documented JSON object: kernel, beta, variance, t, df, p, q, q_p, flags."""
+        """The documented JSON object: kernel, beta, variance, t, df, p, q, q_p, flags;
+        ``p`` and ``neglog10p`` are for ``tail`` (two-sided by default), ``z`` exact."""
         df = int(self.df) if float(self.df).is_integer() else float(self.df)
         return {
             "kernel": self.kernel,
@@ -256,7 +262,10 @@ class CombinedFit:
             "variance": self.variance,
             "t": self.t,
             "df": df,
-            "p": self.p,
+            "p": self.p_tail if self.tail != "two" else self.p,
+            "tail": self.tail,
+            "neglog10p": self.neglog10p,
+            "z": self.z,
             "q": self.q,
             "q_p": self.q_p,
             "n_runs": self.n_runs,
@@ -276,8 +285,12 @@ def combine_fits(
     betas: Sequence[float | None],
     variances: Sequence[float | None],
     dfs: Sequence[float],
+    tail: str = "two",
 ) -> CombinedFit:
     """Combine one kernel's per-run fits at one voxel, with agreement flags.
+
+    ``p`` is two-sided (the flags use it); ``p_tail`` and ``neglog10p`` are for ``tail``
+    and ``z`` is exact at any t (:mod:`voxelscope.core.pvalues`).
 
     Parameters
     ----------
@@ -287,6 +300,7 @@ def combine_fits(
     betas, variances : sequence of float or None
         Per-run contrast estimate and variance (None where the run's fit is undefined).
     dfs : sequence of float
+    tail : {"two", "positive", "negative"}
 
     Examples
     --------
@@ -356,12 +370,19 @@ def combine_fits(
         }
         for lab, bi, vi, di in zip(labels, b, v, d)
     )
+    t = _num(fe.t)
+    p_tail = nl10 = z = None
+    if t is not None:
+        df_all = float(fe.df[0])
+        p_tail = _num(p_from_t(t, df_all, tail))
+        nl10 = _num(neglog10p_from_t(t, df_all, tail))
+        z = _num(z_from_t(t, df_all))
     return CombinedFit(
         kernel=str(kernel),
         contrast=str(contrast),
         beta=_num(fe.beta),
         variance=_num(fe.variance),
-        t=_num(fe.t),
+        t=t,
         df=float(fe.df[0]),
         p=p,
         q=_num(fe.q),
@@ -370,6 +391,10 @@ def combine_fits(
         flags=tuple(flags),
         leave_one_out=tuple(loo),
         runs=runs,
+        tail=check_tail(tail),
+        p_tail=p_tail,
+        neglog10p=nl10,
+        z=z,
     )
 
 
@@ -533,7 +558,7 @@ def nearest_on_grid(
 
 
 #: Statistics a combined map can hold (a single-run map's, plus Cochran's Q and its p).
-COMBINED_STATS = ("t", "beta", "variance", "z", "p", "q", "q_p")
+COMBINED_STATS = (*STAT_NAMES, "q", "q_p")
 
 
 @dataclass(eq=False)
@@ -570,14 +595,6 @@ class CombinedMapResult(MapResult):
         return text
 
 
-def _z_of(t: np.ndarray, p: np.ndarray) -> np.ndarray:
-    """z with the same two-sided p as t (p/2 is the lower tail), finite where p underflows."""
-    with np.errstate(divide="ignore", invalid="ignore"):
-        z = -special.ndtri(p / 2.0)
-    z = np.where(np.isfinite(z), z, 38.0)
-    return np.sign(t) * z
-
-
 def compute_combined_map(
     runs: Sequence[Any],
     analyses: Sequence[Any],
@@ -589,6 +606,7 @@ def compute_combined_map(
     workers: int | None = None,
     mask: np.ndarray | None = None,
     rho_step: float | None = None,
+    tail: str = "two",
 ) -> CombinedMapResult:
     """Fixed-effects map across runs on the first run's grid.
 
@@ -668,7 +686,7 @@ def compute_combined_map(
                 workers=workers,
             )
         )
-    return combine_maps(runs, run_maps, labels, stats, mask=mask, settings=settings)
+    return combine_maps(runs, run_maps, labels, stats, mask=mask, settings=settings, tail=tail)
 
 
 def combine_maps(
@@ -678,6 +696,7 @@ def combine_maps(
     stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
     mask: np.ndarray | None = None,
     settings: Any = None,
+    tail: str = "two",
 ) -> CombinedMapResult:
     """Combine single-run maps (each with ``beta`` and ``variance``, on its run's grid)
     into the fixed-effects map on the first run's grid; see :func:`compute_combined_map`.
@@ -713,8 +732,8 @@ def combine_maps(
     B = np.stack([b_[sel] for b_ in betas]).astype(np.float64)
     V = np.stack([v_[sel] for v_ in variances]).astype(np.float64)
     dfs = np.array([m.df for m in run_maps], dtype=np.float64)
-    want_p = any(s in stats for s in ("p", "z", "q_p"))
-    fe = fixed_effects(B, V, dfs, want_p=want_p)
+    check_tail(tail)
+    fe = fixed_effects(B, V, dfs, want_p="q_p" in stats)
     good = sel[fe.valid]
     df_total = float(dfs.sum())
 
@@ -725,7 +744,13 @@ def combine_maps(
         out[good] = values[fe.valid]
         return out.reshape(shape)
 
-    z = vol("z", _z_of(fe.t, fe.p)) if "z" in stats else None
+    # p, z and -log10 p from the combined t on sum(df_i) through the exact tails
+    t_ok = np.where(fe.valid, fe.t, 0.0)
+    z = vol("z", z_from_t(t_ok, df_total)) if "z" in stats else None
+    p_map = vol("p", p_from_t(t_ok, df_total, tail), 1.0) if "p" in stats else None
+    nl10 = (
+        vol("neglog10p", neglog10p_from_t(t_ok, df_total, tail)) if "neglog10p" in stats else None
+    )
     valid_mask = np.zeros(n_all, dtype=bool)
     valid_mask[good] = True
     first_map = run_maps[0]
@@ -734,7 +759,9 @@ def combine_maps(
         beta=vol("beta", fe.beta),
         variance=vol("variance", fe.variance),
         z=z,
-        p=vol("p", fe.p, 1.0),
+        p=p_map,
+        neglog10p=nl10,
+        tail=tail,
         mask=valid_mask.reshape(shape),
         degenerate=np.zeros(shape, dtype=bool),
         rho=None,

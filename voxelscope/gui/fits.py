@@ -11,7 +11,7 @@ from __future__ import annotations
 import math
 
 from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt, Signal
-from PySide6.QtGui import QAction, QColor, QFont, QGuiApplication, QKeySequence
+from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QHeaderView,
@@ -131,7 +131,8 @@ class FitsModel(QAbstractTableModel):
         st = self.state
         if not st.run_fits:
             return None
-        cols = list(_BASE)
+        # R² is left out to keep the table narrow (the combined row has none)
+        cols = [c for c in _BASE if c[0] != "R²"]
         cols.insert(2, ("run", "The run, or the fixed-effects combination of the runs"))
         cols += [
             ("Q", "Cochran's Q: how far the runs' estimates disagree (combined rows)"),
@@ -255,10 +256,8 @@ class FitsModel(QAbstractTableModel):
             return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
         if role == Qt.ItemDataRole.ForegroundRole and name == "kernel":
             return QColor("#1f1f1f")
-        if role == Qt.ItemDataRole.FontRole and row.get("run") == "combined":
-            font = QFont()
-            font.setBold(True)
-            return font
+        if role == Qt.ItemDataRole.BackgroundRole and row.get("run") == "combined":
+            return QColor("#e8eef5")
         if role == Qt.ItemDataRole.ToolTipRole and name not in ("", "kernel", "run"):
             return None if value is None else repr(value)
         return None
