@@ -93,6 +93,16 @@ class PreparedDesign:
         Index of the all-ones column when there is one.
     q, r_inv : ndarray (n, p) and (p, p)
         ``X = q r`` (thin QR) and ``r^-1``: ``pinv = r_inv q'``.
+    keep : ndarray of bool (n_all,) or None
+        Volumes that enter the fit (None: all). With a mask, ``X``, ``pinv`` and
+        ``cov_unscaled`` are those of the kept rows and ``X_all`` is the whole design.
+    X_all : ndarray (n_all, p) or None
+        The design on every volume, for fitted values and residuals of all rows.
+    steps : ndarray of int (n - 1,) or None
+        Volumes between consecutive kept volumes when some step exceeds 1 (the AR(1)
+        whitening treats those as gaps).
+    warnings : tuple of str
+        A poorly conditioned design (see :data:`CONDITION_LIMIT`).
     """
 
     X: np.ndarray
@@ -105,60 +115,144 @@ class PreparedDesign:
     memo: dict = field(default_factory=dict, repr=False)
     q: np.ndarray | None = field(default=None, repr=False)
     r_inv: np.ndarray | None = field(default=None, repr=False)
+    keep: np.ndarray | None = None
+    X_all: np.ndarray | None = None
+    steps: np.ndarray | None = None
+    warnings: tuple[str, ...] = ()
+
+    @property
+    def n_all(self) -> int:
+        """Rows of the whole design (kept and left-out volumes)."""
+        return int(self.X.shape[0] if self.X_all is None else self.X_all.shape[0])
+
+
+#: Numerical rank tolerance: with columns scaled to unit norm, singular values below this
+#: fraction of the largest count as zero. Confound tables are text with about six
+#: significant digits (half a unit in the sixth digit is up to 5e-6 of a value), so a column
+#: that is a multiple or a sum of others in truth differs from it by that much once written;
+#: 1e-5 sees through that rounding while full-rank designs stay far above it.
+RANK_TOL = 1e-5
+#: Warn when the condition number of the design, columns scaled to unit norm, exceeds this.
+CONDITION_LIMIT = 1e4
+
+
+def _scaled_svd(X: np.ndarray):
+    norms = np.linalg.norm(X, axis=0)
+    Xn = X / np.where(norms == 0, 1.0, norms)
+    _, s, vt = np.linalg.svd(Xn, full_matrices=False)
+    return norms, s, vt
+
+
+def _involved(v: np.ndarray, names: Sequence[str]) -> list[str]:
+    """Columns that take part in a (near) dependency ``Xn v ~ 0``."""
+    big = np.abs(v) > 0.05 * np.abs(v).max()
+    return [names[i] for i in np.flatnonzero(big)]
 
 
 def _collinear_columns(X: np.ndarray, names: Sequence[str]) -> list[str]:
-    norms = np.linalg.norm(X, axis=0)
+    norms, s, vt = _scaled_svd(X)
     zero = [names[i] for i in np.flatnonzero(norms == 0)]
-    Xn = X / np.where(norms == 0, 1.0, norms)
-    _, s, vt = np.linalg.svd(Xn, full_matrices=False)
-    tol = s.max() * max(X.shape) * np.finfo(float).eps * 1e3
-    null = vt[s <= tol]
+    null = vt[s <= RANK_TOL * s.max()]
     involved = set(zero)
     for v in null:
-        involved.update(names[i] for i in np.flatnonzero(np.abs(v) > 1e-6))
+        involved.update(_involved(v, names))
     return [n for n in names if n in involved]
 
 
-def prepare(X: np.ndarray, names: Sequence[str] | None = None) -> PreparedDesign:
+def _rank_fix(cols: Sequence[str]) -> str:
+    """The fix that fits a set of collinear columns."""
+    text = " ".join(cols)
+    if re.search(r"comp_cor", text) and sum("comp_cor" in c for c in cols) > 1:
+        return "choose fewer CompCor components (or one kind of them)"
+    if any(c.startswith("drift_") for c in cols):
+        return "use --highpass none, or drop the confound columns that repeat the drift"
+    if any(re.match(r"cosine_?\d+$", c) for c in cols):
+        return "drop the cosine columns or the other drift-like columns"
+    return f"drop one of them (e.g. {cols[-1]!r})"
+
+
+def prepare(
+    X: np.ndarray, names: Sequence[str] | None = None, keep: np.ndarray | None = None
+) -> PreparedDesign:
     """Check a design for full column rank and precompute its inverse parts.
+
+    Parameters
+    ----------
+    X : ndarray (n, p)
+    names : sequence of str, optional
+    keep : ndarray of bool (n,), optional
+        Volumes that enter the fit; the others (non-steady-state, censored) leave every
+        statistic but still get fitted values and residuals (see :func:`fit`).
 
     Raises
     ------
     ModelError
-        Fewer rows than columns, or collinear columns (named in the message).
+        Fewer kept rows than columns, a column that is zero on the kept rows, or columns
+        that are (near) combinations of others at :data:`RANK_TOL` (named, with a fix).
 
     >>> p = prepare(np.column_stack([np.arange(5.0), np.ones(5)]), ["slope", "constant"])
     >>> p.df, p.constant_index
     (3, 1)
+    >>> p = prepare(np.column_stack([np.arange(6.0), np.ones(6)]), keep=[0, 1, 1, 0, 1, 1])
+    >>> p.df, p.steps.tolist(), p.X_all.shape
+    (2, [1, 2, 1], (6, 2))
     """
     X = np.asarray(X, dtype=float)
     if X.ndim != 2:
         raise ModelError("the design matrix must be two-dimensional")
+    names = tuple(names) if names is not None else tuple(f"x{i}" for i in range(X.shape[1]))
+    X_all = None
+    steps = None
+    where = ""
+    if keep is not None:
+        keep = np.asarray(keep, dtype=bool).reshape(-1)
+        if keep.size != X.shape[0]:
+            raise ModelError(
+                f"the volume mask has {keep.size} entries but the design has {X.shape[0]} rows"
+            )
+        if keep.all():
+            keep = None
+        else:
+            X_all = X
+            X = X[keep]
+            kept = np.flatnonzero(keep)
+            st = np.diff(kept)
+            steps = st if st.size and st.max() > 1 else None
+            where = " kept"
+            keep = keep.copy()
+            keep.setflags(write=False)
     n, p = X.shape
-    names = tuple(names) if names is not None else tuple(f"x{i}" for i in range(p))
     if n < p:
+        left = "" if X_all is None else f" ({X_all.shape[0] - n} left out)"
         raise ModelError(
-            f"the run has {n} volumes but the model has {p} columns; use fewer regressors"
+            f"the run has {n}{where} volumes{left} but the model has {p} columns; "
+            "use fewer regressors or leave out fewer volumes"
         )
     if not np.all(np.isfinite(X)):
         raise ModelError("the design matrix has non-finite values; check events and confounds")
-    norms = np.linalg.norm(X, axis=0)
-    Xn = X / np.where(norms == 0, 1.0, norms)
-    s = np.linalg.svd(Xn, compute_uv=False)
-    tol = s.max() * max(n, p) * np.finfo(float).eps * 1e3
-    rank = int(np.sum(s > tol))
-    if rank < p or np.any(norms == 0):
-        cols = _collinear_columns(X, names)
-        if any(norms == 0):
-            empty = [names[i] for i in np.flatnonzero(norms == 0)]
-            raise ModelError(
-                f"design column(s) {', '.join(repr(c) for c in empty)} are all zero "
-                "(a condition with no events inside the run?); check the events and onsets"
-            )
+    norms, s, vt = _scaled_svd(X)
+    if np.any(norms == 0):
+        empty = [names[i] for i in np.flatnonzero(norms == 0)]
         raise ModelError(
-            f"the design is rank-deficient (rank {rank} of {p} columns): "
-            f"{', '.join(repr(c) for c in cols)} are collinear; drop one of them"
+            f"design column(s) {', '.join(repr(c) for c in empty)} are all zero on the{where} "
+            "volumes (a condition with no events inside the run?); check the events and onsets"
+        )
+    rank = int(np.sum(s > RANK_TOL * s.max()))
+    if rank < p:
+        cols = _collinear_columns(X, names)
+        raise ModelError(
+            f"the design is rank-deficient (numerical rank {rank} of {p} columns): "
+            f"{', '.join(repr(c) for c in cols)} are (near) multiples or sums of one another; "
+            f"{_rank_fix(cols)}"
+        )
+    warnings: tuple[str, ...] = ()
+    cond = float(s.max() / s.min())
+    if cond > CONDITION_LIMIT:
+        cols = _involved(vt[-1], names)
+        warnings = (
+            f"the design is poorly conditioned (condition number {cond:.2g} with columns "
+            f"scaled to unit norm, above {CONDITION_LIMIT:.0e}): {', '.join(cols)} nearly "
+            f"overlap, so their betas are unstable; {_rank_fix(cols)}",
         )
     # QR-based inverse: better conditioned than inverting X'X directly.
     q, r = np.linalg.qr(X)
@@ -173,7 +267,24 @@ def prepare(X: np.ndarray, names: Sequence[str] | None = None) -> PreparedDesign
             break
     for a in (X, pinv, cov, q, r_inv):
         a.setflags(write=False)
-    return PreparedDesign(X, names, pinv, cov, rank, n - rank, const, q=q, r_inv=r_inv)
+    if X_all is not None:
+        X_all = np.array(X_all)
+        X_all.setflags(write=False)
+    return PreparedDesign(
+        X,
+        names,
+        pinv,
+        cov,
+        rank,
+        n - rank,
+        const,
+        keep=keep,
+        X_all=X_all,
+        steps=steps,
+        warnings=warnings,
+        q=q,
+        r_inv=r_inv,
+    )
 
 
 def _basis(prep: PreparedDesign) -> tuple[np.ndarray, np.ndarray]:
@@ -393,6 +504,8 @@ class FitResult:
         ``X b`` and ``y - X b`` in data units; None when not kept.
     degenerate : bool per voxel
         True where there is no residual variance (constant or exactly fitted voxel).
+    keep : ndarray of bool (n,) or None
+        The volumes that entered the fit when some were left out (see :func:`prepare`).
     cov_unscaled : ndarray (n_groups, p, p)
         ``(X'X)^-1`` (OLS: one group for all voxels) or ``(X*'X*)^-1`` per voxel (AR(1));
         ``group`` gives each voxel's row.
@@ -415,6 +528,7 @@ class FitResult:
     cov_unscaled: np.ndarray
     group: np.ndarray
     names: tuple[str, ...] = field(default=())
+    keep: np.ndarray | None = None
 
     @property
     def n_voxels(self) -> int:
@@ -451,26 +565,51 @@ def ar1_rho(residuals: np.ndarray) -> np.ndarray:
     return _rho_of(r, np.einsum("ij,ij->j", r, r))
 
 
-def _rho_of(r: np.ndarray, den: np.ndarray) -> np.ndarray:
-    """:func:`ar1_rho` of residuals ``r`` (n, V) whose ``sum(r^2)`` per column is ``den``."""
-    num = np.einsum("ij,ij->j", r[1:], r[:-1])
+def _rho_of(r: np.ndarray, den: np.ndarray, steps: np.ndarray | None = None) -> np.ndarray:
+    """:func:`ar1_rho` of residuals ``r`` (n, V) whose ``sum(r^2)`` per column is ``den``.
+
+    With gaps (``steps``, volumes between consecutive rows), only neighbours one volume
+    apart enter the lag-1 sum, scaled by ``(n - 1) / pairs`` so that it stands for the
+    ``n - 1`` products of a series without gaps.
+    """
+    if steps is None:
+        num = np.einsum("ij,ij->j", r[1:], r[:-1])
+    else:
+        pair = np.flatnonzero(steps == 1) + 1
+        num = np.einsum("ij,ij->j", r[pair], r[pair - 1]) * ((r.shape[0] - 1) / max(pair.size, 1))
     with np.errstate(invalid="ignore", divide="ignore"):
         rho = np.where(den > 0, num / np.where(den > 0, den, 1.0), 0.0)
     return np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
 
 
-def prais_winsten(a: np.ndarray, rho: float) -> np.ndarray:
-    """Prais-Winsten transform along axis 0 (Prais & Winsten, 1954).
+def prais_winsten(a: np.ndarray, rho: float, steps: np.ndarray | None = None) -> np.ndarray:
+    """Prais-Winsten transform along axis 0 (Prais & Winsten, 1954), with gaps.
 
     Row 0 is scaled by ``sqrt(1 - rho^2)``; row ``t`` becomes ``a_t - rho a_{t-1}``.
+    When rows are volumes ``g`` apart (``steps[t - 1] = g``, left-out volumes between them),
+    row ``t`` becomes ``sqrt((1 - rho^2) / (1 - rho^(2 g))) (a_t - rho^g a_{t-1})``: an AR(1)
+    series seen every ``g`` volumes is AR(1) with coefficient ``rho^g`` and innovation
+    variance ``1 - rho^(2 g)`` (of a unit stationary variance), so each row is scaled to the
+    innovation variance ``1 - rho^2`` of a step of one. The transform whitens exactly the
+    covariance ``rho^|t_i - t_j|`` over the kept volume times; with every step 1 it is the
+    plain transform.
 
     >>> prais_winsten(np.array([1.0, 2.0, 3.0]), 0.5).tolist()
     [0.8660254037844386, 1.5, 2.0]
+    >>> prais_winsten(np.array([1.0, 2.0, 3.0]), 0.5, steps=np.array([1, 2])).round(4).tolist()
+    [0.866, 1.5, 2.2361]
     """
     a = np.asarray(a, dtype=float)
     out = np.empty_like(a)
     out[0] = math.sqrt(1.0 - rho * rho) * a[0]
-    out[1:] = a[1:] - rho * a[:-1]
+    if steps is None:
+        out[1:] = a[1:] - rho * a[:-1]
+        return out
+    g = np.asarray(steps, dtype=float)
+    rg = rho**g
+    scale = np.sqrt((1.0 - rho * rho) / (1.0 - rg * rg)) if rho != 0 else np.ones_like(g)
+    shape = (-1,) + (1,) * (a.ndim - 1)
+    out[1:] = scale.reshape(shape) * (a[1:] - rg.reshape(shape) * a[:-1])
     return out
 
 
@@ -520,9 +659,11 @@ def fit(
     Y = np.asarray(Y)
     if Y.ndim == 1:
         Y = Y[:, None]
-    n, p = prep.X.shape
-    if Y.shape[0] != n:
-        raise InputError(f"the data have {Y.shape[0]} time points but the design has {n} rows")
+    p = prep.X.shape[1]
+    if Y.shape[0] != prep.n_all:
+        raise InputError(
+            f"the data have {Y.shape[0]} time points but the design has {prep.n_all} rows"
+        )
     c = np.asarray(contrast, dtype=float).reshape(-1)
     if c.size != p:
         raise InputError(f"the contrast has {c.size} weights but the design has {p} columns")
@@ -530,7 +671,32 @@ def fit(
         raise InputError(f"noise model must be 'ols' or 'ar1', not '{noise}'")
 
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p)
+        if prep.keep is None:
+            return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p)
+        return _fit_kept(prep, Y, c, noise, rho_step, keep_series, want_p)
+
+
+def _fit_kept(
+    prep: PreparedDesign,
+    Y: np.ndarray,
+    c: np.ndarray,
+    noise: str,
+    rho_step: float | None,
+    keep_series: bool,
+    want_p: bool,
+) -> FitResult:
+    """Fit on the kept volumes only; fitted values and residuals cover every volume.
+
+    Left-out volumes leave every statistic (betas, variance, t, df, rho, R²); their fitted
+    value is ``x_t b`` and their residual ``y_t - x_t b``, for plots that grey them.
+    """
+    res = _fit_checked(prep, Y[prep.keep], c, noise, rho_step, keep_series, want_p)
+    if keep_series:
+        fitted = prep.X_all @ res.betas
+        res.fitted = fitted
+        res.residuals = np.asarray(Y, dtype=np.float64) - fitted
+    res.keep = prep.keep
+    return res
 
 
 def _contrast_variance(prep: PreparedDesign, c: np.ndarray) -> float:
@@ -586,6 +752,64 @@ def _ar1_solve(
     return B, cov, cvar
 
 
+def _gap_weights(rho: np.ndarray, g: int) -> tuple[np.ndarray, np.ndarray]:
+    """``rho^g`` and the squared row scale ``(1 - rho^2) / (1 - rho^(2 g))`` per voxel."""
+    rg = rho**g
+    with np.errstate(invalid="ignore", divide="ignore"):
+        w = np.where(rho == 0, 1.0, (1.0 - rho * rho) / (1.0 - rg * rg))
+    return rg, w
+
+
+def _ar1_solve_gaps(
+    prep: PreparedDesign, Y: np.ndarray, rho: np.ndarray, c: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`_ar1_solve` for kept volumes with gaps (see :func:`prais_winsten`).
+
+    Rows are grouped by their step ``g`` from the previous kept volume; with ``w_g`` the
+    squared row scale, ``X*'X* = (1 - r^2) x_0 x_0' + sum_g w_g (A_g - r^g L_g + r^(2g) P_g)``
+    where, over the rows ``t`` of step ``g``, ``A_g = sum x_t x_t'``, ``P_g = sum x_{t-1}
+    x_{t-1}'`` and ``L_g = sum (x_t x_{t-1}' + x_{t-1} x_t')``; ``X*'y*`` likewise. A few
+    distinct steps make a few p x p products, then one small solve per voxel.
+    """
+    X = prep.X
+    norms = np.linalg.norm(X, axis=0)
+    Xs = X / norms
+    r = rho
+    r2 = r * r
+    G = (1.0 - r2)[:, None, None] * np.outer(Xs[0], Xs[0])
+    g_vec = (1.0 - r2) * (Xs[0][:, None] * Y[0])
+    for g in np.unique(prep.steps):
+        t = np.flatnonzero(prep.steps == g) + 1
+        cur, prev = Xs[t], Xs[t - 1]
+        A = cur.T @ cur
+        P = prev.T @ prev
+        L = cur.T @ prev
+        L = L + L.T
+        rg, w = _gap_weights(r, int(g))
+        G += w[:, None, None] * (
+            A[None] - rg[:, None, None] * L[None] + (rg * rg)[:, None, None] * P[None]
+        )
+        Yc, Yp = Y[t], Y[t - 1]
+        g_vec += w * (cur.T @ Yc - rg * (cur.T @ Yp + prev.T @ Yc) + (rg * rg) * (prev.T @ Yp))
+    Ginv = np.linalg.inv(G)
+    Bs = np.einsum("vij,jv->iv", Ginv, g_vec)
+    B = Bs / norms[:, None]
+    cov = np.divide(Ginv, np.outer(norms, norms), out=Ginv)
+    cvar = np.einsum("i,vij,j->v", c, cov, c)
+    return B, cov, cvar
+
+
+def _gap_rss(R: np.ndarray, rho: np.ndarray, steps: np.ndarray) -> np.ndarray:
+    """Sum of squares of the whitened residuals (per voxel ``rho``) with gaps."""
+    out = (1.0 - rho * rho) * R[0] * R[0]
+    for g in np.unique(steps):
+        t = np.flatnonzero(steps == g) + 1
+        rg, w = _gap_weights(rho, int(g))
+        d = R[t] - rg * R[t - 1]
+        out = out + w * np.einsum("ij,ij->j", d, d)
+    return out
+
+
 def _fit_checked(
     prep: PreparedDesign,
     Y: np.ndarray,
@@ -630,19 +854,23 @@ def _fit_checked(
     rss_w = rss
     if noise == "ar1":
         rss = np.einsum("ij,ij->j", R, R)  # rho is a ratio of residual sums: both explicit
-        rho = np.where(flat, 0.0, _rho_of(R, rss))  # 0 for constant voxels (no residuals)
+        rho = np.where(flat, 0.0, _rho_of(R, rss, prep.steps))  # 0 for constant voxels
         if rho_step is not None:
             rho = np.round(rho / rho_step) * rho_step
         rho = np.clip(rho, -_RHO_LIMIT, _RHO_LIMIT)
-        B, cov, cvar = _ar1_solve(prep, Y, rho, c)
+        solve = _ar1_solve if prep.steps is None else _ar1_solve_gaps  # gaps: left-out volumes
+        B, cov, cvar = solve(prep, Y, rho, c)
         np.matmul(X, B, out=R)
         np.subtract(Y, R, out=R)
         rss = np.einsum("ij,ij->j", R, R)
         # whitened residuals: the Prais-Winsten transform is linear, so whiten y - X b
-        Rw0 = np.sqrt(1.0 - rho * rho) * R[0]
-        Rw = np.multiply(R[:-1], rho, out=Y[1:])  # Y is not needed any more
-        np.subtract(R[1:], Rw, out=Rw)
-        rss_w = Rw0 * Rw0 + np.einsum("ij,ij->j", Rw, Rw)
+        if prep.steps is not None:
+            rss_w = _gap_rss(R, rho, prep.steps)
+        else:
+            Rw0 = np.sqrt(1.0 - rho * rho) * R[0]
+            Rw = np.multiply(R[:-1], rho, out=Y[1:])  # Y is not needed any more
+            np.subtract(R[1:], Rw, out=Rw)
+            rss_w = Rw0 * Rw0 + np.einsum("ij,ij->j", Rw, Rw)
         group = np.arange(v)
     else:
         group = np.zeros(v, dtype=np.int64)
