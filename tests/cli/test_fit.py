@@ -190,7 +190,7 @@ def test_bad_confounds_rows_and_rank_deficiency(tmp_path, capsys):
     conf.write_text("a\tb\n" + "".join(f"{i}\t{2 * i}\n" for i in range(T)))
     assert main([*argv, "--confounds", str(conf)]) == 2
     err = capsys.readouterr().err
-    assert "collinear" in err and "'a'" in err and "'b'" in err
+    assert "rank-deficient" in err and "'a'" in err and "'b'" in err
 
 
 def test_not_nifti_and_3d(tmp_path, capsys):

@@ -22,6 +22,7 @@ __all__ = [
     "add_voxel_args",
     "analysis_from_args",
     "companions_text",
+    "excluded_json",
     "json_safe",
     "parse_highpass",
     "parse_kernels",
@@ -91,6 +92,28 @@ class _EachRun(argparse.Action):
         setattr(namespace, f"{self.dest}_each", each)
 
 
+def _count(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(
+            f"expected a whole number of volumes, not '{text}'"
+        ) from None
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"expected 0 or more volumes, not '{text}'")
+    return v
+
+
+def _positive_mm(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number of mm, not '{text}'") from None
+    if not (v > 0 and math.isfinite(v)):
+        raise argparse.ArgumentTypeError(f"expected a positive number of mm, not '{text}'")
+    return v
+
+
 def add_model_args(
     p: argparse.ArgumentParser, kernels: bool = True, several_runs: bool = False
 ) -> None:
@@ -133,6 +156,20 @@ def add_model_args(
         help="confound columns for the model: names, wildcards (trans_?, a_comp_cor_0[0-4]) "
         "and sets (motion6, motion12, motion24, acompcorN, csf, wm, global, outliers, all, "
         "none), comma-separated; default: all columns of a --confounds table of at most 30",
+    )
+    p.add_argument(
+        "--drop-volumes",
+        type=_count,
+        default=0,
+        metavar="N",
+        help="leave the first N volumes out of the fit (volumes marked non-steady-state in "
+        "the confounds table are left out anyway)",
+    )
+    p.add_argument(
+        "--censor-fd",
+        type=_positive_mm,
+        metavar="MM",
+        help="leave out volumes whose framewise_displacement (confounds table) exceeds MM",
     )
     p.add_argument(
         "--tr",
@@ -285,16 +322,22 @@ def analysis_from_args(
         fir_bins=int(args.fir_bins),
         fir_bin_s=args.fir_bin,
         confound_columns=got.confound_columns,
+        drop_volumes=int(getattr(args, "drop_volumes", 0) or 0),
+        censor_fd_mm=getattr(args, "censor_fd", None),
     )
     # Check the contrast once, against the condition names, before any fitting.
     got.analysis.check_contrast(settings.contrast)
+    warnings = list(got.warnings)
+    # excluded volumes and every kernel's design, checked once before any fitting
+    got.analysis.excluded_volumes(settings)
+    warnings.extend(got.analysis.design_warnings(settings))
     return Loaded(
         got.run,
         got.analysis,
         settings,
         Path(got.events_path),
         got.confounds_path,
-        list(got.warnings),
+        warnings,
         got,
     )
 
@@ -356,6 +399,12 @@ def voxel_from_args(args: argparse.Namespace, run) -> tuple[int, int, int]:
     if getattr(args, "voxel", None) is not None:
         return run.check_voxel(tuple(args.voxel))
     return run.mm_to_voxel(tuple(args.mm))
+
+
+def excluded_json(loaded: Loaded) -> list[dict]:
+    """The volumes left out of the fit, 0-based and sorted, each with its reason."""
+    ex = loaded.analysis.excluded_volumes(loaded.settings)
+    return [{"volume": v, "reason": why} for v, why in ex.items()]
 
 
 def json_safe(obj):

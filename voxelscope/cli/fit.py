@@ -20,6 +20,7 @@ from .common import (
     add_voxel_args,
     companions_text,
     dump_json,
+    excluded_json,
     print_warnings,
     voxel_from_args,
 )
@@ -147,6 +148,16 @@ def fit_to_json(f: KernelFit, checks: dict | None = None, tail: str = "two") -> 
     return out
 
 
+def _left_out(loaded: Loaded) -> str:
+    """`` (3 left out: 0, 1, 57)`` or nothing."""
+    ex = loaded.analysis.excluded_volumes(loaded.settings)
+    if not ex:
+        return ""
+    vols = list(ex)
+    shown = ", ".join(str(v) for v in vols[:8]) + (" ..." if len(vols) > 8 else "")
+    return f" ({len(vols)} left out: {shown})"
+
+
 def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str = "two"):
     """Fit one run at one voxel: the fits, the checks per kernel and the JSON object."""
     run = loaded.run
@@ -171,6 +182,7 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str 
         "companions": loaded.inputs.used_files() if loaded.inputs is not None else None,
         "confounds": loaded.confounds_path,
         "confound_columns": list(loaded.settings.confound_columns or ()),
+        "excluded_volumes": excluded_json(loaded),
         "y": y.tolist(),
         "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel), tail) for f in fits.fits],
         "warnings": list(dict.fromkeys(warnings)),
@@ -349,8 +361,8 @@ def run_fit(args: argparse.Namespace) -> int:
         return 0
     print(
         f"voxel {tuple(int(v) for v in ijk)}  mm ({mm[0]:.1f}, {mm[1]:.1f}, {mm[2]:.1f})  "
-        f"TR {run.tr:g} s  {run.n_volumes} volumes  contrast {fits.fits[0].contrast}  "
-        f"noise {loaded.settings.noise}"
+        f"TR {run.tr:g} s  {run.n_volumes} volumes{_left_out(loaded)}  "
+        f"contrast {fits.fits[0].contrast}  noise {loaded.settings.noise}"
     )
     print(format_table(fits, loaded.settings.noise, args.tail))
     for line in companions_text(loaded):

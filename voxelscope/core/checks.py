@@ -222,6 +222,10 @@ class VoxelChecks:
     confound_spikes : confound column -> volumes where its frame-to-frame change is a spike
         (above the median + RMS_SPIKE_K MAD of that change), from every column of the
         confounds file, in the model or not
+    excluded_volumes : volumes left out of the fit (non-steady-state, censored); every
+        check uses the kept volumes only (the autocorrelation reads them as consecutive, the
+        spectrum gives left-out volumes their fitted value), and per-volume arrays hold NaN
+        at left-out volumes
     tsnr, edge_distance_mm, in_mask : signal quality and place (None without a run/ijk)
     shifts_s, shift_t, t_at_zero_shift, best_shift_s, kernel_peak_s, peak_latency_s : timing
     fir : dict with times, estimate, se, bin_s, peak_s, kernels, kernel_times, kernels_fine
@@ -271,6 +275,7 @@ class VoxelChecks:
     confound_correlation: dict[str, dict[str, float]] = field(default_factory=dict)
     confound_spikes: dict[str, tuple[int, ...]] = field(default_factory=dict)
     confounds_in_model: tuple[str, ...] = ()
+    excluded_volumes: tuple[int, ...] = ()
     # signal quality and place
     tsnr: float = math.nan
     edge_distance_mm: float | None = None
@@ -397,6 +402,8 @@ def voxel_checks(
         )
     k_obj = analysis.kernel(kernel, settings)
     d, prep = analysis.prepared(kernel, settings)
+    keep = prep.keep  # left-out volumes (non-steady-state, censored) leave every check
+    X_kept = d.X if keep is None else d.X[keep]
     w = analysis.contrast_weights(kernel, settings)
     cond = _pick_condition(analysis, d, w, condition)
     tr = analysis.tr
@@ -407,7 +414,8 @@ def voxel_checks(
         noise=settings.noise,
         n_volumes=n,
         tr=tr,
-        vif=variance_inflation(d.X, d.names),
+        vif=variance_inflation(X_kept, d.names),
+        excluded_volumes=() if keep is None else tuple(int(v) for v in np.flatnonzero(~keep)),
         confound_correlation=_confound_correlation(analysis, d),
         confound_spikes=confound_spikes(analysis),
         confounds_in_model=tuple(n for n, k in zip(d.names, d.kinds) if k == "confound"),
@@ -424,15 +432,17 @@ def voxel_checks(
     main = fit(prep, y, w, noise=settings.noise)
     parts.update(t=float(main.t[0]), df=int(main.df))
     ols = main if settings.noise == "ols" else fit(prep, y, w, noise="ols")
-    r = ols.residuals[:, 0]
+    kept = np.arange(n) if keep is None else np.flatnonzero(keep)
+    r = ols.residuals[kept, 0]  # kept volumes, read as consecutive for the autocorrelation
     parts.update(_autocorrelation(r))
     rw = r
     if settings.noise == "ar1" and main.rho is not None:
-        rw = prais_winsten(main.residuals[:, 0], float(main.rho[0]))
+        rw = prais_winsten(main.residuals[kept, 0], float(main.rho[0]), prep.steps)
         parts["ar1_whitened"] = float(ar1_rho(rw)[0])
     parts.update(_whitened_part(rw))
-    parts.update(_influence_part(prep, y, r, w, settings.noise, base.rms_spikes, parts["t"]))
-    parts["tsnr"] = _tsnr(y, n, tr, settings.highpass_s)
+    infl = _influence_part(prep, y[kept], r, w, settings.noise, None, parts["t"])
+    parts.update(_on_all_volumes(infl, kept, n, base.rms_spikes))
+    parts["tsnr"] = _tsnr(y, n, tr, settings.highpass_s, keep)
 
     scan = shift_scan(analysis, settings, kernel, y)
     parts.update(
@@ -446,7 +456,9 @@ def voxel_checks(
         parts["fir"] = fir_estimate(analysis, settings, y, cond).to_json()
     except ModelError as exc:
         notes.append(f"no FIR estimate: {exc}")
-    parts.update(_spectrum_part(y, d, cond, tr, settings.highpass_s))
+    # the spectrum needs every volume: left-out ones take their fitted value
+    y_spec = y if keep is None else np.where(keep, y, ols.fitted[:, 0])
+    parts.update(_spectrum_part(y_spec, d, cond, tr, settings.highpass_s))
     checks = replace(base, warnings=tuple(notes), **parts)
     return replace(checks, flags=tuple(_flags(checks, d)))
 
@@ -564,6 +576,24 @@ def _influence_part(
     }
 
 
+def _on_all_volumes(
+    part: dict[str, Any], kept: np.ndarray, n: int, spikes: Sequence[int] | None
+) -> dict[str, Any]:
+    """Influence results on the kept volumes, re-indexed to volumes of the run (left-out
+    volumes get NaN leverage, Cook's distance and studentized residual)."""
+    out = dict(part)
+    for key in ("studentized_outliers", "influential_volumes"):
+        out[key] = tuple(int(kept[i]) for i in part[key])
+    for key in ("leverage", "cooks", "studentized"):
+        full = np.full(n, np.nan)
+        full[kept] = part[key]
+        out[key] = full
+    if part["cooks_volume"] is not None:
+        out["cooks_volume"] = int(kept[part["cooks_volume"]])
+    out["outlier_volumes"] = tuple(sorted(set(out["studentized_outliers"]) | set(spikes or ())))
+    return out
+
+
 def _t_without(
     prep: PreparedDesign, y: np.ndarray, w: np.ndarray, noise: str, drop: Sequence[int]
 ) -> float:
@@ -584,15 +614,18 @@ def _t_without(
         return math.nan
 
 
-def _tsnr(y: np.ndarray, n: int, tr: float, highpass_s: float | None) -> float:
+def _tsnr(
+    y: np.ndarray, n: int, tr: float, highpass_s: float | None, keep: np.ndarray | None = None
+) -> float:
     X = np.column_stack([dct_drift(n, tr, highpass_s), np.ones(n)])
     c = np.zeros(X.shape[1])
     c[-1] = 1.0
     try:
-        s2 = float(fit(X, y, c).sigma2[0])
+        s2 = float(fit(prepare(X, keep=keep), y, c).sigma2[0])
     except ModelError:
         return math.nan
-    return float(np.mean(y)) / math.sqrt(s2) if s2 > 0 else math.nan
+    mean = float(np.mean(y if keep is None else y[keep]))
+    return mean / math.sqrt(s2) if s2 > 0 else math.nan
 
 
 def _confound_correlation(analysis: Analysis, d: DesignMatrix) -> dict[str, dict[str, float]]:

@@ -19,7 +19,9 @@ Column order
 The default model is exactly: one regressor per condition (named as the condition, i.e. the
 ``trial_type`` value), then, when asked, derivative columns (``<name>_dt``, ``<name>_dd``)
 after their condition, then confound columns (their file names), then discrete cosine drift
-columns ``drift_1 .. drift_K`` and last ``constant``.
+columns ``drift_1 .. drift_K`` and last ``constant``. Cosine columns chosen from a confounds
+table (``cosine00`` ...) are drift columns already: they replace ``drift_1 .. drift_K``
+(with a warning when a high-pass cutoff was set), so the drift never enters twice.
 
 Drift uses the discrete cosine basis ``cos(pi * k * (2 n + 1) / (2 N))`` for
 ``k = 1 .. K`` with ``K = floor(2 N TR / cutoff)``; a 128 s cutoff is a common default
@@ -315,14 +317,24 @@ def build_design(
             idx.append(len(cols) - 1)
         cond_cols[cond.name] = tuple(idx)
 
+    warnings: list[str] = []
+    file_drift: tuple[str, ...] = ()
     if confounds is not None:
         confounds.check_rows(n_volumes)
+        file_drift = confounds.cosine_columns(confounds.names)
         for j, name in enumerate(confounds.names):
             label = name if name not in names else f"{name}_confound"
             cols.append(confounds.values[:, j].astype(float))
             names.append(label)
-            kinds.append("confound")
+            kinds.append("drift" if name in file_drift else "confound")
 
+    if file_drift:  # the table's own cosine drift columns replace ours, never both
+        if highpass_s is not None:
+            warnings.append(
+                f"the confounds' cosine drift columns ({file_drift[0]} .. {file_drift[-1]}) "
+                f"replace the model's own drift columns (high-pass {highpass_s:g} s not used)"
+            )
+        highpass_s = None
     drift = dct_drift(n_volumes, tr, highpass_s)
     for j in range(drift.shape[1]):
         cols.append(drift[:, j])
@@ -344,4 +356,6 @@ def build_design(
             f"the run has {n_volumes} volumes but the model has {X.shape[1]} columns; "
             "use fewer regressors (drop confounds, a longer high-pass cutoff or no derivatives)"
         )
-    return DesignMatrix(X, tuple(names), tuple(kinds), cond_cols, k, float(tr), times)
+    return DesignMatrix(
+        X, tuple(names), tuple(kinds), cond_cols, k, float(tr), times, tuple(warnings)
+    )

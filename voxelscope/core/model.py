@@ -53,6 +53,15 @@ class ModelSettings:
     fir_bins : int
     fir_bin_s : float or None
         FIR bin width; None means one TR.
+    drop_volumes : int
+        Leave the first N volumes out of the fit (runs whose confounds table has no
+        non-steady-state columns).
+    censor_fd_mm : float or None
+        Leave out volumes whose ``framewise_displacement`` exceeds this many mm.
+
+    Volumes marked in the table's ``non_steady_state_outlier*`` columns always leave the fit,
+    and so do those marked in chosen outlier columns (``motion_outlier*``); see
+    :meth:`Analysis.excluded_volumes`.
     """
 
     kernels: tuple[str, ...] = DEFAULT_KERNELS
@@ -64,6 +73,8 @@ class ModelSettings:
     derivatives: int = 0
     fir_bins: int = 12
     fir_bin_s: float | None = None
+    drop_volumes: int = 0
+    censor_fd_mm: float | None = None
 
     def with_(self, **changes) -> ModelSettings:
         """A copy with some fields changed."""
@@ -180,11 +191,10 @@ class Analysis:
         self._fast: dict[tuple, tuple[DesignMatrix, PreparedDesign]] = {}
         self._weights: dict[tuple, np.ndarray] = {}
         self._plans: dict[ModelSettings, list[tuple]] = {}
+        self._excluded: dict[tuple, dict[int, str]] = {}
         self.warnings: list[str] = list(
             check_events_in_run(self.conditions, self.n_volumes * self.tr)
         )
-        if confounds is not None:
-            self.warnings.extend(confounds.warnings)
 
     @property
     def condition_names(self) -> tuple[str, ...]:
@@ -203,7 +213,82 @@ class Analysis:
         return get_kernel(name)
 
     def _key(self, kernel: Kernel, s: ModelSettings) -> tuple:
-        return (kernel, s.derivatives, s.highpass_s, s.confound_columns, s.onset_shift_s)
+        return (
+            kernel,
+            s.derivatives,
+            s.highpass_s,
+            s.confound_columns,
+            s.onset_shift_s,
+            s.drop_volumes,
+            s.censor_fd_mm,
+        )
+
+    def excluded_volumes(self, settings: ModelSettings) -> dict[int, str]:
+        """Volumes left out of the fit (0-based, sorted) and why, under these settings.
+
+        In order of precedence for the reason: the confounds table's non-steady-state
+        columns, ``drop_volumes``, chosen outlier columns, framewise displacement above
+        ``censor_fd_mm``.
+
+        >>> from voxelscope.core.events import Condition
+        >>> a = Analysis([Condition("tap", [4.0], [8.0])], n_volumes=30, tr=1.0)
+        >>> a.excluded_volumes(ModelSettings(drop_volumes=2))
+        {0: 'one of the first 2 volumes, dropped', 1: 'one of the first 2 volumes, dropped'}
+        """
+        key = ("excluded", settings.confound_columns, settings.drop_volumes, settings.censor_fd_mm)
+        hit = self._excluded.get(key)
+        if hit is not None:
+            return dict(hit)
+        out: dict[int, str] = {}
+        n = self.n_volumes
+        conf = self.confounds
+        if conf is not None:
+            for v, col in conf.outlier_volumes(conf.non_steady_columns()).items():
+                out.setdefault(v, f"non-steady-state ({col})")
+        k = int(settings.drop_volumes)
+        if k < 0 or k >= n:
+            raise InputError(
+                f"cannot drop the first {k} of {n} volumes; give a number from 0 to {n - 1}"
+            )
+        for v in range(k):
+            out.setdefault(v, f"one of the first {k} volumes, dropped")
+        if conf is not None:
+            chosen = self._chosen_columns(settings)
+            for v, col in conf.outlier_volumes(chosen).items():
+                out.setdefault(v, f"marked in {col}")
+        if settings.censor_fd_mm is not None:
+            mm = float(settings.censor_fd_mm)
+            if not (mm > 0 and np.isfinite(mm)):
+                raise InputError(
+                    f"the framewise displacement limit must be a positive number of mm, not {mm}"
+                )
+            if conf is None or "framewise_displacement" not in conf.names:
+                where = "no confounds table" if conf is None else conf.source
+                raise InputError(
+                    f"{where}: censoring by framewise displacement needs a "
+                    "framewise_displacement column; give a confounds table that has one"
+                )
+            fd = conf.column("framewise_displacement")
+            for v in np.flatnonzero(fd > mm):
+                out.setdefault(int(v), f"framewise displacement {fd[v]:.2f} mm > {mm:g} mm")
+        out = dict(sorted(out.items()))
+        self._excluded[key] = out
+        return dict(out)
+
+    def _chosen_columns(self, settings: ModelSettings) -> tuple[str, ...]:
+        if self.confounds is None:
+            return ()
+        cols = settings.confound_columns
+        return self.confounds.file_columns if cols is None else tuple(cols)
+
+    def keep_mask(self, settings: ModelSettings) -> np.ndarray | None:
+        """Volumes that enter the fit (None when all do)."""
+        ex = self.excluded_volumes(settings)
+        if not ex:
+            return None
+        keep = np.ones(self.n_volumes, dtype=bool)
+        keep[list(ex)] = False
+        return keep
 
     def prepared(
         self, kernel: str | Kernel, settings: ModelSettings
@@ -217,6 +302,8 @@ class Analysis:
             settings.onset_shift_s,
             settings.fir_bins,
             settings.fir_bin_s,
+            settings.drop_volumes,
+            settings.censor_fd_mm,
         )
         hit = self._fast.get(fast)
         if hit is not None:
@@ -225,9 +312,12 @@ class Analysis:
         key = self._key(k, settings)
         hit = self._designs.get(key)
         if hit is None:
-            conf = (
-                None if self.confounds is None else self.confounds.select(settings.confound_columns)
-            )
+            conf = None
+            if self.confounds is not None:
+                # outlier columns mark volumes to leave out; they are not regressors
+                cols = self._chosen_columns(settings)
+                cols = [c for c in cols if not self.confounds.is_outlier_column(c)]
+                conf = self.confounds.select(cols)
             if conf is not None and not conf.names:
                 conf = None
             d = build_design(
@@ -240,7 +330,7 @@ class Analysis:
                 confounds=conf,
                 reference_time_s=self.reference_time_s,
             )
-            hit = (d, prepare(d.X, d.names))
+            hit = (d, prepare(d.X, d.names, keep=self.keep_mask(settings)))
             if len(self._designs) > 256:
                 self._designs.clear()
                 self._fast.clear()
@@ -346,7 +436,18 @@ class Analysis:
                 warnings.append(
                     "the model fits this voxel exactly; t, p and variance are undefined"
                 )
+        warnings = self.design_warnings(settings) + warnings
         return VoxelFits(y, tuple(fits), tuple(warnings))
+
+    def design_warnings(self, settings: ModelSettings) -> list[str]:
+        """Warnings about the designs of these settings (drift from the confounds table, a
+        poorly conditioned design), each once; builds the designs (raises their errors)."""
+        out: list[str] = []
+        for _name, d, prep, _w, _c in self._plan(settings):
+            for w in (*d.warnings, *prep.warnings):
+                if w not in out:
+                    out.append(w)
+        return out
 
 
 def _single_condition(expr: str, d: DesignMatrix) -> str | None:

@@ -418,6 +418,18 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
             raise c.fail("model.derivatives", f"must be 0, 1 or 2, not {der}")
         return der
 
+    def drop_volumes():
+        dv = c.integer(d["drop_volumes"], "model.drop_volumes")
+        if dv < 0:
+            raise c.fail("model.drop_volumes", "must be 0 or more volumes")
+        return dv
+
+    def censor_fd_mm():
+        fd = c.number(d["censor_fd_mm"], "model.censor_fd_mm", allow_none=True)
+        if fd is not None and fd <= 0:
+            raise c.fail("model.censor_fd_mm", "must be a positive number of mm or null")
+        return fd
+
     checks = {
         "kernels": kernels,
         "contrast": contrast,
@@ -430,6 +442,8 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
         "derivatives": derivatives,
         "fir_bins": ranged("fir_bins", integer=True),
         "fir_bin_s": ranged("fir_bin_s", allow_none=True),
+        "drop_volumes": drop_volumes,
+        "censor_fd_mm": censor_fd_mm,
     }
     bad = object()
     for name, check in checks.items():
