@@ -15,6 +15,7 @@ References (named beside each test):
 from __future__ import annotations
 
 import functools
+import io
 import json
 import math
 
@@ -33,7 +34,7 @@ from voxelscope.core.checks import (
     VoxelChecks,
     voxel_checks,
 )
-from voxelscope.core.confounds import Confounds
+from voxelscope.core.confounds import Confounds, parse_confounds
 from voxelscope.core.design import dct_drift
 from voxelscope.core.errors import InputError
 from voxelscope.core.events import Condition
@@ -568,10 +569,76 @@ def test_motion_flag_when_voxel_outliers_sit_on_confound_jumps():
     _, c = _motion_case(True, include=False)
     assert "motion" in c.flag_ids()
     text = next(f.text for f in c.flags if f.id == "motion")
-    assert "move_y" in text and "70" in text and "leaves these columns out" in text
+    assert "move_y" in text and "volumes 70, 73" in text and "not in the model" in text
     _, c_in = _motion_case(True, include=True)
     motion = [f.text for f in c_in.flags if f.id == "motion"]
-    assert all("leaves these columns out" not in t for t in motion)
+    assert motion and all("these columns are in the model" in t for t in motion)
+    assert all("not in the model" not in t for t in motion)
+
+
+def _pipeline_motion_case(spike_at: int):
+    """Six pipeline-named motion columns (translations in mm, rotations in radians); five of
+    them jump between volumes 79 and 80; the voxel stands out at ``spike_at`` only."""
+    from voxelscope.core.checks import voxel_checks
+
+    rng = np.random.default_rng(5)
+    n, tr = 160, 1.25
+    names = ("trans_x", "trans_y", "trans_z", "rot_x", "rot_y", "rot_z", "dvars")
+    vals = np.cumsum(rng.standard_normal((n, 7)), axis=0) * 0.002
+    vals[80:, 0] += 0.9  # mm
+    vals[80:, 1] += 0.1
+    vals[80:, 2] += 0.08
+    vals[80:, 3] += 0.2  # radians: 11 degrees
+    vals[80:, 4] += 0.3
+    vals[:, 6] = 20 + rng.standard_normal(n)
+    text = "\t".join(names) + "\n"
+    for i in range(n):
+        cells = [f"{v:.6g}" for v in vals[i]]
+        if i == 0:
+            cells[6] = "n/a"
+        text += "\t".join(cells) + "\n"
+    conf = parse_confounds(io.StringIO(text), "c.tsv")
+    conds = [Condition("tap", [12.0, 60.0, 110.0, 160.0], [15.0] * 4)]
+    a = Analysis(conds, n, tr, conf)
+    s = ModelSettings(kernels=("double-gamma",), confound_columns=("trans_y", "rot_x"))
+    x = a.design("double-gamma", s).column("tap")
+    y = 1000 + 8 * x + rng.standard_normal(n) * 2
+    y[spike_at] += 30
+    return a, voxel_checks(a, s, "double-gamma", y)
+
+
+def test_motion_flag_names_the_jump_volume_three_columns_and_sizes():
+    """The flag names volume 80, where the columns take their new values, even when the
+    voxel stands out one volume later; the three largest jumps relative to each column's
+    threshold, translations in mm and rotations converted from radians to degrees; and says
+    which of them the model has."""
+    from voxelscope.core.checks import confound_spikes
+
+    a, c = _pipeline_motion_case(spike_at=81)
+    assert 81 in c.studentized_outliers
+    assert confound_spikes(a) == {
+        n: (80,) for n in ("trans_x", "trans_y", "trans_z", "rot_x", "rot_y")
+    }
+    (text,) = [f.text for f in c.flags if f.id == "motion"]
+    assert text.startswith("The confounds jump at volume 80 (")
+    assert "volume 81" not in text and "volume 79" not in text
+    assert "and 2 more" in text
+    assert "(trans_x 0.9 mm, rot_y 17°, rot_x 11° and 2 more)" in text
+    assert "; rot_x is in the model, trans_x, rot_y are not." in text
+    assert "dvars" not in text  # not a motion column, and its n/a first row is no jump
+
+
+def test_first_rows_are_never_jumps():
+    """A column whose first cells are n/a (read as 0) does not jump at its first value."""
+    from voxelscope.core.checks import confound_spikes
+
+    rng = np.random.default_rng(8)
+    n = 80
+    v = 20 + rng.standard_normal(n)
+    text = "dvars\tstd_dvars\n" + "n/a\tn/a\n" + "".join(f"{a:.6g}\t{a / 20:.6g}\n" for a in v[1:])
+    conf = parse_confounds(io.StringIO(text), "c.tsv")
+    a = Analysis([Condition("tap", [10.0], [15.0])], n, 2.0, conf)
+    assert confound_spikes(a) == {}
 
 
 def test_no_motion_flag_for_a_clean_voxel_during_motion():

@@ -220,8 +220,9 @@ class VoxelChecks:
     frame_rms_change, rms_spikes, rms_threshold : run-level (None without a run)
     vif, confound_correlation : design checks
     confound_spikes : confound column -> volumes where its frame-to-frame change is a spike
-        (above the median + RMS_SPIKE_K MAD of that change), from every column of the
-        confounds file, in the model or not
+        (above the median + RMS_SPIKE_K MAD of that change), from the motion columns of the
+        confounds file (see :func:`confound_spikes`), in the model or not
+    confound_jumps : the same jumps with their size (column units) and size / threshold
     excluded_volumes : volumes left out of the fit (non-steady-state, censored); every
         check uses the kept volumes only (the autocorrelation reads them as consecutive, the
         spectrum gives left-out volumes their fitted value), and per-volume arrays hold NaN
@@ -273,7 +274,7 @@ class VoxelChecks:
     # design
     vif: dict[str, float] = field(default_factory=dict)
     confound_correlation: dict[str, dict[str, float]] = field(default_factory=dict)
-    confound_spikes: dict[str, tuple[int, ...]] = field(default_factory=dict)
+    confound_jumps: dict[str, dict[int, tuple[float, float]]] = field(default_factory=dict)
     confounds_in_model: tuple[str, ...] = ()
     excluded_volumes: tuple[int, ...] = ()
     # signal quality and place
@@ -294,6 +295,11 @@ class VoxelChecks:
     flags: tuple[Flag, ...] = ()
     warnings: tuple[str, ...] = ()
 
+    @property
+    def confound_spikes(self) -> dict[str, tuple[int, ...]]:
+        """Column -> volumes where it jumps (see :func:`confound_spikes`)."""
+        return {n: tuple(v) for n, v in self.confound_jumps.items()}
+
     def flag_ids(self) -> list[str]:
         """Identifiers of the raised flags, in order."""
         return [f.id for f in self.flags]
@@ -309,6 +315,7 @@ class VoxelChecks:
             if name in ("shifts_s", "shift_t"):
                 continue
             out[name] = getattr(self, name)
+        out["confound_spikes"] = self.confound_spikes
         out["shift_scan"] = {"shifts_s": self.shifts_s, "t": self.shift_t}
         out["flags"] = [f.to_json() for f in self.flags]
         return _plain(out)
@@ -417,7 +424,7 @@ def voxel_checks(
         vif=variance_inflation(X_kept, d.names),
         excluded_volumes=() if keep is None else tuple(int(v) for v in np.flatnonzero(~keep)),
         confound_correlation=_confound_correlation(analysis, d),
-        confound_spikes=confound_spikes(analysis),
+        confound_jumps=_confound_jumps(analysis),
         confounds_in_model=tuple(n for n, k in zip(d.names, d.kinds) if k == "confound"),
         kernel_peak_s=float(k_obj.peak_s()),
         **_run_part(run, ijk),
@@ -463,12 +470,37 @@ def voxel_checks(
     return replace(checks, flags=tuple(_flags(checks, d)))
 
 
+def _jump_columns(conf) -> tuple[str, ...]:
+    """Columns whose steps can show head motion: the six motion parameters when the table
+    has them, else every file column that is not already a difference, a square, a drift
+    or an outlier marker."""
+    from .confounds import MOTION6
+
+    base = tuple(n for n in MOTION6 if n in conf.file_columns)
+    if base:
+        return base
+    skip = ("_derivative1", "_power2", "cosine", "outlier", "comp_cor")
+    return tuple(n for n in conf.file_columns if not any(k in n for k in skip))
+
+
+def _steps(conf, name: str) -> np.ndarray:
+    """``|x_v - x_{v-1}|`` at index ``v - 1``; NaN where ``x_{v-1}`` was a leading empty
+    cell (read as 0), so the first real value is never a jump."""
+    x = conf.column(name)
+    step = np.abs(np.diff(x))
+    lead = conf.leading_missing[conf.names.index(name)] if conf.leading_missing else 0
+    step[: max(lead, 0)] = np.nan
+    return step
+
+
 def confound_spikes(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, tuple[int, ...]]:
     """Volumes where a confound column jumps: its absolute frame-to-frame change exceeds
     ``median + k * 1.4826 * MAD`` of that change (the rule of the run's RMS spikes).
 
-    A jump between volumes ``v - 1`` and ``v`` is reported at ``v``. Every column of the
-    confounds file counts, whether or not the model includes it.
+    A jump between volumes ``v - 1`` and ``v`` is reported at ``v``, the volume where the
+    column has its new value. Leading empty cells (read as 0) never make a jump. The columns
+    are the six motion parameters when the table has them, else every column that is not a
+    difference, square, drift or outlier marker, whether or not the model includes it.
 
     >>> from voxelscope.core.confounds import Confounds
     >>> from voxelscope.core.events import Condition
@@ -479,16 +511,31 @@ def confound_spikes(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, tup
     >>> confound_spikes(a)
     {'move_z': (30,)}
     """
+    return {n: tuple(v) for n, v in _confound_jumps(analysis, k).items()}
+
+
+def _confound_jumps(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, dict[int, tuple]]:
+    """Column -> {jump volume: (size, size / threshold)}."""
     conf = analysis.confounds
     if conf is None:
         return {}
-    out: dict[str, tuple[int, ...]] = {}
-    for name in conf.file_columns:
-        step = np.abs(np.diff(conf.column(name)))
-        idx, _thr = robust_spikes(step, k)
+    out: dict[str, dict[int, tuple]] = {}
+    for name in _jump_columns(conf):
+        step = _steps(conf, name)
+        idx, thr = robust_spikes(step, k)
         if idx:
-            out[name] = tuple(i + 1 for i in idx)
+            out[name] = {i + 1: (float(step[i]), float(step[i] / thr)) for i in idx}
     return out
+
+
+def _jump_size(name: str, size: float) -> str:
+    """A jump's size in the column's unit: mm for translations; degrees for rotations, which
+    pipeline tables give in radians (common practice)."""
+    if name.startswith("rot_"):
+        return f"{name} {math.degrees(size):.2g}°"
+    if name.startswith("trans_"):
+        return f"{name} {size:.2g} mm"
+    return f"{name} {size:.2g}"
 
 
 def _pick_condition(
@@ -758,28 +805,47 @@ def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
 
 
 def _motion_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
-    """Outlying or influential volumes of this voxel that fall on confound jumps."""
-    if not c.confound_spikes:
+    """Confound jumps at which this voxel stands out (an outlier or influential volume at the
+    jump or one volume either side): names the jump volume, the (at most three) columns
+    that jump most there with their size, and whether those columns are in the model."""
+    if not c.confound_jumps:
         return []
     suspects = set(c.studentized_outliers) | set(c.influential_volumes)
-    hits: dict[int, list[str]] = {}
-    for name, vols in c.confound_spikes.items():
-        for v in vols:
-            for u in (v - 1, v, v + 1):  # a jump shows at the volume before or after too
-                if u in suspects:
-                    hits.setdefault(u, []).append(name)
+    hits: dict[int, list[tuple[float, str, float]]] = {}
+    for name, jumps in c.confound_jumps.items():
+        for v, (size, ratio) in jumps.items():
+            if {v - 1, v, v + 1} & suspects:
+                hits.setdefault(v, []).append((ratio, name, size))
     if not hits:
         return []
     vols = sorted(hits)
-    cols = sorted({n for names in hits.values() for n in names})
+    best: dict[str, tuple[float, float]] = {}
+    for v in vols:
+        for ratio, name, size in hits[v]:
+            if name not in best or ratio > best[name][0]:
+                best[name] = (ratio, size)
+    top = sorted(best, key=lambda n: -best[n][0])[:3]
+    sizes = ", ".join(_jump_size(n, best[n][1]) for n in top)
+    more = len(best) - len(top)
+    if more:
+        sizes += f" and {more} more"
     where = "volume" if len(vols) == 1 else "volumes"
     text = (
-        f"At {where} {_vols(vols)}, where this voxel stands out, the confounds jump "
-        f"({', '.join(cols)}): head motion is a likely cause"
+        f"The confounds jump at {where} {_vols(vols)} ({sizes}) and this voxel stands out "
+        "there: head motion is a likely cause"
     )
-    left_out = [n for n in cols if n not in c.confounds_in_model]
-    if left_out:
-        text += "; the model leaves these columns out, so try including them"
+    inside = [n for n in top if n in c.confounds_in_model]
+    outside = [n for n in top if n not in c.confounds_in_model]
+    if not outside:
+        text += "; these columns are in the model"
+    elif not inside:
+        it = "this column is" if len(outside) == 1 else "these columns are"
+        text += f"; {it} not in the model, so try adding {'it' if len(outside) == 1 else 'them'}"
+    else:
+        text += (
+            f"; {', '.join(inside)} {'is' if len(inside) == 1 else 'are'} in the model, "
+            f"{', '.join(outside)} {'is' if len(outside) == 1 else 'are'} not"
+        )
     return [Flag("motion", text + ".", "influence")]
 
 
