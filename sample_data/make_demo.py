@@ -1,4 +1,16 @@
-"""Make the voxelscope demo data set: a made-up run from a study of hearing and hand movement.
+"""Make the voxelscope demo data set: a made-up study of hearing and hand movement.
+
+The study is laid out as a preprocessing pipeline leaves it (see ``FILES`` and the folder's
+README): a raw BIDS dataset ``study/`` with the events of two runs, a dataset-level sidecar
+(``RepetitionTime`` and the acquisition's ``SliceTiming``) and the anatomy; a derivatives
+dataset ``study/derivatives/prep`` with the two preprocessed runs, their sidecars
+(``SliceTimingCorrected``, ``StartTime`` = half a TR), brain masks and pipeline-style confound
+tables (39 columns, ``n/a`` first rows). Run 1 is described below; run 2 (``N_VOLUMES_2``
+volumes, ``BLOCK_ORDER_2``) has the same head, clusters and noise levels, its own blocks and
+noise, and no head jolt. Because the runs are slice-time corrected to ``START_TIME_S``, the
+events files give each onset ``START_TIME_S`` later than the block timing used below to plant
+the responses (which are sampled at ``n * TR``), so that a model sampling at
+``n * TR + StartTime`` sees exactly the planted responses.
 
 Run it as ``python sample_data/make_demo.py [--out DIR]`` (default: the folder this script is
 in). It needs only numpy, scipy and nibabel, it is deterministic (one fixed seed, numpy's
@@ -274,13 +286,43 @@ FEATURES = (
     },
 )
 
+#: The study folder (a raw BIDS dataset with a derivatives dataset under it).
+STUDY = "study"
+#: The preprocessed runs were slice-time corrected to this time into each volume (BIDS
+#: ``StartTime``, with ``SliceTimingCorrected: true``): half a TR.
+START_TIME_S = TR / 2
+#: Run 2: shorter, its own block order and timing, no head jolt.
+N_VOLUMES_2 = 112
+BLOCK_ORDER_2 = ("tone", "tap", "tap", "tone")
+#: The raw acquisition's slice order (interleaved, odd slices first), for the raw sidecar.
+N_SLICES = SHAPE[2]
+SPACE = "phantom"
+N_COMPCOR = 5
+
+_RAW_FUNC = f"{STUDY}/sub-demo/func"
+_PREP_FUNC = f"{STUDY}/derivatives/prep/sub-demo/func"
+
+
+def _run_files(r: int) -> dict[str, str]:
+    stem = f"sub-demo_task-tonetap_run-{r}"
+    suffix = "" if r == 1 else str(r)
+    return {
+        f"bold{suffix}": f"{_PREP_FUNC}/{stem}_space-{SPACE}_desc-preproc_bold.nii.gz",
+        f"bold_sidecar{suffix}": f"{_PREP_FUNC}/{stem}_space-{SPACE}_desc-preproc_bold.json",
+        f"mask{suffix}": f"{_PREP_FUNC}/{stem}_space-{SPACE}_desc-brain_mask.nii.gz",
+        f"confounds{suffix}": f"{_PREP_FUNC}/{stem}_desc-confounds_timeseries.tsv",
+        f"events{suffix}": f"{_RAW_FUNC}/{stem}_events.tsv",
+    }
+
+
 FILES = {
-    "bold": "sub-demo_task-tonetap_bold.nii.gz",
-    "sidecar": "sub-demo_task-tonetap_bold.json",
-    "events": "sub-demo_task-tonetap_events.tsv",
-    "confounds": "sub-demo_task-tonetap_confounds.tsv",
-    "anat": "sub-demo_T1w.nii.gz",
-    "pipeline_t": "sub-demo_task-tonetap_pipeline-t.nii.gz",
+    **_run_files(1),
+    **_run_files(2),
+    "description": f"{STUDY}/dataset_description.json",
+    "sidecar": f"{STUDY}/task-tonetap_bold.json",
+    "prep_description": f"{STUDY}/derivatives/prep/dataset_description.json",
+    "anat": f"{STUDY}/sub-demo/anat/sub-demo_T1w.nii.gz",
+    "pipeline_t": "sub-demo_task-tonetap_run-1_pipeline-t.nii.gz",
     "truth": "demo_truth.json",
     "marks": "demo_marks.tsv",
 }
@@ -382,16 +424,18 @@ def phantom_image(
 # --------------------------------------------------------------------------- timing
 
 
-def make_blocks(rng: np.random.Generator) -> list[tuple[float, float, str]]:
+def make_blocks(
+    rng: np.random.Generator, order: tuple[str, ...] = BLOCK_ORDER, n_volumes: int = N_VOLUMES
+) -> list[tuple[float, float, str]]:
     """(onset, duration, trial_type) of the blocks, in seconds."""
     blocks = []
     onset = FIRST_ONSET_S
-    for i, cond in enumerate(BLOCK_ORDER):
+    for i, cond in enumerate(order):
         blocks.append((onset, BLOCK_S, cond))
-        if i < len(BLOCK_ORDER) - 1:
+        if i < len(order) - 1:
             onset += BLOCK_S + float(rng.choice(REST_CHOICES_S))
     end = blocks[-1][0] + BLOCK_S
-    if end > N_VOLUMES * TR - 15.0:
+    if end > n_volumes * TR - 15.0:
         raise RuntimeError("blocks run past the end of the scan; change the seed or N_VOLUMES")
     return blocks
 
@@ -437,11 +481,11 @@ def cosine_drift(n_volumes: int, tr: float, cutoff_s: float) -> np.ndarray:
     )
 
 
-def jolt_series(blocks: list[tuple[float, float, str]]) -> np.ndarray:
+def jolt_series(blocks: list[tuple[float, float, str]], n_volumes: int = N_VOLUMES) -> np.ndarray:
     """Forward head displacement in units of ``SPIKE_MOVE_MM``: the jolts and the holds."""
-    out = np.zeros(N_VOLUMES)
+    out = np.zeros(n_volumes)
     tone_blocks = [b for b in blocks if b[2] == "tone"]
-    times = np.arange(N_VOLUMES) * TR
+    times = np.arange(n_volumes) * TR
     for which in SPIKE_TONE_BLOCKS:
         onset, dur, _ = tone_blocks[which]
         first = int(np.ceil(onset / TR - 1e-9))
@@ -499,18 +543,86 @@ def ar1(rng: np.random.Generator, n_series: int, n_time: int, rho: float) -> np.
 
 def make_confounds(rng: np.random.Generator, jolt: np.ndarray) -> np.ndarray:
     """Motion parameters (3 moves in mm, 3 turns in degrees) and frame-to-frame motion."""
+    n_volumes = jolt.size
     kernel = np.hanning(25)
     kernel /= kernel.sum()
-    walk = np.cumsum(rng.normal(scale=0.02, size=(N_VOLUMES + 24, 6)), axis=0)
+    walk = np.cumsum(rng.normal(scale=0.02, size=(n_volumes + 24, 6)), axis=0)
     slow = np.stack([np.convolve(walk[:, c], kernel, mode="valid") for c in range(6)], axis=1)
     slow -= slow[0]
-    motion = slow[:N_VOLUMES].copy()
+    motion = slow[:n_volumes].copy()
     motion[:, 1] += jolt * SPIKE_MOVE_MM
     motion[:, 3] += jolt * SPIKE_TURN_DEG
-    step = np.zeros(N_VOLUMES)
+    step = np.zeros(n_volumes)
     d = np.abs(np.diff(motion, axis=0))
     step[1:] = d[:, :3].sum(axis=1) + np.deg2rad(d[:, 3:]).sum(axis=1) * HEAD_RADIUS_FOR_TURNS_MM
     return np.column_stack([motion, step])
+
+
+def confound_table(
+    motion: np.ndarray, series: np.ndarray, zone: np.ndarray
+) -> tuple[list[str], list[list[str]]]:
+    """A confounds table as preprocessing pipelines write them (BIDS derivatives style).
+
+    ``motion``: the (T, 7) array of :func:`make_confounds`; ``series``: (in-head voxels, T)
+    intensities; ``zone``: their zone (1 outer, 2 grey, 3 white, 4 ventricle). Columns:
+
+    * ``global_signal``, ``csf`` (ventricles), ``white_matter``: mean intensity per volume;
+    * ``trans_x/y/z`` (mm) and ``rot_x/y/z`` (radians), with ``_derivative1`` (backward
+      difference, ``n/a`` in the first row), ``_power2`` and ``_derivative1_power2``: the
+      24-parameter motion model (Friston et al. 1996, with differences in place of the
+      values one volume earlier, common practice);
+    * ``framewise_displacement``: sum of absolute differences of the translations plus the
+      rotations as arc length on a 50 mm sphere (Power et al. 2012); ``n/a`` first;
+    * ``dvars`` (root mean square over the head of the volume-to-volume change) and
+      ``std_dvars`` (divided by its median); ``n/a`` first;
+    * ``a_comp_cor_00`` .. : the first principal components of the white-matter and
+      ventricle time series after removing their means and linear trends (Behzadi et al.
+      2007), unit variance;
+    * ``cosine00`` ..: the discrete cosine drift basis for a 128 s cutoff.
+    """
+    n = motion.shape[0]
+    trans = motion[:, 0:3]
+    rot = np.deg2rad(motion[:, 3:6])
+    cols: list[tuple[str, np.ndarray]] = []
+    cols.append(("global_signal", series.mean(axis=0)))
+    cols.append(("csf", series[zone == 4].mean(axis=0)))
+    cols.append(("white_matter", series[zone == 3].mean(axis=0)))
+    names = ("trans_x", "trans_y", "trans_z", "rot_x", "rot_y", "rot_z")
+    values = np.column_stack([trans, rot])
+    for j, name in enumerate(names):
+        v = values[:, j]
+        d = np.concatenate([[np.nan], np.diff(v)])
+        cols += [
+            (name, v),
+            (f"{name}_derivative1", d),
+            (f"{name}_power2", v**2),
+            (f"{name}_derivative1_power2", d**2),
+        ]
+    fd = np.concatenate(
+        [
+            [np.nan],
+            np.abs(np.diff(trans, axis=0)).sum(axis=1)
+            + HEAD_RADIUS_FOR_TURNS_MM * np.abs(np.diff(rot, axis=0)).sum(axis=1),
+        ]
+    )
+    cols.append(("framewise_displacement", fd))
+    dv = np.sqrt(np.mean(np.diff(series, axis=1) ** 2, axis=0))
+    cols.append(("dvars", np.concatenate([[np.nan], dv])))
+    cols.append(("std_dvars", np.concatenate([[np.nan], dv / np.median(dv)])))
+    noise = series[(zone == 3) | (zone == 4)].astype(np.float64)
+    tt = np.column_stack([np.ones(n), np.linspace(-1.0, 1.0, n)])
+    resid = noise.T - tt @ np.linalg.lstsq(tt, noise.T, rcond=None)[0]
+    u, _, _ = np.linalg.svd(resid, full_matrices=False)
+    for k in range(N_COMPCOR):
+        comp = u[:, k] * np.sign(u[np.argmax(np.abs(u[:, k])), k])  # a fixed sign
+        cols.append((f"a_comp_cor_{k:02d}", comp / comp.std()))
+    for k, c in enumerate(cosine_drift(n, TR, HIGHPASS_CUTOFF_S).T):
+        cols.append((f"cosine{k:02d}", c))
+    header = [c[0] for c in cols]
+    rows = [
+        ["n/a" if not np.isfinite(c[1][t]) else f"{c[1][t]:.6g}" for c in cols] for t in range(n)
+    ]
+    return header, rows
 
 
 def ols_t(y: np.ndarray, x: np.ndarray, contrast: np.ndarray) -> np.ndarray:
@@ -707,7 +819,6 @@ def generate(out_dir: Path) -> dict[str, Path]:
         raise RuntimeError("run intensities do not fit int16 with the chosen slope")
     vol = np.zeros((int(np.prod(SHAPE)), N_VOLUMES), dtype=np.int16)
     vol[idx] = stored.astype(np.int16)
-    vol4d = vol.reshape(*SHAPE, N_VOLUMES)
 
     # --- confounds
     conf = make_confounds(rng, jolt)
@@ -735,16 +846,77 @@ def generate(out_dir: Path) -> dict[str, Path]:
     t1 = t1 + T1_NOISE * rng.normal(size=t1.shape) * t1_in
     t1 = np.where(t1_in, np.clip(np.round(t1), 1, None), 0).astype(np.int16)
 
+    # --- run 2: the same head and clusters, its own blocks and noise, no jolt
+    blocks2 = make_blocks(rng, BLOCK_ORDER_2, N_VOLUMES_2)
+    reg2 = {c: block_regressor(blocks2, c, n_volumes=N_VOLUMES_2) for c in ("tone", "tap")}
+    reg2_late = block_regressor(blocks2, "tone", n_volumes=N_VOLUMES_2, delay_s=LATE_DELAY_S)
+    tau2 = np.linspace(-1.0, 1.0, N_VOLUMES_2)
+    rel2 = np.zeros((idx.size, N_VOLUMES_2))
+    rel2 += GLOBAL_DRIFT_FRAC * tau2 / 2.0
+    rel2 += np.outer(weights["tone_cluster"], RESPONSE_FRAC * reg2["tone"])
+    rel2 += np.outer(weights["tap_cluster"], RESPONSE_FRAC * reg2["tap"])
+    rel2 += np.outer(weights["late_cluster"], LATE_RESPONSE_FRAC * reg2_late)
+    rel2 += np.outer(weights["noisy_cluster"], AR_RESPONSE_FRAC * reg2["tap"])
+    trend2 = DRIFT_LINEAR_FRAC * tau2 / 2.0 + DRIFT_QUAD_FRAC * (tau2**2 - np.mean(tau2**2))
+    rel2 += np.outer(weights["drift_cluster"], trend2)
+    white2 = rng.normal(size=(idx.size, N_VOLUMES_2)) * WHITE_NOISE_FRAC
+    coloured2 = np.zeros_like(white2)
+    coloured2[in_ar] = ar1(rng, in_ar.size, N_VOLUMES_2, AR_RHO) * AR_SD_FRAC * w_ar[in_ar, None]
+    stored2 = np.round(base[:, None] * (1.0 + rel2 + white2 + coloured2) / BOLD_SLOPE)
+    if stored2.max() > np.iinfo(np.int16).max or stored2.min() < 0:
+        raise RuntimeError("run 2 intensities do not fit int16 with the chosen slope")
+    vol2 = np.zeros((int(np.prod(SHAPE)), N_VOLUMES_2), dtype=np.int16)
+    vol2[idx] = stored2.astype(np.int16)
+    conf2 = make_confounds(rng, np.zeros(N_VOLUMES_2))
+
     # --- write
     paths = {role: out_dir / name for role, name in FILES.items()}
-    _atomic_write(
-        paths["bold"],
-        _nifti_gz_bytes(
-            _nifti(
-                vol4d, aff, (VOXEL_MM,) * 3 + (TR,), BOLD_SLOPE, "voxelscope demo run (synthetic)"
-            )
-        ),
+    for p in paths.values():
+        p.parent.mkdir(parents=True, exist_ok=True)
+    zone_in = centre_zone.ravel()[idx]
+    head_mask = _nifti(
+        head.astype(np.uint8), aff, (VOXEL_MM,) * 3, None, "brain mask (synthetic phantom)"
     )
+    for suffix, v, n_vol, conf_run, blocks_run in (
+        ("", vol, N_VOLUMES, conf, blocks),
+        ("2", vol2, N_VOLUMES_2, conf2, blocks2),
+    ):
+        run_no = 1 if not suffix else 2
+        _atomic_write(
+            paths[f"bold{suffix}"],
+            _nifti_gz_bytes(
+                _nifti(
+                    v.reshape(*SHAPE, n_vol),
+                    aff,
+                    (VOXEL_MM,) * 3 + (TR,),
+                    BOLD_SLOPE,
+                    f"voxelscope demo run {run_no} (synthetic)",
+                )
+            ),
+        )
+        _atomic_write(paths[f"mask{suffix}"], _nifti_gz_bytes(head_mask))
+        prep_sidecar = {
+            "RepetitionTime": TR,
+            "SliceTimingCorrected": True,
+            "StartTime": START_TIME_S,
+            "SkullStripped": False,
+            "Description": "Synthetic preprocessed run (made by make_demo.py): slice-time "
+            "corrected to the middle of each volume.",
+        }
+        _atomic_write(
+            paths[f"bold_sidecar{suffix}"],
+            (json.dumps(prep_sidecar, indent=2) + "\n").encode("utf-8"),
+        )
+        _atomic_write(
+            paths[f"events{suffix}"],
+            _tsv(
+                ["onset", "duration", "trial_type"],
+                [[f"{on + START_TIME_S:.3f}", f"{du:.2f}", c] for on, du, c in blocks_run],
+            ),
+        )
+        series_run = v[idx].astype(np.float64) * BOLD_SLOPE
+        header, rows = confound_table(conf_run, series_run, zone_in)
+        _atomic_write(paths[f"confounds{suffix}"], _tsv(header, rows))
     _atomic_write(
         paths["pipeline_t"],
         _nifti_gz_bytes(
@@ -759,26 +931,33 @@ def generate(out_dir: Path) -> dict[str, Path]:
             _nifti(t1, taff, (T1_VOXEL_MM,) * 3, 1.0, "voxelscope demo anatomy (synthetic)")
         ),
     )
-
+    order = list(range(0, N_SLICES, 2)) + list(range(1, N_SLICES, 2))
+    slice_timing = [0.0] * N_SLICES
+    for pos, k in enumerate(order):
+        slice_timing[k] = round(pos * TR / N_SLICES, 6)
     sidecar = {
         "TaskName": "tonetap",
         "TaskDescription": "Synthetic demo run: listen to tones or tap a finger in 15 s blocks.",
         "RepetitionTime": TR,
+        "SliceTiming": slice_timing,
     }
     _atomic_write(paths["sidecar"], (json.dumps(sidecar, indent=2) + "\n").encode("utf-8"))
+    description = {
+        "Name": "voxelscope demo: tone and tap (synthetic)",
+        "BIDSVersion": "1.8.0",
+        "DatasetType": "raw",
+        "License": "CC0",
+    }
+    _atomic_write(paths["description"], (json.dumps(description, indent=2) + "\n").encode("utf-8"))
+    prep_description = {
+        "Name": "voxelscope demo: preprocessed runs (synthetic)",
+        "BIDSVersion": "1.8.0",
+        "DatasetType": "derivative",
+        "GeneratedBy": [{"Name": "make_demo.py", "Description": "synthetic, no processing"}],
+    }
     _atomic_write(
-        paths["events"],
-        _tsv(
-            ["onset", "duration", "trial_type"],
-            [[f"{on:.2f}", f"{du:.2f}", c] for on, du, c in blocks],
-        ),
-    )
-    _atomic_write(
-        paths["confounds"],
-        _tsv(
-            ["move_x", "move_y", "move_z", "turn_x", "turn_y", "turn_z", "motion_step_mm"],
-            [[f"{v:.5f}" for v in row] for row in conf],
-        ),
+        paths["prep_description"],
+        (json.dumps(prep_description, indent=2) + "\n").encode("utf-8"),
     )
 
     features = []
@@ -800,11 +979,38 @@ def generate(out_dir: Path) -> dict[str, Path]:
         "shape": list(SHAPE),
         "voxel_mm": VOXEL_MM,
         "affine": aff.tolist(),
-        "volume_time": "volume n is acquired at n * tr seconds (no slice timing)",
+        "start_time_s": START_TIME_S,
+        "volume_time": "the preprocessed runs are slice-time corrected: volume n shows the "
+        "head at n * tr + StartTime seconds; event onsets count from the start of volume 0",
         "bold_scl_slope": BOLD_SLOPE,
         "hrf": "gamma.pdf(t, 6) - gamma.pdf(t, 16) / 6, scale 1 s; block plateau normalised to 1",
-        "blocks": [{"onset": on, "duration": du, "trial_type": c} for on, du, c in blocks],
+        "blocks": [
+            {"onset": on + START_TIME_S, "duration": du, "trial_type": c} for on, du, c in blocks
+        ],
         "spike_volumes": spikes,
+        "runs": [
+            {
+                "run": 1,
+                "n_volumes": N_VOLUMES,
+                "bold": FILES["bold"],
+                "events": FILES["events"],
+                "spike_volumes": spikes,
+                "what": "the main run: every feature, head jolts in two tone blocks",
+            },
+            {
+                "run": 2,
+                "n_volumes": N_VOLUMES_2,
+                "bold": FILES["bold2"],
+                "events": FILES["events2"],
+                "blocks": [
+                    {"onset": on + START_TIME_S, "duration": du, "trial_type": c}
+                    for on, du, c in blocks2
+                ],
+                "spike_volumes": [],
+                "what": "a shorter second run: the same responses, drift and noise, no head "
+                "jolt, so the rim 'activation' of run 1 is absent (runs disagree there)",
+            },
+        ],
         "features": features,
         "pipeline_t_map": {
             "file": FILES["pipeline_t"],

@@ -31,6 +31,9 @@ DATA = Path(__file__).resolve().parents[1] / "sample_data"
 GENERATOR = DATA / "make_demo.py"
 TRUTH = json.loads((DATA / "demo_truth.json").read_text())
 FILES = TRUTH["files"]
+#: The preprocessed runs are slice-time corrected to StartTime (BIDS): volume n shows the head
+#: at n * TR + START seconds after the start of the run, the clock of the events' onsets.
+START = TRUTH["start_time_s"]
 
 
 # --------------------------------------------------------------------------- helpers
@@ -51,8 +54,8 @@ def _read_tsv(path: Path) -> tuple[list[str], list[list[str]]]:
     return rows[0], rows[1:]
 
 
-def _events() -> list[tuple[float, float, str]]:
-    header, rows = _read_tsv(DATA / FILES["events"])
+def _events(role: str = "events") -> list[tuple[float, float, str]]:
+    header, rows = _read_tsv(DATA / FILES[role])
     i_on, i_du, i_tt = (header.index(c) for c in ("onset", "duration", "trial_type"))
     return [(float(r[i_on]), float(r[i_du]), r[i_tt]) for r in rows]
 
@@ -75,21 +78,24 @@ def _hrf(t: np.ndarray) -> np.ndarray:
     return stats.gamma.pdf(t, a=6) - stats.gamma.pdf(t, a=16) / 6.0
 
 
-def _regressor(condition: str, n: int, tr: float, shift: float = 0.0) -> np.ndarray:
-    """Boxcar at 50 ms resolution convolved (scipy fftconvolve) with ``_hrf``, read at n*tr."""
+def _regressor(
+    condition: str, n: int, tr: float, shift: float = 0.0, role: str = "events"
+) -> np.ndarray:
+    """Boxcar at 50 ms resolution convolved (scipy fftconvolve) with ``_hrf``, read at
+    n*tr + START (the sampling reference of a slice-time corrected run)."""
     dt = 0.05
-    t = np.arange(0.0, n * tr, dt)
+    t = np.arange(0.0, n * tr + tr, dt)
     box = np.zeros_like(t)
-    for onset, dur, cond in _events():
+    for onset, dur, cond in _events(role):
         if cond == condition:
             box[(t >= onset + shift - 1e-9) & (t < onset + shift + dur - 1e-9)] = 1.0
     h = _hrf(np.arange(0.0, 32.0, dt))
     conv = signal.fftconvolve(box, h)[: t.size] * dt
-    return np.interp(np.arange(n) * tr, t, conv)
+    return np.interp(np.arange(n) * tr + START, t, conv)
 
 
 def _boxcar(condition: str, n: int, tr: float) -> np.ndarray:
-    t = np.arange(n) * tr
+    t = np.arange(n) * tr + START
     box = np.zeros(n)
     for onset, dur, cond in _events():
         if cond == condition:
@@ -105,11 +111,11 @@ def _cosines(n: int, tr: float, cutoff: float = 128.0) -> np.ndarray:
     return np.cos(np.pi * k * (2 * m + 1) / (2 * n))
 
 
-def _design(n: int, tr: float, shift: float = 0.0) -> np.ndarray:
+def _design(n: int, tr: float, shift: float = 0.0, role: str = "events") -> np.ndarray:
     return np.column_stack(
         [
-            _regressor("tone", n, tr, shift),
-            _regressor("tap", n, tr, shift),
+            _regressor("tone", n, tr, shift, role),
+            _regressor("tap", n, tr, shift, role),
             np.ones(n),
             _cosines(n, tr),
         ]
@@ -170,9 +176,57 @@ def test_run_header_says_tr_125_in_seconds() -> None:
     np.testing.assert_allclose(img.affine, TRUTH["affine"], atol=1e-5)
     assert hdr.get_data_dtype() == np.int16
     assert img.dataobj.slope == pytest.approx(0.25) and img.dataobj.inter == 0.0
+    # BIDS: a dataset-level sidecar for the task (raw, with the acquisition's SliceTiming in
+    # seconds, one per slice, within the TR) and the preprocessed run's own sidecar
+    # (derivatives: SliceTimingCorrected with StartTime below the TR)
     sidecar = json.loads((DATA / FILES["sidecar"]).read_text())
     assert sidecar["RepetitionTime"] == pytest.approx(float(hdr.get_zooms()[3]))
-    assert "SliceTiming" not in sidecar
+    timing = np.array(sidecar["SliceTiming"])
+    assert timing.size == img.shape[2] and timing.min() == 0 and timing.max() < 1.25
+    own = json.loads((DATA / FILES["bold_sidecar"]).read_text())
+    assert own["SliceTimingCorrected"] is True and own["StartTime"] == START == 0.625
+    for name in ("description", "prep_description"):
+        desc = json.loads((DATA / FILES[name]).read_text())
+        assert desc["BIDSVersion"] and desc["Name"]
+    assert json.loads((DATA / FILES["prep_description"]).read_text())["DatasetType"] == (
+        "derivative"
+    )
+
+
+def test_the_study_is_laid_out_as_a_pipeline_leaves_it() -> None:
+    """Raw events in sub-demo/func, the derivatives' runs, sidecars, masks and confounds in
+    derivatives/prep/sub-demo/func, all named by BIDS entities (BIDS specification: file
+    names, derivatives); the brain mask is the phantom's head on the run's grid."""
+    for role, path in FILES.items():
+        if role.startswith(("bold", "mask", "confounds")):
+            assert path.startswith("study/derivatives/prep/sub-demo/func/sub-demo_task-tonetap_")
+        if role.startswith("events"):
+            assert path.startswith("study/sub-demo/func/sub-demo_task-tonetap_run-")
+    for suffix in ("", "2"):
+        mask = nib.load(DATA / FILES[f"mask{suffix}"])
+        run = nib.load(DATA / FILES[f"bold{suffix}"])
+        np.testing.assert_allclose(mask.affine, run.affine, atol=1e-6)
+        head = np.asarray(run.dataobj[..., 0]) > 0
+        np.testing.assert_array_equal(np.asarray(mask.dataobj) > 0, head)
+
+
+def test_voxelscope_finds_every_companion_of_both_runs() -> None:
+    """The one way in finds, for each preprocessed run, its raw events, both sidecars (the
+    dataset-level one first), its confounds table and its brain mask, and samples at the
+    StartTime."""
+    from voxelscope.core.loader import InputRequest, load_inputs
+
+    for suffix in ("", "2"):
+        got = load_inputs(InputRequest(DATA / FILES[f"bold{suffix}"], summarize=False))
+        used = got.used_files()
+        assert used["events"] == str(DATA / FILES[f"events{suffix}"])
+        assert used["sidecars"] == [
+            str(DATA / FILES["sidecar"]),
+            str(DATA / FILES[f"bold_sidecar{suffix}"]),
+        ]
+        assert used["confounds"] == str(DATA / FILES[f"confounds{suffix}"])
+        assert used["mask"] == str(DATA / FILES[f"mask{suffix}"])
+        assert got.run.reference_time_s == START and got.run.slice_timing is None
 
 
 def test_events_follow_the_scenario() -> None:
@@ -185,6 +239,10 @@ def test_events_follow_the_scenario() -> None:
     rests = [ev[i + 1][0] - (ev[i][0] + ev[i][1]) for i in range(len(ev) - 1)]
     assert min(rests) >= 12.0 and max(rests) <= 18.0
     assert ev[-1][0] + ev[-1][1] <= TRUTH["n_volumes"] * TRUTH["tr"]
+    run2 = TRUTH["runs"][1]
+    ev2 = _events("events2")
+    assert [(e["onset"], e["trial_type"]) for e in run2["blocks"]] == [(o, c) for o, _, c in ev2]
+    assert ev2[-1][0] + ev2[-1][1] <= run2["n_volumes"] * TRUTH["tr"]
     assert [(e["onset"], e["trial_type"]) for e in TRUTH["blocks"]] == [(o, c) for o, _, c in ev]
 
 
@@ -209,9 +267,9 @@ def test_zero_outside_head_and_baseline_in_range(bold: np.ndarray) -> None:
     assert 0.007 < np.median(rel) < 0.013
 
 
-def test_total_size_under_12_mb() -> None:
-    total = sum(p.stat().st_size for p in DATA.iterdir() if p.is_file())
-    assert total < 12 * 1024 * 1024
+def test_total_size_under_15_mb() -> None:
+    total = sum(p.stat().st_size for p in DATA.rglob("*") if p.is_file())
+    assert total < 15 * 1000 * 1000
 
 
 # --------------------------------------------------------------------------- planted responses
@@ -258,7 +316,7 @@ def test_late_cluster_peaks_later_than_tone_cluster(bold: np.ndarray) -> None:
 
     # FIR: 24 post-onset volumes (30 s) for each condition, plus the cosine drift basis
     def fir(condition: str) -> np.ndarray:
-        starts = [int(np.ceil(o / tr - 1e-9)) for o, _, c in _events() if c == condition]
+        starts = [int(np.ceil((o - START) / tr - 1e-9)) for o, _, c in _events() if c == condition]
         cols = np.zeros((n, 24))
         for s in starts:
             for k in range(24):
@@ -285,34 +343,33 @@ def test_rim_motion_spikes_match_confounds(bold: np.ndarray) -> None:
     frame-to-frame column is the usual displacement sum with turns as arc length on a 50 mm
     sphere (common practice); the rim voxels jump in those volumes."""
     header, rows = _read_tsv(DATA / FILES["confounds"])
-    assert header == [
-        "move_x",
-        "move_y",
-        "move_z",
-        "turn_x",
-        "turn_y",
-        "turn_z",
-        "motion_step_mm",
-    ]
-    conf = np.array(rows, dtype=float)
     n, tr = TRUTH["n_volumes"], TRUTH["tr"]
-    assert conf.shape == (n, 7)
-    step = np.zeros(n)
-    d = np.abs(np.diff(conf[:, :6], axis=0))
-    step[1:] = d[:, :3].sum(axis=1) + np.deg2rad(d[:, 3:]).sum(axis=1) * 50.0
-    np.testing.assert_allclose(conf[:, 6], step, atol=5e-5)
+    assert len(rows) == n and len(header) >= 30  # far more columns than a model should use
+    for name in ("trans_x", "rot_x", "framewise_displacement", "a_comp_cor_00", "csf"):
+        assert name in header
+    conf = {h: np.array([np.nan if r[j] == "n/a" else float(r[j]) for r in rows])
+            for j, h in enumerate(header)}  # fmt: skip
+    assert np.isnan(conf["framewise_displacement"][0])  # n/a in the first row
+    assert np.isnan(conf["trans_x_derivative1"][0]) and np.isfinite(conf["trans_x"][0])
+    trans = np.column_stack([conf[f"trans_{a}"] for a in "xyz"])
+    rot = np.column_stack([conf[f"rot_{a}"] for a in "xyz"])
+    step = np.abs(np.diff(trans, axis=0)).sum(axis=1) + 50.0 * np.abs(np.diff(rot, axis=0)).sum(
+        axis=1
+    )
+    np.testing.assert_allclose(conf["framewise_displacement"][1:], step, atol=5e-5, rtol=1e-5)
+    fd = conf["framewise_displacement"]
 
     spikes = TRUTH["spike_volumes"]
     assert spikes == _feature("rim_motion")["spike_volumes"]
     assert len(spikes) == 6
-    others = np.setdiff1d(np.arange(n), spikes)
-    assert conf[spikes, 6].min() > 1.0
-    assert conf[others, 6].max() < 0.5
+    others = np.setdiff1d(np.arange(1, n), spikes)
+    assert fd[spikes].min() > 1.0
+    assert fd[others].max() < 0.5
 
     tone_onsets = [o for o, _, c in _events() if c == "tone"]
     hit_blocks = set()
     for v in spikes:
-        t = v * tr
+        t = v * tr + START
         near = [o for o in tone_onsets if 0 <= t - o < 5.0]
         assert near, f"volume {v} is not at the start of a tone block"
         hit_blocks.add(near[0])
@@ -324,6 +381,26 @@ def test_rim_motion_spikes_match_confounds(bold: np.ndarray) -> None:
     # and the rim looks like a tone "activation" under an ordinary model
     fit = sm.OLS(y, _design(n, tr)).fit()
     assert fit.tvalues[0] > 3.0
+
+
+def test_run_two_has_the_responses_but_not_the_jolt() -> None:
+    """Run 2: shorter, the same tone and tap responses (statsmodels OLS t), no motion jolt
+    (framewise displacement below 0.5 mm; Power et al. 2012 for the measure) and so no rim
+    "activation": the two runs disagree only there."""
+    run2 = TRUTH["runs"][1]
+    img = nib.load(DATA / FILES["bold2"])
+    assert img.shape == (*TRUTH["shape"], run2["n_volumes"])
+    np.testing.assert_allclose(img.affine, _load_bold().affine, atol=1e-6)
+    data = img.get_fdata()
+    n, tr = run2["n_volumes"], TRUTH["tr"]
+    x = _design(n, tr, role="events2")
+    t_tone = sm.OLS(data[tuple(_feature("tone_cluster")["centre_voxel"])], x).fit().tvalues[0]
+    t_tap = sm.OLS(data[tuple(_feature("tap_cluster")["centre_voxel"])], x).fit().tvalues[1]
+    t_rim = sm.OLS(data[tuple(_feature("rim_motion")["centre_voxel"])], x).fit().tvalues[0]
+    assert t_tone > 5 and t_tap > 5 and abs(t_rim) < 3
+    header, rows = _read_tsv(DATA / FILES["confounds2"])
+    fd = np.array([float(r[header.index("framewise_displacement")]) for r in rows[1:]])
+    assert len(rows) == n and fd.max() < 0.5
 
 
 def test_drift_cluster_trend_needs_a_drift_model(bold: np.ndarray) -> None:

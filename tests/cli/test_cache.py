@@ -62,14 +62,16 @@ def test_fit_on_a_damaged_cache_gives_the_same_numbers_and_says_so(tmp_path, cap
 
     from voxelscope.core import cache
 
-    sample = Path(__file__).resolve().parents[2] / "sample_data"
-    for name in (
-        "sub-demo_task-tonetap_bold.nii.gz",
-        "sub-demo_task-tonetap_events.tsv",
-        "sub-demo_task-tonetap_bold.json",
+    sample = Path(__file__).resolve().parents[2] / "sample_data" / "study"
+    prep = sample / "derivatives" / "prep" / "sub-demo" / "func"
+    stem = "sub-demo_task-tonetap_run-1"
+    for path in (
+        prep / f"{stem}_space-phantom_desc-preproc_bold.nii.gz",
+        prep / f"{stem}_space-phantom_desc-preproc_bold.json",
+        sample / "sub-demo" / "func" / f"{stem}_events.tsv",
     ):
-        shutil.copy(sample / name, tmp_path / name)
-    run = tmp_path / "sub-demo_task-tonetap_bold.nii.gz"
+        shutil.copy(path, tmp_path / path.name)
+    run = tmp_path / f"{stem}_space-phantom_desc-preproc_bold.nii.gz"
     argv = ["fit", str(run), "--voxel", "6", "23", "15", "--format", "json"]
     assert main(argv) == 0
     clean = json.loads(capsys.readouterr().out)

@@ -205,8 +205,9 @@ def test_report_command_never_imports_qt(tmp_path):
 @pytest.mark.slow
 @pytest.mark.skipif(not (SAMPLE / "demo_marks.tsv").exists(), reason="sample data not generated")
 def test_sample_data_marks_report(tmp_path, capsys):
-    run = SAMPLE / "sub-demo_task-tonetap_bold.nii.gz"
-    argv = ["report", str(run), "--confounds", str(SAMPLE / "sub-demo_task-tonetap_confounds.tsv"),
+    prep = SAMPLE / "study/derivatives/prep/sub-demo/func/sub-demo_task-tonetap_run-1"
+    run = Path(f"{prep}_space-phantom_desc-preproc_bold.nii.gz")
+    argv = ["report", str(run), "--confound-columns", "motion6",
             "--marks", str(SAMPLE / "demo_marks.tsv"), "-o", str(tmp_path / "demo"), "--no-cache",
             "--scale", "1"]  # fmt: skip
     assert main(argv) == 0, capsys.readouterr().err

@@ -12,6 +12,10 @@ import pytest
 from nibabel.testing import data_path
 
 SAMPLE = Path(__file__).resolve().parents[2] / "sample_data"
+DEMO_PREP = "study/derivatives/prep/sub-demo/func/sub-demo_task-tonetap_run-1"
+DEMO_RUN = f"{DEMO_PREP}_space-phantom_desc-preproc_bold.nii.gz"
+DEMO_EVENTS = "study/sub-demo/func/sub-demo_task-tonetap_run-1_events.tsv"
+DEMO_CONFOUNDS = f"{DEMO_PREP}_desc-confounds_timeseries.tsv"
 
 
 @pytest.fixture(autouse=True)
@@ -121,7 +125,7 @@ def window(qtbot, tmp_path):
 
 @pytest.fixture
 def demo_files():
-    if not (SAMPLE / "sub-demo_task-tonetap_bold.nii.gz").is_file():
+    if not (SAMPLE / DEMO_RUN).is_file():
         pytest.skip("sample_data not generated")
     return SAMPLE
 

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from PySide6.QtCore import Qt
 
-from tests.gui.conftest import SAMPLE, write_events
+from tests.gui.conftest import DEMO_CONFOUNDS, DEMO_EVENTS, DEMO_RUN, SAMPLE, write_events
 from voxelscope.core.checks import voxel_checks
 from voxelscope.gui import checks_panel
 from voxelscope.gui.checks_figures import FIGURES
@@ -37,9 +37,9 @@ def _truth():
 def _open_demo(window, contrast="tone"):
     d = SAMPLE
     ok = window.open_run(
-        d / "sub-demo_task-tonetap_bold.nii.gz",
-        d / "sub-demo_task-tonetap_events.tsv",
-        d / "sub-demo_task-tonetap_confounds.tsv",
+        d / DEMO_RUN,
+        d / DEMO_EVENTS,
+        d / DEMO_CONFOUNDS,
         background=False,
     )
     assert ok, window.last_error

@@ -180,7 +180,7 @@ def test_elided_label_keeps_its_full_text(qtbot):
 
 def test_breakable_lets_a_file_name_wrap(qtbot):
     """A zero-width space is a break opportunity (Unicode line breaking, UAX #14, class ZW)."""
-    name = "sub-demo_task-tonetap_pipeline-t.nii.gz"
+    name = "sub-demo_task-tonetap_run-1_pipeline-t.nii.gz"
     assert breakable(name).replace("\u200b", "") == name
     label = QLabel(breakable(name))
     label.setWordWrap(True)

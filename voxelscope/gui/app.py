@@ -54,21 +54,26 @@ def demo_paths() -> dict:
     from voxelscope.core.errors import InputError
 
     folder = Path(voxelscope.__file__).resolve().parents[1] / "sample_data"
-    run = folder / "sub-demo_task-tonetap_bold.nii.gz"
+    prep = folder / "study" / "derivatives" / "prep" / "sub-demo" / "func"
+    raw = folder / "study" / "sub-demo"
+    stem = "sub-demo_task-tonetap_run-1"
+    run = prep / f"{stem}_space-phantom_desc-preproc_bold.nii.gz"
     if not run.is_file():
         raise InputError(
             f"{run}: the demo run is missing; make it with python sample_data/make_demo.py"
         )
     out = {
         "run": run,
-        "events": folder / "sub-demo_task-tonetap_events.tsv",
-        "confounds": folder / "sub-demo_task-tonetap_confounds.tsv",
-        "anat": folder / "sub-demo_T1w.nii.gz",
-        "stat_map": folder / "sub-demo_task-tonetap_pipeline-t.nii.gz",
+        "run2": prep / "sub-demo_task-tonetap_run-2_space-phantom_desc-preproc_bold.nii.gz",
+        "study": folder / "study",
+        "events": raw / "func" / f"{stem}_events.tsv",
+        "confounds": prep / f"{stem}_desc-confounds_timeseries.tsv",
+        "anat": raw / "anat" / "sub-demo_T1w.nii.gz",
+        "stat_map": folder / f"{stem}_pipeline-t.nii.gz",
         "voxel": None,
         "marks": folder / "demo_marks.tsv",
     }
-    for key in ("events", "confounds", "anat", "stat_map", "marks"):
+    for key in ("run2", "events", "confounds", "anat", "stat_map", "marks"):
         if not out[key].is_file():
             out[key] = None
     truth = folder / "demo_truth.json"

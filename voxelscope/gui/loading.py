@@ -197,6 +197,7 @@ def load_bundle(
         mask=mask,
         bids_root=bids_root,
         events_required=False,
+        confound_columns="none",  # the window starts with no confound column (START_SETTINGS)
     )
     got = load_inputs(request, progress=progress)
     warnings = list(got.warnings)
