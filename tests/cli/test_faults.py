@@ -331,3 +331,47 @@ def test_long_bad_option_value_is_cut(tmp_path, capsys):
     assert info.value.code == 2
     line = _one_error_line(capsys)
     assert len(line) < 500
+
+
+# ------------------------------------------------------------------ maps never hold infinities
+
+
+def test_variance_map_beyond_float32_is_written_without_inf(tmp_path, capsys):
+    """A run in huge units: the variance exceeds float32 (3.4e38); the map is float64 and
+    finite (read back with nibabel, the reference reader), with one warning line."""
+    import nibabel as nib
+
+    rng = np.random.default_rng(5)
+    data = 1e25 + rng.standard_normal((4, 5, 3, 90)) * 1e24
+    run, _ = write_run(tmp_path, data, TR)
+    out = tmp_path / "var.nii"
+    assert main(["map", str(run), "--stat", "variance", "--mask", "auto", "-o", str(out)]) == 0
+    img = nib.load(out)
+    values = np.asarray(img.dataobj)
+    assert np.isfinite(values).all() and values.max() > np.finfo(np.float32).max
+    assert img.get_data_dtype() == np.float64
+    assert "written as float64" in capsys.readouterr().err
+
+
+def test_absurd_condition_count_is_one_line(tmp_path, capsys):
+    run, _ = _run(tmp_path)
+    ev = tmp_path / "many_events.tsv"
+    rows = "".join(f"{k * 0.01:.2f}\t0.5\tc{k}\n" for k in range(10_000))
+    ev.write_text("onset\tduration\ttrial_type\n" + rows)
+    assert main(_fit(run, "--events", ev)) == 2
+    assert "10000 different trial_type values" in _one_error_line(capsys)
+
+
+def test_screenshot_does_not_record_recent_runs(tmp_path, capsys, monkeypatch):
+    monkeypatch.setenv("QT_QPA_PLATFORM", "offscreen")
+    run, _ = _run(tmp_path)
+    png = tmp_path / "shot.png"
+    assert main(["view", str(run), "--screenshot", str(png), "--size", "900x600"]) == 0
+    assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    from PySide6.QtCore import QSettings
+
+    from voxelscope.gui.main_window import APPLICATION, ORGANISATION
+
+    value = QSettings(ORGANISATION, APPLICATION).value("recent_runs", []) or []
+    value = [value] if isinstance(value, str) else list(value)
+    assert not any(str(run.name) in str(v) for v in value)

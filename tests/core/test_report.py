@@ -237,7 +237,7 @@ def test_bad_requests_are_one_line_errors(demo, tmp_path):
     (tmp_path / "file").write_text("")
     with pytest.raises(InputError, match="is a file, not a folder"):
         write_report(tmp_path / "file", run, analysis, ModelSettings(), voxel=(0, 0, 0))
-    with pytest.raises(InputError, match="is an input file"):
+    with pytest.raises(InputError, match="is an input of this command"):
         write_report(
             run_path.parent,
             run,

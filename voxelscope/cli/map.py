@@ -196,7 +196,7 @@ def run_map(args: argparse.Namespace) -> int:
         f"voxelscope {args.stat} {args.kernel} noise={result.noise} df={result.df}{tail} "
         f"{result.contrast}"
     )
-    write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc)
+    write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc, notes=warnings)
     print_warnings(warnings + list(run.warnings))  # + what the run said while read
     print(f"wrote {out}: {args.stat} map, {result.describe()}")
 
@@ -311,7 +311,15 @@ def _run_map_several(args: argparse.Namespace) -> int:
     desc = (
         f"voxelscope fixed-effects {args.stat} {args.kernel} df={result.df}{tail} {result.contrast}"
     )
-    write_map(out, data, run=runs[0], inputs=inputs, force=args.force, description=desc[:79])
+    write_map(
+        out,
+        data,
+        run=runs[0],
+        inputs=inputs,
+        force=args.force,
+        description=desc[:79],
+        notes=warnings,
+    )
     print_warnings(warnings)
     print(f"wrote {out}: {args.stat} map, {result.describe()}")
     if args.clusters:

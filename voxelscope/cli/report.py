@@ -64,6 +64,7 @@ def register(sub: argparse._SubParsersAction) -> None:
 
 def run_report(args: argparse.Namespace) -> int:
     """Handler of ``voxelscope report``."""
+    from ..core.cache import terminal_progress
     from ..core.marks import read_marks_tsv
     from ..core.report import write_report
 
@@ -94,6 +95,7 @@ def run_report(args: argparse.Namespace) -> int:
         checks=not args.no_checks,
         title=args.title,
         warnings=loaded.warnings,
+        progress=terminal_progress("writing report"),
     )
     print_warnings(result.warnings)
     print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")

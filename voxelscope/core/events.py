@@ -180,6 +180,14 @@ def parse_events(
         by_name.setdefault(name, []).append((onset, duration, amp))
     if not by_name:
         raise InputError(f"{source}: no events below the header row")
+    from .limits import CONDITION_LIMIT
+
+    if len(by_name) > CONDITION_LIMIT:
+        raise InputError(
+            f"{source}: {len(by_name)} different trial_type values, more than the "
+            f"{CONDITION_LIMIT} conditions a model can hold; trial_type should name "
+            "conditions (e.g. tone, tap), not single trials"
+        )
     out = []
     for name, rows in by_name.items():
         arr = np.array(rows, dtype=float)

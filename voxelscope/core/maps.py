@@ -82,7 +82,7 @@ class MapResult:
 
     Attributes
     ----------
-    t, beta, variance, z, p : ndarray (X, Y, Z) float32 or None
+    t, beta, variance, z, p : ndarray (X, Y, Z) float32 (variance float64) or None
         The statistics asked for (None for the others). Outside :attr:`mask` they are 0
         (``p`` is 1). ``z`` is exact at any t (:func:`voxelscope.core.pvalues.z_from_t`);
         ``p`` is for :attr:`tail` (two-sided by default) and underflows to 0 in float32
@@ -378,9 +378,14 @@ def compute_map(
     n_all = int(np.prod(shape))
     total = int(np.count_nonzero(mask))
 
-    # Flat float32 outputs, filled chunk by chunk.
+    # Flat float32 outputs, filled chunk by chunk; variance in float64, since it squares the
+    # data's units and a run in huge units would overflow float32 to inf.
     want = set(stats) | {"t"}
-    flat = {s: np.zeros(n_all, dtype=np.float32) for s in want if s != "p"}
+    flat = {
+        s: np.zeros(n_all, dtype=np.float64 if s == "variance" else np.float32)
+        for s in want
+        if s != "p"
+    }
     if "p" in want:
         flat["p"] = np.ones(n_all, dtype=np.float32)
     fitted = np.zeros(n_all, dtype=bool)

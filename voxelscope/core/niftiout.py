@@ -84,7 +84,7 @@ def _header_for(data: np.ndarray, affine: np.ndarray, header: Any | None) -> nib
     else:
         hdr = nib.Nifti1Header()
     hdr.set_data_shape(data.shape)
-    hdr.set_data_dtype(np.float32)
+    hdr.set_data_dtype(data.dtype if data.dtype == np.float64 else np.float32)
     hdr.set_slope_inter(1.0, 0.0)
     sform_code = int(hdr["sform_code"]) or 1
     qform_code = int(hdr["qform_code"]) or 1
@@ -105,8 +105,13 @@ def write_map(
     inputs: Iterable[str | os.PathLike[str] | None] = (),
     force: bool = True,
     description: str | None = None,
+    notes: list[str] | None = None,
 ) -> Path:
     """Write a 3D map as float32 NIfTI, atomically; returns the path written.
+
+    The map never holds an infinity: values too large for float32 (above about 3.4e38, for
+    example the variance of a run stored in huge units) make the whole map float64 instead,
+    with a line in ``notes``; infinities in ``data`` are refused.
 
     Parameters
     ----------
@@ -124,6 +129,8 @@ def write_map(
         Replace an existing output (default True; front ends pass their ``--force``).
     description : str, optional
         Stored in the header's ``descrip`` field (at most 79 characters).
+    notes : list of str, optional
+        Receives a line when the map had to be written as float64.
 
     Raises
     ------
@@ -149,7 +156,22 @@ def write_map(
         affine = np.eye(4)
     affine = np.asarray(affine, dtype=np.float64)
     out = check_output_path(path, ins, force=force)
-    arr = np.asarray(arr, dtype=np.float32)
+    arr = np.asarray(arr, dtype=np.float64)
+    if np.isinf(arr).any():
+        raise InputError(
+            f"{out}: the map holds infinite values; this is a bug in the statistic, please "
+            "report it (nothing was written)"
+        )
+    f32_max = float(np.finfo(np.float32).max)
+    finite = arr[np.isfinite(arr)]
+    if finite.size and float(np.abs(finite).max()) > f32_max:
+        if notes is not None:
+            notes.append(
+                f"{out}: values reach {float(np.abs(finite).max()):.3g}, beyond the float32 "
+                "range; the map is written as float64 so no value becomes infinite"
+            )
+    else:
+        arr = arr.astype(np.float32)
     hdr = _header_for(arr, affine, header)
     if description is not None:
         hdr["descrip"] = description.encode("ascii", "replace")[:79]

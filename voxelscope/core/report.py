@@ -23,8 +23,10 @@ import html
 import math
 import os
 import re
+import shutil
+import tempfile
 import unicodedata
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
@@ -37,6 +39,7 @@ from .events import shift_conditions
 from .figure import signal_figure
 from .marks import Mark
 from .model import Analysis, ModelSettings, VoxelFits
+from .outputs import guard_output
 from .session import file_digest
 
 __all__ = [
@@ -318,6 +321,12 @@ def _page(
     warnings: list[str],
     colours: Mapping[str, str],
 ) -> str:
+    """The whole page as one string (small reports; :func:`write_report` streams it)."""
+    body = "".join(_section_html(s, settings, colours) + "\n" for s in sections)
+    return _page_head(title, sections) + body + _page_tail(settings, analysis, inputs, warnings)
+
+
+def _page_head(title: str, sections: list[ReportSection]) -> str:
     from voxelscope import RESEARCH_CAUTION, __version__
 
     now = _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds")
@@ -336,8 +345,18 @@ def _page(
             out.append(f"<li><a href='#sec-{s.number}'>{_e(s.title)}</a></li>")
         out.append("<li><a href='#model'>Model</a></li><li><a href='#inputs'>Input files</a></li>")
         out.append("</ol></nav>")
-    out += [_section_html(s, settings, colours) for s in sections]
-    out.append("<section id='model'><h2>Model</h2><table class='settings'>")
+    return "\n".join(out) + "\n"
+
+
+def _page_tail(
+    settings: ModelSettings,
+    analysis: Analysis,
+    inputs: list[tuple[str, Path, str, int]],
+    warnings: list[str],
+) -> str:
+    from voxelscope import RESEARCH_CAUTION, __version__
+
+    out = ["<section id='model'><h2>Model</h2><table class='settings'>"]
     for k, v in _settings_rows(settings, analysis):
         out.append(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>")
     out.append("</table></section>")
@@ -363,6 +382,24 @@ def _page(
 
 # ------------------------------------------------------------------------------ writing
 
+#: Reports with more sections than this keep no fits in the returned sections.
+_KEEP_SECTIONS = 50
+
+
+def _move_into_place(staging: Path, staged: list[Path], out: Path, force: bool) -> list[Path]:
+    """Move the staged files into ``out``: the whole folder at once when it is new."""
+    if not out.exists():
+        os.rename(staging, out)
+        return [out / p.name for p in staged]
+    moved = []
+    for p in staged:
+        final = out / p.name
+        guard_output(final, force=force)  # checked again just before replacing
+        os.replace(p, final)
+        moved.append(final)
+    shutil.rmtree(staging, ignore_errors=True)
+    return moved
+
 
 def write_report(
     out_dir: str | os.PathLike[str],
@@ -379,8 +416,14 @@ def write_report(
     checks: bool = True,
     title: str | None = None,
     warnings: Sequence[str] = (),
+    progress: Callable[[float], bool | None] | None = None,
 ) -> ReportResult:
     """Write a report for one voxel or for every mark.
+
+    Sections are computed and written one at a time (memory stays bounded for any number of
+    marks; with more than 50, the returned sections keep no fits); everything goes into a
+    staging folder that is moved into place at the end, so an interrupted report (error,
+    full disk, cancel) leaves no partial folder.
 
     Parameters
     ----------
@@ -409,6 +452,9 @@ def write_report(
     title : str, optional
     warnings : sequence of str
         Extra warnings to list (for example from loading the inputs).
+    progress : callable, optional
+        ``progress(fraction)`` after each section; returning False cancels
+        (:class:`voxelscope.core.cache.Cancelled`), leaving nothing behind.
 
     Returns
     -------
@@ -460,25 +506,28 @@ def write_report(
 
     html_path = out / "report.html"
     outputs = [html_path] + [p for s in sections for p in (s.csv, s.png, s.svg) if p is not None]
-    resolved_inputs = {Path(os.path.abspath(p)) for p in input_paths.values()}
-    for p in outputs:
-        if Path(os.path.abspath(p)) in resolved_inputs:
-            raise InputError(f"{p} is an input file; choose another output folder")
-    check_outputs(outputs, force=force)
+    # the one output guard: never an input (after links), existing files only with force
+    check_outputs(outputs, force=force, inputs=list(input_paths.values()))
 
-    # compute everything before writing anything
+    inputs_rows = []
+    for role, p in input_paths.items():
+        path = Path(p)
+        if path.is_file():
+            inputs_rows.append((role, path, file_digest(path), path.stat().st_size))
+        elif path.is_dir():  # a run given as a folder: list it without a digest
+            inputs_rows.append((role, path, "(folder)", 0))
+    page_title = title or f"voxelscope report: {run_path.name}"
+
     from .figure import kernel_colours
 
     colours = kernel_colours()
     conditions = shift_conditions(analysis.conditions, settings.onset_shift_s)
-    csv_texts: dict[Path, str] = {}
-    svgs: dict[Path, str] = {}
-    for sec in sections:
-        if sec.error:
-            continue
+    keep = len(sections) <= _KEEP_SECTIONS  # large reports: nothing kept once written
+
+    def write_section(sec: ReportSection, folder: Path) -> list[Path]:
         y = run.timeseries(sec.ijk)
         sec.fits = analysis.fit_voxel(y, settings)
-        all_warnings += [f"{sec.title}: {w}" for w in sec.fits.warnings]
+        all_warnings.extend(f"{sec.title}: {w}" for w in sec.fits.warnings)
         if checks:
             sec.checks, sec.checks_note = _checks_for(analysis, settings, sec.fits, run, sec.ijk)
         else:
@@ -498,29 +547,54 @@ def write_report(
             colours=colours,
         )
         sec.png_bytes = fig.to_png(scale=scale)
-        svgs[sec.svg] = fig.to_svg()
-        csv_texts[sec.csv] = format_csv(sec.fits)
+        names = (sec.csv.name, sec.png.name, sec.svg.name)  # type: ignore[union-attr]
+        return [
+            write_text(folder / names[0], format_csv(sec.fits)),
+            write_bytes(folder / names[1], sec.png_bytes),
+            write_text(folder / names[2], fig.to_svg()),
+        ]
 
-    inputs_rows = []
-    for role, p in input_paths.items():
-        path = Path(p)
-        if path.is_file():
-            inputs_rows.append((role, path, file_digest(path), path.stat().st_size))
-        elif path.is_dir():  # a run given as a folder: list it without a digest
-            inputs_rows.append((role, path, "(folder)", 0))
-    page_title = title or f"voxelscope report: {run_path.name}"
-    page = _page(page_title, sections, settings, analysis, inputs_rows, all_warnings, colours)
-
+    # Everything is written into a staging folder beside the report and moved into place
+    # at the end: a report stopped by an error, a full disk or Ctrl+C leaves nothing behind.
     try:
-        out.mkdir(parents=True, exist_ok=True)
+        out.parent.mkdir(parents=True, exist_ok=True)
+        staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
     except OSError as err:
         raise InputError(f"{out}: cannot create the report folder ({err.strerror})") from None
-    written: list[Path] = []
-    for sec in sections:
-        if sec.error:
-            continue
-        written.append(write_text(sec.csv, csv_texts[sec.csv], force=force))
-        written.append(write_bytes(sec.png, sec.png_bytes, force=force))
-        written.append(write_text(sec.svg, svgs[sec.svg], force=force))
-    written.append(write_text(html_path, page, force=force))
+    staged: list[Path] = []
+    try:
+        with open(staging / html_path.name, "w", encoding="utf-8", newline="\n") as page:
+            page.write(_page_head(page_title, sections))
+            for n, sec in enumerate(sections):
+                if progress is not None and progress(n / len(sections)) is False:
+                    from .cache import Cancelled
+
+                    raise Cancelled("the report was cancelled")
+                if not sec.error:
+                    staged += write_section(sec, staging)
+                page.write(_section_html(sec, settings, colours) + "\n")
+                sec.png_bytes = b""  # written: bounded memory however many marks
+                if not keep:
+                    sec.fits, sec.checks = None, {}
+            page.write(
+                _page_tail(settings, analysis, inputs_rows, list(dict.fromkeys(all_warnings)))
+            )
+            page.flush()
+            os.fsync(page.fileno())
+        staged.append(staging / html_path.name)
+        written = _move_into_place(staging, staged, out, force)
+    except OSError as err:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise InputError(
+            f"{out}: cannot write the report ({err.strerror or err}); nothing was written"
+        ) from None
+    except InputError as err:  # from the atomic writer: name the report, not the staging
+        shutil.rmtree(staging, ignore_errors=True)
+        reason = str(err).replace(str(staging), str(out))
+        raise InputError(f"{reason}; the report was not written") from None
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise
+    if progress is not None:
+        progress(1.0)
     return ReportResult(out, html_path, written, sections, list(dict.fromkeys(all_warnings)))

@@ -93,7 +93,7 @@ _CHUNK = 1 << 20
 #: Colour scales, overlay sources and statistics a session's map settings may name.
 MAP_COLOUR_SCALES = ("CET-D1", "CET-D1A", "CET-D3", "CET-D9")
 MAP_SOURCES = ("model", "difference", "file", "disagreement")
-MAP_STATS = ("t", "z", "beta", "variance", "p", "log10p")
+MAP_STATS = ("t", "z", "beta", "variance", "p", "neglog10p")
 #: No grid has more voxels along an axis than this (NIfTI-1 stores dimensions as int16).
 MAX_VOXEL_INDEX = 1_000_000
 #: Most problems listed for one session file.
