@@ -124,7 +124,9 @@ def parse_events(
         Missing or non-numeric ``onset``/``duration``, negative durations, an unknown
         amplitude column, or no events at all.
     """
-    reader = csv.reader(stream, delimiter="\t")
+    # split lines ourselves: a lone carriage return inside a cell would stop the csv module
+    text = stream.read() if hasattr(stream, "read") else "".join(stream)
+    reader = csv.reader(text.splitlines(), delimiter="\t")
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
