@@ -92,6 +92,7 @@ class MainWindow(QMainWindow):
         self.last_error = ""
         self.settle_hooks: list = []  # called before a window image: finish background work
         self.record_recent = True  # False for a one-off offscreen rendering (--screenshot)
+        self.study_browser = None  # File > Open study…
         self.setStyleSheet(stylesheet())
         self.setAcceptDrops(True)
 
@@ -240,6 +241,10 @@ class MainWindow(QMainWindow):
         act.setShortcut(QKeySequence.StandardKey.Open)
         act.triggered.connect(self.ask_run)
         m.addAction(act)
+        act = QAction("Open &study…", self)
+        act.setToolTip("Pick a BIDS dataset folder (raw or derivatives) and browse its runs")
+        act.triggered.connect(self.ask_study)
+        m.addAction(act)
         self.events_action = QAction("Open &events…", self)
         self.events_action.triggered.connect(self.ask_events)
         m.addAction(self.events_action)
@@ -250,6 +255,7 @@ class MainWindow(QMainWindow):
         self.map_action.triggered.connect(self.ask_map)
         m.addAction(self.map_action)
         self.recent_menu = m.addMenu("Recent runs")
+        self.recent_studies_menu = m.addMenu("Recent studies")
         self._fill_recent()
         m.addSeparator()
         act = QAction("Save window image…", self)
@@ -306,6 +312,30 @@ class MainWindow(QMainWindow):
         path, _ = QFileDialog.getOpenFileName(self, "Open run", self._last_dir(), NIFTI_FILTER)
         if path:
             self.open_run(path)
+
+    def ask_study(self) -> None:
+        path = QFileDialog.getExistingDirectory(self, "Open study", self._last_dir())
+        if path:
+            self.open_study(path)
+
+    def open_study(self, path):
+        """List a study's runs in a browser (File → Open study…); None when it cannot be read."""
+        from voxelscope.core.study import list_study
+        from voxelscope.gui.study_browser import StudyBrowser
+
+        try:
+            study = list_study(path)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return None
+        if self.study_browser is not None:
+            self.study_browser.close()
+            self.study_browser.deleteLater()
+        self.study_browser = StudyBrowser(self, study)
+        self.study_browser.show()
+        self._add_recent(str(Path(path)), key="recent_studies")
+        self.statusBar().showMessage(f"Study {Path(path).name}: {study.summary()}")
+        return self.study_browser
 
     def ask_events(self) -> None:
         if self.state.run is None:
@@ -473,7 +503,10 @@ class MainWindow(QMainWindow):
         return True
 
     def open_dropped(self, path: str) -> bool:
-        """A dropped NIfTI: a 4D image opens as the run, a 3D image as the map."""
+        """A dropped NIfTI: a 4D image opens as the run, a 3D image as the map; a dropped
+        folder opens as a study (File → Open study…)."""
+        if os.path.isdir(path):
+            return self.open_study(path) is not None
         try:
             dims = check_nifti_kind(path)
         except VoxelscopeError as err:
@@ -488,29 +521,36 @@ class MainWindow(QMainWindow):
 
     # ------------------------------------------------------------------ recent files
 
-    def recent_runs(self) -> list[str]:
-        value = self.settings.value("recent_runs", [])
+    def recent_runs(self, key: str = "recent_runs") -> list[str]:
+        value = self.settings.value(key, [])
         if isinstance(value, str):
             value = [value]
         return [str(v) for v in (value or [])]
 
-    def _add_recent(self, path: str) -> None:
+    def recent_studies(self) -> list[str]:
+        return self.recent_runs("recent_studies")
+
+    def _add_recent(self, path: str, key: str = "recent_runs") -> None:
         if not self.record_recent:
             return
-        items = [p for p in self.recent_runs() if p != path]
+        items = [p for p in self.recent_runs(key) if p != path]
         items.insert(0, path)
-        self.settings.setValue("recent_runs", items[:MAX_RECENT])
+        self.settings.setValue(key, items[:MAX_RECENT])
         self._fill_recent()
 
     def _fill_recent(self) -> None:
-        self.recent_menu.clear()
-        items = self.recent_runs()
-        for p in items:
-            act = QAction(Path(p).name, self)
-            act.setToolTip(p)
-            act.triggered.connect(lambda _c=False, p=p: self.open_run(p))
-            self.recent_menu.addAction(act)
-        self.recent_menu.setEnabled(bool(items))
+        for menu, key, opener in (
+            (self.recent_menu, "recent_runs", self.open_run),
+            (self.recent_studies_menu, "recent_studies", self.open_study),
+        ):
+            menu.clear()
+            items = self.recent_runs(key)
+            for p in items:
+                act = QAction(Path(p).name, self)
+                act.setToolTip(p)
+                act.triggered.connect(lambda _c=False, p=p, f=opener: f(p))
+                menu.addAction(act)
+            menu.setEnabled(bool(items))
 
     # ------------------------------------------------------------------ drag and drop
 
@@ -518,6 +558,8 @@ class MainWindow(QMainWindow):
         urls = ev.mimeData().urls() if ev.mimeData().hasUrls() else []
         if urls and all(_is_nifti(u.toLocalFile()) for u in urls):
             ev.acceptProposedAction()
+        elif len(urls) == 1 and os.path.isdir(urls[0].toLocalFile()):
+            ev.acceptProposedAction()  # a dataset folder: open it as a study
         else:
             ev.ignore()
 
