@@ -814,3 +814,36 @@ def test_a_click_outside_reads_the_file_once_for_its_neighbourhood(tmp_path, mon
     np.testing.assert_array_equal(run.timeseries((0, 0, 0)), data[0, 0, 0])
     np.testing.assert_array_equal(run.timeseries((1, 1, 0)), data[1, 1, 0])
     assert len(passes) == 1 and not brain[0, 0, 0] and not brain[1, 1, 0]
+
+
+def test_a_given_mask_wider_than_the_cache_is_kept_after_one_rebuild(tmp_path, monkeypatch):
+    """A brain mask from a file (e.g. a derivative's) reaching past the cached voxels into
+    noisy background: the entry is rebuilt once to hold all of it (said once); passes over
+    that mask then never read the run file, and the next open needs no rebuild."""
+    data, brain = _phantom((16, 14, 12, 20), background=20.0)
+    path = _save(tmp_path / "n.nii.gz", data)
+    wide = np.zeros(brain.shape, bool)
+    wide[2:14, 2:12, 2:10] = True  # a box around the ellipsoid: background included
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert (wide & ~brain).any()
+    run.set_mask(wide, source="wide_mask.nii.gz")
+    assert sum("given mask" in w for w in run.warnings) == 1
+    passes = []
+    real = cache.read_voxels
+    monkeypatch.setattr(cache, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k))
+    got = {}
+    for idx, y in run.iter_blocks(block_voxels=50):
+        for n, f in enumerate(idx.tolist()):
+            got[f] = y[:, n]
+    m = run.mask()
+    assert sorted(got) == np.flatnonzero(m).tolist() and passes == []
+    flat = data.reshape(-1, 20)
+    for i, y in got.items():
+        np.testing.assert_array_equal(y, flat[i])
+    again = open_run(path, cache_dir=tmp_path / "c")
+    again.set_mask(wide, source="wide_mask.nii.gz")
+    assert not any("given mask" in w for w in again.warnings)
+    memory = open_run(path, use_cache=False)
+    memory.set_mask(wide, source="wide_mask.nii.gz")
+    assert len(passes) == 1  # held in memory: the mask's voxels read once, now
+    np.testing.assert_array_equal(memory.timeseries_many(np.flatnonzero(wide)), flat[wide.ravel()])

@@ -726,6 +726,7 @@ class VoxelStore:
         self.n_volumes = t
         self._set(rows, stored, known_idx, known_val)
         self._recover = recover
+        self._widen: Callable[[np.ndarray], tuple[VoxelStore, str]] | None = None
         self.notes = notes if notes is not None else []
         self._fetched: dict[int, np.ndarray] = {}
         self._lock = threading.RLock()
@@ -760,10 +761,33 @@ class VoxelStore:
                 raise
             with self._lock:
                 fresh, line = self._recover(err)
-                self._set(fresh._rows, fresh.stored, *self._known_pairs(fresh))
-                self._recover = fresh._recover
+                self._take_over(fresh)
                 self.notes.append(line)
             return fn()
+
+    def _take_over(self, fresh: VoxelStore) -> None:
+        self._set(fresh._rows, fresh.stored, *self._known_pairs(fresh))
+        self._recover = fresh._recover
+        self._widen = fresh._widen
+
+    def widen(self, mask: np.ndarray) -> None:
+        """Keep every voxel of ``mask`` (a brain mask given by the user) at hand.
+
+        Voxels of the mask that are neither stored nor constant make the cache entry be
+        rebuilt once with them included (later opens find them stored); a store in memory
+        reads them from the file now, in one pass.
+        """
+        flat = np.flatnonzero(np.asarray(mask, dtype=bool).ravel())
+        missing = flat[(self._pos[flat] < 0) & ~self._known[flat]]
+        if not missing.size:
+            return
+        with self._lock:
+            if self._widen is not None:
+                fresh, line = self._widen(np.asarray(mask, dtype=bool))
+                self._take_over(fresh)
+                self.notes.append(line)
+            else:
+                self._prefetch(missing)
 
     @staticmethod
     def _known_pairs(store: VoxelStore) -> tuple[np.ndarray, np.ndarray]:
@@ -1059,7 +1083,7 @@ def _load_entry(directory: Path, key: str, fp: dict[str, Any], layout: RawLayout
     def damaged(what: str) -> None:
         notes.append(
             f"{directory}: the cache entry of {layout.path.name} is damaged ({what}); "
-            f"rebuilt it from the run"
+            f"reading the run again"
         )
         _remove_key(directory, key)
 
@@ -1378,11 +1402,32 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
             fresh = open_store(layout, select, final, use_cache=False)
             return fresh.store, f"{err}; reading the run into memory instead"
 
+    def widen(mask: np.ndarray) -> tuple[VoxelStore, str]:
+        def wider(s: Summary) -> np.ndarray:
+            return np.asarray(select(s), dtype=bool) | mask
+
+        def must(s: Summary) -> np.ndarray:
+            return np.asarray(final(s), dtype=bool) | mask
+
+        line = f"{layout.path}: the cache was rebuilt to hold every voxel of the given mask"
+        try:
+            _remove_key(directory, key)
+            fresh = _open_cached(layout, wider, must, directory, None, notify, limit, [])
+        except CacheUnavailable:
+            fresh = open_store(layout, wider, must, use_cache=False)
+            line = f"{layout.path}: the run is read into memory to hold the given mask"
+        return fresh.store, line
+
+    def made(built: _Built, rows: _CheckedRows) -> VoxelStore:
+        store = _store_from(layout, built, rows, recover, notes)
+        store._widen = widen
+        return store
+
     loaded = _load_entry(directory, key, fp, layout, notes)
     if loaded is not None:
         _touch(_names(directory, key)[2])
         _report(progress, 1.0, layout)
-        store = _store_from(layout, loaded.built, loaded.rows, recover, notes)
+        store = made(loaded.built, loaded.rows)
         return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes)
 
     try:
@@ -1473,7 +1518,7 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
     loaded = _load_entry(directory, key, fp, layout, notes)
     if loaded is None:  # pragma: no cover - only if someone deletes it under our feet
         raise CacheUnavailable(f"{directory}: the cache entry vanished while opening")
-    store = _store_from(layout, loaded.built, loaded.rows, recover, notes)
+    store = made(loaded.built, loaded.rows)
     return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes)
 
 

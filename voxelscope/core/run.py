@@ -311,6 +311,8 @@ class Run:
             self._given_mask = mask.copy()
             self._mask = None
             self.mask_source = str(source)
+            if isinstance(self._store, _cache.VoxelStore):
+                self._store.widen(mask)  # the cache keeps every voxel of the given mask
 
     # ----------------------------------------------------------------- geometry
 
