@@ -847,3 +847,17 @@ def test_a_given_mask_wider_than_the_cache_is_kept_after_one_rebuild(tmp_path, m
     memory.set_mask(wide, source="wide_mask.nii.gz")
     assert len(passes) == 1  # held in memory: the mask's voxels read once, now
     np.testing.assert_array_equal(memory.timeseries_many(np.flatnonzero(wide)), flat[wide.ravel()])
+
+
+def test_run_too_big_for_cache_and_memory_is_read_from_the_file(tmp_path, monkeypatch):
+    """Over the cache limit and too big for memory: every voxel is still answered (from
+    the file, values equal nibabel's), with one line saying why it is slow."""
+    monkeypatch.setenv(cache.LIMIT_ENV, "1KB")
+    monkeypatch.setattr(cache, "_available_memory", lambda: 1000)
+    data, _ = _phantom((16, 14, 12, 20))
+    path = _save(tmp_path / "p.nii.gz", data)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    assert run.storage == "file"
+    assert sum("do not fit in memory" in w for w in run.warnings) == 1
+    np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 20))
+    np.testing.assert_array_equal(run.timeseries((8, 7, 6)), data[8, 7, 6])

@@ -1311,10 +1311,15 @@ def _memory_rows(layout: RawLayout, directory: Path | None, why: list[str]) -> A
 
 
 def _available_memory() -> int | None:
+    """Memory that can be had without swapping (Linux ``MemAvailable``), else None."""
     try:
-        return int(os.sysconf("SC_AVPHYS_PAGES") * os.sysconf("SC_PAGE_SIZE"))
-    except (ValueError, OSError, AttributeError):  # pragma: no cover - not POSIX
-        return None
+        with open("/proc/meminfo") as f:
+            for line in f:
+                if line.startswith("MemAvailable:"):
+                    return int(line.split()[1]) * 1024
+    except (OSError, ValueError, IndexError):
+        pass
+    return None
 
 
 def _store_from(layout, built: _Built, rows, recover, notes) -> VoxelStore:
