@@ -198,3 +198,61 @@ def test_report_of_several_runs_matches_fit(tmp_path, capsys):
     # a second time without --force keeps the files and says so
     assert main(argv) == 2
     assert "--force" in capsys.readouterr().err
+
+
+def test_a_run_without_the_contrast_condition_is_named(tmp_path, capsys):
+    paths = _three_runs(tmp_path)
+    ev = tmp_path / "sub-01_task-x_run-2_events.tsv"
+    ev.write_text("onset\tduration\ttrial_type\n6\t12\ttone\n54\t12\ttone\n")
+    assert main(["fit", *paths, "--voxel", "1", "1", "1", "--contrast", "tap"]) == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "run-2" in err and "tap" in err
+
+
+def test_ar1_runs_combine_their_own_whitened_estimates(tmp_path, capsys):
+    """Under AR(1) each run's beta and variance come from its own prewhitened fit; the
+    combination is the same formulas (common practice) on those numbers."""
+    paths = _three_runs(tmp_path)
+    doc = _json(capsys, ["fit", *paths, "--voxel", "2", "3", "1", "--noise", "ar1"])
+    for k, c in enumerate(doc["combined"]):
+        b = np.array([r["fits"][k]["beta"] for r in doc["runs"]])
+        v = np.array([r["fits"][k]["variance"] for r in doc["runs"]])
+        assert all(r["fits"][k]["rho"] is not None for r in doc["runs"])
+        w = 1 / v
+        assert c["t"] == pytest.approx(np.sum(w * b) / np.sqrt(w.sum()), rel=1e-12)
+
+
+def test_view_adds_runs_and_refuses_a_bad_one(tmp_path):
+    """``view RUN --add-run RUN2`` renders the window with both runs; a missing added run
+    is one line and exit 2 (offscreen, in a subprocess so Qt stays out of this process)."""
+    import os
+
+    paths = _three_runs(tmp_path)
+    env = {**os.environ, "QT_QPA_PLATFORM": "offscreen"}
+    shot = tmp_path / "v.png"
+    base = [sys.executable, "-m", "voxelscope.cli", "view", paths[0], "--size", "900x700"]
+    ok = subprocess.run(
+        [*base, "--add-run", paths[1], "--add-run", paths[2], "--screenshot", str(shot)],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env=env,
+    )
+    assert ok.returncode == 0, ok.stderr
+    assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    bad = subprocess.run(
+        [
+            *base,
+            "--add-run",
+            str(tmp_path / "nope_bold.nii"),
+            "--screenshot",
+            str(tmp_path / "v2.png"),
+        ],
+        capture_output=True,
+        text=True,
+        timeout=300,
+        env=env,
+    )
+    errors = [line for line in bad.stderr.splitlines() if line.startswith("voxelscope: error")]
+    assert bad.returncode == 2 and len(errors) == 1 and "nope_bold.nii" in errors[0]
+    assert "Traceback" not in bad.stderr

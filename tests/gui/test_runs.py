@@ -148,3 +148,12 @@ def test_report_from_the_window_covers_every_run(window, tmp_path, three_runs):
     names = {p.name for p in result.files}
     assert {"combined.csv", "runs.png", "run-3.png", "report.html"} <= names
     assert "position" in result.sections[0].title  # runs on different grids: by mm
+
+
+def test_open_runs_at_once_in_the_background(window, qtbot, three_runs):
+    from voxelscope.gui.runs import open_runs
+
+    assert open_runs(window, [r["run"] for r in three_runs])
+    qtbot.waitUntil(lambda: len(window.state.bundles) == 3, timeout=20000)
+    qtbot.waitUntil(lambda: not getattr(window, "runs_jobs", []), timeout=20000)
+    assert [r.label for r in window.state.run_fits] == ["run-1", "run-2", "run-3"]

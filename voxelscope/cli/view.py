@@ -45,6 +45,14 @@ def register(sub: argparse._SubParsersAction) -> None:
         "view", help="open a run in the window", description="Open a run in the inspection window."
     )
     p.add_argument("run", nargs="?", help="4D NIfTI run")
+    p.add_argument(
+        "--add-run",
+        action="append",
+        metavar="RUN",
+        dest="add_runs",
+        help="another run of the same subject, fitted at the same place and combined by "
+        "fixed effects (repeat for more runs)",
+    )
     p.add_argument("--events", metavar="FILE")
     p.add_argument("--confounds", metavar="FILE")
     p.add_argument("--anat", metavar="FILE", help="anatomical underlay on any grid")
@@ -141,6 +149,8 @@ def run_view(args: argparse.Namespace) -> int:
         extra["save_session"] = args.save_session
     if args.run is None and not args.session:
         raise InputError("voxelscope view needs a RUN (a 4D NIfTI file) or --session FILE")
+    if args.add_runs and args.run is None:
+        raise InputError("--add-run needs a first RUN to add to")
     return _launch(
         show=args.show or None,
         run=args.run,
@@ -154,6 +164,7 @@ def run_view(args: argparse.Namespace) -> int:
         screenshot=args.screenshot,
         size=args.size,
         force=args.force or None,
+        add_runs=tuple(args.add_runs) if args.add_runs else None,
         **extra,
     )
 

@@ -159,6 +159,7 @@ def launch(
     show: bool = False,
     recovery: bool = True,
     force: bool = False,
+    add_runs: tuple = (),
 ) -> int:
     """Open the inspection window; with ``screenshot``, render it to a PNG and return.
 
@@ -193,6 +194,9 @@ def launch(
         On screen, offer to restore the view of a window that did not close cleanly.
     force : bool
         Let ``screenshot`` replace an existing file (never an input).
+    add_runs : sequence of path
+        Other runs of the same subject, added after ``run`` (File ▸ Add runs…): each is
+        fitted at the same place and the runs are combined by fixed effects.
 
     Returns
     -------
@@ -242,7 +246,7 @@ def launch(
         from voxelscope.core.outputs import guard_output
 
         window.autosave.enabled = False
-        inputs = [run, events, confounds, anat, stat_map, session, marks_path]
+        inputs = [run, events, confounds, anat, stat_map, session, marks_path, *add_runs]
         try:  # refuse a bad screenshot path before the run is opened
             guard_output(screenshot, inputs, force=force)
         except VoxelscopeError as err:
@@ -263,6 +267,15 @@ def launch(
                 _print_errors(window.last_error)
                 window.close()
                 return 2
+            from voxelscope.gui.runs import add_run
+
+            for extra in add_runs:
+                if not add_run(window, extra, background=False):
+                    _print_errors(window.last_error)
+                    window.close()
+                    return 2
+            if add_runs:
+                window.live_map.flush()
             if demo:
                 _demo_extras(window, marks_path)
         if show:
@@ -286,6 +299,10 @@ def launch(
     window.show()
 
     def after() -> None:
+        from voxelscope.gui.runs import add_run
+
+        for extra in add_runs:
+            add_run(window, extra)
         if demo:
             _demo_extras(window, marks_path)
         if save_session is not None:

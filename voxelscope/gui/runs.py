@@ -19,7 +19,7 @@ from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.loading import load_bundle
 from voxelscope.gui.workers import OpenRunJob
 
-__all__ = ["add_run", "install", "run_roles"]
+__all__ = ["add_run", "install", "open_runs", "run_roles"]
 
 NIFTI_FILTER = "NIfTI runs (*.nii *.nii.gz);;All files (*)"
 
@@ -78,6 +78,37 @@ def add_run(window, path, events=None, confounds=None, background: bool = True) 
     window.statusBar().showMessage(f"Opening {Path(path).name}…")
     job.start()
     return True
+
+
+def open_runs(window, paths, background: bool = True, **first) -> bool:
+    """Open several runs of one subject at once (a study browser's multi-select, a list
+    given on the command line): the first as File ▸ Open run does, then the others added.
+
+    ``first`` holds further :meth:`MainWindow.open_run` arguments for the first run
+    (voxel, mm, anat, ...). Returns False when the first run could not be opened.
+    """
+    paths = [str(p) for p in paths]
+    if not paths:
+        return False
+    if not background:
+        if not window.open_run(paths[0], background=False, **first):
+            return False
+        for p in paths[1:]:
+            add_run(window, p, background=False)
+        return True
+    previous = window.after_open
+
+    def then() -> None:
+        if previous is not None:
+            previous()
+        for p in paths[1:]:
+            add_run(window, p)
+
+    window.after_open = then
+    ok = window.open_run(paths[0], **first)
+    if not ok:
+        window.after_open = previous
+    return ok
 
 
 def ask_add_runs(window) -> None:
