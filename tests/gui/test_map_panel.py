@@ -51,7 +51,7 @@ def test_live_map_equals_compute_map(window, ras_run):
 def test_quick_changes_give_one_job(window, qtbot, ras_run):
     state, live = _open(window, ras_run)
     started, done = live.jobs_started, live.jobs_done
-    for hp in (100.0, 90.0, 80.0):  # three changes well inside the 300 ms debounce
+    for hp in (100.0, 90.0, 80.0):  # three changes within the debounce (no event loop between them)
         state.update_settings(highpass_s=hp)
     assert live.timer.isActive()
     qtbot.waitUntil(lambda: not live.is_busy(), timeout=20000)
@@ -171,3 +171,37 @@ def test_demo_window_shows_the_live_map(qapp, demo_files, tmp_path, size):
     out = tmp_path / "demo.png"
     assert launch(demo=True, screenshot=str(out), size=size) == 0
     assert out.is_file()
+
+
+def test_preview_values_are_the_full_maps_at_the_coarse_voxels(window, ras_run):
+    """The coarse preview holds, at every fitted (corner) voxel and across its block inside
+    the mask, exactly the full map's value at that corner voxel (the same fit path)."""
+    state, live = _open(window, ras_run)
+    req = live.request()
+    full = compute_map(state.run, state.analysis, req.settings, req.kernel).t
+    prev = mapjobs.preview_stat(state.run, state.analysis, req)
+    mask = state.run.mask()
+    step = mapjobs.PREVIEW_STEP
+    for i, j, k in np.argwhere(mask):
+        ci, cj, ck = (a - a % step for a in (i, j, k))
+        if mask[ci, cj, ck]:
+            assert prev[i, j, k] == full[ci, cj, ck]
+        else:
+            assert prev[i, j, k] == 0
+    assert not prev[~mask].any()
+
+
+def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, monkeypatch):
+    """A settings change on a large run shows a coarse preview first, then the full map
+    replaces it; the full map equals compute_map exactly."""
+    monkeypatch.setattr(mapjobs, "PREVIEW_MIN_VOXELS", 0)  # the test run counts as large
+    state, live = _open(window, ras_run)
+    titles = []
+    live.shown.connect(lambda layer: titles.append(getattr(layer, "title", "")))
+    previews, done = live.previews_shown, live.jobs_done
+    state.update_settings(highpass_s=77.0)
+    qtbot.waitUntil(lambda: live.jobs_done > done, timeout=20000)
+    assert live.previews_shown == previews + 1
+    assert titles[0].endswith("(preview)") and not titles[-1].endswith("(preview)")
+    ref = compute_map(state.run, state.analysis, state.settings, live.kernel())
+    np.testing.assert_array_equal(state.stat_map.data, ref.t)

@@ -120,6 +120,7 @@ class FitsModel(QAbstractTableModel):
         self.state = state
         self._columns: list[tuple[str, str]] = list(_BASE)
         self._rows: list[dict] = []
+        self._cells: list[list[dict]] = []  # per cell: role -> value, made once per fit
         state.fits_changed.connect(self._on_fits)
         state.runs_changed.connect(lambda: self._on_fits(state.fits))
 
@@ -214,14 +215,17 @@ class FitsModel(QAbstractTableModel):
         same_shape = cols == self._columns and [(r["kernel"], r.get("run")) for r in rows] == [
             (r["kernel"], r.get("run")) for r in self._rows
         ]
+        cells = [[self._cell(row, name) for name, _ in cols] for row in rows]
         if same_shape and rows:
             # same kernels and columns (a click): new numbers only, no reset of the view
             self._rows = rows
+            self._cells = cells
             self.dataChanged.emit(self.index(0, 0), self.index(len(rows) - 1, len(cols) - 1))
             self.values_changed.emit()
             return
         self.beginResetModel()
         self._rows = rows
+        self._cells = cells
         self._columns = cols
         self.endResetModel()
 
@@ -238,29 +242,34 @@ class FitsModel(QAbstractTableModel):
     def columnCount(self, parent=QModelIndex()) -> int:  # noqa: B008
         return 0 if parent.isValid() else len(self._columns)
 
+    @staticmethod
+    def _cell(row: dict, name: str) -> dict:
+        """Every role's value of one cell, computed once per fit: a repaint asks for about
+        ten roles of every cell, and a click must not pay for formatting them again."""
+        value = row[name]
+        left = name in ("", "kernel", "run")
+        cell = {
+            Qt.ItemDataRole.DisplayRole: "" if name == "" else format_value(name, value),
+            RAW_ROLE: value,
+            Qt.ItemDataRole.TextAlignmentRole: int(
+                (Qt.AlignmentFlag.AlignLeft if left else Qt.AlignmentFlag.AlignRight)
+                | Qt.AlignmentFlag.AlignVCenter
+            ),
+        }
+        if name == "":
+            cell[Qt.ItemDataRole.DecorationRole] = QColor(kernel_colour(row["kernel"]))
+        if name == "kernel":
+            cell[Qt.ItemDataRole.ForegroundRole] = QColor("#1f1f1f")
+        if row.get("run") == "combined":
+            cell[Qt.ItemDataRole.BackgroundRole] = QColor("#e8eef5")
+        if not left and value is not None:
+            cell[Qt.ItemDataRole.ToolTipRole] = repr(value)
+        return cell
+
     def data(self, index, role=Qt.ItemDataRole.DisplayRole):
         if not index.isValid():
             return None
-        name = self._columns[index.column()][0]
-        row = self._rows[index.row()]
-        value = row[name]
-        if role == Qt.ItemDataRole.DisplayRole:
-            return "" if name == "" else format_value(name, value)
-        if role == Qt.ItemDataRole.DecorationRole and name == "":
-            return QColor(kernel_colour(row["kernel"]))
-        if role == RAW_ROLE:
-            return value
-        if role == Qt.ItemDataRole.TextAlignmentRole:
-            if name in ("", "kernel", "run"):
-                return int(Qt.AlignmentFlag.AlignLeft | Qt.AlignmentFlag.AlignVCenter)
-            return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)
-        if role == Qt.ItemDataRole.ForegroundRole and name == "kernel":
-            return QColor("#1f1f1f")
-        if role == Qt.ItemDataRole.BackgroundRole and row.get("run") == "combined":
-            return QColor("#e8eef5")
-        if role == Qt.ItemDataRole.ToolTipRole and name not in ("", "kernel", "run"):
-            return None if value is None else repr(value)
-        return None
+        return self._cells[index.row()][index.column()].get(role)
 
     def headerData(self, section, orientation, role=Qt.ItemDataRole.DisplayRole):
         if orientation != Qt.Orientation.Horizontal:

@@ -1,11 +1,16 @@
 """The live model map: whole-volume fits off the GUI thread, debounced and cancellable.
 
 :class:`LiveMap` listens to the state. When a model setting or the map's kernel, statistic
-or source changes, it waits :attr:`LiveMap.debounce_ms` (300 ms) for further changes, then
+or source changes, it waits :attr:`LiveMap.debounce_ms` for further changes, then
 runs :func:`voxelscope.core.maps.compute_map` on a worker thread (the same fit path as a
 clicked voxel) and shows the result as the overlay. A change while a job runs cancels it
 (the core's progress callback returns False) and starts one job for the newest settings.
 The GUI thread only swaps image data, so clicks and their per-voxel fits stay instant.
+On a large run (at least :data:`PREVIEW_MIN_VOXELS` in the mask) the job first fits every
+:data:`PREVIEW_STEP`-th voxel along each axis and shows that coarse preview (each fitted
+voxel's value over its block, inside the mask), then replaces it in place with the full
+map; the debounce is short (:attr:`LiveMap.debounce_ms`, 40 ms) because a further change
+cancels the running job at its next block.
 
 Overlay sources (:data:`SOURCES`):
 
@@ -65,6 +70,7 @@ __all__ = [
     "disconnect_all",
     "install_map_parts",
     "other_kernel",
+    "preview_stat",
     "stop_jobs",
     "wait_for_jobs",
 ]
@@ -85,6 +91,12 @@ FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
 
 #: Model maps kept for quick switching between kernels, statistics and sources.
 CACHE_SIZE = 6
+
+#: Runs with at least this many voxels in the mask get a coarse preview first.
+PREVIEW_MIN_VOXELS = 150_000
+
+#: The preview fits every PREVIEW_STEP-th voxel along each axis (1 in 8 voxels).
+PREVIEW_STEP = 2
 
 _JOBS: set[BackgroundJob] = set()
 
@@ -223,20 +235,68 @@ def compute_request(
     )
 
 
+def preview_stat(
+    run: Any,
+    analysis: Any,
+    request: MapRequest,
+    progress: Callable[[float], bool | None] | None = None,
+    step: int = PREVIEW_STEP,
+) -> np.ndarray:
+    """A coarse preview of the request's statistic (no Qt).
+
+    :func:`voxelscope.core.maps.compute_map` fits every ``step``-th voxel of the mask
+    along each axis (the same fit as the full map); each fitted voxel's value then fills
+    its ``step``-cube, inside the mask (0 outside it and where a cube's corner voxel is
+    outside the mask). Returns float32 (X, Y, Z).
+
+    Examples
+    --------
+    >>> from voxelscope.core.events import Condition
+    >>> from voxelscope.core.maps import ArrayRun
+    >>> from voxelscope.core.model import Analysis, ModelSettings
+    >>> run = ArrayRun(np.random.default_rng(0).normal(100, 1, (4, 4, 4, 40)))
+    >>> a = Analysis([Condition("tone", [10.0], [10.0])], n_volumes=40, tr=1.0)
+    >>> v = preview_stat(run, a, MapRequest(ModelSettings(), "boxcar"))
+    >>> v.shape, bool(v[0, 0, 0] == v[1, 1, 1])
+    ((4, 4, 4), True)
+    """
+    mask = np.asarray(run.mask(), dtype=bool)
+    coarse = np.zeros_like(mask)
+    sub = (slice(None, None, step),) * 3
+    coarse[sub] = mask[sub]
+    m = compute_map(
+        run, analysis, request.settings, request.kernel, mask=coarse, progress=progress,
+        stats=request.stats,
+    )  # fmt: skip
+    values = m.stat(request.stat)[sub]
+    for axis in range(3):
+        values = np.repeat(values, step, axis=axis)
+    values = values[: mask.shape[0], : mask.shape[1], : mask.shape[2]]
+    return np.where(mask, values, np.float32(0)).astype(np.float32)
+
+
 # ----------------------------------------------------------------------------- worker
 
 
 class _Worker(QObject):
     progress = Signal(float)
+    partial = Signal(object)
     done = Signal(object)
     failed = Signal(str)
     cancelled = Signal()
 
-    def __init__(self, fn: Callable, cancel: threading.Event, what: str) -> None:
+    def __init__(
+        self, fn: Callable, cancel: threading.Event, what: str, partial: bool = False
+    ) -> None:
         super().__init__()
         self.fn = fn
         self.cancel = cancel
         self.what = what
+        self.with_partial = partial
+
+    def _partial(self, value: object) -> None:
+        if not self.cancel.is_set():
+            self.partial.emit(value)
 
     def _progress(self, fraction: float) -> bool:
         self.progress.emit(float(fraction))
@@ -245,7 +305,10 @@ class _Worker(QObject):
     @Slot()
     def run(self) -> None:
         try:
-            out = self.fn(self._progress)
+            if self.with_partial:
+                out = self.fn(self._progress, self._partial)
+            else:
+                out = self.fn(self._progress)
         except Cancelled:
             self.cancelled.emit()
         except VoxelscopeError as err:
@@ -268,10 +331,13 @@ class BackgroundJob(QObject):
     ``cancelled()`` follows, then ``finished()``.
 
     ``progress(fraction)`` returns False after :meth:`cancel`, which makes the core
-    functions stop at their next step.
+    functions stop at their next step. With ``partial=True`` the function is called as
+    ``fn(progress, partial)``; ``partial(value)`` sends an intermediate result (a preview)
+    to the GUI thread as the ``partial`` signal.
     """
 
     progress = Signal(float)
+    partial = Signal(object)
     done = Signal(object)
     failed = Signal(str)
     cancelled = Signal()
@@ -283,15 +349,17 @@ class BackgroundJob(QObject):
         what: str = "the job",
         parent: QObject | None = None,
         owner: QObject | None = None,
+        partial: bool = False,
     ):
         super().__init__(parent)
         self.owner = owner
         self._cancel = threading.Event()
         self.thread = QThread()
-        self.worker = _Worker(fn, self._cancel, what)
+        self.worker = _Worker(fn, self._cancel, what, partial)
         self.worker.moveToThread(self.thread)
         self.thread.started.connect(self.worker.run)
         self.worker.progress.connect(self.progress)
+        self.worker.partial.connect(self.partial)
         self.worker.done.connect(self.done)
         self.worker.failed.connect(self.failed)
         self.worker.cancelled.connect(self.cancelled)
@@ -326,7 +394,9 @@ class BackgroundJob(QObject):
     def detach(self, *_args) -> None:
         """Cancel and drop every connection to the outside (the job runs out on its own)."""
         self._cancel.set()
-        disconnect_all(self.progress, self.done, self.failed, self.cancelled, self.finished)
+        disconnect_all(
+            self.progress, self.partial, self.done, self.failed, self.cancelled, self.finished
+        )
 
     def stop(self, timeout_ms: int = 10000) -> bool:
         """Detach, then wait for the worker thread to end; True when it has."""
@@ -438,7 +508,9 @@ class LiveMap(QObject):
     def __init__(self, state: ViewerState, parent: QObject | None = None) -> None:
         super().__init__(parent)
         self.state = state
-        self.debounce_ms = 300
+        self.debounce_ms = 40
+        self.maps_shown = 0  # model or difference maps put on screen (previews included)
+        self.previews_shown = 0
         self.timer = QTimer(self)
         self.timer.setSingleShot(True)
         self.timer.timeout.connect(self._start)
@@ -614,11 +686,34 @@ class LiveMap(QObject):
         run, analysis = self.state.run, self.state.analysis
         cache = dict(self.cache)
         extra = tuple((b.run, b.analysis) for b in self.state.extra) if req.runs else ()
+        voxel = self.state.voxel
+        preview = (
+            self.state.map_settings.source == "model"
+            and req.other is None
+            and not req.runs
+            and (req.settings, req.kernel, req.stats) not in cache
+            and int(np.count_nonzero(run.mask())) >= PREVIEW_MIN_VOXELS
+        )
 
-        def fn(progress):
+        def fn(progress, partial):
+            if preview:
+                part = 0.05  # of the progress bar
+
+                def sub(f: float) -> bool | None:
+                    return progress(part * f)
+
+                partial((req, preview_stat(run, analysis, req, voxel, progress=sub)))
+
+                def rest(f: float) -> bool | None:
+                    return progress(part + (1 - part) * f)
+
+                return compute_request(
+                    run, analysis, req, progress=rest, cache=cache, extra=extra
+                )
             return compute_request(run, analysis, req, progress=progress, cache=cache, extra=extra)
 
-        job = BackgroundJob(fn, "the model map", owner=self)
+        job = BackgroundJob(fn, "the model map", owner=self, partial=True)
+        job.partial.connect(self._preview)
         job.progress.connect(self.progress)
         job.done.connect(self._done)
         job.failed.connect(self._failed)
@@ -655,6 +750,27 @@ class LiveMap(QObject):
             self.last_latency_s = time.perf_counter() - self._changed_at
             self._changed_at = None
         self.model_ready.emit(outcome.model)
+
+    def _preview(self, payload) -> None:
+        """Show a coarse preview of the map being computed (refined in place when done)."""
+        req, data = payload
+        st = self.state
+        if self._pending or st.map_settings.source != "model" or req != self.request():
+            return
+        finite = np.abs(data[np.isfinite(data)])
+        top = float(finite.max()) if finite.size else 1.0
+        top = top if top > 0 else 1.0
+        layer = LiveLayer(
+            None, data, 1, (-top, top), title=f"{req.stat} · {req.kernel} (preview)",
+            stat=req.stat, source="model",
+        )  # fmt: skip
+        keep = isinstance(st.stat_map, LiveLayer) and st.stat_map.source == "model"
+        keep = keep and st.stat_map.stat == req.stat
+        self._mine = layer
+        st.set_map(layer, keep_scale=keep)
+        self.maps_shown += 1
+        self.previews_shown += 1
+        self.shown.emit(layer)
 
     def _failed(self, line: str) -> None:
         self._changed_at = None
@@ -705,6 +821,8 @@ class LiveMap(QObject):
             keep = isinstance(layer, LiveLayer) and isinstance(st.stat_map, LiveLayer)
             keep = keep and layer.source == st.stat_map.source and layer.stat == st.stat_map.stat
             st.set_map(layer, keep_scale=keep)
+            if isinstance(layer, LiveLayer):
+                self.maps_shown += 1
         self.shown.emit(layer)
 
     def _from_cache(self, req: MapRequest) -> MapOutcome | None:

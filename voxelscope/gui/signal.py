@@ -15,8 +15,8 @@ import html
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import Qt
-from PySide6.QtGui import QColor, QFont
+from PySide6.QtCore import QRectF, Qt
+from PySide6.QtGui import QColor, QFont, QPainter
 from PySide6.QtWidgets import (
     QButtonGroup,
     QComboBox,
@@ -58,6 +58,64 @@ def _style_plot(plot: pg.PlotItem, font: QFont) -> None:
         ax.setStyle(tickFont=font)
     plot.setMenuEnabled(False)
     plot.hideButtons()
+
+
+class _Bands(pg.GraphicsObject):
+    """All condition bands as one item, filled without antialiasing over the view's
+    current vertical range (one cheap paint instead of one antialiased region per block)."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self._rects: list[tuple[float, float, QColor]] = []
+        self._y = (0.0, 1.0)
+        self._x = (0.0, 0.0)
+
+    def set_bands(self, rects: list[tuple[float, float, QColor]]) -> None:
+        self.prepareGeometryChange()
+        self._rects = list(rects)
+        if rects:
+            self._x = (min(r[0] for r in rects), max(r[1] for r in rects))
+        self.update()
+
+    def set_y(self, lo: float, hi: float) -> None:
+        if (lo, hi) != self._y:
+            self.prepareGeometryChange()
+            self._y = (lo, hi)
+
+    def boundingRect(self) -> QRectF:
+        (x0, x1), (y0, y1) = self._x, self._y
+        return QRectF(x0, y0, x1 - x0, y1 - y0)
+
+    def paint(self, painter: QPainter, *args) -> None:
+        y0, y1 = self._y
+        painter.setRenderHint(QPainter.RenderHint.Antialiasing, False)
+        painter.setPen(Qt.PenStyle.NoPen)
+        for x0, x1, colour in self._rects:
+            painter.fillRect(QRectF(x0, y0, x1 - x0, y1 - y0), colour)
+
+
+def _span(arrays) -> tuple[float, float] | None:
+    """Smallest and largest finite value over several arrays (None if there is none)."""
+    lo, hi = np.inf, -np.inf
+    for a in arrays:
+        a = np.asarray(a, dtype=float)
+        finite = a[np.isfinite(a)]
+        if finite.size:
+            lo, hi = min(lo, float(finite.min())), max(hi, float(finite.max()))
+    return (lo, hi) if lo <= hi else None
+
+
+def _set_y(plot: pg.PlotItem, span: tuple[float, float] | None) -> None:
+    """Fit the vertical range to ``span`` now, so the plot is painted once per change
+    (automatic ranging would repaint it a second time, one event-loop pass later)."""
+    if span is None:
+        plot.enableAutoRange(axis="y")
+        return
+    lo, hi = span
+    if hi - lo <= 0:
+        pad = max(abs(lo) * 0.05, 1e-9)
+        lo, hi = lo - pad, hi + pad
+    plot.setYRange(lo, hi, padding=0.05)
 
 
 class SignalPanel(QWidget):
@@ -144,7 +202,12 @@ class SignalPanel(QWidget):
         for item in self.curves.values():
             # wide antialiased paths are slow to stroke in software; segments are ~3x faster
             item.curve.setSegmentedLineMode("on")
-        self._bands: list[pg.LinearRegionItem] = []
+        self._bands = _Bands()
+        self._bands.setZValue(-10)
+        self.plot.addItem(self._bands, ignoreBounds=True)
+        self.plot.getViewBox().sigYRangeChanged.connect(
+            lambda _vb, rng: self._bands.set_y(float(rng[0]), float(rng[1]))
+        )
         self._band_key = None
         self._label_key: bool | None = None
         self._x_span: tuple[float, float] | None = None
@@ -206,25 +269,15 @@ class SignalPanel(QWidget):
         if key == self._band_key:
             return
         self._band_key = key
-        for band in self._bands:
-            self.plot.removeItem(band)
-        self._bands = []
-        if analysis is None:
-            return
-        alpha = round(255 * float(colours()["condition_band_alpha"]))
-        for n, cond in enumerate(shift_conditions(analysis.conditions, shift)):
-            col = QColor(condition_colour(n))
-            col.setAlpha(alpha)
-            for on, du in zip(cond.onsets, cond.durations):
-                band = pg.LinearRegionItem(
-                    values=(float(on), float(on + max(du, analysis.tr * 0.25))),
-                    movable=False,
-                    brush=pg.mkBrush(col),
-                    pen=pg.mkPen(None),
-                )
-                band.setZValue(-10)
-                self.plot.addItem(band, ignoreBounds=True)
-                self._bands.append(band)
+        rects = []
+        if analysis is not None:
+            alpha = round(255 * float(colours()["condition_band_alpha"]))
+            for n, cond in enumerate(shift_conditions(analysis.conditions, shift)):
+                col = QColor(condition_colour(n))
+                col.setAlpha(alpha)
+                for on, du in zip(cond.onsets, cond.durations):
+                    rects.append((float(on), float(on + max(du, analysis.tr * 0.25)), col))
+        self._bands.set_bands(rects)
 
     def _on_fits(self, fits) -> None:
         run, _analysis, y, fits = self._shown()
@@ -248,19 +301,23 @@ class SignalPanel(QWidget):
         def scale(v, centre=True):
             return to_percent(v, mean, centre) if pct else v
 
-        self.data_curve.setData(t, scale(y))
+        ys = scale(y)
+        self.data_curve.setData(t, ys)
         shown = {}
         if fits is not None:
             for f in fits.fits:
                 shown[f.kernel] = f
+        top, bottom = [ys], []
         for name, curve in self.curves.items():
             f = shown.get(name)
             if f is None:
                 curve.setData([], [])
                 self.resid_curves[name].setData([], [])
             else:
-                curve.setData(t, scale(f.fitted))
-                self.resid_curves[name].setData(t, scale(f.residuals, centre=False))
+                top.append(scale(f.fitted))
+                bottom.append(scale(f.residuals, centre=False))
+                curve.setData(t, top[-1])
+                self.resid_curves[name].setData(t, bottom[-1])
         if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
             self._label_key = pct
             self.plot.setLabel(
@@ -279,8 +336,8 @@ class SignalPanel(QWidget):
         if self._x_span != span:
             self._x_span = span
             self.plot.setXRange(*span, padding=0.01)
-        self.plot.enableAutoRange(axis="y")
-        self.resid.enableAutoRange(axis="y")
+        _set_y(self.plot, _span(top))
+        _set_y(self.resid, _span([*bottom, [0.0]]))
         self._update_legend(shown)
 
     def _update_legend(self, shown) -> None:
