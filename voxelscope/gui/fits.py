@@ -346,6 +346,7 @@ class FitsPanel(QWidget):
         self._widths: list[int] = []
         self._header_key = None
         self._header_widths: list[int] = []
+        self._grown: tuple[tuple, list[int]] = ((), [])
         self.model.modelReset.connect(self._layout_columns)
         self.model.values_changed.connect(self._layout_columns)
         state.fits_changed.connect(self._on_fits)
@@ -365,6 +366,12 @@ class FitsPanel(QWidget):
         if n == 0:
             return
         base = self._content_widths()
+        # While the columns stay the same (clicks, a drag), a column never narrows: a new
+        # width makes the table lay out and paint a second time, one event-loop pass later.
+        cols = tuple(self.model.columns())
+        if self._grown[0] == cols and len(self._grown[1]) == len(base):
+            base = [max(a, b) for a, b in zip(base, self._grown[1])]
+        self._grown = (cols, base)
         first = max(30, hh.minimumSectionSize())  # the colour marker column
         room = self.table.viewport().width() - first
         pad = 8
@@ -388,6 +395,7 @@ class FitsPanel(QWidget):
         """Lay the columns out again (after a change of font or of ``fit_width``)."""
         self._widths = []
         self._header_key = None
+        self._grown = ((), [])
         self._layout_columns()
 
     def _content_widths(self) -> list[int]:

@@ -116,6 +116,9 @@ def _set_y(plot: pg.PlotItem, span: tuple[float, float] | None) -> None:
         pad = max(abs(lo) * 0.05, 1e-9)
         lo, hi = lo - pad, hi + pad
     plot.setYRange(lo, hi, padding=0.05)
+    # apply the new range now: left to the paint, it would change the scene during the
+    # paint and make the plot paint a second time
+    plot.getViewBox().updateMatrix()
 
 
 class SignalPanel(QWidget):

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QPointF, QRectF, Qt, Signal
+from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QPen
 from PySide6.QtWidgets import (
     QGraphicsSimpleTextItem,
@@ -422,6 +422,27 @@ def _short(name: str, n: int = 14) -> str:
     return tail if len(tail) <= n else tail[: n - 1] + "…"
 
 
+class _Holder(QWidget):
+    """Holds one label without a layout, so that new text in the label repaints the label
+    alone: a label's new text asks its parent's layout to run again, which went up to the
+    main window on every click; this holder's size does not depend on the text."""
+
+    def __init__(self, label: QLabel, parent: QWidget | None = None) -> None:
+        super().__init__(parent)
+        self.label = label
+        label.setParent(self)
+        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+
+    def sizeHint(self) -> QSize:
+        return QSize(100, self.label.sizeHint().height())
+
+    def minimumSizeHint(self) -> QSize:
+        return self.sizeHint()
+
+    def resizeEvent(self, ev) -> None:
+        self.label.setGeometry(self.rect())
+
+
 class SlicesPanel(QWidget):
     """Slices: the three views, the colour bar and the readout line."""
 
@@ -450,7 +471,7 @@ class SlicesPanel(QWidget):
         # word wrap, so its height, and with it the views, never jump from click to click
         self.readout.setMinimumWidth(100)
         self.readout.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
-        outer.addWidget(self.readout)
+        outer.addWidget(_Holder(self.readout))
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._refresh)
         state.underlay_changed.connect(self._refresh)
