@@ -173,22 +173,19 @@ def test_demo_window_shows_the_live_map(qapp, demo_files, tmp_path, size):
     assert out.is_file()
 
 
-def test_preview_values_are_the_full_maps_at_the_coarse_voxels(window, ras_run):
-    """The coarse preview holds, at every fitted (corner) voxel and across its block inside
-    the mask, exactly the full map's value at that corner voxel (the same fit path)."""
+def test_preview_holds_the_full_maps_values_on_the_planes_on_screen(window, ras_run):
+    """The preview holds exactly the full map's values on the three planes through the
+    current voxel (the same fit path) and 0 elsewhere."""
     state, live = _open(window, ras_run)
     req = live.request()
     full = compute_map(state.run, state.analysis, req.settings, req.kernel).t
-    prev = mapjobs.preview_stat(state.run, state.analysis, req)
-    mask = state.run.mask()
-    step = mapjobs.PREVIEW_STEP
-    for i, j, k in np.argwhere(mask):
-        ci, cj, ck = (a - a % step for a in (i, j, k))
-        if mask[ci, cj, ck]:
-            assert prev[i, j, k] == full[ci, cj, ck]
-        else:
-            assert prev[i, j, k] == 0
-    assert not prev[~mask].any()
+    voxel = state.voxel
+    prev = mapjobs.preview_stat(state.run, state.analysis, req, voxel)
+    planes = np.zeros(full.shape, dtype=bool)
+    i, j, k = voxel
+    planes[i, :, :] = planes[:, j, :] = planes[:, :, k] = True
+    np.testing.assert_array_equal(prev[planes], full[planes])
+    assert not prev[~planes].any() and full[~planes].any()
 
 
 def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, monkeypatch):

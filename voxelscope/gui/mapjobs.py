@@ -6,10 +6,10 @@ runs :func:`voxelscope.core.maps.compute_map` on a worker thread (the same fit p
 clicked voxel) and shows the result as the overlay. A change while a job runs cancels it
 (the core's progress callback returns False) and starts one job for the newest settings.
 The GUI thread only swaps image data, so clicks and their per-voxel fits stay instant.
-On a large run (at least :data:`PREVIEW_MIN_VOXELS` in the mask) the job first fits every
-:data:`PREVIEW_STEP`-th voxel along each axis and shows that coarse preview (each fitted
-voxel's value over its block, inside the mask), then replaces it in place with the full
-map; the debounce is short (:attr:`LiveMap.debounce_ms`, 40 ms) because a further change
+On a large run (at least :data:`PREVIEW_MIN_VOXELS` in the mask) the job first fits the
+three planes through the current voxel, the ones the Slices part shows, and puts that
+preview on screen (final values there, 0 elsewhere); the full map then replaces it in
+place. The debounce is short (:attr:`LiveMap.debounce_ms`, 40 ms) because a further change
 cancels the running job at its next block.
 
 Overlay sources (:data:`SOURCES`):
@@ -92,11 +92,9 @@ FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
 #: Model maps kept for quick switching between kernels, statistics and sources.
 CACHE_SIZE = 6
 
-#: Runs with at least this many voxels in the mask get a coarse preview first.
+#: Runs with at least this many voxels in the mask get a preview (the planes on screen)
+#: first.
 PREVIEW_MIN_VOXELS = 150_000
-
-#: The preview fits every PREVIEW_STEP-th voxel along each axis (1 in 8 voxels).
-PREVIEW_STEP = 2
 
 _JOBS: set[BackgroundJob] = set()
 
@@ -239,15 +237,15 @@ def preview_stat(
     run: Any,
     analysis: Any,
     request: MapRequest,
+    voxel: tuple[int, int, int],
     progress: Callable[[float], bool | None] | None = None,
-    step: int = PREVIEW_STEP,
 ) -> np.ndarray:
-    """A coarse preview of the request's statistic (no Qt).
+    """The request's statistic on the three planes through ``voxel`` (no Qt).
 
-    :func:`voxelscope.core.maps.compute_map` fits every ``step``-th voxel of the mask
-    along each axis (the same fit as the full map); each fitted voxel's value then fills
-    its ``step``-cube, inside the mask (0 outside it and where a cube's corner voxel is
-    outside the mask). Returns float32 (X, Y, Z).
+    These are the planes the Slices part shows, so the map is on screen long before the
+    whole volume is fitted: :func:`voxelscope.core.maps.compute_map` fits the mask's voxels
+    on those planes (the same fit as the full map, so the values are final); the rest of
+    the volume is 0 until the full map replaces the preview. Returns float32 (X, Y, Z).
 
     Examples
     --------
@@ -256,23 +254,19 @@ def preview_stat(
     >>> from voxelscope.core.model import Analysis, ModelSettings
     >>> run = ArrayRun(np.random.default_rng(0).normal(100, 1, (4, 4, 4, 40)))
     >>> a = Analysis([Condition("tone", [10.0], [10.0])], n_volumes=40, tr=1.0)
-    >>> v = preview_stat(run, a, MapRequest(ModelSettings(), "boxcar"))
-    >>> v.shape, bool(v[0, 0, 0] == v[1, 1, 1])
-    ((4, 4, 4), True)
+    >>> v = preview_stat(run, a, MapRequest(ModelSettings(), "boxcar"), (1, 2, 3))
+    >>> v.shape, bool(v[1, 0, 0] != 0), bool(v[0, 0, 0] == 0)
+    ((4, 4, 4), True, True)
     """
     mask = np.asarray(run.mask(), dtype=bool)
-    coarse = np.zeros_like(mask)
-    sub = (slice(None, None, step),) * 3
-    coarse[sub] = mask[sub]
+    planes = np.zeros_like(mask)
+    i, j, k = (int(v) for v in voxel)
+    planes[i, :, :] = planes[:, j, :] = planes[:, :, k] = True
     m = compute_map(
-        run, analysis, request.settings, request.kernel, mask=coarse, progress=progress,
-        stats=request.stats,
+        run, analysis, request.settings, request.kernel, mask=mask & planes,
+        progress=progress, stats=request.stats,
     )  # fmt: skip
-    values = m.stat(request.stat)[sub]
-    for axis in range(3):
-        values = np.repeat(values, step, axis=axis)
-    values = values[: mask.shape[0], : mask.shape[1], : mask.shape[2]]
-    return np.where(mask, values, np.float32(0)).astype(np.float32)
+    return np.asarray(m.stat(request.stat), dtype=np.float32)
 
 
 # ----------------------------------------------------------------------------- worker
@@ -707,9 +701,7 @@ class LiveMap(QObject):
                 def rest(f: float) -> bool | None:
                     return progress(part + (1 - part) * f)
 
-                return compute_request(
-                    run, analysis, req, progress=rest, cache=cache, extra=extra
-                )
+                return compute_request(run, analysis, req, progress=rest, cache=cache, extra=extra)
             return compute_request(run, analysis, req, progress=progress, cache=cache, extra=extra)
 
         job = BackgroundJob(fn, "the model map", owner=self, partial=True)
@@ -752,7 +744,8 @@ class LiveMap(QObject):
         self.model_ready.emit(outcome.model)
 
     def _preview(self, payload) -> None:
-        """Show a coarse preview of the map being computed (refined in place when done)."""
+        """Show the preview (the planes on screen) of the map being computed; the full
+        map replaces it in place when done."""
         req, data = payload
         st = self.state
         if self._pending or st.map_settings.source != "model" or req != self.request():
