@@ -157,3 +157,22 @@ def test_open_runs_at_once_in_the_background(window, qtbot, three_runs):
     qtbot.waitUntil(lambda: len(window.state.bundles) == 3, timeout=20000)
     qtbot.waitUntil(lambda: not getattr(window, "runs_jobs", []), timeout=20000)
     assert [r.label for r in window.state.run_fits] == ["run-1", "run-2", "run-3"]
+
+
+def test_demo_study_runs_disagree_at_the_rim_and_agree_at_the_tone_cluster(window, demo_files):
+    """Planted in the demo (sample_data/README.md): the rim 'activation' is a head jolt in
+    run 1 only, so the runs disagree there; the tone cluster responds in both runs."""
+    from voxelscope.gui.app import demo_paths
+
+    d = demo_paths()
+    assert window.open_run(d["run"], voxel=(26, 40, 25), background=False), window.last_error
+    assert add_run(window, d["run2"], background=False), window.last_error
+    window.set_contrast_text("tone")
+    st = window.state
+    dg = next(c for c in st.combined if c.kernel == "double-gamma")
+    assert dg.q_p < 1e-4 and "runs-disagree" in {f.id for f in dg.flags}
+    window.checks.set_kernel("double-gamma")
+    assert "they disagree" in window.checks.runs_note.text()
+    st.set_voxel((6, 23, 15))
+    dg = next(c for c in st.combined if c.kernel == "double-gamma")
+    assert dg.t > 10 and dg.q_p > 0.05 and not dg.flags

@@ -52,3 +52,18 @@ def test_a_folder_that_is_not_a_study_is_one_line(window, tmp_path):
     (tmp_path / "dataset_description.json").write_text("{oops")
     assert window.open_study(tmp_path) is None
     assert "not valid JSON" in window.last_error
+
+
+def test_several_runs_of_the_demo_study_open_together(window, demo_files):
+    """Multi-select in the browser: both demo runs open, the second added and combined."""
+    browser = window.open_study(SAMPLE / "study")
+    browser.table.selectAll()
+    assert browser.open_button.text() == "Open 2 runs together"
+    assert browser.open_selected(background=False), window.last_error
+    st = window.state
+    assert [b.run.path.name[:30] for b in st.bundles] == [
+        "sub-demo_task-tonetap_run-1_sp",
+        "sub-demo_task-tonetap_run-2_sp",
+    ]
+    assert [r.label for r in st.run_fits] == ["run-1", "run-2"]
+    assert st.combined and st.combined[0].n_runs == 2

@@ -5,7 +5,9 @@ only shows it: one row per run (subject, session, task, run, which dataset and t
 entities), one column per companion (events, sidecars, confounds, brain mask) saying found or
 missing, the paths in the tooltips. Double-click a row, or select it and press **Open run**,
 and the window opens that run with all of its companions, through the same one way in as
-File → Open run.
+File → Open run. Select several runs of one subject (Ctrl- or Shift-click) and they open
+together: the first as the shown run, the others added (File → Add runs…), fitted at the
+same place and combined by fixed effects.
 """
 
 from __future__ import annotations
@@ -156,7 +158,8 @@ class StudyBrowser(QDialog):
         self.table.setObjectName("study_table")
         self.table.setModel(self.proxy)
         self.table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
-        self.table.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
+        # several runs of one subject can be opened together (combined by fixed effects)
+        self.table.setSelectionMode(QAbstractItemView.SelectionMode.ExtendedSelection)
         self.table.verticalHeader().setVisible(False)
         head = self.table.horizontalHeader()
         head.setSortIndicator(-1, Qt.SortOrder.AscendingOrder)  # the study's own order first
@@ -177,6 +180,7 @@ class StudyBrowser(QDialog):
         buttons.addWidget(self.open_button)
         buttons.addWidget(close)
         lay.addLayout(buttons)
+        self.table.selectionModel().selectionChanged.connect(self._selection_changed)
         if study.runs:
             self.table.selectRow(0)
 
@@ -187,12 +191,48 @@ class StudyBrowser(QDialog):
         rows = self.table.selectionModel().selectedRows()
         return self.model.run_at(self._source_row(rows[0])) if rows else None
 
+    def selected_runs(self) -> list[StudyRun]:
+        """Every selected run, in the study's order."""
+        rows = sorted(self._source_row(i) for i in self.table.selectionModel().selectedRows())
+        return [r for r in (self.model.run_at(n) for n in rows) if r is not None]
+
+    def _selection_changed(self, *_args) -> None:
+        n = len(self.selected_runs())
+        self.open_button.setText("Open run" if n <= 1 else f"Open {n} runs together")
+        if n > 1:
+            self.note.setText(
+                f"{n} runs selected: they open together, each fitted on its own and combined "
+                "by fixed effects."
+            )
+
     def open_selected(self, background: bool = True) -> bool:
-        r = self.selected_run()
-        if r is None:
+        runs = self.selected_runs()
+        if not runs:
             self.note.setText("Select a run first.")
             return False
-        return self.open_row(self.study.runs.index(r), background)
+        if len(runs) > 1:
+            return self.open_rows([self.study.runs.index(r) for r in runs], background)
+        return self.open_row(self.study.runs.index(runs[0]), background)
+
+    def open_rows(self, rows: list[int], background: bool = True) -> bool:
+        """Open several runs of one subject together (the first shown, the others added)."""
+        from voxelscope.gui.runs import open_runs
+
+        runs = [r for r in (self.model.run_at(n) for n in rows) if r is not None]
+        subjects = sorted({r.subject for r in runs})
+        if len(subjects) > 1:
+            self.note.setText(
+                "Runs are combined within one subject; the selection has subjects "
+                f"{', '.join(subjects)}. Select the runs of one subject."
+            )
+            return False
+        ok = open_runs(self.window_, [str(r.path) for r in runs], background=background)
+        self.note.setText(
+            f"Opening {len(runs)} runs of sub-{subjects[0]}…"
+            if ok
+            else (self.window_.last_error or "")
+        )
+        return ok
 
     def open_row(self, row: int, background: bool = True) -> bool:
         """Open the run of ``row`` in the window (its companions are found again there)."""
