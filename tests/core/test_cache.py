@@ -23,6 +23,8 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from voxelscope.core import cache
 from voxelscope.core.cache import (
@@ -861,3 +863,33 @@ def test_run_too_big_for_cache_and_memory_is_read_from_the_file(tmp_path, monkey
     assert sum("do not fit in memory" in w for w in run.warnings) == 1
     np.testing.assert_array_equal(_all_series(run), data.reshape(-1, 20))
     np.testing.assert_array_equal(run.timeseries((8, 7, 6)), data[8, 7, 6])
+
+
+@settings(max_examples=30)
+@given(
+    which=st.sampled_from(["rows", "summary", "meta"]),
+    where=st.floats(0, 1),
+    mask=st.integers(1, 255),
+)
+def test_any_flipped_byte_never_changes_a_served_value(tmp_path_factory, which, where, mask):
+    """Fault injection: one byte of any cache file XOR-ed with any mask. Every served value
+    still equals nibabel's; a damaged rows or summary file is said exactly once (a metadata
+    change that leaves the same JSON, e.g. one whitespace for another, may pass unsaid)."""
+    import shutil
+
+    base = tmp_path_factory.mktemp("flip")
+    path = base / "r.nii.gz"
+    _write_gz(path, 77, shape=(6, 5, 4, 9))
+    cdir = base / "c"
+    open_run(path, cache_dir=cdir)
+    rows, summary, meta = _entry(cdir)
+    target = {"rows": rows, "summary": summary, "meta": meta}[which]
+    blob = bytearray(target.read_bytes())
+    at = min(len(blob) - 1, int(where * len(blob)))
+    blob[at] ^= mask
+    target.write_bytes(bytes(blob))
+    run = open_run(path, cache_dir=cdir)
+    np.testing.assert_allclose(_all_series(run), _ref(path), rtol=1e-6, atol=1e-5)
+    said = sum("is damaged" in w for w in run.warnings)
+    assert said == 1 if which != "meta" else said <= 1
+    shutil.rmtree(base)
