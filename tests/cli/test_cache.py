@@ -85,3 +85,25 @@ def test_fit_on_a_damaged_cache_gives_the_same_numbers_and_says_so(tmp_path, cap
     assert again["fits"] == clean["fits"]
     said = [w for w in again["warnings"] if "is damaged" in w and "rebuilt" in w]
     assert len(said) == 1
+
+
+def test_big_cache_is_announced_on_stderr_before_the_fit(tmp_path, capsys, monkeypatch):
+    """Issue 11 item 8 on the command line: the line with the size reaches stderr as the
+    cache is about to be written (not only with the warnings at the end)."""
+    import shutil
+
+    from voxelscope.core import cache
+
+    monkeypatch.setattr(cache, "ANNOUNCE_BYTES", 1)
+    sample = Path(__file__).resolve().parents[2] / "sample_data" / "study"
+    prep = sample / "derivatives" / "prep" / "sub-demo" / "func"
+    stem = "sub-demo_task-tonetap_run-1"
+    for path in (
+        prep / f"{stem}_space-phantom_desc-preproc_bold.nii.gz",
+        sample / "sub-demo" / "func" / f"{stem}_events.tsv",
+    ):
+        shutil.copy(path, tmp_path / path.name)
+    run = tmp_path / f"{stem}_space-phantom_desc-preproc_bold.nii.gz"
+    assert main(["fit", str(run), "--voxel", "6", "23", "15", "--format", "json"]) == 0
+    err = capsys.readouterr().err
+    assert err.count("cache in") == 1 and "voxelscope: " in err and " MB cache in " in err
