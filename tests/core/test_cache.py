@@ -893,3 +893,28 @@ def test_any_flipped_byte_never_changes_a_served_value(tmp_path_factory, which, 
     said = sum("is damaged" in w for w in run.warnings)
     assert said == 1 if which != "meta" else said <= 1
     shutil.rmtree(base)
+
+
+def test_mask_file_given_to_the_loader_is_kept_by_the_first_build(tmp_path, monkeypatch):
+    """The one way in passes a given mask to the first build: its voxels are cached at
+    once (no rebuild, no file reads), even where it reaches into noisy background."""
+    from voxelscope.core.loader import InputRequest, load_inputs
+
+    data, brain = _phantom((16, 14, 12, 20), background=20.0)
+    path = _save(tmp_path / "sub-x_task-y_bold.nii.gz", data)
+    wide = np.zeros(brain.shape, np.uint8)
+    wide[2:14, 2:12, 2:10] = 1
+    mask_path = tmp_path / "wide_mask.nii.gz"
+    nib.save(nib.Nifti1Image(wide, nib.load(str(path)).affine), str(mask_path))
+    builds = []
+    real = cache._build
+    monkeypatch.setattr(cache, "_build", lambda *a, **k: builds.append(1) or real(*a, **k))
+    got = load_inputs(
+        InputRequest(run=path, mask=mask_path, tr=2.0, use_cache=True, events_required=False)
+    )
+    run = got.run
+    assert run.storage == "cache" and run.mask_source == str(mask_path)
+    assert builds == [1] and not any("given mask" in w for w in got.warnings)
+    flat = np.flatnonzero(run.mask())
+    assert (run._store._pos[flat] >= 0).all()
+    np.testing.assert_array_equal(run.timeseries_many(flat), data.reshape(-1, 20)[flat])

@@ -373,6 +373,17 @@ def load_inputs(
         from .images import load_nifti
 
         load_nifti(resolved.mask, "mask")  # header only: unreadable masks fail now
+    keep = None
+    if resolved.mask is not None:
+        mask_path = resolved.mask
+
+        def keep(shape: tuple[int, int, int], affine: np.ndarray) -> np.ndarray:
+            """The given mask on the run's grid, for the cache to keep its voxels."""
+            from .images import load_on_grid
+
+            m = load_on_grid(mask_path, (shape, affine), order=0, warnings=[])
+            return np.isfinite(m) & (m != 0)
+
     run = open_run(
         request.run,
         tr=request.tr,
@@ -380,6 +391,7 @@ def load_inputs(
         progress=progress,
         sidecars=resolved.companions.sidecars,
         notify=notify,
+        keep=keep,
     )
     mask_source = "intensity"
     mask_notes: list[str] = []

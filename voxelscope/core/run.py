@@ -968,6 +968,7 @@ def open_run(
     cache_dir: str | os.PathLike[str] | None = None,
     sidecars: Sequence[str | os.PathLike[str]] | None = None,
     notify: Callable[[str], None] | None = None,
+    keep: Callable[[tuple[int, int, int], np.ndarray], np.ndarray] | None = None,
 ) -> Run:
     """Open a 4D NIfTI run for fast voxel access.
 
@@ -992,6 +993,10 @@ def open_run(
     notify : callable, optional
         Called with a line to show at once (a big cache announced before it is written);
         without it the line joins :attr:`Run.warnings`.
+    keep : callable, optional
+        ``keep(shape, affine)`` -> bool mask on the run's grid: voxels the cache of a
+        compressed run must hold besides its own choice (a brain mask given from a file,
+        applied later with :meth:`Run.set_mask`).
 
     Returns
     -------
@@ -1071,10 +1076,20 @@ def open_run(
         if progress is not None:
             progress(1.0)  # nothing to prepare: the file is mapped as it lies
     else:
+        select, must_keep = _cache_selection, _cache_must_keep
+        if keep is not None:
+            extra = np.asarray(keep((x, y, z), np.array(affine, dtype=np.float64)), dtype=bool)
+
+            def select(s: _cache.Summary) -> np.ndarray:
+                return _cache_selection(s) | extra
+
+            def must_keep(s: _cache.Summary) -> np.ndarray:
+                return _cache_must_keep(s) | extra
+
         opened = _cache.open_store(
             layout,
-            _cache_selection,
-            _cache_must_keep,
+            select,
+            must_keep,
             use_cache=use_cache,
             cache_dir=cache_dir,
             progress=progress,
