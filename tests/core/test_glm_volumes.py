@@ -213,3 +213,34 @@ def test_condition_number_warning():
     assert f"{np.linalg.cond(Xn):.2g}" in w and "trans_x, trans_x_copy" in w and "1e+04" in w
     ok = prepare(np.column_stack([rng.standard_normal(n), np.ones(n)]))
     assert ok.warnings == ()
+
+
+@pytest.mark.parametrize("noise", ["ols", "ar1"])
+def test_maps_leave_out_the_same_volumes(noise):
+    """A whole-volume map with left-out volumes equals, voxel by voxel, statsmodels on the
+    kept rows (OLS) or GLS over the kept volume times with the map's rho (AR(1))."""
+    from voxelscope.core.events import Condition
+    from voxelscope.core.maps import ArrayRun, compute_map
+    from voxelscope.core.model import Analysis, ModelSettings
+
+    rng = np.random.default_rng(21)
+    n, tr, shape = 120, 1.25, (3, 4, 2)
+    a = Analysis([Condition("tone", [5.0, 45.0, 85.0, 125.0], [15.0] * 4)], n, tr)
+    s = ModelSettings(noise=noise, drop_volumes=4)
+    x = a.design("gamma", s).column("tone")
+    data = (1000 + 30 * x + 5 * _ar1_noise(rng, n, 0.4, 24).T.reshape(*shape, n)).astype(np.float32)
+    data[..., :4] += 200  # what the dropped volumes hide
+    m = compute_map(ArrayRun(data), a, s, "gamma", mask=np.ones(shape, bool))
+    X = a.design("gamma", s).X
+    w = a.contrast_weights("gamma", s)
+    keep = np.arange(n) >= 4
+    assert m.df == n - 4 - X.shape[1]
+    for ijk in [(0, 0, 0), (1, 2, 1), (2, 3, 0)]:
+        y = data[ijk].astype(np.float64)
+        if noise == "ols":
+            ref = sm.OLS(y[keep], X[keep]).fit()
+        else:
+            times = np.flatnonzero(keep)
+            V = float(m.rho[ijk]) ** np.abs(times[:, None] - times[None, :])
+            ref = sm.GLS(y[keep], X[keep], sigma=V).fit()
+        assert m.t[ijk] == pytest.approx(float(np.squeeze(ref.t_test(w).tvalue)), rel=1e-5)
