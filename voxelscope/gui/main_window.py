@@ -35,7 +35,9 @@ from PySide6.QtWidgets import (
 )
 
 import voxelscope
+from voxelscope.core.confounds import read_confounds
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.loader import analysis_for
 from voxelscope.core.loader import open_events as core_open_events
 from voxelscope.gui.checks_panel import install_checks
 from voxelscope.gui.colours import stylesheet
@@ -248,6 +250,9 @@ class MainWindow(QMainWindow):
         self.events_action = QAction("Open &events…", self)
         self.events_action.triggered.connect(self.ask_events)
         m.addAction(self.events_action)
+        self.confounds_action = QAction("Open &confounds…", self)
+        self.confounds_action.triggered.connect(self.ask_confounds)
+        m.addAction(self.confounds_action)
         self.underlay_action = QAction("Open &underlay…", self)
         self.underlay_action.triggered.connect(self.ask_underlay)
         m.addAction(self.underlay_action)
@@ -346,6 +351,39 @@ class MainWindow(QMainWindow):
         )
         if path:
             self.open_events(path)
+
+    def ask_confounds(self) -> None:
+        if self.state.run is None or self.state.analysis is None:
+            self.show_error("Open a run with its events first (File > Open run).")
+            return
+        path, _ = QFileDialog.getOpenFileName(
+            self,
+            "Open confounds",
+            self._last_dir(),
+            "Confounds tables (*.tsv *.csv *.txt);;All files (*)",
+        )
+        if path:
+            self.open_confounds(path)
+
+    def open_confounds(self, path) -> bool:
+        """Use another confounds table for the open run: listed in Model, no column chosen
+        yet; the checks and the non-steady-state volumes use it at once."""
+        run, analysis = self.state.run, self.state.analysis
+        if run is None or analysis is None:
+            self.show_error("Open a run with its events first (File > Open run).")
+            return False
+        try:
+            conf = read_confounds(path)
+            new = analysis_for(run, list(analysis.conditions), conf)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        self.state.set_analysis(new, self.state.bundle.events_path, Path(path))
+        self._note(
+            f"Opened {Path(path).name}: {len(conf.file_columns)} columns, none chosen yet; "
+            "choose them in Model"
+        )
+        return True
 
     def ask_underlay(self) -> None:
         if self.state.run is None:
@@ -473,8 +511,9 @@ class MainWindow(QMainWindow):
         except VoxelscopeError as err:
             self.show_error(str(err))
             return False
-        self.state.set_analysis(
-            analysis, Path(path), None if confounds is None else Path(confounds)
+        kept = self.state.bundle.confounds_path if conf is not None else None
+        self.state.set_analysis(  # the confounds stay offered after new events
+            analysis, Path(path), kept if confounds is None else Path(confounds)
         )
         return True
 

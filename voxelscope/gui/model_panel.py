@@ -1,4 +1,5 @@
-"""Model: kernels, contrast, noise model, high-pass, confounds, onset shift, derivatives.
+"""Model: kernels, contrast, noise model, high-pass, onset shift, derivatives, volumes left
+out (first N, motion above a framewise displacement) and the confound picker.
 
 Every change goes to the state at once, which refits the current voxel. Widgets are set
 back from the state with their signals blocked, so a setting never loops.
@@ -20,20 +21,27 @@ from PySide6.QtWidgets import (
     QHBoxLayout,
     QLabel,
     QLineEdit,
-    QListWidget,
-    QListWidgetItem,
     QSpinBox,
     QVBoxLayout,
     QWidget,
 )
 
+from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.hrf import KERNEL_NAMES
 from voxelscope.gui.colours import kernel_colour
+from voxelscope.gui.confound_picker import ConfoundPicker
 from voxelscope.gui.sizing import compact_combo, compact_spin
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["ContrastEdit", "ModelPanel", "swatch_icon"]
 
+#: How the Volumes part sums up the reasons of Analysis.excluded_volumes.
+_REASONS = (
+    ("non-steady", "non-steady-state"),
+    ("one of the first", "dropped"),
+    ("marked in", "outlier columns"),
+    ("framewise", "motion"),
+)
 _WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_.\-]*$")
 
 
@@ -199,12 +207,51 @@ class ModelPanel(QWidget):
         compact_spin(self.highpass, 60, sample="2000 s")
         compact_spin(self.shift, 60, sample="-20.00 s")
 
+        volumes = QGroupBox("Volumes left out")
+        vf = QFormLayout(volumes)
+        vf.setLabelAlignment(Qt.AlignmentFlag.AlignLeft)
+        self.drop = QSpinBox()
+        self.drop.setObjectName("drop_volumes")
+        self.drop.setRange(0, 100)
+        self.drop.setSuffix(" volumes")
+        self.drop.setToolTip(
+            "Leave the first volumes out of the fit (volumes the confounds table marks as "
+            "non-steady-state are left out anyway)"
+        )
+        self.drop.valueChanged.connect(lambda v: self.state.update_settings(drop_volumes=int(v)))
+        vf.addRow("First", self.drop)
+        fd_row = QHBoxLayout()
+        self.censor = QDoubleSpinBox()
+        self.censor.setObjectName("censor_fd")
+        self.censor.setRange(0.05, 10.0)
+        self.censor.setDecimals(2)
+        self.censor.setSingleStep(0.05)
+        self.censor.setValue(0.5)
+        self.censor.setSuffix(" mm")
+        self.censor.setToolTip(
+            "Leave out volumes whose framewise displacement (confounds table) exceeds this"
+        )
+        self.censor_on = QCheckBox("on")
+        self.censor_on.setObjectName("censor_fd_on")
+        self.censor.valueChanged.connect(self._censor_changed)
+        self.censor_on.toggled.connect(self._censor_changed)
+        fd_row.addWidget(self.censor, 1)
+        fd_row.addWidget(self.censor_on)
+        vf.addRow("Motion above", fd_row)
+        self.left_out = QLabel("")
+        self.left_out.setObjectName("left_out_note")
+        self.left_out.setWordWrap(True)
+        vf.addRow(self.left_out)
+        lay.addWidget(volumes)
+        compact_spin(self.drop, 60, sample="100 volumes")
+        compact_spin(self.censor, 60, sample="10.00 mm")
+
         conf = QGroupBox("Confounds")
         fl = QVBoxLayout(conf)
-        self.confounds = QListWidget()
-        self.confounds.setObjectName("confound_list")
-        self.confounds.itemChanged.connect(self._confounds_changed)
-        fl.addWidget(self.confounds)
+        self.picker = ConfoundPicker()
+        self.picker.chosen_changed.connect(self._confounds_changed)
+        self.confounds = self.picker.list
+        fl.addWidget(self.picker, 1)
         self.confounds_note = QLabel("")
         self.confounds_note.setObjectName("hint")
         self.confounds_note.setWordWrap(True)
@@ -227,17 +274,30 @@ class ModelPanel(QWidget):
         self.highpass.setEnabled(not none)
         self.state.update_settings(highpass_s=None if none else float(self.highpass.value()))
 
-    def _confounds_changed(self, _item) -> None:
-        names = []
-        for row in range(self.confounds.count()):
-            item = self.confounds.item(row)
-            if item.checkState() == Qt.CheckState.Checked:
-                names.append(item.text())
+    def _confounds_changed(self, names) -> None:
+        self.state.update_settings(confound_columns=tuple(names))
+
+    def _censor_changed(self, *_args) -> None:
+        on = self.censor_on.isChecked()
+        self.censor.setEnabled(on)
+        self.state.update_settings(censor_fd_mm=float(self.censor.value()) if on else None)
+
+    def _left_out_text(self, s) -> str:
         analysis = self.state.analysis
-        all_names = () if analysis is None else analysis.confound_names
-        self.state.update_settings(
-            confound_columns=None if tuple(names) == tuple(all_names) else tuple(names)
-        )
+        if analysis is None:
+            return ""
+        try:
+            ex = analysis.excluded_volumes(s)
+        except VoxelscopeError as err:
+            return str(err)
+        if not ex:
+            return "Every volume enters the fit."
+        kinds: dict[str, int] = {}
+        for why in ex.values():
+            key = next((k for p, k in _REASONS if why.startswith(p)), "other")
+            kinds[key] = kinds.get(key, 0) + 1
+        what = ", ".join(f"{k} {v}" for k, v in kinds.items())
+        return f"{len(ex)} of {analysis.n_volumes} volumes left out ({what})."
 
     # ------------------------------------------------------------------ state events
 
@@ -253,17 +313,17 @@ class ModelPanel(QWidget):
         else:
             self.contrast.setPlaceholderText("open an events file first")
             self.contrast_hint.setText("")
-        self.confounds.blockSignals(True)
-        self.confounds.clear()
-        for n in () if analysis is None else analysis.confound_names:
-            item = QListWidgetItem(n)
-            item.setFlags(item.flags() | Qt.ItemFlag.ItemIsUserCheckable)
-            item.setCheckState(Qt.CheckState.Checked)
-            self.confounds.addItem(item)
-        self.confounds.blockSignals(False)
+        self.picker.set_table(None if analysis is None else analysis.confounds)
         has_conf = analysis is not None and bool(analysis.confound_names)
-        self.confounds_note.setText("" if has_conf else "No confounds file for this run.")
-        self.confounds.setVisible(has_conf)
+        self.confounds_note.setText(
+            "" if has_conf else "No confounds table for this run (File > Open confounds)."
+        )
+        self.picker.setVisible(has_conf)
+        has_fd = has_conf and "framewise_displacement" in analysis.confound_names
+        self.censor_on.setEnabled(has_fd)
+        self.censor_on.setToolTip(
+            "" if has_fd else "The confounds table has no framewise_displacement column"
+        )
         self._on_settings(self.state.settings)
 
     def _on_settings(self, s) -> None:
@@ -275,7 +335,9 @@ class ModelPanel(QWidget):
             self.highpass_none,
             self.shift,
             self.derivatives,
-            self.confounds,
+            self.drop,
+            self.censor,
+            self.censor_on,
         ]
         for w in widgets:
             w.blockSignals(True)
@@ -291,10 +353,16 @@ class ModelPanel(QWidget):
             self.shift.setValue(float(s.onset_shift_s))
             self.derivatives.setCurrentIndex(max(0, self.derivatives.findData(int(s.derivatives))))
             chosen = s.confound_columns
-            for row in range(self.confounds.count()):
-                item = self.confounds.item(row)
-                on = chosen is None or item.text() in chosen
-                item.setCheckState(Qt.CheckState.Checked if on else Qt.CheckState.Unchecked)
+            analysis = self.state.analysis
+            if chosen is None:
+                chosen = () if analysis is None else analysis.confound_names
+            self.picker.set_chosen(chosen)
+            self.drop.setValue(int(s.drop_volumes))
+            self.censor_on.setChecked(s.censor_fd_mm is not None)
+            self.censor.setEnabled(s.censor_fd_mm is not None)
+            if s.censor_fd_mm is not None:
+                self.censor.setValue(float(s.censor_fd_mm))
+            self.left_out.setText(self._left_out_text(s))
             if (
                 self.contrast.text().strip() != (s.contrast or "")
                 and not self.state.contrast_problem

@@ -1,6 +1,8 @@
 """Signal: the voxel's time series, each kernel's fitted signal and the residuals.
 
-Time runs in seconds (volume ``n`` at ``n * TR + reference time``). Condition blocks (as the
+Time runs in seconds (volume ``n`` at ``n * TR + reference time``). Volumes left out of the
+fit (non-steady-state, censored) sit on grey bands as hollow grey points, outside the
+autoscaled range; their residuals are not drawn. Condition blocks (as the
 model places them, after any onset shift) are light bands, one hue per condition. Values
 are in data units or in percent signal change relative to the voxel's mean
 (``100 * (y - mean) / mean``; residuals ``100 * r / mean``), a common practice.
@@ -28,12 +30,17 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.events import shift_conditions
 from voxelscope.core.hrf import KERNEL_NAMES
 from voxelscope.gui.colours import colours, condition_colour, kernel_colour
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["SignalPanel", "to_percent"]
+
+#: Left-out volumes (non-steady-state, censored): a neutral grey band and hollow points.
+_LEFT_OUT_BAND = (120, 120, 120, 60)
+_LEFT_OUT_EDGE = "#8a8a8a"
 
 
 def to_percent(values: np.ndarray, mean: float, centre: bool = True) -> np.ndarray:
@@ -211,6 +218,22 @@ class SignalPanel(QWidget):
         self.plot.getViewBox().sigYRangeChanged.connect(
             lambda _vb, rng: self._bands.set_y(float(rng[0]), float(rng[1]))
         )
+        # left-out volumes: grey bands on both plots and hollow grey points, kept out of the
+        # y range so a large non-steady-state transient does not squash the rest
+        self.left_out_points = pg.PlotDataItem(
+            [],
+            [],
+            pen=None,
+            symbol="o",
+            symbolSize=6,
+            symbolPen=pg.mkPen(_LEFT_OUT_EDGE, width=1),
+            symbolBrush=pg.mkBrush("#ffffff"),
+        )
+        self.left_out_points.setZValue(6)
+        self.plot.addItem(self.left_out_points, ignoreBounds=True)
+        self._left_bands: list[tuple[pg.PlotItem, pg.LinearRegionItem]] = []
+        self._left_key = None
+        self.left_out: np.ndarray = np.zeros(0, dtype=int)
         self._band_key = None
         self._label_key: bool | None = None
         self._x_span: tuple[float, float] | None = None
@@ -282,8 +305,42 @@ class SignalPanel(QWidget):
                     rects.append((float(on), float(on + max(du, analysis.tr * 0.25)), col))
         self._bands.set_bands(rects)
 
+    def _update_left_out(self, run, analysis) -> np.ndarray:
+        """Grey bands over the volumes left out of the fit; returns their indices."""
+        left = np.zeros(0, dtype=int)
+        if analysis is not None and run is not None:
+            try:
+                left = np.array(sorted(analysis.excluded_volumes(self.state.settings)), int)
+            except VoxelscopeError:
+                pass
+        key = (id(analysis), tuple(left.tolist()), float(run.tr) if run is not None else None)
+        if key == self._left_key:
+            return left
+        self._left_key = key
+        for plot, band in self._left_bands:
+            plot.removeItem(band)
+        self._left_bands = []
+        if left.size:
+            t = self._times(run)
+            half = 0.5 * float(run.tr)
+            brush = pg.mkBrush(_LEFT_OUT_BAND)
+            # one band per run of consecutive volumes
+            breaks = np.flatnonzero(np.diff(left) > 1) + 1
+            for part in np.split(left, breaks):
+                lo, hi = float(t[part[0]]) - half, float(t[part[-1]]) + half
+                for plot in (self.plot, self.resid):
+                    band = pg.LinearRegionItem(
+                        values=(lo, hi), movable=False, brush=brush, pen=pg.mkPen(None)
+                    )
+                    band.setZValue(-5)
+                    band.setToolTip("left out of the fit")
+                    plot.addItem(band, ignoreBounds=True)
+                    self._left_bands.append((plot, band))
+        return left
+
     def _on_fits(self, fits) -> None:
         run, _analysis, y, fits = self._shown()
+        self.left_out = self._update_left_out(run, _analysis)
         if self.run_box.isVisible() and self.run_box.currentIndex() != self.state.signal_run:
             self.run_box.setCurrentIndex(self.state.signal_run)
         self._update_bands()
@@ -304,8 +361,15 @@ class SignalPanel(QWidget):
         def scale(v, centre=True):
             return to_percent(v, mean, centre) if pct else v
 
+        left = self.left_out
         ys = scale(y)
-        self.data_curve.setData(t, ys)
+        if left.size:  # left-out volumes: hollow grey points, outside the y range
+            ys = np.array(ys, dtype=float)
+            self.left_out_points.setData(t[left], ys[left])
+            ys[left] = np.nan
+        else:
+            self.left_out_points.setData([], [])
+        self.data_curve.setData(t, ys, connect="finite")
         shown = {}
         if fits is not None:
             for f in fits.fits:
@@ -318,9 +382,13 @@ class SignalPanel(QWidget):
                 self.resid_curves[name].setData([], [])
             else:
                 top.append(scale(f.fitted))
-                bottom.append(scale(f.residuals, centre=False))
+                r = scale(f.residuals, centre=False)
+                if left.size:  # left-out volumes have no residual in the fit: greyed gap
+                    r = np.array(r, dtype=float)
+                    r[left] = np.nan
+                bottom.append(r)
                 curve.setData(t, top[-1])
-                self.resid_curves[name].setData(t, bottom[-1])
+                self.resid_curves[name].setData(t, r, connect="finite")
         if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
             self._label_key = pct
             self.plot.setLabel(
