@@ -15,7 +15,6 @@ import re
 
 from PySide6.QtCore import Qt, Signal
 from PySide6.QtWidgets import (
-    QGridLayout,
     QHBoxLayout,
     QLabel,
     QLineEdit,
@@ -33,6 +32,7 @@ __all__ = ["SET_BUTTONS", "ConfoundPicker"]
 
 #: The one-click sets, in button order.
 SET_BUTTONS = ("motion6", "motion12", "motion24", "acompcor5", "csf", "wm", "global", "outliers")
+_SET_ROWS = (SET_BUTTONS[:3], SET_BUTTONS[3:7], SET_BUTTONS[7:])
 _WILD = re.compile(r"[*?\[]")
 
 
@@ -54,17 +54,21 @@ class ConfoundPicker(QWidget):
         self.filter.setClearButtonEnabled(True)
         self.filter.textChanged.connect(self._apply_filter)
         lay.addWidget(self.filter)
-        sets = QGridLayout()
-        sets.setSpacing(3)
+        # rows of buttons (not a grid), so the part stays narrow in a small window
         self.set_buttons: dict[str, QPushButton] = {}
-        for i, name in enumerate(SET_BUTTONS):
-            b = QPushButton(name)
-            b.setObjectName(f"confound_set_{name}")
-            b.setToolTip(f"Add the {name} columns")
-            b.clicked.connect(lambda _c=False, n=name: self.add_set(n))
-            sets.addWidget(b, i // 4, i % 4)
-            self.set_buttons[name] = b
-        lay.addLayout(sets)
+        for names in _SET_ROWS:
+            line = QHBoxLayout()
+            line.setSpacing(3)
+            for name in names:
+                b = QPushButton(name)
+                b.setObjectName(f"confound_set_{name}")
+                b.setToolTip(f"Add the {name} columns")
+                b.setProperty("compact", True)
+                b.clicked.connect(lambda _c=False, n=name: self.add_set(n))
+                line.addWidget(b)
+                self.set_buttons[name] = b
+            line.addStretch(1)
+            lay.addLayout(line)
         row = QHBoxLayout()
         self.all_button = QPushButton("All shown")
         self.all_button.setObjectName("confound_all")
@@ -73,9 +77,12 @@ class ConfoundPicker(QWidget):
         self.none_button = QPushButton("None")
         self.none_button.setObjectName("confound_none")
         self.none_button.setToolTip("Choose no column")
+        for b in (self.all_button, self.none_button):
+            b.setProperty("compact", True)
         self.none_button.clicked.connect(lambda: self.set_chosen((), emit=True))
         self.count = QLabel("")
         self.count.setObjectName("confound_count")
+        self.count.setWordWrap(True)
         row.addWidget(self.all_button)
         row.addWidget(self.none_button)
         row.addStretch(1)

@@ -213,13 +213,13 @@ class ModelPanel(QWidget):
         self.drop = QSpinBox()
         self.drop.setObjectName("drop_volumes")
         self.drop.setRange(0, 100)
-        self.drop.setSuffix(" volumes")
+        self.drop.setSuffix(" vol")
         self.drop.setToolTip(
             "Leave the first volumes out of the fit (volumes the confounds table marks as "
             "non-steady-state are left out anyway)"
         )
         self.drop.valueChanged.connect(lambda v: self.state.update_settings(drop_volumes=int(v)))
-        vf.addRow("First", self.drop)
+        vf.addRow("Drop first", self.drop)
         fd_row = QHBoxLayout()
         self.censor = QDoubleSpinBox()
         self.censor.setObjectName("censor_fd")
@@ -229,7 +229,8 @@ class ModelPanel(QWidget):
         self.censor.setValue(0.5)
         self.censor.setSuffix(" mm")
         self.censor.setToolTip(
-            "Leave out volumes whose framewise displacement (confounds table) exceeds this"
+            "Leave out volumes whose framewise displacement (FD, from the confounds table) "
+            "exceeds this"
         )
         self.censor_on = QCheckBox("on")
         self.censor_on.setObjectName("censor_fd_on")
@@ -237,13 +238,13 @@ class ModelPanel(QWidget):
         self.censor_on.toggled.connect(self._censor_changed)
         fd_row.addWidget(self.censor, 1)
         fd_row.addWidget(self.censor_on)
-        vf.addRow("Motion above", fd_row)
+        vf.addRow("FD above", fd_row)
         self.left_out = QLabel("")
         self.left_out.setObjectName("left_out_note")
         self.left_out.setWordWrap(True)
         vf.addRow(self.left_out)
         lay.addWidget(volumes)
-        compact_spin(self.drop, 60, sample="100 volumes")
+        compact_spin(self.drop, 60, sample="100 vol")
         compact_spin(self.censor, 60, sample="10.00 mm")
 
         conf = QGroupBox("Confounds")
