@@ -362,3 +362,46 @@ def test_fit_json_states_tail_z_and_neglog10p(tmp_path, capsys):
             np.testing.assert_allclose(
                 f["z"], stats.norm.isf(stats.t.sf(f["t"], f["df"])), rtol=1e-8
             )
+
+
+def _derivative_tree(tmp_path, rng):
+    """raw/ with events; raw/derivatives/prep/ with a preprocessed run (BIDS layout)."""
+    raw = tmp_path / "raw"
+    (raw / "sub-01" / "func").mkdir(parents=True)
+    (raw / "dataset_description.json").write_text('{"Name": "r", "BIDSVersion": "1.8"}')
+    dfunc = raw / "derivatives" / "prep" / "sub-01" / "func"
+    dfunc.mkdir(parents=True)
+    (raw / "derivatives" / "prep" / "dataset_description.json").write_text(
+        '{"Name": "p", "DatasetType": "derivative"}'
+    )
+    data = 500 + rng.standard_normal((5, 6, 4, T)) * 5
+    path, events = write_run(dfunc, data, TR, name="sub-01_task-x_desc-preproc_bold.nii")
+    moved = raw / "sub-01" / "func" / "sub-01_task-x_events.tsv"
+    events.rename(moved)
+    return raw, path, moved
+
+
+@pytest.mark.parametrize(
+    "case, needle",
+    [
+        ("description", "dataset_description.json: the dataset description is not valid JSON"),
+        ("two-events", "2 events files match this run"),
+        ("start-time", "StartTime 9 must be a number of seconds from 0 up to but not including"),
+    ],
+)
+def test_study_bad_input_one_line_exit_2(tmp_path, capsys, case, needle):
+    """Bad input from a BIDS study (issue 10): one line naming the file, exit code 2."""
+    raw, path, events = _derivative_tree(tmp_path, np.random.default_rng(8))
+    assert main(["fit", str(path), "--voxel", "1", "1", "1", "--format", "json"]) == 0
+    assert json.loads(capsys.readouterr().out)["companions"]["events"] == str(events)
+    if case == "description":
+        (raw / "derivatives" / "prep" / "dataset_description.json").write_text("{oops")
+    elif case == "two-events":
+        (events.parent / "sub-01_task-x_desc-old_events.tsv").write_text(events.read_text())
+    else:
+        path.with_name("sub-01_task-x_desc-preproc_bold.json").write_text(
+            '{"SliceTimingCorrected": true, "StartTime": 9}'
+        )
+    code = main(["fit", str(path), "--voxel", "1", "1", "1"])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and needle in err, err

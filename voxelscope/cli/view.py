@@ -60,6 +60,15 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--map", metavar="FILE", dest="stat_map", help="statistic map overlay on any grid"
     )
     p.add_argument("--tr", type=float, metavar="SECONDS")
+    p.add_argument(
+        "--mask",
+        metavar="FILE|auto",
+        help="brain mask (default: the run's desc-brain_mask when found, else 'auto', the "
+        "intensity rule)",
+    )
+    p.add_argument(
+        "--bids-root", metavar="DIR", help="the raw BIDS dataset a derivative run comes from"
+    )
     g = p.add_mutually_exclusive_group()
     g.add_argument("--voxel", nargs=3, type=int, metavar=("I", "J", "K"))
     g.add_argument("--mm", nargs=3, type=float, metavar=("X", "Y", "Z"))
@@ -159,6 +168,8 @@ def run_view(args: argparse.Namespace) -> int:
         anat=args.anat,
         stat_map=args.stat_map,
         tr=args.tr,
+        mask=args.mask,
+        bids_root=args.bids_root,
         voxel=tuple(args.voxel) if args.voxel else None,
         mm=tuple(args.mm) if args.mm else None,
         screenshot=args.screenshot,

@@ -289,6 +289,36 @@ class Inputs:
         parts.append(f"regressors sampled at {run.reference_time_s:g} s ({run.reference_source})")
         return "; ".join(parts)
 
+    def status_line(self) -> str:
+        """A short line for the window's status bar: the files used, by name.
+
+        Examples
+        --------
+        >>> from nibabel.testing import data_path
+        >>> got = load_inputs(
+        ...     InputRequest(Path(data_path) / "functional.nii", events_required=False)
+        ... )
+        >>> got.status_line()
+        'no events; no sidecar; intensity mask; regressors at 0 s into each TR'
+        """
+        used = self.used_files()
+        parts = [f"events {Path(used['events']).name}" if used["events"] else "no events"]
+        n = len(used["sidecars"])
+        parts.append(
+            "no sidecar"
+            if n == 0
+            else (f"sidecar {Path(used['sidecars'][0]).name}" if n == 1 else f"{n} sidecars")
+        )
+        if used["confounds"]:
+            parts.append("confounds table")
+        parts.append(f"mask {Path(used['mask']).name}" if used["mask"] else "intensity mask")
+        run = self.run
+        ref = f"regressors at {run.reference_time_s:g} s into each TR"
+        if run.reference_source.startswith("StartTime"):
+            ref += " (StartTime)"
+        parts.append(ref)
+        return "; ".join(parts)
+
 
 def analysis_for(
     run,

@@ -160,6 +160,8 @@ def launch(
     recovery: bool = True,
     force: bool = False,
     add_runs: tuple = (),
+    mask: str | None = None,
+    bids_root: str | None = None,
 ) -> int:
     """Open the inspection window; with ``screenshot``, render it to a PNG and return.
 
@@ -197,6 +199,8 @@ def launch(
     add_runs : sequence of path
         Other runs of the same subject, added after ``run`` (File ▸ Add runs…): each is
         fitted at the same place and the runs are combined by fixed effects.
+    mask, bids_root : optional
+        As on the command line (``--mask FILE|auto``, ``--bids-root DIR``).
 
     Returns
     -------
@@ -261,8 +265,9 @@ def launch(
                 return 2
         elif run is not None:
             ok = window.open_run(
-                run, events, confounds, anat, stat_map, tr, voxel, mm, background=False
-            )
+                run, events, confounds, anat, stat_map, tr, voxel, mm, background=False,
+                mask=mask, bids_root=bids_root,
+            )  # fmt: skip
             if not ok:
                 _print_errors(window.last_error)
                 window.close()
@@ -324,7 +329,10 @@ def launch(
             window.after_open = chained
     elif run is not None:
         window.after_open = after
-        window.open_run(run, events, confounds, anat, stat_map, tr, voxel, mm, background=True)
+        window.open_run(
+            run, events, confounds, anat, stat_map, tr, voxel, mm, background=True,
+            mask=mask, bids_root=bids_root,
+        )  # fmt: skip
     elif show:
         window.show_mode.enter()
     return int(app.exec())

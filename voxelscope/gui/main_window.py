@@ -427,6 +427,8 @@ class MainWindow(QMainWindow):
         voxel=None,
         mm=None,
         background: bool = True,
+        mask=None,
+        bids_root=None,
     ) -> bool:
         """Open a run (and companions); in the background with progress unless told not to.
 
@@ -442,6 +444,8 @@ class MainWindow(QMainWindow):
             anat=anat,
             stat_map=stat_map,
             tr=tr,
+            mask=mask,
+            bids_root=bids_root,
         )
         self._pending_voxel, self._pending_mm = voxel, mm
         if not background:
@@ -494,11 +498,11 @@ class MainWindow(QMainWindow):
             hook, self.after_open = self.after_open, None
             hook()
         files = bundle.inputs.files_line() if bundle.inputs is not None else ""
-        self.run_label.setToolTip(plain_tooltip(files))
+        self.run_label.setToolTip(plain_tooltip(files.replace("; ", "\n")))
         make_plain(self)  # labels the parts added for this run show outside text literally
         if not bundle.warnings:
-            name = Path(bundle.run.path).name
-            self.statusBar().showMessage(f"Opened {name}" + (f" — {files}" if files else ""))
+            short = bundle.inputs.status_line() if bundle.inputs is not None else ""
+            self.statusBar().showMessage("Opened: " + short if short else "Opened")
         return True
 
     def open_events(self, path, confounds=None) -> bool:
@@ -622,8 +626,9 @@ class MainWindow(QMainWindow):
             self.setWindowTitle(f"voxelscope — {name}")
             x, y, z = run.shape
             vs = "×".join(f"{v:g}" for v in run.voxel_size)
+            short = name if len(name) <= 40 else f"{name[:22]}…{name[-17:]}"
             self.run_label.setText(
-                f"{name}   {x}×{y}×{z} × {run.n_volumes} volumes   {vs} mm   "
+                f"{short}   {x}×{y}×{z} × {run.n_volumes} volumes   {vs} mm   "
                 f"TR {run.tr:g} s   {''.join(run.axcodes)}"
             )
         else:
