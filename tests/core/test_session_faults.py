@@ -61,6 +61,7 @@ def test_every_bad_map_field_is_one_line_each(tmp_path):
         ({"map": {"kernel": "spline"}}, "field 'map.kernel' is 'spline'"),
         ({"marks": [{"x_mm": "nan", "y_mm": 0, "z_mm": 0}]}, "field 'marks' is not valid"),
         ({"files": {"run": {"path": 5}}}, "field 'files.run.path' must be text"),
+        ({"kernels": {"gamma": {"wobble": 2.0}}}, "field 'kernels.gamma' is not valid"),
         ({"files": {"run": {"path": "r.nii", "size": -4}}}, "field 'files.run.size' must not"),
     ],
 )

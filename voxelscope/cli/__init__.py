@@ -184,7 +184,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     if not argv:
         from .view import open_empty_window
 
-        return open_empty_window()
+        with quiet_libraries():
+            return open_empty_window()
     from ..core.outputs import input_scope
 
     out, err = sys.stdout, sys.stderr

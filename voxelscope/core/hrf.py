@@ -298,7 +298,9 @@ def get_kernel(name: str | Kernel, **params: float) -> Kernel:
     if key in ("doublegamma", "double gamma", "canonical"):
         key = "double-gamma"
     if key not in _KERNELS:
-        raise InputError(f"unknown kernel '{name}'; choose from {', '.join(KERNEL_NAMES)}")
+        from .inputs import excerpt
+
+        raise InputError(f"unknown kernel '{excerpt(name)}'; choose from {', '.join(KERNEL_NAMES)}")
     try:
         return _KERNELS[key](**params)
     except TypeError as exc:

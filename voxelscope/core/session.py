@@ -592,7 +592,14 @@ def session_from_json(
                     f"kernels.{excerpt(name)}", f"is not a kernel; use {', '.join(KERNEL_NAMES)}"
                 )
             params = c.obj(params, f"kernels.{name}")
-            kernels[name] = {k: c.number(v, f"kernels.{name}.{k}") for k, v in params.items()}
+            values = {k: c.number(v, f"kernels.{name}.{k}") for k, v in params.items()}
+            try:
+                from .hrf import get_kernel
+
+                get_kernel(name, **values)  # unknown parameter names, impossible values
+            except (InputError, TypeError, ValueError) as err:
+                raise c.fail(f"kernels.{name}", f"is not valid ({excerpt(err, 80)})") from None
+            kernels[name] = values
 
         c.collect(one_kernel)
 

@@ -289,7 +289,14 @@ class MainWindow(QMainWindow):
         return QGuiApplication.platformName() in ("offscreen", "minimal")
 
     def show_error(self, message: str) -> None:
-        """One line for the user: a dialog on screen, the status bar offscreen."""
+        """One line for the user: a dialog on screen, the status bar offscreen.
+
+        Each line is cut to 1000 characters, so a message that quotes file content stays
+        short; the text is shown as plain text.
+        """
+        message = "\n".join(
+            line if len(line) <= 1000 else line[:1000] + "…" for line in str(message).splitlines()
+        )
         self.statusBar().showMessage(message)
         self.last_error = message
         if not self.offscreen():
