@@ -375,3 +375,22 @@ def test_screenshot_does_not_record_recent_runs(tmp_path, capsys, monkeypatch):
     value = QSettings(ORGANISATION, APPLICATION).value("recent_runs", []) or []
     value = [value] if isinstance(value, str) else list(value)
     assert not any(str(run.name) in str(v) for v in value)
+
+
+def test_bad_session_prints_one_line_per_problem(tmp_path, capsys, monkeypatch):
+    import json
+
+    from voxelscope.core.session import Session, session_to_json
+
+    monkeypatch.setenv("QT_QPA_PLATFORM", "offscreen")
+    data = session_to_json(Session())
+    data["map"] = {"threshold": "abc", "opacity": 1e308, "colour_scale": "no-such-scale"}
+    data["voxel"] = [10**12, 0, 0]
+    bad = tmp_path / "bad.voxelscope.json"
+    bad.write_text(json.dumps(data))
+    png = tmp_path / "never.png"
+    assert main(["view", "--session", str(bad), "--screenshot", str(png)]) == 2
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if ln.strip()]
+    assert len(lines) == 4 and all(ln.startswith("voxelscope: error: ") for ln in lines), err
+    assert "Traceback" not in err and not png.exists()

@@ -112,3 +112,14 @@ def test_many_marks_stream_with_bounded_memory(demo, tmp_path, monkeypatch):  # 
     small, large = peak(12, "a"), peak(48, "b")
     assert large < 1.5 * small, (small, large)
     assert len(list((tmp_path / "b").glob("*.png"))) == 48
+
+
+def test_staging_left_by_a_killed_report_is_cleared_next_time(demo, tmp_path):  # noqa: F811
+    """A killed process cannot clean up: the next report into the same folder removes the
+    staging folder whose process is gone (pid 2**22 + 1 is above Linux's pid_max)."""
+    run, analysis, _, _ = demo
+    stale = tmp_path / f".out.{2**22 + 1}.abc.partial"
+    stale.mkdir()
+    (stale / "01-m0.png").write_bytes(b"half")
+    R.write_report(tmp_path / "out", run, analysis, SETTINGS, voxel=(1, 1, 1), scale=0.5)
+    assert not stale.exists()

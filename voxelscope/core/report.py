@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
+import glob
 import html
 import math
 import os
@@ -386,6 +387,24 @@ def _page_tail(
 _KEEP_SECTIONS = 50
 
 
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True
+    return True
+
+
+def _clear_stale_staging(out: Path) -> None:
+    """Remove staging folders of reports into ``out`` whose process was killed."""
+    for p in out.parent.glob(f".{glob.escape(out.name)}.*.partial"):
+        parts = p.name[len(out.name) + 2 :].split(".")
+        if parts and parts[0].isdigit() and not _pid_alive(int(parts[0])):
+            shutil.rmtree(p, ignore_errors=True)
+
+
 def _move_into_place(staging: Path, staged: list[Path], out: Path, force: bool) -> list[Path]:
     """Move the staged files into ``out``: the whole folder at once when it is new."""
     if not out.exists():
@@ -558,7 +577,12 @@ def write_report(
     # at the end: a report stopped by an error, a full disk or Ctrl+C leaves nothing behind.
     try:
         out.parent.mkdir(parents=True, exist_ok=True)
-        staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.", suffix=".partial", dir=out.parent))
+        _clear_stale_staging(out)
+        staging = Path(
+            tempfile.mkdtemp(
+                prefix=f".{out.name}.{os.getpid()}.", suffix=".partial", dir=out.parent
+            )
+        )
     except OSError as err:
         raise InputError(f"{out}: cannot create the report folder ({err.strerror})") from None
     staged: list[Path] = []
