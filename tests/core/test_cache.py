@@ -918,3 +918,21 @@ def test_mask_file_given_to_the_loader_is_kept_by_the_first_build(tmp_path, monk
     flat = np.flatnonzero(run.mask())
     assert (run._store._pos[flat] >= 0).all()
     np.testing.assert_array_equal(run.timeseries_many(flat), data.reshape(-1, 20)[flat])
+
+
+def test_two_threads_meeting_a_damaged_block_rebuild_once(tmp_path):
+    """A map in a worker thread and a click in the window can meet the same damaged block:
+    the entry is rebuilt once, both get nibabel's values, one warning."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 78)
+    open_run(path, cache_dir=tmp_path / "c")
+    rows, _, _ = _entry(tmp_path / "c")
+    _flip(rows, 5)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    with ThreadPoolExecutor(4) as pool:
+        results = list(pool.map(lambda _: _all_series(run), range(4)))
+    for got in results:
+        np.testing.assert_allclose(got, _ref(path), rtol=1e-6, atol=1e-5)
+    assert sum("is damaged" in w for w in run.warnings) == 1

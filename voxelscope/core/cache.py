@@ -733,19 +733,37 @@ class VoxelStore:
         self._said_file = False
 
     def _set(self, rows, stored, known_idx, known_val) -> None:
-        self._rows = rows
-        self.stored = stored
         n = self.layout.n_voxels
         pos = np.full(n, -1, dtype=np.int64 if n >= 2**31 else np.int32)
         if rows is not None:
             pos[stored] = np.arange(stored.size, dtype=pos.dtype)
-        self._pos = pos
         known = np.zeros(n, dtype=bool)
         known[known_idx] = True
-        self._known = known
         val = np.zeros(n, dtype=np.float32)
         val[known_idx] = known_val
-        self._val = val
+        # one assignment: a reader in another thread sees the old state or the new one
+        self._state = (rows, stored, pos, known, val)
+
+    @property
+    def _rows(self) -> _CheckedRows | None:
+        return self._state[0]
+
+    @property
+    def stored(self) -> np.ndarray:
+        """C-order flat index of each stored row."""
+        return self._state[1]
+
+    @property
+    def _pos(self) -> np.ndarray:
+        return self._state[2]
+
+    @property
+    def _known(self) -> np.ndarray:
+        return self._state[3]
+
+    @property
+    def _val(self) -> np.ndarray:
+        return self._state[4]
 
     @property
     def data(self) -> np.ndarray | None:
@@ -754,15 +772,17 @@ class VoxelStore:
 
     # ------------------------------------------------------------ reading
     def _guarded(self, fn: Callable[[], Any]) -> Any:
+        rows = self._rows
         try:
             return fn()
         except CacheCorrupt as err:
             if self._recover is None:
                 raise
             with self._lock:
-                fresh, line = self._recover(err)
-                self._take_over(fresh)
-                self.notes.append(line)
+                if self._rows is rows:  # not yet recovered by another thread
+                    fresh, line = self._recover(err)
+                    self._take_over(fresh)
+                    self.notes.append(line)
             return fn()
 
     def _take_over(self, fresh: VoxelStore) -> None:
@@ -819,20 +839,21 @@ class VoxelStore:
         out = np.empty((flat.size, self.n_volumes), dtype=np.float32)
         if flat.size == 0:
             return out
-        pos = self._pos[flat]
+        rows, _stored, pos_all, known_all, val_all = self._state
+        pos = pos_all[flat]
         have = pos >= 0
         if have.any():
             p = pos[have].astype(np.int64)
-            self._rows.check_rows(p)
+            rows.check_rows(p)
             order = np.argsort(p, kind="stable")
             tmp = np.empty((p.size, self.n_volumes), dtype=np.float32)
-            tmp[order] = self._rows.data[p[order]]
+            tmp[order] = rows.data[p[order]]
             out[have] = tmp
         rest = ~have
         if rest.any():
-            known = rest & self._known[flat]
+            known = rest & known_all[flat]
             if known.any():
-                out[known] = self._val[flat[known]][:, None]
+                out[known] = val_all[flat[known]][:, None]
             other = rest & ~known
             if other.any():
                 out[other] = self._from_file(flat[other])
@@ -891,11 +912,12 @@ class VoxelStore:
                 yield idx, rows.T
 
     def _block_of(self, idx: np.ndarray) -> np.ndarray:
-        p = self._pos[idx].astype(np.int64)
+        state = self._state
+        p = state[2][idx].astype(np.int64)
         lo, hi = int(p[0]), int(p[-1]) + 1
         if hi - lo == idx.size and np.all(np.diff(p) == 1):
-            self._rows.check_range(lo, hi)
-            rows = self._rows.data[lo:hi].view(np.ndarray)
+            state[0].check_range(lo, hi)
+            rows = state[0].data[lo:hi].view(np.ndarray)
             rows.flags.writeable = False  # a view of the cache itself
             return rows.T
         return self._gather(idx).T
@@ -904,11 +926,12 @@ class VoxelStore:
         return self._guarded(lambda: self._volume(t))
 
     def _volume(self, t: int) -> np.ndarray:
-        out = self._val.copy()
-        if self._rows is not None and self.stored.size:
-            self._rows.check_range(0, self.stored.size)
-            out[self.stored] = self._rows.data[:, t]
-        other = (self._pos < 0) & ~self._known
+        rows, stored, pos, known, val = self._state
+        out = val.copy()
+        if rows is not None and stored.size:
+            rows.check_range(0, stored.size)
+            out[stored] = rows.data[:, t]
+        other = (pos < 0) & ~known
         if other.any():
             self._say_file()
             for t0, _t1, v, _f in _stream_batches(self.layout, batch_bytes=1):
