@@ -91,3 +91,29 @@ def test_number_formats():
     assert format_value("p", 2e-7) == "2.00e-07"
     assert format_value("df", 210) == "210"
     assert format_value("t", float("nan")) == "–"
+
+
+def test_a_damaged_cache_met_after_loading_is_said_in_the_window(tmp_path, qtbot, monkeypatch):
+    """Issue 11 item 2 in the window: the cache block read by the first click fails its
+    checksum; the fit equals nibabel's data and the status line says the cache was rebuilt."""
+    import nibabel as nib
+    from conftest import _synthetic
+
+    from voxelscope.core import cache
+    from voxelscope.gui.loading import load_bundle
+    from voxelscope.gui.state import ViewerState
+
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "own-cache"))
+    files = _synthetic(tmp_path, np.eye(4), "damaged", gz=True)
+    open_run(files["run"], tr=2.0)  # builds the cache
+    (rows,) = cache.default_cache_dir().glob("vxs-*.rows")
+    blob = bytearray(rows.read_bytes())
+    blob[len(blob) // 2] ^= 0x55
+    rows.write_bytes(bytes(blob))
+    state = ViewerState()
+    said = []
+    state.message.connect(said.append)
+    state.set_bundle(load_bundle(files["run"], tr=2.0), voxel=(4, 5, 3))
+    ref = nib.load(str(files["run"])).get_fdata()
+    np.testing.assert_allclose(state.series, ref[4, 5, 3], rtol=1e-6)
+    assert sum("is damaged" in w and "rebuilt" in w for w in said) == 1

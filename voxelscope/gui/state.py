@@ -325,11 +325,22 @@ class ViewerState(QObject):
         except VoxelscopeError as err:
             self.message.emit(str(err))
             return False
+        self._say_later_run_lines(run)
         self.series = y
         self.fits = fits
         self._fit_runs()
         self.fits_changed.emit(fits)
         return True
+
+    def _say_later_run_lines(self, run) -> None:
+        """Show what the run said while it was read after loading (a cache block that
+        failed its checksum and was rebuilt, voxels read from the file), once each."""
+        loaded = set(self.bundle.warnings) if self.bundle is not None else set()
+        said = self.__dict__.setdefault("_later_lines", set())
+        for line in list(getattr(run, "warnings", ())):
+            if line not in loaded and line not in said:
+                said.add(line)
+                self.message.emit(line)
 
     # ------------------------------------------------------------------ several runs
 
