@@ -295,7 +295,7 @@ def test_control_characters_in_condition_names_do_not_reach_the_terminal(tmp_pat
     ("option", "says"),
     [
         (["--kernels", "fir", "--fir-bin", "1e9"], "--fir-bin must be at most 600 s"),
-        (["--kernels", "fir", "--fir-bins", "1000000000"], "--fir-bins must be at most 1000"),
+        (["--kernels", "fir", "--fir-window", "1e9"], "--fir-window must be at most 600 s"),
         (["--highpass", "1e-320"], "--highpass must be at least 1 s"),
         (["--onset-shift", "nan"], "--onset-shift must be a finite number of seconds"),
         (["--onset-shift", "inf"], "--onset-shift must be a finite number"),

@@ -405,3 +405,98 @@ def test_study_bad_input_one_line_exit_2(tmp_path, capsys, case, needle):
     code = main(["fit", str(path), "--voxel", "1", "1", "1"])
     err = capsys.readouterr().err.strip()
     assert code == 2 and len(err.splitlines()) == 1 and needle in err, err
+
+
+# ----------------------------------------------------------------------------- issue 13
+
+GAMBLE = (
+    "onset\tduration\ttrial_type\tgain\tloss\n"
+    "4\t3\tgamble\t10\t5\n16\t3\tgamble\t30\tn/a\n28\t3\tgamble\tn/a\t7\n40\t3\tgamble\t20\t2\n"
+    "52\t3\tgamble\t40\t9\n64\t3\tgamble\t15\t4\n76\t3\tgamble\t35\t6\n88\t3\tgamble\t25\t1\n"
+    "100\t3\tgamble\t5\t8\n112\t3\tgamble\t45\t3\n"
+)
+
+
+def test_modulators_from_the_command_line(tmp_path, capsys):
+    """--modulators adds CONDITION:MODULATOR columns, centred over the condition's events,
+    that a contrast can name; n/a counts go to stderr, one line per modulator. The
+    centred column is checked against one built here by hand (boxcar, TR 1.5: each 3 s
+    event covers two whole volume windows)."""
+    rng = np.random.default_rng(13)
+    path, events, _data = _write_run(tmp_path, rng)
+    events.write_text(GAMBLE)
+    argv = ["fit", str(path), "--voxel", "2", "2", "2", "--kernels", "boxcar"]
+    code = main(
+        [*argv, "--modulators", "gain,loss", "--contrast", "gamble:gain", "--format", "json"]
+    )
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    doc = json.loads(out.out)
+    f = doc["fits"][0]
+    assert f["columns"][:3] == ["gamble", "gamble:gain", "gamble:loss"]
+    assert f["weights"][:3] == [0.0, 1.0, 0.0]
+    gain = np.array([10, 30, np.nan, 20, 40, 15, 35, 25, 5, 45])
+    centred = np.where(np.isfinite(gain), gain - np.nanmean(gain), 0.0)
+    expect = np.zeros(T)
+    for on, c in zip(np.arange(4, 113, 12), centred):
+        v = int(on // TR)  # onsets 4, 16, ... sit 1 s into a 1.5 s window
+        expect[v] += c * 0.5 / TR  # 0.5 s of the first window
+        expect[v + 1] += c
+        expect[v + 2] += c * 1.0 / TR  # 1 s of the third window
+    np.testing.assert_allclose(np.asarray(f["design"])[:, 1], expect, atol=1e-9)
+    notes = doc["warnings"]  # JSON carries them; the table format prints them to stderr
+    assert sum("modulator 'gain' is n/a for 1 of 10 events" in e for e in notes) == 1
+    assert sum("modulator 'loss' is n/a for 1 of 10 events" in e for e in notes) == 1
+    assert main([*argv, "--modulators", "gain"]) == 0
+    err = capsys.readouterr().err.splitlines()
+    assert sum("modulator 'gain' is n/a for 1 of 10 events" in e for e in err) == 1
+
+
+@pytest.mark.parametrize(
+    ("extra", "needle"),
+    [
+        (["--amplitude-column", "gain"], "--modulators gain"),
+        (["--fir-bins", "12"], "--fir-window"),
+        (["--modulators", "gian"], "numeric columns: gain, loss"),
+        (["--condition-column", "hand"], "--condition-column"),
+        (["--modulators", "gain", "--contrast", "gamble:loss"], "'gamble:loss'"),
+    ],
+)
+def test_replaced_and_bad_event_options_one_line_exit_2(tmp_path, capsys, extra, needle):
+    rng = np.random.default_rng(14)
+    path, events, _data = _write_run(tmp_path, rng)
+    events.write_text(GAMBLE)
+    code = main(["fit", str(path), "--voxel", "1", "1", "1", *extra])
+    err = capsys.readouterr().err.strip()
+    assert code == 2 and len(err.splitlines()) == 1 and needle in err, err
+    assert "Traceback" not in err
+
+
+def test_onset_unit_volumes_and_condition_column(tmp_path, capsys):
+    """Onsets given as volume numbers: a warning names the TR factor; --onset-unit volumes
+    multiplies onsets and durations by the TR and gives the same design as seconds."""
+    rng = np.random.default_rng(15)
+    path, events, _data = _write_run(tmp_path, rng)
+    vols = "onset\tduration\ttrial_type\thand\n"
+    vols += "".join(f"{v}\t4\tpress\t{'LR'[i % 2]}\n" for i, v in enumerate(range(4, 86, 9)))
+    events.write_text(vols)
+    base = ["fit", str(path), "--voxel", "2", "2", "2", "--kernels", "gamma", "--format", "json"]
+    assert main(base) == 0
+    notes = " ".join(json.loads(capsys.readouterr().out)["warnings"])
+    assert "look like volume numbers" in notes and "TR (1.5 s)" in notes
+    assert main([*base, "--onset-unit", "volumes"]) == 0
+    out = capsys.readouterr()
+    assert "volume numbers" not in out.out
+    secs = "onset\tduration\ttrial_type\n" + "".join(
+        f"{v * TR:g}\t{4 * TR:g}\tpress\n" for v in range(4, 86, 9)
+    )
+    events2 = tmp_path / "seconds_events.tsv"
+    events2.write_text(secs)
+    assert main([*base, "--events", str(events2)]) == 0
+    ref = json.loads(capsys.readouterr().out)
+    np.testing.assert_allclose(
+        json.loads(out.out)["fits"][0]["design"], ref["fits"][0]["design"], atol=1e-12
+    )
+    assert main([*base, "--onset-unit", "volumes", "--condition-column", "hand"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["fits"][0]["columns"][:2] == ["L", "R"]

@@ -174,16 +174,18 @@ def test_amplitude_scales_the_regressor():
 
 
 def test_boxcar_regressor_and_brief_events():
-    """Boxcar: the stimulus itself; a brief event becomes one TR long (hrf docstring)."""
+    """Boxcar: the covered fraction of each TR window; a brief event lasts 1 s (issue 13)."""
     tr = 2.0
     d = build_design([Condition("c", [11.0], [6.0])], 20, tr, kernel="boxcar", highpass_s=None)
     x = d.column("c")
-    t = np.arange(20) * tr
-    assert_allclose(x[(t > 11.0) & (t < 17.0)], 1.0)
-    assert_allclose(x[(t < 11.0) | (t > 17.0)], 0.0)
+    # volume n covers [2n, 2n + 2) s; the event [11, 17) covers half of volume 5's window,
+    # all of 6 and 7 and half of 8 (written from the definition)
+    expected = np.zeros(20)
+    expected[5:9] = [0.5, 1.0, 1.0, 0.5]
+    assert_allclose(x, expected, atol=1e-12)
     brief = build_design([Condition("c", [11.0], [0.0])], 20, tr, kernel="boxcar")
-    assert brief.column("c").sum() == pytest.approx(1.0)  # one TR of height 1
-    assert brief.column("c")[6] == pytest.approx(1.0)  # the volume at 12 s sees it
+    assert brief.column("c").sum() * tr == pytest.approx(1.0)  # 1 s of stimulation
+    assert brief.column("c")[5] == pytest.approx(0.5)  # half of the volume's [10, 12) window
 
 
 # ----------------------------------------------------------------------------- derivatives, FIR
@@ -339,3 +341,155 @@ def test_fft_convolution_equals_direct_convolution(na, nb):
         got = _convolve_head(a, b, n)
         assert got.shape == (n,)
         assert_allclose(got, ref[:n], rtol=0, atol=1e-13 * np.abs(ref).max())
+
+
+# ----------------------------------------------------------------------------- issue 13
+
+
+def _coverage_by_hand(onsets, durations, weights, n, tr):
+    """Boxcar built here, independently: for each volume window [n TR, (n+1) TR), the
+    seconds of each event inside it (a zero-duration event lasting 1 s), over TR."""
+    x = np.zeros(n)
+    for on, du, w in zip(onsets, durations, weights):
+        du = du if du > 0 else 1.0
+        for v in range(n):
+            a, b = v * tr, (v + 1) * tr
+            x[v] += w * max(0.0, min(b, on + du) - max(a, on)) / tr
+    return x
+
+
+@given(
+    st.lists(
+        st.tuples(st.floats(0.0, 180.0), st.sampled_from([0.0, 0.1, 0.5, 0.72, 1.3, 4.0, 15.0])),
+        min_size=1,
+        max_size=25,
+    ),
+    st.sampled_from([0.72, 1.25, 2.0, 3.0]),
+)
+def test_boxcar_area_equals_stimulation_time(events, tr):
+    """Issue 13: sum(x) * TR equals the summed durations (0 s counting as 1 s) of events
+    inside the run, whatever their length against the TR; no brief event vanishes."""
+    n = math.ceil(200.0 / tr)  # the run lasts at least 200 s: every event ends inside it
+    on = np.array([e[0] for e in events])
+    du = np.array([e[1] for e in events])
+    d = build_design([Condition("c", on, du)], n, tr, kernel="boxcar", highpass_s=None)
+    x = d.column("c")
+    assert x.sum() * tr == pytest.approx(np.where(du > 0, du, 1.0).sum(), rel=1e-9, abs=1e-9)
+    assert_allclose(x, _coverage_by_hand(on, du, np.ones(on.size), n, tr), atol=1e-9)
+
+
+def test_brief_events_never_vanish_under_boxcar():
+    """The issue's cases: twenty 0.5 s events keep all 10 s; 0.5 s events every 9 s at
+    TR 2 all appear (each volume that holds one has a non-zero value)."""
+    on = np.arange(20) * 9.0 + 0.7
+    d = build_design([Condition("c", on, np.full(20, 0.5))], 100, 2.0, kernel="boxcar")
+    x = d.column("c")
+    assert x.sum() * 2.0 == pytest.approx(10.0)
+    assert all(x[int(o // 2.0)] > 0 for o in on)
+
+
+def test_modulator_columns_names_kinds_and_groups():
+    rng = np.random.default_rng(3)
+    gain = rng.uniform(5, 40, 12)
+    c = Condition("gamble", np.arange(12) * 12.0 + 4, np.full(12, 3.0), columns={"gain": gain})
+    d = build_design([c, TAP], 150, 1.25, kernel="gamma", derivatives=1, modulators=("gain",))
+    assert d.names[:6] == ("gamble", "gamble_dt", "gamble:gain", "gamble:gain_dt", "tap", "tap_dt")
+    assert d.kinds[:4] == ("condition", "derivative", "modulator", "derivative")
+    assert d.condition_columns["gamble:gain"] == (2, 3) and d.modulators == {
+        "gamble:gain": "gamble"
+    }
+    with pytest.raises(InputError, match="'RT'"):
+        build_design([c], 150, 1.25, modulators=("RT",))
+
+
+def test_modulator_column_against_hand_built_regressors():
+    """The modulator column equals the hand-built regressor: under boxcar, the covered
+    fraction of each window times the event's centred value (built here); under
+    double-gamma, the sum of one-event regressors weighted by the centred values
+    (linearity of convolution). Centring over this condition's events only."""
+    rng = np.random.default_rng(8)
+    n, tr = 160, 2.0
+    on = np.sort(rng.uniform(0, 300, 25))
+    du = rng.choice([0.0, 0.5, 3.0], 25)
+    gain = rng.uniform(-2, 9, 25)
+    other = Condition("cue", [50.0], [1.0], columns={"gain": [1000.0]})  # not in the centring
+    c = Condition("gamble", on, du, columns={"gain": gain})
+    centred = gain - gain.mean()
+    d = build_design([c, other], n, tr, kernel="boxcar", modulators=("gain",), highpass_s=None)
+    assert_allclose(d.column("gamble:gain"), _coverage_by_hand(on, du, centred, n, tr), atol=1e-9)
+    assert "cue:gain" not in d.names  # one event: constant, left out with a note
+    assert any("'cue'" in w and "left out" in w for w in d.warnings)
+    dg = build_design([c], n, tr, kernel="double-gamma", modulators=("gain",), highpass_s=None)
+    by_event = np.zeros(n)
+    for i in range(25):
+        one = build_design([Condition("e", [on[i]], [du[i]])], n, tr, highpass_s=None)
+        by_event += centred[i] * one.column("e")
+    assert_allclose(dg.column("gamble:gain"), by_event, atol=1e-10)
+    assert_allclose(dg.column("gamble"), by_event * 0 + dg.column("gamble"))  # main unchanged
+    plain = build_design([Condition("gamble", on, du)], n, tr, highpass_s=None)
+    assert_allclose(dg.column("gamble"), plain.column("gamble"), atol=1e-12)
+
+
+def test_modulated_fit_equals_statsmodels_on_a_design_built_here():
+    """t of 'gamble:gain' and 'gamble' equal statsmodels OLS t_test on a design built in
+    this test (hand boxcar coverage, centred gain, constant); reference: statsmodels."""
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(21)
+    n, tr = 150, 2.0
+    on = np.sort(rng.uniform(0, 280, 30))
+    du = np.full(30, 3.0)
+    gain = rng.uniform(1, 50, 30)
+    gain[[3, 11]] = np.nan  # n/a: the condition's mean
+    c = Condition("gamble", on, du, columns={"gain": gain})
+    ok = np.isfinite(gain)
+    centred = np.where(ok, gain - gain[ok].mean(), 0.0)
+    X = np.column_stack(
+        [
+            _coverage_by_hand(on, du, np.ones(30), n, tr),
+            _coverage_by_hand(on, du, centred, n, tr),
+            np.ones(n),
+        ]
+    )
+    y = 100 + X @ [2.0, 0.05, 0.0] + rng.standard_normal(n)
+    m = sm.OLS(y, X).fit()
+    a = Analysis([c], n, tr)
+    for expr, w in (("gamble:gain", [0, 1, 0]), ("gamble", [1, 0, 0])):
+        s = ModelSettings(kernels=("boxcar",), highpass_s=None, modulators=("gain",), contrast=expr)
+        f = a.fit_voxel(y, s).fits[0]
+        tt = m.t_test(np.array(w, dtype=float))
+        assert f.t == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-9)
+        assert f.beta == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+    notes = a.check_modulators(ModelSettings(modulators=("gain",)))
+    assert notes == [
+        "condition 'gamble': modulator 'gain' is n/a for 2 of 30 events; they keep the main "
+        "regressor and take the condition's mean"
+    ]
+    with pytest.raises(InputError, match="numeric columns: gain"):
+        a.check_modulators(ModelSettings(modulators=("gian",)))
+
+
+@pytest.mark.parametrize(
+    ("main", "slope"), [(2.0, 0.0), (0.0, 0.08), (2.0, 0.08)], ids=["main", "modulation", "both"]
+)
+def test_modulators_recovered_on_simulated_data(main, slope):
+    """Planted responses (each event's height = main + slope * (gain - mean gain)) are
+    recovered: the planted betas lie within 4 standard errors, an absent effect has
+    |t| < 3.5 and a present one t > 5 (reference: the planted truth; statsmodels agrees
+    with the fit, see the test above)."""
+    rng = np.random.default_rng(int(main * 10 + slope * 100))
+    n, tr = 300, 2.0
+    on = np.sort(rng.uniform(5, 580, 60))
+    gain = rng.uniform(0, 60, 60)
+    c = Condition("gamble", on, np.full(60, 3.0), columns={"gain": gain})
+    heights = main + slope * (gain - gain.mean())
+    truth = build_design([Condition("gamble", on, np.full(60, 3.0), heights)], n, tr)
+    y = 500 + truth.column("gamble") * 1.0 + rng.standard_normal(n) * 0.5
+    a = Analysis([c], n, tr)
+    for expr, planted in (("gamble", main), ("gamble:gain", slope)):
+        s = ModelSettings(kernels=("double-gamma",), modulators=("gain",), contrast=expr)
+        f = a.fit_voxel(y, s).fits[0]
+        assert abs(f.beta - planted) < 4 * math.sqrt(f.variance)
+        if planted == 0:
+            assert abs(f.t) < 3.5
+        else:
+            assert f.t > 5

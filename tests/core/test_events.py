@@ -12,7 +12,15 @@ import pytest
 from numpy.testing import assert_allclose
 
 from voxelscope.core.errors import InputError
-from voxelscope.core.events import Condition, read_events, shift_conditions
+from voxelscope.core.events import (
+    Condition,
+    events_sanity,
+    load_events,
+    modulator_values,
+    read_events,
+    scale_conditions,
+    shift_conditions,
+)
 
 
 def _write(tmp_path, text, name="sub-01_task-tonetap_events.tsv"):
@@ -41,19 +49,44 @@ def test_unsorted_onsets_are_sorted(tmp_path):
     assert_allclose(conds[0].onsets, [10, 50])
 
 
-def test_no_trial_type_gives_one_task_condition(tmp_path):
+def test_no_trial_type_gives_one_condition_named_after_the_task(tmp_path):
     conds = read_events(_write(tmp_path, "onset\tduration\n0\t10\n40\t10\n"))
-    assert [c.name for c in conds] == ["task"]
+    assert [c.name for c in conds] == ["tonetap"]  # the BIDS task- label of the file name
     assert conds[0].n_events == 2
+    plain = read_events(_write(tmp_path, "onset\tduration\n0\t10\n", name="onsets.tsv"))
+    assert [c.name for c in plain] == ["task"]
 
 
-def test_amplitude_column(tmp_path):
-    text = "onset\tduration\ttrial_type\tloudness\n0\t2\ttone\t0.5\n20\t2\ttone\t1.5\n"
-    conds = read_events(_write(tmp_path, text), amplitude_column="loudness")
-    assert_allclose(conds[0].amplitudes, [0.5, 1.5])
+def test_numeric_columns_are_kept_per_event_with_nan_for_na(tmp_path):
+    text = (
+        "onset\tduration\ttrial_type\tgain\tRT\tside\n"
+        "0\t2\tgamble\t10\t0.5\tL\n20\t2\tgamble\t30\tn/a\tR\n40\t2\tcue\tn/a\tn/a\tL\n"
+    )
+    ev = load_events(_write(tmp_path, text))
+    g, c = ev.conditions
+    assert_allclose(g.columns["gain"], [10, 30])
+    assert np.isnan(g.columns["RT"][1]) and g.carries("RT") and not c.carries("RT")
+    assert ev.numeric_columns == ("gain", "RT")
+    assert ev.condition_candidates == ("trial_type", "side")
+    assert_allclose(g.amplitudes, [1, 1])  # amplitudes stay 1; modulators are separate
+
+
+def test_condition_column_choice(tmp_path):
+    text = "onset\tduration\ttrial_type\tside\n0\t2\tgo\tL\n20\t2\tgo\tR\n40\t2\tgo\tL\n"
+    p = _write(tmp_path, text)
+    assert [c.name for c in read_events(p, condition_column="side")] == ["L", "R"]
+    assert [c.name for c in read_events(p, condition_column="none")] == ["tonetap"]
     with pytest.raises(InputError) as err:
-        read_events(_write(tmp_path, text), amplitude_column="pitch")
-    assert "'pitch'" in str(err.value) and "loudness" in str(err.value)
+        read_events(p, condition_column="hand")
+    msg = str(err.value)
+    assert "'hand'" in msg and "side" in msg and "--condition-column" in msg and "\n" not in msg
+
+
+def test_na_durations_are_brief_with_one_counted_note(tmp_path):
+    text = "onset\tduration\n0\tn/a\n10\tn/a\n20\t3\n"
+    ev = load_events(_write(tmp_path, text))
+    assert_allclose(ev.conditions[0].durations, [0, 0, 3])
+    assert len(ev.warnings) == 1 and "2 event(s) have duration n/a" in ev.warnings[0]
 
 
 @pytest.mark.parametrize(
@@ -86,9 +119,9 @@ def test_empty_and_missing_files(tmp_path):
         read_events(tmp_path / "nope_events.tsv")
 
 
-def test_na_duration_is_brief_and_na_trial_type_is_task(tmp_path):
+def test_na_duration_is_brief_and_na_trial_type_is_the_task(tmp_path):
     conds = read_events(_write(tmp_path, "onset\tduration\ttrial_type\n5\tn/a\tn/a\n"))
-    assert conds[0].name == "task"
+    assert conds[0].name == "tonetap"
     assert_allclose(conds[0].durations, [0.0])
 
 
@@ -103,3 +136,78 @@ def test_shift_conditions_and_equality():
     with pytest.raises(InputError):
         Condition("x", [1.0, 2.0], [1.0])
     assert np.all(c.amplitudes == 1.0)
+
+
+# ----------------------------------------------------------------------------- modulators
+
+
+def test_modulator_centring_against_hand_values():
+    """Centring over the condition's events (common practice): value minus the mean of the
+    condition's non-missing values; n/a takes the mean (0). Expected values by hand."""
+    nan = float("nan")
+    c = Condition("gamble", [0, 8, 16, 24, 32], [3] * 5, columns={"gain": [10, 20, nan, 40, 30]})
+    mods, notes = modulator_values(c, ["gain"])
+    # mean of 10, 20, 40, 30 = 25
+    assert mods[0][0] == "gain"
+    assert_allclose(mods[0][1], [-15, -5, 0, 15, 5], atol=1e-12)
+    assert notes == [
+        "condition 'gamble': modulator 'gain' is n/a for 1 of 5 events; they keep the main "
+        "regressor and take the condition's mean"
+    ]
+
+
+def test_constant_and_absent_modulators():
+    c = Condition("cue", [0, 10, 20], [1] * 3, columns={"gain": [5, 5, 5], "loss": [1, 2, 3]})
+    mods, notes = modulator_values(c, ["gain", "loss", "RT"])
+    assert [m for m, _v in mods] == ["loss"]  # RT is not carried: skipped silently
+    assert len(notes) == 1 and "'gain'" in notes[0] and "left out" in notes[0]
+    assert "(5)" in notes[0]
+
+
+def test_serial_orthogonalisation_against_least_squares():
+    """With orthogonalize, the second modulator is the residual of its centred values on the
+    first's (reference: numpy.linalg.lstsq, an independent least-squares solver); without it
+    the centred values are unchanged."""
+    rng = np.random.default_rng(4)
+    gain = rng.normal(20, 5, 30)
+    loss = 0.6 * gain + rng.normal(0, 2, 30)
+    c = Condition("g", np.arange(30) * 10.0, np.full(30, 3.0), columns={"gain": gain, "loss": loss})
+    plain, _ = modulator_values(c, ["gain", "loss"])
+    assert_allclose(plain[1][1], loss - loss.mean(), atol=1e-12)
+    orth, notes = modulator_values(c, ["gain", "loss"], orthogonalize=True)
+    assert notes == []
+    g0 = gain - gain.mean()
+    coef = np.linalg.lstsq(np.column_stack([np.ones(30), gain]), loss, rcond=None)[0]
+    resid = loss - np.column_stack([np.ones(30), gain]) @ coef
+    assert_allclose(orth[0][1], g0, atol=1e-12)
+    assert_allclose(orth[1][1], resid, atol=1e-10)
+    dup = Condition("g", [0, 10, 20], [1] * 3, columns={"a": [1, 2, 4], "b": [2, 4, 8]})
+    kept, notes = modulator_values(dup, ["a", "b"], orthogonalize=True)
+    assert [m for m, _v in kept] == ["a"] and "nothing is left" in notes[0]
+
+
+# ----------------------------------------------------------------------------- sanity
+
+
+def test_sanity_volume_numbers_named_with_the_tr_factor():
+    c = Condition("a", np.arange(5.0, 95.0, 10.0), np.full(9, 2.0))
+    w = events_sanity([c], 100, 2.0)
+    assert len(w) == 1 and "volume numbers" in w[0] and "2 s" in w[0]
+    assert "--onset-unit volumes" in w[0]
+    # the same numbers converted to seconds are fine
+    assert events_sanity(scale_conditions([c], 2.0), 100, 2.0) == []
+    # seconds that fill the run are not volume numbers; neither are fractional onsets
+    assert events_sanity([Condition("a", np.arange(5.0, 195.0, 10.0), [2] * 19)], 100, 2.0) == []
+    assert events_sanity([Condition("a", np.arange(5.5, 95, 10.0), [2] * 9)], 100, 2.0) == []
+
+
+def test_sanity_counts_each_kind_in_one_line():
+    a = Condition("tone", [-3.0, 10.0, 12.0, 250.0], [5.0, 5.0, 5.0, 5.0])
+    b = Condition("tap", [195.0, 260.0], [10.0, 2.0])
+    w = events_sanity([a, b], 100, 2.0)
+    assert len(w) == 4
+    assert w[0].startswith("1 event(s) start before the first volume") and "'tone'" in w[0]
+    assert w[1].startswith("2 event(s) start after the run ends (200 s;")
+    assert w[2].startswith("1 event(s) run past the end of the run") and "'tap'" in w[2]
+    assert w[3].startswith("1 event(s) overlap the previous event") and "'tone'" in w[3]
+    assert all("\n" not in line for line in w)

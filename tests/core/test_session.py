@@ -48,8 +48,10 @@ def _session(files) -> S.Session:
             confound_columns=("a", "b"),
             onset_shift_s=-1.25,
             derivatives=1,
-            fir_bins=8,
+            fir_window_s=20.0,
             fir_bin_s=2.5,
+            modulators=("gain", "loss"),
+            orthogonalize=True,
         ),
         kernels={"gaussian": {"sigma_s": 2.5}},
         voxel=(3, 4, 5),
@@ -85,8 +87,10 @@ settings_st = st.builds(
     confound_columns=st.one_of(st.none(), st.lists(st.text(max_size=8), max_size=4).map(tuple)),
     onset_shift_s=st.floats(-20, 20),
     derivatives=st.sampled_from([0, 1, 2]),
-    fir_bins=st.integers(1, 40),
+    fir_window_s=st.floats(0.5, 100.0),
     fir_bin_s=st.one_of(st.none(), st.floats(0.1, 10.0)),
+    modulators=st.lists(st.text(max_size=8), max_size=3).map(tuple),
+    orthogonalize=st.booleans(),
 )
 
 

@@ -49,7 +49,7 @@ def test_every_bad_map_field_is_one_line_each(tmp_path):
     ("change", "says"),
     [
         ({"voxel": [10**12, 0, 0]}, "field 'voxel' has an index above"),
-        ({"model__fir_bins": 10**9}, "field 'model.fir_bins' must be at most 1000"),
+        ({"model__fir_window_s": 1e9}, "field 'model.fir_window_s' must be at most 600 s"),
         ({"model__fir_bin_s": 1e9}, "field 'model.fir_bin_s' must be at most 600 s"),
         ({"model__onset_shift_s": 1e300}, "field 'model.onset_shift_s' must be at most"),
         ({"model__highpass_s": 1e-320}, "field 'model.highpass_s' must be at least 1 s"),

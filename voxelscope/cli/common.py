@@ -141,7 +141,34 @@ def add_model_args(
         help="BIDS events.tsv (onset, duration in seconds; trial_type); "
         "default: the BIDS-named file beside the run",
     )
-    p.add_argument("--amplitude-column", metavar="NAME", help="events column giving amplitudes")
+    p.add_argument(
+        "--condition-column",
+        metavar="NAME",
+        default="trial_type",
+        help="events column whose values name the conditions (default trial_type); "
+        "'none' puts every event in one condition named after the task",
+    )
+    p.add_argument(
+        "--modulators",
+        metavar="A,B",
+        help="numeric events columns as parametric modulators: each condition whose events "
+        "carry one gets a column CONDITION:NAME, mean-centred over its events",
+    )
+    p.add_argument(
+        "--orthogonalize",
+        action="store_true",
+        help="orthogonalise each condition's modulators in the order given (off by default)",
+    )
+    p.add_argument(
+        "--onset-unit",
+        choices=("seconds", "volumes"),
+        default="seconds",
+        help="unit of the events file's onsets and durations (default seconds); "
+        "volumes are multiplied by the TR",
+    )
+    # replaced options: a clear line instead of argparse's "unrecognized arguments"
+    p.add_argument("--amplitude-column", metavar="NAME", help=argparse.SUPPRESS)
+    p.add_argument("--fir-bins", metavar="N", help=argparse.SUPPRESS)
     p.add_argument(
         "--confounds",
         **each,
@@ -220,7 +247,13 @@ def add_model_args(
         metavar="SECONDS",
         help="add to every onset (timing test)",
     )
-    p.add_argument("--fir-bins", type=int, default=12, metavar="N", help="FIR bins (default 12)")
+    p.add_argument(
+        "--fir-window",
+        type=_positive_float,
+        default=24.0,
+        metavar="SECONDS",
+        help="span of the FIR kernel after each onset, also for the checks (default 24)",
+    )
     p.add_argument(
         "--fir-bin", type=_positive_float, metavar="SECONDS", help="FIR bin width (default one TR)"
     )
@@ -284,7 +317,8 @@ def request_from_args(args: argparse.Namespace, summarize: bool = True):
         events=getattr(args, "events", None) or None,
         confounds=getattr(args, "confounds", None) or None,
         confound_columns=getattr(args, "confound_columns", None),
-        amplitude_column=getattr(args, "amplitude_column", None),
+        condition_column=getattr(args, "condition_column", "trial_type"),
+        onset_unit=getattr(args, "onset_unit", "seconds"),
         tr=getattr(args, "tr", None),
         mask=getattr(args, "mask", None),
         bids_root=getattr(args, "bids_root", None),
@@ -305,6 +339,17 @@ def analysis_from_args(
     from ..core.cache import terminal_progress
     from ..core.loader import load_inputs
 
+    if getattr(args, "amplitude_column", None):
+        raise InputError(
+            "--amplitude-column was replaced: use --modulators "
+            f"{args.amplitude_column} (the condition's own column plus a mean-centred "
+            f"CONDITION:{args.amplitude_column} column)"
+        )
+    if getattr(args, "fir_bins", None):
+        raise InputError(
+            "--fir-bins was replaced: give the FIR span in seconds with --fir-window SECONDS "
+            "(and the bin width with --fir-bin SECONDS)"
+        )
     check_model_args(args)  # absurd values: one line before anything is opened
     request = request_from_args(args, summarize=summarize)
     got = load_inputs(
@@ -319,15 +364,17 @@ def analysis_from_args(
         highpass_s=args.highpass,
         onset_shift_s=float(args.onset_shift),
         derivatives=int(args.derivatives),
-        fir_bins=int(args.fir_bins),
+        fir_window_s=float(getattr(args, "fir_window", 24.0)),
         fir_bin_s=args.fir_bin,
         confound_columns=got.confound_columns,
         drop_volumes=int(getattr(args, "drop_volumes", 0) or 0),
         censor_fd_mm=getattr(args, "censor_fd", None),
+        modulators=_names(getattr(args, "modulators", None)),
+        orthogonalize=bool(getattr(args, "orthogonalize", False)),
     )
-    # Check the contrast once, against the condition names, before any fitting.
-    got.analysis.check_contrast(settings.contrast)
-    warnings = list(got.warnings)
+    # Check the modulators and the contrast once, by name, before any fitting.
+    warnings = list(got.warnings) + got.analysis.check_modulators(settings)
+    got.analysis.check_contrast(settings.contrast, settings)
     # excluded volumes and every kernel's design, checked once before any fitting
     got.analysis.excluded_volumes(settings)
     warnings.extend(got.analysis.design_warnings(settings))
@@ -337,7 +384,7 @@ def analysis_from_args(
         settings,
         Path(got.events_path),
         got.confounds_path,
-        warnings,
+        list(dict.fromkeys(warnings)),
         got,
     )
 
@@ -346,7 +393,7 @@ def analysis_from_args(
 _OPTIONS = {
     "highpass_s": "--highpass",
     "onset_shift_s": "--onset-shift",
-    "fir_bins": "--fir-bins",
+    "fir_window_s": "--fir-window",
     "fir_bin_s": "--fir-bin",
     "tr": "--tr",
 }
@@ -360,7 +407,7 @@ def check_model_args(args: argparse.Namespace) -> None:
     values = {
         "highpass_s": getattr(args, "highpass", None),
         "onset_shift_s": getattr(args, "onset_shift", None),
-        "fir_bins": getattr(args, "fir_bins", None),
+        "fir_window_s": getattr(args, "fir_window", None),
         "fir_bin_s": getattr(args, "fir_bin", None),
         "tr": getattr(args, "tr", None),
     }
@@ -374,6 +421,11 @@ def check_model_args(args: argparse.Namespace) -> None:
             f"--contrast '{excerpt(contrast)}' is {len(str(contrast))} characters long; "
             f"a contrast has at most {CONTRAST_CHARS}"
         )
+
+
+def _names(text: str | None) -> tuple[str, ...]:
+    """``'gain, loss'`` -> ``('gain', 'loss')``; None or empty -> ``()``."""
+    return tuple(n.strip() for n in str(text or "").split(",") if n.strip())
 
 
 def companions_text(loaded: Loaded) -> list[str]:

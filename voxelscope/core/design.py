@@ -10,18 +10,32 @@ Timing conventions
 * The stimulus is built on a fine grid of ``TR / oversampling`` seconds (16 by default),
   convolved there with the kernel, and read at the volume times by linear interpolation.
   Partial overlap of an event with a fine bin counts in proportion. Boxcar and FIR
-  columns are computed exactly at the volume times instead: the boxcar is 1 while
-  ``onset <= t < onset + duration`` (brief events last one TR), an FIR column is 1 where
-  the time since an onset lies in its bin.
+  columns are computed exactly instead: a boxcar value is the fraction of the volume's TR
+  window ``[t - reference_time_s, t - reference_time_s + TR)`` that events cover (a
+  brief event counts as :data:`BRIEF_EVENT_S` = 1 s, the area an impulse has under the
+  unit-area kernels), so the regressor's area ``sum(x) * TR`` equals the stimulation time
+  and no event vanishes between volumes; an FIR column is 1 where the time since an onset
+  lies in its bin.
+
+Parametric modulators
+---------------------
+With ``modulators=("gain",)`` every condition whose events carry a ``gain`` value gets,
+after its main column (and its derivatives), a column ``CONDITION:gain`` built with the
+same kernel from the same events, each scaled by its mean-centred ``gain``
+(:func:`voxelscope.core.events.modulator_values`: ``n/a`` takes the mean, a constant
+modulator is left out, serial orthogonalisation only when asked). Its kind is
+``modulator``; contrasts and F tests name it like a condition.
 
 Column order
 ------------
 The default model is exactly: one regressor per condition (named as the condition, i.e. the
 ``trial_type`` value), then, when asked, derivative columns (``<name>_dt``, ``<name>_dd``)
-after their condition, then confound columns (their file names), then discrete cosine drift
-columns ``drift_1 .. drift_K`` and last ``constant``. Cosine columns chosen from a confounds
-table (``cosine00`` ...) are drift columns already: they replace ``drift_1 .. drift_K``
-(with a warning when a high-pass cutoff was set), so the drift never enters twice.
+after their condition and modulator columns (``<condition>:<modulator>``, each followed by
+its own derivatives) after those, then confound columns (their file names), then discrete
+cosine drift columns ``drift_1 .. drift_K`` and last ``constant``. Cosine columns chosen
+from a confounds table (``cosine00`` ...) are drift columns already: they replace
+``drift_1 .. drift_K`` (with a warning when a high-pass cutoff was set), so the drift never
+enters twice.
 
 Drift uses the discrete cosine basis ``cos(pi * k * (2 n + 1) / (2 N))`` for
 ``k = 1 .. K`` with ``K = floor(2 N TR / cutoff)``; a 128 s cutoff is a common default
@@ -48,10 +62,22 @@ import numpy as np
 
 from .confounds import Confounds
 from .errors import InputError, ModelError
-from .events import Condition
+from .events import Condition, modulator_values
 from .hrf import FIR, Boxcar, Kernel, get_kernel
 
-__all__ = ["DesignMatrix", "build_design", "dct_drift", "frame_times", "stimulus_regressor"]
+__all__ = [
+    "BRIEF_EVENT_S",
+    "DesignMatrix",
+    "boxcar_regressor",
+    "build_design",
+    "dct_drift",
+    "frame_times",
+    "stimulus_regressor",
+]
+
+#: Length given to a zero-duration event under the boxcar kernel (s): the area of the
+#: impulse that the unit-area kernels give it.
+BRIEF_EVENT_S = 1.0
 
 
 @dataclass(frozen=True, eq=False)
@@ -65,10 +91,13 @@ class DesignMatrix:
     names : tuple of str
         Column names.
     kinds : tuple of str
-        For each column: ``condition``, ``derivative``, ``fir``, ``confound``, ``drift``
-        or ``constant``.
+        For each column: ``condition``, ``modulator``, ``derivative``, ``fir``,
+        ``confound``, ``drift`` or ``constant``.
     condition_columns : dict
-        Condition name -> indices of its columns (main column first).
+        Condition name (or modulator column name ``condition:modulator``) -> indices of its
+        columns (main column first); contrasts name these.
+    modulators : dict
+        Modulator column name -> its condition.
     kernel : Kernel
     tr : float
     frame_times : ndarray
@@ -83,6 +112,7 @@ class DesignMatrix:
     tr: float
     frame_times: np.ndarray
     warnings: tuple[str, ...] = field(default=())
+    modulators: dict[str, str] = field(default_factory=dict)
 
     @property
     def n_volumes(self) -> int:
@@ -233,12 +263,28 @@ def _fir_column(condition: Condition, fir: FIR, k: int, times: np.ndarray) -> np
     return inside.astype(float) @ condition.amplitudes
 
 
-def _boxcar_column(condition: Condition, times: np.ndarray) -> np.ndarray:
-    """The stimulus itself at ``times``: summed amplitudes of the events under way,
-    ``onset <= t < onset + duration`` (exact, no fine-grid interpolation)."""
-    lag = times[:, None] - condition.onsets[None, :]
-    inside = (lag >= -1e-9) & (lag < condition.durations[None, :] - 1e-9)
-    return inside.astype(float) @ condition.amplitudes
+def boxcar_regressor(
+    condition: Condition, times: np.ndarray, tr: float, reference_time_s: float = 0.0
+) -> np.ndarray:
+    """Fraction of each volume's TR window covered by the condition's events.
+
+    Volume ``n`` (sampled at ``times[n]``) covers ``[times[n] - reference_time_s,
+    times[n] - reference_time_s + tr)``. Each event adds ``amplitude * overlap / tr``;
+    a zero-duration event lasts :data:`BRIEF_EVENT_S`. So ``sum(x) * tr`` is the summed
+    ``amplitude * duration`` of the events inside the run.
+
+    >>> c = Condition("a", [1.0, 5.5], [0.0, 0.5])
+    >>> boxcar_regressor(c, frame_times(4, 2.0), 2.0).tolist()
+    [0.5, 0.0, 0.25, 0.0]
+    """
+    if condition.n_events == 0:
+        return np.zeros(times.shape)
+    lo = times[:, None] - float(reference_time_s)
+    hi = lo + float(tr)
+    du = np.where(condition.durations > 0, condition.durations, BRIEF_EVENT_S)
+    on = condition.onsets[None, :]
+    overlap = np.clip(np.minimum(hi, on + du[None, :]) - np.maximum(lo, on), 0.0, None)
+    return (overlap / float(tr)) @ condition.amplitudes
 
 
 def build_design(
@@ -251,6 +297,8 @@ def build_design(
     confounds: Confounds | None = None,
     reference_time_s: float = 0.0,
     oversampling: int = 16,
+    modulators: Sequence[str] = (),
+    orthogonalize: bool = False,
 ) -> DesignMatrix:
     """Build the design matrix for one kernel.
 
@@ -271,6 +319,10 @@ def build_design(
         Time within each TR at which volumes are sampled.
     oversampling : int
         Fine-grid steps per TR (at least 16).
+    modulators : sequence of str
+        Events columns to add as parametric modulators (see the module notes).
+    orthogonalize : bool
+        Serially orthogonalise each condition's modulators, in the order given.
     """
     if not (tr > 0 and math.isfinite(tr)):
         raise InputError(f"TR must be a positive number of seconds, not {tr}")
@@ -291,31 +343,43 @@ def build_design(
     names: list[str] = []
     kinds: list[str] = []
     cond_cols: dict[str, tuple[int, ...]] = {}
+    mod_of: dict[str, str] = {}
+    notes: list[str] = []
     basis = k.basis(dt, derivatives)
-    for cond in conditions:
-        use_cond = cond
-        if isinstance(k, Boxcar) and np.any(cond.durations == 0):
-            # brief events under boxcar: one TR long, so a volume always sees them
-            use_cond = Condition(
-                cond.name,
-                cond.onsets,
-                np.where(cond.durations == 0, tr, cond.durations),
-                cond.amplitudes,
-            )
+
+    def add(cond: Condition, label: str, main_kind: str) -> None:
         idx = []
         for j, (suffix, h) in enumerate(basis):
             if isinstance(k, FIR):  # exact boxes at the volume times, no fine-grid smear
-                cols.append(_fir_column(use_cond, k, j, times))
-            elif isinstance(k, Boxcar):  # the stimulus itself, exact at the volume times
-                cols.append(_boxcar_column(use_cond, times))
+                cols.append(_fir_column(cond, k, j, times))
+            elif isinstance(k, Boxcar):  # covered fraction of each volume's TR window
+                cols.append(boxcar_regressor(cond, times, tr, reference_time_s))
             else:
-                cols.append(
-                    stimulus_regressor(use_cond, h, times, dt, use_durations=k.uses_durations)
-                )
-            names.append(cond.name + suffix)
-            kinds.append("fir" if isinstance(k, FIR) else ("condition" if j == 0 else "derivative"))
+                cols.append(stimulus_regressor(cond, h, times, dt, use_durations=k.uses_durations))
+            names.append(label + suffix)
+            kinds.append("fir" if isinstance(k, FIR) else (main_kind if j == 0 else "derivative"))
             idx.append(len(cols) - 1)
-        cond_cols[cond.name] = tuple(idx)
+        cond_cols[label] = tuple(idx)
+
+    for cond in conditions:
+        add(cond, cond.name, "condition")
+        if not modulators:
+            continue
+        mods, mod_notes = modulator_values(cond, modulators, orthogonalize)
+        notes.extend(mod_notes)
+        for mod, values in mods:
+            label = f"{cond.name}:{mod}"
+            scaled = Condition(label, cond.onsets, cond.durations, cond.amplitudes * values)
+            add(scaled, label, "modulator")
+            mod_of[label] = cond.name
+    if modulators:
+        carried = {m for c in conditions for m in modulators if c.carries(m)}
+        for m in modulators:
+            if m not in carried:
+                raise InputError(
+                    f"modulator '{m}': no condition's events carry a number in that column; "
+                    "name numeric columns of the events file"
+                )
 
     warnings: list[str] = []
     file_drift: tuple[str, ...] = ()
@@ -357,5 +421,13 @@ def build_design(
             "use fewer regressors (drop confounds, a longer high-pass cutoff or no derivatives)"
         )
     return DesignMatrix(
-        X, tuple(names), tuple(kinds), cond_cols, k, float(tr), times, tuple(warnings)
+        X,
+        tuple(names),
+        tuple(kinds),
+        cond_cols,
+        k,
+        float(tr),
+        times,
+        tuple(notes) + tuple(warnings),
+        mod_of,
     )

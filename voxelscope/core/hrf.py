@@ -140,9 +140,11 @@ class Kernel:
 
 @dataclass(frozen=True)
 class Boxcar(Kernel):
-    """No convolution: the regressor is the stimulus itself (1 during events, 0 elsewhere).
+    """No convolution: the regressor is the stimulus itself.
 
-    Brief events (duration 0) become a box one TR long, so a sample always sees them.
+    The design reads it as the fraction of each volume's TR window that events cover
+    (:func:`voxelscope.core.design.boxcar_regressor`); a brief event (duration 0) lasts
+    1 s, the area an impulse has under the unit-area kernels, so it never vanishes.
     """
 
     name: ClassVar[str] = "boxcar"

@@ -2,7 +2,7 @@
 
 The command line (options), sessions (``model.*`` fields) and the window use these ranges,
 so an absurd value (``--fir-bin 1e9``, ``--highpass 1e-320``, ``--onset-shift nan``, a
-session with ``fir_bins`` 10^9) is one clear line instead of an allocation of terabytes or
+session with ``fir_window_s`` 10^9) is one clear line instead of an allocation of terabytes or
 a silent null fit. The bounds are generous: they exclude only values that cannot describe
 an fMRI run (common practice: TRs of 0.1-10 s, runs of minutes to an hour, haemodynamic
 responses lasting about 30 s).
@@ -39,7 +39,7 @@ __all__ = [
 RANGES: dict[str, tuple[float, float, str, bool]] = {
     "highpass_s": (1.0, 1e6, "seconds", False),
     "onset_shift_s": (-1e5, 1e5, "seconds", False),
-    "fir_bins": (1, 1000, "", True),
+    "fir_window_s": (0.5, 600.0, "seconds", False),
     "fir_bin_s": (0.01, 600.0, "seconds", False),
     "tr": (0.01, 100.0, "seconds", False),
     "threshold": (0.0, 1e6, "", False),
@@ -85,7 +85,7 @@ def setting_problem(name: str, value: Any) -> str | None:
 def check_settings(
     settings: Any,
     label: Callable[[str], str] = lambda name: name,
-    names: Iterable[str] = ("highpass_s", "onset_shift_s", "fir_bins", "fir_bin_s"),
+    names: Iterable[str] = ("highpass_s", "onset_shift_s", "fir_window_s", "fir_bin_s"),
 ) -> None:
     """Raise one :class:`InputError` line for the first setting out of range.
 
@@ -100,10 +100,10 @@ def check_settings(
     Examples
     --------
     >>> from voxelscope.core.model import ModelSettings
-    >>> check_settings(ModelSettings(fir_bins=10**9), label=lambda n: "--" + n)
+    >>> check_settings(ModelSettings(fir_window_s=1e9), label=lambda n: "--" + n)
     Traceback (most recent call last):
     ...
-    voxelscope.core.errors.InputError: --fir_bins must be at most 1000, not 1e+09
+    voxelscope.core.errors.InputError: --fir_window_s must be at most 600 s, not 1e+09
     """
     for name in names:
         problem = setting_problem(name, getattr(settings, name, None))

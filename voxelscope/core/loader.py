@@ -36,7 +36,7 @@ import numpy as np
 from .companions import Companions, find_companions
 from .confounds import Confounds, choose_columns, read_confounds
 from .errors import InputError
-from .events import Condition, read_events
+from .events import Condition, EventsFile, load_events, scale_conditions, task_name
 from .model import Analysis
 
 __all__ = [
@@ -46,6 +46,7 @@ __all__ = [
     "analysis_for",
     "load_inputs",
     "open_events",
+    "read_events_file",
     "resolve_inputs",
 ]
 
@@ -67,8 +68,11 @@ class InputRequest:
         The user's choice of confound columns (names, wildcards, sets, ``none``; see
         :func:`voxelscope.core.confounds.choose_columns`). None: all columns of a small
         named table, none of a table found beside the run.
-    amplitude_column : str, optional
-        Events column giving amplitudes.
+    condition_column : str or None
+        Events column naming the conditions (``trial_type`` by default; None or ``none``:
+        one condition named after the task).
+    onset_unit : {"seconds", "volumes"}
+        Onsets and durations in volumes are multiplied by the run's TR.
     tr : float, optional
         Overrides the sidecar and the header.
     mask : path or ``"auto"``, optional
@@ -91,7 +95,8 @@ class InputRequest:
     events: Path | None = None
     confounds: Path | None = None
     confound_columns: str | None = None
-    amplitude_column: str | None = None
+    condition_column: str | None = "trial_type"
+    onset_unit: str = "seconds"
     tr: float | None = None
     mask: Path | str | None = None
     bids_root: Path | None = None
@@ -394,8 +399,11 @@ def load_inputs(
     warnings: list[str] = []
     # Checks that need no image data: read the small files before the run is opened.
     conditions = None
+    events_file = None
     if resolved.events is not None:
-        conditions = read_events(resolved.events, amplitude_column=request.amplitude_column)
+        events_file = read_events_file(resolved.events, request.run, request.condition_column)
+        conditions = list(events_file.conditions)
+        warnings.extend(events_file.warnings)
     confounds, confounds_path, conf_notes = _read_confounds(request, resolved)
     if confounds_path != resolved.confounds:
         resolved = dataclasses.replace(resolved, confounds=confounds_path)
@@ -439,7 +447,10 @@ def load_inputs(
         columns = choose_columns(confounds, request.confound_columns, request.confounds is not None)
         conf_notes.extend(confounds.missing_warnings(columns))
     if conditions is not None:
+        if request.onset_unit == "volumes":
+            conditions = scale_conditions(conditions, run.tr)
         analysis = analysis_for(run, conditions, confounds)
+        analysis.events_file = events_file
         warnings.extend(analysis.warnings)
     elif not request.events_required:
         warnings.append(
@@ -485,15 +496,38 @@ def _read_confounds(
         return None, None, [f"{err} (the confounds file beside the run is not used)"]
 
 
+def read_events_file(
+    events: str | os.PathLike[str],
+    run_path: str | os.PathLike[str] | None = None,
+    condition_column: str | None = "trial_type",
+) -> EventsFile:
+    """Read an events file; one condition without a condition column is named after the
+    task (the events file's ``task-`` label, else the run's)."""
+    task = task_name(events)
+    if task == "task" and run_path is not None:
+        task = task_name(run_path)
+    return load_events(events, condition_column=condition_column, task=task)
+
+
 def open_events(
     run,
     events: str | os.PathLike[str],
     confounds: str | os.PathLike[str] | Confounds | None = None,
-    amplitude_column: str | None = None,
+    condition_column: str | None = "trial_type",
+    onset_unit: str = "seconds",
 ) -> Analysis:
-    """A new analysis of an open run from another events file (and confounds)."""
-    conditions = read_events(events, amplitude_column=amplitude_column)
+    """A new analysis of an open run from another events file (and confounds).
+
+    The events file's notes (e.g. ``n/a`` durations) join ``analysis.warnings``.
+    """
+    events_file = read_events_file(events, getattr(run, "path", None), condition_column)
+    conditions = list(events_file.conditions)
+    if onset_unit == "volumes":
+        conditions = scale_conditions(conditions, run.tr)
     conf = confounds
     if conf is not None and not isinstance(conf, Confounds):
         conf = read_confounds(conf)
-    return analysis_for(run, conditions, conf)
+    analysis = analysis_for(run, conditions, conf)
+    analysis.events_file = events_file
+    analysis.warnings[:0] = list(events_file.warnings)
+    return analysis

@@ -17,6 +17,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 
@@ -25,7 +26,7 @@ import numpy as np
 from .confounds import Confounds
 from .design import DesignMatrix, build_design
 from .errors import InputError
-from .events import Condition, check_events_in_run, shift_conditions
+from .events import Condition, EventsFile, events_sanity, shift_conditions
 from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, parse_contrast, prepare
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
 
@@ -50,9 +51,15 @@ class ModelSettings:
     onset_shift_s : float
         Added to every onset (timing checks).
     derivatives : {0, 1, 2}
-    fir_bins : int
+    fir_window_s : float
+        Span of the FIR kernel after each onset, seconds (24 s by default, long enough for
+        a slow response whatever the TR); the last bin may reach past it.
     fir_bin_s : float or None
-        FIR bin width; None means one TR.
+        FIR bin width in seconds; None means one TR.
+    modulators : tuple of str
+        Events columns used as parametric modulators (``CONDITION:MODULATOR`` columns).
+    orthogonalize : bool
+        Serially orthogonalise each condition's modulators (off by default).
     drop_volumes : int
         Leave the first N volumes out of the fit (runs whose confounds table has no
         non-steady-state columns).
@@ -71,10 +78,12 @@ class ModelSettings:
     confound_columns: tuple[str, ...] | None = None
     onset_shift_s: float = 0.0
     derivatives: int = 0
-    fir_bins: int = 12
+    fir_window_s: float = 24.0
     fir_bin_s: float | None = None
     drop_volumes: int = 0
     censor_fd_mm: float | None = None
+    modulators: tuple[str, ...] = ()
+    orthogonalize: bool = False
 
     def with_(self, **changes) -> ModelSettings:
         """A copy with some fields changed."""
@@ -192,13 +201,53 @@ class Analysis:
         self._weights: dict[tuple, np.ndarray] = {}
         self._plans: dict[ModelSettings, list[tuple]] = {}
         self._excluded: dict[tuple, dict[int, str]] = {}
-        self.warnings: list[str] = list(
-            check_events_in_run(self.conditions, self.n_volumes * self.tr)
-        )
+        self.warnings: list[str] = events_sanity(self.conditions, self.n_volumes, self.tr)
+        #: The events file the conditions came from (its columns, for choices in the
+        #: window); set by the loader, None for conditions made in code.
+        self.events_file: EventsFile | None = None
 
     @property
     def condition_names(self) -> tuple[str, ...]:
         return tuple(c.name for c in self.conditions)
+
+    @property
+    def modulator_candidates(self) -> tuple[str, ...]:
+        """Events columns with numbers that some condition's events carry, in file order."""
+        out: dict[str, None] = {}
+        for c in self.conditions:
+            for name in c.columns:
+                if c.carries(name):
+                    out[name] = None
+        return tuple(out)
+
+    def check_modulators(self, settings: ModelSettings) -> list[str]:
+        """Notes on the settings' modulators (n/a counts, constant ones left out).
+
+        Raises
+        ------
+        InputError
+            A modulator that no condition's events carry (the candidates are listed).
+        """
+        if not settings.modulators:
+            return []
+        known = self.modulator_candidates
+        for m in settings.modulators:
+            if m not in known:
+                raise InputError(
+                    f"modulator '{m}' is not a numeric column of the events file "
+                    f"(numeric columns: {', '.join(known) or 'none'}); name one of them"
+                )
+        s = settings.with_(kernels=("boxcar",), highpass_s=None, confound_columns=())
+        return list(self.design("boxcar", s).warnings)
+
+    def fir_kernel(self, settings: ModelSettings) -> Kernel:
+        """The FIR kernel of these settings: bins of ``fir_bin_s`` (one TR by default)
+        covering ``fir_window_s`` seconds."""
+        bin_s = float(settings.fir_bin_s or self.tr)
+        if not (settings.fir_window_s > 0 and math.isfinite(settings.fir_window_s)):
+            raise InputError("the FIR window must be a positive number of seconds")
+        n_bins = max(1, math.ceil(float(settings.fir_window_s) / bin_s - 1e-9))
+        return get_kernel("fir", n_bins=n_bins, bin_s=bin_s)
 
     @property
     def confound_names(self) -> tuple[str, ...]:
@@ -209,7 +258,7 @@ class Analysis:
         if isinstance(name, Kernel):
             return name
         if str(name).lower() == "fir":
-            return get_kernel("fir", n_bins=settings.fir_bins, bin_s=settings.fir_bin_s or self.tr)
+            return self.fir_kernel(settings)
         return get_kernel(name)
 
     def _key(self, kernel: Kernel, s: ModelSettings) -> tuple:
@@ -219,6 +268,8 @@ class Analysis:
             s.highpass_s,
             s.confound_columns,
             s.onset_shift_s,
+            s.modulators,
+            s.orthogonalize,
             s.drop_volumes,
             s.censor_fd_mm,
         )
@@ -300,10 +351,12 @@ class Analysis:
             settings.highpass_s,
             settings.confound_columns,
             settings.onset_shift_s,
-            settings.fir_bins,
+            settings.fir_window_s,
             settings.fir_bin_s,
             settings.drop_volumes,
             settings.censor_fd_mm,
+            settings.modulators,
+            settings.orthogonalize,
         )
         hit = self._fast.get(fast)
         if hit is not None:
@@ -329,6 +382,8 @@ class Analysis:
                 highpass_s=settings.highpass_s,
                 confounds=conf,
                 reference_time_s=self.reference_time_s,
+                modulators=settings.modulators,
+                orthogonalize=settings.orthogonalize,
             )
             hit = (d, prepare(d.X, d.names, keep=self.keep_mask(settings)))
             if len(self._designs) > 256:
@@ -359,9 +414,24 @@ class Analysis:
             self._weights[key] = w
         return w
 
-    def check_contrast(self, expr: str | None) -> np.ndarray:
-        """Validate a contrast against the condition names (raises InputError)."""
-        s = ModelSettings(kernels=("boxcar",), contrast=expr, highpass_s=None, confound_columns=())
+    def check_contrast(self, expr: str | None, settings: ModelSettings | None = None) -> np.ndarray:
+        """Validate a contrast against the condition (and the settings' modulator) names.
+
+        Raises
+        ------
+        InputError
+            Unknown names or a malformed expression.
+        """
+        mods = () if settings is None else settings.modulators
+        orth = False if settings is None else settings.orthogonalize
+        s = ModelSettings(
+            kernels=("boxcar",),
+            contrast=expr,
+            highpass_s=None,
+            confound_columns=(),
+            modulators=mods,
+            orthogonalize=orth,
+        )
         return self.contrast_weights("boxcar", s)
 
     def fit_many(

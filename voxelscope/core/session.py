@@ -370,7 +370,7 @@ class _Check:
 def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> ModelSettings:
     """Model settings; each bad field is one problem in ``c`` (and the default is kept)."""
     known = {f.name for f in fields(ModelSettings)}
-    for k in sorted(set(d) - known):
+    for k in sorted(set(d) - known - {"fir_bins"}):
         warnings.append(f"{c.source}: unknown model setting '{excerpt(k)}' ignored")
     kw: dict[str, Any] = {}
 
@@ -430,6 +430,11 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
             raise c.fail("model.censor_fd_mm", "must be a positive number of mm or null")
         return fd
 
+    def orthogonalize() -> bool:
+        if not isinstance(d["orthogonalize"], bool):
+            raise c.fail("model.orthogonalize", "must be true or false")
+        return d["orthogonalize"]
+
     checks = {
         "kernels": kernels,
         "contrast": contrast,
@@ -440,10 +445,12 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
         ),
         "onset_shift_s": ranged("onset_shift_s"),
         "derivatives": derivatives,
-        "fir_bins": ranged("fir_bins", integer=True),
+        "fir_window_s": ranged("fir_window_s"),
         "fir_bin_s": ranged("fir_bin_s", allow_none=True),
         "drop_volumes": drop_volumes,
         "censor_fd_mm": censor_fd_mm,
+        "modulators": lambda: c.texts(d["modulators"], "model.modulators"),
+        "orthogonalize": orthogonalize,
     }
     bad = object()
     for name, check in checks.items():
@@ -454,6 +461,13 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
     for name in sorted(known - set(checks)):  # fields added later: passed on as given
         if name in d:
             kw[name] = tuple(d[name]) if isinstance(d[name], list) else d[name]
+    if "fir_bins" in d and "fir_window_s" not in d:
+        # sessions written before the FIR window was given in seconds: bins x bin width
+        nb = c.collect(ranged("fir_bins", integer=True), bad)
+        if nb is not bad and nb and kw.get("fir_bin_s"):
+            window = float(nb) * float(kw["fir_bin_s"])
+            if setting_problem("fir_window_s", window) is None:
+                kw["fir_window_s"] = window
     try:
         return ModelSettings(**kw)
     except (TypeError, ValueError, InputError) as err:
