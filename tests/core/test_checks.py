@@ -512,7 +512,7 @@ def test_real_short_run_from_nibabel():
         ("boxcar", {}),
         ("gaussian", {"derivatives": 1}),
         ("double-gamma", {"derivatives": 2, "noise": "ar1"}),
-        ("fir", {"fir_bins": 10}),
+        ("fir", {"fir_window_s": 20.0}),
         ("gamma", {"highpass_s": None, "contrast": "2 tap - tone"}),
     ],
 )

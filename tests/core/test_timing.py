@@ -155,3 +155,84 @@ def test_kernel_response_is_beta_times_the_kernel():
     got = fir.kernels_fine["double-gamma"]
     assert np.max(np.abs(got - expect)) < 0.02 * np.max(np.abs(expect))
     assert tt[np.argmax(got)] == pytest.approx(5.0, abs=0.25)
+
+
+# ----------------------------------------------------------------------------- issue 13
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_shift_scan_keeps_a_well_timed_deactivation(seed):
+    """A correctly timed negative response: the scan's best shift is within 0.5 s of 0 (the
+    signed maximum used to land far away, 'the response peaks at 13 s'), and the voxel
+    gets no timing flag. (Reference: the planted timing, our own scipy.stats.gamma
+    response.)"""
+    from voxelscope.core.checks import voxel_checks
+
+    rng = np.random.default_rng(seed)
+    on = jittered_events(rng)
+    y = 100 - 30 * simulate(on, np.zeros(on.size)) + rng.standard_normal(N)
+    a = Analysis([Condition("tone", on, np.zeros(on.size))], N, TR)
+    s = ModelSettings(kernels=("double-gamma",))
+    scan = shift_scan(a, s, "double-gamma", y)
+    assert scan.t_at_zero < -5 and scan.direction == -1.0
+    assert scan.best_shift_s == pytest.approx(0.0, abs=0.5)
+    assert scan.t_best <= scan.t_at_zero
+    assert "timing" not in voxel_checks(a, s, "double-gamma", y).flag_ids()
+
+
+def test_shift_scan_on_a_difference_where_b_wins():
+    """``tone - tap`` where tap responds more (both correctly timed): best shift near 0 and
+    no timing flag; a late tap response, judged on ``tone - tap``, is still found late."""
+    from voxelscope.core.checks import voxel_checks
+
+    rng = np.random.default_rng(5)
+    on = jittered_events(rng, lo=6.0, hi=12.0)
+    tone, tap = on[0::2], on[1::2]
+    conds = [
+        Condition("tone", tone, np.zeros(tone.size)),
+        Condition("tap", tap, np.zeros(tap.size)),
+    ]
+    a = Analysis(conds, N, TR)
+    s = ModelSettings(kernels=("double-gamma",), contrast="tone - tap")
+    y = 100 + 5 * simulate(tone, np.zeros(tone.size)) + 30 * simulate(tap, np.zeros(tap.size))
+    y = y + rng.standard_normal(N)
+    scan = shift_scan(a, s, "double-gamma", y)
+    assert scan.t_at_zero < -5 and scan.best_shift_s == pytest.approx(0.0, abs=0.5)
+    assert "timing" not in voxel_checks(a, s, "double-gamma", y).flag_ids()
+    late = 100 + 5 * simulate(tone, np.zeros(tone.size))
+    late = late + 30 * simulate(tap, np.zeros(tap.size), shift_s=3.0) + rng.standard_normal(N)
+    scan = shift_scan(a, s, "double-gamma", late)
+    assert scan.direction == -1.0 and scan.best_shift_s == pytest.approx(3.0, abs=0.75)
+
+
+def test_fir_window_in_seconds_whatever_the_tr():
+    """The FIR window is seconds (24 by default): at TR 0.72 the bins reach 24 s, not 12 TR
+    (8.6 s); the estimate of the checks uses the settings' bins, as the Fits table."""
+    on = np.arange(10.0, 560.0, 17.0)
+    a = Analysis([Condition("tone", on, np.zeros(on.size))], 800, 0.72)
+    k = a.kernel("fir", ModelSettings())
+    assert k.n_bins * k.bin_s >= 24.0 and k.bin_s == 0.72 and (k.n_bins - 1) * k.bin_s < 24.0
+    s = ModelSettings(kernels=(), fir_window_s=16.0, fir_bin_s=2.0)
+    k2 = a.kernel("fir", s)
+    assert (k2.n_bins, k2.bin_s) == (8, 2.0)
+    y = 100 + np.random.default_rng(0).standard_normal(800)
+    fir = fir_estimate(a, s, y, "tone")
+    assert fir.times.size == 8 and fir.bin_s == 2.0
+
+
+def test_periodicity_only_for_periodic_designs():
+    """Blocks repeating every 60 s are periodic; random event-related designs, with or
+    without a quiet ending, are not (their periodogram peaks at one cycle per run)."""
+    from voxelscope.core.design import build_design
+    from voxelscope.core.timing import task_periodicity
+
+    tr, n = 2.0, 300
+    blocks = build_design([Condition("b", np.arange(10.0, 590.0, 60.0), [30.0] * 10)], n, tr)
+    period, cycles, share = task_periodicity(blocks.column("b"), tr)
+    assert period == pytest.approx(60.0, rel=0.05) and cycles >= 3 and share > 0.4
+    rng = np.random.default_rng(2)
+    for quiet_s in (0.0, 120.0, 300.0):
+        on = np.cumsum(rng.uniform(3.0, 9.0, 200))
+        on = on[on < n * tr - 20 - quiet_s]
+        d = build_design([Condition("e", on, np.full(on.size, 3.0))], n, tr)
+        assert task_periodicity(d.column("e"), tr)[0] is None

@@ -40,8 +40,9 @@ def test_table_equals_core_fit(window, ras_run, noise):
     assert window.open_run(ras_run["run"], background=False)
     st = window.state
     st.set_voxel(ras_run["hot"])
-    # 6 FIR bins: 12 would span the whole 40 s period of this synthetic design (collinear)
-    assert st.update_settings(noise=noise, fir_bins=6)
+    # 6 FIR bins of one TR: 24 s would span the whole 40 s period of this synthetic design
+    # (collinear)
+    assert st.update_settings(noise=noise, fir_window_s=6 * window.state.analysis.tr)
     assert st.update_settings(kernels=("boxcar", "gamma", "double-gamma", "fir"))
     table = _table(window)
     _a, _y, fits = _core(ras_run, st.settings, ras_run["hot"])

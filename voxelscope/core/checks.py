@@ -46,10 +46,13 @@ Fits table and the maps.
   ``sampling=voxel_size``, the grid border counting as outside; a voxel on the edge is one
   voxel size away; 0.0 outside the mask.
 * **Timing** (:mod:`voxelscope.core.timing`): the t against an onset shift of -4..+8 s,
-  ``best_shift_s`` and ``peak_latency_s = kernel.peak_s() + best_shift_s``; the FIR
-  estimate (one bin per TR over 24 s) with each kernel's fitted response.
+  ``best_shift_s`` (largest t in the direction of the t as given) and
+  ``peak_latency_s = kernel.peak_s() + best_shift_s``; the FIR estimate (the settings'
+  FIR bins, one TR over 24 s by default) with each kernel's fitted response.
 * **Spectrum**: ``scipy.signal.periodogram`` of the demeaned voxel with ``fs = 1 / TR``;
-  ``task_hz`` is the peak of the condition regressor's periodogram and ``highpass_hz`` is
+  ``task_hz`` is the peak of the condition regressor's periodogram, ``task_periodic``
+  says whether the design truly repeats (:func:`voxelscope.core.timing.task_periodicity`;
+  only then can the task be "close to the high-pass cutoff"), ``highpass_hz`` is
   ``1 / highpass_s``; ``drift_fraction`` is the share of the voxel's power below it.
 
 Examples
@@ -95,7 +98,7 @@ from .errors import InputError, ModelError
 from .glm import PreparedDesign, ar1_rho, fit, prais_winsten, prepare
 from .hrf import Kernel
 from .model import Analysis, ModelSettings
-from .timing import SHIFTS_S, fir_estimate, shift_scan
+from .timing import SHIFTS_S, fir_estimate, shift_scan, task_periodicity
 
 __all__ = [
     "ACF_POSITIVE",
@@ -702,12 +705,19 @@ def _spectrum_part(
     x = d.X[:, d.condition_columns[cond][0]]
     fx, px = signal.periodogram(x - x.mean(), fs=1.0 / tr)
     task_hz = float(fx[1 + int(np.argmax(px[1:]))]) if np.any(px[1:] > 0) else None
+    period, _cycles, _share = task_periodicity(x, tr)
     hp_hz = None if highpass_s is None else 1.0 / float(highpass_s)
     drift = None
     total = float(np.sum(power[1:]))
     if hp_hz is not None and total > 0:
         drift = float(np.sum(power[(freqs > 0) & (freqs < hp_hz)]) / total)
-    spectrum = {"freqs_hz": freqs, "power": power, "task_hz": task_hz, "highpass_hz": hp_hz}
+    spectrum = {
+        "freqs_hz": freqs,
+        "power": power,
+        "task_hz": task_hz,
+        "task_periodic": period is not None,
+        "highpass_hz": hp_hz,
+    }
     return {"spectrum": spectrum, "drift_fraction": drift}
 
 
@@ -881,12 +891,16 @@ def _secs(x: float) -> str:
 def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     if c.best_shift_s is None or c.peak_latency_s is None or not math.isfinite(c.t_at_zero_shift):
         return []
-    t_best = float(np.nanmax(c.shift_t))
+    # in the direction of the t as given: a deactivation or an A - B where B wins is
+    # judged on -t (see voxelscope.core.timing.shift_scan)
+    sign = -1.0 if c.t_at_zero_shift < 0 else 1.0
+    t_best = sign * float(np.nanmax(sign * c.shift_t))
+    gain = sign * (t_best - c.t_at_zero_shift)
     if (
         abs(c.best_shift_s) < SHIFT_LIMIT_S
-        or t_best < SHIFT_T_MIN
-        or t_best - c.t_at_zero_shift < SHIFT_T_GAIN
-        or t_best - c.t_at_zero_shift < SHIFT_REL_GAIN * abs(c.t_at_zero_shift)
+        or abs(t_best) < SHIFT_T_MIN
+        or gain < SHIFT_T_GAIN
+        or gain < SHIFT_REL_GAIN * abs(c.t_at_zero_shift)
     ):
         return []
     when = "later" if c.best_shift_s > 0 else "earlier"
@@ -931,7 +945,8 @@ def _spectrum_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         )
         out.append(Flag("drift", text, "spectrum"))
     task, hp = c.spectrum.get("task_hz"), c.spectrum.get("highpass_hz")
-    if task and hp and task < SLOW_TASK_RATIO * hp:
+    periodic = bool(c.spectrum.get("task_periodic", True))
+    if task and hp and periodic and task < SLOW_TASK_RATIO * hp:
         text = (
             f"The task repeats about every {1 / task:.0f} s, close to the high-pass cutoff of "
             f"{1 / hp:.0f} s, which removes part of the response."

@@ -6,14 +6,18 @@ would show with the onsets moved.
 
 * :func:`shift_scan` - the contrast's t with every onset moved by each of :data:`SHIFTS_S`
   (``-4 .. +8 s`` in steps of 0.25 s, relative to the settings' own ``onset_shift_s``).
-  The best shift maximises the signed t (the contrast's direction); the response's peak
-  latency is the kernel's own time to peak plus that shift.
-* :func:`fir_estimate` - a finite impulse response model with one bin per TR over
-  :data:`FIR_SPAN_S` seconds, with the settings' confounds, drift and noise model; standard
-  errors ``sqrt(sigma2 * diag(cov_unscaled))``. Each bin's time is the mean time after onset
-  of the samples that fall in it (the bin centre when no sample does), so onsets locked to
-  the volume grid are not drawn half a TR late. Each kernel's fitted response to one event
-  of the condition (its median duration) comes with it, for drawing over the estimate.
+  The best shift maximises t in the direction of the t at zero shift (``direction`` = its
+  sign), so a well-timed deactivation, or ``A - B`` where B wins, is best where it is,
+  not where its t happens to be least negative; the response's peak latency is the
+  kernel's own time to peak plus that shift.
+* :func:`fir_estimate` - a finite impulse response model with the settings' FIR bins
+  (``fir_bin_s``, one TR by default, over ``fir_window_s``, 24 s by default: the same
+  kernel as FIR in the Fits table), with the settings' confounds, drift and noise model;
+  standard errors ``sqrt(sigma2 * diag(cov_unscaled))``. Each bin's time is the mean time
+  after onset of the samples that fall in it (the bin centre when no sample does), so
+  onsets locked to the volume grid are not drawn half a TR late. Each kernel's fitted
+  response to one event of the condition (its median duration) comes with it, for drawing
+  over the estimate.
 
 Examples
 --------
@@ -39,22 +43,75 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+from scipy import signal
 
-from .design import stimulus_regressor
+from .design import BRIEF_EVENT_S, stimulus_regressor
 from .errors import ModelError
 from .events import Condition
 from .glm import fit
-from .hrf import Kernel, get_kernel
+from .hrf import Kernel
 from .model import Analysis, ModelSettings
 
-__all__ = ["FIR_SPAN_S", "SHIFTS_S", "FirEstimate", "ShiftScan", "fir_estimate", "shift_scan"]
+__all__ = [
+    "FIR_SPAN_S",
+    "PERIODIC_MIN_CYCLES",
+    "PERIODIC_MIN_SHARE",
+    "SHIFTS_S",
+    "FirEstimate",
+    "ShiftScan",
+    "fir_estimate",
+    "shift_scan",
+    "task_periodicity",
+]
 
 #: Onset shifts of the timing scan, seconds: -4 .. +8 in steps of 0.25 (exact binary values,
 #: so the cached designs are found again on the next click).
 SHIFTS_S: tuple[float, ...] = tuple(float(k) * 0.25 for k in range(-16, 33))
-#: Span of the FIR estimate in seconds (bins of one TR).
+#: Default span of the FIR estimate in seconds (``ModelSettings.fir_window_s``).
 FIR_SPAN_S = 24.0
 _FINE_DT = 0.25  # s, grid of the drawn kernel responses
+#: A regressor is periodic when its strongest frequency repeats at least this often in the
+#: run ...
+PERIODIC_MIN_CYCLES = 3.0
+#: ... and that frequency (with its two neighbouring periodogram bins) holds at least this
+#: share of the regressor's power. (Our own rule: blocks of equal length with jittered rests
+#: give 0.65-0.9; random event-related designs peak at one cycle per run, the slow rise
+#: and fall of the response, and are never called periodic.)
+PERIODIC_MIN_SHARE = 0.4
+
+
+def task_periodicity(x: np.ndarray, tr: float) -> tuple[float | None, float, float]:
+    """Is a condition's regressor periodic? Its strongest period, cycles and power share.
+
+    ``scipy.signal.periodogram`` of the demeaned regressor (``fs = 1 / tr``); the peak
+    (above zero frequency) and its two neighbouring bins give the share of the power.
+
+    Returns
+    -------
+    period_s : float or None
+        The strongest period when the design is periodic (see :data:`PERIODIC_MIN_CYCLES`
+        and :data:`PERIODIC_MIN_SHARE`), else None.
+    cycles : float
+        How many times that period fits in the run.
+    share : float
+        Share of the power at the peak (NaN for a constant regressor).
+
+    >>> tr, n = 2.0, 150
+    >>> t = np.arange(n) * tr
+    >>> period, cycles, share = task_periodicity(((t % 60) < 30).astype(float), tr)
+    >>> period, cycles
+    (60.0, 5.0)
+    """
+    x = np.asarray(x, dtype=float).reshape(-1)
+    f, p = signal.periodogram(x - x.mean(), fs=1.0 / tr)
+    total = float(np.sum(p[1:]))
+    if x.size < 4 or not total > 0:
+        return None, math.nan, math.nan
+    i = 1 + int(np.argmax(p[1:]))
+    share = float(np.sum(p[max(1, i - 1) : i + 2]) / total)
+    cycles = float(f[i] * x.size * tr)
+    periodic = cycles >= PERIODIC_MIN_CYCLES - 1e-9 and share >= PERIODIC_MIN_SHARE
+    return (float(1.0 / f[i]) if periodic else None), cycles, share
 
 
 @dataclass(frozen=True, eq=False)
@@ -68,7 +125,9 @@ class ShiftScan:
     t_at_zero : float
         t with the onsets as the settings give them.
     best_shift_s : float or None
-        Shift of the largest signed t.
+        Shift of the largest ``direction * t``.
+    direction : float
+        Sign of ``t_at_zero`` (+1 when it is 0 or undefined): the contrast's direction.
     kernel_peak_s : float
         The kernel's own time to peak.
     peak_latency_s : float or None
@@ -81,11 +140,14 @@ class ShiftScan:
     best_shift_s: float | None
     kernel_peak_s: float
     peak_latency_s: float | None
+    direction: float = 1.0
 
     @property
     def t_best(self) -> float:
-        """The largest t of the scan (NaN when none is finite)."""
-        return float(np.nanmax(self.t)) if np.isfinite(self.t).any() else math.nan
+        """The t of the best shift, signed (NaN when none is finite)."""
+        if not np.isfinite(self.t).any():
+            return math.nan
+        return float(self.direction * np.nanmax(self.direction * self.t))
 
 
 def shift_scan(
@@ -114,9 +176,10 @@ def shift_scan(
     t = np.array([_shift_t(analysis, settings, kernel, y, float(s)) for s in sh])
     zero = np.flatnonzero(sh == 0.0)
     t0 = float(t[zero[0]]) if zero.size else math.nan
-    best = float(sh[int(np.nanargmax(t))]) if np.isfinite(t).any() else None
+    sign = -1.0 if (math.isfinite(t0) and t0 < 0) else 1.0
+    best = float(sh[int(np.nanargmax(sign * t))]) if np.isfinite(t).any() else None
     k_peak = float(analysis.kernel(kernel, settings).peak_s())
-    return ShiftScan(sh, t, t0, best, k_peak, None if best is None else k_peak + best)
+    return ShiftScan(sh, t, t0, best, k_peak, None if best is None else k_peak + best, sign)
 
 
 def _shift_t(
@@ -183,9 +246,12 @@ def fir_estimate(
     settings: ModelSettings,
     y: np.ndarray,
     condition: str,
-    span_s: float = FIR_SPAN_S,
+    span_s: float | None = None,
 ) -> FirEstimate:
-    """FIR estimate (one bin per TR) of a condition's response at one voxel.
+    """FIR estimate of a condition's response at one voxel, with the settings' FIR bins.
+
+    ``span_s`` overrides ``settings.fir_window_s``; bins are ``settings.fir_bin_s`` wide
+    (one TR when None), as for the FIR kernel of the Fits table.
 
     Every condition gets its FIR bins (the model stays complete); the settings' confounds,
     drift and noise model are kept, derivatives are not used. Each kernel in
@@ -197,9 +263,9 @@ def fir_estimate(
         The FIR design cannot be fitted (too few volumes for the bins).
     """
     y = np.asarray(y, dtype=float).reshape(-1)
-    tr = analysis.tr
-    n_bins = max(1, math.ceil(span_s / tr - 1e-9))
-    fk = get_kernel("fir", n_bins=n_bins, bin_s=tr)
+    fir_settings = settings if span_s is None else settings.with_(fir_window_s=float(span_s))
+    fk = analysis.fir_kernel(fir_settings)
+    n_bins, bin_s = fk.n_bins, fk.bin_s  # type: ignore[attr-defined]
     d, prep = analysis.prepared(fk, settings.with_(derivatives=0))
     cols = list(d.condition_columns[condition])
     w = np.zeros(d.n_columns)
@@ -208,8 +274,8 @@ def fir_estimate(
     est = res.betas[cols, 0].copy()
     cov = res.cov_unscaled[int(res.group[0])]
     se = np.sqrt(float(res.sigma2[0]) * np.diag(cov)[cols])
-    times = _bin_times(analysis, settings, condition, n_bins, d.frame_times)
-    fine = np.arange(0.0, n_bins * tr + 1e-9, _FINE_DT)
+    times = _bin_times(analysis, settings, condition, n_bins, bin_s, d.frame_times)
+    fine = np.arange(0.0, n_bins * bin_s + 1e-9, _FINE_DT)
     at_bins: dict[str, np.ndarray] = {}
     at_fine: dict[str, np.ndarray] = {}
     for name in settings.kernels:
@@ -224,7 +290,7 @@ def fir_estimate(
         at_bins[str(name)], at_fine[str(name)] = both[: times.size], both[times.size :]
     sign = 1.0 if float(np.sum(est)) >= 0 else -1.0
     peak = float(times[int(np.argmax(sign * est))]) if est.size else None
-    return FirEstimate(condition, times, est, se, float(tr), peak, at_bins, fine, at_fine)
+    return FirEstimate(condition, times, est, se, float(bin_s), peak, at_bins, fine, at_fine)
 
 
 def _bin_times(
@@ -232,14 +298,14 @@ def _bin_times(
     settings: ModelSettings,
     condition: str,
     n_bins: int,
+    bin_s: float,
     frame_times: np.ndarray,
 ) -> np.ndarray:
-    tr = analysis.tr
     c = next(c for c in analysis.conditions if c.name == condition)
     lag = frame_times[:, None] - (c.onsets + float(settings.onset_shift_s))[None, :]
-    b = np.floor(lag / tr + 1e-9).astype(int)
+    b = np.floor(lag / bin_s + 1e-9).astype(int)
     inside = lag >= -1e-9
-    out = (np.arange(n_bins) + 0.5) * tr
+    out = (np.arange(n_bins) + 0.5) * bin_s
     for k in range(n_bins):
         sel = inside & (b == k)
         if sel.any():
@@ -262,11 +328,14 @@ def _kernel_response(
     k = d.kernel
     c = next(c for c in analysis.conditions if c.name == condition)
     dur = float(np.median(c.durations)) if c.n_events else 0.0
-    if k.name == "boxcar" and dur == 0:
-        dur = analysis.tr  # as the design does for brief events under boxcar
     one = Condition(condition, [0.0], [dur])
     dt = analysis.tr / 16.0
     total = np.zeros(times.size)
+    if k.name == "boxcar":
+        # the stimulus itself: height 1 during the event (a brief event lasts 1 s)
+        col = d.names.index(condition)
+        box = (times >= 0) & (times < (dur if dur > 0 else BRIEF_EVENT_S))
+        return res.betas[col, 0] * box.astype(float)
     for suffix, h in k.basis(dt, settings.derivatives):
         col = d.names.index(condition + suffix)
         reg = stimulus_regressor(one, h, times, dt, use_durations=k.uses_durations)

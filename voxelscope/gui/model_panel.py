@@ -126,12 +126,33 @@ class ModelPanel(QWidget):
             self.kernel_boxes[name] = box
         fir_row = QHBoxLayout()
         fir_row.addSpacing(22)
-        fir_row.addWidget(QLabel("FIR bins"))
-        self.fir_bins = QSpinBox()
-        self.fir_bins.setRange(2, 40)
-        self.fir_bins.setToolTip("Number of FIR bins (each one TR long)")
-        self.fir_bins.valueChanged.connect(lambda v: self.state.update_settings(fir_bins=int(v)))
-        fir_row.addWidget(self.fir_bins)
+        fir_row.addWidget(QLabel("FIR over"))
+        self.fir_window = QDoubleSpinBox()
+        self.fir_window.setObjectName("fir_window")
+        self.fir_window.setRange(2.0, 120.0)
+        self.fir_window.setSingleStep(2.0)
+        self.fir_window.setDecimals(1)
+        self.fir_window.setSuffix(" s")
+        self.fir_window.setToolTip(
+            "Span of the FIR kernel after each onset, in seconds (also used by Checks)"
+        )
+        self.fir_window.valueChanged.connect(
+            lambda v: self.state.update_settings(fir_window_s=float(v))
+        )
+        fir_row.addWidget(self.fir_window)
+        fir_row.addWidget(QLabel("bins"))
+        self.fir_bin = QDoubleSpinBox()
+        self.fir_bin.setObjectName("fir_bin")
+        self.fir_bin.setRange(0.0, 30.0)
+        self.fir_bin.setSingleStep(0.5)
+        self.fir_bin.setDecimals(2)
+        self.fir_bin.setSuffix(" s")
+        self.fir_bin.setSpecialValueText("one TR")
+        self.fir_bin.setToolTip("Width of each FIR bin in seconds; the lowest value means one TR")
+        self.fir_bin.valueChanged.connect(
+            lambda v: self.state.update_settings(fir_bin_s=float(v) if v > 0 else None)
+        )
+        fir_row.addWidget(self.fir_bin)
         fir_row.addStretch(1)
         kl.addLayout(fir_row)
         lay.addWidget(kernels)
@@ -330,7 +351,8 @@ class ModelPanel(QWidget):
     def _on_settings(self, s) -> None:
         widgets = [
             *self.kernel_boxes.values(),
-            self.fir_bins,
+            self.fir_window,
+            self.fir_bin,
             self.noise,
             self.highpass,
             self.highpass_none,
@@ -345,7 +367,8 @@ class ModelPanel(QWidget):
         try:
             for name, box in self.kernel_boxes.items():
                 box.setChecked(name in s.kernels)
-            self.fir_bins.setValue(int(s.fir_bins))
+            self.fir_window.setValue(float(s.fir_window_s))
+            self.fir_bin.setValue(float(s.fir_bin_s or 0.0))
             self.noise.setCurrentIndex(max(0, self.noise.findData(s.noise)))
             self.highpass_none.setChecked(s.highpass_s is None)
             self.highpass.setEnabled(s.highpass_s is not None)
