@@ -170,3 +170,20 @@ def test_request_lists_its_inputs_and_never_modifies_them(tmp_path):
 def test_gzip_run_is_not_read_for_a_missing_run(tmp_path):
     with pytest.raises(InputError, match="run file not found"):
         load_inputs(InputRequest(tmp_path / "missing_bold.nii.gz"))
+
+
+def test_events_options_go_through_the_one_way_in(tmp_path):
+    """Issue 13 options reach the core loader: the condition column, onsets in volumes
+    (times the TR) and the events file's own notes in the one warning list."""
+    run = _write(tmp_path, "sub-01_task-x_bold.nii", events=False)
+    (tmp_path / "sub-01_task-x_events.tsv").write_text(
+        "onset\tduration\ttrial_type\thand\n3\t6\tpress\tL\n15\tn/a\tpress\tR\n27\t6\tpress\tL\n"
+    )
+    got = load_inputs(InputRequest(run, condition_column="hand", onset_unit="volumes"))
+    assert got.analysis.condition_names == ("L", "R")
+    np.testing.assert_allclose(got.analysis.conditions[0].onsets, [6.0, 54.0])  # volumes * TR
+    np.testing.assert_allclose(got.analysis.conditions[0].durations, [12.0, 12.0])
+    assert any("1 event(s) have duration n/a" in w for w in got.warnings)
+    assert got.analysis.events_file.condition_candidates == ("trial_type", "hand")
+    one = load_inputs(InputRequest(run, condition_column="none"))
+    assert one.analysis.condition_names == ("x",)  # named after the task

@@ -11,7 +11,9 @@ Timing conventions
   convolved there with the kernel, and read at the volume times by linear interpolation.
   Partial overlap of an event with a fine bin counts in proportion. Boxcar and FIR
   columns are computed exactly instead: a boxcar value is the fraction of the volume's TR
-  window ``[t - reference_time_s, t - reference_time_s + TR)`` that events cover (a
+  window ``[t, t + TR)`` (``t`` its sampling time; the acquisition window when
+  ``reference_time_s`` is 0, and sampling later equals moving every onset earlier, as for
+  the other kernels) that events cover (a
   brief event counts as :data:`BRIEF_EVENT_S` = 1 s, the area an impulse has under the
   unit-area kernels), so the regressor's area ``sum(x) * TR`` equals the stimulation time
   and no event vanishes between volumes; an FIR column is 1 where the time since an onset
@@ -263,13 +265,11 @@ def _fir_column(condition: Condition, fir: FIR, k: int, times: np.ndarray) -> np
     return inside.astype(float) @ condition.amplitudes
 
 
-def boxcar_regressor(
-    condition: Condition, times: np.ndarray, tr: float, reference_time_s: float = 0.0
-) -> np.ndarray:
+def boxcar_regressor(condition: Condition, times: np.ndarray, tr: float) -> np.ndarray:
     """Fraction of each volume's TR window covered by the condition's events.
 
-    Volume ``n`` (sampled at ``times[n]``) covers ``[times[n] - reference_time_s,
-    times[n] - reference_time_s + tr)``. Each event adds ``amplitude * overlap / tr``;
+    Volume ``n`` (sampled at ``times[n]``) stands for ``[times[n], times[n] + tr)``.
+    Each event adds ``amplitude * overlap / tr``;
     a zero-duration event lasts :data:`BRIEF_EVENT_S`. So ``sum(x) * tr`` is the summed
     ``amplitude * duration`` of the events inside the run.
 
@@ -279,7 +279,7 @@ def boxcar_regressor(
     """
     if condition.n_events == 0:
         return np.zeros(times.shape)
-    lo = times[:, None] - float(reference_time_s)
+    lo = times[:, None]
     hi = lo + float(tr)
     du = np.where(condition.durations > 0, condition.durations, BRIEF_EVENT_S)
     on = condition.onsets[None, :]
@@ -353,7 +353,7 @@ def build_design(
             if isinstance(k, FIR):  # exact boxes at the volume times, no fine-grid smear
                 cols.append(_fir_column(cond, k, j, times))
             elif isinstance(k, Boxcar):  # covered fraction of each volume's TR window
-                cols.append(boxcar_regressor(cond, times, tr, reference_time_s))
+                cols.append(boxcar_regressor(cond, times, tr))
             else:
                 cols.append(stimulus_regressor(cond, h, times, dt, use_durations=k.uses_durations))
             names.append(label + suffix)
