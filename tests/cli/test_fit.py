@@ -266,6 +266,9 @@ def test_checks_in_json(tmp_path, capsys):
     f = doc["fits"][0]
     assert CHECK_KEYS <= set(f["checks"])
     assert set(f["checks"]["fir"]) >= {"times", "estimate", "se"}
+    resp = f["checks"]["response"]  # issue 13: the peri-event response in the JSON
+    assert set(resp) >= {"times", "mean", "ci_low", "ci_high", "n_events", "predictions"}
+    assert set(resp["predictions"]) == {"double-gamma"} and max(resp["n_events"]) >= 2
     assert set(f["checks"]["vif"]) == set(f["columns"])
     np.testing.assert_allclose(
         f["checks"]["durbin_watson"], durbin_watson(f["residuals"]), rtol=1e-10

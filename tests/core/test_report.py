@@ -160,7 +160,9 @@ def test_html_stands_alone(demo, tmp_path):
     assert {v[1:] for _t, k, v in refs if k == "href"} <= ids
     # the embedded PNG is the figure written beside the page
     srcs = [v for t, k, v in html.attrs if t == "img" and k == "src"]
-    assert len(srcs) == 2
+    # per mark: the signal figure and the response around the contrast's condition's onsets
+    assert len(srcs) == 4
+    assert text.count("Response around the onsets of <b>") == 2
     assert (
         base64.b64decode(srcs[0].split(",", 1)[1]) == (tmp_path / "out" / "01-a.png").read_bytes()
     )

@@ -373,3 +373,23 @@ def test_fits_headers_are_not_clipped_in_a_small_window(win, ras_run, qtbot):
     assert "variance" in names
     for c in range(1, len(names)):
         assert table.columnWidth(c) >= hh.sectionSizeHint(c), names[c]
+
+
+def test_response_figure_draws_the_cores_average(win, qtbot, demo_files):
+    """Issue 13: the Around onsets figure draws the core's peri-event mean, band and each
+    kernel's prediction (the numbers of voxelscope.core.response, tested against
+    statsmodels there)."""
+    st = _open_demo(win)
+    panel = _show_checks(win, qtbot)
+    ijk = tuple(_truth()["late_cluster"]["centre_voxel"])
+    st.set_voxel(ijk)
+    shown = _settle(panel, qtbot)
+    panel.show_figure("response")
+    page = panel.stack.currentWidget()
+    assert page.key == "response"
+    r = shown.response
+    x, y = page.mean.getData()
+    np.testing.assert_allclose(x, r["times"])
+    np.testing.assert_allclose(y, r["mean"])
+    assert set(r["predictions"]) == set(st.settings.kernels)
+    assert "averaged over" in page.caption.text()

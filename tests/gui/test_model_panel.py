@@ -125,3 +125,42 @@ def test_units_toggle_percent(window, ras_run):
     np.testing.assert_allclose(shown, 100 * (y - y.mean()) / y.mean(), rtol=1e-12)
     t = window.signal.data_curve.xData
     np.testing.assert_allclose(np.diff(t), st.run.tr)
+
+
+def _gamble_events(spec):
+    """Rewrite the run's events with a gain column (with an n/a) and a second text column."""
+    events = spec["run"].parent / "sub-ras_task-tt_events.tsv"
+    rng = np.random.default_rng(5)
+    lines = ["onset\tduration\ttrial_type\tgain\tside"]
+    for i, on in enumerate(range(4, 150, 9)):
+        gain = "n/a" if i == 3 else f"{rng.uniform(1, 40):.2f}"
+        lines.append(f"{on}\t3\tgamble\t{gain}\t{'LR'[i % 2]}")
+    events.write_text("\n".join(lines) + "\n")
+
+
+def test_modulators_and_condition_column_in_model(window, ras_run, qtbot):
+    """Issue 13 in the window: the Events group lists the numeric columns; checking one
+    refits with CONDITION:MODULATOR (the same numbers as the core with those settings),
+    the completer and the contrast know the name, the n/a count is said; choosing another
+    condition column reads the file again."""
+    _gamble_events(ras_run)
+    messages = []
+    window.state.message.connect(messages.append)
+    st = _open(window, ras_run)
+    box = window.model_panel.events_box
+    assert box.isVisibleTo(window) and box.modulators.count() == 1
+    assert box.column.isVisibleTo(window)  # trial_type and side
+    item = box.modulators.item(0)
+    assert item.text() == "gain"
+    item.setCheckState(Qt.CheckState.Checked)
+    assert st.settings.modulators == ("gain",)
+    assert "gamble:gain" in window.model_panel.contrast.names()
+    assert any("is n/a for 1 of 17 events" in m for m in messages)
+    assert window.state.set_contrast("gamble:gain")
+    expected = st.analysis.fit_voxel(st.series, st.settings).by_kernel("gamma")
+    assert st.fits.by_kernel("gamma").t == pytest.approx(expected.t, rel=1e-12)
+    assert "gamble:gain" in st.fits.by_kernel("gamma").design.names
+    box.column.setCurrentIndex(box.column.findData("side"))
+    box.column.activated.emit(box.column.currentIndex())
+    assert st.analysis.condition_names == ("L", "R")
+    assert st.settings.modulators == ()

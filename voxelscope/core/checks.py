@@ -98,6 +98,7 @@ from .errors import InputError, ModelError
 from .glm import PreparedDesign, ar1_rho, fit, prais_winsten, prepare
 from .hrf import Kernel
 from .model import Analysis, ModelSettings
+from .response import peri_event_response
 from .timing import SHIFTS_S, fir_estimate, shift_scan, task_periodicity
 
 __all__ = [
@@ -233,6 +234,9 @@ class VoxelChecks:
     tsnr, edge_distance_mm, in_mask : signal quality and place (None without a run/ijk)
     shifts_s, shift_t, t_at_zero_shift, best_shift_s, kernel_peak_s, peak_latency_s : timing
     fir : dict with times, estimate, se, bin_s, peak_s, kernels, kernel_times, kernels_fine
+    response : dict with times, mean, ci_low, ci_high, n_events, bin_s, baseline_s,
+        window_s, predictions, note: the data averaged around the condition's onsets
+        (:func:`voxelscope.core.response.peri_event_response`)
     spectrum : dict with freqs_hz, power, task_hz, highpass_hz
     drift_fraction : share of the voxel's power below the high-pass cutoff
     flags : tuple of Flag
@@ -293,6 +297,7 @@ class VoxelChecks:
     peak_latency_s: float | None = None
     # shape and spectrum
     fir: dict[str, Any] = field(default_factory=lambda: {"times": [], "estimate": [], "se": []})
+    response: dict[str, Any] = field(default_factory=lambda: {"times": [], "mean": []})
     spectrum: dict[str, Any] = field(default_factory=dict)
     drift_fraction: float | None = None
     flags: tuple[Flag, ...] = ()
@@ -466,6 +471,7 @@ def voxel_checks(
         parts["fir"] = fir_estimate(analysis, settings, y, cond).to_json()
     except ModelError as exc:
         notes.append(f"no FIR estimate: {exc}")
+    parts["response"] = peri_event_response(analysis, settings, y, cond).to_json()
     # the spectrum needs every volume: left-out ones take their fitted value
     y_spec = y if keep is None else np.where(keep, y, ols.fitted[:, 0])
     parts.update(_spectrum_part(y_spec, d, cond, tr, settings.highpass_s))

@@ -55,6 +55,7 @@ __all__ = [
     "kernel_colours",
     "nice_ticks",
     "png_size",
+    "response_figure",
     "signal_figure",
     "text_width",
 ]
@@ -742,4 +743,110 @@ def signal_figure(
     rseries = [(t, r, kcol[name], 1.3) for (name, _f, _r), r in zip(fits, resid)]
     _draw_panel(fig, res, bands, rseries, "residual", xticks, True, True, font, band_opacity)
     fig.add(Text(left + pw / 2, height - 12, "time (s)", font + 1, "#222222", "middle"))
+    return fig
+
+
+def response_figure(
+    response: dict,
+    fir: dict | None = None,
+    title: str = "",
+    width: float = 900.0,
+    height: float = 420.0,
+    colours: dict[str, str] | None = None,
+) -> Figure:
+    """The peri-event response of one condition, for reports.
+
+    Parameters
+    ----------
+    response : dict
+        :meth:`voxelscope.core.response.PeriEventResponse.to_json` (``None`` for missing
+        values is accepted).
+    fir : dict, optional
+        :meth:`voxelscope.core.timing.FirEstimate.to_json`, drawn as the FIR estimate.
+    title : str
+    width, height : float
+    colours : dict, optional
+        Kernel colours (default :func:`kernel_colours`).
+
+    The data average is drawn with its 95% band as two thin lines, each kernel's
+    prediction in its colour, the FIR estimate in the FIR colour; the baseline before the
+    onset is shaded.
+
+    Examples
+    --------
+    >>> r = {"times": [-2, 0, 2, 4], "mean": [0, 0.1, 1.0, 0.5], "ci_low": [-.1, 0, .8, .3],
+    ...      "ci_high": [.1, .2, 1.2, .7], "baseline_s": 4.0,
+    ...      "predictions": {"gamma": [0, 0, 1, .4]}}
+    >>> "gamma" in response_figure(r, title="tone").to_svg()
+    True
+    """
+
+    def arr(v) -> np.ndarray:
+        return np.array([np.nan if x is None else float(x) for x in (v or [])], dtype=float)
+
+    colours = {**kernel_colours(), **(colours or {})}
+    spare = iter(_SPARE_COLOURS * 4)
+    t = arr(response.get("times"))
+    mean, lo, hi = (
+        arr(response.get("mean")),
+        arr(response.get("ci_low")),
+        arr(response.get("ci_high")),
+    )
+    preds = {k: arr(v) for k, v in (response.get("predictions") or {}).items()}
+    fir = fir or {}
+    ft, fe = arr(fir.get("times")), arr(fir.get("estimate"))
+    dcol = data_colour()
+    fig = Figure(width, height)
+    font = 11.0
+    left, right, top = 84.0, 18.0, 14.0
+    if title:
+        fig.add(Text(left, top + 8, title, 13.0, "#111111", "start"))
+        top += 24.0
+    entries = [("data, mean over events", dcol, 2.2), ("95% band", dcol, 0.9)]
+    kcol = {k: colours.get(k) or next(spare) for k in preds}
+    entries += [(k, kcol[k], 2.0) for k in preds]
+    if fe.size:
+        entries.append(("FIR estimate", colours.get("fir", "#0072B2"), 1.4))
+    x, row_y = left, top + 7
+    for label, colour, w in entries:
+        w_entry = 26 + text_width(label, font) + 18
+        if x + w_entry > width - right and x > left:
+            x, row_y = left, row_y + 18
+        fig.add(Polyline([(x, row_y), (x + 20, row_y)], colour, w))
+        fig.add(Text(x + 26, row_y, label, font, "#222222", "start"))
+        x += w_entry
+    top = row_y + 16
+    all_t = np.concatenate([t, ft]) if ft.size else t
+    finite_t = all_t[np.isfinite(all_t)]
+    xlim = (float(finite_t.min()), float(finite_t.max())) if finite_t.size else (0.0, 1.0)
+    if xlim[1] <= xlim[0]:
+        xlim = (xlim[0], xlim[0] + 1.0)
+    panel = _Panel(
+        left,
+        top,
+        width - left - right,
+        height - top - 44.0,
+        xlim,
+        _limits([mean, lo, hi, *preds.values(), fe], include_zero=True),
+    )
+    base = float(response.get("baseline_s") or 0.0)
+    bands = [(-base, 0.0, "#999999")] if base > 0 else []
+    series = [(t, lo, dcol, 0.9), (t, hi, dcol, 0.9), (t, mean, dcol, 2.2)]
+    series += [(t, v, kcol[k], 2.0) for k, v in preds.items()]
+    if fe.size:
+        series.append((ft, fe, colours.get("fir", "#0072B2"), 1.4))
+    _draw_panel(
+        fig,
+        panel,
+        bands,
+        series,
+        "change from baseline",
+        nice_ticks(*xlim, target=8),
+        True,
+        True,
+        font,
+    )
+    fig.add(
+        Text(left + panel.w / 2, height - 12, "time since onset (s)", font + 1, "#222222", "middle")
+    )
     return fig

@@ -451,6 +451,8 @@ def load_inputs(
             conditions = scale_conditions(conditions, run.tr)
         analysis = analysis_for(run, conditions, confounds)
         analysis.events_file = events_file
+        if events_file is not None:  # said with the run's own notes wherever they are shown
+            analysis.warnings[:0] = list(events_file.warnings)
         warnings.extend(analysis.warnings)
     elif not request.events_required:
         warnings.append(

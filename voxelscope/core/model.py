@@ -240,6 +240,13 @@ class Analysis:
         s = settings.with_(kernels=("boxcar",), highpass_s=None, confound_columns=())
         return list(self.design("boxcar", s).warnings)
 
+    def modulator_columns(self, settings: ModelSettings) -> tuple[str, ...]:
+        """Names of the settings' modulator columns (``condition:modulator``)."""
+        if not settings.modulators:
+            return ()
+        s = settings.with_(kernels=("boxcar",), highpass_s=None, confound_columns=())
+        return tuple(self.design("boxcar", s).modulators)
+
     def fir_kernel(self, settings: ModelSettings) -> Kernel:
         """The FIR kernel of these settings: bins of ``fir_bin_s`` (one TR by default)
         covering ``fir_window_s`` seconds."""

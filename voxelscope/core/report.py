@@ -69,6 +69,7 @@ class ReportSection:
     png: Path | None = None
     svg: Path | None = None
     png_bytes: bytes = b""
+    responses: list[tuple[str, bytes]] = field(default_factory=list)
 
 
 @dataclass
@@ -228,6 +229,49 @@ def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
     return "\n".join(rows)
 
 
+def _response_pngs(
+    analysis: Analysis,
+    settings: ModelSettings,
+    sec: ReportSection,
+    colours: Mapping[str, str],
+    size: tuple[float, float],
+    scale: float,
+) -> list[tuple[str, bytes]]:
+    """One peri-event response figure per condition of the contrast (at most four)."""
+    from .figure import response_figure
+    from .response import peri_event_response
+    from .timing import fir_estimate
+
+    assert sec.fits is not None
+    first = sec.fits.fits[0]
+    w = first.result.weights
+    names = [
+        c
+        for c in analysis.condition_names
+        if np.any(w[list(first.design.condition_columns.get(c, ()))] != 0)
+    ] or [analysis.condition_names[0]]
+    out = []
+    for cond in names[:4]:
+        try:
+            r = peri_event_response(analysis, settings, sec.fits.y, cond).to_json()
+        except VoxelscopeError:
+            continue
+        try:
+            fir = fir_estimate(analysis, settings, sec.fits.y, cond).to_json()
+        except VoxelscopeError:
+            fir = None
+        fig = response_figure(
+            r,
+            fir,
+            title=f"{sec.title}: response to {cond}",
+            width=size[0],
+            height=max(320.0, 0.7 * size[1]),
+            colours=dict(colours),
+        )
+        out.append((cond, fig.to_png(scale=scale)))
+    return out
+
+
 def _checks_html(sec: ReportSection) -> str:
     out = ["<h3>Checks</h3>"]
     if sec.checks_note:
@@ -282,6 +326,16 @@ def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
         f"residuals below; shaded bands are the condition blocks.{_e(shift)}</figcaption>"
         "</figure>"
     )
+    for cond, png in sec.responses:
+        b64 = base64.b64encode(png).decode("ascii")
+        alt = f"response around the onsets of {cond} at {sec.title}"
+        out.append(f"<figure><img alt='{_e(alt)}' src='data:image/png;base64,{b64}'>")
+        out.append(
+            f"<figcaption>Response around the onsets of <b>{_e(cond)}</b>: the data averaged "
+            "over events relative to the seconds before each onset (shaded), with its 95% "
+            "confidence band (thin lines), each kernel's prediction averaged the same way "
+            "and the FIR estimate.</figcaption></figure>"
+        )
     out.append(_fits_table(sec.fits, settings.noise, colours))
     out.append(_checks_html(sec))
     names = [p.name for p in (sec.csv, sec.png, sec.svg) if p is not None]
@@ -566,6 +620,7 @@ def write_report(
             colours=colours,
         )
         sec.png_bytes = fig.to_png(scale=scale)
+        sec.responses = _response_pngs(analysis, settings, sec, colours, size, scale)
         names = (sec.csv.name, sec.png.name, sec.svg.name)  # type: ignore[union-attr]
         return [
             write_text(folder / names[0], format_csv(sec.fits)),
@@ -598,6 +653,7 @@ def write_report(
                     staged += write_section(sec, staging)
                 page.write(_section_html(sec, settings, colours) + "\n")
                 sec.png_bytes = b""  # written: bounded memory however many marks
+                sec.responses = []
                 if not keep:
                     sec.fits, sec.checks = None, {}
             page.write(

@@ -3,8 +3,9 @@
 Each figure draws the numbers of one :class:`voxelscope.core.checks.VoxelChecks` (the core
 computes everything; the figures only draw it). The keys are the ``figure`` names of the
 core's flags: ``acf``, ``influence``, ``shift_scan``, ``fir``, ``spectrum``, ``confounds``
-and ``edge``. Items are made once per figure and only get new data when the voxel, the
-settings or the kernel change.
+and ``edge``, plus ``response`` (the data averaged around the condition's onsets).
+Items are made once per figure and only get new data when the voxel, the settings or the
+kernel change.
 """
 
 from __future__ import annotations
@@ -24,13 +25,23 @@ from voxelscope.gui.colours import colours, condition_colour, kernel_colour
 __all__ = ["FIGURES", "FIGURE_TITLES", "FigurePage", "make_figures"]
 
 #: Figure keys in display order (the core's flag ``figure`` names).
-FIGURES = ("acf", "influence", "shift_scan", "fir", "spectrum", "confounds", "edge")
+FIGURES = (
+    "acf",
+    "influence",
+    "shift_scan",
+    "fir",
+    "response",
+    "spectrum",
+    "confounds",
+    "edge",
+)
 #: Short button titles of the figures.
 FIGURE_TITLES = {
     "acf": "Autocorrelation",
     "influence": "Influence",
     "shift_scan": "Timing",
     "fir": "Response shape",
+    "response": "Around onsets",
     "spectrum": "Spectrum",
     "confounds": "Confounds",
     "edge": "Edge",
@@ -343,12 +354,111 @@ class FirFigure(FigurePage):
         peak_text = f"; FIR peak at {peak:.1f} s" if _finite(peak) else ""
         self.caption.setText(
             f"Response to <b>{html.escape(str(fir.get('condition', c.condition)))}</b>, free "
-            f"shape (one bin per TR){peak_text}.<br>" + "&nbsp; ".join(legend)
+            f"shape (bins of {float(fir.get('bin_s') or 0):g} s){peak_text}.<br>"
+            + "&nbsp; ".join(legend)
         )
         self.plot.enableAutoRange()
 
     def clear(self) -> None:
         for item in (self.estimate, self.upper, self.lower, *self.kernels.values()):
+            item.setData([], [])
+        self.caption.setText("")
+
+
+class ResponseFigure(FigurePage):
+    """The data averaged around the condition's onsets (95% band, baseline before onset),
+    each kernel's prediction averaged the same way, and the FIR estimate."""
+
+    key = "response"
+
+    def __init__(self, parent=None) -> None:
+        super().__init__(parent)
+        self.plot = self.canvas.addPlot()
+        _style(self.plot, "time since onset (s)", "change from baseline")
+        self.plot.addItem(pg.InfiniteLine(angle=0, pos=0, pen=pg.mkPen(_AXIS)), ignoreBounds=True)
+        self.onset = pg.InfiniteLine(
+            angle=90, pos=0, pen=pg.mkPen(_AXIS, style=Qt.PenStyle.DashLine)
+        )
+        self.plot.addItem(self.onset, ignoreBounds=True)
+        shade = QColor("#9A9A9A")
+        shade.setAlpha(40)
+        self.baseline = pg.LinearRegionItem(
+            values=(-4, 0), movable=False, brush=pg.mkBrush(shade), pen=pg.mkPen(None)
+        )
+        self.plot.addItem(self.baseline, ignoreBounds=True)
+        self.upper = pg.PlotDataItem(pen=pg.mkPen(None))
+        self.lower = pg.PlotDataItem(pen=pg.mkPen(None))
+        band = QColor("#6E6E6E")
+        band.setAlpha(55)
+        self.band = pg.FillBetweenItem(self.upper, self.lower, brush=pg.mkBrush(band))
+        for item in (self.upper, self.lower, self.band):
+            self.plot.addItem(item)
+        self.mean = self.plot.plot(pen=pg.mkPen("#3A3F44", width=2.2))
+        self.mean.setZValue(20)
+        self.fir = self.plot.plot(
+            pen=None,
+            symbol="o",
+            symbolSize=6,
+            symbolBrush=pg.mkBrush(kernel_colour("fir")),
+            symbolPen=None,
+        )
+        self.fir.setZValue(15)
+        self.kernels: dict[str, pg.PlotDataItem] = {}
+
+    def _curve(self, name: str) -> pg.PlotDataItem:
+        item = self.kernels.get(name)
+        if item is None:
+            item = self.plot.plot(pen=pg.mkPen(kernel_colour(name), width=2))
+            item.setZValue(10)
+            self.kernels[name] = item
+        return item
+
+    def update_checks(self, c) -> None:
+        r = getattr(c, "response", None) or {}
+        t, mean = _arr(r.get("times")), _arr(r.get("mean"))
+        if t.size == 0 or not np.isfinite(mean).any():
+            self.clear()
+            why = r.get("note") or "; ".join(c.warnings) or "no events to average here"
+            self.caption.setText(html.escape(f"Around onsets: {why}."))
+            return
+        self.mean.setData(t, mean, connect="finite")
+        self.upper.setData(t, _arr(r.get("ci_high")), connect="finite")
+        self.lower.setData(t, _arr(r.get("ci_low")), connect="finite")
+        self.baseline.setRegion((-float(r.get("baseline_s") or 0.0), 0.0))
+        preds = r.get("predictions") or {}
+        for name in list(self.kernels) + [n for n in preds if n not in self.kernels]:
+            item = self._curve(name)
+            values = preds.get(name)
+            if values is None:
+                item.setData([], [])
+            else:
+                item.setData(t, _arr(values), connect="finite")
+                width = 3.2 if name == c.kernel else 1.8
+                item.setPen(pg.mkPen(kernel_colour(name), width=width))
+        fir = c.fir or {}
+        self.fir.setData(_arr(fir.get("times")), _arr(fir.get("estimate")))
+        n = _arr(r.get("n_events"))
+        n_max = int(np.nanmax(n)) if n.size else 0
+        legend = [
+            '<span style="color:#3A3F44; font-weight:bold">&#9473;&#9473;</span>&nbsp;data '
+            "with 95% band",
+            *(
+                f'<span style="color:{kernel_colour(k)}; font-weight:bold">&#9473;&#9473;</span>'
+                f"&nbsp;{html.escape(k).replace('-', '&#8209;')}"
+                for k in preds
+            ),
+            f'<span style="color:{kernel_colour("fir")}">&#9679;</span>&nbsp;FIR',
+        ]
+        self.caption.setText(
+            f"The data around the onsets of <b>{html.escape(str(r.get('condition', '')))}</b>, "
+            f"averaged over {n_max} events against the {float(r.get('baseline_s') or 0):g} s "
+            "before each onset (shaded), beside each kernel's prediction averaged the same "
+            "way.<br>" + "&nbsp; ".join(legend)
+        )
+        self.plot.enableAutoRange()
+
+    def clear(self) -> None:
+        for item in (self.mean, self.upper, self.lower, self.fir, *self.kernels.values()):
             item.setData([], [])
         self.caption.setText("")
 
@@ -552,6 +662,7 @@ def make_figures() -> dict[str, FigurePage]:
         InfluenceFigure(),
         ShiftFigure(),
         FirFigure(),
+        ResponseFigure(),
         SpectrumFigure(),
         ConfoundsFigure(),
         EdgeFigure(),

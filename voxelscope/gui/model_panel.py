@@ -30,6 +30,7 @@ from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.hrf import KERNEL_NAMES
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.confound_picker import ConfoundPicker
+from voxelscope.gui.events_box import EventsBox
 from voxelscope.gui.sizing import compact_combo, compact_spin
 from voxelscope.gui.state import ViewerState
 
@@ -42,7 +43,7 @@ _REASONS = (
     ("marked in", "outlier columns"),
     ("framewise", "motion"),
 )
-_WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_.\-]*$")
+_WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_.:\-]*$")
 
 
 def swatch_icon(colour: str, size: int = 14) -> QIcon:
@@ -140,7 +141,11 @@ class ModelPanel(QWidget):
             lambda v: self.state.update_settings(fir_window_s=float(v))
         )
         fir_row.addWidget(self.fir_window)
-        fir_row.addWidget(QLabel("bins"))
+        fir_row.addStretch(1)
+        kl.addLayout(fir_row)
+        fir_row = QHBoxLayout()
+        fir_row.addSpacing(22)
+        fir_row.addWidget(QLabel("in bins of"))
         self.fir_bin = QDoubleSpinBox()
         self.fir_bin.setObjectName("fir_bin")
         self.fir_bin.setRange(0.0, 30.0)
@@ -155,6 +160,8 @@ class ModelPanel(QWidget):
         fir_row.addWidget(self.fir_bin)
         fir_row.addStretch(1)
         kl.addLayout(fir_row)
+        compact_spin(self.fir_window, 60, sample="120.0 s")
+        compact_spin(self.fir_bin, 60, sample="one TR")
         lay.addWidget(kernels)
 
         contrast = QGroupBox("Contrast")
@@ -173,6 +180,8 @@ class ModelPanel(QWidget):
         self.contrast_error.setVisible(False)
         cl.addWidget(self.contrast_error)
         lay.addWidget(contrast)
+        self.events_box = EventsBox(state)
+        lay.addWidget(self.events_box)
 
         noise = QGroupBox("Noise and drift")
         form = QFormLayout(noise)
@@ -362,6 +371,7 @@ class ModelPanel(QWidget):
             self.censor,
             self.censor_on,
         ]
+        self.contrast.set_names(self._contrast_names(s))
         for w in widgets:
             w.blockSignals(True)
         try:
@@ -396,6 +406,19 @@ class ModelPanel(QWidget):
         finally:
             for w in widgets:
                 w.blockSignals(False)
+
+    def _contrast_names(self, s) -> list[str]:
+        """Names a contrast can use: the conditions and the model's modulator columns."""
+        analysis = self.state.analysis
+        if analysis is None:
+            return []
+        names = list(analysis.condition_names)
+        if s.modulators:
+            try:
+                names += list(analysis.modulator_columns(s))
+            except VoxelscopeError:
+                pass
+        return names
 
     def _on_contrast_error(self, message: str) -> None:
         self.contrast_error.setText(message)

@@ -259,6 +259,31 @@ class ViewerState(QObject):
             self.settings_changed.emit(old)
             return False
         self.settings_changed.emit(new)
+        if self.analysis is not None and (
+            new.modulators != old.modulators or new.orthogonalize != old.orthogonalize
+        ):
+            for note in self.analysis.check_modulators(new):
+                self.message.emit(note)
+        return True
+
+    def set_condition_column(self, column: str | None) -> bool:
+        """Name the conditions by another events column (None: one condition for the task);
+        the events file is read again and the model starts over."""
+        from voxelscope.core.loader import open_events
+
+        bundle, analysis = self.bundle, self.analysis
+        if bundle is None or analysis is None or bundle.events_path is None:
+            return False
+        try:
+            new = open_events(
+                bundle.run, bundle.events_path, analysis.confounds, condition_column=column
+            )
+        except VoxelscopeError as err:
+            self.message.emit(str(err))
+            return False
+        self.set_analysis(new, bundle.events_path, bundle.confounds_path)
+        for w in new.warnings:
+            self.message.emit(w)
         return True
 
     def set_contrast(self, text: str) -> bool:
@@ -269,7 +294,7 @@ class ViewerState(QObject):
         if analysis is None:
             return False
         try:
-            analysis.check_contrast(expr)
+            analysis.check_contrast(expr, self.settings)
         except VoxelscopeError as err:
             self.contrast_problem = str(err)
             self.contrast_error.emit(self.contrast_problem)
