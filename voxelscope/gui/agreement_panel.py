@@ -38,6 +38,7 @@ from voxelscope.core.agreement import Agreement, compare_maps, explain, load_the
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.colours import colours
 from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, LiveMap
+from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import breakable, compact_spin, scroll_body
 from voxelscope.gui.state import ViewerState
 
@@ -220,12 +221,12 @@ class AgreementPanel(QWidget):
         except VoxelscopeError as err:
             self.state.message.emit(str(err))
             self.file_label.setText("Could not load their map (see the status bar).")
-            self.file_label.setToolTip(str(err))
+            self.file_label.setToolTip(plain_tooltip(err))
             return False
         self.theirs = np.asarray(theirs)
         self.their_path = Path(path)
         self.file_label.setText(f"theirs: {breakable(self.their_path.name)}")
-        self.file_label.setToolTip(str(self.their_path))
+        self.file_label.setToolTip(plain_tooltip(self.their_path))
         for w in warnings:
             self.state.message.emit(w)
         self.statement.setText("")

@@ -597,7 +597,7 @@ class MainWindow(QMainWindow):
             items = self.recent_runs(key)
             for p in items:
                 act = QAction(Path(p).name, self)
-                act.setToolTip(p)
+                act.setToolTip(plain_tooltip(p))
                 act.triggered.connect(lambda _c=False, p=p, f=opener: f(p))
                 menu.addAction(act)
             menu.setEnabled(bool(items))

@@ -26,6 +26,7 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
+from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import ElidedLabel, compact_spin, fit_combo
 from voxelscope.gui.state import ViewerState
 
@@ -264,7 +265,7 @@ class MapPanel(QWidget):
 
     def _failed(self, line: str) -> None:
         self.job_label.setText("the map could not be computed (see the status bar)")
-        self.job_label.setToolTip(line)
+        self.job_label.setToolTip(plain_tooltip(line))
 
     # ------------------------------------------------------------------ state events
 
@@ -378,6 +379,6 @@ class MapPanel(QWidget):
         else:
             text = "computing the map…"
         self.file_label.setText(text)  # shortened with "…" to the width it gets
-        self.file_label.setToolTip(tip or text)
+        self.file_label.setToolTip(plain_tooltip(tip or text))
         if not self.live.is_busy() and not self.job_label.text().startswith("map cancelled"):
             self.job_label.setText("")

@@ -33,10 +33,16 @@ def esc(text: object) -> str:
 
 
 def plain_tooltip(text: object) -> str:
-    """A tooltip string that Qt shows as the literal ``text`` (line breaks kept)."""
+    """A tooltip string that Qt shows as the literal ``text`` (line breaks kept).
+
+    Text without ``<`` or ``&`` cannot be taken for markup and is returned as it is.
+
+    >>> plain_tooltip("run.nii"), plain_tooltip("<b>x</b>")
+    ('run.nii', '<p style="white-space:pre-wrap">&lt;b&gt;x&lt;/b&gt;</p>')
+    """
     s = str(text)
-    if not s:
-        return ""
+    if "<" not in s and "&" not in s:
+        return s
     return f'<p style="white-space:pre-wrap">{esc(s)}</p>'
 
 

@@ -10,6 +10,8 @@ from __future__ import annotations
 from PySide6.QtCore import QEvent, QSize, Qt
 from PySide6.QtWidgets import QComboBox, QLabel, QSizePolicy, QWidget
 
+from voxelscope.gui.plaintext import plain_tooltip
+
 __all__ = [
     "ElidedLabel",
     "FlowButtons",
@@ -75,7 +77,7 @@ def shrinkable(widget: QWidget, min_width: int = 60) -> QWidget:
     policy.setHorizontalPolicy(QSizePolicy.Policy.Ignored)
     widget.setSizePolicy(policy)
     if isinstance(widget, QLabel):
-        widget.setToolTip(widget.toolTip() or widget.text())
+        widget.setToolTip(widget.toolTip() or plain_tooltip(widget.text()))
     return widget
 
 
@@ -124,12 +126,14 @@ class ElidedLabel(QLabel):
     def setText(self, text: str) -> None:
         self._full = str(text)
         if not self._own_tip:
-            super().setToolTip(self._full if self._elide() != self._full else "")
+            full = plain_tooltip(self._full)  # the full text, never read as markup
+            super().setToolTip(full if self._elide() != self._full else "")
         super().setText(self._elide())
 
     def setToolTip(self, tip: str) -> None:
         self._own_tip = bool(tip)
-        super().setToolTip(tip or (self._full if self._elide() != self._full else ""))
+        full = plain_tooltip(self._full) if self._elide() != self._full else ""
+        super().setToolTip(tip or full)
 
     def _elide(self) -> str:
         width = max(1, self.contentsRect().width())
