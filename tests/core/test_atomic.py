@@ -71,3 +71,25 @@ def test_failed_write_leaves_no_temp_file(tmp_path, monkeypatch):
     with pytest.raises(InputError, match="cannot write"):
         write_text(tmp_path / "x.txt", "data")
     assert os.listdir(tmp_path) == []
+
+
+def test_publish_folder_is_all_or_nothing(tmp_path):
+    """A folder of outputs (reports of one or several runs) appears whole or not at all."""
+    import errno
+
+    from voxelscope.core.atomic import publish_folder
+
+    def half_then_full_disk(staging):
+        write_text(staging / "a.csv", "1\n")
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    with pytest.raises(InputError, match="No space left on device"):
+        publish_folder(tmp_path / "rep", half_then_full_disk)
+    assert list(tmp_path.iterdir()) == []
+    out = publish_folder(tmp_path / "rep", lambda s: [write_text(s / "a.csv", "2\n")])
+    assert [p.read_text() for p in out] == ["2\n"]
+    with pytest.raises(InputError, match="already exists"):
+        publish_folder(tmp_path / "rep", lambda s: [write_text(s / "a.csv", "3\n")])
+    publish_folder(tmp_path / "rep", lambda s: [write_text(s / "a.csv", "3\n")], force=True)
+    assert (tmp_path / "rep" / "a.csv").read_text() == "3\n"
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["rep"]

@@ -25,15 +25,17 @@ voxelscope.core.errors.OutputExistsError: ...a.txt already exists; use --force t
 
 from __future__ import annotations
 
+import glob
 import os
+import shutil
 import tempfile
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from pathlib import Path
 
 from .errors import InputError
 from .outputs import guard_output
 
-__all__ = ["check_outputs", "write_bytes", "write_text"]
+__all__ = ["check_outputs", "publish_folder", "write_bytes", "write_text"]
 
 _TMP_SUFFIX = ".tmp"
 
@@ -141,3 +143,90 @@ def write_text(
     'a\\tb\\n'
     """
     return write_bytes(path, text.encode(encoding), force=force, kind=kind, inputs=inputs)
+
+
+def _pid_alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:
+        return True
+    return True
+
+
+def _clear_stale_staging(out: Path) -> None:
+    """Remove staging folders for ``out`` whose process was killed (it could not clean up)."""
+    for p in out.parent.glob(f".{glob.escape(out.name)}.*.partial"):
+        parts = p.name[len(out.name) + 2 :].split(".")
+        if parts and parts[0].isdigit() and not _pid_alive(int(parts[0])):
+            shutil.rmtree(p, ignore_errors=True)
+
+
+def publish_folder(
+    out: str | os.PathLike[str],
+    fill: Callable[[Path], list[Path]],
+    force: bool = False,
+    what: str = "report",
+) -> list[Path]:
+    """Write a folder of outputs all or nothing; returns the final paths.
+
+    ``fill(staging)`` writes every file into a fresh staging folder beside ``out`` (named
+    ``.OUT.PID.*.partial``) and returns their paths. Then the staging folder is renamed to
+    ``out`` when ``out`` does not exist yet, or its files replace those in ``out`` one by one
+    (each through the output guard again). Any failure -- an error, a full disk, a cancel --
+    removes the staging folder: nothing partial is left and the next try needs no
+    ``--force``. Staging folders of killed processes are removed at the next call.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> [p.name for p in publish_folder(d / "r", lambda s: [write_text(s / "a.txt", "x")])]
+    ['a.txt']
+    >>> def fail(staging):
+    ...     write_text(staging / "b.txt", "y")
+    ...     raise OSError(28, "No space left on device")
+    >>> publish_folder(d / "q", fail)
+    Traceback (most recent call last):
+    ...
+    voxelscope.core.errors.InputError: ...q: cannot write the report (No space left on device); ...
+    >>> sorted(p.name for p in d.iterdir())
+    ['r']
+    """
+    out = Path(out)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+        _clear_stale_staging(out)
+        staging = Path(
+            tempfile.mkdtemp(
+                prefix=f".{out.name}.{os.getpid()}.", suffix=".partial", dir=out.parent
+            )
+        )
+    except OSError as err:
+        raise InputError(f"{out}: cannot create the {what} folder ({err.strerror})") from None
+    try:
+        staged = fill(staging)
+        if not out.exists():
+            os.rename(staging, out)
+            return [out / p.name for p in staged]
+        moved = []
+        for p in staged:
+            final = out / p.name
+            guard_output(final, force=force)  # checked again just before replacing
+            os.replace(p, final)
+            moved.append(final)
+        shutil.rmtree(staging, ignore_errors=True)
+        return moved
+    except OSError as err:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise InputError(
+            f"{out}: cannot write the {what} ({err.strerror or err}); nothing was written"
+        ) from None
+    except InputError as err:  # from the atomic writer: name the folder, not the staging
+        shutil.rmtree(staging, ignore_errors=True)
+        reason = str(err).replace(str(staging), str(out))
+        raise InputError(f"{reason}; the {what} was not written") from None
+    except BaseException:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise

@@ -19,13 +19,10 @@ from __future__ import annotations
 
 import base64
 import datetime as _dt
-import glob
 import html
 import math
 import os
 import re
-import shutil
-import tempfile
 import unicodedata
 from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field, fields
@@ -34,13 +31,12 @@ from typing import Any
 
 import numpy as np
 
-from .atomic import check_outputs, write_bytes, write_text
+from .atomic import check_outputs, publish_folder, write_bytes, write_text
 from .errors import InputError, VoxelscopeError
 from .events import shift_conditions
 from .figure import signal_figure
 from .marks import Mark
 from .model import Analysis, ModelSettings, VoxelFits
-from .outputs import guard_output
 from .session import file_digest
 
 __all__ = [
@@ -441,39 +437,6 @@ def _page_tail(
 _KEEP_SECTIONS = 50
 
 
-def _pid_alive(pid: int) -> bool:
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except OSError:
-        return True
-    return True
-
-
-def _clear_stale_staging(out: Path) -> None:
-    """Remove staging folders of reports into ``out`` whose process was killed."""
-    for p in out.parent.glob(f".{glob.escape(out.name)}.*.partial"):
-        parts = p.name[len(out.name) + 2 :].split(".")
-        if parts and parts[0].isdigit() and not _pid_alive(int(parts[0])):
-            shutil.rmtree(p, ignore_errors=True)
-
-
-def _move_into_place(staging: Path, staged: list[Path], out: Path, force: bool) -> list[Path]:
-    """Move the staged files into ``out``: the whole folder at once when it is new."""
-    if not out.exists():
-        os.rename(staging, out)
-        return [out / p.name for p in staged]
-    moved = []
-    for p in staged:
-        final = out / p.name
-        guard_output(final, force=force)  # checked again just before replacing
-        os.replace(p, final)
-        moved.append(final)
-    shutil.rmtree(staging, ignore_errors=True)
-    return moved
-
-
 def write_report(
     out_dir: str | os.PathLike[str],
     run: Any,
@@ -630,18 +593,8 @@ def write_report(
 
     # Everything is written into a staging folder beside the report and moved into place
     # at the end: a report stopped by an error, a full disk or Ctrl+C leaves nothing behind.
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        _clear_stale_staging(out)
-        staging = Path(
-            tempfile.mkdtemp(
-                prefix=f".{out.name}.{os.getpid()}.", suffix=".partial", dir=out.parent
-            )
-        )
-    except OSError as err:
-        raise InputError(f"{out}: cannot create the report folder ({err.strerror})") from None
-    staged: list[Path] = []
-    try:
+    def fill(staging: Path) -> list[Path]:
+        staged: list[Path] = []
         with open(staging / html_path.name, "w", encoding="utf-8", newline="\n") as page:
             page.write(_page_head(page_title, sections))
             for n, sec in enumerate(sections):
@@ -661,20 +614,9 @@ def write_report(
             )
             page.flush()
             os.fsync(page.fileno())
-        staged.append(staging / html_path.name)
-        written = _move_into_place(staging, staged, out, force)
-    except OSError as err:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise InputError(
-            f"{out}: cannot write the report ({err.strerror or err}); nothing was written"
-        ) from None
-    except InputError as err:  # from the atomic writer: name the report, not the staging
-        shutil.rmtree(staging, ignore_errors=True)
-        reason = str(err).replace(str(staging), str(out))
-        raise InputError(f"{reason}; the report was not written") from None
-    except BaseException:
-        shutil.rmtree(staging, ignore_errors=True)
-        raise
+        return [*staged, staging / html_path.name]
+
+    written = publish_folder(out, fill, force=force)
     if progress is not None:
         progress(1.0)
     return ReportResult(out, html_path, written, sections, list(dict.fromkeys(all_warnings)))

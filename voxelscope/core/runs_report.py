@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from .atomic import check_outputs, write_bytes, write_text
+from .atomic import check_outputs, publish_folder, write_bytes, write_text
 from .combine import CombinedFit, combine_fits, voxel_in_runs
 from .errors import InputError
 from .events import shift_conditions
@@ -452,16 +452,12 @@ def write_runs_report(
     page_title = title or f"voxelscope report: {len(runs)} runs"
     page = _page(page_title, sections, labels, runs, analyses, settings, rows, all_warnings)
 
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as err:
-        raise InputError(f"{out}: cannot create the report folder ({err.strerror})") from None
-    written: list[Path] = []
-    for p, b in blobs.items():
-        written.append(write_bytes(p, b, force=force))
-    for p, t in texts.items():
-        written.append(write_text(p, t, force=force))
-    written.append(write_text(html_path, page, force=force))
+    def fill(staging: Path) -> list[Path]:  # all or nothing (atomic.publish_folder)
+        staged = [write_bytes(staging / p.name, b) for p, b in blobs.items()]
+        staged += [write_text(staging / p.name, t) for p, t in texts.items()]
+        return [*staged, write_text(staging / html_path.name, page)]
+
+    written = publish_folder(out, fill, force=force)
     return RunsReportResult(out, html_path, written, sections, list(dict.fromkeys(all_warnings)))
 
 
