@@ -706,3 +706,25 @@ def test_moderate_lag1_with_small_ljung_box_p_is_flagged():
         if c.ar1 < 0.3 and c.whitened_ljung_box_p < 1e-3:
             hits.append("autocorrelation" in c.flag_ids())
     assert hits and all(hits)
+
+
+def test_task_repeats_only_for_periodic_designs():
+    """Issue 13: an event-related run with a quiet ending (random gaps, the last 150 s
+    empty) is not called periodic and gets no 'task repeats' flag; blocks every 160 s with
+    a 128 s high-pass get it (period near the cutoff, common practice says it removes part
+    of the response)."""
+    from voxelscope.core.checks import voxel_checks
+
+    rng = np.random.default_rng(17)
+    n, tr = 300, 2.0
+    on = np.cumsum(rng.uniform(4.0, 10.0, 120))
+    on = on[on < n * tr - 150]
+    a = Analysis([Condition("cue", on, np.full(on.size, 1.0))], n, tr)
+    s = ModelSettings(kernels=("double-gamma",))
+    y = 100 + 3 * a.design("double-gamma", s).column("cue") + rng.standard_normal(n)
+    c = voxel_checks(a, s, "double-gamma", y)
+    assert c.spectrum["task_periodic"] is False and "slow-task" not in c.flag_ids()
+    b = Analysis([Condition("blk", np.arange(10.0, 590.0, 160.0), [80.0] * 4)], n, tr)
+    yb = 100 + 3 * b.design("double-gamma", s).column("blk") + rng.standard_normal(n)
+    cb = voxel_checks(b, s, "double-gamma", yb)
+    assert cb.spectrum["task_periodic"] is True and "slow-task" in cb.flag_ids()

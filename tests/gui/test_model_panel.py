@@ -164,3 +164,20 @@ def test_modulators_and_condition_column_in_model(window, ras_run, qtbot):
     box.column.activated.emit(box.column.currentIndex())
     assert st.analysis.condition_names == ("L", "R")
     assert st.settings.modulators == ()
+
+
+def test_onsets_in_volumes_from_the_window(window, ras_run, qtbot):
+    """The window converts onsets given in volumes, like --onset-unit volumes: the same
+    conditions as the loader with onset_unit='volumes' (onsets and durations times the TR)."""
+    events = ras_run["run"].parent / "sub-ras_task-tt_events.tsv"
+    events.write_text("onset\tduration\ttrial_type\n2\t4\ttone\n22\t4\ttone\n42\t4\ttone\n")
+    st = _open(window, ras_run)
+    box = window.model_panel.events_box
+    assert box.isVisibleTo(window) and not box.volumes.isChecked()
+    np.testing.assert_allclose(st.analysis.conditions[0].onsets, [2, 22, 42])
+    box.volumes.setChecked(True)
+    assert st.analysis.onset_unit == "volumes"
+    np.testing.assert_allclose(st.analysis.conditions[0].onsets, [4.0, 44.0, 84.0])  # TR 2 s
+    np.testing.assert_allclose(st.analysis.conditions[0].durations, [8.0, 8.0, 8.0])
+    box.volumes.setChecked(False)
+    np.testing.assert_allclose(st.analysis.conditions[0].onsets, [2, 22, 42])

@@ -451,6 +451,7 @@ def load_inputs(
             conditions = scale_conditions(conditions, run.tr)
         analysis = analysis_for(run, conditions, confounds)
         analysis.events_file = events_file
+        analysis.onset_unit = request.onset_unit
         if events_file is not None:  # said with the run's own notes wherever they are shown
             analysis.warnings[:0] = list(events_file.warnings)
         warnings.extend(analysis.warnings)
@@ -531,5 +532,6 @@ def open_events(
         conf = read_confounds(conf)
     analysis = analysis_for(run, conditions, conf)
     analysis.events_file = events_file
+    analysis.onset_unit = onset_unit
     analysis.warnings[:0] = list(events_file.warnings)
     return analysis

@@ -205,6 +205,9 @@ class Analysis:
         #: The events file the conditions came from (its columns, for choices in the
         #: window); set by the loader, None for conditions made in code.
         self.events_file: EventsFile | None = None
+        #: Unit the events file's onsets were given in (``"volumes"`` were multiplied by
+        #: the TR); set by the loader.
+        self.onset_unit = "seconds"
 
     @property
     def condition_names(self) -> tuple[str, ...]:

@@ -1,4 +1,5 @@
-"""The Events group of Model: which column names the conditions, and parametric modulators.
+"""The Events group of Model: which column names the conditions, whether onsets count
+volumes, and parametric modulators.
 
 Everything here is a model setting or a reread of the events file through the core
 loader (:func:`voxelscope.core.loader.open_events`); the numbers come from the core.
@@ -42,6 +43,13 @@ class EventsBox(QGroupBox):
         self.column.activated.connect(self._column_chosen)
         self.column_label = QLabel("Conditions from")
         form.addRow(self.column_label, self.column)
+        self.volumes = QCheckBox("onsets in volumes")
+        self.volumes.setObjectName("onsets_in_volumes")
+        self.volumes.setToolTip(
+            "The events file gives volume numbers instead of seconds: multiply them by the TR"
+        )
+        self.volumes.toggled.connect(self._unit_chosen)
+        form.addRow("", self.volumes)
         self.modulators = QListWidget()
         self.modulators.setObjectName("modulator_list")
         self.modulators.setToolTip(
@@ -78,6 +86,12 @@ class EventsBox(QGroupBox):
         if column != current:
             self.state.set_condition_column(column)
 
+    def _unit_chosen(self, on: bool) -> None:
+        unit = "volumes" if on else "seconds"
+        a = self.state.analysis
+        if a is not None and unit != a.onset_unit and not self.state.reload_events(onset_unit=unit):
+            self._on_run()
+
     def _modulators_changed(self, _item) -> None:
         chosen = tuple(
             self.modulators.item(r).text()
@@ -106,6 +120,9 @@ class EventsBox(QGroupBox):
         idx = self.column.findData(self._current_column())
         self.column.setCurrentIndex(max(0, idx))
         self.column.blockSignals(False)
+        self.volumes.blockSignals(True)
+        self.volumes.setChecked(a is not None and a.onset_unit == "volumes")
+        self.volumes.blockSignals(False)
         several = len(candidates) >= 2 or (len(candidates) == 1 and self._current_column() is None)
         self.column.setVisible(several)
         self.column_label.setVisible(several)
@@ -120,7 +137,7 @@ class EventsBox(QGroupBox):
         self.modulators.blockSignals(False)
         for w in (self.modulators, self.modulators_label, self.orthogonalize):
             w.setVisible(bool(names))
-        self.setVisible(a is not None and (several or bool(names)))
+        self.setVisible(a is not None and a.events_file is not None)
         self._on_settings(self.state.settings)
 
     def _on_settings(self, s) -> None:

@@ -269,15 +269,24 @@ class ViewerState(QObject):
     def set_condition_column(self, column: str | None) -> bool:
         """Name the conditions by another events column (None: one condition for the task);
         the events file is read again and the model starts over."""
+        return self.reload_events(condition_column=column)
+
+    def reload_events(self, **changes) -> bool:
+        """Read the events file again with ``condition_column`` and/or ``onset_unit``
+        (``"seconds"`` or ``"volumes"``) changed; the model starts over."""
         from voxelscope.core.loader import open_events
 
         bundle, analysis = self.bundle, self.analysis
         if bundle is None or analysis is None or bundle.events_path is None:
             return False
+        ev = analysis.events_file
+        options = {
+            "condition_column": "trial_type" if ev is None else ev.condition_column,
+            "onset_unit": analysis.onset_unit,
+            **changes,
+        }
         try:
-            new = open_events(
-                bundle.run, bundle.events_path, analysis.confounds, condition_column=column
-            )
+            new = open_events(bundle.run, bundle.events_path, analysis.confounds, **options)
         except VoxelscopeError as err:
             self.message.emit(str(err))
             return False
