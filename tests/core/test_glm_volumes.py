@@ -244,3 +244,102 @@ def test_maps_leave_out_the_same_volumes(noise):
             V = float(m.rho[ijk]) ** np.abs(times[:, None] - times[None, :])
             ref = sm.GLS(y[keep], X[keep], sigma=V).fit()
         assert m.t[ijk] == pytest.approx(float(np.squeeze(ref.t_test(w).tvalue)), rel=1e-5)
+
+
+def _censored_analysis():
+    """A block design whose confounds table marks non-steady-state volumes 0-2 and has a
+    framewise displacement column; the voxel's first volumes carry a large transient."""
+    import io
+
+    from voxelscope.core.confounds import parse_confounds
+    from voxelscope.core.events import Condition
+    from voxelscope.core.model import Analysis
+
+    rng = np.random.default_rng(33)
+    n = 150
+    fd = np.abs(rng.standard_normal(n)) * 0.1
+    fd[[40, 41, 97]] = 0.9
+    lines = [
+        "non_steady_state_outlier00\tnon_steady_state_outlier01\t"
+        "non_steady_state_outlier02\tframewise_displacement"
+    ]
+    for i in range(n):
+        cells = ["1" if i == k else "0" for k in range(3)]
+        cells.append("n/a" if i == 0 else f"{fd[i]:.6g}")
+        lines.append("\t".join(cells))
+    conf = parse_confounds(io.StringIO("\n".join(lines) + "\n"), "c.tsv")
+    conds = [Condition("tap", [12.0, 60.0, 110.0, 160.0], [15.0] * 4)]
+    a = Analysis(conds, n, 1.25, conf)
+    return a, rng, n
+
+
+def test_checks_use_the_kept_volumes_only():
+    """Durbin-Watson of the kept OLS residuals (statsmodels durbin_watson), studentized
+    residuals of the kept rows (statsmodels OLSInfluence), NaN at left-out volumes; the
+    transient in the left-out volumes is never an outlier."""
+    from statsmodels.stats.outliers_influence import OLSInfluence
+    from statsmodels.stats.stattools import durbin_watson
+
+    from voxelscope.core.checks import voxel_checks
+    from voxelscope.core.model import ModelSettings
+
+    a, rng, n = _censored_analysis()
+    s = ModelSettings(kernels=("gamma",), censor_fd_mm=0.5, confound_columns=())
+    ex = a.excluded_volumes(s)
+    assert sorted(ex) == [0, 1, 2, 40, 41, 97]
+    X = a.design("gamma", s).X
+    y = 500 + 3 * X[:, 0] + rng.standard_normal(n)
+    y[:3] += 80
+    c = voxel_checks(a, s, "gamma", y)
+    keep = np.ones(n, bool)
+    keep[sorted(ex)] = False
+    m = sm.OLS(y[keep], X[keep]).fit()
+    assert c.excluded_volumes == (0, 1, 2, 40, 41, 97)
+    assert c.df == int(m.df_resid)
+    assert c.durbin_watson == pytest.approx(durbin_watson(m.resid), rel=1e-10)
+    inf = OLSInfluence(m)
+    assert_allclose(c.studentized[keep], inf.resid_studentized_external, rtol=1e-8)
+    assert_allclose(c.cooks[keep], inf.cooks_distance[0], rtol=1e-8)
+    assert np.isnan(c.studentized[~keep]).all()
+    assert not set(c.outlier_volumes) & set(ex) and not set(c.influential_volumes) & set(ex)
+    assert "c.tsv" not in " ".join(f.text for f in c.flags)
+
+
+def test_fir_estimate_uses_the_kept_volumes():
+    """The FIR estimate equals statsmodels OLS of the FIR design on the kept rows."""
+    from voxelscope.core.hrf import get_kernel
+    from voxelscope.core.model import ModelSettings
+    from voxelscope.core.timing import FIR_SPAN_S, fir_estimate
+
+    a, rng, n = _censored_analysis()
+    s = ModelSettings(kernels=("gamma",), censor_fd_mm=0.5, confound_columns=())
+    y = 500 + rng.standard_normal(n)
+    y[:3] += 80
+    est = fir_estimate(a, s, y, "tap")
+    fk = get_kernel("fir", n_bins=int(np.ceil(FIR_SPAN_S / a.tr - 1e-9)), bin_s=a.tr)
+    d = a.design(fk, s)
+    keep = np.ones(n, bool)
+    keep[sorted(a.excluded_volumes(s))] = False
+    m = sm.OLS(y[keep], d.X[keep]).fit()
+    cols = list(d.condition_columns["tap"])
+    assert_allclose(est.estimate, m.params[cols], rtol=1e-9, atol=1e-9)
+    assert_allclose(est.se, m.bse[cols], rtol=1e-9)
+
+
+def test_sessions_and_reports_keep_the_left_out_volumes(tmp_path):
+    from voxelscope.core.model import ModelSettings
+    from voxelscope.core.report import _settings_rows
+    from voxelscope.core.session import _model_from_json, _model_to_json
+
+    a, _rng, _n = _censored_analysis()
+    s = ModelSettings(drop_volumes=5, censor_fd_mm=0.5, confound_columns=())
+    rows = dict(_settings_rows(s, a))
+    assert rows["drop_volumes"] == "5" and rows["censor_fd_mm"] == "0.5"
+    assert rows["volumes left out"].startswith("8: 0 (non-steady-state")
+    assert "97 (framewise displacement 0.90 mm > 0.5 mm)" in rows["volumes left out"]
+
+    from voxelscope.core import session
+
+    c = session._Check("s.json")  # the session reader's field checker
+    back = _model_from_json(_model_to_json(s), c, [])
+    assert back.drop_volumes == 5 and back.censor_fd_mm == 0.5

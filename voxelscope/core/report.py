@@ -360,6 +360,11 @@ def _settings_rows(settings: ModelSettings, analysis: Analysis) -> list[tuple[st
         elif isinstance(v, tuple):
             v = ", ".join(v) if v else "none"
         rows.append((f.name, str(v)))
+    ex = analysis.excluded_volumes(settings)
+    if ex:  # every number in the report leaves these volumes out
+        parts = [f"{v} ({why})" for v, why in list(ex.items())[:20]]
+        more = f" and {len(ex) - 20} more" if len(ex) > 20 else ""
+        rows.append(("volumes left out", f"{len(ex)}: " + "; ".join(parts) + more))
     return rows
 
 
