@@ -259,3 +259,18 @@ def test_volume_and_rank_errors_are_one_line(pipeline_run, capsys):
     small.write_text("a\n" + "".join(f"{i % 7}\n" for i in range(T)))
     err = _error(capsys, [*argv, "--confounds", str(small), "--censor-fd", "0.5"])
     assert "framewise_displacement" in err and str(small) in err
+
+
+def test_map_leaves_out_the_same_volumes(active_run, tmp_path, capsys):
+    """`map` says how many volumes it left out, and its t at a voxel equals `fit`'s there."""
+    import nibabel as nib
+
+    path, events, _conf, _cols = active_run
+    out = tmp_path / "t.nii.gz"
+    argv = ["map", str(path), "--events", str(events), "--kernel", "double-gamma"]
+    assert main([*argv, "--contrast", "tone", "-o", str(out)]) == 0
+    said = capsys.readouterr().out
+    assert "2 of 200 volumes left out" in said
+    doc, _ = _json(capsys, _fit(path, events, "--kernels", "double-gamma"))
+    t_map = float(np.asarray(nib.load(out).dataobj)[1, 2, 1])
+    assert t_map == pytest.approx(_dg(doc)["t"], rel=1e-5)

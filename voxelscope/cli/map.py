@@ -198,7 +198,9 @@ def run_map(args: argparse.Namespace) -> int:
     )
     write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc, notes=warnings)
     print_warnings(warnings + list(run.warnings))  # + what the run said while read
-    print(f"wrote {out}: {args.stat} map, {result.describe()}")
+    left = len(analysis.excluded_volumes(settings))
+    left_text = f", {left} of {run.n_volumes} volumes left out" if left else ""
+    print(f"wrote {out}: {args.stat} map, {result.describe()}{left_text}")
 
     if args.clusters:
         from ..core.clusters import find_clusters
