@@ -394,3 +394,16 @@ def test_bad_session_prints_one_line_per_problem(tmp_path, capsys, monkeypatch):
     lines = [ln for ln in err.splitlines() if ln.strip()]
     assert len(lines) == 4 and all(ln.startswith("voxelscope: error: ") for ln in lines), err
     assert "Traceback" not in err and not png.exists()
+
+
+def test_deeply_nested_dataset_description_is_one_line(tmp_path, capsys):
+    """BIDS dataset_description.json goes through the same bounded reader and JSON limit."""
+    deriv = tmp_path / "derivatives" / "prep"
+    deriv.mkdir(parents=True)
+    (deriv / "dataset_description.json").write_text("[" * 100_000 + "]" * 100_000)
+    sub = deriv / "sub-01" / "func"
+    sub.mkdir(parents=True)
+    run, events = _run(sub, name="sub-01_task-x_bold.nii")
+    assert main(_fit(run, "--events", events)) == 2
+    line = _one_error_line(capsys)
+    assert "dataset_description.json" in line and "nests deeper than 64 levels" in line

@@ -32,7 +32,6 @@ True
 
 from __future__ import annotations
 
-import json
 import os
 import re
 from dataclasses import dataclass, field
@@ -143,14 +142,11 @@ def _read_description(folder: Path) -> dict[str, Any] | None:
     path = folder / "dataset_description.json"
     if not path.is_file():
         return None
-    try:
-        data = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError) as err:
-        raise InputError(f"{path}: cannot read the dataset description ({err})") from None
-    except ValueError as err:
-        raise InputError(
-            f"{path}: the dataset description is not valid JSON ({err}); fix it (BIDS)"
-        ) from None
+    from .inputs import parse_json, read_input_text
+
+    # the one bounded text reader; nesting limited; one line for every failure
+    text = read_input_text(path, "dataset description", limit=16 * 1024**2)
+    data = parse_json(text, str(path), "dataset description")
     if not isinstance(data, dict):
         raise InputError(f"{path}: the dataset description must hold a JSON object (BIDS)")
     return data
