@@ -623,6 +623,7 @@ class EdgeFigure(FigurePage):
         self.plot.addItem(self.limit, ignoreBounds=True)
         self.plot.setYRange(-0.6, 0.6, padding=0)
         self.big = QLabel("")
+        self.big.setTextFormat(Qt.TextFormat.RichText)  # a number in bold, no outside text
         self.big.setObjectName("edge_text")
         self.big.setWordWrap(True)
         self.layout().insertWidget(1, self.big)

@@ -465,6 +465,7 @@ class SlicesPanel(QWidget):
         row.addWidget(self.colour_bar)
         outer.addWidget(row_widget, 1)
         self.readout = QLabel("")
+        self.readout.setTextFormat(Qt.TextFormat.RichText)  # numbers only, bold labels
         self.readout.setObjectName("readout")
         self.readout.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
         # one line that never widens the window (cut at the right when very narrow); no
