@@ -80,8 +80,11 @@ def run_report(args: argparse.Namespace) -> int:
         "events": loaded.events_path,
         "confounds": loaded.confounds_path,
         "sidecar": sidecar,
+        "mask": loaded.inputs.mask_path if loaded.inputs is not None else None,
         "marks": Path(args.marks) if args.marks else None,
     }
+    for i, inherited in enumerate(tuple(getattr(run, "sidecars", ()))[:-1], start=1):
+        inputs[f"sidecar (inherited {i})"] = inherited  # BIDS inheritance, farthest first
     result = write_report(
         args.output,
         run,
