@@ -936,3 +936,25 @@ def test_two_threads_meeting_a_damaged_block_rebuild_once(tmp_path):
     for got in results:
         np.testing.assert_allclose(got, _ref(path), rtol=1e-6, atol=1e-5)
     assert sum("is damaged" in w for w in run.warnings) == 1
+
+
+def test_small_gzip_holding_a_big_run_is_refused_from_the_cache(tmp_path, monkeypatch):
+    """Issue 11 item 8, scaled down: a 100 KB gzip holding 32 MiB of uint8 whose every
+    voxel varies would need a cache of over 100 MB; above a 100 MB limit it is refused in one
+    line before any cache file is written, and the run is still served (from memory)."""
+    x, y, z, t = 128, 128, 64, 32
+    ramp = (np.arange(x * y * z, dtype=np.uint32) % 251).astype(np.uint8).reshape(x, y, z)
+    data = np.empty((x, y, z, t), np.uint8)
+    for v in range(t):
+        data[..., v] = ramp + np.uint8(v)
+    path = tmp_path / "bomb.nii.gz"
+    nib.save(nib.Nifti1Image(data, np.eye(4)), str(path))
+    assert path.stat().st_size < 2_000_000 and data.nbytes == 32 * 2**20
+    monkeypatch.setenv(cache.LIMIT_ENV, "100MB")
+    said = []
+    run = open_run(path, tr=2.0, cache_dir=tmp_path / "c", notify=said.append)
+    assert run.storage == "memory" and said == []
+    assert sum("more than the cache limit of 100.0 MB" in w for w in run.warnings) == 1
+    assert not (tmp_path / "c").exists() or _files(tmp_path / "c") == []
+    for ijk in [(0, 0, 0), (127, 5, 63), (64, 64, 32)]:
+        np.testing.assert_array_equal(run.timeseries(ijk), data[ijk])

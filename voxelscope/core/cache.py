@@ -1009,7 +1009,7 @@ def cache_limit_bytes() -> int:
 
 
 def _gb(n: float) -> str:
-    return f"{n / 1e9:.1f} GB" if n >= 1e8 else f"{n / 1e6:.1f} MB"
+    return f"{n / 1e9:.1f} GB" if n >= 1e9 else f"{n / 1e6:.1f} MB"
 
 
 # --------------------------------------------------------------------------- keys
