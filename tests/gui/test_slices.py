@@ -181,3 +181,51 @@ def test_map_overlay_and_readout(window, qtbot, ras_run):
     state.set_map_settings(threshold=10.0)
     img = axial.over.image
     assert int(img[..., 3].max()) == 0  # nothing reaches |v| >= 10
+
+
+def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(window, qtbot, ras_run):
+    """Dragging with the left button held refits at every move (the voxel follows the
+    pointer); the state says a drag is on, so the Checks wait until it ends."""
+    from PySide6.QtCore import QEvent
+    from PySide6.QtGui import QMouseEvent
+
+    st = _open(window, ras_run)
+    view = window.slices.views["axial"]
+    vp = view.viewport()
+    grid = st.grid
+    d = list(grid.to_display(st.voxel))
+    n_h = grid.display_shape[view.h_axis]
+
+    def send(kind, h, buttons):
+        d[view.h_axis] = h
+        pos = QPointF(view.viewport_point(d))
+        button = (
+            Qt.MouseButton.NoButton if kind == QEvent.Type.MouseMove else Qt.MouseButton.LeftButton
+        )
+        ev = QMouseEvent(
+            kind, pos, vp.mapToGlobal(pos), button, buttons, Qt.KeyboardModifier.NoModifier
+        )
+        QApplication.sendEvent(vp, ev)
+        QApplication.processEvents()
+
+    checks = window.checks
+    from PySide6.QtWidgets import QDockWidget
+
+    window.findChild(QDockWidget, "dock_checks").raise_()  # on screen: it computes
+    qtbot.waitUntil(checks.wanted, timeout=5000)
+    held = Qt.MouseButton.LeftButton
+    send(QEvent.Type.MouseButtonPress, 0, held)
+    calls = checks.calls
+    seen = []
+    for h in range(1, n_h):
+        send(QEvent.Type.MouseMove, h, held)
+        seen.append(grid.to_display(st.voxel)[view.h_axis])
+        assert st.dragging
+        assert st.fits is not None and np.array_equal(st.series, st.run.timeseries(st.voxel))
+    # no checks job per move (at most one, should a frame on a busy machine outlast the
+    # rest time); without the wait there is one per move
+    assert checks.calls - calls <= 1 < n_h - 2
+    send(QEvent.Type.MouseButtonRelease, n_h - 1, Qt.MouseButton.NoButton)
+    assert not st.dragging
+    assert seen[-1] == n_h - 1 and len(set(seen)) >= n_h - 2
+    qtbot.waitUntil(lambda: checks.calls > calls, timeout=5000)  # once the pointer rests

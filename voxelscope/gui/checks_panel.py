@@ -135,6 +135,10 @@ def _fmt(key: str, value: Any, c: VoxelChecks) -> str:
     return f"{v:.4g}"
 
 
+#: During a drag, the checks run once the pointer has rested this long (ms).
+DRAG_REST_MS = 150
+
+
 class FlagLabel(QLabel):
     """One flag's sentence; a click shows its figure (``clicked(figure)``)."""
 
@@ -577,7 +581,9 @@ class ChecksPanel(QWidget):
         """Ask for the checks of the current voxel (coalesced; after the fits are shown)."""
         self._sync_kernels()
         self._show_runs()
-        self._timer.start()
+        # While the crosshair is dragged, the checks wait until the pointer rests: a job
+        # per frame would take the CPU and the interpreter from the frames themselves.
+        self._timer.start(DRAG_REST_MS if getattr(self.state, "dragging", False) else 0)
 
     def runs_text(self) -> str:
         """The agreement between runs for the checked kernel ('' with one run)."""

@@ -69,6 +69,7 @@ class _SliceBox(pg.ViewBox):
     picked = Signal(float, float)
     stepped = Signal(int)
     reset = Signal()
+    dragging = Signal(bool)
 
     def __init__(self) -> None:
         super().__init__(lockAspect=True, enableMenu=False, invertY=False, defaultPadding=0.02)
@@ -91,8 +92,12 @@ class _SliceBox(pg.ViewBox):
     def mouseDragEvent(self, ev, axis=None) -> None:
         if ev.button() == Qt.MouseButton.LeftButton:
             ev.accept()
+            if ev.isStart():
+                self.dragging.emit(True)
             p = self.mapSceneToView(ev.scenePos())
             self.picked.emit(p.x(), p.y())
+            if ev.isFinish():
+                self.dragging.emit(False)
         elif ev.button() in (Qt.MouseButton.RightButton, Qt.MouseButton.MiddleButton):
             ev.accept()
             d = self.mapToView(ev.lastPos()) - self.mapToView(ev.pos())
@@ -162,6 +167,7 @@ class SliceView(pg.GraphicsView):
         self.box.picked.connect(self._picked)
         self.box.stepped.connect(self._stepped)
         self.box.reset.connect(self.reset_view)
+        self.box.dragging.connect(lambda on: setattr(state, "dragging", bool(on)))
         self._under_vol: np.ndarray | None = None
         self._under_factor = 1
         self._map_vol: np.ndarray | None = None

@@ -109,6 +109,7 @@ class ViewerState(QObject):
 
     def __init__(self, parent: QObject | None = None) -> None:
         super().__init__(parent)
+        self.dragging = False  # the crosshair is being dragged (Slices sets it)
         self.bundle: RunBundle | None = None
         self.grid: DisplayGrid | None = None
         self.voxel: tuple[int, int, int] = (0, 0, 0)
