@@ -258,7 +258,7 @@ def _wholeprocess_rows(path: Path, X: np.ndarray, c: np.ndarray, label: str) -> 
     np.save(folder / "X.npy", X)
     np.save(folder / "c.npy", c)
     ours = voxelscope_cmd(
-        "map", str(path), "--kernel", "double-gamma", "--contrast", "tone",
+        "map", str(path), "--kernel", "double-gamma", "--contrast", "tone", "--noise", "ols",
         "-o", str(folder / "ours_t.nii"), "--force",
     )  # fmt: skip
     one = [sys.executable, str(folder / "one_pass.py"), str(path), str(folder / "mean.nii")]
