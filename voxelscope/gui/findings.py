@@ -184,6 +184,9 @@ class FindingsPanel(QWidget):
         self.view.setAlternatingRowColors(True)
         head = self.view.horizontalHeader()
         head.setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        # widths from the first rows only: a map with thousands of clusters would otherwise
+        # ask for every cell of every row on each new map (about a second at 2 mm)
+        head.setResizeContentsPrecision(100)
         head.setStretchLastSection(True)
         self.view.clicked.connect(self._clicked)
         self.view.activated.connect(self._clicked)
@@ -216,6 +219,8 @@ class FindingsPanel(QWidget):
         self.threshold.setValue(st.map_settings.threshold)
         self.threshold.blockSignals(False)
         layer = st.stat_map
+        if getattr(layer, "preview", False):
+            return  # the live map's preview holds a few planes only; the full map follows
         opts = self.options()
         key = (tuple(sorted(opts.items())), st.run)
         if layer is self._layer and key == self._key:

@@ -171,6 +171,7 @@ class LiveLayer(Layer):
     title: str = ""
     stat: str = "t"
     source: str = "model"
+    preview: bool = False  # the planes on screen only, until the full map replaces it
 
 
 def compute_request(
@@ -755,7 +756,7 @@ class LiveMap(QObject):
         top = top if top > 0 else 1.0
         layer = LiveLayer(
             None, data, 1, (-top, top), title=f"{req.stat} · {req.kernel} (preview)",
-            stat=req.stat, source="model",
+            stat=req.stat, source="model", preview=True,
         )  # fmt: skip
         keep = isinstance(st.stat_map, LiveLayer) and st.stat_map.source == "model"
         keep = keep and st.stat_map.stat == req.stat
