@@ -489,6 +489,8 @@ class ChecksPanel(QWidget):
         relay.done.connect(self._done)
         relay.failed.connect(self._failed)
         state.fits_changed.connect(self._on_fits)
+        # let go of a dragged crosshair: the checks of where it rests, now
+        state.dragging_changed.connect(lambda on: None if on else self.request())
         state.run_changed.connect(self._on_run)
         state.map_changed.connect(self.request)
         self._on_run()

@@ -366,14 +366,17 @@ class FitsPanel(QWidget):
         if n == 0:
             return
         base = self._content_widths()
-        # While the columns stay the same (clicks, a drag), a column never narrows: a new
-        # width makes the table lay out and paint a second time, one event-loop pass later.
-        cols = tuple(self.model.columns())
-        if self._grown[0] == cols and len(self._grown[1]) == len(base):
-            base = [max(a, b) for a, b in zip(base, self._grown[1])]
-        self._grown = (cols, base)
         first = max(30, hh.minimumSectionSize())  # the colour marker column
         room = self.table.viewport().width() - first
+        # While the columns stay the same (clicks, a drag), a column does not narrow as long
+        # as the widest texts seen still fit: a new width makes the table lay out and paint
+        # a second time, one event-loop pass later.
+        cols = tuple(self.model.columns())
+        if self._grown[0] == cols and len(self._grown[1]) == len(base):
+            grown = [max(a, b) for a, b in zip(base, self._grown[1])]
+            if sum(grown) <= room:
+                base = grown
+        self._grown = (cols, base)
         pad = 8
         while pad > 0 and sum(base) + pad * len(base) > room:
             pad -= 2

@@ -167,7 +167,7 @@ class SliceView(pg.GraphicsView):
         self.box.picked.connect(self._picked)
         self.box.stepped.connect(self._stepped)
         self.box.reset.connect(self.reset_view)
-        self.box.dragging.connect(lambda on: setattr(state, "dragging", bool(on)))
+        self.box.dragging.connect(state.set_dragging)
         self._under_vol: np.ndarray | None = None
         self._under_factor = 1
         self._map_vol: np.ndarray | None = None

@@ -105,6 +105,7 @@ class ViewerState(QObject):
     units_changed = Signal(str)
     message = Signal(str)
     marks_changed = Signal()
+    dragging_changed = Signal(bool)
     runs_changed = Signal()
 
     def __init__(self, parent: QObject | None = None) -> None:
@@ -222,6 +223,12 @@ class ViewerState(QObject):
         self.settings_changed.emit(self.settings)
         self.contrast_error.emit("")
         self.recompute()
+
+    def set_dragging(self, on: bool) -> None:
+        """The crosshair is being dragged (True) or was let go (False)."""
+        if bool(on) != self.dragging:
+            self.dragging = bool(on)
+            self.dragging_changed.emit(self.dragging)
 
     def set_voxel(self, ijk) -> None:
         """Move to a voxel (clipped into the grid)."""
