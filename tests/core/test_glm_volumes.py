@@ -372,3 +372,22 @@ def test_null_false_positive_rates_with_censoring():
     y = _ar1_noise(rng, n, 0.4, v)
     assert rate(y, "ols") > 0.12
     assert 0.035 < rate(y, "ar1") < 0.085
+
+
+def test_no_choice_on_a_pipeline_table_asks_for_one(tmp_path):
+    """Through the core too, a pipeline-sized table never enters the model whole."""
+    from tests.confound_tables import write_pipeline_table
+    from voxelscope.core.confounds import read_confounds
+    from voxelscope.core.errors import InputError
+    from voxelscope.core.events import Condition
+    from voxelscope.core.model import Analysis, ModelSettings
+
+    p = tmp_path / "c.tsv"
+    write_pipeline_table(p, n=200, tr=2.0)
+    a = Analysis([Condition("tap", [10.0, 90.0], [20.0, 20.0])], 200, 2.0, read_confounds(p))
+    with pytest.raises(InputError, match="motion24"):
+        a.fit_voxel(np.random.default_rng(0).standard_normal(200), ModelSettings())
+    fits = a.fit_voxel(
+        np.random.default_rng(0).standard_normal(200), ModelSettings(confound_columns=())
+    )
+    assert fits.fits[0].df == 200 - 2 - len(fits.fits[0].design.names)

@@ -47,7 +47,9 @@ class ModelSettings:
     highpass_s : float or None
         Discrete cosine drift cutoff; None for no drift columns. 128 s is a common default.
     confound_columns : tuple of str or None
-        Confound columns to include; None means all columns of the confounds file.
+        Confound columns to include; None means all columns of a small confounds table (at
+        most :data:`~voxelscope.core.confounds.SMALL_TABLE`; a bigger one raises InputError
+        listing the named sets).
     onset_shift_s : float
         Added to every onset (timing checks).
     derivatives : {0, 1, 2}
@@ -340,7 +342,8 @@ class Analysis:
         if self.confounds is None:
             return ()
         cols = settings.confound_columns
-        return self.confounds.file_columns if cols is None else tuple(cols)
+        # no choice: all columns of a small table; a pipeline-sized one asks for a choice
+        return self.confounds.default_choice() if cols is None else tuple(cols)
 
     def keep_mask(self, settings: ModelSettings) -> np.ndarray | None:
         """Volumes that enter the fit (None when all do)."""
