@@ -97,7 +97,7 @@ def _setup(path: Path):
         run.n_volumes,
         run.tr,
     )
-    return run, a, ModelSettings(contrast="tone")
+    return run, a, ModelSettings(contrast="tone", noise="ols")  # OLS rows; AR rows say so
 
 
 def _user_script(path: Path, X: np.ndarray, c: np.ndarray) -> np.ndarray:

@@ -160,7 +160,7 @@ def test_non_steady_volumes_leave_the_fit(active_run, capsys):
     """Marked non-steady-state volumes leave the fit by default: the numbers equal statsmodels
     OLS on the kept rows, and y, design, fitted and residuals keep every row."""
     path, events, conf, _cols = active_run
-    argv = _fit(path, events, "--kernels", "double-gamma")
+    argv = _fit(path, events, "--kernels", "double-gamma", "--noise", "ols")
     doc, _ = _json(capsys, argv)
     assert doc["excluded_volumes"] == [
         {"volume": 0, "reason": "non-steady-state (non_steady_state_outlier00)"},

@@ -54,6 +54,8 @@ def test_fit_json_matches_statsmodels(tmp_path, capsys):
             "1",
             "--contrast",
             "tone - tap",
+            "--noise",
+            "ols",
         ],
     )
     assert doc["voxel"] == [2, 3, 1] and doc["n_volumes"] == T and doc["tr"] == TR
@@ -116,7 +118,9 @@ def test_table_and_csv_formats(tmp_path, capsys):
     table = capsys.readouterr().out.splitlines()
     assert table[1].split()[0] == "kernel"
     # after the header, the rule and 4 kernels: the files used and the sampling reference
-    used = table[3 + 4 :]
+    used = [line for line in table[3 + 4 :] if not line.startswith("[")]
+    # the default model says how each kernel's AR coefficients were obtained
+    assert sum(line.startswith("[gamma] noise: AR(2) coefficients") for line in table) == 1
     assert used[0] == f"events     {events}" and used[-2] == "mask       intensity rule (auto)"
     assert used[-1].startswith("reference  0 s into each TR")
     assert (
@@ -261,6 +265,8 @@ def test_checks_in_json(tmp_path, capsys):
             "--checks",
             "--kernels",
             "double-gamma",
+            "--noise",
+            "ols",
         ],
     )
     f = doc["fits"][0]

@@ -58,6 +58,8 @@ def test_map_writes_float32_with_run_affine_and_leaves_input(tmp_path, capsys):
         "tone - tap",
         "--mask",
         str(mask_path),
+        "--noise",
+        "ols",
         "-o",
         str(out),
         "--no-cache",

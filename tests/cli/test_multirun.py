@@ -55,11 +55,14 @@ def _json(capsys, argv):
 
 def test_fit_json_shape_and_numbers_against_statsmodels(tmp_path, capsys):
     paths = _three_runs(tmp_path)
-    doc = _json(capsys, ["fit", *paths, "--voxel", "2", "3", "1", "--contrast", "tone - tap"])
+    ols = ["--noise", "ols"]  # statsmodels OLS is the reference below
+    doc = _json(capsys, ["fit", *paths, "--voxel", "2", "3", "1", "--contrast", "tone - tap", *ols])
     assert set(doc) == {"runs", "combined", "warnings"}
     assert [r["run"] for r in doc["runs"]] == ["run-1", "run-2", "run-3"]
     # each run's object is the one-run JSON (plus its name and path)
-    one = _json(capsys, ["fit", paths[1], "--voxel", "2", "3", "1", "--contrast", "tone - tap"])
+    one = _json(
+        capsys, ["fit", paths[1], "--voxel", "2", "3", "1", "--contrast", "tone - tap", *ols]
+    )
     assert {k: v for k, v in doc["runs"][1].items() if k not in ("run", "path")} == one
     assert [c["kernel"] for c in doc["combined"]] == [
         "boxcar",

@@ -48,7 +48,10 @@ def test_help_loads_no_scipy(argv):
 
 
 def test_fit_loads_no_heavy_scipy(tmp_path):
+    """Under OLS (and AR(1)). The default AR(p) model reads the brain mask, for the
+    neighbourhood its coefficients are averaged over, and the mask rule needs
+    scipy.ndimage."""
     rng = np.random.default_rng(3)
     path, events = write_run(tmp_path, 500 + rng.standard_normal((4, 5, 3, 60)), 1.5)
-    argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1"]
+    argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1", "--noise", "ols"]
     assert _loaded_after(argv, (*HEAVY, *QT)) == []

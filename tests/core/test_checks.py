@@ -167,7 +167,7 @@ def test_residual_and_influence_measures_match_statsmodels(seed):
     rng = np.random.default_rng(seed)
     conf = Confounds(("move_x", "move_z"), rng.standard_normal((N, 2)), "c.tsv")
     a, sig = block_analysis(rng, conf)
-    s = ModelSettings(kernels=(KERNEL,))
+    s = ModelSettings(noise="ols", kernels=(KERNEL,))
     y = 100 + sig + ar1_noise(rng, N, float(rng.uniform(0, 0.4)))
     c = voxel_checks(a, s, KERNEL, y)
     d = a.design(KERNEL, s)
@@ -193,7 +193,7 @@ def test_t_without_influential_matches_statsmodels_on_kept_rows():
     influential volumes (the checks' own list: at most 3, Cook's distance above 4/n)."""
     rng = np.random.default_rng(21)
     a, sig = blocks(0)
-    s = ModelSettings(kernels=(KERNEL,))
+    s = ModelSettings(noise="ols", kernels=(KERNEL,))
     y = 100 + sig + rng.standard_normal(N)
     y[[30, 100]] += [7.0, -6.0]
     c = voxel_checks(a, s, KERNEL, y)
@@ -273,7 +273,7 @@ def test_planted_spike_is_found_and_drives_t():
     statsmodels OLS t on the data without that volume)."""
     rng = np.random.default_rng(8)
     a, _sig = blocks(0)
-    s = ModelSettings(kernels=(KERNEL,))
+    s = ModelSettings(noise="ols", kernels=(KERNEL,))
     d = a.design(KERNEL, s)
     vol = int(np.argmax(d.column("tone")))
     y = 100 + rng.standard_normal(N)
@@ -295,7 +295,7 @@ def test_two_spikes_in_two_blocks_are_named_together():
     names both volumes and the t without them (statsmodels OLS on the kept rows)."""
     rng = np.random.default_rng(9)
     a, _sig = blocks(1)
-    s = ModelSettings(kernels=(KERNEL,))
+    s = ModelSettings(noise="ols", kernels=(KERNEL,))
     d = a.design(KERNEL, s)
     inside = np.flatnonzero(d.column("tone") > 0.9)
     vols = [int(inside[3]), int(inside[-3])]
@@ -330,7 +330,7 @@ def test_autocorrelated_noise_is_flagged_and_ar1_answers_it():
     rng = np.random.default_rng(13)
     a, sig = blocks(0)
     y = 100 + sig + ar1_noise(rng, N, 0.7)
-    c = voxel_checks(a, ModelSettings(kernels=(KERNEL,)), KERNEL, y)
+    c = voxel_checks(a, ModelSettings(noise="ols", kernels=(KERNEL,)), KERNEL, y)
     assert c.ar1 == pytest.approx(0.7, abs=0.12)
     assert c.durbin_watson < 1.0 and c.ljung_box_p < 1e-6
     assert "autocorrelation" in c.flag_ids()
@@ -690,7 +690,7 @@ def test_ar2_noise_is_flagged_after_ar1_prewhitening():
         if "autocorrelation" in c.flag_ids():
             flagged += 1
             text = next(f.text for f in c.flags if f.id == "autocorrelation")
-            assert "after AR(1) prewhitening" in text and "higher order" in text
+            assert "after AR(1) prewhitening" in text and "AR(p)" in text
     assert flagged == 5
 
 

@@ -70,7 +70,7 @@ def test_voxel_combination_equals_formulas_on_statsmodels_fits(kernel):
     OLS (t_test of the contrast), combined by the formulas; voxelscope fits each run with
     Analysis.fit_voxel (glm.fit) and combines with combine_fits."""
     rng = np.random.default_rng(1501)
-    settings = ModelSettings(kernels=(kernel,), contrast="tone - 0.5*tap")
+    settings = ModelSettings(noise="ols", kernels=(kernel,), contrast="tone - 0.5*tap")
     labels, bs, vs, ds, sm_b, sm_v, sm_d = [], [], [], [], [], [], []
     for i, (n, shift) in enumerate([(120, 0.0), (100, 3.0), (130, -2.0)]):
         a = Analysis(_conditions(shift), n_volumes=n, tr=TR)
@@ -184,7 +184,7 @@ def test_null_simulation_error_rates_of_q_and_combined_t():
     effect rejects at about 5 %. 4000 voxels through glm.fit as one batch per run;
     binomial 4-sigma bounds."""
     rng = np.random.default_rng(20261202)
-    settings = ModelSettings(kernels=("gamma",))
+    settings = ModelSettings(noise="ols", kernels=("gamma",))
     n_vox = 4000
     B, V, D = [], [], []
     B0, V0 = [], []
@@ -245,7 +245,7 @@ def test_same_grid_map_equals_voxel_combination(tmp_path):
         data, a = _planted_run(rng, (5, 4, 3), aff, shift=i)
         runs.append(open_run(_write(tmp_path, data, aff, f"s_run-{i + 1}_bold.nii")))
         analyses.append(a)
-    settings = ModelSettings()
+    settings = ModelSettings(noise="ols")
     m = compute_combined_map(runs, analyses, settings, "double-gamma", stats=combine.COMBINED_STATS)
     assert m.labels == ("run-1", "run-2", "run-3") and m.resampled == ()
     assert m.df == sum(x.df for x in m.run_maps)
@@ -288,7 +288,7 @@ def test_runs_on_different_grids_combine_at_the_same_place_in_mm(tmp_path):
     d2, a2 = _planted_run(rng, (8, 5, 3), aff2)
     r1 = open_run(_write(tmp_path, d1, aff1, "s_run-1_bold.nii"))
     r2 = open_run(_write(tmp_path, d2, aff2, "s_run-2_bold.nii"))
-    settings = ModelSettings()
+    settings = ModelSettings(noise="ols")
     m = compute_combined_map([r1, r2], [a1, a2], settings, "double-gamma")
     assert m.resampled == ("run-2",) and "nearest voxel" in m.describe()
     assert m.t.shape == (6, 4, 3)

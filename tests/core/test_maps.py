@@ -78,7 +78,7 @@ def test_ols_map_equals_per_voxel_fits_on_real_run(tmp_path):
     data = _data(rng)
     run = open_run(_write(tmp_path, data))
     a = _analysis()
-    s = ModelSettings(contrast="tone - tap")
+    s = ModelSettings(noise="ols", contrast="tone - tap")
     mask = np.ones(SHAPE, dtype=bool)
     m = compute_map(run, a, s, "double-gamma", mask=mask, chunk_voxels=7)
     ref = _per_voxel(a, data, s, "double-gamma")
@@ -99,7 +99,7 @@ def test_ols_map_matches_statsmodels_at_sampled_voxels(tmp_path):
     data = _data(rng)
     run = open_run(_write(tmp_path, data))
     a = _analysis()
-    s = ModelSettings(contrast="tap")
+    s = ModelSettings(noise="ols", contrast="tap")
     m = compute_map(run, a, s, "gamma")
     X = a.design("gamma", s).X
     w = a.contrast_weights("gamma", s)
@@ -197,7 +197,7 @@ def test_float32_raw_bold_keeps_digits():
     rng = np.random.default_rng(6)
     data = _data(rng, mean=10000.0, noise=0.5)
     a = _analysis()
-    s = ModelSettings()
+    s = ModelSettings(noise="ols")
     m = compute_map(ArrayRun(data), a, s, "double-gamma", mask=np.ones(SHAPE, bool))
     X = a.design("double-gamma", s).X
     w = a.contrast_weights("double-gamma", s)
@@ -312,7 +312,10 @@ def test_maps_equal_across_stores_and_block_sizes(tmp_path):
     assert {k: r.storage for k, r in runs.items()} == {k: k for k in runs}
     a = _analysis()
     mask = rng.random(SHAPE) < 0.7
-    for s in (ModelSettings(contrast="tone"), ModelSettings(contrast="tone", noise="ar1")):
+    for s in (
+        ModelSettings(contrast="tone", noise="ols"),
+        ModelSettings(contrast="tone", noise="ar1"),
+    ):
         ref = _per_voxel(a, data, s, "double-gamma", noise=s.noise)
         maps = {
             (name, block): compute_map(run, a, s, "double-gamma", mask=mask, chunk_voxels=block)

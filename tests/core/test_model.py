@@ -63,7 +63,9 @@ def test_voxel_fit_matches_statsmodels_on_the_design():
     """Each KernelFit equals statsmodels OLS on that kernel's design: t_test, f_test."""
     y = _simulated_voxel(9)
     a = Analysis([TONE, TAP], N, TR)
-    s = ModelSettings(kernels=("gamma", "double-gamma"), contrast="tone - tap", derivatives=1)
+    s = ModelSettings(
+        noise="ols", kernels=("gamma", "double-gamma"), contrast="tone - tap", derivatives=1
+    )
     fits = a.fit_voxel(y, s)
     for kf in fits.fits:
         d = kf.design
@@ -96,7 +98,9 @@ def test_fir_fit_and_f_test():
     """FIR: betas follow the simulated response; F over all bins equals statsmodels f_test."""
     y = _simulated_voxel(4, amplitude=5.0, noise_sd=0.3)
     a = Analysis([TONE, TAP], N, TR)
-    s = ModelSettings(kernels=("fir",), fir_window_s=32.0, fir_bin_s=4.0, highpass_s=None)
+    s = ModelSettings(
+        noise="ols", kernels=("fir",), fir_window_s=32.0, fir_bin_s=4.0, highpass_s=None
+    )
     kf = a.fit_voxel(y, s).fits[0]
     d = kf.design
     assert [n for n in d.names if n.startswith("tone_fir")] == [f"tone_fir{k}" for k in range(8)]

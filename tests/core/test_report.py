@@ -99,7 +99,9 @@ def _sha(p):
 
 def test_report_numbers_equal_the_fit(demo, tmp_path):
     run, analysis, _run_path, events = demo
-    settings = ModelSettings(kernels=("boxcar", "double-gamma", "fir"), contrast="tone - tap")
+    settings = ModelSettings(
+        noise="ols", kernels=("boxcar", "double-gamma", "fir"), contrast="tone - tap"
+    )
     ijk = (2, 3, 1)
     res = write_report(
         tmp_path / "out", run, analysis, settings, voxel=ijk, inputs={"events": events}
@@ -210,7 +212,8 @@ def test_marks_report_one_section_and_csv_per_mark(demo, tmp_path):
     html = _parse(res.html)
     t_rows = [c["t"] for c in html.cells]
     for sec, shown in zip([res.sections[0], res.sections[2]], t_rows):
-        f = analysis.fit_voxel(run.timeseries(sec.ijk), settings).fits[0]
+        noise = analysis.noise_at(run, sec.ijk, settings)  # the report's whitening
+        f = analysis.fit_voxel(run.timeseries(sec.ijk), settings, noise).fits[0]
         assert sec.ijk == run.mm_to_voxel(marks[sec.number - 1].xyz_mm)
         assert shown == (f"{f.t:.2f}", repr(f.t))
         rows = list(csv.reader(io.StringIO((tmp_path / "out" / sec.csv.name).read_text())))

@@ -54,7 +54,7 @@ def _runs(tmp_path, n=2):
 
 def test_voxel_report_numbers_files_and_caution(tmp_path):
     runs, analyses = _runs(tmp_path)
-    settings = ModelSettings(kernels=("gamma", "boxcar"))
+    settings = ModelSettings(noise="ols", kernels=("gamma", "boxcar"))
     before = [r.path.read_bytes() for r in runs]
     res = write_runs_report(
         tmp_path / "rep", runs, analyses, settings, ["run-1", "run-2"], voxel=(1, 2, 1), scale=1

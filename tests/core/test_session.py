@@ -175,7 +175,7 @@ def _write(tmp_path, data, name="s.voxelscope.json"):
         ({"schema": "other"}, r"not a voxelscope session \(field 'schema'"),
         ({"version": 99}, r"session version 99 was written by a newer voxelscope"),
         ({"version": "1"}, r"field 'version' must be a whole number"),
-        ({"model": {"noise": "ar2"}}, r"field 'model.noise' must be 'ols' or 'ar1'"),
+        ({"model": {"noise": "ar2"}}, r"field 'model.noise' must be 'arp', 'ols' or 'ar1'"),
         ({"model": {"kernels": ["spline"]}}, r"field 'model.kernels' has unknown kernel"),
         ({"model": {"highpass_s": -5}}, r"field 'model.highpass_s' must be at least 1 s"),
         ({"voxel": [1, 2]}, r"field 'voxel' must be \[i, j, k\]"),

@@ -79,7 +79,7 @@ def test_shift_scan_t_matches_statsmodels_on_shifted_designs():
     tone, tap = on[::2], on[1::2]
     conds = [Condition("tone", tone, np.zeros(tone.size)), Condition("tap", tap, [2.0] * tap.size)]
     a = Analysis(conds, N, TR)
-    s = ModelSettings(kernels=("gamma",), contrast="tone - tap")
+    s = ModelSettings(noise="ols", kernels=("gamma",), contrast="tone - tap")
     y = 50 + 20 * simulate(tone, np.zeros(tone.size)) + rng.standard_normal(N)
     scan = shift_scan(a, s, "gamma", y)
     assert np.array_equal(scan.shifts_s, np.array(SHIFTS_S))
@@ -119,7 +119,7 @@ def test_fir_betas_and_se_match_statsmodels():
     conf_values = rng.standard_normal((N, 2))
     conf = Confounds(("move_x", "move_y"), conf_values, "conf.tsv")
     a = Analysis([Condition("tone", on, np.zeros(on.size))], N, TR, confounds=conf)
-    s = ModelSettings(kernels=("double-gamma",))
+    s = ModelSettings(noise="ols", kernels=("double-gamma",))
     y = 100 + 30 * simulate(on, np.zeros(on.size)) + rng.standard_normal(N)
     fir = fir_estimate(a, s, y, "tone")
     d = a.design(get_kernel("fir", n_bins=fir.times.size, bin_s=TR), s)

@@ -199,6 +199,7 @@ def test_settings_and_kernel_changes_recompute(win, qtbot, demo_files):
 
 def test_clicking_a_flag_shows_its_figure(win, qtbot, demo_files):
     st = _open_demo(win)
+    st.update_settings(noise="ols")  # the demo's autocorrelation finding is about OLS
     panel = _show_checks(win, qtbot)
     st.set_voxel(tuple(_truth()["noisy_cluster"]["centre_voxel"]))
     c = _settle(panel, qtbot)
@@ -227,8 +228,10 @@ def test_planted_demo_findings_raise_their_flags(win, qtbot, demo_files):
     assert c.best_shift_s > 1.0  # later than the kernel
 
     st.set_voxel(tuple(truth["noisy_cluster"]["centre_voxel"]))
+    st.update_settings(noise="ols")  # the demo's finding: OLS leaves it autocorrelated
     _settle(panel, qtbot)
     assert "autocorrelation" in _flag_ids(panel)
+    st.update_settings(noise="arp")
 
     st.set_voxel(tuple(truth["drift_cluster"]["centre_voxel"]))
     _settle(panel, qtbot)
@@ -309,7 +312,8 @@ def test_fits_do_not_wait_for_the_checks(win, qtbot, demo_files, monkeypatch):
             st.set_voxel(ijk)
             # the click's fits are in the Fits table at once, while the checks are still held
             y = st.run.timeseries(ijk)
-            ref = st.analysis.fit_voxel(y, st.settings)
+            noise = st.analysis.noise_at(st.run, ijk, st.settings)
+            ref = st.analysis.fit_voxel(y, st.settings, noise)
             rows = {model.raw(r, "kernel"): model.raw(r, "t") for r in range(model.rowCount())}
             assert rows == {f.kernel: f.t for f in ref.fits}
             qtbot.wait(30)

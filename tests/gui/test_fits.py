@@ -62,6 +62,7 @@ def test_boxcar_row_matches_statsmodels(window, ras_run):
     """OLS t, df and R² of the boxcar row against statsmodels OLS + t_test (outside reference)."""
     assert window.open_run(ras_run["run"], background=False)
     st = window.state
+    st.update_settings(noise="ols")  # statsmodels OLS is the reference
     st.set_voxel(ras_run["hot"])
     analysis, y, _ = _core(ras_run, st.settings, ras_run["hot"])
     X = analysis.design("boxcar", st.settings).X

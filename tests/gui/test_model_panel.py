@@ -41,9 +41,8 @@ def test_contrast_edit_refits(window, ras_run, qtbot):
     qtbot.keyClicks(edit, "tap - tone")
     assert st.settings.contrast == "tap - tone"
     # a run starts with the default model exactly: no confound columns until picked
-    expected = st.analysis.fit_voxel(
-        st.series, ModelSettings(contrast="tap - tone", confound_columns=())
-    )
+    s = ModelSettings(contrast="tap - tone", confound_columns=())
+    expected = st.analysis.fit_voxel(st.series, s, st.analysis.noise_at(st.run, st.voxel, s))
     after = st.fits.by_kernel("boxcar").beta
     assert after != before
     assert after == pytest.approx(expected.by_kernel("boxcar").beta, rel=1e-12)

@@ -218,7 +218,11 @@ def add_model_args(
         help="e.g. 'tap', 'tap - tone', '0.5*tap + 0.5*tone' (default: first condition)",
     )
     p.add_argument(
-        "--noise", choices=("ols", "ar1"), default="ols", help="noise model (default ols)"
+        "--noise",
+        choices=("arp", "ols", "ar1"),
+        default="arp",
+        help="noise model: arp (default: AR(2), bias-corrected and smoothed in space), "
+        "ols, or ar1 (rho from each voxel's own residuals)",
     )
     p.add_argument(
         "--tail",

@@ -134,7 +134,10 @@ def fit_to_json(f: KernelFit, checks: dict | None = None, tail: str = "two") -> 
         "z": _z(f),
         "r2": f.r2,
         "noise": f.result.noise,
+        "noise_model": f.noise_text,
         "rho": f.rho,
+        "ar": None if f.result.ar is None else [float(v) for v in f.result.ar[:, 0]],
+        "noise_estimate": None if f.noise_estimate is None else f.noise_estimate.to_json(),
         "betas": f.betas,
         "fitted": f.fitted.tolist(),
         "residuals": f.residuals.tolist(),
@@ -162,14 +165,24 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str 
     """Fit one run at one voxel: the fits, the checks per kernel and the JSON object."""
     run = loaded.run
     y = run.timeseries(ijk)
-    fits = loaded.analysis.fit_voxel(y, loaded.settings)
+    # the default model: this voxel's AR(p) coefficients from its neighbourhood, as in maps
+    noise = loaded.analysis.noise_at(run, ijk, loaded.settings)
+    fits = loaded.analysis.fit_voxel(y, loaded.settings, noise)
     warnings = list(loaded.warnings) + list(fits.warnings)
     checks_by_kernel: dict[str, dict] = {}
     if checks:
         from ..core.checks import voxel_checks
 
         for f in fits.fits:
-            c = voxel_checks(loaded.analysis, loaded.settings, f.kernel, y, run=run, ijk=ijk)
+            c = voxel_checks(
+                loaded.analysis,
+                loaded.settings,
+                f.kernel,
+                y,
+                run=run,
+                ijk=ijk,
+                ar=None if f.result.ar is None else f.result.ar[:, 0],
+            )
             checks_by_kernel[f.kernel] = c.to_json()
     warnings += list(run.warnings)  # what the run said while read (a rebuilt cache)
     mm = [float(v) for v in np.asarray(run.voxel_to_mm(ijk)).reshape(-1)]
@@ -367,6 +380,9 @@ def run_fit(args: argparse.Namespace) -> int:
     print(format_table(fits, loaded.settings.noise, args.tail))
     for line in companions_text(loaded):
         print(line)
+    if loaded.settings.noise == "arp":
+        for f in fits.fits:
+            print(f"[{f.kernel}] noise: {f.noise_text}")
     for kernel, c in checks_by_kernel.items():
         for flag in c.get("flags", []):
             text = flag.get("text") if isinstance(flag, dict) else str(flag)

@@ -359,6 +359,7 @@ def voxel_checks(
     run: Any = None,
     ijk: Sequence[int] | None = None,
     condition: str | None = None,
+    ar: np.ndarray | None = None,
 ) -> VoxelChecks:
     """Run every check of one kernel's fit at one voxel.
 
@@ -444,7 +445,14 @@ def voxel_checks(
 
     parts: dict[str, Any] = {}
     notes: list[str] = []
-    main = fit(prep, y, w, noise=settings.noise)
+    if settings.noise == "arp" and ar is None and run is not None and ijk is not None:
+        from .noise import voxel_ar  # the whitening of the map and the Fits table
+
+        ar = voxel_ar(run, prep, ijk).phi
+    if settings.noise != "arp":
+        ar = None
+    main = fit(prep, y, w, noise=settings.noise, ar=ar)
+    ar = main.ar  # under AR(p): what the fit used (its own estimate when none was given)
     parts.update(t=float(main.t[0]), df=int(main.df))
     ols = main if settings.noise == "ols" else fit(prep, y, w, noise="ols")
     kept = np.arange(n) if keep is None else np.flatnonzero(keep)
@@ -454,12 +462,14 @@ def voxel_checks(
     if settings.noise == "ar1" and main.rho is not None:
         rw = prais_winsten(main.residuals[kept, 0], float(main.rho[0]), prep.steps)
         parts["ar1_whitened"] = float(ar1_rho(rw)[0])
+    if settings.noise == "arp" and main.whitened_residuals is not None:
+        rw = main.whitened_residuals[:, 0]
     parts.update(_whitened_part(rw))
-    infl = _influence_part(prep, y[kept], r, w, settings.noise, None, parts["t"])
+    infl = _influence_part(prep, y[kept], r, w, settings.noise, None, parts["t"], ar)
     parts.update(_on_all_volumes(infl, kept, n, base.rms_spikes))
     parts["tsnr"] = _tsnr(y, n, tr, settings.highpass_s, keep)
 
-    scan = shift_scan(analysis, settings, kernel, y)
+    scan = shift_scan(analysis, settings, kernel, y, ar=ar)
     parts.update(
         shifts_s=scan.shifts_s,
         shift_t=scan.t,
@@ -468,7 +478,7 @@ def voxel_checks(
         peak_latency_s=scan.peak_latency_s,
     )
     try:
-        parts["fir"] = fir_estimate(analysis, settings, y, cond).to_json()
+        parts["fir"] = fir_estimate(analysis, settings, y, cond, ar=ar).to_json()
     except ModelError as exc:
         notes.append(f"no FIR estimate: {exc}")
     parts["response"] = peri_event_response(analysis, settings, y, cond).to_json()
@@ -605,6 +615,7 @@ def _influence_part(
     noise: str,
     spikes: Sequence[int] | None,
     t_full: float,
+    ar: np.ndarray | None = None,
 ) -> dict[str, Any]:
     n = y.size
     inf = influence(prep, r)
@@ -615,7 +626,7 @@ def _influence_part(
     c_i = int(np.argmax(cooks)) if np.isfinite(cooks).any() else None
     order = [int(v) for v in np.argsort(-cooks, kind="stable") if cooks[v] > 4.0 / n]
     infl = tuple(order[:INFLUENTIAL_MAX])
-    t_drop = tuple(_t_without(prep, y, w, noise, infl[: m + 1]) for m in range(len(infl)))
+    t_drop = tuple(_t_without(prep, y, w, noise, infl[: m + 1], ar) for m in range(len(infl)))
     return {
         "outlier_volumes": tuple(sorted(set(stud_out) | set(spikes or ()))),
         "studentized_outliers": stud_out,
@@ -651,13 +662,19 @@ def _on_all_volumes(
 
 
 def _t_without(
-    prep: PreparedDesign, y: np.ndarray, w: np.ndarray, noise: str, drop: Sequence[int]
+    prep: PreparedDesign,
+    y: np.ndarray,
+    w: np.ndarray,
+    noise: str,
+    drop: Sequence[int],
+    ar: np.ndarray | None = None,
 ) -> float:
     """The contrast's t with some volumes left out, through the same glm.fit path.
 
     Columns that are all zero on the kept rows (a one-volume spike regressor, say) are left
     out when the contrast does not weight them. Under AR(1) the kept rows are treated as
-    consecutive (an approximation next to the dropped volumes).
+    consecutive (an approximation next to the dropped volumes), and so under AR(p), whose
+    coefficients (``ar``) are those of the full fit.
     """
     keep = np.ones(y.size, dtype=bool)
     keep[list(drop)] = False
@@ -665,7 +682,7 @@ def _t_without(
     cols = np.flatnonzero(np.any(X != 0, axis=0) | (w != 0))
     try:
         reduced = prepare(X[:, cols], [prep.names[c] for c in cols])
-        return float(fit(reduced, y[keep], w[cols], noise=noise).t[0])
+        return float(fit(reduced, y[keep], w[cols], noise=noise, ar=ar).t[0])
     except ModelError:
         return math.nan
 
@@ -765,8 +782,8 @@ def _edge_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
 
 
 _NEXT_MODEL = {
-    "ols": "Fit with a noise model that allows for autocorrelation (--noise ar1)",
-    "ar1": "AR(1) does not describe this noise; a model of higher order is needed",
+    "ols": "Fit with the default noise model, which allows for autocorrelation (--noise arp)",
+    "ar1": "AR(1) does not describe this noise; use the default AR(p) model (--noise arp)",
 }
 
 

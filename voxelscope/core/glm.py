@@ -1,4 +1,4 @@
-"""General linear model fits: OLS and AR(1), t and F contrasts, one voxel or many.
+"""General linear model fits: OLS, AR(1) and AR(p), t and F contrasts, one voxel or many.
 
 One code path serves a single clicked voxel and a whole volume: data are a matrix ``Y`` of
 shape ``(n_volumes, n_voxels)``; a single voxel is a batch of one.
@@ -30,6 +30,15 @@ normal equations are quadratic in rho, so they are assembled from a few products
 design with the data and solved per voxel as small p x p systems (see ``_ar1_solve``); the
 residual variance comes from explicitly whitened residuals.
 
+AR(p) noise model (the default of maps, fits and the window)
+-----------------------------------------------------------
+``noise="arp"`` prewhitens every voxel with AR(p) coefficients given by the caller
+(``ar``, one row per voxel): the bias-corrected, spatially smoothed estimates of
+:mod:`voxelscope.core.noise` (Worsley et al. 2002). The whitening is the exact inverse
+Cholesky factor of the AR(p) covariance (Prais-Winsten for p = 1), the GLS normal
+equations are assembled per voxel from lagged products of the design, and the residual
+variance comes from explicitly whitened residuals; ``df = n - rank``.
+
 Examples
 --------
 >>> rng = np.random.default_rng(0)
@@ -53,6 +62,7 @@ from .errors import InputError, ModelError
 from .pvalues import neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
+    "NOISE_MODELS",
     "FitResult",
     "PreparedDesign",
     "ar1_rho",
@@ -65,6 +75,10 @@ __all__ = [
 ]
 
 _RHO_LIMIT = 0.99
+
+#: Noise models: ordinary least squares, AR(1) from the OLS residuals (Prais-Winsten), and
+#: the default AR(p), bias-corrected and smoothed in space (voxelscope.core.noise).
+NOISE_MODELS = ("ols", "ar1", "arp")
 
 #: Voxels whose ``1 - R^2`` (residual over total sum of squares) is below this get their
 #: residual sum of squares from explicit residuals instead of ``||y||^2 - ||Q'y||^2``:
@@ -486,7 +500,7 @@ class FitResult:
 
     Attributes
     ----------
-    noise : {"ols", "ar1"}
+    noise : {"ols", "ar1", "arp"}
     weights : ndarray (p,)
         Contrast weights.
     betas : ndarray (p, n_voxels)
@@ -499,7 +513,12 @@ class FitResult:
     sigma2 : residual variance ``sum(r^2) / df`` (of the whitened residuals under AR(1))
     r2 : ``1 - sum((y - Xb)^2) / sum((y - mean y)^2)`` in data units (uncentred,
         ``sum(y^2)`` below, when the design has no constant column)
-    rho : AR(1) coefficient per voxel (None for OLS)
+    rho : AR(1) coefficient per voxel (None for OLS and AR(p))
+    ar : ndarray (order, n_voxels) or None
+        AR(p) coefficients used for each voxel (``noise="arp"`` only).
+    whitened_residuals : ndarray (n, n_voxels) or None
+        Residuals after prewhitening (AR(1) and AR(p), when series are kept): what the
+        model assumes to be white noise.
     fitted, residuals : ndarray (n, n_voxels) or None
         ``X b`` and ``y - X b`` in data units; None when not kept.
     degenerate : bool per voxel
@@ -529,6 +548,8 @@ class FitResult:
     group: np.ndarray
     names: tuple[str, ...] = field(default=())
     keep: np.ndarray | None = None
+    ar: np.ndarray | None = None
+    whitened_residuals: np.ndarray | None = None
 
     @property
     def n_voxels(self) -> int:
@@ -629,6 +650,7 @@ def fit(
     rho_step: float | None = None,
     keep_series: bool = True,
     want_p: bool = True,
+    ar: np.ndarray | None = None,
 ) -> FitResult:
     """Fit a design to one or many time series and evaluate one t contrast.
 
@@ -640,7 +662,7 @@ def fit(
         the transpose of voxel-major rows); computed in float64 in a copy that keeps
         ``Y``'s layout, so ``Y`` itself is never changed.
     contrast : sequence of float, length p
-    noise : {"ols", "ar1"}
+    noise : {"ols", "ar1", "arp"}
     rho_step : float, optional
         Under AR(1), round rho to this step before whitening (kept for comparisons with
         binned methods). None uses
@@ -650,6 +672,11 @@ def fit(
     want_p : bool
         Compute ``p`` (default). Maps that keep only ``t``, ``beta`` or ``variance`` turn
         this off to save the t distribution's tail; ``p`` is then None (``z`` still works).
+    ar : ndarray (order,) or (order, n_voxels)
+        AR(p) coefficients for ``noise="arp"`` (one column per voxel, or one for all);
+        see :mod:`voxelscope.core.noise` for how the default model estimates them (maps
+        and clicked voxels pass the spatially smoothed ones). None: each voxel's own
+        bias-corrected estimate, not smoothed.
 
     Returns
     -------
@@ -667,13 +694,27 @@ def fit(
     c = np.asarray(contrast, dtype=float).reshape(-1)
     if c.size != p:
         raise InputError(f"the contrast has {c.size} weights but the design has {p} columns")
-    if noise not in ("ols", "ar1"):
-        raise InputError(f"noise model must be 'ols' or 'ar1', not '{noise}'")
+    if noise not in NOISE_MODELS:
+        raise InputError(f"noise model must be one of {', '.join(NOISE_MODELS)}, not '{noise}'")
+    if noise == "arp":
+        if ar is None:  # no neighbourhood: each voxel's own bias-corrected estimate
+            from .noise import own_ar
+
+            ar = own_ar(prep, Y)
+        ar = np.asarray(ar, dtype=np.float64)
+        if ar.ndim == 1:
+            ar = ar[:, None]
+        if ar.shape[1] == 1 and Y.shape[1] != 1:
+            ar = np.repeat(ar, Y.shape[1], axis=1)
+        if ar.shape[1] != Y.shape[1] or not np.all(np.isfinite(ar)):
+            raise InputError(
+                f"ar has {ar.shape[1]} columns for {Y.shape[1]} voxels (or non-finite values)"
+            )
 
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         if prep.keep is None:
-            return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p)
-        return _fit_kept(prep, Y, c, noise, rho_step, keep_series, want_p)
+            return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p, ar)
+        return _fit_kept(prep, Y, c, noise, rho_step, keep_series, want_p, ar)
 
 
 def _fit_kept(
@@ -684,13 +725,14 @@ def _fit_kept(
     rho_step: float | None,
     keep_series: bool,
     want_p: bool,
+    ar: np.ndarray | None = None,
 ) -> FitResult:
     """Fit on the kept volumes only; fitted values and residuals cover every volume.
 
     Left-out volumes leave every statistic (betas, variance, t, df, rho, R²); their fitted
     value is ``x_t b`` and their residual ``y_t - x_t b``, for plots that grey them.
     """
-    res = _fit_checked(prep, Y[prep.keep], c, noise, rho_step, keep_series, want_p)
+    res = _fit_checked(prep, Y[prep.keep], c, noise, rho_step, keep_series, want_p, ar)
     if keep_series:
         fitted = prep.X_all @ res.betas
         res.fitted = fitted
@@ -818,16 +860,17 @@ def _fit_checked(
     rho_step: float | None,
     keep_series: bool,
     want_p: bool = True,
+    ar: np.ndarray | None = None,
 ) -> FitResult:
     X = prep.X
     n = X.shape[0]
     v = Y.shape[1]
     # One float64 working copy. OLS keeps Y's own layout (order "K"): a block of voxel-major
     # rows arrives as an F-ordered view and a block of volumes C-ordered, and neither is
-    # transposed. AR(1) works in C order: rho is a ratio of sums over time whose rounding
+    # transposed. AR(1) and AR(p) work in C order: rho is a ratio of sums over time whose rounding
     # depends on the layout, and t is sensitive to rho near 1, so a C-order copy keeps
     # AR(1) results the same to the last digit whichever store the data come from.
-    Y = np.array(Y, dtype=np.float64, order="C" if noise == "ar1" else "K", copy=True)
+    Y = np.array(Y, dtype=np.float64, order="K" if noise == "ols" else "C", copy=True)
     total = Y.sum(axis=0)
     bad = None
     if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
@@ -843,15 +886,42 @@ def _fit_checked(
     # constant voxels: what is left after centring is only the rounding of the mean
     flat = None if noise == "ols" else tss <= 1e-20 * mean * mean * n
 
-    B, rss = _rss(prep, Y, tss)  # the same for one clicked voxel and a whole map
-    R = None
-    if keep_series or noise == "ar1":  # residuals only where they are shown or needed
+    Rw = None
+    if noise == "arp":
+        from .noise import gls_solve, whiten
+
+        B, cov, cvar, filt, ywwy, gb = gls_solve(X, Y, ar, c, want_cov=keep_series or v <= 64)
+        if keep_series:  # residuals are shown: all explicit
+            R = np.matmul(X, B)
+            np.subtract(Y, R, out=R)
+            rss = np.einsum("ij,ij->j", R, R)
+            Rw = whiten(filt, R)
+            rss_w = np.einsum("ij,ij->j", Rw, Rw)
+        else:
+            # maps: the whitened residual sum of squares y*'y* - b'X*'y*, with explicit
+            # residuals below the guard (near-exact fits), as for OLS; R^2 is not kept
+            R = None
+            rss = np.full(v, np.nan)
+            rss_w = ywwy - gb
+            close = np.flatnonzero(~(rss_w > RSS_GUARD * ywwy))
+            if close.size:
+                Rc = Y[:, close] - X @ B[:, close]
+                Rwc = whiten(filt[close], Rc)
+                rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
+        if cov is None:
+            cov = np.zeros((0, X.shape[1], X.shape[1]))
+        group = np.arange(v)
+    else:
+        B, rss = _rss(prep, Y, tss)  # the same for one clicked voxel and a whole map
+        R = None
+    if noise != "arp" and (keep_series or noise == "ar1"):  # residuals where shown or needed
         R = np.empty_like(Y)  # in place: R = Y - X B
         np.matmul(X, B, out=R)
         np.subtract(Y, R, out=R)
     df = prep.df
     rho = None
-    rss_w = rss
+    if noise != "arp":
+        rss_w = rss
     if noise == "ar1":
         rss = np.einsum("ij,ij->j", R, R)  # rho is a ratio of residual sums: both explicit
         rho = np.where(flat, 0.0, _rho_of(R, rss, prep.steps))  # 0 for constant voxels
@@ -866,13 +936,16 @@ def _fit_checked(
         # whitened residuals: the Prais-Winsten transform is linear, so whiten y - X b
         if prep.steps is not None:
             rss_w = _gap_rss(R, rho, prep.steps)
+            Rw = None
         else:
             Rw0 = np.sqrt(1.0 - rho * rho) * R[0]
             Rw = np.multiply(R[:-1], rho, out=Y[1:])  # Y is not needed any more
             np.subtract(R[1:], Rw, out=Rw)
             rss_w = Rw0 * Rw0 + np.einsum("ij,ij->j", Rw, Rw)
+            if keep_series:
+                Rw = np.concatenate([Rw0[None], Rw])
         group = np.arange(v)
-    else:
+    elif noise == "ols":
         group = np.zeros(v, dtype=np.int64)
         cov = prep.cov_unscaled[None]
         cvar = _contrast_variance(prep, c)
@@ -907,6 +980,8 @@ def _fit_checked(
     if keep_series:
         fitted = X @ B
         residuals = R
+    else:
+        Rw = None
     if bad is not None:  # voxels with NaN or infinite samples have no fit at all
         B[:, bad] = np.nan
         beta[bad] = np.nan
@@ -915,6 +990,8 @@ def _fit_checked(
         if keep_series:
             fitted[:, bad] = np.nan
             residuals[:, bad] = np.nan
+            if Rw is not None:
+                Rw[:, bad] = np.nan
     return FitResult(
         noise=noise,
         weights=c,
@@ -933,6 +1010,8 @@ def _fit_checked(
         cov_unscaled=cov,
         group=group,
         names=prep.names,
+        ar=ar if noise == "arp" else None,
+        whitened_residuals=Rw,
     )
 
 

@@ -68,7 +68,7 @@ DEFAULT_CHUNK_VOXELS = 1024
 
 ProgressCallback = Callable[[float], "bool | None"]
 
-_NOISE_LABEL = {"ols": "OLS", "ar1": "AR(1)"}
+_NOISE_LABEL = {"ols": "OLS", "ar1": "AR(1)", "arp": "AR(p) (bias-corrected, smoothed)"}
 _TAIL_LABEL = {
     "two": "two-sided",
     "positive": "one-sided (positive)",
@@ -111,6 +111,9 @@ class MapResult:
         ``-log10 p`` for :attr:`tail`; 0 outside the mask.
     tail : {"two", "positive", "negative"}
         The tail ``p`` and ``neglog10p`` are stated for.
+    ar : ndarray (X, Y, Z, order) float32 or None
+        Under the AR(p) model: the smoothed, bias-corrected AR coefficients every voxel was
+        prewhitened with (:mod:`voxelscope.core.noise`).
     """
 
     t: np.ndarray | None
@@ -132,6 +135,8 @@ class MapResult:
     rho_step: float | None = None
     neglog10p: np.ndarray | None = None
     tail: str = "two"
+    ar: np.ndarray | None = None
+    gaps: bool = False
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -171,6 +176,10 @@ class MapResult:
         )
         if deg:
             text += f" ({deg} constant or exactly fitted voxels set to 0)"
+        if self.noise == "arp" and self.gaps:
+            from .model import GAP_NOTE
+
+            text += f"; {GAP_NOTE}"
         return text
 
 
@@ -304,6 +313,36 @@ def _scatter(
         rho[idx] = res.rho
 
 
+def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -> None:
+    """``store(idx, work(data))`` for every block, on ``n_workers`` threads in order.
+
+    The main thread reads block k+1 while the workers fit earlier ones (NumPy and BLAS
+    release the GIL); at most 2 blocks per worker are in flight.
+    """
+
+    def call(idx, data):
+        return work(idx, data) if with_index else work(data)
+
+    if n_workers == 1:
+        for idx, data in chunks:
+            store(idx, call(idx, data))
+        return
+    with ThreadPoolExecutor(n_workers, thread_name_prefix="voxelscope-map") as pool:
+        pending: deque = deque()
+        try:
+            for idx, data in chunks:
+                pending.append((idx, pool.submit(call, idx, data)))
+                while len(pending) > 2 * n_workers:
+                    i, fut = pending.popleft()
+                    store(i, fut.result())
+            while pending:
+                i, fut = pending.popleft()
+                store(i, fut.result())
+        finally:
+            for _i, fut in pending:
+                fut.cancel()
+
+
 def compute_map(
     run: Any,
     analysis: Analysis,
@@ -401,45 +440,70 @@ def compute_map(
 
     need_p = "p" in want and tail == "two"
     noise = settings.noise
+    arp = noise == "arp"
+    phi_flat = None
+    ar_map = None
+    share = 0.5 if arp else 0.0  # of the progress bar spent on the AR pass
 
-    def fit_chunk(data: np.ndarray):
+    def report(fraction: float) -> None:
+        if progress is not None and progress(fraction) is False:
+            raise Cancelled("the map was cancelled")
+
+    def chunks():
+        if hasattr(run, "iter_blocks"):
+            return run.iter_blocks(mask, block_voxels=int(chunk_voxels))
+        # a run with only the row interface: (n, T) rows, transposed (a view)
+        return ((i, d.T) for i, d in run.iter_chunks(mask, chunk_voxels=int(chunk_voxels)))
+
+    if arp:
+        # Pass 1: bias-corrected autocorrelations of the OLS residuals, smoothed in the mask
+        from .noise import AR_ORDER, BIAS_LAGS, ar_from_smoothed, ols_autocorr_block, smooth_map
+
+        order = AR_ORDER
+        n_lags = max(order, BIAS_LAGS) + 1
+        rho_flat = np.zeros((n_all, n_lags))  # autocovariances v_0..v_L per voxel
+        ok_flat = np.zeros(n_all, dtype=bool)
+        seen = 0
+
+        def store_rho(idx: np.ndarray, out) -> None:
+            nonlocal seen
+            rho_flat[idx] = out[0].T
+            ok_flat[idx] = out[1]
+            seen += idx.size
+            report(share * seen / total if total else share)
+
+        with _one_blas_thread():
+            _for_blocks(
+                chunks(), lambda d: ols_autocorr_block(_prep, d, order), store_rho, n_workers
+            )
+        sm = smooth_map(rho_flat.reshape((*shape, n_lags)), ok_flat.reshape(shape) & mask, run)
+        inside = np.flatnonzero(mask.reshape(-1))
+        phi_flat = np.zeros((order, n_all))
+        phi_flat[:, inside] = ar_from_smoothed(sm.reshape(-1, n_lags)[inside].T, order, _prep)[0]
+        ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
+
+    def fit_chunk(idx: np.ndarray, data: np.ndarray):
         # what Analysis.fit_many does, with p only when a map needs it
+        ar = None if phi_flat is None else phi_flat[:, idx]
         return fit(
-            _prep, data, weights, noise=noise, rho_step=step, keep_series=False, want_p=need_p
+            _prep,
+            data,
+            weights,
+            noise=noise,
+            rho_step=step,
+            keep_series=False,
+            want_p=need_p,
+            ar=ar,
         )
 
     def store(idx: np.ndarray, res) -> None:
         nonlocal done
         _scatter(res, idx, flat, want, fitted, degenerate, rho, tail)
         done += idx.size
-        if progress is not None and progress(done / total if total else 1.0) is False:
-            raise Cancelled("the map was cancelled")
+        report(share + (1.0 - share) * (done / total if total else 1.0))
 
-    if hasattr(run, "iter_blocks"):
-        chunks = run.iter_blocks(mask, block_voxels=int(chunk_voxels))
-    else:  # a run with only the row interface: (n, T) rows, transposed (a view)
-        chunks = ((i, d.T) for i, d in run.iter_chunks(mask, chunk_voxels=int(chunk_voxels)))
     with _one_blas_thread():
-        if n_workers == 1:
-            for idx, data in chunks:
-                store(idx, fit_chunk(data))
-        else:
-            # The main thread reads chunk k+1 while the workers fit earlier ones (NumPy and
-            # BLAS release the GIL); at most 2 chunks per worker are in flight.
-            with ThreadPoolExecutor(n_workers, thread_name_prefix="voxelscope-map") as pool:
-                pending: deque = deque()
-                try:
-                    for idx, data in chunks:
-                        pending.append((idx, pool.submit(fit_chunk, data)))
-                        while len(pending) > 2 * n_workers:
-                            i, fut = pending.popleft()
-                            store(i, fut.result())
-                    while pending:
-                        i, fut = pending.popleft()
-                        store(i, fut.result())
-                finally:
-                    for _i, fut in pending:
-                        fut.cancel()
+        _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
     if total == 0 and progress is not None:
         progress(1.0)
 
@@ -464,6 +528,8 @@ def compute_map(
         affine=np.asarray(getattr(run, "affine", np.eye(4)), dtype=np.float64),
         settings=settings,
         rho_step=rho_step if ar1 else None,
+        ar=ar_map,
+        gaps=getattr(_prep, "steps", None) is not None,
         neglog10p=vol("neglog10p"),
         tail=tail,
     )

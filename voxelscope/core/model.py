@@ -18,8 +18,9 @@ Examples
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 
@@ -30,7 +31,13 @@ from .events import Condition, EventsFile, events_sanity, shift_conditions
 from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, parse_contrast, prepare
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
 
-__all__ = ["Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
+__all__ = ["GAP_NOTE", "Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
+
+#: Said when the AR(p) model meets censored volumes inside the run.
+GAP_NOTE = (
+    "AR(p) prewhitening reads the kept volumes on either side of a censored one as "
+    "consecutive (an approximation); AR(1) handles such gaps exactly"
+)
 
 
 @dataclass(frozen=True)
@@ -43,7 +50,10 @@ class ModelSettings:
         Kernels to fit, in display order.
     contrast : str or None
         Contrast expression; None means the first condition.
-    noise : {"ols", "ar1"}
+    noise : {"arp", "ols", "ar1"}
+        ``arp`` (the default): AR(p) prewhitening with bias-corrected coefficients smoothed
+        in space (:mod:`voxelscope.core.noise`); ``ols``: ordinary least squares;
+        ``ar1``: AR(1) with rho from the voxel's own OLS residuals (Prais-Winsten).
     highpass_s : float or None
         Discrete cosine drift cutoff; None for no drift columns. 128 s is a common default.
     confound_columns : tuple of str or None
@@ -75,7 +85,7 @@ class ModelSettings:
 
     kernels: tuple[str, ...] = DEFAULT_KERNELS
     contrast: str | None = None
-    noise: str = "ols"
+    noise: str = "arp"
     highpass_s: float | None = 128.0
     confound_columns: tuple[str, ...] | None = None
     onset_shift_s: float = 0.0
@@ -103,6 +113,22 @@ class KernelFit:
     f: float | None = None
     f_p: float | None = None
     f_df: tuple[int, int] | None = None
+    #: AR(p) only: how the voxel's coefficients were obtained (None: from its own series).
+    noise_estimate: Any = None
+
+    @property
+    def noise_text(self) -> str:
+        """One line naming the noise model and, under AR(p), where its coefficients came
+        from."""
+        noise = self.result.noise
+        if noise == "ols":
+            return "OLS (white noise assumed)"
+        if noise == "ar1":
+            return f"AR(1), rho {self._scalar(self.result.rho):.3f} from this voxel's residuals"
+        if self.noise_estimate is not None:
+            return self.noise_estimate.describe()
+        coefs = ", ".join(f"{v:.3f}" for v in np.asarray(self.result.ar).reshape(-1))
+        return f"AR(p) coefficients {coefs} from this voxel alone (no neighbourhood given)"
 
     def _scalar(self, a) -> float | None:
         if a is None:
@@ -454,11 +480,37 @@ class Analysis:
         settings: ModelSettings,
         rho_step: float | None = None,
         keep_series: bool = False,
+        ar: np.ndarray | None = None,
     ) -> FitResult:
-        """Fit many voxels (columns of ``Y``) under one kernel (whole-volume maps)."""
+        """Fit many voxels (columns of ``Y``) under one kernel (whole-volume maps).
+
+        ``ar`` (order, V): AR(p) coefficients under ``noise="arp"`` (see
+        :func:`voxelscope.core.glm.fit`)."""
         _d, prep = self.prepared(kernel, settings)
         w = self.contrast_weights(kernel, settings)
-        return fit(prep, Y, w, noise=settings.noise, rho_step=rho_step, keep_series=keep_series)
+        return fit(
+            prep, Y, w, noise=settings.noise, rho_step=rho_step, keep_series=keep_series, ar=ar
+        )
+
+    def noise_at(
+        self,
+        run: Any,
+        ijk: Sequence[int],
+        settings: ModelSettings,
+        mask: np.ndarray | None = None,
+    ) -> dict[str, Any]:
+        """Per kernel, the voxel's AR(p) coefficients exactly as the map computes them
+        (:func:`voxelscope.core.noise.voxel_ar`: its neighbourhood within the smoothing
+        kernel, in ``mask``, default the run's); empty unless ``settings.noise == "arp"``.
+        """
+        if settings.noise != "arp":
+            return {}
+        from .noise import voxel_ar
+
+        out: dict[str, Any] = {}
+        for name, _d, prep, _w, _C in self._plan(settings):
+            out[name] = voxel_ar(run, prep, ijk, mask=mask)
+        return out
 
     def _plan(self, settings: ModelSettings) -> list[tuple]:
         """Per kernel: name, design, prepared design, weights, F-test rows (cached)."""
@@ -482,11 +534,19 @@ class Analysis:
             self._plans[settings] = plan
         return plan
 
-    def fit_voxel(self, y: np.ndarray, settings: ModelSettings) -> VoxelFits:
+    def fit_voxel(
+        self,
+        y: np.ndarray,
+        settings: ModelSettings,
+        noise: Mapping[str, Any] | None = None,
+    ) -> VoxelFits:
         """Fit one voxel's time series under every kernel in ``settings.kernels``.
 
         Each kernel goes through :func:`voxelscope.core.glm.fit` with a batch of one, the
-        same path as whole-volume maps.
+        same path as whole-volume maps. Under ``noise="arp"``, ``noise`` maps each kernel
+        to its :class:`~voxelscope.core.noise.ArEstimate` (from :meth:`noise_at`), so the
+        voxel is whitened exactly as in the map; without it the voxel's own estimate is
+        used and a warning says so.
         """
         y = np.asarray(y, dtype=float).reshape(-1)
         if y.size != self.n_volumes:
@@ -496,16 +556,26 @@ class Analysis:
         plan = self._plan(settings)
         expr = settings.contrast or self.default_contrast()
         fits = []
+        arp = settings.noise == "arp"
         for name, d, prep, w, C in plan:
-            res = fit(prep, y, w, noise=settings.noise)
+            est = (noise or {}).get(name) if arp else None
+            ar = None if est is None else est.phi
+            res = fit(prep, y, w, noise=settings.noise, ar=ar)
             f = f_p = f_df = None
             if C is not None:
                 fv, pv, q, dfd = f_test(res, C)
                 f = float(fv[0]) if np.isfinite(fv[0]) else None
                 f_p = float(pv[0]) if np.isfinite(pv[0]) else None
                 f_df = (q, dfd)
-            fits.append(KernelFit(name, d, res, expr, f, f_p, f_df))
+            fits.append(KernelFit(name, d, res, expr, f, f_p, f_df, est))
         warnings = []
+        if arp and any(getattr(pr, "steps", None) is not None for _n, _d, pr, _w, _C in plan):
+            warnings.append(GAP_NOTE)
+        if arp and not noise:
+            warnings.append(
+                "AR(p) coefficients from this voxel alone: the map smooths them over the "
+                "neighbourhood, so its numbers can differ (give the run to use it)"
+            )
         if fits and fits[0].result.degenerate[0]:
             if not np.all(np.isfinite(y)):
                 warnings.append(

@@ -567,7 +567,8 @@ def write_report(
 
     def write_section(sec: ReportSection, folder: Path) -> list[Path]:
         y = run.timeseries(sec.ijk)
-        sec.fits = analysis.fit_voxel(y, settings)
+        noise = analysis.noise_at(run, sec.ijk, settings)  # the map's whitening (AR(p))
+        sec.fits = analysis.fit_voxel(y, settings, noise)
         all_warnings.extend(f"{sec.title}: {w}" for w in sec.fits.warnings)
         if checks:
             sec.checks, sec.checks_note = _checks_for(analysis, settings, sec.fits, run, sec.ijk)

@@ -405,7 +405,7 @@ def write_runs_report(
         if sec.error:
             continue
         for run, a, ijk, lab, slug in zip(runs, analyses, sec.voxels, labels, slugs):
-            vf = a.fit_voxel(run.timeseries(ijk), settings)
+            vf = a.fit_voxel(run.timeseries(ijk), settings, a.noise_at(run, ijk, settings))
             sec.fits.append(vf)
             all_warnings += [f"{sec.title}, {lab}: {w}" for w in vf.warnings]
             chk = ReportSection(sec.number, lab, "", tuple(ijk), None)

@@ -394,8 +394,8 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
 
     def noise() -> str:
         value = c.text(d["noise"], "model.noise")
-        if value not in ("ols", "ar1"):
-            raise c.fail("model.noise", f"must be 'ols' or 'ar1', not '{excerpt(value)}'")
+        if value not in ("arp", "ols", "ar1"):
+            raise c.fail("model.noise", f"must be 'arp', 'ols' or 'ar1', not '{excerpt(value)}'")
         return value
 
     def ranged(name: str, integer: bool = False, allow_none: bool = False):

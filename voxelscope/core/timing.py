@@ -156,6 +156,7 @@ def shift_scan(
     kernel: str | Kernel,
     y: np.ndarray,
     shifts: Sequence[float] = SHIFTS_S,
+    ar: np.ndarray | None = None,
 ) -> ShiftScan:
     """The contrast's t at one voxel with every onset moved by each shift.
 
@@ -173,7 +174,7 @@ def shift_scan(
     """
     y = np.asarray(y, dtype=float).reshape(-1)
     sh = np.asarray(shifts, dtype=float)
-    t = np.array([_shift_t(analysis, settings, kernel, y, float(s)) for s in sh])
+    t = np.array([_shift_t(analysis, settings, kernel, y, float(s), ar) for s in sh])
     zero = np.flatnonzero(sh == 0.0)
     t0 = float(t[zero[0]]) if zero.size else math.nan
     sign = -1.0 if (math.isfinite(t0) and t0 < 0) else 1.0
@@ -183,7 +184,12 @@ def shift_scan(
 
 
 def _shift_t(
-    analysis: Analysis, settings: ModelSettings, kernel: str | Kernel, y: np.ndarray, s: float
+    analysis: Analysis,
+    settings: ModelSettings,
+    kernel: str | Kernel,
+    y: np.ndarray,
+    s: float,
+    ar: np.ndarray | None = None,
 ) -> float:
     moved = settings.with_(onset_shift_s=float(settings.onset_shift_s) + s)
     try:
@@ -191,7 +197,7 @@ def _shift_t(
         w = analysis.contrast_weights(kernel, moved)
     except ModelError:
         return math.nan  # e.g. every event of a condition moved out of the run
-    return float(fit(prep, y, w, noise=settings.noise).t[0])
+    return float(fit(prep, y, w, noise=settings.noise, ar=ar).t[0])
 
 
 @dataclass(frozen=True, eq=False)
@@ -247,6 +253,7 @@ def fir_estimate(
     y: np.ndarray,
     condition: str,
     span_s: float | None = None,
+    ar: np.ndarray | None = None,
 ) -> FirEstimate:
     """FIR estimate of a condition's response at one voxel, with the settings' FIR bins.
 
@@ -270,7 +277,7 @@ def fir_estimate(
     cols = list(d.condition_columns[condition])
     w = np.zeros(d.n_columns)
     w[cols] = 1.0 / len(cols)
-    res = fit(prep, y, w, noise=settings.noise)
+    res = fit(prep, y, w, noise=settings.noise, ar=ar)
     est = res.betas[cols, 0].copy()
     cov = res.cov_unscaled[int(res.group[0])]
     se = np.sqrt(float(res.sigma2[0]) * np.diag(cov)[cols])
@@ -282,7 +289,7 @@ def fir_estimate(
         if isinstance(name, str) and name.lower() == "fir":
             continue
         try:
-            both = _kernel_response(analysis, settings, name, y, condition, np.r_[times, fine])
+            both = _kernel_response(analysis, settings, name, y, condition, np.r_[times, fine], ar)
         except (ModelError, ValueError):
             # a kernel that cannot be fitted under these settings is not drawn (e.g. boxcar
             # with derivatives, which the kernel module cannot differentiate)
@@ -320,11 +327,12 @@ def _kernel_response(
     y: np.ndarray,
     condition: str,
     times: np.ndarray,
+    ar: np.ndarray | None = None,
 ) -> np.ndarray:
     """A kernel's fitted response (all its basis columns) to one event at time 0."""
     d, prep = analysis.prepared(name, settings)
     w = analysis.contrast_weights(name, settings)
-    res = fit(prep, y, w, noise=settings.noise)
+    res = fit(prep, y, w, noise=settings.noise, ar=ar)
     k = d.kernel
     c = next(c for c in analysis.conditions if c.name == condition)
     dur = float(np.median(c.durations)) if c.n_events else 0.0

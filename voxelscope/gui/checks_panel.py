@@ -54,6 +54,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.checks import VoxelChecks, voxel_checks
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.noise import NOISE_LABELS
 from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
@@ -729,7 +730,7 @@ class ChecksPanel(QWidget):
             self.caption.setText("")
         else:
             i, j, k = key[4]
-            noise = "AR(1)" if checks.noise == "ar1" else "OLS"
+            noise = NOISE_LABELS.get(checks.noise, checks.noise)
             self.caption.setText(
                 f"<b>{esc(checks.kernel)}</b> fit at voxel ({i}, {j}, {k}) · contrast "
                 f"{esc(checks.contrast)} · {noise} · response of {esc(checks.condition)}"

@@ -21,6 +21,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from voxelscope.core.noise import NOISE_LABELS
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
 from voxelscope.gui.state import ViewerState
@@ -453,7 +454,7 @@ class FitsPanel(QWidget):
             self.notes.setText("")
             return
         contrast = s.contrast or analysis.default_contrast()
-        noise = "AR(1)" if s.noise == "ar1" else "OLS"
+        noise = NOISE_LABELS.get(s.noise, s.noise)
         hp = "none" if s.highpass_s is None else f"{s.highpass_s:g} s"
         shift = f", onsets {s.onset_shift_s:+g} s" if s.onset_shift_s else ""
         self.caption.setText(
@@ -470,6 +471,13 @@ class FitsPanel(QWidget):
             )
             notes += [f"{r.label}: {r.note}" for r in st.run_fits if r.note]
             notes += runs_summary(st.combined)
+        if fits is not None and s.noise == "arp":
+            # say how each kernel's AR coefficients were obtained (the map's whitening)
+            notes.extend(
+                f"{f.kernel}: "
+                + (f.noise_estimate.short() if f.noise_estimate is not None else f.noise_text)
+                for f in fits.fits
+            )
         if fits is not None and not fits.fits:
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))

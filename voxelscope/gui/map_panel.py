@@ -25,6 +25,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from voxelscope.core.noise import NOISE_LABELS
 from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
 from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import ElidedLabel, compact_spin, fit_combo
@@ -370,7 +371,8 @@ class MapPanel(QWidget):
         elif isinstance(layer, LiveLayer) and self.live.model is not None:
             m = self.live.model
             text = (
-                f"contrast '{m.contrast}', {m.noise.upper() if m.noise == 'ols' else 'AR(1)'}, "
+                f"contrast '{m.contrast}', "
+                f"{NOISE_LABELS.get(m.noise, m.noise)}, "
                 f"df {m.df}, {m.n_voxels} voxels"
             )
             if self.live.last_seconds is not None:

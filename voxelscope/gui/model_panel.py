@@ -28,6 +28,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.hrf import KERNEL_NAMES
+from voxelscope.core.noise import AR_ORDER, NOISE_LABELS
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.confound_picker import ConfoundPicker
 from voxelscope.gui.events_box import EventsBox
@@ -187,15 +188,25 @@ class ModelPanel(QWidget):
         form = QFormLayout(noise)
         form.setLabelAlignment(Qt.AlignmentFlag.AlignLeft)
         self.noise = QComboBox()
+        self.noise.addItem(f"AR({AR_ORDER})", "arp")
         self.noise.addItem("OLS", "ols")
         self.noise.addItem("AR(1)", "ar1")
         self.noise.setItemData(
-            0, "Ordinary least squares: white noise", Qt.ItemDataRole.ToolTipRole
+            0,
+            f"Default: AR({AR_ORDER}) prewhitening with bias-corrected coefficients averaged "
+            "over the voxel's neighbourhood (Worsley et al. 2002)",
+            Qt.ItemDataRole.ToolTipRole,
         )
         self.noise.setItemData(
-            1, "AR(1) prewhitened: autocorrelated noise", Qt.ItemDataRole.ToolTipRole
+            1, "Ordinary least squares: white noise", Qt.ItemDataRole.ToolTipRole
         )
-        self.noise.setToolTip("OLS assumes white noise; AR(1) prewhitens autocorrelated noise")
+        self.noise.setItemData(
+            2, "AR(1) prewhitened, rho from this voxel's residuals", Qt.ItemDataRole.ToolTipRole
+        )
+        self.noise.setToolTip(
+            f"{NOISE_LABELS['arp']} (default) and AR(1) prewhiten autocorrelated noise; "
+            "OLS assumes white noise"
+        )
         self.noise.currentIndexChanged.connect(
             lambda _i: self.state.update_settings(noise=self.noise.currentData())
         )

@@ -363,7 +363,12 @@ class ViewerState(QObject):
             return False
         try:
             y = run.timeseries(self.voxel)
-            fits = None if self.analysis is None else self.analysis.fit_voxel(y, self.settings)
+            fits = None
+            if self.analysis is not None:
+                # under the default model: the voxel's AR(p) coefficients from its
+                # neighbourhood, exactly as the map whitens it
+                noise = self.analysis.noise_at(run, self.voxel, self.settings)
+                fits = self.analysis.fit_voxel(y, self.settings, noise)
         except VoxelscopeError as err:
             self.message.emit(str(err))
             return False
@@ -462,7 +467,8 @@ class ViewerState(QObject):
             try:
                 ijk = b.run.mm_to_voxel(tuple(float(v) for v in mm))
                 y = b.run.timeseries(ijk)
-                f = b.analysis.fit_voxel(y, self.settings)
+                noise = b.analysis.noise_at(b.run, ijk, self.settings)
+                f = b.analysis.fit_voxel(y, self.settings, noise)
             except VoxelscopeError as err:
                 out.append(RunFit(label, b, None, None, None, str(err)))
                 continue

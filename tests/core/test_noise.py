@@ -1,0 +1,248 @@
+"""Tests of voxelscope.core.noise: the default AR(p) noise model.
+
+Outside references, named beside each test:
+* the bias correction against the trace formula of Worsley et al. (2002, NeuroImage 15:1-15;
+  from memory: ``E[r' D_j r] = tr(R D_j R V)`` with the residual-forming matrix ``R``)
+  computed with dense n x n matrices on the real design of a run;
+* ``statsmodels.tsa.arima_process.arma_acf`` for the autocorrelations of an AR process,
+  ``statsmodels.tsa.stattools.levinson_durbin`` for Yule-Walker coefficients,
+  ``statsmodels.api.GLS`` with the fitted AR covariance for the whitened fit at sampled
+  voxels, ``statsmodels.stats.diagnostic.acorr_ljungbox`` for the Ljung-Box check on the
+  whitened residuals;
+* null simulations (a small version of tests/benchmarks/calibration.py) for the
+  false-positive rate, with the binomial confidence interval of scipy.stats.binomtest.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy import stats
+from scipy.linalg import toeplitz
+from statsmodels.stats.diagnostic import acorr_ljungbox
+from statsmodels.tsa.arima_process import arma_acf
+from statsmodels.tsa.stattools import levinson_durbin
+
+from voxelscope.core import glm
+from voxelscope.core.checks import voxel_checks
+from voxelscope.core.errors import InputError
+from voxelscope.core.events import Condition
+from voxelscope.core.maps import ArrayRun, compute_map
+from voxelscope.core.model import Analysis, ModelSettings
+from voxelscope.core.noise import (
+    ar_from_autocorr,
+    bias_matrix,
+    full_bias_matrix,
+    voxel_ar,
+    whiten,
+    whitening_filter,
+)
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "benchmarks"))
+import calibration
+
+TR = 2.0
+T = 150
+KERNEL = "double-gamma"
+
+
+def _analysis(n=T):
+    on = np.arange(10.0, n * TR - 30, 40.0)
+    return Analysis([Condition("tone", on[::2], [16.0] * on[::2].size),
+                     Condition("tap", on[1::2], [16.0] * on[1::2].size)], n, TR)  # fmt: skip
+
+
+def _lag(n, j):
+    return np.eye(n, k=-j)
+
+
+def _dense_trace(X, j, k):
+    """tr(L_j R S_k R) with dense matrices: R = I - X pinv(X), S_0 = I, S_k = L_k + L_k'."""
+    n = X.shape[0]
+    R = np.eye(n) - X @ np.linalg.pinv(X)
+    S = np.eye(n) if k == 0 else _lag(n, k) + _lag(n, k).T
+    return float(np.trace(_lag(n, j) @ R @ S @ R))
+
+
+def test_bias_matrix_equals_the_trace_formula_on_a_known_design():
+    a = _analysis()
+    X = a.design(KERNEL, ModelSettings()).X  # conditions, cosine drift, constant
+    M = bias_matrix(X, 3)
+    ref = np.array([[_dense_trace(X, j, k) for k in range(4)] for j in range(4)])
+    np.testing.assert_allclose(M, ref, rtol=1e-12, atol=1e-10)
+    F = full_bias_matrix(X, 3)
+    np.testing.assert_allclose(F[:, :4], M, rtol=1e-12, atol=1e-10)
+    np.testing.assert_allclose(F[1, 40], _dense_trace(X, 1, 40), rtol=1e-12, atol=1e-10)
+
+
+def test_expected_residual_autocovariance_is_what_the_correction_inverts():
+    """E[r' L_j r] for AR(1) noise (phi 0.6, arma_acf) equals tr(L_j R Sigma R) computed
+    densely, and equals full_bias_matrix @ acf: the model the correction inverts."""
+    a = _analysis()
+    X = a.design(KERNEL, ModelSettings()).X
+    acf = arma_acf([1, -0.6], [1], T)
+    Sigma = toeplitz(acf)
+    R = np.eye(T) - X @ np.linalg.pinv(X)
+    dense = [float(np.trace(_lag(T, j) @ R @ Sigma @ R)) for j in range(3)]
+    np.testing.assert_allclose(full_bias_matrix(X, 2) @ acf, dense, rtol=1e-10)
+
+
+def test_levinson_matches_statsmodels():
+    phi = np.array([0.5, 0.2, -0.1])
+    acf = arma_acf(np.r_[1, -phi], [1], 10)
+    ours = ar_from_autocorr(acf[1:4], 3)[:, 0]
+    _s, ref, *_rest = levinson_durbin(acf, nlags=3, isacov=True)
+    np.testing.assert_allclose(ours, ref, rtol=1e-12)
+    np.testing.assert_allclose(ours, phi, rtol=1e-10)
+
+
+@pytest.mark.parametrize("phi", [[0.5], [0.5, 0.2], [0.3, -0.2, 0.1]])
+def test_whitening_is_the_inverse_cholesky_of_the_ar_covariance(phi):
+    """W'W is proportional to Sigma^-1 with Sigma the Toeplitz matrix of arma_acf; for p = 1
+    the rows are those of the Prais-Winsten transform."""
+    phi = np.asarray(phi)
+    n = 30
+    W = whiten(whitening_filter(phi[:, None]), np.eye(n))
+    assert np.allclose(np.triu(W, 1), 0)  # a causal filter
+    Si = np.linalg.inv(toeplitz(arma_acf(np.r_[1, -phi], [1], n)))
+    WtW = W.T @ W
+    np.testing.assert_allclose(WtW / WtW[n // 2, n // 2], Si / Si[n // 2, n // 2], atol=1e-12)
+    if phi.size == 1:
+        np.testing.assert_allclose(W, glm.prais_winsten(np.eye(n), float(phi[0])), atol=1e-14)
+
+
+def _null_run(seed, shape=(9, 8, 6), phi=(0.45, 0.15)):
+    rng = np.random.default_rng(seed)
+    e = rng.standard_normal((*shape, T + 100))
+    x = np.zeros_like(e)
+    for t in range(e.shape[-1]):
+        x[..., t] = e[..., t]
+        if t >= 1:
+            x[..., t] += phi[0] * x[..., t - 1]
+        if t >= 2:
+            x[..., t] += phi[1] * x[..., t - 2]
+    data = 1000 + rng.normal(0, 30, shape)[..., None] + 5 * x[..., 100:]
+    data[0, 0, 0] = 1000.0  # a constant voxel
+    return ArrayRun(data.astype(np.float32), np.diag([3.0, 3.0, 3.0, 1.0]), TR)
+
+
+def test_map_equals_statsmodels_gls_with_the_fitted_covariance_at_sampled_voxels():
+    """At sampled voxels: beta, its standard error, t and df of the map equal
+    statsmodels GLS with sigma = the Toeplitz AR(2) correlation of the voxel's own fitted
+    coefficients (arma_acf)."""
+    sm = pytest.importorskip("statsmodels.api")
+    run = _null_run(1)
+    a = _analysis()
+    s = ModelSettings(kernels=(KERNEL,), contrast="tone - tap")
+    m = compute_map(run, a, s, stats=("t", "beta", "variance"))
+    d = a.design(KERNEL, s)
+    w = a.contrast_weights(KERNEL, s)
+    rng = np.random.default_rng(99)
+    for ijk in [tuple(rng.integers(0, n) for n in run.shape) for _ in range(6)]:
+        if not m.mask[ijk]:
+            continue
+        phi = m.ar[ijk].astype(np.float64)
+        y = run.data[ijk].astype(np.float64)
+        # the map keeps float32 AR coefficients; refit the voxel with exactly those
+        res = glm.fit(d, y, w, noise="arp", ar=phi)
+        Sigma = toeplitz(arma_acf(np.r_[1, -phi], [1], T))
+        ref = sm.GLS(y, d.X, sigma=Sigma).fit()
+        tt = ref.t_test(w)
+        assert float(res.beta[0]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+        assert float(res.variance[0]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
+        assert float(res.t[0]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
+        assert res.df == int(ref.df_resid)
+        assert float(m.t[ijk]) == pytest.approx(float(res.t[0]), rel=2e-5)
+
+
+def test_clicked_voxel_uses_the_maps_whitening():
+    """One fitting path: a clicked voxel's coefficients come from its neighbourhood and
+    equal the map's; its t equals the map's t (float32 map)."""
+    run = _null_run(2)
+    a = _analysis()
+    s = ModelSettings(kernels=("gamma", KERNEL))
+    m = compute_map(run, a, s, KERNEL, stats=("t",))
+    for ijk in [(4, 4, 3), (0, 7, 5), (8, 0, 0)]:
+        est = a.noise_at(run, ijk, s)
+        assert set(est) == {"gamma", KERNEL}
+        np.testing.assert_allclose(est[KERNEL].phi, m.ar[ijk], rtol=1e-5, atol=1e-6)
+        vf = a.fit_voxel(run.data[ijk], s, est)
+        f = vf.by_kernel(KERNEL)
+        assert f.t == pytest.approx(float(m.t[ijk]), rel=1e-5, abs=1e-6)
+        assert "mask voxels" in f.noise_text and not vf.warnings
+    # without a neighbourhood: the voxel's own estimate, and a warning that says so
+    vf = a.fit_voxel(run.data[4, 4, 3], s)
+    assert any("this voxel alone" in w for w in vf.warnings)
+
+
+def test_arp_maps_equal_across_blocks_and_workers():
+    run = _null_run(3)
+    a = _analysis()
+    s = ModelSettings(kernels=(KERNEL,))
+    first = compute_map(run, a, s, chunk_voxels=1024, workers=1)
+    for block, workers in ((7, 2), (100, 1)):
+        m = compute_map(run, a, s, chunk_voxels=block, workers=workers)
+        np.testing.assert_allclose(m.t, first.t, rtol=1e-6, atol=1e-7)
+        np.testing.assert_allclose(m.ar, first.ar, rtol=1e-6, atol=1e-7)
+    assert first.t[0, 0, 0] == 0 and not first.mask[0, 0, 0]  # the constant voxel
+    assert np.all(np.isfinite(first.t)) and "AR(p)" in first.describe()
+
+
+def test_checks_judge_the_arp_whitened_residuals_with_ljung_box():
+    """Under the default model the Ljung-Box test is on the AR(p)-whitened residuals,
+    whitened here independently with the Cholesky factor of statsmodels' AR covariance
+    (scale does not matter to Ljung-Box): equal to acorr_ljungbox (lags=10)."""
+    run = _null_run(4)
+    a = _analysis()
+    s = ModelSettings(kernels=(KERNEL,))
+    ijk = (4, 3, 2)
+    y = run.data[ijk].astype(np.float64)
+    phi = voxel_ar(run, a.prepared(KERNEL, s)[1], ijk).phi
+    c = voxel_checks(a, s, KERNEL, y, ar=phi)
+    res = glm.fit(a.design(KERNEL, s), y, a.contrast_weights(KERNEL, s), noise="arp", ar=phi)
+    L = np.linalg.cholesky(toeplitz(arma_acf(np.r_[1, -phi], [1], T)))
+    rw = np.linalg.solve(L, res.residuals[:, 0])
+    lb = acorr_ljungbox(rw, lags=[10])
+    assert c.whitened_ljung_box_p == pytest.approx(float(lb["lb_pvalue"].iloc[0]), rel=1e-6)
+    assert c.t == pytest.approx(float(res.t[0]), rel=1e-12)
+
+
+def test_bad_and_degenerate_inputs():
+    a = _analysis()
+    d = a.design(KERNEL, ModelSettings())
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    with pytest.raises(InputError, match="ar has"):
+        glm.fit(d, np.ones((T, 3)), w, noise="arp", ar=np.zeros((2, 2)))
+    with pytest.raises(InputError, match="noise model must be one of"):
+        glm.fit(d, np.ones(T), w, noise="ar2")
+    res = glm.fit(d, np.full(T, 7.0), w, noise="arp")  # constant: NaN t, never inf
+    assert res.degenerate[0] and np.isnan(res.t[0])
+    # a voxel whose neighbourhood holds no usable voxel gets white noise, and says so
+    data = np.full((3, 3, 3, T), 100.0, dtype=np.float32)
+    data[1, 1, 1] += np.random.default_rng(0).standard_normal(T).astype(np.float32)
+    run = ArrayRun(data, np.eye(4), TR)
+    alone = np.zeros((3, 3, 3), dtype=bool)
+    alone[0, 0, 0] = True  # a mask of one constant voxel
+    est = voxel_ar(run, a.prepared(KERNEL, ModelSettings())[1], (0, 0, 0), mask=alone)
+    assert est.n_neighbours == 0 and np.all(est.phi == 0)
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize(
+    ("noise", "design"), [("ar1-varying", "block"), ("ar2", "block"), ("ar2", "event")]
+)
+def test_null_false_positive_rate_is_nominal(noise, design):
+    """A small calibration (tests/benchmarks/calibration.py has the full one): on null runs
+    the default model's rate at p < .05 lies in the 99 % binomial interval around .05
+    (scipy.stats.binomtest), while OLS is far above it for block designs."""
+    rates = calibration.false_positive_rates(
+        noise, design, models=("ols", "arp"), shape=(20, 20, 10), reps=2, seed=7
+    )
+    r = rates["arp"][0]
+    ci = stats.binomtest(round(0.05 * r.n), r.n, 0.05).proportion_ci(0.99)
+    assert ci.low <= r.rate <= ci.high, (r.rate, ci)
+    if design == "block":
+        assert rates["ols"][0].rate > 0.1

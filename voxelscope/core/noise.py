@@ -1,0 +1,683 @@
+"""The default noise model: bias-corrected AR(p) prewhitening, regularised in space.
+
+The method is that of Worsley, Liao, Aston, Petre, Duncan, Morales & Evans (2002), A general
+statistical analysis for fMRI data, NeuroImage 15:1-15 (the steps below are our own
+derivation of what the paper describes; details from memory are marked):
+
+1. **OLS residuals** ``r = R y`` of the kernel's design, with the residual-forming matrix
+   ``R = I - X (X'X)^-1 X'``.
+2. **Sample autocovariances** ``a_j = sum_t r_t r_{t-j} = r' L_j r`` for lags
+   ``j = 0..AR_ORDER``, with ``L_j`` the lag-``j`` shift matrix (``(L_j)_{t, t-j} = 1``).
+3. **Bias correction for the design.** If the noise covariance is
+   ``V = sum_k v_k S_k`` (``S_0 = I``, ``S_k = L_k + L_k'``: autocovariances ``v_k`` up to
+   lag ``AR_ORDER``, zero beyond), then ``E a_j = tr(L_j R V R) = sum_k M_jk v_k`` with
+   ``M_jk = tr(L_j R S_k R)``. The residuals of a design with drift columns are strongly
+   biased toward negative autocorrelation; solving ``M v = a`` removes that bias
+   (:func:`bias_matrix`, tested against the trace formula computed with dense matrices).
+   The autocorrelations are ``rho_k = v_k / v_0``.
+4. **Regularisation in space.** The ``rho_k`` maps are smoothed with a Gaussian of
+   :data:`FWHM_MM` (15 mm, the paper's choice, from memory), within the mask only
+   (normalised convolution: ``G*(m rho) / G*(m)``), truncated at :data:`TRUNCATE_SIGMA`
+   standard deviations so that a voxel's value depends on a finite box of neighbours only.
+   A clicked voxel computes exactly that box (:func:`voxel_ar`), so it gets the value the
+   map uses without a whole-volume pass.
+5. **AR(p) coefficients** from ``1, rho_1..rho_p`` by the Levinson-Durbin recursion
+   (Yule-Walker equations), each reflection coefficient clipped to
+   ``[-REFLECTION_LIMIT, REFLECTION_LIMIT]`` so the process is stationary.
+6. **Prewhitening** with the exact inverse Cholesky factor of the AR(p) covariance (the
+   innovations form): row ``t >= p`` is ``x_t - sum_k phi_k x_{t-k}``; the first ``p``
+   rows use the lower-order predictors of the same recursion, scaled by
+   ``sqrt(v_p / v_t)`` (for p = 1 this is Prais-Winsten). Then GLS per voxel, through
+   :func:`voxelscope.core.glm.fit` (``noise="arp"``).
+7. **Degrees of freedom**: ``n - rank``. The paper gives an effective df that adds the
+   variance of the estimated autocorrelations; with the smoothing kernel averaging
+   hundreds of voxels that term is small, and the calibration benchmark
+   (``tests/benchmarks/calibration.py``) measures the resulting false-positive rates.
+
+Examples
+--------
+>>> X = np.column_stack([np.ones(100), np.linspace(-1, 1, 100)])
+>>> M = bias_matrix(X, 2)
+>>> M.shape, round(float(M[0, 0]), 6)
+((3, 3), 98.0)
+>>> phi = ar_from_autocorr(np.array([[0.5], [0.25]]))
+>>> np.round(phi[:, 0], 6).tolist()
+[0.5, 0.0]
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .errors import InputError
+
+__all__ = [
+    "AR_ORDER",
+    "FWHM_MM",
+    "NOISE_LABELS",
+    "REFLECTION_LIMIT",
+    "TRUNCATE_SIGMA",
+    "ArEstimate",
+    "ar_from_autocorr",
+    "bias_matrix",
+    "corrected_autocorr",
+    "residual_autocov",
+    "smooth_in_mask",
+    "smoothing_weights",
+    "voxel_ar",
+    "whiten",
+    "whitening_filter",
+]
+
+#: Order of the autoregressive model.
+AR_ORDER = 2
+#: Lags of the bias correction (the noise model's autocovariances up to this lag enter
+#: ``M``; only the first AR_ORDER corrected autocorrelations are used).
+BIAS_LAGS = 2
+#: Smooth the autocovariances ``v_0..v_p`` and take ratios after smoothing (True), rather
+#: than smoothing each voxel's ratios ``v_k / v_0``: a ratio of two noisy sums is biased by
+#: O(1/n) toward zero (about -0.03 at lag 1 for n = 200 and strong autocorrelation,
+#: measured by the calibration runner); ratios of sums over the neighbourhood are not.
+#: Voxels weigh in proportion to their noise variance.
+POOL_VARIANCE = True
+#: Defect-correction steps that remove the truncation of the bias correction (0: none).
+REFINE_STEPS = 3
+#: FWHM of the Gaussian that smooths the autocorrelation maps (mm).
+FWHM_MM = 8.0
+#: The Gaussian is truncated at this many standard deviations (per axis).
+TRUNCATE_SIGMA = 2.0
+#: Short names of the noise models for captions (one source for every view).
+NOISE_LABELS = {"ols": "OLS", "ar1": "AR(1)", "arp": f"AR({AR_ORDER}), smoothed"}
+#: Reflection coefficients are clipped to this magnitude (stationarity).
+REFLECTION_LIMIT = 0.99
+
+
+# ----------------------------------------------------------------------------- shifts
+
+
+def _lag(a: np.ndarray, j: int) -> np.ndarray:
+    """``L_j a`` along axis 0: ``out[t] = a[t - j]`` (0 for ``t < j``); ``j < 0`` leads."""
+    out = np.zeros_like(a)
+    n = a.shape[0]
+    if j == 0:
+        out[:] = a
+    elif 0 < j < n:
+        out[j:] = a[:-j]
+    elif -n < j < 0:
+        out[:j] = a[-j:]
+    return out
+
+
+def _sym(a: np.ndarray, k: int) -> np.ndarray:
+    """``S_k a`` with ``S_0 = I`` and ``S_k = L_k + L_k'``."""
+    return a.copy() if k == 0 else _lag(a, k) + _lag(a, -k)
+
+
+def bias_matrix(X: np.ndarray, lags: int) -> np.ndarray:
+    """``M_jk = tr(L_j R S_k R)`` for ``j, k = 0..lags`` (Worsley et al. 2002).
+
+    ``E[r' L_j r] = sum_k M_jk v_k`` for residuals ``r = R y`` of the design ``X`` when the
+    noise has autocovariances ``v_0..v_lags`` and none beyond. Computed with an
+    orthonormal basis ``Q`` of X (``R = I - Q Q'``) in ``O(n q^2)`` per entry:
+    ``tr(L_j S_k) - tr(Q' S_k L_j Q) - tr(Q' L_j S_k Q) + tr(Q'L_jQ Q'S_kQ)``.
+
+    >>> bias_matrix(np.ones((10, 1)), 1).round(3).tolist()
+    [[9.0, -1.8], [-0.9, 16.2]]
+    """
+    X = np.asarray(X, dtype=np.float64)
+    n = X.shape[0]
+    q, _r = np.linalg.qr(X)
+    M = np.empty((lags + 1, lags + 1))
+    lq = [_lag(q, j) for j in range(lags + 1)]
+    sq = [_sym(q, k) for k in range(lags + 1)]
+    qlq = [q.T @ a for a in lq]
+    qsq = [q.T @ a for a in sq]
+    for j in range(lags + 1):
+        for k in range(lags + 1):
+            if k == 0:
+                t0 = float(n) if j == 0 else 0.0
+            else:
+                t0 = float(n - j) if j == k else 0.0
+            t1 = float(np.sum(q * _sym(lq[j], k)))  # tr(Q' S_k L_j Q)
+            t2 = float(np.sum(q * _lag(sq[k], j)))  # tr(Q' L_j S_k Q)
+            t3 = float(np.sum(qlq[j] * qsq[k].T))  # tr(Q'L_jQ Q'S_kQ)
+            M[j, k] = t0 - t1 - t2 + t3
+    return M
+
+
+def residual_autocov(R: np.ndarray, lags: int) -> np.ndarray:
+    """``a_j = sum_t r_t r_{t-j}`` for ``j = 0..lags``, per column: shape (lags + 1, V).
+
+    >>> residual_autocov(np.array([1.0, 2.0, 3.0]), 1)[:, 0].tolist()
+    [14.0, 8.0]
+    """
+    R = np.asarray(R, dtype=np.float64)
+    if R.ndim == 1:
+        R = R[:, None]
+    out = np.empty((lags + 1, R.shape[1]))
+    for j in range(lags + 1):
+        out[j] = np.einsum("ij,ij->j", R[j:], R[: R.shape[0] - j])
+    return out
+
+
+def corrected_autocorr(a: np.ndarray, M: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Bias-corrected autocorrelations ``rho_1..rho_lags`` (lags, V) and a validity mask.
+
+    ``v = M^-1 a``; ``rho_k = v_k / v_0``. Invalid (False, rho 0) where ``v_0 <= 0`` or a
+    value is not finite (constant voxels).
+    """
+    v = np.linalg.solve(M, a)
+    ok = np.isfinite(v).all(axis=0) & (v[0] > 0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        rho = np.where(ok, v[1:] / np.where(ok, v[0], 1.0), 0.0)
+    return rho, ok
+
+
+# ----------------------------------------------------------------------------- AR(p)
+
+
+def ar_from_autocorr(rho: np.ndarray, order: int | None = None) -> np.ndarray:
+    """AR coefficients (order, V) from autocorrelations ``rho_1..rho_order`` (Levinson).
+
+    Reflection coefficients are clipped to ``[-REFLECTION_LIMIT, REFLECTION_LIMIT]``, so
+    the result is always a stationary AR process.
+
+    >>> np.round(ar_from_autocorr(np.array([0.6, 0.2]))[:, 0], 6).tolist()
+    [0.84375, -0.40625]
+    """
+    rho = np.asarray(rho, dtype=np.float64)
+    if rho.ndim == 1:
+        rho = rho[:, None]
+    p = rho.shape[0] if order is None else int(order)
+    V = rho.shape[1]
+    r = np.vstack([np.ones((1, V)), rho[:p]])
+    phi = np.zeros((p, V))
+    err = np.ones(V)
+    for m in range(1, p + 1):
+        acc = r[m] - np.einsum("kv,kv->v", phi[: m - 1], r[m - 1 : 0 : -1]) if m > 1 else r[1]
+        kappa = np.clip(acc / err, -REFLECTION_LIMIT, REFLECTION_LIMIT)
+        prev = phi[: m - 1].copy()
+        phi[: m - 1] = prev - kappa * prev[::-1]
+        phi[m - 1] = kappa
+        err = err * (1.0 - kappa * kappa)
+    return phi
+
+
+def whitening_filter(phi: np.ndarray) -> np.ndarray:
+    """Per-voxel filter ``C`` (V, p + 1, p + 1) of the exact AR(p) prewhitening.
+
+    Whitened row ``t`` is ``sum_k C[v, min(t, p), k] a[t - k]`` (``k <= min(t, p)``).
+    Rows ``t < p`` use the order-``t`` predictor of the step-down recursion, scaled by
+    ``sqrt(err_p / err_t)``, so that ``W'W`` is proportional to the inverse AR(p)
+    covariance; for p = 1 this is the Prais-Winsten transform.
+
+    >>> C = whitening_filter(np.array([[0.5]]))
+    >>> np.round(C[0], 6).tolist()
+    [[0.866025, 0.0], [1.0, -0.5]]
+    """
+    phi = np.asarray(phi, dtype=np.float64)
+    if phi.ndim == 1:
+        phi = phi[:, None]
+    p, V = phi.shape
+    # step down: coefficients of orders p, p-1, ..., 0 and the reflection coefficients
+    coefs: list[np.ndarray] = [np.zeros((0, V))] * (p + 1)
+    coefs[p] = phi.copy()
+    kappa = np.zeros((p + 1, V))
+    for m in range(p, 0, -1):
+        a = coefs[m]
+        k = a[m - 1]
+        kappa[m] = k
+        denom = 1.0 - k * k
+        coefs[m - 1] = (a[: m - 1] + k * a[m - 2 :: -1][: m - 1]) / denom if m > 1 else a[:0]
+    # prediction error variances relative to the process variance: err_0 = 1
+    err = np.ones((p + 1, V))
+    for m in range(1, p + 1):
+        err[m] = err[m - 1] * (1.0 - kappa[m] ** 2)
+    C = np.zeros((V, p + 1, p + 1))
+    for t in range(p + 1):
+        scale = np.sqrt(err[p] / err[t])
+        C[:, t, 0] = scale
+        for k in range(1, t + 1):
+            C[:, t, k] = -coefs[t][k - 1] * scale
+    return C
+
+
+def whiten(C: np.ndarray, A: np.ndarray) -> np.ndarray:
+    """``W_v a_v`` for every column ``v`` of ``A`` (T, V), with filters ``C`` (V, p+1, p+1).
+
+    >>> whiten(whitening_filter(np.array([[0.5]])), np.ones((3, 1)))[:, 0].round(6).tolist()
+    [0.866025, 0.5, 0.5]
+    """
+    p = C.shape[1] - 1
+    n = A.shape[0]
+    out = A * C[:, p, 0]
+    for k in range(1, p + 1):
+        out[k:] += A[: n - k] * C[:, p, k]
+    for t in range(min(p, n)):
+        row = A[t] * C[:, t, 0]
+        for k in range(1, t + 1):
+            row = row + A[t - k] * C[:, t, k]
+        out[t] = row
+    return out
+
+
+def whiten_transpose(C: np.ndarray, U: np.ndarray) -> np.ndarray:
+    """``W_v' u_v`` for every column (the adjoint of :func:`whiten`)."""
+    p = C.shape[1] - 1
+    n = U.shape[0]
+    out = U * C[:, p, 0]
+    for k in range(1, p + 1):
+        out[: n - k] += U[k:] * C[:, p, k]
+    # the first p rows of W differ from the steady row: swap their contributions
+    for t in range(min(p, n)):
+        for k in range(0, t + 1):
+            out[t - k] += U[t] * (C[:, t, k] - C[:, p, k])
+    return out
+
+
+def gls_solve(
+    X: np.ndarray, Y: np.ndarray, phi: np.ndarray, c: np.ndarray, want_cov: bool = True
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """GLS of every column of ``Y`` under its own AR(p) whitening ``phi`` (p, V).
+
+    ``X*'X*`` is assembled per voxel from ``(p + 1)^2`` lagged products of the design with
+    itself (plus the first p rows), ``X*'y* = X' (W'W y)`` from one product over the data.
+
+    Returns
+    -------
+    B : (q, V) betas; cov : (V, q, q) ``(X*'X*)^-1`` (None unless ``want_cov``);
+    cvar : (V,) ``c' (X*'X*)^-1 c``; C : (V, p+1, p+1) the whitening filters;
+    yWWy : (V,) ``y*'y*``; gb : (V,) ``b'X*'y*`` (so that the whitened residual sum of
+    squares is ``yWWy - gb``, the GLS analogue of the OLS identity).
+    """
+    n, q = X.shape
+    C = whitening_filter(phi)
+    p = C.shape[1] - 1
+    norms = np.linalg.norm(X, axis=0)
+    Xs = X / norms
+    # steady rows t >= p: x*_t = sum_k C[p, k] x_{t-k}
+    S = np.empty((p + 1, p + 1, q, q))
+    for k in range(p + 1):
+        for l in range(p + 1):
+            S[k, l] = Xs[p - k : n - k].T @ Xs[p - l : n - l]
+    cp = C[:, p, :]  # (V, p+1)
+    G = np.einsum("vk,vl,klij->vij", cp, cp, S, optimize=True)
+    for t in range(min(p, n)):
+        h = np.einsum("vk,kj->vj", C[:, t, : t + 1], Xs[t::-1][: t + 1])  # (V, q)
+        G += h[:, :, None] * h[:, None, :]
+    Z = whiten_transpose(C, whiten(C, Y))
+    g = Xs.T @ Z  # (q, V)
+    yWWy = np.einsum("ij,ij->j", Y, Z)
+    cs = c / norms
+    if want_cov:
+        Ginv = np.linalg.inv(G)
+        Bs = np.einsum("vij,jv->iv", Ginv, g)
+        cov = Ginv / np.outer(norms, norms)
+        cvar = np.einsum("i,vij,j->v", c, cov, c)
+    else:  # maps: a batched Cholesky solve instead of a full inverse per voxel
+        L = _batched_cholesky(G)
+        Bs = _cholesky_solve(L, g.T).T
+        u = _forward(L, np.broadcast_to(cs, g.T.shape))
+        cvar = np.einsum("vi,vi->v", u, u)  # c' G^-1 c = |L^-1 c|^2
+        cov = None
+    gb = np.einsum("iv,iv->v", g, Bs)
+    B = Bs / norms[:, None]
+    return B, cov, cvar, C, yWWy, gb
+
+
+def _batched_cholesky(G: np.ndarray) -> np.ndarray:
+    """Lower Cholesky factors of a batch of symmetric positive definite matrices (V, q, q),
+    column by column (vectorised over the batch; NaN where a matrix is not positive
+    definite)."""
+    q = G.shape[1]
+    L = np.zeros_like(G)
+    for j in range(q):
+        d = G[:, j, j] - np.einsum("vk,vk->v", L[:, j, :j], L[:, j, :j])
+        with np.errstate(invalid="ignore"):
+            L[:, j, j] = np.sqrt(d)
+        if j + 1 < q:
+            off = G[:, j + 1 :, j] - np.einsum("vik,vk->vi", L[:, j + 1 :, :j], L[:, j, :j])
+            L[:, j + 1 :, j] = off / L[:, j, j][:, None]
+    return L
+
+
+def _forward(L: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve ``L u = b`` (V, q) for lower-triangular ``L`` (V, q, q)."""
+    q = L.shape[1]
+    u = np.empty(b.shape)
+    for i in range(q):
+        u[:, i] = (b[:, i] - np.einsum("vk,vk->v", L[:, i, :i], u[:, :i])) / L[:, i, i]
+    return u
+
+
+def _cholesky_solve(L: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Solve ``L L' x = b`` (V, q)."""
+    u = _forward(L, b)
+    q = L.shape[1]
+    x = np.empty(u.shape)
+    for i in range(q - 1, -1, -1):
+        x[:, i] = (u[:, i] - np.einsum("vk,vk->v", L[:, i + 1 :, i], x[:, i + 1 :])) / L[:, i, i]
+    return x
+
+
+# ----------------------------------------------------------------------------- space
+
+
+def smoothing_weights(
+    voxel_mm: Sequence[float], fwhm_mm: float | None = None
+) -> tuple[np.ndarray, ...]:
+    """The three 1-D Gaussian weights (truncated at :data:`TRUNCATE_SIGMA` sigma).
+
+    >>> [w.size for w in smoothing_weights((3.0, 3.0, 4.0))]
+    [9, 9, 7]
+    """
+    fwhm_mm = FWHM_MM if fwhm_mm is None else fwhm_mm
+    out = []
+    for size in voxel_mm:
+        sigma = fwhm_mm / (2.0 * math.sqrt(2.0 * math.log(2.0))) / float(size)
+        radius = max(0, math.ceil(TRUNCATE_SIGMA * sigma))
+        x = np.arange(-radius, radius + 1, dtype=np.float64)
+        out.append(np.exp(-0.5 * (x / sigma) ** 2) if sigma > 0 else np.ones(1))
+    return tuple(out)
+
+
+def smooth_in_mask(
+    values: np.ndarray, valid: np.ndarray, weights: Sequence[np.ndarray]
+) -> tuple[np.ndarray, np.ndarray]:
+    """Normalised convolution of (X, Y, Z, K) ``values`` over the ``valid`` voxels.
+
+    Returns the smoothed values (0 where no valid voxel is in reach) and the summed
+    weight of valid neighbours (the denominator).
+    """
+    from scipy import ndimage
+
+    m = valid.astype(np.float64)
+    num = values * m[..., None]
+    den = m
+    for axis, w in enumerate(weights):
+        num = ndimage.correlate1d(num, w, axis=axis, mode="constant", cval=0.0)
+        den = ndimage.correlate1d(den, w, axis=axis, mode="constant", cval=0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = np.where(den[..., None] > 0, num / np.where(den > 0, den, 1.0)[..., None], 0.0)
+    return out, den
+
+
+def voxel_sizes(affine: np.ndarray) -> tuple[float, float, float]:
+    """Voxel edge lengths (mm) from an affine's column norms."""
+    a = np.asarray(affine, dtype=np.float64)[:3, :3]
+    return tuple(float(v) if v > 0 else 1.0 for v in np.linalg.norm(a, axis=0))  # type: ignore[return-value]
+
+
+@dataclass(frozen=True)
+class ArEstimate:
+    """How one voxel's AR(p) coefficients were obtained (shown in the window and JSON).
+
+    Attributes
+    ----------
+    phi : ndarray (p,)
+        AR coefficients used for prewhitening.
+    autocorr : ndarray (p,)
+        The smoothed, bias-corrected autocorrelations they come from.
+    n_neighbours : int
+        Voxels of the mask within reach of the smoothing kernel that entered the average.
+    fwhm_mm : float
+    own_autocorr : ndarray (p,) or None
+        The voxel's own bias-corrected autocorrelations (before smoothing).
+    """
+
+    phi: np.ndarray
+    autocorr: np.ndarray
+    n_neighbours: int
+    fwhm_mm: float
+    own_autocorr: np.ndarray | None = None
+
+    def describe(self) -> str:
+        coefs = ", ".join(f"{v:.3f}" for v in self.phi)
+        return (
+            f"AR({self.phi.size}) coefficients {coefs}: bias-corrected autocorrelations "
+            f"averaged over {self.n_neighbours} mask voxels ({self.fwhm_mm:g} mm FWHM)"
+        )
+
+    def short(self) -> str:
+        """A few words for a narrow part of the window."""
+        coefs = ", ".join(f"{v:.2f}" for v in self.phi)
+        return f"AR {coefs}, from {self.n_neighbours} voxels around ({self.fwhm_mm:g} mm)"
+
+    def to_json(self) -> dict[str, Any]:
+        return {
+            "phi": [float(v) for v in self.phi],
+            "autocorr": [float(v) for v in self.autocorr],
+            "own_autocorr": None
+            if self.own_autocorr is None
+            else [float(v) if np.isfinite(v) else None for v in self.own_autocorr],
+            "n_neighbours": int(self.n_neighbours),
+            "fwhm_mm": float(self.fwhm_mm),
+        }
+
+
+def ols_autocorr_block(prep: Any, Y: np.ndarray, lags: int = AR_ORDER):
+    """Bias-corrected autocorrelations (lags, V) and validity (V,) of one (T, V) block."""
+    return _ols_autocorr(prep, Y, design_bias_matrix(prep, lags), lags)
+
+
+def smooth_map(rho: np.ndarray, valid: np.ndarray, run: Any, fwhm_mm: float | None = None):
+    """:func:`smooth_in_mask` with the run's voxel sizes; returns the smoothed values."""
+    fwhm_mm = FWHM_MM if fwhm_mm is None else fwhm_mm
+    weights = smoothing_weights(voxel_sizes(getattr(run, "affine", np.eye(4))), fwhm_mm)
+    return smooth_in_mask(rho, valid, weights)[0]
+
+
+def _ols_autocorr(prep: Any, Y: np.ndarray, M: np.ndarray, lags: int):
+    """Bias-corrected autocovariances ``v_0..v_lags`` (lags + 1, V) of the OLS residuals
+    and their validity (V,). Invalid voxels (constant, non-finite, ``v_0 <= 0``) are 0.
+
+    With :data:`POOL_VARIANCE` False the values are ``1, rho_1..rho_lags`` instead (each
+    voxel normalised by its own ``v_0``)."""
+    Y = np.array(Y, dtype=np.float64, order="C", copy=True)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    keep = getattr(prep, "keep", None)
+    if keep is not None and Y.shape[0] != prep.X.shape[0]:
+        Y = Y[keep]  # left-out volumes leave the estimate too
+    finite = np.isfinite(Y).all(axis=0)
+    Y[:, ~finite] = 0.0
+    Y -= Y.mean(axis=0)
+    R = Y - prep.X @ (prep.pinv @ Y)
+    a = residual_autocov(R, M.shape[0] - 1)
+    v = np.linalg.solve(M, a)
+    tss = np.einsum("ij,ij->j", Y, Y)
+    ok = finite & np.isfinite(v).all(axis=0) & (v[0] > 0)
+    ok &= a[0] > 1e-20 * np.maximum(tss, 1e-300)
+    if not POOL_VARIANCE:
+        v = v / np.where(ok, v[0], 1.0)
+    v[:, ~ok] = 0.0
+    return v, ok
+
+
+def _ratio(v: np.ndarray) -> np.ndarray:
+    """Autocorrelations ``v_k / v_0`` (lags, V) of autocovariances (lags + 1, V); 0 where
+    ``v_0 <= 0``."""
+    good = v[0] > 0
+    return np.where(good, v[1:] / np.where(good, v[0], 1.0), 0.0)
+
+
+def own_ar(prep: Any, Y: np.ndarray, order: int = AR_ORDER) -> np.ndarray:
+    """AR(p) coefficients (order, V) from each voxel's own bias-corrected autocorrelations,
+    not smoothed: what :func:`voxelscope.core.glm.fit` uses under ``noise="arp"`` when no
+    coefficients are given (a time series without its neighbourhood)."""
+    v, _ok = _ols_autocorr(prep, Y, design_bias_matrix(prep, order), order)
+    return ar_from_smoothed(v, order, prep)[0]
+
+
+def design_bias_matrix(prep: Any, lags: int = AR_ORDER) -> np.ndarray:
+    """:func:`bias_matrix` of a prepared design, memoised on it."""
+    lags = max(lags, BIAS_LAGS)
+    key = ("_ar_bias", lags)
+    M = prep.memo.get(key)
+    if M is None:
+        M = bias_matrix(prep.X, lags)
+        prep.memo[key] = M
+    return M
+
+
+def full_bias_matrix(X: np.ndarray, lags: int) -> np.ndarray:
+    """``tr(L_j R S_k R)`` for ``j = 0..lags`` and every ``k = 0..n-1`` (lags + 1, n):
+    the expected residual autocovariances under a noise model with all its lags."""
+    X = np.asarray(X, dtype=np.float64)
+    n = X.shape[0]
+    q, _r = np.linalg.qr(X)
+    lq = [_lag(q, j) for j in range(lags + 1)]
+    qlq = [q.T @ a for a in lq]
+    out = np.zeros((lags + 1, n))
+    for k in range(n):
+        sq = _sym(q, k)
+        qsq = q.T @ sq
+        for j in range(lags + 1):
+            if k == 0:
+                t0 = float(n) if j == 0 else 0.0
+            else:
+                t0 = float(n - j) if j == k else 0.0
+            t1 = float(np.sum(q * _sym(lq[j], k)))
+            t2 = float(np.sum(q * _lag(sq, j)))
+            t3 = float(np.sum(qlq[j] * qsq.T))
+            out[j, k] = t0 - t1 - t2 + t3
+    return out
+
+
+def _ar_acf(phi: np.ndarray, rho: np.ndarray, n: int, tol: float = 1e-13) -> np.ndarray:
+    """Autocorrelations at lags 0..K-1 (K, V) of AR(p) processes ``phi`` (p, V) whose first
+    p autocorrelations are ``rho`` (p, V) (the Yule-Walker extension), with ``K <= n`` the
+    first lag after which p consecutive values are all below ``tol`` (the rest is 0)."""
+    p, V = phi.shape
+    g = np.zeros((n, V))
+    g[0] = 1.0
+    g[1 : p + 1] = rho[: min(p, n - 1)]
+    small = 0
+    for k in range(p + 1, n):
+        acc = phi[0] * g[k - 1]
+        for i in range(1, p):
+            acc = acc + phi[i] * g[k - 1 - i]
+        g[k] = acc
+        small = small + 1 if np.max(np.abs(acc)) < tol else 0
+        if small >= p:
+            return g[: k + 1]
+    return g
+
+
+def ar_from_smoothed(
+    values: np.ndarray, order: int, prep: Any = None, chunk: int = 8192
+) -> tuple[np.ndarray, np.ndarray]:
+    """AR coefficients (order, V) and autocorrelations (order, V) from smoothed,
+    bias-corrected autocovariances ``v_0..v_L`` (L + 1, V); white noise where ``v_0 <= 0``.
+
+    With ``prep`` (the design) and :data:`REFINE_STEPS` > 0 the truncation of the bias
+    correction at :data:`BIAS_LAGS` is removed by defect correction: the AR(p) model's
+    full autocorrelation sequence gives the expected residual autocovariances
+    (:func:`full_bias_matrix`), those are corrected like the data, and the difference to the
+    data's corrected values is added to the estimate, until the model reproduces the
+    data's residual autocovariances at lags 0..L.
+    """
+    rho_obs = _ratio(values)[:order]
+    if prep is None or REFINE_STEPS <= 0 or values.shape[1] == 0:
+        return ar_from_autocorr(rho_obs, order), rho_obs
+    lags = values.shape[0] - 1
+    M = design_bias_matrix(prep, lags)
+    key = ("_ar_bias_full", lags)
+    F = prep.memo.get(key)
+    if F is None:
+        F = full_bias_matrix(prep.X, lags)
+        prep.memo[key] = F
+    n = F.shape[1]
+    valid = values[0] > 0
+    phi_all = np.zeros((order, values.shape[1]))
+    rho_all = np.zeros((order, values.shape[1]))
+    for a in range(0, values.shape[1], chunk):
+        sl = slice(a, a + chunk)
+        ro = rho_obs[:, sl]
+        rho = ro.copy()
+        phi = ar_from_autocorr(rho, order)
+        for _ in range(REFINE_STEPS):
+            rho = _ratio(_ar_acf(phi, _stationary_rho(phi, rho), lags + 1))[:order]
+            g = _ar_acf(phi, rho, n)  # (K, V), K <= n
+            implied = _ratio(np.linalg.solve(M, F[:, : g.shape[0]] @ g))[:order]
+            rho = np.clip(rho + (ro - implied), -REFLECTION_LIMIT, REFLECTION_LIMIT)
+            phi = ar_from_autocorr(rho, order)
+        rho = _stationary_rho(phi, rho)
+        phi_all[:, sl] = phi
+        rho_all[:, sl] = rho
+    phi_all[:, ~valid] = 0.0
+    rho_all[:, ~valid] = 0.0
+    return phi_all, rho_all
+
+
+def _stationary_rho(phi: np.ndarray, rho: np.ndarray) -> np.ndarray:
+    """The first p autocorrelations of the (clipped, stationary) AR process ``phi``."""
+    p = phi.shape[0]
+    if p == 1:
+        return phi.copy()
+    # Yule-Walker forward: solve for rho_1..rho_p given phi (small p x p per voxel)
+    V = phi.shape[1]
+    A = np.zeros((V, p, p))
+    b = phi.T.copy()
+    for k in range(1, p + 1):  # rho_k = sum_i phi_i rho_{|k-i|}, rho_0 = 1
+        for i in range(1, p + 1):
+            lag = abs(k - i)
+            if lag == 0:
+                continue
+            A[:, k - 1, lag - 1] -= phi[i - 1]
+        A[:, k - 1, k - 1] += 1.0
+    return np.linalg.solve(A, b[..., None])[..., 0].T
+
+
+def voxel_ar(
+    run: Any,
+    prep: Any,
+    ijk: Sequence[int],
+    mask: np.ndarray | None = None,
+    order: int | None = None,
+    fwhm_mm: float | None = None,
+) -> ArEstimate:
+    """One voxel's AR(p) coefficients, exactly as :func:`smoothed_ar_map` gives them.
+
+    Reads only the box of neighbours within the truncated smoothing kernel.
+    """
+    order = AR_ORDER if order is None else int(order)
+    fwhm_mm = FWHM_MM if fwhm_mm is None else float(fwhm_mm)
+    shape = tuple(int(n) for n in run.shape)
+    mask = np.asarray(run.mask() if mask is None else mask, dtype=bool)
+    if mask.shape != shape:
+        raise InputError(f"the mask has shape {mask.shape} but the run grid is {shape}")
+    weights = smoothing_weights(voxel_sizes(getattr(run, "affine", np.eye(4))), fwhm_mm)
+    lo, hi, wts = [], [], []
+    for axis, w in enumerate(weights):
+        r = (w.size - 1) // 2
+        c = int(ijk[axis])
+        a, b = max(0, c - r), min(shape[axis], c + r + 1)
+        lo.append(a)
+        hi.append(b)
+        wts.append(w[a - c + r : b - c + r])
+    sub = mask[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]]
+    local = np.argwhere(sub)
+    M = design_bias_matrix(prep, order)
+    if local.size == 0:
+        rho = np.zeros(order)
+        return ArEstimate(np.zeros(order), rho, 0, fwhm_mm, None)
+    glob = local + np.array(lo)
+    flat = np.ravel_multi_index(glob.T, shape)
+    if hasattr(run, "timeseries_many"):
+        data = np.asarray(run.timeseries_many(flat), dtype=np.float32).T
+    else:
+        data = run.data.reshape(-1, run.n_volumes)[flat].astype(np.float32).T
+    vals, ok = _ols_autocorr(prep, data, M, order)
+    w = wts[0][local[:, 0]] * wts[1][local[:, 1]] * wts[2][local[:, 2]] * ok
+    centre = np.flatnonzero((glob == np.asarray(ijk)).all(axis=1))
+    own = _ratio(vals[:, centre[:1]])[:order, 0] if centre.size and ok[centre[0]] else None
+    den = float(w.sum())
+    sm = (vals @ w) / den if den > 0 else np.zeros(vals.shape[0])
+    phi, rho = ar_from_smoothed(sm[:, None], order, prep)
+    return ArEstimate(phi[:, 0], rho[:, 0], int(np.count_nonzero(w)), fwhm_mm, own)
