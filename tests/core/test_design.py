@@ -454,7 +454,9 @@ def test_modulated_fit_equals_statsmodels_on_a_design_built_here():
     m = sm.OLS(y, X).fit()
     a = Analysis([c], n, tr)
     for expr, w in (("gamble:gain", [0, 1, 0]), ("gamble", [1, 0, 0])):
-        s = ModelSettings(kernels=("boxcar",), highpass_s=None, modulators=("gain",), contrast=expr)
+        s = ModelSettings(
+            noise="ols", kernels=("boxcar",), highpass_s=None, modulators=("gain",), contrast=expr
+        )
         f = a.fit_voxel(y, s).fits[0]
         tt = m.t_test(np.array(w, dtype=float))
         assert f.t == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-9)
