@@ -171,7 +171,9 @@ def test_demo_study_runs_disagree_at_the_rim_and_agree_at_the_tone_cluster(windo
     window.set_contrast_text("tone")
     st = window.state
     dg = next(c for c in st.combined if c.kernel == "double-gamma")
-    assert dg.q_p < 1e-4 and "runs-disagree" in {f.id for f in dg.flags}
+    # Q p about 0.02 under the default AR(p) model (below 1e-4 under OLS, whose t is
+    # inflated by the rim's autocorrelated residuals)
+    assert dg.q_p < 0.05 and "runs-disagree" in {f.id for f in dg.flags}
     window.checks.set_kernel("double-gamma")
     assert "they disagree" in window.checks.runs_note.text()
     st.set_voxel((6, 23, 15))
