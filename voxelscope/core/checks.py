@@ -481,7 +481,10 @@ def voxel_checks(
         parts["fir"] = fir_estimate(analysis, settings, y, cond, ar=ar).to_json()
     except ModelError as exc:
         notes.append(f"no FIR estimate: {exc}")
-    parts["response"] = peri_event_response(analysis, settings, y, cond).to_json()
+    by_kernel = None if ar is None else {str(kernel): ar}
+    parts["response"] = peri_event_response(
+        analysis, settings, y, cond, ar_by_kernel=by_kernel
+    ).to_json()
     # the spectrum needs every volume: left-out ones take their fitted value
     y_spec = y if keep is None else np.where(keep, y, ols.fitted[:, 0])
     parts.update(_spectrum_part(y_spec, d, cond, tr, settings.highpass_s))

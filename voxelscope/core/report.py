@@ -249,11 +249,18 @@ def _response_pngs(
     out = []
     for cond in names[:4]:
         try:
-            r = peri_event_response(analysis, settings, sec.fits.y, cond).to_json()
+            by_kernel = {
+                f.kernel: f.result.ar[:, 0] for f in sec.fits.fits if f.result.ar is not None
+            }
+            r = peri_event_response(
+                analysis, settings, sec.fits.y, cond, ar_by_kernel=by_kernel or None
+            ).to_json()
         except VoxelscopeError:
             continue
         try:
-            fir = fir_estimate(analysis, settings, sec.fits.y, cond).to_json()
+            fir = fir_estimate(
+                analysis, settings, sec.fits.y, cond, ar=next(iter(by_kernel.values()), None)
+            ).to_json()
         except VoxelscopeError:
             fir = None
         fig = response_figure(

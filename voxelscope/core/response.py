@@ -36,6 +36,7 @@ True
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -138,6 +139,7 @@ def peri_event_response(
     y: np.ndarray,
     condition: str,
     baseline_s: float = BASELINE_S,
+    ar_by_kernel: Mapping[str, np.ndarray] | None = None,
 ) -> PeriEventResponse:
     """Average the voxel around a condition's onsets, with each kernel's prediction.
 
@@ -203,7 +205,10 @@ def peri_event_response(
             w = analysis.contrast_weights(kernel, settings)
         except (ModelError, InputError, ValueError):
             continue
-        res = fit(prep, y, w, noise=settings.noise)
+        # under AR(p): the kernel's coefficients from the Fits table when given (the map's
+        # whitening), else the voxel's own estimate
+        ar = None if ar_by_kernel is None else ar_by_kernel.get(str(kernel))
+        res = fit(prep, y, w, noise=settings.noise, ar=ar)
         cols = [i for i, k in enumerate(d.kinds) if k in _TASK_KINDS]
         task = d.X[:, cols] @ res.betas[cols, 0]
         pred, _ = _epochs(np.where(gone, np.nan, task), frame_times, onsets, edges, baseline_s)
