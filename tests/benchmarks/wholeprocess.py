@@ -13,7 +13,9 @@ pip has compiled every module; a warm-up run of each command fills it and the pa
 
 from __future__ import annotations
 
+import atexit
 import os
+import shutil
 import statistics
 import subprocess
 import sys
@@ -24,6 +26,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 _PYCACHE = tempfile.mkdtemp(prefix="vxs-bench-pycache-")
+atexit.register(shutil.rmtree, _PYCACHE, ignore_errors=True)
 
 
 def child_env(extra: dict[str, str] | None = None) -> dict[str, str]:
