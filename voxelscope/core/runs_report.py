@@ -150,7 +150,6 @@ def runs_figure(
     left = 24.0 + max(len(r) for r in rows) * 0.6 * font + 12
     right = 24.0
     top = 16.0
-    fig_h = 0.0
     row_h = 14.0 * max(1, len(combined)) + 16
     head = 24.0 if title else 0.0
     legend_h = 22.0

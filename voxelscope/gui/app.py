@@ -304,10 +304,9 @@ def launch(
     window.show()
 
     def after() -> None:
-        from voxelscope.gui.runs import add_run
+        from voxelscope.gui.runs import add_runs_in_order
 
-        for extra in add_runs:
-            add_run(window, extra)
+        add_runs_in_order(window, add_runs)
         if demo:
             _demo_extras(window, marks_path)
         if save_session is not None:

@@ -19,7 +19,7 @@ from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.loading import load_bundle
 from voxelscope.gui.workers import OpenRunJob
 
-__all__ = ["add_run", "install", "open_runs", "run_roles"]
+__all__ = ["add_run", "add_runs_in_order", "install", "open_runs", "run_roles"]
 
 NIFTI_FILTER = "NIfTI runs (*.nii *.nii.gz);;All files (*)"
 
@@ -101,14 +101,26 @@ def open_runs(window, paths, background: bool = True, **first) -> bool:
     def then() -> None:
         if previous is not None:
             previous()
-        for p in paths[1:]:
-            add_run(window, p)
+        add_runs_in_order(window, paths[1:])
 
     window.after_open = then
     ok = window.open_run(paths[0], **first)
     if not ok:
         window.after_open = previous
     return ok
+
+
+def add_runs_in_order(window, paths) -> None:
+    """Add runs in the background one after the other, so they keep the order given."""
+    paths = list(paths)
+    if not paths:
+        return
+    started = add_run(window, paths[0])
+    jobs = getattr(window, "runs_jobs", [])
+    if started and jobs:
+        jobs[-1].finished.connect(lambda: add_runs_in_order(window, paths[1:]))
+    else:
+        add_runs_in_order(window, paths[1:])
 
 
 def ask_add_runs(window) -> None:
@@ -119,8 +131,7 @@ def ask_add_runs(window) -> None:
     paths, _ = QFileDialog.getOpenFileNames(
         window, "Add runs of the same subject", window._last_dir(), NIFTI_FILTER
     )
-    for p in paths:
-        add_run(window, p)
+    add_runs_in_order(window, paths)
 
 
 def install(window) -> None:
