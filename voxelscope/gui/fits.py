@@ -381,6 +381,13 @@ class FitsPanel(QWidget):
         pad = 8
         while pad > 0 and sum(base) + pad * len(base) > room:
             pad -= 2
+        # Each measured width carries a few pixels of its own margin (12 px around the
+        # widest cell, the header's own); when the bare sum is a little too wide, give up
+        # to half of that margin before the table has to scroll sideways.
+        over = sum(base) - room
+        if over > 0 and room > 0:
+            cut = min(6, -(-over // len(base)))
+            base = [b - cut for b in base]
         need = [b + pad for b in base]
         spare = room - sum(need)
         if spare >= 0:
