@@ -312,7 +312,7 @@ def test_fir_estimate_uses_the_kept_volumes():
     from voxelscope.core.timing import FIR_SPAN_S, fir_estimate
 
     a, rng, n = _censored_analysis()
-    s = ModelSettings(kernels=("gamma",), censor_fd_mm=0.5, confound_columns=())
+    s = ModelSettings(kernels=("gamma",), censor_fd_mm=0.5, confound_columns=(), noise="ols")
     y = 500 + rng.standard_normal(n)
     y[:3] += 80
     est = fir_estimate(a, s, y, "tap")

@@ -384,10 +384,15 @@ class FitsPanel(QWidget):
         # Each measured width carries a few pixels of its own margin (12 px around the
         # widest cell, the header's own); when the bare sum is a little too wide, give up
         # to half of that margin before the table has to scroll sideways.
+        # Never below a column's header, which must stay readable.
         over = sum(base) - room
         if over > 0 and room > 0:
-            cut = min(6, -(-over // len(base)))
-            base = [b - cut for b in base]
+            heads = self._header_widths[1:]
+            slack = [max(0, min(6, b - h)) for b, h in zip(base, heads)]
+            if sum(slack) > 0:
+                frac = min(1.0, over / sum(slack))
+                base = [b - math.ceil(s * frac) for b, s in zip(base, slack)]
+                base = [max(b, h) for b, h in zip(base, heads)]
         need = [b + pad for b in base]
         spare = room - sum(need)
         if spare >= 0:

@@ -8,7 +8,8 @@ clicked voxel) and shows the result as the overlay. A change while a job runs ca
 The GUI thread only swaps image data, so clicks and their per-voxel fits stay instant.
 On a large run (at least :data:`PREVIEW_MIN_VOXELS` in the mask) the job first fits the
 three planes through the current voxel, the ones the Slices part shows, and puts that
-preview on screen (final values there, 0 elsewhere); the full map then replaces it in
+preview on screen (final values there under OLS and AR(1), close under AR(p); 0
+elsewhere); the full map then replaces it in
 place. The debounce is short (:attr:`LiveMap.debounce_ms`, 40 ms) because a further change
 cancels the running job at its next block.
 
@@ -245,8 +246,10 @@ def preview_stat(
 
     These are the planes the Slices part shows, so the map is on screen long before the
     whole volume is fitted: :func:`voxelscope.core.maps.compute_map` fits the mask's voxels
-    on those planes (the same fit as the full map, so the values are final); the rest of
-    the volume is 0 until the full map replaces the preview. Returns float32 (X, Y, Z).
+    on those planes (the same fit as the full map, so under OLS and AR(1) the values are
+    final; under AR(p) the neighbourhood averaging of the noise estimate sees only the
+    planes, so they are close but not final); the rest of the volume is 0 until the full
+    map replaces the preview. Returns float32 (X, Y, Z).
 
     Examples
     --------
