@@ -240,7 +240,7 @@ def _make_2mm_run(folder: Path) -> tuple[Path, Path]:
     shape, n, tr = (97, 115, 97), 240, 2.0
     rng = np.random.default_rng(4)
     g = np.ogrid[: shape[0], : shape[1], : shape[2]]
-    r = sum(((a - (s - 1) / 2) / (0.45 * s)) ** 2 for a, s in zip(g, shape))
+    r = sum(((ax - (s - 1) / 2) / (0.45 * s)) ** 2 for ax, s in zip(g, shape))
     brain = r <= 1.0
     base = np.where(brain, 9000 + 2000 * rng.random(shape), 0).astype(np.float32)
     data = np.empty((*shape, n), dtype=np.float32, order="F")

@@ -411,17 +411,15 @@ def _page_head(title: str, sections: list[ReportSection]) -> str:
     return "\n".join(out) + "\n"
 
 
-def _page_tail(
-    settings: ModelSettings,
-    analysis: Analysis,
+def _model_inputs_warnings_html(
+    rows: Iterable[tuple[str, str]],
     inputs: list[tuple[str, Path, str, int]],
-    warnings: list[str],
-) -> str:
-    from voxelscope import RESEARCH_CAUTION, __version__
-
+    warnings: Iterable[str],
+) -> list[str]:
+    """The Model, Input files and Warnings sections of a report page, as HTML lines
+    (shared by the one-run and the several-run reports)."""
     out = ["<section id='model'><h2>Model</h2><table class='settings'>"]
-    for k, v in _settings_rows(settings, analysis):
-        out.append(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>")
+    out += [f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>" for k, v in rows]
     out.append("</table></section>")
     out.append("<section id='inputs'><h2>Input files</h2><table class='inputs'>")
     out.append("<tr><th>role</th><th>file</th><th>bytes</th><th>SHA-256</th></tr>")
@@ -431,10 +429,23 @@ def _page_tail(
             f"<td><code class='sha256'>{_e(digest)}</code></td></tr>"
         )
     out.append("</table></section>")
+    warnings = list(warnings)
     if warnings:
         out.append("<section id='warnings'><h2>Warnings</h2><ul>")
         out += [f"<li class='warn'>{_e(w)}</li>" for w in warnings]
         out.append("</ul></section>")
+    return out
+
+
+def _page_tail(
+    settings: ModelSettings,
+    analysis: Analysis,
+    inputs: list[tuple[str, Path, str, int]],
+    warnings: list[str],
+) -> str:
+    from voxelscope import RESEARCH_CAUTION, __version__
+
+    out = _model_inputs_warnings_html(_settings_rows(settings, analysis), inputs, warnings)
     out.append(
         f"<footer><p class='caution'>{_e(RESEARCH_CAUTION)}</p>"
         f"<p class='muted'>voxelscope {_e(__version__)}</p></footer>"

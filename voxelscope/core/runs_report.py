@@ -43,6 +43,7 @@ from .report import (
     _e,
     _fits_table,
     _fmt,
+    _model_inputs_warnings_html,
     _settings_rows,
     _value_attr,
     format_csv,
@@ -496,22 +497,9 @@ def _page(
         )
     out.append("</table></section>")
     out += [_section_html(s, labels, settings, colours) for s in sections]
-    out.append("<section id='model'><h2>Model</h2><table class='settings'>")
-    for k, v in _settings_rows(settings, analyses[0])[3:]:
-        out.append(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>")
-    out.append("</table></section>")
-    out.append("<section id='inputs'><h2>Input files</h2><table class='inputs'>")
-    out.append("<tr><th>role</th><th>file</th><th>bytes</th><th>SHA-256</th></tr>")
-    for role, path, digest, size in inputs:
-        out.append(
-            f"<tr><td>{_e(role)}</td><td>{_e(path.name)}</td><td class='num'>{size}</td>"
-            f"<td><code class='sha256'>{_e(digest)}</code></td></tr>"
-        )
-    out.append("</table></section>")
-    if warnings:
-        out.append("<section id='warnings'><h2>Warnings</h2><ul>")
-        out += [f"<li class='warn'>{_e(w)}</li>" for w in dict.fromkeys(warnings)]
-        out.append("</ul></section>")
+    out += _model_inputs_warnings_html(
+        _settings_rows(settings, analyses[0])[3:], inputs, dict.fromkeys(warnings)
+    )
     out.append(
         f"<footer><p class='caution'>{_e(RESEARCH_CAUTION)}</p>"
         f"<p class='muted'>voxelscope {_e(__version__)}</p></footer>"
