@@ -202,3 +202,64 @@ def test_nifti_affine_rule_on_headers():
 def test_resample_rejects_other_orders():
     with pytest.raises(ValueError):
         resample_to_grid(np.zeros((2, 2, 2)), np.eye(4), (2, 2, 2), np.eye(4), order=3)
+
+
+# ----------------------------------------------------------------- file signatures (issue 17)
+
+
+def _text_named(tmp_path, name: str) -> Path:
+    p = tmp_path / name
+    p.write_text("onset\tduration\ttrial_type\n0\t10\ttap\n")
+    return p
+
+
+def test_text_named_nii_gz_is_not_a_gzip_image_for_every_opener(tmp_path):
+    """A text file named .nii.gz: one line saying it is not gzip-compressed, wherever it is
+    opened (run, mask, underlay, outside map); the gzip signature 1f 8b is RFC 1952's."""
+    from voxelscope.core.loader import InputRequest, load_inputs
+
+    fake = _text_named(tmp_path, "sub-01_task-x_bold.nii.gz")
+    good = tmp_path / "run.nii"
+    nib.save(nib.Nifti1Image(np.ones((3, 3, 3, 4), np.float32), np.eye(4)), good)
+    attempts = {
+        "run": lambda: open_run(fake),
+        "mask": lambda: load_inputs(InputRequest(good, mask=fake, events_required=False)),
+        "image": lambda: load_image(fake),
+        "map": lambda: load_on_grid(fake, ((3, 3, 3), np.eye(4))),
+    }
+    for what, attempt in attempts.items():
+        with pytest.raises(InputError) as err:
+            attempt()
+        line = str(err.value)
+        assert "\n" not in line
+        assert line.startswith(str(fake)), what
+        assert "not a gzip-compressed NIfTI image" in line, what
+        assert "text file starting 'onset" in line, what
+        assert "gzip file" not in line  # the library's own words are not passed on
+
+
+def test_uncompressed_nifti_named_gz_is_told_to_rename(tmp_path):
+    p = tmp_path / "x.nii.gz"
+    img = nib.Nifti1Image(np.ones((2, 2, 2), np.float32), np.eye(4))
+    p.write_bytes(img.to_bytes())
+    with pytest.raises(InputError, match=r"uncompressed NIfTI header\); rename it to end in \.nii"):
+        load_image(p)
+
+
+def test_gzip_named_nii_is_told_to_rename(tmp_path):
+    good = tmp_path / "x.nii.gz"
+    nib.save(nib.Nifti1Image(np.ones((2, 2, 2), np.float32), np.eye(4)), good)
+    p = tmp_path / "y.nii"
+    p.write_bytes(good.read_bytes())
+    with pytest.raises(InputError, match=r"gzip-compressed but its name ends in \.nii"):
+        load_image(p)
+
+
+def test_binary_and_empty_files_named_gz(tmp_path):
+    p = tmp_path / "b.nii.gz"
+    p.write_bytes(b"\x00\x01\x02\x03" * 10)
+    with pytest.raises(InputError, match="starts with the bytes 00 01 02 03"):
+        load_image(p)
+    p.write_bytes(b"")
+    with pytest.raises(InputError, match="the file is empty"):
+        load_image(p)

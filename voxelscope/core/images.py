@@ -35,7 +35,9 @@ import numpy as np
 from voxelscope.core.errors import InputError
 
 __all__ = [
+    "GZIP_MAGIC",
     "Image3D",
+    "check_signature",
     "grid_overlap",
     "load_image",
     "load_nifti",
@@ -147,6 +149,7 @@ def load_nifti(path: str | os.PathLike[str], what: str = "image") -> Any:
             f"{path}: the {what} file is unreadable (permission denied); check its permissions"
         )
     note_input(path)  # from here on, no output of this command may replace it
+    check_signature(path, what)
     check_nifti_header(path, what)
     try:
         # nibabel logs header repairs; the user gets our one line instead
@@ -160,9 +163,10 @@ def load_nifti(path: str | os.PathLike[str], what: str = "image") -> Any:
         raise InputError(
             f"{path}: the {what} file is unreadable (permission denied); check its permissions"
         ) from None
-    except nib.filebasedimages.ImageFileError as err:
+    except nib.filebasedimages.ImageFileError:
         raise InputError(
-            f"{path}: not a NIfTI image ({_one_line(err)}); give a .nii or .nii.gz {what}"
+            f"{path}: not a NIfTI image (the name must end in .nii or .nii.gz and the file "
+            f"start with a NIfTI header); give the {what} as a .nii or .nii.gz file"
         ) from None
     except _READ_ERRORS as err:
         raise InputError(
@@ -175,6 +179,71 @@ def load_nifti(path: str | os.PathLike[str], what: str = "image") -> Any:
             f"convert the {what} to .nii or .nii.gz"
         )
     return img
+
+
+#: The first two bytes of every gzip stream (RFC 1952, section 2.3.1).
+GZIP_MAGIC = b"\x1f\x8b"
+
+
+def _looks_like(head: bytes) -> str:
+    """A few words on what a file's first bytes look like, for an error message."""
+    from voxelscope.core.inputs import excerpt
+
+    if not head:
+        return "the file is empty"
+    sizes = {int.from_bytes(head[:4], "little"), int.from_bytes(head[:4], "big")}
+    if len(head) >= 4 and sizes & {348, 540}:  # sizeof_hdr of NIfTI-1 / NIfTI-2
+        return "it holds an uncompressed NIfTI header"
+    if b"\x00" not in head:
+        try:
+            text = head.decode("utf-8")
+        except UnicodeDecodeError:
+            text = None
+        if text is not None:
+            first = text.strip().splitlines()[0] if text.strip() else ""
+            return f"it is a text file starting '{excerpt(first, 24)}'"
+    return "it starts with the bytes " + " ".join(f"{b:02x}" for b in head[:4])
+
+
+def check_signature(path: str | os.PathLike[str], what: str = "image") -> None:
+    """Refuse a file whose first bytes contradict its name, with one line saying why.
+
+    A name ending in ``.gz`` promises a gzip stream, which starts with the bytes
+    ``1f 8b`` (RFC 1952); a name ending in ``.nii`` promises an uncompressed NIfTI file.
+    Checking the signature first gives "not a gzip-compressed NIfTI image" instead of a
+    library's message about gzip internals.
+
+    Examples
+    --------
+    >>> import tempfile
+    >>> p = Path(tempfile.mkdtemp()) / "notes_bold.nii.gz"
+    >>> _ = p.write_text("onset,duration")
+    >>> check_signature(p, "run")  # doctest: +ELLIPSIS
+    Traceback (most recent call last):
+    ...
+    voxelscope.core.errors.InputError: ...: not a gzip-compressed NIfTI image (it is a text file ...
+    """
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            head = fh.read(512)
+    except OSError:
+        return  # the reader says what is wrong with the file itself
+    name = path.name.lower()
+    gz = head[:2] == GZIP_MAGIC
+    if name.endswith(".gz") and not gz:
+        found = _looks_like(head)
+        fix = (
+            "rename it to end in .nii"
+            if found.endswith("NIfTI header")
+            else f"give the {what} as a .nii or .nii.gz image"
+        )
+        raise InputError(f"{path}: not a gzip-compressed NIfTI image ({found}); {fix}")
+    if name.endswith(".nii") and gz:
+        raise InputError(
+            f"{path}: the file is gzip-compressed but its name ends in .nii; rename it to "
+            "end in .nii.gz"
+        )
 
 
 def _one_line(err: BaseException) -> str:
