@@ -187,3 +187,34 @@ def test_events_options_go_through_the_one_way_in(tmp_path):
     assert got.analysis.events_file.condition_candidates == ("trial_type", "hand")
     one = load_inputs(InputRequest(run, condition_column="none"))
     assert one.analysis.condition_names == ("x",)  # named after the task
+
+
+def test_explicit_no_events_and_no_confounds_find_no_companions(tmp_path):
+    """An explicit "no events" / "no confounds" (a session's refused entry) is distinct
+    from "not given": a BIDS-named companion beside the run is not picked up instead."""
+    run = _write(tmp_path, name="sub-01_task-x_bold.nii")
+    (tmp_path / "sub-01_task-x_desc-confounds_timeseries.tsv").write_text("a\tb\n" + "1\t2\n" * 60)
+    found = resolve_inputs(InputRequest(run))
+    assert found.events is not None and found.confounds is not None  # not given: found
+    refused = resolve_inputs(
+        InputRequest(run, no_events=True, no_confounds=True, events_required=False)
+    )
+    assert refused.events is None and refused.confounds is None
+    got = load_inputs(InputRequest(run, no_events=True, no_confounds=True, events_required=False))
+    assert got.analysis is None and got.confounds is None
+    assert got.used_files()["events"] is None and got.used_files()["confounds"] is None
+    assert any("without events (none chosen)" in w for w in got.warnings)
+    # the command line still needs events: refusing them is the same one line as none found
+    with pytest.raises(InputError, match="no events file given"):
+        resolve_inputs(InputRequest(run, no_events=True))
+    # the two ways of saying it cannot be mixed
+    with pytest.raises(ValueError):
+        InputRequest(run, events=tmp_path / "e.tsv", no_events=True)
+
+
+def test_explicit_no_events_skips_an_ambiguous_companion(tmp_path):
+    run = _write(tmp_path, name="sub-01_task-x_bold.nii")
+    (tmp_path / "sub-01_task-x_acq-b_events.tsv").write_text(EVENTS)
+    (tmp_path / "sub-01_task-x_acq-c_events.tsv").write_text(EVENTS)
+    refused = resolve_inputs(InputRequest(run, no_events=True, events_required=False))
+    assert refused.events is None

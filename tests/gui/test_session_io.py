@@ -245,3 +245,24 @@ def test_save_refuses_to_overwrite_without_force(window, ras_run, tmp_path):
     assert target.read_text() == "keep"
     save_window_session(window, target, force=True)
     assert json.loads(target.read_text())["files"]["events"]
+
+
+def test_refused_entries_are_not_replaced_by_companions(qtbot, ras_run, tmp_path):
+    """Issue 11: an events or confounds entry refused for its digest is not silently
+    replaced by the BIDS-named companion beside the run (the same file, changed)."""
+    a = new_window(qtbot, tmp_path, "a")
+    assert a.open_run(ras_run["run"], voxel=(2, 3, 4), background=False)
+    assert a.state.analysis is not None
+    path = save_window_session(a, tmp_path / "view.voxelscope.json")
+    run = Path(ras_run["run"])
+    for suffix in ("_events.tsv", "_confounds.tsv"):
+        other = run.with_name(run.name.replace("_bold.nii", suffix))
+        other.write_text(other.read_text() + "\n")
+    b = new_window(qtbot, tmp_path, "b")
+    assert open_session(b, path)
+    assert b.state.run is not None
+    assert b.state.analysis is None  # no events: the changed companion was not read
+    bundle = b.state.bundle
+    assert bundle.events_path is None and bundle.confounds_path is None
+    used = bundle.inputs.used_files()
+    assert used["events"] is None and used["confounds"] is None

@@ -63,7 +63,8 @@ class InputRequest:
     run : path
         The 4D NIfTI run.
     events, confounds : path, optional
-        Named explicitly; otherwise found by BIDS names.
+        Named explicitly; otherwise found by BIDS names (unless ``no_events`` /
+        ``no_confounds``).
     confound_columns : str, optional
         The user's choice of confound columns (names, wildcards, sets, ``none``; see
         :func:`voxelscope.core.confounds.choose_columns`). None: all columns of a small
@@ -84,6 +85,11 @@ class InputRequest:
         Build/use the voxel-major cache of a compressed run.
     events_required : bool
         The command line needs events to fit; the window can open a run without them.
+    no_events, no_confounds : bool
+        The user's explicit choice of no events file / no confounds table: nothing is
+        looked for beside the run. Distinct from not naming one (None: find the BIDS
+        companion). A session uses it for an entry it refused (its recorded digest no
+        longer matches), so a companion beside the run cannot take the refused file's place.
     summarize : bool
         Make the one pass over the data (mean image, NaN and constant voxels, brain mask)
         while opening, so its warnings are in :attr:`Inputs.warnings`. ``voxelscope fit``
@@ -102,9 +108,14 @@ class InputRequest:
     bids_root: Path | None = None
     use_cache: bool = True
     events_required: bool = True
+    no_events: bool = False
+    no_confounds: bool = False
     summarize: bool = True
 
     def __post_init__(self) -> None:
+        for flag, name in (("no_events", "events"), ("no_confounds", "confounds")):
+            if getattr(self, flag) and getattr(self, name) is not None:
+                raise ValueError(f"{flag} and {name} exclude each other")
         object.__setattr__(self, "run", Path(self.run).expanduser())
         for name in ("events", "confounds", "bids_root"):
             value = getattr(self, name)
@@ -165,13 +176,13 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
     if not run.is_file():
         raise InputError(f"{run}: run file not found; check the path (a 4D .nii or .nii.gz)")
     comp = find_companions(run, request.bids_root)
-    for role, option, given in (
-        ("events", "--events", request.events),
-        ("confounds", "--confounds", request.confounds),
-        ("mask", "--mask", request.mask),
+    for role, option, given, refused in (
+        ("events", "--events", request.events, request.no_events),
+        ("confounds", "--confounds", request.confounds, request.no_confounds),
+        ("mask", "--mask", request.mask, False),
     ):
         both = comp.ambiguous.get(role)
-        if both and given is None:
+        if both and given is None and not refused:
             names = " and ".join(str(p) for p in both)
             raise InputError(
                 f"{run}: {len(both)} {role} files match this run ({names}); "
@@ -182,13 +193,13 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
             raise InputError(f"{given}: {label} file not found; check --{label}")
     if isinstance(request.mask, Path) and not request.mask.is_file():
         raise InputError(f"{request.mask}: mask file not found; check --mask (or use 'auto')")
-    events = request.events or comp.events
+    events = None if request.no_events else (request.events or comp.events)
     if events is None and request.events_required:
         raise InputError(
             f"{run}: no events file given and none found beside it; pass --events FILE "
             "(a BIDS events.tsv with onset and duration in seconds)"
         )
-    confounds = request.confounds or comp.confounds
+    confounds = None if request.no_confounds else (request.confounds or comp.confounds)
     mask = None
     if isinstance(request.mask, Path):
         mask = request.mask
@@ -455,6 +466,11 @@ def load_inputs(
         if events_file is not None:  # said with the run's own notes wherever they are shown
             analysis.warnings[:0] = list(events_file.warnings)
         warnings.extend(analysis.warnings)
+    elif request.no_events:
+        warnings.append(
+            f"{request.run}: opened without events (none chosen); open an events file to "
+            "fit a model (File > Open events)"
+        )
     elif not request.events_required:
         warnings.append(
             f"{request.run}: no events file found beside it; open one to fit a model "

@@ -151,6 +151,8 @@ def load_bundle(
     progress: Callable[[float], bool | None] | None = None,
     mask: str | os.PathLike[str] | None = None,
     bids_root: str | os.PathLike[str] | None = None,
+    no_events: bool = False,
+    no_confounds: bool = False,
 ) -> RunBundle:
     """Open a run, its events and confounds (found by BIDS names when not given) and layers.
 
@@ -174,6 +176,9 @@ def load_bundle(
         rule.
     bids_root : path, optional
         The raw dataset a derivative run comes from.
+    no_events, no_confounds : bool
+        Open without events / confounds and look for none beside the run (a session
+        entry that was refused must not be replaced by a companion).
     progress : callable, optional
         ``progress(fraction) -> bool | None``; False cancels.
 
@@ -197,6 +202,8 @@ def load_bundle(
         mask=mask,
         bids_root=bids_root,
         events_required=False,
+        no_events=no_events,
+        no_confounds=no_confounds,
         confound_columns="none",  # the window starts with no confound column (START_SETTINGS)
     )
     got = load_inputs(request, progress=progress)

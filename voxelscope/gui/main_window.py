@@ -436,9 +436,12 @@ class MainWindow(QMainWindow):
         background: bool = True,
         mask=None,
         bids_root=None,
+        no_events: bool = False,
+        no_confounds: bool = False,
     ) -> bool:
         """Open a run (and companions); in the background with progress unless told not to.
 
+        ``no_events`` / ``no_confounds``: open without them and find none beside the run.
         Returns True when the open succeeded (foreground) or was started (background).
         """
         if self.job is not None:
@@ -453,6 +456,8 @@ class MainWindow(QMainWindow):
             tr=tr,
             mask=mask,
             bids_root=bids_root,
+            no_events=no_events,
+            no_confounds=no_confounds,
         )
         self._pending_voxel, self._pending_mm = voxel, mm
         if not background:

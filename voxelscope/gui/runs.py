@@ -33,8 +33,18 @@ def run_roles(n: int) -> tuple[str, str, str]:
     return f"run {n}", f"events {n}", f"confounds {n}"
 
 
-def add_run(window, path, events=None, confounds=None, background: bool = True) -> bool:
+def add_run(
+    window,
+    path,
+    events=None,
+    confounds=None,
+    background: bool = True,
+    no_events: bool = False,
+    no_confounds: bool = False,
+) -> bool:
     """Open another run of the subject and add it to the open runs.
+
+    ``no_events`` / ``no_confounds``: find none beside the run (a refused session entry).
 
     Returns True when the run was added (foreground) or its opening started (background);
     problems are one line in the status bar or a dialog.
@@ -43,7 +53,13 @@ def add_run(window, path, events=None, confounds=None, background: bool = True) 
     if state.run is None or state.analysis is None:
         window.show_error("Open a run with its events first (File > Open run), then add runs.")
         return False
-    kwargs = dict(run_path=str(path), events=events, confounds=confounds)
+    kwargs = dict(
+        run_path=str(path),
+        events=events,
+        confounds=confounds,
+        no_events=no_events,
+        no_confounds=no_confounds,
+    )
 
     def opened(bundle) -> None:
         if not state.add_run(bundle):

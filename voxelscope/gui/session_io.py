@@ -320,7 +320,7 @@ def apply_session(
     name = Path(loaded.path).name if loaded.path is not None else "session"
 
     def finish() -> None:
-        _add_session_runs(window, files, notes)
+        _add_session_runs(window, files, notes, refused)
         _apply_settings(window, s, notes)
         window.state.set_marks(MarkList(s.marks))
         restore_layout(window, s.layout, geometry=geometry)
@@ -340,6 +340,9 @@ def apply_session(
         window.show_error(notes[0])
         return False
     kwargs = {ROLES[r]: str(p) for r, p in files.items() if r in ROLES and r != "run"}
+    # an entry that was refused (changed or unverified, not located) must not be replaced
+    # by a BIDS companion found beside the run: open without it, explicitly
+    refused = set(s.files) - set(files)
     if background:
         window.after_open = finish
     ok = window.open_run(
@@ -351,6 +354,8 @@ def apply_session(
         tr=tr,
         voxel=s.voxel,
         background=background,
+        no_events="events" in refused,
+        no_confounds="confounds" in refused,
     )
     if not ok:
         window.after_open = None
@@ -361,7 +366,7 @@ def apply_session(
     return True
 
 
-def _add_session_runs(window, files: dict, notes: list[str]) -> None:
+def _add_session_runs(window, files: dict, notes: list[str], refused=frozenset()) -> None:
     """Open the session's added runs ("run 2", "run 3", ...) with their companions."""
     from voxelscope.gui.runs import add_run, run_roles
 
@@ -376,6 +381,8 @@ def _add_session_runs(window, files: dict, notes: list[str]) -> None:
             events=files.get(role_events),
             confounds=files.get(role_conf),
             background=False,
+            no_events=role_events in refused,
+            no_confounds=role_conf in refused,
         )
         if not ok:
             notes.append(f"the session's {role_run} could not be added: {window.last_error}")
