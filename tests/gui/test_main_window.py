@@ -6,6 +6,7 @@ import numpy as np
 from PySide6.QtGui import QImage
 
 import voxelscope
+from voxelscope.core.cache import Cancelled
 from voxelscope.gui.app import launch
 from voxelscope.gui.workers import OpenRunJob
 
@@ -38,7 +39,9 @@ def test_cancel_stops_the_open(qtbot, gz_run):
     job.cancel()
     with qtbot.waitSignal(job.failed, timeout=10000) as blocker:
         job.start()
-    assert "cancel" in blocker.args[0]
+    failure = blocker.args[0]
+    assert isinstance(failure.error, Cancelled)
+    assert "cancel" in failure.line
     job.wait()
 
 

@@ -16,7 +16,7 @@ from voxelscope.core.cache import Cancelled
 from voxelscope.core.errors import ModelError
 from voxelscope.core.maps import compute_map, kernel_difference
 from voxelscope.gui import mapjobs
-from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, default_kernel
+from voxelscope.gui.mapjobs import LiveLayer, default_kernel
 
 
 def _open(window, files):
@@ -94,26 +94,6 @@ def test_cancel_stops_the_job_and_clicks_stay_live(window, qtbot, ras_run, monke
     qtbot.waitUntil(lambda: not live.is_busy(), timeout=5000)
     assert live.jobs_done == done and state.stat_map is before
     assert "cancelled" in window.map_panel.job_label.text()
-
-
-def test_background_job_cancel():
-    ran = threading.Event()
-
-    def fn(progress):
-        ran.set()
-        while progress(0.5) is not False:
-            time.sleep(0.002)
-        raise Cancelled("stopped")
-
-    job = BackgroundJob(fn)
-    got = []
-    job.cancelled.connect(lambda: got.append("cancelled"))
-    job.done.connect(lambda r: got.append("done"))
-    job.start()
-    assert ran.wait(5)
-    job.cancel()
-    assert mapjobs.wait_for_jobs(5000)
-    assert got == ["cancelled"]
 
 
 def test_failed_map_is_one_line_in_status_bar(window, qtbot, ras_run, monkeypatch):

@@ -37,10 +37,11 @@ from PySide6.QtWidgets import (
 from voxelscope.core.agreement import Agreement, compare_maps, explain, load_their_map
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.colours import colours
-from voxelscope.gui.mapjobs import BackgroundJob, LiveLayer, LiveMap
+from voxelscope.gui.mapjobs import LiveLayer, LiveMap
 from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import breakable, compact_spin, scroll_body
 from voxelscope.gui.state import ViewerState
+from voxelscope.gui.workers import BackgroundJob, JobFailure
 
 __all__ = ["MAX_POINTS", "AgreementPanel", "scatter_sample"]
 
@@ -290,9 +291,9 @@ class AgreementPanel(QWidget):
         if self.state.map_settings.source == "disagreement":
             self.live.apply()
 
-    def _failed(self, line: str) -> None:
-        self.state.message.emit(line)
-        self.summary.setText(line)
+    def _failed(self, failure: JobFailure) -> None:
+        self.state.message.emit(failure.line)
+        self.summary.setText(failure.line)
 
     def disagreement_layer(self) -> LiveLayer | None:
         """Ours − theirs at the voxels beyond the tolerance (NaN elsewhere), for the Map."""

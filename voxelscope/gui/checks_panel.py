@@ -12,16 +12,17 @@ command line's ``voxelscope fit --checks`` uses); the part only formats and draw
 
 The checks of one kernel's fit are computed off the GUI thread, after the fits of a click
 are shown: the part listens to ``fits_changed``, coalesces requests with a zero-time timer
-and hands the latest one to a one-thread pool, so a click never waits for them (the first
+and runs the latest one as a background job (:mod:`voxelscope.gui.workers`), one at a
+time, so a click never waits for them (the first
 call under new settings builds the 49 designs of the timing scan). A hidden part computes
 nothing; it catches up when it is shown.
 """
 
 from __future__ import annotations
 
-import itertools
 import math
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -29,10 +30,8 @@ from PySide6.QtCore import (
     QAbstractTableModel,
     QModelIndex,
     QObject,
-    QRunnable,
     QSize,
     Qt,
-    QThreadPool,
     QTimer,
     Signal,
 )
@@ -53,13 +52,13 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.core.checks import VoxelChecks, voxel_checks
-from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.noise import NOISE_LABELS
 from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
 from voxelscope.gui.sizing import FlowButtons
 from voxelscope.gui.state import ViewerState
+from voxelscope.gui.workers import BackgroundJob, JobFailure
 
 __all__ = [
     "ChecksModel",
@@ -68,7 +67,6 @@ __all__ = [
     "NumbersTable",
     "default_kernel",
     "install_checks",
-    "stop_checks",
 ]
 
 RAW_ROLE = Qt.ItemDataRole.UserRole + 1
@@ -231,62 +229,8 @@ class _Request:
     ijk: tuple[int, int, int]
 
 
-class _Relay(QObject):
-    """Carries results from the pool's thread to the GUI thread (lives as long as the app)."""
-
-    done = Signal(object, object)
-    failed = Signal(object, str)
-
-
-_POOL: dict[str, Any] = {}
-
-
-def _relay() -> _Relay:
-    if "relay" not in _POOL:
-        _POOL["relay"] = _Relay()
-    return _POOL["relay"]
-
-
-def _pool() -> QThreadPool:
-    if "pool" not in _POOL:
-        pool = QThreadPool()
-        pool.setMaxThreadCount(1)
-        _POOL["pool"] = pool
-    return _POOL["pool"]
-
-
-def stop_checks(timeout_ms: int = 10000) -> bool:
-    """Drop queued checks and wait for the running one (the window is closing)."""
-    pool = _POOL.get("pool")
-    if pool is None:
-        return True
-    pool.clear()
-    return bool(pool.waitForDone(int(timeout_ms)))
-
-
-class _ChecksJob(QRunnable):
-    def __init__(self, ticket: tuple, request: _Request) -> None:
-        super().__init__()
-        self.setAutoDelete(False)
-        self.ticket = ticket
-        self.request = request
-
-    def run(self) -> None:
-        r = self.request
-        relay = _relay()
-        try:
-            checks = voxel_checks(r.analysis, r.settings, r.kernel, r.y, run=r.run, ijk=r.ijk)
-        except VoxelscopeError as err:
-            relay.failed.emit(self.ticket, str(err))
-        except MemoryError:
-            relay.failed.emit(self.ticket, "not enough memory for the checks of this voxel")
-        except Exception as err:  # never let a worker take the window down
-            text = " ".join(str(err).split())[:160]
-            relay.failed.emit(
-                self.ticket, f"the checks of this voxel failed ({type(err).__name__}: {text})"
-            )
-        else:
-            relay.done.emit(self.ticket, checks)
+def _run_checks(req: _Request, _progress) -> VoxelChecks:
+    return voxel_checks(req.analysis, req.settings, req.kernel, req.y, run=req.run, ijk=req.ijk)
 
 
 def default_kernel(enabled, map_kernel: str | None = None) -> str | None:
@@ -373,9 +317,6 @@ class NumbersTable(QTableView):
             QTimer.singleShot(0, self.fit_rows)
 
 
-_SERIAL = itertools.count(1)
-
-
 class ChecksPanel(QWidget):
     """Checks of one kernel's fit at the current voxel."""
 
@@ -390,10 +331,9 @@ class ChecksPanel(QWidget):
         self.shown_key: tuple | None = None
         self.computing = False
         self.calls = 0
-        self._serial = next(_SERIAL)
         self._seq = 0
         self._in_flight: tuple | None = None
-        self._job: _ChecksJob | None = None
+        self._job: BackgroundJob | None = None
         self._pending: _Request | None = None
         self._chosen: str | None = None
 
@@ -486,9 +426,6 @@ class ChecksPanel(QWidget):
         self._timer.setSingleShot(True)
         self._timer.setInterval(0)
         self._timer.timeout.connect(self._launch)
-        relay = _relay()
-        relay.done.connect(self._done)
-        relay.failed.connect(self._failed)
         state.fits_changed.connect(self._on_fits)
         # let go of a dragged crosshair: the checks of where it rests, now
         state.dragging_changed.connect(lambda on: None if on else self.request())
@@ -665,42 +602,45 @@ class ChecksPanel(QWidget):
 
     def _start(self, req: _Request) -> None:
         self._seq += 1
-        ticket = (self._serial, self._seq, req.key)
+        ticket = (self._seq, req.key)
         self._in_flight = req.key
         self._pending = None
         self.calls += 1
-        self._job = _ChecksJob(ticket, req)
-        _pool().start(self._job)
+        job = BackgroundJob(partial(_run_checks, req), "the checks of this voxel", owner=self)
+        job.done.connect(lambda checks, ticket=ticket: self._done(ticket, checks))
+        job.failed.connect(lambda failure, ticket=ticket: self._failed(ticket, failure))
+        job.finished.connect(lambda job=job: self._job_finished(job))
+        self._job = job
+        job.start()
         self._set_status()
+
+    def _job_finished(self, job: BackgroundJob) -> None:
+        job.wait()
+        job.deleteLater()
+        if self._job is job:
+            self._job = None
 
     def _finish(self, ticket) -> bool:
         """Book-keeping of a finished job; True when it is this part's current one."""
-        if ticket[0] != self._serial:
-            return False
         self._in_flight = None
-        self._job = None
         pending, self._pending = self._pending, None
         if pending is not None and self.wanted():
             self._start(pending)
         current = self._current_request()
-        return not isinstance(current, str) and current.key == ticket[2]
+        return not isinstance(current, str) and current.key == ticket[1]
 
     def _done(self, ticket, checks) -> None:
-        if ticket[0] != self._serial:
-            return
         if self._finish(ticket):
             self.error.setVisible(False)
-            self._show(ticket[2], checks)
+            self._show(ticket[1], checks)
         self._set_status()
 
-    def _failed(self, ticket, message: str) -> None:
-        if ticket[0] != self._serial:
-            return
+    def _failed(self, ticket, failure: JobFailure) -> None:
         if self._finish(ticket):
-            self._show(ticket[2], None)
-            self.error.setText(message)
+            self._show(ticket[1], None)
+            self.error.setText(failure.line)
             self.error.setVisible(True)
-            self.state.message.emit(message)
+            self.state.message.emit(failure.line)
         self._set_status()
 
     def _set_status(self) -> None:

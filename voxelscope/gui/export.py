@@ -23,13 +23,9 @@ from PySide6.QtCore import (
     QBuffer,
     QByteArray,
     QIODevice,
-    QObject,
     QPoint,
     QRect,
     QSize,
-    QThread,
-    Signal,
-    Slot,
 )
 from PySide6.QtGui import QAction, QColor, QImage, QPainter, QRegion
 from PySide6.QtWidgets import (
@@ -46,12 +42,12 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.core.atomic import write_bytes, write_text
-from voxelscope.core.errors import InputError, VoxelscopeError
+from voxelscope.core.errors import InputError, OutputExistsError, VoxelscopeError
+from voxelscope.gui.workers import BackgroundJob
 
 __all__ = [
     "PARTS",
     "ExportDialog",
-    "ReportJob",
     "export_png",
     "export_signal_figure",
     "export_svg",
@@ -293,55 +289,6 @@ def ask_export(window) -> Path | None:
 # ---------------------------------------------------------------------------- report
 
 
-class _ReportWorker(QObject):
-    done = Signal(object)
-    failed = Signal(str)
-
-    def __init__(self, kwargs: dict) -> None:
-        super().__init__()
-        self.kwargs = kwargs
-
-    @Slot()
-    def run(self) -> None:
-        try:
-            result = _write_any(self.kwargs)
-        except VoxelscopeError as err:
-            self.failed.emit(str(err))
-        except Exception as err:  # never let a worker take the window down
-            self.failed.emit(
-                f"{self.kwargs.get('out_dir')}: the report could not be written "
-                f"({type(err).__name__}: {' '.join(str(err).split())[:160]})"
-            )
-        else:
-            self.done.emit(result)
-
-
-class ReportJob(QObject):
-    """One report on a worker thread: ``done(ReportResult)`` or ``failed(text)``."""
-
-    done = Signal(object)
-    failed = Signal(str)
-    finished = Signal()
-
-    def __init__(self, parent: QObject | None = None, **kwargs) -> None:
-        super().__init__(parent)
-        self.thread = QThread()
-        self.worker = _ReportWorker(kwargs)
-        self.worker.moveToThread(self.thread)
-        self.thread.started.connect(self.worker.run)
-        self.worker.done.connect(self.done)
-        self.worker.failed.connect(self.failed)
-        self.worker.done.connect(self.thread.quit)
-        self.worker.failed.connect(self.thread.quit)
-        self.thread.finished.connect(self.finished)
-
-    def start(self) -> None:
-        self.thread.start()
-
-    def wait(self, ms: int = 120000) -> bool:
-        return self.thread.wait(ms)
-
-
 def _write_any(kwargs: dict):
     """The one-run report, or with several runs open the several-run report."""
     if "runs" in kwargs:
@@ -385,10 +332,6 @@ def _runs_report_kwargs(window, out_dir, what: str, force: bool) -> dict:
     else:
         kwargs["mm"] = tuple(float(v) for v in state.run.voxel_to_mm(tuple(state.voxel)))
     return kwargs
-
-
-def _exists_error(message: str) -> bool:
-    return "already exists" in message
 
 
 def _report_kwargs(window, out_dir, what: str, force: bool) -> dict:
@@ -438,8 +381,8 @@ def write_window_report(
     question on screen; offscreen nothing is overwritten and the status bar says why); a
     yes writes again with ``force=True``.
 
-    Returns the :class:`ReportJob` when ``background`` (its ``done`` carries the
-    ReportResult), else the ReportResult or None on failure.
+    Returns the :class:`~voxelscope.gui.workers.BackgroundJob` when ``background`` (its
+    ``done`` carries the ReportResult), else the ReportResult or None on failure.
     """
     if confirm is None:
         confirm = lambda msg: _confirm_overwrite(window, msg)  # noqa: E731
@@ -455,8 +398,9 @@ def write_window_report(
         window.statusBar().showMessage(f"Wrote the report {html}{more}", 15000)
         window.last_report = result
 
-    def failed(message: str):
-        if not kwargs["force"] and _exists_error(message) and confirm(message):
+    def failed(error: BaseException, message: str):
+        exists = isinstance(error, OutputExistsError)
+        if not kwargs["force"] and exists and confirm(message):
             return write_window_report(window, out_dir, what, True, background, confirm)
         window.show_error(message)
         return None
@@ -465,13 +409,17 @@ def write_window_report(
         try:
             result = _write_any(kwargs)
         except VoxelscopeError as err:
-            return failed(str(err))
+            return failed(err, str(err))
         finished_ok(result)
         return result
-    job = ReportJob(window, **kwargs)
+
+    def work(_progress):
+        return _write_any(kwargs)
+
+    job = BackgroundJob(work, f"the report into {out_dir}", parent=window)
     window.report_job = job
     job.done.connect(finished_ok)
-    job.failed.connect(failed)
+    job.failed.connect(lambda f: failed(f.error, f.line))
 
     def cleanup() -> None:
         job.wait()

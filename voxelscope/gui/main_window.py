@@ -52,7 +52,7 @@ from voxelscope.gui.session_io import install_lab_kit
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
 from voxelscope.gui.state import ViewerState
-from voxelscope.gui.workers import OpenRunJob
+from voxelscope.gui.workers import OpenRunJob, stop_jobs
 
 __all__ = ["ORGANISATION", "MainWindow"]
 
@@ -655,33 +655,19 @@ class MainWindow(QMainWindow):
     def shutdown(self, timeout_ms: int = 10000) -> None:
         """Stop every background job of the window and wait for its thread (on close).
 
-        The live map's timer, the map, comparison and explanation jobs, the Checks pool,
-        a run being opened and a report being written: each is cancelled, cut off from the
-        window (no late result reaches a deleted part) and waited for, so no thread
-        outlives the window.
+        The live map's timer, then every job the window or one of its parts owns (the
+        map, comparison and explanation jobs, the Checks, a run being opened, a report
+        being written): each is cancelled, cut off from the window (no late result
+        reaches a deleted part) and waited for, so no thread outlives the window.
         """
-        from voxelscope.gui.checks_panel import stop_checks
-        from voxelscope.gui.mapjobs import disconnect_all, stop_jobs
-
         live = getattr(self, "live_map", None)
         if live is not None:
             live.cancel()
-        for name in ("job", "report_job"):
-            job = getattr(self, name, None)
-            if job is None:
-                continue
-            cancel = getattr(job, "cancel", None)
-            if cancel is not None:
-                cancel()
-            signals = [getattr(job, n, None) for n in ("progress", "done", "failed", "finished")]
-            disconnect_all(*[sig for sig in signals if sig is not None])
-            job.thread.quit()
-            job.wait(timeout_ms)
-            setattr(self, name, None)
+        stop_jobs(self, timeout_ms)
+        self.job = None
+        self.report_job = None
         self.progress.setVisible(False)
         self.cancel_button.setVisible(False)
-        stop_jobs(self, timeout_ms)
-        stop_checks(timeout_ms)
         if live is not None:
             live.job = None
             live.cancel()

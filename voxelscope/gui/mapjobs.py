@@ -22,58 +22,45 @@ Overlay sources (:data:`SOURCES`):
 ``"disagreement"`` where our map and an outside map differ beyond a tolerance (provided
                    by the Agreement part, :mod:`voxelscope.gui.agreement_panel`).
 
-:class:`BackgroundJob` is the small worker used here and by the Agreement part: a function
-``fn(progress)`` run on a QThread with ``progress``, ``done``, ``failed`` and
-``cancelled`` signals. :func:`wait_for_jobs` lets the window finish or stop them before a
-screenshot or when it closes.
+The jobs run through the window's one job class,
+:class:`voxelscope.gui.workers.BackgroundJob`.
 """
 
 from __future__ import annotations
 
-import atexit
-import threading
 import time
-import warnings
 from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from PySide6.QtCore import (
-    QCoreApplication,
-    QElapsedTimer,
-    QObject,
-    Qt,
-    QThread,
-    QTimer,
-    Signal,
-    Slot,
-)
+from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, Qt, QTimer, Signal
 
-from voxelscope.core.cache import Cancelled
-from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.maps import MapResult, compute_map, kernel_difference
 from voxelscope.core.model import ModelSettings
 from voxelscope.gui.loading import Layer
 from voxelscope.gui.state import ViewerState
+from voxelscope.gui.workers import (
+    BackgroundJob,
+    JobFailure,
+    stop_all_at_exit,
+    stop_jobs,
+    wait_for_jobs,
+)
 
 __all__ = [
     "MAP_STATS",
     "SOURCES",
-    "BackgroundJob",
     "LiveLayer",
     "LiveMap",
     "MapOutcome",
     "MapRequest",
     "compute_request",
     "default_kernel",
-    "disconnect_all",
     "install_map_parts",
     "other_kernel",
     "preview_stat",
-    "stop_jobs",
-    "wait_for_jobs",
 ]
 
 #: Overlay sources, with the words the Map part shows for them.
@@ -96,8 +83,6 @@ CACHE_SIZE = 6
 #: Runs with at least this many voxels in the mask get a preview (the planes on screen)
 #: first.
 PREVIEW_MIN_VOXELS = 150_000
-
-_JOBS: set[BackgroundJob] = set()
 
 
 def default_kernel(kernels, wanted: str | None = None) -> str | None:
@@ -271,209 +256,6 @@ def preview_stat(
         progress=progress, stats=request.stats,
     )  # fmt: skip
     return np.asarray(m.stat(request.stat), dtype=np.float32)
-
-
-# ----------------------------------------------------------------------------- worker
-
-
-class _Worker(QObject):
-    progress = Signal(float)
-    partial = Signal(object)
-    done = Signal(object)
-    failed = Signal(str)
-    cancelled = Signal()
-
-    def __init__(
-        self, fn: Callable, cancel: threading.Event, what: str, partial: bool = False
-    ) -> None:
-        super().__init__()
-        self.fn = fn
-        self.cancel = cancel
-        self.what = what
-        self.with_partial = partial
-
-    def _partial(self, value: object) -> None:
-        if not self.cancel.is_set():
-            self.partial.emit(value)
-
-    def _progress(self, fraction: float) -> bool:
-        self.progress.emit(float(fraction))
-        return not self.cancel.is_set()
-
-    @Slot()
-    def run(self) -> None:
-        try:
-            if self.with_partial:
-                out = self.fn(self._progress, self._partial)
-            else:
-                out = self.fn(self._progress)
-        except Cancelled:
-            self.cancelled.emit()
-        except VoxelscopeError as err:
-            self.failed.emit(str(err))
-        except MemoryError:
-            self.failed.emit(f"{self.what}: not enough memory")
-        except Exception as err:  # never let a worker take the window down
-            self.failed.emit(
-                f"{self.what} failed ({type(err).__name__}: {' '.join(str(err).split())[:160]})"
-            )
-        else:
-            if self.cancel.is_set():
-                self.cancelled.emit()
-            else:
-                self.done.emit(out)
-
-
-class BackgroundJob(QObject):
-    """Run ``fn(progress)`` on a worker thread; ``done(result)``, ``failed(line)`` or
-    ``cancelled()`` follows, then ``finished()``.
-
-    ``progress(fraction)`` returns False after :meth:`cancel`, which makes the core
-    functions stop at their next step. With ``partial=True`` the function is called as
-    ``fn(progress, partial)``; ``partial(value)`` sends an intermediate result (a preview)
-    to the GUI thread as the ``partial`` signal.
-    """
-
-    progress = Signal(float)
-    partial = Signal(object)
-    done = Signal(object)
-    failed = Signal(str)
-    cancelled = Signal()
-    finished = Signal()
-
-    def __init__(
-        self,
-        fn: Callable,
-        what: str = "the job",
-        parent: QObject | None = None,
-        owner: QObject | None = None,
-        partial: bool = False,
-    ):
-        super().__init__(parent)
-        self.owner = owner
-        self._cancel = threading.Event()
-        self.thread = QThread()
-        self.worker = _Worker(fn, self._cancel, what, partial)
-        self.worker.moveToThread(self.thread)
-        self.thread.started.connect(self.worker.run)
-        self.worker.progress.connect(self.progress)
-        self.worker.partial.connect(self.partial)
-        self.worker.done.connect(self.done)
-        self.worker.failed.connect(self.failed)
-        self.worker.cancelled.connect(self.cancelled)
-        for sig in (self.worker.done, self.worker.failed, self.worker.cancelled):
-            # direct: the thread ends as soon as the work does, even while the GUI thread
-            # is blocked waiting for it (a queued quit would wait for the GUI's event loop)
-            sig.connect(self.thread.quit, Qt.ConnectionType.DirectConnection)
-        self.thread.finished.connect(self._finished)
-        self._running = False
-        if owner is not None:
-            # the owner going away must not receive late results (its C++ side is gone)
-            owner.destroyed.connect(self.detach)
-
-    def start(self) -> None:
-        _JOBS.add(self)
-        self._running = True
-        self.thread.start()
-
-    def cancel(self) -> None:
-        self._cancel.set()
-
-    @property
-    def is_cancelled(self) -> bool:
-        return self._cancel.is_set()
-
-    def is_running(self) -> bool:
-        return self._running
-
-    def wait(self, ms: int = 60000) -> bool:
-        return self.thread.wait(ms)
-
-    def detach(self, *_args) -> None:
-        """Cancel and drop every connection to the outside (the job runs out on its own)."""
-        self._cancel.set()
-        disconnect_all(
-            self.progress, self.partial, self.done, self.failed, self.cancelled, self.finished
-        )
-
-    def stop(self, timeout_ms: int = 10000) -> bool:
-        """Detach, then wait for the worker thread to end; True when it has."""
-        self.detach()
-        self.thread.quit()  # ends the thread's event loop once the work returns
-        ok = self.thread.wait(int(timeout_ms))
-        if ok:
-            self._running = False
-            _JOBS.discard(self)
-        return ok
-
-    def _finished(self) -> None:
-        self._running = False
-        _JOBS.discard(self)
-        self.finished.emit()
-
-
-def disconnect_all(*signals) -> None:
-    """Disconnect every slot of each signal (quietly when none is connected)."""
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        for sig in signals:
-            try:
-                sig.disconnect()
-            except (RuntimeError, TypeError):
-                pass
-
-
-def _owned_by(obj: QObject | None, root: QObject) -> bool:
-    """Whether ``obj`` is ``root`` or one of its descendants."""
-    while obj is not None:
-        if obj is root:
-            return True
-        try:
-            obj = obj.parent()
-        except RuntimeError:  # C++ side already deleted
-            return False
-    return False
-
-
-def stop_jobs(root: QObject | None = None, timeout_ms: int = 10000) -> bool:
-    """Stop the background jobs owned by ``root`` (all jobs when None) and wait for them.
-
-    Their results are dropped (nothing is delivered to their owners). Returns True when
-    every stopped job's thread has ended.
-    """
-    ok = True
-    for job in list(_JOBS):
-        if root is None or _owned_by(job.owner, root):
-            ok &= job.stop(timeout_ms)
-    return ok
-
-
-def _stop_all_at_exit() -> None:
-    # a QThread destroyed while running aborts the process with a warning
-    stop_jobs(None, 5000)
-
-
-atexit.register(_stop_all_at_exit)
-
-
-def wait_for_jobs(timeout_ms: int = 20000, cancel: bool = False) -> bool:
-    """Let running background jobs finish (or cancel them), delivering their results.
-
-    Returns True when none is left running.
-    """
-    clock = QElapsedTimer()
-    clock.start()
-    app = QCoreApplication.instance()
-    while _JOBS and clock.elapsed() < timeout_ms:
-        for job in list(_JOBS):
-            if cancel:
-                job.cancel()
-            job.wait(20)
-        if app is not None:
-            app.processEvents()
-    if app is not None:
-        app.processEvents()
-    return not _JOBS
 
 
 # ----------------------------------------------------------------------------- live map
@@ -769,10 +551,10 @@ class LiveMap(QObject):
         self.previews_shown += 1
         self.shown.emit(layer)
 
-    def _failed(self, line: str) -> None:
+    def _failed(self, failure: JobFailure) -> None:
         self._changed_at = None
-        self.failed.emit(line)
-        self.state.message.emit(line)
+        self.failed.emit(failure.line)
+        self.state.message.emit(failure.line)
 
     def _remember(self, m: MapResult) -> None:
         stats = tuple(s for s in ("t", "beta", "variance", "z", "p") if getattr(m, s) is not None)
@@ -920,4 +702,4 @@ def install_map_parts(window) -> None:
         hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
     app = QCoreApplication.instance()
     if app is not None:
-        app.aboutToQuit.connect(_stop_all_at_exit)
+        app.aboutToQuit.connect(stop_all_at_exit)
