@@ -509,3 +509,21 @@ def test_onset_unit_volumes_and_condition_column(tmp_path, capsys):
     assert main([*base, "--onset-unit", "volumes", "--condition-column", "hand"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["fits"][0]["columns"][:2] == ["L", "R"]
+
+
+def test_highpass_shorter_than_the_task_cycle_warns(tmp_path, capsys):
+    """Issue 17 item 10: --highpass below the design's on/off cycle (tone every 48 s in
+    tests/cli/runs.py; the 135 s run's nearest periodogram bin is 45 s) is one warning
+    line with the numbers; the default 128 s is quiet."""
+    rng = np.random.default_rng(2)
+    path, _events, _ = _write_run(tmp_path, rng)
+    assert main(["fit", str(path), "--voxel", "1", "1", "1", "--highpass", "10"]) == 0
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if "on/off cycle" in ln]
+    assert len(lines) == 1
+    assert "cut-off 10 s is shorter than the task's on/off cycle (about 45 s, tone)" in lines[0]
+    assert main(["fit", str(path), "--voxel", "1", "1", "1"]) == 0
+    assert "on/off cycle" not in capsys.readouterr().err
+    out = tmp_path / "t.nii"
+    assert main(["map", str(path), "--highpass", "10", "--out", str(out)]) == 0
+    assert "on/off cycle" in capsys.readouterr().err

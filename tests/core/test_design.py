@@ -22,7 +22,14 @@ from numpy.testing import assert_allclose
 from scipy import stats
 
 from voxelscope.core.confounds import Confounds
-from voxelscope.core.design import build_design, dct_drift, frame_times
+from voxelscope.core.design import (
+    boxcar_regressor,
+    build_design,
+    dct_drift,
+    frame_times,
+    task_cycle,
+    task_cycle_warning,
+)
 from voxelscope.core.errors import InputError, ModelError
 from voxelscope.core.events import Condition, check_events_in_run, shift_conditions
 from voxelscope.core.glm import prepare
@@ -495,3 +502,59 @@ def test_modulators_recovered_on_simulated_data(main, slope):
             assert abs(f.t) < 3.5
         else:
             assert f.t > 5
+
+
+# ------------------------------------------------ high-pass shorter than the task's cycle
+
+
+def _blocks(cycle_s: float, n_cycles: int, name: str = "tap") -> Condition:
+    return Condition(name, [cycle_s * k for k in range(n_cycles)], [cycle_s / 2] * n_cycles)
+
+
+@pytest.mark.parametrize("cycle_s", [30.0, 40.0, 60.0])
+def test_task_cycle_is_the_periodogram_peak(cycle_s):
+    """The dominant period equals scipy.signal.periodogram's peak (outside reference)."""
+    from scipy import signal
+
+    tr, n = 2.0, int(8 * cycle_s / 2.0)
+    x = boxcar_regressor(_blocks(cycle_s, 8), frame_times(n, tr), tr)
+    f, p = signal.periodogram(x - x.mean(), fs=1.0 / tr)
+    assert task_cycle(x, tr) == pytest.approx(1.0 / f[1 + np.argmax(p[1:])])
+    assert task_cycle(x, tr) == pytest.approx(cycle_s)
+
+
+def test_highpass_below_the_cycle_warns_with_the_share_removed():
+    """The share removed equals statsmodels' uncentred R² of the centred boxcar on the
+    DCT drift columns (OLS without a constant: statsmodels reports the uncentred R²)."""
+    import statsmodels.api as sm
+
+    tr, n = 2.0, 160
+    cond = _blocks(40.0, 8)
+    line = task_cycle_warning([cond], n, tr, 16.0)
+    assert line is not None and "\n" not in line
+    x = boxcar_regressor(cond, frame_times(n, tr), tr)
+    r2 = sm.OLS(x - x.mean(), dct_drift(n, tr, 16.0)).fit().rsquared
+    assert f"removes {100 * r2:.0f}% of tap's variation" in line
+    assert "cut-off 16 s" in line and "about 40 s" in line and "e.g. 80 s" in line
+    # above the cycle, or no high-pass: quiet
+    assert task_cycle_warning([cond], n, tr, 128.0) is None
+    assert task_cycle_warning([cond], n, tr, None) is None
+
+
+def test_random_event_design_with_the_default_highpass_is_quiet():
+    """Event-related designs have no strong cycle: the default 128 s never warns."""
+    rng = np.random.default_rng(4)
+    for _ in range(20):
+        onsets = np.sort(rng.uniform(0, 580, 40))
+        c = [Condition("a", onsets[::2], [1.0] * 20), Condition("b", onsets[1::2], [1.0] * 20)]
+        assert task_cycle_warning(c, 300, 2.0, 128.0) is None
+
+
+def test_the_warning_reaches_every_kernels_design_once():
+    cond = _blocks(40.0, 8)
+    a = Analysis([cond], n_volumes=160, tr=2.0)
+    warnings = a.design_warnings(
+        ModelSettings(kernels=("boxcar", "double-gamma", "fir"), highpass_s=16.0)
+    )
+    assert sum("shorter than the task's on/off cycle" in w for w in warnings) == 1
+    assert not any("on/off cycle" in w for w in a.design_warnings(ModelSettings()))

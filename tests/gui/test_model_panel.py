@@ -181,3 +181,20 @@ def test_onsets_in_volumes_from_the_window(window, ras_run, qtbot):
     np.testing.assert_allclose(st.analysis.conditions[0].durations, [8.0, 8.0, 8.0])
     box.volumes.setChecked(False)
     np.testing.assert_allclose(st.analysis.conditions[0].onsets, [2, 22, 42])
+
+
+def test_highpass_below_the_task_cycle_is_said_in_model(window, ras_run, qtbot):
+    """Issue 17 item 10: a cut-off shorter than the 40 s on/off cycle is one line in Model
+    (the core's own line, with the numbers), and it goes away above the cycle."""
+    st = _open(window, ras_run)
+    note = window.model_panel.highpass_note
+    assert note.isHidden()
+    window.model_panel.highpass.setValue(10.0)
+    assert st.settings.highpass_s == 10.0
+    text = note.text()
+    assert not note.isHidden()
+    assert "cut-off 10 s is shorter than the task's on/off cycle (about 40 s" in text
+    assert text[1:] == st.analysis.highpass_warning(st.settings)[1:] + "."
+    assert any("on/off cycle" in w for w in st.fits.warnings)  # Fits' notes too
+    window.model_panel.highpass.setValue(128.0)
+    assert note.isHidden() and note.text() == ""

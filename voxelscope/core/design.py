@@ -75,6 +75,8 @@ __all__ = [
     "dct_drift",
     "frame_times",
     "stimulus_regressor",
+    "task_cycle",
+    "task_cycle_warning",
 ]
 
 #: Length given to a zero-duration event under the boxcar kernel (s): the area of the
@@ -161,6 +163,93 @@ def dct_drift(n_volumes: int, tr: float, cutoff_s: float | None) -> np.ndarray:
     n = np.arange(n_volumes)[:, None]
     k = np.arange(1, k_max + 1)[None, :]
     return np.cos(np.pi * k * (2 * n + 1) / (2 * n_volumes))
+
+
+#: A cycle must fit this many times in the run to count as the task's on/off cycle.
+CYCLE_MIN_REPEATS = 3
+#: The high-pass warning needs the filter to remove at least this share of a condition's
+#: variation (a cut-off a little below a weak cycle removes little).
+CYCLE_MIN_LOSS = 0.25
+
+
+def task_cycle(x: np.ndarray, tr: float) -> float | None:
+    """The dominant period (s) of a regressor: the periodogram's peak among the periods
+    that fit at least :data:`CYCLE_MIN_REPEATS` times in the run; None when it is flat.
+
+    numpy's real FFT of the demeaned regressor (a periodogram up to a constant).
+
+    >>> t = np.arange(120) * 2.0
+    >>> task_cycle(((t % 40) < 20).astype(float), 2.0)
+    40.0
+    """
+    x = np.asarray(x, dtype=float).reshape(-1)
+    n = x.size
+    if n < 2 * CYCLE_MIN_REPEATS:
+        return None
+    power = np.abs(np.fft.rfft(x - x.mean())) ** 2
+    freq = np.fft.rfftfreq(n, tr)
+    ok = freq * n * tr >= CYCLE_MIN_REPEATS - 1e-9
+    if not ok.any() or not power[ok].max() > 0:
+        return None
+    i = int(np.flatnonzero(ok)[np.argmax(power[ok])])
+    return float(1.0 / freq[i])
+
+
+def task_cycle_warning(
+    conditions: Sequence[Condition],
+    n_volumes: int,
+    tr: float,
+    highpass_s: float | None,
+    reference_time_s: float = 0.0,
+) -> str | None:
+    """One line when the high-pass cut-off is shorter than the task's on/off cycle.
+
+    The DCT drift basis with cut-off ``C`` removes every period longer than ``C`` (common
+    practice: a cut-off below the task's cycle removes the effect with the drift). Each
+    condition's boxcar (the kernel does not move the cycle) gives its dominant period
+    (:func:`task_cycle`) and the share of its variation the drift columns remove; the line
+    names the longest cycle the cut-off falls below, when that condition loses at least
+    :data:`CYCLE_MIN_LOSS` of its variation.
+
+    >>> from voxelscope.core.events import Condition
+    >>> c = [Condition("tap", [40.0 * k for k in range(7)], [20.0] * 7)]
+    >>> task_cycle_warning(c, 140, 2.0, 128.0) is None
+    True
+    >>> print(task_cycle_warning(c, 140, 2.0, 10.0))  # doctest: +NORMALIZE_WHITESPACE
+    the high-pass cut-off 10 s is shorter than the task's on/off cycle (about 40 s, tap):
+    the drift filter removes 92% of tap's variation and with it the effect; use a
+    cut-off above 40 s (e.g. 80 s) or none
+    """
+    if highpass_s is None or not conditions or n_volumes < 2 * CYCLE_MIN_REPEATS:
+        return None
+    times = frame_times(n_volumes, tr, reference_time_s)
+    drift = dct_drift(n_volumes, tr, highpass_s)
+    if drift.shape[1] == 0:
+        return None
+    q, _ = np.linalg.qr(drift)
+    worst: tuple[float, float, str] | None = None
+    for cond in conditions:
+        x = boxcar_regressor(cond, times, tr)
+        x = x - x.mean()
+        total = float(x @ x)
+        if not total > 0:
+            continue
+        period = task_cycle(x, tr)
+        if period is None or not highpass_s < period:
+            continue
+        z = q.T @ x
+        loss = float(z @ z) / total
+        if loss >= CYCLE_MIN_LOSS and (worst is None or period > worst[0]):
+            worst = (period, loss, cond.name)
+    if worst is None:
+        return None
+    period, loss, name = worst
+    return (
+        f"the high-pass cut-off {highpass_s:g} s is shorter than the task's on/off cycle "
+        f"(about {period:.0f} s, {name}): the drift filter removes {100 * loss:.0f}% of "
+        f"{name}'s variation and with it the effect; use a cut-off above {period:.0f} s "
+        f"(e.g. {math.ceil(2 * period):d} s) or none"
+    )
 
 
 def _fine_stimulus(
@@ -400,6 +489,9 @@ def build_design(
             )
         highpass_s = None
     drift = dct_drift(n_volumes, tr, highpass_s)
+    cycle = task_cycle_warning(conditions, n_volumes, tr, highpass_s, reference_time_s)
+    if cycle is not None:
+        warnings.append(cycle)
     for j in range(drift.shape[1]):
         cols.append(drift[:, j])
         names.append(f"drift_{j + 1}")

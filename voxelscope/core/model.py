@@ -26,7 +26,7 @@ import numpy as np
 
 from .confounds import Confounds
 from .design import DesignMatrix, build_design
-from .errors import InputError
+from .errors import InputError, VoxelscopeError
 from .events import Condition, EventsFile, events_sanity, shift_conditions
 from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, parse_contrast, prepare
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
@@ -591,6 +591,36 @@ class Analysis:
                 )
         warnings = self.design_warnings(settings) + warnings
         return VoxelFits(y, tuple(fits), tuple(warnings))
+
+    def highpass_warning(self, settings: ModelSettings) -> str | None:
+        """The line saying the high-pass cut-off is shorter than the task's on/off cycle
+        (:func:`voxelscope.core.design.task_cycle_warning`), or None; the same line is
+        among :meth:`design_warnings` (the window's Model shows it beside the cut-off).
+
+        >>> from voxelscope.core.events import Condition
+        >>> a = Analysis([Condition("tap", [40.0 * k for k in range(7)], [20.0] * 7)], 140, 2.0)
+        >>> a.highpass_warning(ModelSettings()) is None
+        True
+        >>> a.highpass_warning(ModelSettings(highpass_s=10.0))[:36]
+        'the high-pass cut-off 10 s is shorte'
+        """
+        from .design import task_cycle_warning
+
+        line = task_cycle_warning(
+            shift_conditions(self.conditions, settings.onset_shift_s),
+            self.n_volumes,
+            self.tr,
+            settings.highpass_s,
+            self.reference_time_s,
+        )
+        if line is None:
+            return None
+        try:
+            kernels = settings.kernels or ("boxcar",)
+            d = self.design(kernels[0], settings)
+        except VoxelscopeError:
+            return line
+        return line if line in d.warnings else None
 
     def design_warnings(self, settings: ModelSettings) -> list[str]:
         """Warnings about the designs of these settings (drift from the confounds table, a

@@ -224,6 +224,13 @@ class ModelPanel(QWidget):
         hp_row.addWidget(self.highpass, 1)
         hp_row.addWidget(self.highpass_none)
         form.addRow("High-pass", hp_row)
+        # the cut-off below the task's on/off cycle removes the effect: said right here
+        self.highpass_note = QLabel("")
+        self.highpass_note.setObjectName("highpass_note")
+        self.highpass_note.setWordWrap(True)
+        self.highpass_note.setTextFormat(Qt.TextFormat.PlainText)
+        self.highpass_note.setVisible(False)
+        form.addRow(self.highpass_note)
         self.shift = QDoubleSpinBox()
         self.shift.setRange(-20.0, 20.0)
         self.shift.setSingleStep(0.25)
@@ -408,6 +415,7 @@ class ModelPanel(QWidget):
             if s.censor_fd_mm is not None:
                 self.censor.setValue(float(s.censor_fd_mm))
             self.left_out.setText(self._left_out_text(s))
+            self._show_highpass_note(s)
             if (
                 self.contrast.text().strip() != (s.contrast or "")
                 and not self.state.contrast_problem
@@ -417,6 +425,20 @@ class ModelPanel(QWidget):
         finally:
             for w in widgets:
                 w.blockSignals(False)
+
+    def _show_highpass_note(self, s) -> None:
+        """The core's line when the high-pass cut-off is below the task's on/off cycle."""
+        analysis = self.state.analysis
+        line = None
+        if analysis is not None:
+            try:
+                line = analysis.highpass_warning(s)
+            except VoxelscopeError:
+                line = None
+        text = "" if line is None else line[:1].upper() + line[1:] + "."
+        self.highpass_note.setText(text)
+        self.highpass_note.setToolTip(text)
+        self.highpass_note.setVisible(bool(text))
 
     def _contrast_names(self, s) -> list[str]:
         """Names a contrast can use: the conditions and the model's modulator columns."""
