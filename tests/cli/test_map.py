@@ -174,3 +174,29 @@ def test_map_path_never_imports_qt(tmp_path):
     proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert out.exists()
+
+
+def test_explain_rounds_say_what_they_build_on():
+    """Issue 17 item 10: a label repeated in the second round is introduced as built on the
+    first round's kept change."""
+    from types import SimpleNamespace
+
+    from voxelscope.cli.map import explain_lines
+    from voxelscope.core.agreement import Alternative
+    from voxelscope.core.model import ModelSettings
+
+    s = ModelSettings()
+    kept = "onsets are shifted by +1.25 s"
+    alts = (
+        Alternative("as given", "as given", "gamma", s, 0.5, 1.0),
+        Alternative("shift", kept, "gamma", s, 0.8, 1.0, 1),
+        Alternative("kernel", "the boxcar kernel is used", "boxcar", s, 0.6, 1.0, 1),
+        Alternative("kernel", "the boxcar kernel is used", "boxcar", s, 0.9, 1.0, 2, (kept,)),
+    )
+    lines = explain_lines(SimpleNamespace(alternatives=alts))
+    assert lines[0] == "our map as given:"
+    assert lines[2] == "round 1: one change at a time:"
+    assert lines[5] == (
+        f"round 2: keeping the best change so far (when {kept}), one more change on top:"
+    )
+    assert lines[6].endswith("the boxcar kernel is used") and len(lines) == 7

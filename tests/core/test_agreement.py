@@ -150,3 +150,10 @@ def test_explain_finds_two_causes_together():
     assert ex.best.settings.confound_columns == ()
     assert ex.best.r == pytest.approx(1.0, abs=1e-6)
     assert "confound columns are left out" in ex.statement and "+1.25 s" in ex.statement
+    # the second round says what it builds on: the first round's kept change
+    first = [alt for alt in ex.alternatives if alt.round == 1]
+    second = [alt for alt in ex.alternatives if alt.round == 2]
+    assert first and second and ex.alternatives[0].round == 0
+    assert all(alt.builds_on == () for alt in first)
+    kept = max(first, key=lambda a: a.r).label
+    assert all(alt.builds_on == (kept,) for alt in second)

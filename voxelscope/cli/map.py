@@ -240,10 +240,32 @@ def run_map(args: argparse.Namespace) -> int:
                 ours=result,
                 progress=terminal_progress("testing alternatives"),
             )
-            for alt in ex.alternatives:
-                print(f"  r {alt.r:6.3f}  slope {alt.slope:7.3g}  {alt.label}")
+            for line in explain_lines(ex):
+                print(line)
             print(ex.statement)
     return 0
+
+
+def explain_lines(ex) -> list[str]:
+    """The alternatives of ``map --explain``, each round under a heading; a later round
+    says which kept change it builds on, so a repeated label is not read as a repeat."""
+    lines: list[str] = []
+    shown = None
+    for alt in ex.alternatives:
+        if alt.round != shown:
+            shown = alt.round
+            if alt.round == 0:
+                lines.append("our map as given:")
+            elif not alt.builds_on:
+                lines.append(f"round {alt.round}: one change at a time:")
+            else:
+                kept = " and ".join(alt.builds_on)
+                lines.append(
+                    f"round {alt.round}: keeping the best change so far (when {kept}), "
+                    "one more change on top:"
+                )
+        lines.append(f"  r {alt.r:6.3f}  slope {alt.slope:7.3g}  {alt.label}")
+    return lines
 
 
 def _write_clusters(args: argparse.Namespace, data, run, result) -> None:

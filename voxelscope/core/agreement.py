@@ -259,6 +259,8 @@ class Alternative:
     """Our map recomputed under one changed setting, and its agreement with theirs.
 
     ``kind`` is ``"as given"``, ``"kernel"``, ``"shift"``, ``"noise"`` or ``"confounds"``.
+    ``round`` is the search round (0 for the model as given); from round 2 on, each change
+    is made on top of the changes kept before, named in ``builds_on``.
     """
 
     kind: str
@@ -267,6 +269,8 @@ class Alternative:
     settings: ModelSettings
     r: float
     slope: float
+    round: int = 0
+    builds_on: tuple[str, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -433,7 +437,7 @@ def explain(
 
     done = [0]
 
-    def run_plan(plan, total: int) -> Alternative:
+    def run_plan(plan, total: int, round_no: int, builds_on: tuple[str, ...]) -> Alternative:
         kind, label, k, s = plan
         sub = None
         if progress is not None:
@@ -445,7 +449,7 @@ def explain(
         m = compute_map(run, analysis, s, k, mask=mask, progress=sub, stats=(stat,))
         done[0] += 1
         agr = compare_maps(m, theirs, mask=mask, stat=stat)
-        return Alternative(kind, label, k, s, agr.r, agr.slope)
+        return Alternative(kind, label, k, s, agr.r, agr.slope, round_no, builds_on)
 
     def key(a: Alternative) -> float:
         return a.r if math.isfinite(a.r) else -math.inf
@@ -464,8 +468,9 @@ def explain(
     kept: list[Alternative] = []
     current = base
     plans = first
-    for _ in range(max(1, steps)):
-        tried = [run_plan(pl, total) for pl in plans]
+    for round_no in range(1, max(1, steps) + 1):
+        on_top = tuple(a.label for a in kept)
+        tried = [run_plan(pl, total, round_no, on_top) for pl in plans]
         alternatives.extend(tried)
         if not tried:
             break
