@@ -152,7 +152,8 @@ def _make_mni(folder: Path) -> Path:
 def _first_open_rows(folder: Path) -> list[tuple]:
     from wholeprocess import child_env, machine_load, python_cmd, row, side_by_side
 
-    from voxelscope.core.cache import INFLATER_ENV, cache_info
+    from voxelscope.core.cache import cache_info
+    from voxelscope.core.rawfile import INFLATER_ENV
     from voxelscope.core.run import open_run
 
     mni = _make_mni(folder)

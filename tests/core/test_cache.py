@@ -26,16 +26,15 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from voxelscope.core import cache
+from voxelscope.core import cache, rawfile, voxelmajor
 from voxelscope.core.cache import (
-    Cancelled,
     cache_clear,
     cache_info,
     default_cache_dir,
     parse_size,
     terminal_progress,
 )
-from voxelscope.core.errors import InputError
+from voxelscope.core.errors import Cancelled, InputError
 from voxelscope.core.run import open_run
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -165,7 +164,7 @@ def test_outside_voxels_that_vary_are_read_from_the_file(tmp_path):
 def test_first_volumes_unlike_the_rest_still_store_the_whole_mask(tmp_path, monkeypatch):
     """The stored voxels are chosen from the first batch; a brain voxel dark there but
     bright later is still stored (fetched in a second pass), so maps never go to the file."""
-    monkeypatch.setattr(cache, "BATCH_BYTES", 16 * 14 * 12 * 4)  # one volume per batch
+    monkeypatch.setattr(rawfile, "BATCH_BYTES", 16 * 14 * 12 * 4)  # one volume per batch
     data, brain = _phantom((16, 14, 12, 20))
     late = (8, 7, 6)
     assert brain[late]
@@ -193,7 +192,7 @@ def test_second_open_reuses_the_entry(tmp_path):
 
 def test_batched_build_equals_nibabel(tmp_path, monkeypatch):
     """Tiny batches (one volume at a time) give the same array as one big batch."""
-    monkeypatch.setattr(cache, "BATCH_BYTES", 7 * 6 * 5 * 4)
+    monkeypatch.setattr(rawfile, "BATCH_BYTES", 7 * 6 * 5 * 4)
     path = tmp_path / "r.nii.gz"
     _write_gz(path, 3)
     fractions = []
@@ -209,13 +208,13 @@ def test_pure_zlib_inflater_gives_the_same_entry(tmp_path, monkeypatch):
     path = tmp_path / "r.nii.gz"
     _write_gz(path, 31)
     a = open_run(path, cache_dir=tmp_path / "a")
-    monkeypatch.setenv(cache.INFLATER_ENV, "zlib")
-    assert cache._zlib_module() is zlib
+    monkeypatch.setenv(rawfile.INFLATER_ENV, "zlib")
+    assert rawfile._zlib_module() is zlib
     b = open_run(path, cache_dir=tmp_path / "b")
     assert a.cache_path.read_bytes() == b.cache_path.read_bytes()
-    monkeypatch.delenv(cache.INFLATER_ENV)
+    monkeypatch.delenv(rawfile.INFLATER_ENV)
     blob = os.urandom(100_003)
-    assert cache._crc32(blob) == zlib.crc32(blob)
+    assert rawfile.crc32(blob) == zlib.crc32(blob)
 
 
 # --------------------------------------------------------------------------- staleness
@@ -412,7 +411,7 @@ def test_input_bytes_unchanged(tmp_path):
 def test_cancel_midway_leaves_nothing(tmp_path, monkeypatch):
     """progress returning False at half way raises Cancelled and leaves no file; the
     next open builds a correct entry."""
-    monkeypatch.setattr(cache, "BATCH_BYTES", 7 * 6 * 5 * 4 * 2)
+    monkeypatch.setattr(rawfile, "BATCH_BYTES", 7 * 6 * 5 * 4 * 2)
     path = tmp_path / "r.nii.gz"
     _write_gz(path, 7)
 
@@ -429,7 +428,7 @@ def test_cancel_midway_leaves_nothing(tmp_path, monkeypatch):
 
 
 def test_exception_midway_leaves_nothing(tmp_path, monkeypatch):
-    monkeypatch.setattr(cache, "BATCH_BYTES", 7 * 6 * 5 * 4 * 2)
+    monkeypatch.setattr(rawfile, "BATCH_BYTES", 7 * 6 * 5 * 4 * 2)
     path = tmp_path / "r.nii.gz"
     _write_gz(path, 8)
 
@@ -601,9 +600,9 @@ def test_too_little_disk_space_falls_back_to_memory(tmp_path, monkeypatch):
 
 _KILLED_CHILD = """
 import os, signal, sys
-from voxelscope.core import cache
+from voxelscope.core import rawfile
 from voxelscope.core.run import open_run
-cache.BATCH_BYTES = 30 * 28 * 24 * 4  # one volume per batch
+rawfile.BATCH_BYTES = 30 * 28 * 24 * 4  # one volume per batch
 
 def die(fraction):
     if fraction >= 0.5:
@@ -811,8 +810,10 @@ def test_a_click_outside_reads_the_file_once_for_its_neighbourhood(tmp_path, mon
     path = _save(tmp_path / "n.nii.gz", data)
     run = open_run(path, cache_dir=tmp_path / "c")
     passes = []
-    real = cache.read_voxels
-    monkeypatch.setattr(cache, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k))
+    real = voxelmajor.read_voxels
+    monkeypatch.setattr(
+        voxelmajor, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k)
+    )
     np.testing.assert_array_equal(run.timeseries((0, 0, 0)), data[0, 0, 0])
     np.testing.assert_array_equal(run.timeseries((1, 1, 0)), data[1, 1, 0])
     assert len(passes) == 1 and not brain[0, 0, 0] and not brain[1, 1, 0]
@@ -831,8 +832,10 @@ def test_a_given_mask_wider_than_the_cache_is_kept_after_one_rebuild(tmp_path, m
     run.set_mask(wide, source="wide_mask.nii.gz")
     assert sum("given mask" in w for w in run.warnings) == 1
     passes = []
-    real = cache.read_voxels
-    monkeypatch.setattr(cache, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k))
+    real = voxelmajor.read_voxels
+    monkeypatch.setattr(
+        voxelmajor, "read_voxels", lambda *a, **k: passes.append(1) or real(*a, **k)
+    )
     got = {}
     for idx, y in run.iter_blocks(block_voxels=50):
         for n, f in enumerate(idx.tolist()):
@@ -907,8 +910,8 @@ def test_mask_file_given_to_the_loader_is_kept_by_the_first_build(tmp_path, monk
     mask_path = tmp_path / "wide_mask.nii.gz"
     nib.save(nib.Nifti1Image(wide, nib.load(str(path)).affine), str(mask_path))
     builds = []
-    real = cache._build
-    monkeypatch.setattr(cache, "_build", lambda *a, **k: builds.append(1) or real(*a, **k))
+    real = cache.build
+    monkeypatch.setattr(cache, "build", lambda *a, **k: builds.append(1) or real(*a, **k))
     got = load_inputs(
         InputRequest(run=path, mask=mask_path, tr=2.0, use_cache=True, events_required=False)
     )

@@ -28,16 +28,12 @@ from statsmodels.stats.outliers_influence import OLSInfluence, variance_inflatio
 from statsmodels.stats.stattools import durbin_watson
 from statsmodels.tsa.stattools import acf as sm_acf
 
-from voxelscope.core.checks import (
-    CONFOUND_R_LIMIT,
-    EDGE_LIMIT_MM,
-    VoxelChecks,
-    voxel_checks,
-)
+from voxelscope.core.checks import VoxelChecks, voxel_checks
 from voxelscope.core.confounds import Confounds, parse_confounds
 from voxelscope.core.design import dct_drift
 from voxelscope.core.errors import InputError
 from voxelscope.core.events import Condition
+from voxelscope.core.flags import CONFOUND_R_LIMIT, EDGE_LIMIT_MM
 from voxelscope.core.model import Analysis, ModelSettings
 
 TR = 1.25

@@ -15,8 +15,7 @@ import pytest
 
 from tests.core.test_report import demo  # noqa: F401 - the shared fixture
 from voxelscope.core import report as R
-from voxelscope.core.cache import Cancelled
-from voxelscope.core.errors import InputError
+from voxelscope.core.errors import Cancelled, InputError
 from voxelscope.core.marks import Mark, MarkList
 from voxelscope.core.model import ModelSettings
 

@@ -28,7 +28,8 @@ from nibabel.affines import apply_affine
 from nibabel.testing import data_path
 
 from voxelscope.core.errors import InputError
-from voxelscope.core.run import brain_mask, open_run
+from voxelscope.core.mask import brain_mask
+from voxelscope.core.run import open_run
 
 DATA = Path(data_path)
 FUNCTIONAL = DATA / "functional.nii"
@@ -705,10 +706,10 @@ def test_iter_blocks_default_mask_and_bad_masks():
 def test_memmap_blocks_release_pages_and_stay_correct(tmp_path, monkeypatch):
     """Released pages of a mapped run are read back from the file on demand: blocks kept
     from before a release still hold nibabel's values (reference: nibabel get_fdata)."""
-    import voxelscope.core.run as run_mod
+    import voxelscope.core.stores as stores
 
-    monkeypatch.setattr(run_mod, "_RELEASE_COLUMNS", 1)
-    monkeypatch.setattr(run_mod, "_RELEASE_LAG_BLOCKS", 0)
+    monkeypatch.setattr(stores, "RELEASE_COLUMNS", 1)
+    monkeypatch.setattr(stores, "RELEASE_LAG_BLOCKS", 0)
     rng = np.random.default_rng(9)
     data = (500 + rng.standard_normal((30, 20, 12, 15)) * 5).astype(np.float32)
     path = tmp_path / "big.nii"
@@ -737,8 +738,8 @@ def test_cache_keeps_a_superset_of_the_mask(seed, n_blobs, hollow, constant_shar
     encloses along the axes); that choice must contain the run's mask, whose holes are
     filled and components chosen by scipy.ndimage (the outside reference here) on random
     images of bright blobs, hollow ones included, with constant and NaN voxels."""
-    from voxelscope.core.cache import Summary
-    from voxelscope.core.run import _cache_must_keep, _summary_mask
+    from voxelscope.core.mask import cache_must_keep, summary_mask
+    from voxelscope.core.summary import Summary
 
     rng = np.random.default_rng(seed)
     shape = (14, 12, 10)
@@ -754,6 +755,6 @@ def test_cache_keeps_a_superset_of_the_mask(seed, n_blobs, hollow, constant_shar
     constant = rng.random(shape) < constant_share
     nonfinite = rng.random(shape) < 0.02
     s = Summary(mean=mean.astype(np.float32), nonfinite=nonfinite, constant=constant & ~nonfinite)
-    mask, _fallback = _summary_mask(s)
-    keep = _cache_must_keep(s)
+    mask, _fallback = summary_mask(s)
+    keep = cache_must_keep(s)
     assert not (mask & ~keep).any()

@@ -6,7 +6,7 @@ import numpy as np
 from PySide6.QtGui import QImage
 
 import voxelscope
-from voxelscope.core.cache import Cancelled
+from voxelscope.core.errors import Cancelled
 from voxelscope.gui.app import launch
 from voxelscope.gui.workers import OpenRunJob
 

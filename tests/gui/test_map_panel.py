@@ -12,8 +12,7 @@ import time
 import numpy as np
 import pytest
 
-from voxelscope.core.cache import Cancelled
-from voxelscope.core.errors import ModelError
+from voxelscope.core.errors import Cancelled, ModelError
 from voxelscope.core.maps import compute_map, kernel_difference
 from voxelscope.gui import mapjobs
 from voxelscope.gui.mapjobs import LiveLayer, default_kernel

@@ -8,8 +8,7 @@ import logging
 import threading
 import time
 
-from voxelscope.core.cache import Cancelled
-from voxelscope.core.errors import InputError, OutputExistsError
+from voxelscope.core.errors import Cancelled, InputError, OutputExistsError
 from voxelscope.gui import workers
 from voxelscope.gui.workers import BackgroundJob, JobFailure, describe
 

@@ -1,12 +1,14 @@
-"""Voxel-major on-disk cache for compressed runs.
+"""On-disk cache of compressed runs' voxel-major rows: keys, entries, limits, listing.
 
 A ``.nii.gz`` run stores volume after volume, so one voxel's time series is scattered
-through the whole gzip stream: reading it means decompressing everything. On first open
-we therefore decompress the run once, volume batch by volume batch, and keep a
-*voxel-major* copy of the voxels that matter: a float32 array of shape ``(n, T)``, one
-contiguous row per stored voxel. Later opens memory-map it, and a time series is one row.
+through the whole gzip stream. On first open the run is decompressed once into
+voxel-major rows (:func:`voxelscope.core.voxelmajor.build`), written here; later opens
+memory-map them, and a time series is one row. This module decides where the rows live
+and when they may be used; :mod:`voxelscope.core.voxelmajor` builds and serves them,
+:mod:`voxelscope.core.rawfile` reads the run file, :mod:`voxelscope.core.summary` keeps
+the per-voxel facts.
 
-What is stored (:class:`VoxelStore`)
+What is stored (:class:`~voxelscope.core.voxelmajor.VoxelStore`)
     The brain voxels, chosen by the run's own mask rule (the caller passes it in), with a
     generous margin decided from the first batch of volumes; every voxel of the final
     brain mask is stored (a second pass fetches any the margin missed). A voxel outside
@@ -35,7 +37,7 @@ What the cache promises, and how:
   early member is never served stale. Other compressions (bz2, zstd) add a CRC-32 of the
   whole compressed file to the key.
 * **Never wrong.** The metadata carries a SHA-256 of itself and of the summary file; the
-  rows are checked against a CRC-32 per block of about :data:`BLOCK_BYTES`, once per
+  rows are checked against a CRC-32 per block of about ``voxelmajor.BLOCK_BYTES``, once per
   block per process, as the blocks are first read. The rows file is mapped with the
   shape and type recorded in the (protected) metadata, never from a header inside the
   file. A failed check removes the entry and rebuilds it from the run (in memory if the
@@ -70,36 +72,48 @@ import json
 import os
 import shutil
 import socket
-import struct
 import sys
 import tempfile
-import threading
 import time
 import zlib
 from collections.abc import Callable, Iterator
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from voxelscope.core.errors import InputError, VoxelscopeError
+from voxelscope.core.errors import InputError
+from voxelscope.core.rawfile import (
+    ProgressCallback,
+    RawLayout,
+    crc32,
+    is_gzip,
+    open_stream,
+    read_error,
+    report_progress,
+)
+from voxelscope.core.summary import Summary
+from voxelscope.core.voxelmajor import (
+    Allocate,
+    Built,
+    CacheCorrupt,
+    CheckedRows,
+    Select,
+    VoxelStore,
+    block_crcs,
+    block_rows,
+    build,
+)
 
 __all__ = [
     "ANNOUNCE_BYTES",
-    "BATCH_BYTES",
-    "BLOCK_BYTES",
     "DEFAULT_LIMIT_BYTES",
     "LIMIT_ENV",
-    "CacheCorrupt",
     "CacheEntry",
     "CacheInfo",
     "CacheUnavailable",
-    "Cancelled",
-    "RawLayout",
-    "Summary",
-    "VoxelStore",
+    "Opened",
     "cache_clear",
     "cache_info",
     "cache_key",
@@ -107,19 +121,11 @@ __all__ = [
     "default_cache_dir",
     "open_store",
     "parse_size",
-    "read_voxels",
-    "summarize_volumes",
     "terminal_progress",
 ]
 
 #: Format of the cached files; part of the key, so a new format never reads an old file.
 FORMAT_VERSION = 2
-
-#: Target size of one batch of volumes as float32 (the raw batch is at most this big too).
-BATCH_BYTES = 16 * 1024 * 1024
-
-#: Target size of one checksummed block of rows.
-BLOCK_BYTES = 256 * 1024
 
 #: Default limit of the whole cache folder (bytes); ``VOXELSCOPE_CACHE_LIMIT`` overrides it.
 DEFAULT_LIMIT_BYTES = 20 * 10**9
@@ -133,813 +139,15 @@ ANNOUNCE_BYTES = 10**9
 #: Temporary files older than this (seconds) are stale whoever wrote them.
 STALE_TMP_SECONDS = 24 * 3600
 
-#: ``VOXELSCOPE_INFLATER=zlib`` forces the standard library's inflater (the fallback).
-INFLATER_ENV = "VOXELSCOPE_INFLATER"
-
 _PREFIX = "vxs-"
 _TAIL_BYTES = 64
-_READ_BYTES = 1 << 20  # compressed bytes read at a time
-_PIECE = 1 << 20  # decompressed bytes produced at a time
 _HOST = hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
 
-ProgressCallback = Callable[[float], "bool | None"]
 Notify = Callable[[str], None]
-
-
-class Cancelled(VoxelscopeError):
-    """The user cancelled a long operation (the progress callback returned False)."""
 
 
 class CacheUnavailable(InputError):
     """The cache cannot be used for this run (the run itself is fine)."""
-
-
-class CacheCorrupt(VoxelscopeError):
-    """Cached data failed a checksum; the entry must not be used."""
-
-
-# --------------------------------------------------------------------------- inflaters
-
-
-def _zlib_module():
-    """The inflater: ISA-L's zlib-compatible module when installed, else zlib."""
-    if os.environ.get(INFLATER_ENV, "").strip().lower() != "zlib":
-        try:
-            from isal import isal_zlib
-
-            return isal_zlib
-        except ImportError:  # pragma: no cover - isal is a dependency, zlib the fallback
-            pass
-    return zlib
-
-
-def _crc32(data: Any, value: int = 0) -> int:
-    """CRC-32 (the gzip polynomial) of a buffer; ISA-L's when available (same values)."""
-    return int(_zlib_module().crc32(data, value)) & 0xFFFFFFFF
-
-
-@dataclass(frozen=True)
-class RawLayout:
-    """Where and how the voxel data sit in a NIfTI file (from nibabel's array proxy).
-
-    ``shape`` is (X, Y, Z, T); data are Fortran ordered (x fastest), ``dtype`` includes
-    the byte order, and values are ``raw * slope + inter``.
-    """
-
-    path: Path
-    offset: int
-    dtype: np.dtype
-    shape: tuple[int, int, int, int]
-    slope: float
-    inter: float
-    compressed: bool
-
-    @property
-    def volume_bytes(self) -> int:
-        """Bytes of one raw volume."""
-        x, y, z, _ = self.shape
-        return x * y * z * self.dtype.itemsize
-
-    @property
-    def n_voxels(self) -> int:
-        """X*Y*Z."""
-        x, y, z, _ = self.shape
-        return x * y * z
-
-
-def _is_gzip(path: Path) -> bool:
-    with open(path, "rb") as f:
-        return f.read(2) == b"\x1f\x8b"
-
-
-class _GzipStream:
-    """The decompressed bytes of a gzip file, member by member.
-
-    Each member is inflated by a fresh decompressor (``wbits=31``), which checks the
-    member's CRC-32 and length against its trailer; the trailer's offset, CRC-32 and
-    length are recorded in :attr:`members`. Zero padding between or after members is
-    skipped; other bytes after the last member end the stream (and are recorded as
-    :attr:`data_end`).
-    """
-
-    def __init__(self, path: Path):
-        self._lib = _zlib_module()
-        self._f = open(path, "rb", buffering=0)
-        self._fd = self._f.fileno()
-        self._d: Any = None
-        self._buf = b""
-        self._pos = 0  # file offset after the last byte read into _buf
-        self._out = memoryview(b"")
-        self.members: list[tuple[int, int, int]] = []
-        self.done = False
-        self.data_end = 0
-
-    def close(self) -> None:
-        self._f.close()
-
-    def __enter__(self) -> _GzipStream:
-        return self
-
-    def __exit__(self, *exc: Any) -> None:
-        self.close()
-
-    def _more(self) -> bool:
-        data = self._f.read(_READ_BYTES)
-        if data:
-            self._buf = self._buf + data if self._buf else data
-            self._pos += len(data)
-        return bool(data)
-
-    def _produce(self, want: int) -> bytes:
-        while True:
-            if self._d is None:
-                while True:
-                    self._buf = self._buf.lstrip(b"\0")
-                    if len(self._buf) >= 2 or not self._more():
-                        break
-                if len(self._buf) < 2 or self._buf[:2] != b"\x1f\x8b":
-                    if not self.members:
-                        raise OSError("not a gzip stream")
-                    self.done = True
-                    self.data_end = self.members[-1][0]
-                    return b""
-                self._d = self._lib.decompressobj(31)
-            if not self._buf and not self._more():
-                raise EOFError("the compressed stream ends before its end marker")
-            # bounded pieces: the allocator reuses them (no fresh pages for every batch)
-            out = self._d.decompress(self._buf, min(max(want, 1 << 16), _PIECE))
-            if self._d.eof:
-                rest = self._d.unused_data
-                end = self._pos - len(rest)
-                crc, isize = struct.unpack("<II", os.pread(self._fd, 8, end - 8))
-                self.members.append((end, crc, isize))
-                self._buf = rest
-                self._d = None
-            else:
-                self._buf = self._d.unconsumed_tail
-            if out:
-                return out
-
-    def readinto(self, view: Any) -> int:
-        view = memoryview(view).cast("B")
-        n, got = len(view), 0
-        while got < n:
-            if len(self._out):
-                k = min(n - got, len(self._out))
-                view[got : got + k] = self._out[:k]
-                self._out = self._out[k:]
-                got += k
-                continue
-            if self.done:
-                break
-            self._out = memoryview(self._produce(n - got))
-        return got
-
-    def read(self, n: int) -> bytes:
-        buf = bytearray(n)
-        got = self.readinto(buf)
-        return bytes(buf[:got])
-
-    def skip(self, n: int) -> None:
-        while n > 0:
-            got = len(self.read(min(n, 1 << 22)))
-            if not got:
-                raise EOFError("the compressed stream ends inside the header")
-            n -= got
-
-    def drain(self) -> None:
-        """Inflate to the end (every member's CRC and length are checked on the way)."""
-        self._out = memoryview(b"")
-        while not self.done:
-            self._produce(1 << 22)
-
-    def member_table(self) -> np.ndarray:
-        """(n, 3) uint64: end offset, CRC-32 and length of each member."""
-        return np.asarray(self.members, dtype=np.uint64).reshape(-1, 3)
-
-
-class _OtherStream:
-    """bz2 / zstd streams through nibabel's opener (no member table)."""
-
-    def __init__(self, path: Path):
-        from nibabel.openers import ImageOpener
-
-        self._f = ImageOpener(str(path), "rb")
-
-    def close(self) -> None:
-        self._f.close()
-
-    def __enter__(self) -> _OtherStream:
-        return self
-
-    def __exit__(self, *exc: Any) -> None:
-        self.close()
-
-    def readinto(self, view: Any) -> int:
-        return self._f.readinto(view)
-
-    def read(self, n: int) -> bytes:
-        return self._f.read(n)
-
-    def skip(self, n: int) -> None:
-        self._f.seek(n)
-
-    def drain(self) -> None:
-        while self._f.read(1 << 22):
-            pass
-
-
-class _PlainStream(_OtherStream):
-    def __init__(self, path: Path):
-        self._f = open(path, "rb")
-
-
-def _open_stream(layout: RawLayout):
-    if not layout.compressed:
-        return _PlainStream(layout.path)
-    if _is_gzip(layout.path):
-        return _GzipStream(layout.path)
-    return _OtherStream(layout.path)
-
-
-def _read_error(layout: RawLayout, err: BaseException) -> InputError:
-    text = " ".join(str(err).split()) or type(err).__name__
-    return InputError(
-        f"{layout.path}: the voxel data cannot be read ({text[:160]}); the file is "
-        f"truncated or corrupt, re-copy or re-export it"
-    )
-
-
-def _report(progress: ProgressCallback | None, fraction: float, layout: RawLayout) -> None:
-    if progress is not None and progress(float(fraction)) is False:
-        raise Cancelled(f"{layout.path}: opening was cancelled; nothing was kept")
-
-
-def _stream_batches(
-    layout: RawLayout, batch_bytes: int | None = None, progress: ProgressCallback | None = None
-) -> Iterator[tuple[int, int, np.ndarray, Any]]:
-    """Yield ``(t0, t1, v, stream)`` with ``v`` the raw volumes t0..t1 as (B, Z, Y, X).
-
-    A worker thread inflates the next batch (the inflater releases the GIL) while the
-    caller works on this one; ``v`` is only valid until the next batch is asked for. The
-    stream is read to its end after the last batch, so a gzip stream's CRCs are checked.
-    """
-    x, y, z, t = layout.shape
-    n_vox = x * y * z
-    if batch_bytes is None:
-        batch_bytes = BATCH_BYTES
-    batch = int(max(1, min(t, batch_bytes // max(1, n_vox * 4))))
-    starts = list(range(0, t, batch))
-    bufs = [np.empty(batch * layout.volume_bytes, np.uint8) for _ in range(min(2, len(starts)))]
-    try:
-        f = _open_stream(layout)
-    except OSError as err:
-        raise _read_error(layout, err) from None
-
-    def read_batch(n: int) -> memoryview:
-        t0 = starts[n]
-        nbytes = (min(t, t0 + batch) - t0) * layout.volume_bytes
-        view = memoryview(bufs[n % len(bufs)].data)[:nbytes]
-        got = f.readinto(view)
-        if got != nbytes:
-            raise EOFError(f"data end after {t0 + got // layout.volume_bytes} of {t} volumes")
-        if n == len(starts) - 1:
-            f.drain()
-        return view
-
-    with f, ThreadPoolExecutor(max_workers=1) as pool:
-        try:
-            f.skip(layout.offset)
-            pending = pool.submit(read_batch, 0)
-            for n, t0 in enumerate(starts):
-                t1 = min(t, t0 + batch)
-                view = pending.result()
-                if n + 1 < len(starts):
-                    pending = pool.submit(read_batch, n + 1)
-                v = np.frombuffer(view, dtype=layout.dtype).reshape(t1 - t0, z, y, x)
-                yield t0, t1, v, f
-                del v, view
-                _report(progress, t1 / t, layout)
-        except (EOFError, OSError, zlib.error, ValueError) as err:
-            raise _read_error(layout, err) from None
-        except Exception as err:  # the ISA-L inflater's own error type
-            if type(err).__name__ in ("IsalError", "error"):
-                raise _read_error(layout, err) from None
-            raise
-
-
-# --------------------------------------------------------------------------- summary
-
-
-@dataclass
-class Summary:
-    """Per-voxel facts gathered while reading the run once.
-
-    ``mean`` is float32 (X, Y, Z), 0 where a voxel has a non-finite value;
-    ``nonfinite`` marks voxels with a NaN or infinite value in any volume;
-    ``constant`` marks voxels whose value never changes.
-    """
-
-    mean: np.ndarray
-    nonfinite: np.ndarray
-    constant: np.ndarray
-
-
-def _summary(mean_raw, vmin, vmax, layout: RawLayout) -> Summary:
-    """Summary from (Z, Y, X) raw-unit accumulators."""
-    with np.errstate(invalid="ignore", over="ignore"):
-        mean = (mean_raw * layout.slope + layout.inter).transpose(2, 1, 0)
-        nonfinite = ~np.isfinite(mean)
-        constant = (vmax == vmin).transpose(2, 1, 0) & ~nonfinite
-    mean = np.where(nonfinite, 0.0, mean).astype(np.float32)
-    return Summary(
-        mean=np.ascontiguousarray(mean),
-        nonfinite=np.ascontiguousarray(nonfinite),
-        constant=np.ascontiguousarray(constant),
-    )
-
-
-class _Stats:
-    """Running sum, minimum and maximum per voxel over raw (B, Z, Y, X) batches."""
-
-    def __init__(self) -> None:
-        self.total: np.ndarray | None = None
-        self.vmin: np.ndarray | None = None
-        self.vmax: np.ndarray | None = None
-        self.n = 0
-
-    def add(self, v: np.ndarray) -> None:
-        with np.errstate(invalid="ignore", over="ignore"):
-            # per batch in the data's own precision (integers: int64), summed in float64
-            s = v.sum(axis=0).astype(np.float64, copy=False)
-            bmin, bmax = v.min(axis=0), v.max(axis=0)
-        if self.total is None:
-            self.total, self.vmin, self.vmax = s.copy(), bmin, bmax
-        else:
-            self.total += s
-            np.minimum(self.vmin, bmin, out=self.vmin)
-            np.maximum(self.vmax, bmax, out=self.vmax)
-        self.n += v.shape[0]
-
-    def summary(self, layout: RawLayout) -> Summary:
-        return _summary(self.total / self.n, self.vmin, self.vmax, layout)
-
-    def known_values(self, layout: RawLayout) -> tuple[np.ndarray, np.ndarray]:
-        """(known, value), (X, Y, Z): voxels whose every value is the same (NaN included),
-        and that value scaled exactly as the rows are (float32 arithmetic)."""
-        vmin = self.vmin.transpose(2, 1, 0)
-        vmax = self.vmax.transpose(2, 1, 0)
-        with np.errstate(invalid="ignore", over="ignore"):
-            same = vmin == vmax
-            if vmin.dtype.kind == "f":
-                same |= np.isnan(vmin) & np.isnan(vmax) & np.isnan(self.total.transpose(2, 1, 0))
-            value = _scale(vmin, layout)
-        return same, value
-
-
-def _scale(raw: np.ndarray, layout: RawLayout, out: np.ndarray | None = None) -> np.ndarray:
-    """raw * slope + inter in float32 arithmetic (the one rule for every stored value)."""
-    if layout.slope == 1.0 and layout.inter == 0.0:
-        if out is None:
-            return np.asarray(raw, dtype=np.float32)
-        out[...] = raw
-        return out
-    with np.errstate(invalid="ignore", over="ignore"):
-        res = np.multiply(
-            raw, np.float32(layout.slope), out=out, dtype=np.float32, casting="unsafe"
-        )
-        if layout.inter != 0.0:
-            np.add(res, np.float32(layout.inter), out=res)
-    return res
-
-
-def summarize_volumes(volumes: Iterator[np.ndarray], layout: RawLayout) -> Summary:
-    """Summary from raw (unscaled) batches shaped (B, Z, Y, X); used for memory-mapped runs."""
-    stats = _Stats()
-    for v in volumes:
-        stats.add(v)
-    return stats.summary(layout)
-
-
-# --------------------------------------------------------------------------- building
-
-
-def _f_order(flat_c: np.ndarray, shape: tuple[int, int, int]) -> np.ndarray:
-    return np.ravel_multi_index(np.unravel_index(flat_c, shape), shape, order="F")
-
-
-def _c_order(flat_f: np.ndarray, shape: tuple[int, int, int]) -> np.ndarray:
-    return np.ravel_multi_index(np.unravel_index(flat_f, shape, order="F"), shape)
-
-
-def _gather(v2: np.ndarray, sel_f: np.ndarray, out: np.ndarray, t0: int, t1: int, layout) -> None:
-    """out[r, t0:t1] = scaled v2[:, sel_f[r]] (one sequential gather, one transposed write)."""
-    if sel_f.size:
-        _scale(np.take(v2, sel_f, axis=1).T, layout, out=out[:, t0:t1])
-
-
-def read_voxels(
-    layout: RawLayout, flat_c: np.ndarray, progress: ProgressCallback | None = None
-) -> np.ndarray:
-    """Time series of some voxels, read straight from the run file in one pass.
-
-    Parameters
-    ----------
-    layout : RawLayout
-    flat_c : ndarray of int
-        C-order flat voxel indices.
-    progress : callable, optional
-
-    Returns
-    -------
-    ndarray
-        float32 (n, T), rows in the order given.
-    """
-    flat_c = np.asarray(flat_c, dtype=np.int64)
-    x, y, z, t = layout.shape
-    out = np.empty((flat_c.size, t), dtype=np.float32)
-    if flat_c.size == 0:
-        return out
-    sel_f = _f_order(flat_c, (x, y, z))
-    for t0, t1, v, _f in _stream_batches(layout, progress=progress):
-        _gather(v.reshape(t1 - t0, -1), sel_f, out, t0, t1, layout)
-    return out
-
-
-@dataclass
-class _Built:
-    summary: Summary
-    stored: np.ndarray  # C-order flat index of each row, in row order
-    rows: np.ndarray | None
-    known_idx: np.ndarray  # C-order flat index of voxels not stored whose values are known
-    known_val: np.ndarray  # their (constant) value
-    members: np.ndarray | None  # gzip member table
-    data_end: int = 0
-
-
-Select = Callable[[Summary], np.ndarray]
-Allocate = Callable[[int], "np.ndarray | None"]
-
-
-def _build(
-    layout: RawLayout,
-    select: Select,
-    final: Select,
-    allocate: Allocate,
-    progress: ProgressCallback | None = None,
-    batch_bytes: int | None = None,
-) -> _Built:
-    """Decompress the run once and keep the rows of the selected voxels.
-
-    ``select(first_batch_summary)`` picks the stored voxels (X, Y, Z) from the first batch
-    of volumes; ``allocate(n_rows)`` gives the (n_rows, T) float32 array to write them
-    into (or None to keep no rows); ``final(summary)`` is the brain mask of the whole run:
-    any of its voxels the first choice missed are fetched in a second pass.
-    """
-    x, y, z, _t = layout.shape
-    shape3 = (x, y, z)
-    stats = _Stats()
-    rows = None
-    sel_f = np.empty(0, dtype=np.int64)
-    stream = None
-    _report(progress, 0.0, layout)
-    for t0, t1, v, f in _stream_batches(layout, batch_bytes, progress):
-        stream = f
-        stats.add(v)
-        if t0 == 0:
-            keep = np.asarray(select(stats.summary(layout)), dtype=bool)
-            sel_f = np.flatnonzero(keep.ravel(order="F"))
-            rows = allocate(int(sel_f.size))
-        if rows is not None:
-            _gather(v.reshape(t1 - t0, -1), sel_f, rows, t0, t1, layout)
-    summary = stats.summary(layout)
-    stored = _c_order(sel_f, shape3)
-    if rows is not None:
-        kept = np.zeros(layout.n_voxels, dtype=bool)
-        kept[stored] = True
-        missing = np.flatnonzero(np.asarray(final(summary), dtype=bool).ravel() & ~kept)
-        if missing.size:  # the first batch was not like the rest: fetch what it missed
-            bigger = allocate(int(stored.size + missing.size))
-            if bigger is not None:
-                bigger[: stored.size] = rows
-                bigger[stored.size :] = read_voxels(layout, missing)
-                stored = np.concatenate([stored, missing])
-            rows = bigger
-    known, value = stats.known_values(layout)
-    outside = np.ones(layout.n_voxels, dtype=bool)
-    if rows is not None:
-        outside[stored] = False
-    known_idx = np.flatnonzero(known.ravel() & outside)
-    members = stream.member_table() if isinstance(stream, _GzipStream) else None
-    data_end = stream.data_end if isinstance(stream, _GzipStream) else 0
-    return _Built(
-        summary=summary,
-        stored=stored.astype(np.int64),
-        rows=rows,
-        known_idx=known_idx.astype(np.int64),
-        known_val=value.ravel()[known_idx].astype(np.float32),
-        members=members,
-        data_end=int(data_end),
-    )
-
-
-# --------------------------------------------------------------------------- checked rows
-
-
-class _CheckedRows:
-    """Rows of a cache file, each block checked against its CRC-32 on first read."""
-
-    def __init__(self, data: np.ndarray, block_rows: int, crcs: np.ndarray | None, where: str):
-        self.data = data
-        self.block_rows = max(1, int(block_rows))
-        self.crcs = crcs
-        self.where = where
-        n_blocks = -(-data.shape[0] // self.block_rows) if data.shape[0] else 0
-        self.ok = np.zeros(n_blocks, dtype=bool) if crcs is not None else np.ones(n_blocks, bool)
-        self._lock = threading.Lock()
-
-    def check_range(self, lo: int, hi: int) -> None:
-        if hi <= lo:
-            return
-        b0, b1 = lo // self.block_rows, (hi - 1) // self.block_rows + 1
-        if self.ok[b0:b1].all():
-            return
-        self._check(np.arange(b0, b1))
-
-    def check_rows(self, pos: np.ndarray) -> None:
-        if pos.size == 0:
-            return
-        blocks = np.unique(pos // self.block_rows)
-        blocks = blocks[~self.ok[blocks]]
-        if blocks.size:
-            self._check(blocks)
-
-    def _check(self, blocks: np.ndarray) -> None:
-        with self._lock:
-            for b in blocks.tolist():
-                if self.ok[b]:
-                    continue
-                part = self.data[b * self.block_rows : (b + 1) * self.block_rows]
-                if _crc32(memoryview(np.ascontiguousarray(part)).cast("B")) != int(self.crcs[b]):
-                    raise CacheCorrupt(f"{self.where}: block {b} of the cached rows is damaged")
-                self.ok[b] = True
-
-
-def _block_crcs(rows: np.ndarray, block_rows: int) -> np.ndarray:
-    n = rows.shape[0]
-    out = np.empty(-(-n // block_rows) if n else 0, dtype=np.uint32)
-    for b in range(out.size):
-        part = np.ascontiguousarray(rows[b * block_rows : (b + 1) * block_rows])
-        out[b] = _crc32(memoryview(part).cast("B"))
-    return out
-
-
-def _block_rows(t: int) -> int:
-    return max(1, BLOCK_BYTES // (4 * t))
-
-
-# --------------------------------------------------------------------------- the store
-
-
-class VoxelStore:
-    """Voxel time series of a compressed run: stored rows, known constants, the file.
-
-    Rows are checked against their block checksums as they are first read; a failed
-    check calls ``recover()``, which gives a fresh store to take over (the entry rebuilt),
-    and the read is repeated. Voxels neither stored nor constant are read from the run
-    file in one pass for everything asked at once.
-    """
-
-    def __init__(
-        self,
-        layout: RawLayout,
-        rows: _CheckedRows | None,
-        stored: np.ndarray,
-        known_idx: np.ndarray,
-        known_val: np.ndarray,
-        recover: Callable[[CacheCorrupt], tuple[VoxelStore, str]] | None = None,
-        notes: list[str] | None = None,
-    ):
-        self.layout = layout
-        x, y, z, t = layout.shape
-        self.shape = (x, y, z)
-        self.n_volumes = t
-        self._set(rows, stored, known_idx, known_val)
-        self._recover = recover
-        self._widen: Callable[[np.ndarray], tuple[VoxelStore, str]] | None = None
-        self.notes = notes if notes is not None else []
-        self._fetched: dict[int, np.ndarray] = {}
-        self._lock = threading.RLock()
-        self._said_file = False
-
-    def _set(self, rows, stored, known_idx, known_val) -> None:
-        n = self.layout.n_voxels
-        pos = np.full(n, -1, dtype=np.int64 if n >= 2**31 else np.int32)
-        if rows is not None:
-            pos[stored] = np.arange(stored.size, dtype=pos.dtype)
-        known = np.zeros(n, dtype=bool)
-        known[known_idx] = True
-        val = np.zeros(n, dtype=np.float32)
-        val[known_idx] = known_val
-        # one assignment: a reader in another thread sees the old state or the new one
-        self._state = (rows, stored, pos, known, val)
-
-    @property
-    def _rows(self) -> _CheckedRows | None:
-        return self._state[0]
-
-    @property
-    def stored(self) -> np.ndarray:
-        """C-order flat index of each stored row."""
-        return self._state[1]
-
-    @property
-    def _pos(self) -> np.ndarray:
-        return self._state[2]
-
-    @property
-    def _known(self) -> np.ndarray:
-        return self._state[3]
-
-    @property
-    def _val(self) -> np.ndarray:
-        return self._state[4]
-
-    @property
-    def data(self) -> np.ndarray | None:
-        """The stored rows (n, T) float32, or None."""
-        return None if self._rows is None else self._rows.data
-
-    # ------------------------------------------------------------ reading
-    def _guarded(self, fn: Callable[[], Any]) -> Any:
-        rows = self._rows
-        try:
-            return fn()
-        except CacheCorrupt as err:
-            if self._recover is None:
-                raise
-            with self._lock:
-                if self._rows is rows:  # not yet recovered by another thread
-                    fresh, line = self._recover(err)
-                    self._take_over(fresh)
-                    self.notes.append(line)
-            return fn()
-
-    def _take_over(self, fresh: VoxelStore) -> None:
-        self._set(fresh._rows, fresh.stored, *self._known_pairs(fresh))
-        self._recover = fresh._recover
-        self._widen = fresh._widen
-
-    def widen(self, mask: np.ndarray) -> None:
-        """Keep every voxel of ``mask`` (a brain mask given by the user) at hand.
-
-        Voxels of the mask that are neither stored nor constant make the cache entry be
-        rebuilt once with them included (later opens find them stored); a store in memory
-        reads them from the file now, in one pass.
-        """
-        flat = np.flatnonzero(np.asarray(mask, dtype=bool).ravel())
-        missing = flat[(self._pos[flat] < 0) & ~self._known[flat]]
-        if not missing.size:
-            return
-        with self._lock:
-            if self._widen is not None:
-                fresh, line = self._widen(np.asarray(mask, dtype=bool))
-                self._take_over(fresh)
-                self.notes.append(line)
-            else:
-                self._prefetch(missing)
-
-    @staticmethod
-    def _known_pairs(store: VoxelStore) -> tuple[np.ndarray, np.ndarray]:
-        idx = np.flatnonzero(store._known)
-        return idx, store._val[idx]
-
-    def _say_file(self) -> None:
-        if not self._said_file:
-            self._said_file = True
-            self.notes.append(
-                f"{self.layout.path}: voxels outside the cached brain voxels are read from "
-                f"the run file (slower)"
-            )
-
-    def _from_file(self, flat: np.ndarray) -> np.ndarray:
-        """Rows of voxels that are neither stored nor constant (one pass for them all)."""
-        with self._lock:
-            need = list(dict.fromkeys(f for f in flat.tolist() if f not in self._fetched))
-            if need:
-                self._say_file()
-                got = read_voxels(self.layout, np.asarray(need, dtype=np.int64))
-                if len(self._fetched) + len(need) > 4096:
-                    self._fetched.clear()  # bounded: a few thousand rows at most
-                self._fetched.update(zip(need, got))
-            return np.stack([self._fetched[f] for f in flat.tolist()])
-
-    def _gather(self, flat: np.ndarray) -> np.ndarray:
-        """float32 (n, T) copies, rows in the order given."""
-        out = np.empty((flat.size, self.n_volumes), dtype=np.float32)
-        if flat.size == 0:
-            return out
-        rows, _stored, pos_all, known_all, val_all = self._state
-        pos = pos_all[flat]
-        have = pos >= 0
-        if have.any():
-            p = pos[have].astype(np.int64)
-            rows.check_rows(p)
-            order = np.argsort(p, kind="stable")
-            tmp = np.empty((p.size, self.n_volumes), dtype=np.float32)
-            tmp[order] = rows.data[p[order]]
-            out[have] = tmp
-        rest = ~have
-        if rest.any():
-            known = rest & known_all[flat]
-            if known.any():
-                out[known] = val_all[flat[known]][:, None]
-            other = rest & ~known
-            if other.any():
-                out[other] = self._from_file(flat[other])
-        return out
-
-    def row(self, flat: int) -> np.ndarray:
-        flat = int(flat)
-        if self._pos[flat] < 0 and not self._known[flat] and flat not in self._fetched:
-            self._from_file(self._around(flat))  # a click outside: its neighbours come too
-        return self._guarded(
-            lambda: self._gather(np.array([flat], dtype=np.int64))[0].astype(np.float64)
-        )
-
-    def _around(self, flat: int) -> np.ndarray:
-        """The voxel and its neighbours within two voxels that the file must give."""
-        ijk = np.unravel_index(flat, self.shape)
-        box = [np.arange(max(0, c - 2), min(n, c + 3)) for c, n in zip(ijk, self.shape)]
-        grid = np.ravel_multi_index(np.meshgrid(*box, indexing="ij"), self.shape).ravel()
-        grid = grid[(self._pos[grid] < 0) & ~self._known[grid]]
-        return np.unique(np.concatenate([[flat], grid])).astype(np.int64)
-
-    def rows(self, flat_idx: np.ndarray) -> np.ndarray:
-        return self._guarded(lambda: self._gather(np.asarray(flat_idx, dtype=np.int64)))
-
-    def chunks(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        self._prefetch(flat)
-        for a in range(0, flat.size, chunk):
-            idx = flat[a : a + chunk]
-            yield idx, self._guarded(lambda idx=idx: self._gather(idx))
-
-    def _prefetch(self, flat: np.ndarray) -> None:
-        """Read every voxel the file must give in one pass, before iterating."""
-        other = flat[(self._pos[flat] < 0) & ~self._known[flat]]
-        if other.size:
-            self._say_file()
-            got = read_voxels(self.layout, other)
-            with self._lock:
-                self._fetched = dict(zip(other.tolist(), got))
-
-    def blocks(self, flat: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        """(T, n) blocks in storage order; a read-only view of the rows where the block's
-        voxels are consecutive stored rows, else a float32 copy."""
-        if self._rows is None:
-            for idx, rows in self.chunks(flat, block):
-                yield idx, rows.T
-            return
-        pos = self._pos[flat].astype(np.int64)
-        have = pos >= 0
-        stored_flat = flat[have][np.argsort(pos[have], kind="stable")]
-        for a in range(0, stored_flat.size, block):
-            idx = stored_flat[a : a + block]
-            yield idx, self._guarded(lambda idx=idx: self._block_of(idx))
-        rest = flat[~have]
-        if rest.size:
-            for idx, rows in self.chunks(rest, block):
-                yield idx, rows.T
-
-    def _block_of(self, idx: np.ndarray) -> np.ndarray:
-        state = self._state
-        p = state[2][idx].astype(np.int64)
-        lo, hi = int(p[0]), int(p[-1]) + 1
-        if hi - lo == idx.size and np.all(np.diff(p) == 1):
-            state[0].check_range(lo, hi)
-            rows = state[0].data[lo:hi].view(np.ndarray)
-            rows.flags.writeable = False  # a view of the cache itself
-            return rows.T
-        return self._gather(idx).T
-
-    def volume(self, t: int) -> np.ndarray:
-        return self._guarded(lambda: self._volume(t))
-
-    def _volume(self, t: int) -> np.ndarray:
-        rows, stored, pos, known, val = self._state
-        out = val.copy()
-        if rows is not None and stored.size:
-            rows.check_range(0, stored.size)
-            out[stored] = rows.data[:, t]
-        other = (pos < 0) & ~known
-        if other.any():
-            self._say_file()
-            for t0, _t1, v, _f in _stream_batches(self.layout, batch_bytes=1):
-                if t0 == t:
-                    vol = _scale(v[0].transpose(2, 1, 0), self.layout).ravel()
-                    out[other] = vol[other]
-                    break
-        return out.reshape(self.shape)
 
 
 # --------------------------------------------------------------------------- locations
@@ -1018,7 +226,7 @@ def _gb(n: float) -> str:
 def _fingerprint(layout: RawLayout) -> dict[str, Any]:
     path = layout.path.resolve()
     st = path.stat()
-    with _open_stream(layout) as f:
+    with open_stream(layout) as f:
         header_bytes = f.read(layout.offset)
     with open(path, "rb") as f:
         f.seek(max(0, st.st_size - _TAIL_BYTES))
@@ -1035,11 +243,11 @@ def _fingerprint(layout: RawLayout) -> dict[str, Any]:
         "slope": float(layout.slope),
         "inter": float(layout.inter),
     }
-    if not _is_gzip(path):  # no member table to check: cover the whole compressed file
+    if not is_gzip(path):  # no member table to check: cover the whole compressed file
         crc = 0
         with open(path, "rb") as f:
             while chunk := f.read(1 << 22):
-                crc = _crc32(chunk, crc)
+                crc = crc32(chunk, crc)
         fp["file_crc32"] = crc
     return fp
 
@@ -1082,7 +290,7 @@ def _members_unchanged(path: Path, members: np.ndarray, data_end: int, tail_crc:
             pairs[:, 1], members[:, 2].astype(np.uint32)
         )
         after = np.asarray(raw[data_end:])
-        return bool(same and _crc32(memoryview(np.ascontiguousarray(after))) == tail_crc)
+        return bool(same and crc32(memoryview(np.ascontiguousarray(after))) == tail_crc)
     finally:
         del raw
 
@@ -1092,8 +300,8 @@ def _members_unchanged(path: Path, members: np.ndarray, data_end: int, tail_crc:
 
 @dataclass
 class _Loaded:
-    rows: _CheckedRows
-    built: _Built
+    rows: CheckedRows
+    built: Built
     data_path: Path
 
 
@@ -1141,7 +349,7 @@ def _load_entry(directory: Path, key: str, fp: dict[str, Any], layout: RawLayout
         val[a["known_nonzero"].astype(np.int64)] = a["known_val"]
         crcs = a["crcs"].astype(np.uint32)
         members = a["members"] if a["members"].size else None
-        built = _Built(
+        built = Built(
             summary=summary,
             stored=stored,
             rows=None,
@@ -1178,7 +386,7 @@ def _load_entry(directory: Path, key: str, fp: dict[str, Any], layout: RawLayout
     if crcs.size != (-(-n_rows // block_rows) if n_rows else 0):
         return damaged("checksum table does not fit")
     where = f"{data_path}"
-    return _Loaded(_CheckedRows(data, block_rows, crcs, where), built, data_path)
+    return _Loaded(CheckedRows(data, block_rows, crcs, where), built, data_path)
 
 
 def _tmp_name(directory: Path, final: Path) -> Path:
@@ -1267,7 +475,7 @@ def _unavailable(directory: Path, err: OSError) -> CacheUnavailable:
     )
 
 
-def _summary_blob(built: _Built, crcs: np.ndarray) -> bytes:
+def _summary_blob(built: Built, crcs: np.ndarray) -> bytes:
     s = built.summary
     buf = io.BytesIO()
     n_vox = s.mean.size
@@ -1345,7 +553,7 @@ def _available_memory() -> int | None:
     return None
 
 
-def _store_from(layout, built: _Built, rows, recover, notes) -> VoxelStore:
+def _store_from(layout, built: Built, rows, recover, notes) -> VoxelStore:
     return VoxelStore(layout, rows, built.stored, built.known_idx, built.known_val, recover, notes)
 
 
@@ -1401,9 +609,9 @@ def open_store(
         except CacheUnavailable as err:
             notes.append(f"{err}; the run is held in memory instead")
     why: list[str] = []
-    built = _build(layout, select, final, _memory_rows(layout, None, why), progress)
+    built = build(layout, select, final, _memory_rows(layout, None, why), progress)
     notes.extend(why)
-    rows = None if built.rows is None else _CheckedRows(built.rows, _block_rows(1), None, "")
+    rows = None if built.rows is None else CheckedRows(built.rows, block_rows(1), None, "")
     store = _store_from(layout, built, rows, None, notes)
     storage = "memory" if rows is not None else "file"
     return Opened(store, built.summary, storage, None, notes)
@@ -1413,10 +621,10 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
     try:
         fp = _fingerprint(layout)
     except (OSError, EOFError, zlib.error) as err:
-        raise _read_error(layout, err) from None
+        raise read_error(layout, err) from None
     except Exception as err:  # the ISA-L inflater's own error type
         if type(err).__name__ in ("IsalError", "error"):
-            raise _read_error(layout, err) from None
+            raise read_error(layout, err) from None
         raise
     key = _key_of(fp)
     _clean_stale_tmp(directory)
@@ -1446,7 +654,7 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
             line = f"{layout.path}: the run is read into memory to hold the given mask"
         return fresh.store, line
 
-    def made(built: _Built, rows: _CheckedRows) -> VoxelStore:
+    def made(built: Built, rows: CheckedRows) -> VoxelStore:
         store = _store_from(layout, built, rows, recover, notes)
         store._widen = widen
         return store
@@ -1454,7 +662,7 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
     loaded = _load_entry(directory, key, fp, layout, notes)
     if loaded is not None:
         _touch(_names(directory, key)[2])
-        _report(progress, 1.0, layout)
+        report_progress(progress, 1.0, layout)
         store = made(loaded.built, loaded.rows)
         return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes)
 
@@ -1507,11 +715,11 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
 
     try:
         try:
-            built = _build(layout, select, final, allocate, progress)
+            built = build(layout, select, final, allocate, progress)
             rows = built.rows
             # no flush: the pages reach the disk in their own time, and a block that
             # does not (a power cut) fails its checksum instead of being served
-            crcs = _block_crcs(rows, _block_rows(layout.shape[3]))
+            crcs = block_crcs(rows, block_rows(layout.shape[3]))
             blob = _summary_blob(built, crcs)
             with open(tmp_data, "r+b") as fh:  # a second allocation may have grown it
                 fh.truncate(rows.shape[0] * layout.shape[3] * 4)
@@ -1526,7 +734,7 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
                 "created": time.time(),
                 "rows": data_path.name,
                 "rows_shape": [int(built.stored.size), int(layout.shape[3])],
-                "block_rows": _block_rows(layout.shape[3]),
+                "block_rows": block_rows(layout.shape[3]),
                 "summary": summary_path.name,
                 "summary_sha256": hashlib.sha256(blob).hexdigest(),
                 "data_end": built.data_end,
@@ -1553,7 +761,7 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
 def _tail_crc(path: Path, data_end: int) -> int:
     with open(path, "rb") as f:
         f.seek(data_end)
-        return _crc32(f.read())
+        return crc32(f.read())
 
 
 def _touch(path: Path) -> None:

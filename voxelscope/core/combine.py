@@ -630,7 +630,7 @@ def compute_combined_map(
         Any of :data:`COMBINED_STATS`.
     progress : callable, optional
         ``progress(fraction)``; returning False cancels
-        (:class:`voxelscope.core.cache.Cancelled`).
+        (:class:`voxelscope.core.errors.Cancelled`).
     workers, rho_step
         Passed to :func:`~voxelscope.core.maps.compute_map` for every run.
     mask : ndarray of bool, optional

@@ -20,6 +20,10 @@ class ModelError(VoxelscopeError):
     """A model that cannot be fitted as asked (rank deficiency, too few volumes, ...)."""
 
 
+class Cancelled(VoxelscopeError):
+    """The user cancelled a long operation (a progress callback returned False)."""
+
+
 class OutputExistsError(InputError):
     """An output file is already there and may not be replaced without ``force``.
 

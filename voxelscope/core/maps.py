@@ -40,8 +40,7 @@ from typing import Any
 import numpy as np
 from threadpoolctl import threadpool_limits
 
-from .cache import Cancelled
-from .errors import InputError
+from .errors import Cancelled, InputError
 from .glm import fit
 from .model import Analysis, ModelSettings
 from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t

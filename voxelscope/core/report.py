@@ -513,7 +513,7 @@ def write_report(
         Extra warnings to list (for example from loading the inputs).
     progress : callable, optional
         ``progress(fraction)`` after each section; returning False cancels
-        (:class:`voxelscope.core.cache.Cancelled`), leaving nothing behind.
+        (:class:`voxelscope.core.errors.Cancelled`), leaving nothing behind.
 
     Returns
     -------
@@ -623,7 +623,7 @@ def write_report(
             page.write(_page_head(page_title, sections))
             for n, sec in enumerate(sections):
                 if progress is not None and progress(n / len(sections)) is False:
-                    from .cache import Cancelled
+                    from .errors import Cancelled
 
                     raise Cancelled("the report was cancelled")
                 if not sec.error:

@@ -19,7 +19,7 @@ from PySide6.QtCore import Qt
 from PySide6.QtGui import QColor, QFont
 from PySide6.QtWidgets import QLabel, QVBoxLayout, QWidget
 
-from voxelscope.core.checks import CONFOUND_R_LIMIT, EDGE_LIMIT_MM
+from voxelscope.core.flags import CONFOUND_R_LIMIT, EDGE_LIMIT_MM
 from voxelscope.gui.colours import colours, condition_colour, kernel_colour
 
 __all__ = ["FIGURES", "FIGURE_TITLES", "FigurePage", "make_figures"]

@@ -173,7 +173,7 @@ def compute_request(
     ``cache`` maps ``(settings, kernel, stats)`` (plus the run paths for several runs) to
     finished :class:`MapResult` objects; maps found there are not computed again.
     ``progress(fraction)`` returning False cancels
-    (:class:`voxelscope.core.cache.Cancelled`). With ``request.runs``, ``extra`` holds the
+    (:class:`voxelscope.core.errors.Cancelled`). With ``request.runs``, ``extra`` holds the
     other runs' ``(run, analysis)`` and the map is the fixed-effects combination
     (:func:`voxelscope.core.combine.compute_combined_map`, the single-run map per run).
     """

@@ -29,8 +29,7 @@ from dataclasses import dataclass
 
 from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, Qt, QThread, Signal, Slot
 
-from voxelscope.core.cache import Cancelled
-from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.errors import Cancelled, VoxelscopeError
 from voxelscope.gui.loading import load_bundle
 
 __all__ = [
@@ -244,7 +243,7 @@ class OpenRunJob(BackgroundJob):
 
     ``done(bundle)`` or ``failed(JobFailure)``; ``cancel()`` makes the core's progress
     callback return False and the open then ends with ``failed`` carrying
-    :class:`~voxelscope.core.cache.Cancelled` and a one-line "cancelled" message (and
+    :class:`~voxelscope.core.errors.Cancelled` and a one-line "cancelled" message (and
     ``cancelled``).
     """
 
