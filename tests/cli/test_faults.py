@@ -302,6 +302,7 @@ def test_control_characters_in_condition_names_do_not_reach_the_terminal(tmp_pat
         (["--tr", "1e-320"], "--tr must be at least 0.01 s"),
         (["--contrast", "1e309*tap"], "coefficient 1e309 is not a number between"),
         (["--contrast", "nan*tap"], "unknown name"),
+        (["--contrast", "2*tap+"], "expected a condition name after '+' at character 6"),
     ],
 )
 def test_absurd_option_values_are_one_line(tmp_path, capsys, option, says):

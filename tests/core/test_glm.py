@@ -512,9 +512,29 @@ def test_parse_contrast_unknown_names_listed():
     with pytest.raises(InputError) as err:
         parse_contrast("tapp - tonne", NAMES, groups={"tone": (0,), "tap": (1,)})
     msg = str(err.value)
-    assert "'tapp'" in msg and "'tonne'" in msg
+    assert "'tapp' at character 1" in msg and "'tonne' at character 8" in msg
     assert "tone" in msg and "tap" in msg
     assert "\n" not in msg
+
+
+@pytest.mark.parametrize(
+    ("expr", "says"),
+    [
+        ("2*tap+", "expected a condition name after '+' at character 6"),
+        ("tap -", "expected a condition name after '-' at character 5"),
+        ("2*", "expected a condition name after '*' at character 2"),
+        ("0.5", "expected a condition name after '0.5' at character 1"),
+        ("tap tone", "expected + or - at character 5, found 'tone'"),
+        ("tap*2", "unexpected '*' at character 4"),
+        ("* tap", "expected a condition name at character 1"),
+        ("tap - jump", "unknown name 'jump' at character 7"),
+    ],
+)
+def test_parse_contrast_errors_say_what_and_where(expr, says):
+    """Each malformed contrast names what was expected and the character (from 1)."""
+    with pytest.raises(InputError) as err:
+        parse_contrast(expr, NAMES, groups={"tone": (0,), "tap": (1,)})
+    assert says in str(err.value)
 
 
 def test_parse_contrast_default_and_empty():

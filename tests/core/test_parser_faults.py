@@ -71,3 +71,21 @@ def test_contrast_parser_gives_weights_or_one_short_line(expr):
         _one_line(err, limit=400)
     else:
         assert all(abs(v) < 1e12 for v in w)
+
+
+_PIECES = st.sampled_from(["tone", "tap", "tapp", "2", "0.5", "*", "+", "-", " ", "1e9", "x"])
+
+
+@settings(max_examples=150)
+@given(st.lists(_PIECES, max_size=12).map("".join))
+def test_contrast_errors_point_inside_the_text(expr):
+    """Near-miss contrasts built from real pieces: weights, or one line whose every
+    "character N" lies within the text (N counted from 1)."""
+    import re
+
+    try:
+        parse_contrast(expr, ["tone", "tap", "constant"], groups={"tone": [0], "tap": [1]})
+    except InputError as err:
+        _one_line(err, limit=400)
+        for n in re.findall(r"character (\d+)", str(err)):
+            assert 1 <= int(n) <= max(1, len(expr)), (expr, str(err))

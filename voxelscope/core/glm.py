@@ -333,7 +333,8 @@ def _rss(prep: PreparedDesign, Y: np.ndarray, tss: np.ndarray) -> tuple[np.ndarr
 
 # ----------------------------------------------------------------------------- contrasts
 
-_NUM = re.compile(r"\s*(\d+(?:\.\d*)?(?:[eE][-+]?\d+)?|\.\d+(?:[eE][-+]?\d+)?)\s*")
+_NUM = re.compile(r"(\d+(?:\.\d*)?(?:[eE][-+]?\d+)?|\.\d+(?:[eE][-+]?\d+)?)")
+_WORD_AT = re.compile(r"[^\s+*]+")
 
 
 def parse_contrast(
@@ -346,7 +347,9 @@ def parse_contrast(
 
     Accepts ``tap``, ``tap - tone``, ``0.5*tap + 0.5*tone``, ``2 tap``, ``-tone``.
     A name in ``groups`` that spans several columns (a condition under FIR) stands for the
-    average of its columns.
+    average of its columns. A term is ``[signs] [number [*]] name``; terms are joined by
+    ``+`` or ``-``. Every error names what is wrong and the character (counted from 1)
+    where it is, the same line for the window and the command line.
 
     Parameters
     ----------
@@ -362,12 +365,18 @@ def parse_contrast(
     Raises
     ------
     InputError
-        Unknown names (listed) or a malformed expression.
+        Unknown names (listed with their characters) or a malformed expression (what was
+        expected at which character).
 
     >>> parse_contrast("tap - tone", ["tone", "tap", "constant"]).tolist()
     [-1.0, 1.0, 0.0]
     >>> parse_contrast("0.5*tap + 0.5*tone", ["tone", "tap", "constant"]).tolist()
     [0.5, 0.5, 0.0]
+    >>> try:
+    ...     parse_contrast("2*tap+", ["tone", "tap", "constant"])
+    ... except InputError as err:
+    ...     print(err)
+    contrast '2*tap+': expected a condition name after '+' at character 6
     """
     names = list(names)
     if expr is None or not str(expr).strip():
@@ -383,7 +392,7 @@ def parse_contrast(
             f"contrast '{excerpt(text)}' is {len(text)} characters long; "
             f"a contrast has at most {CONTRAST_CHARS}"
         )
-    expr = excerpt(text, 80)  # messages quote at most this much
+    quoted = excerpt(text, 80)  # messages quote at most this much
     lookup: dict[str, list[int]] = {}
     for i, n in enumerate(names):
         lookup[n] = [i]
@@ -394,25 +403,57 @@ def parse_contrast(
             elif g not in lookup:
                 lookup[g] = [idx[0]]
     known = sorted(lookup, key=len, reverse=True)
+    offer = list(groups) if groups else names
+    use = ", ".join(excerpt(o) for o in offer[:20]) + (
+        f" and {len(offer) - 20} more" if len(offer) > 20 else ""
+    )
+    unknown: list[tuple[str, int]] = []
+
+    def fail(what: str) -> InputError:
+        # an unknown name earlier in the text is the first thing to fix
+        if unknown:
+            return unknown_error()
+        return InputError(f"contrast '{quoted}': {what}")
+
+    def unknown_error() -> InputError:
+        parts = [f"'{excerpt(u)}' at character {at + 1}" for u, at in unknown[:5]]
+        listed = parts[0] if len(parts) == 1 else ", ".join(parts[:-1]) + " and " + parts[-1]
+        more = f" (and {len(unknown) - 5} more)" if len(unknown) > 5 else ""
+        return InputError(
+            f"contrast '{quoted}': unknown name{'s' if len(unknown) > 1 else ''} "
+            f"{listed}{more}; use {use}"
+        )
+
+    def found(at: int) -> str:
+        return f"found '{excerpt(text[at:], 12)}'" if at < len(text) else "the text ends"
+
     w = np.zeros(len(names))
     pos = 0
     n_terms = 0
-    unknown: list[str] = []
-    while pos < len(text):
-        while pos < len(text) and text[pos].isspace():
-            pos += 1
-        if pos >= len(text):
+    end = len(text)
+
+    def skip(p: int) -> int:
+        while p < end and text[p].isspace():
+            p += 1
+        return p
+
+    while True:
+        pos = skip(pos)
+        if pos >= end:
             break
         sign = 1.0
-        if n_terms > 0:
-            if text[pos] not in "+-":
-                raise InputError(
-                    f"contrast '{expr}': expected + or - at position {pos + 1}; "
-                    "write terms like 'tap - tone' or '0.5*tap + 0.5*tone'"
-                )
-        while pos < len(text) and (text[pos] in "+-" or text[pos].isspace()):
-            if text[pos] == "-":
-                sign = -sign
+        after = ""  # the last thing read before the name, for "expected ... after X"
+        after_at = 0
+        if n_terms > 0 and text[pos] not in "+-":
+            raise fail(
+                f"expected + or - at character {pos + 1}, {found(pos)}; "
+                "write terms like 'tap - tone' or '0.5*tap + 0.5*tone'"
+            )
+        while pos < end and (text[pos] in "+-" or text[pos].isspace()):
+            if text[pos] in "+-":
+                after, after_at = text[pos], pos
+                if text[pos] == "-":
+                    sign = -sign
             pos += 1
         coef = 1.0
         # a known name first, so that names starting with digits ('2back') stay names
@@ -420,24 +461,29 @@ def parse_contrast(
         if m:
             coef = float(m.group(1))
             if not abs(coef) <= CONTRAST_COEFFICIENT:  # also NaN and inf (1e309)
-                raise InputError(
-                    f"contrast '{expr}': coefficient {excerpt(m.group(1), 20)} is not a "
+                raise fail(
+                    f"coefficient {excerpt(m.group(1), 20)} is not a "
                     f"number between -{CONTRAST_COEFFICIENT:g} and {CONTRAST_COEFFICIENT:g}"
                 )
-            pos = m.end()
-            if pos < len(text) and text[pos] == "*":
-                pos += 1
-            while pos < len(text) and text[pos].isspace():
-                pos += 1
+            after, after_at = excerpt(m.group(1), 20), m.start()
+            pos = skip(m.end())
+            if pos < end and text[pos] == "*":
+                after, after_at = "*", pos
+                pos = skip(pos + 1)
+        if pos >= end or text[pos] in "+-*":
+            what = "a condition name"
+            where = f"after '{after}' at character {after_at + 1}" if after else ""
+            if not where:
+                where = f"at character {pos + 1}"
+            if pos < end:
+                raise fail(f"expected {what} {where}, {found(pos)}")
+            raise fail(f"expected {what} {where}")
         name = _known_name_at(text, pos, known)
         if name is None:
-            mm = re.match(r"[^\s+*]+(?:\s*[^\s+\-*]+)*", text[pos:])
-            word = (mm.group(0) if mm else text[pos:]).strip() or text[pos:]
-            word = re.split(r"\s+[+-]\s+", word)[0]
-            unknown.append(word)
-            # skip to the next top-level + or - separated by spaces
-            nxt = re.search(r"\s[+-]\s", text[pos:])
-            pos = pos + nxt.start() if nxt else len(text)
+            mm = _WORD_AT.match(text, pos)
+            word = mm.group(0) if mm else text[pos:]
+            unknown.append((word, pos))
+            pos += max(1, len(word))
             n_terms += 1
             continue
         pos += len(name)
@@ -445,17 +491,18 @@ def parse_contrast(
         for c in cols:
             w[c] += sign * coef / len(cols)
         n_terms += 1
+        nxt = skip(pos)
+        if nxt < end and text[nxt] == "*":
+            raise fail(
+                f"unexpected '*' at character {nxt + 1}: the number goes before the name, "
+                f"e.g. '2*{excerpt(name, 30)}'"
+            )
     if unknown:
-        conds = list(groups) if groups else []
-        offer = conds if conds else names
-        raise InputError(
-            f"contrast '{expr}': unknown name(s) "
-            f"{', '.join(repr(excerpt(u)) for u in unknown[:5])}; "
-            f"use {', '.join(excerpt(o) for o in offer[:20])}"
-            + (f" and {len(offer) - 20} more" if len(offer) > 20 else "")
-        )
+        raise unknown_error()
     if n_terms == 0 or not np.any(w):
-        raise InputError(f"contrast '{expr}' has no non-zero weights; name at least one condition")
+        raise InputError(
+            f"contrast '{quoted}' has no non-zero weights; name at least one condition"
+        )
     return w
 
 
