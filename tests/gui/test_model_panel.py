@@ -39,6 +39,7 @@ def test_contrast_edit_refits(window, ras_run, qtbot):
     edit.setFocus()
     edit.clear()
     qtbot.keyClicks(edit, "tap - tone")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
     assert st.settings.contrast == "tap - tone"
     # a run starts with the default model exactly: no confound columns until picked
     s = ModelSettings(contrast="tap - tone", confound_columns=())
@@ -57,10 +58,13 @@ def test_bad_contrast_shows_inline_error_and_keeps_last_good_fit(window, ras_run
     edit.setFocus()
     edit.clear()
     qtbot.keyClicks(edit, "tap")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
     good = [window.fits.model.raw(r, "t") for r in range(window.fits.model.rowCount())]
     qtbot.keyClicks(edit, " - nosuch")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
     err = window.model_panel.contrast_error
-    assert err.isVisible() and "nosuch" in err.text()
+    assert err.isVisible() and "nosuch" in err.text() and "at character 7" in err.text()
+    assert err.text().endswith("Still using: tap")
     assert "\n" not in err.text()
     assert st.settings.contrast == "tap"
     assert [window.fits.model.raw(r, "t") for r in range(window.fits.model.rowCount())] == good
@@ -68,8 +72,54 @@ def test_bad_contrast_shows_inline_error_and_keeps_last_good_fit(window, ras_run
     for _ in range(len(" - nosuch")):
         qtbot.keyClick(edit, Qt.Key.Key_Backspace)
     qtbot.keyClicks(edit, " - tone")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
     assert not err.isVisible()
     assert st.settings.contrast == "tap - tone"
+
+
+def test_contrast_is_used_after_a_pause_and_never_a_prefix(window, ras_run, qtbot):
+    """Typing 'tap - tone' key by key: no prefix ('tap', 'tap - t'...) reaches the fits;
+    after the pause the whole contrast is used once."""
+    from voxelscope.gui.model_panel import CONTRAST_PAUSE_MS
+
+    st = _open(window, ras_run)
+    used = []
+    st.settings_changed.connect(lambda s: used.append(s.contrast))
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    edit.clear()
+    qtbot.keyClicks(edit, "tap - tone")
+    assert used == [] and st.settings.contrast is None
+    qtbot.waitUntil(lambda: st.settings.contrast == "tap - tone", timeout=10 * CONTRAST_PAUSE_MS)
+    assert used == ["tap - tone"]
+    assert not window.model_panel.contrast_error.isVisible()
+
+
+def test_contrast_error_names_the_character_and_keeps_the_contrast(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    assert window.set_contrast_text("tap")
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    qtbot.keyClicks(edit, "+")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
+    err = window.model_panel.contrast_error
+    assert err.isVisible()
+    assert "expected a condition name after '+' at character 4" in err.text()
+    assert "Still using: tap" in err.text()
+    assert st.settings.contrast == "tap"
+    # Esc puts back the contrast in use
+    qtbot.keyClick(edit, Qt.Key.Key_Escape)
+    assert edit.text() == "tap" and not err.isVisible()
+
+
+def test_contrast_error_with_the_default_contrast_names_it(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    qtbot.keyClicks(edit, "2*")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
+    default = st.analysis.default_contrast()
+    assert f"Still using: {default} (default)" in window.model_panel.contrast_error.text()
 
 
 def test_completer_offers_condition_names(window, ras_run, qtbot):

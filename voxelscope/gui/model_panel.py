@@ -1,15 +1,19 @@
 """Model: kernels, contrast, noise model, high-pass, onset shift, derivatives, volumes left
 out (first N, motion above a framewise displacement) and the confound picker.
 
-Every change goes to the state at once, which refits the current voxel. Widgets are set
-back from the state with their signals blocked, so a setting never loops.
+Every change goes to the state at once, which refits the current voxel, except the
+contrast: typed text is used on Enter, when the box loses the focus, or after a pause of
+:data:`CONTRAST_PAUSE_MS`, and only when it parses; until then (and while it does not
+parse) the last good contrast stays in use and the box says so ("still using: tap"), so
+no prefix of what is being typed ever reaches the fits or the map. Widgets are set back
+from the state with their signals blocked, so a setting never loops.
 """
 
 from __future__ import annotations
 
 import re
 
-from PySide6.QtCore import QStringListModel, Qt
+from PySide6.QtCore import QStringListModel, Qt, QTimer, Signal
 from PySide6.QtGui import QColor, QIcon, QPainter, QPixmap
 from PySide6.QtWidgets import (
     QCheckBox,
@@ -35,7 +39,10 @@ from voxelscope.gui.events_box import EventsBox
 from voxelscope.gui.sizing import compact_combo, compact_spin
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["ContrastEdit", "ModelPanel", "swatch_icon"]
+__all__ = ["CONTRAST_PAUSE_MS", "ContrastEdit", "ModelPanel", "swatch_icon"]
+
+#: A typed contrast is used after this long without a keystroke (or at once on Enter).
+CONTRAST_PAUSE_MS = 600
 
 #: How the Volumes part sums up the reasons of Analysis.excluded_volumes.
 _REASONS = (
@@ -61,7 +68,11 @@ def swatch_icon(colour: str, size: int = 14) -> QIcon:
 
 
 class ContrastEdit(QLineEdit):
-    """Contrast entry that offers condition names for the word being typed."""
+    """Contrast entry that offers condition names for the word being typed.
+
+    Esc (with no list of names open) emits ``reverted``: put back the contrast in use."""
+
+    reverted = Signal()
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
@@ -93,6 +104,13 @@ class ContrastEdit(QLineEdit):
             self.completer_.complete()
         else:
             self.completer_.popup().hide()
+
+    def keyPressEvent(self, ev) -> None:
+        if ev.key() == Qt.Key.Key_Escape and not self.completer_.popup().isVisible():
+            self.reverted.emit()
+            ev.accept()
+            return
+        super().keyPressEvent(ev)
 
     def _insert(self, name: str) -> None:
         pos = self.cursorPosition()
@@ -169,7 +187,18 @@ class ModelPanel(QWidget):
         cl = QVBoxLayout(contrast)
         self.contrast = ContrastEdit()
         self.contrast.setObjectName("contrast_edit")
-        self.contrast.textEdited.connect(self.state.set_contrast)
+        self.contrast.setToolTip(
+            "A condition, or a sum of weighted conditions such as 'tap - tone' or "
+            "'0.5*tap + 0.5*tone'; used on Enter or after a short pause, Esc puts back "
+            "the one in use"
+        )
+        self.contrast_timer = QTimer(self)
+        self.contrast_timer.setSingleShot(True)
+        self.contrast_timer.setInterval(CONTRAST_PAUSE_MS)
+        self.contrast_timer.timeout.connect(self.apply_contrast)
+        self.contrast.textEdited.connect(lambda _t: self.contrast_timer.start())
+        self.contrast.editingFinished.connect(self.apply_contrast)
+        self.contrast.reverted.connect(self.revert_contrast)
         cl.addWidget(self.contrast)
         self.contrast_hint = QLabel("")
         self.contrast_hint.setObjectName("hint")
@@ -314,6 +343,32 @@ class ModelPanel(QWidget):
 
     # ------------------------------------------------------------------ user input
 
+    def apply_contrast(self) -> bool:
+        """Use the typed contrast if it parses (Enter, focus leaving, a pause)."""
+        self.contrast_timer.stop()
+        text = self.contrast.text()
+        st = self.state
+        if text.strip() == (st.settings.contrast or "") and not st.contrast_problem:
+            return True  # nothing new: no refit, no undo step
+        ok = st.set_contrast(text)
+        if ok:
+            self.contrast.setModified(False)
+        return ok
+
+    def revert_contrast(self) -> None:
+        """Esc: the box shows the contrast in use again and the problem line goes."""
+        self.contrast_timer.stop()
+        self.contrast.setText(self.state.settings.contrast or "")
+        self.state.set_contrast(self.contrast.text())
+
+    def contrast_in_use(self) -> str:
+        """The contrast the fits use now, as the status line names it."""
+        s = self.state.settings
+        if s.contrast:
+            return s.contrast
+        analysis = self.state.analysis
+        return f"{analysis.default_contrast()} (default)" if analysis is not None else ""
+
     def _kernels_changed(self, _on: bool) -> None:
         chosen = tuple(n for n, b in self.kernel_boxes.items() if b.isChecked())
         self.state.update_settings(kernels=chosen)
@@ -419,9 +474,10 @@ class ModelPanel(QWidget):
             if (
                 self.contrast.text().strip() != (s.contrast or "")
                 and not self.state.contrast_problem
+                and not self.contrast_timer.isActive()
+                and not (self.contrast.hasFocus() and self.contrast.isModified())
             ):
-                if not self.contrast.hasFocus():
-                    self.contrast.setText(s.contrast or "")
+                self.contrast.setText(s.contrast or "")  # undo, a session, a new run
         finally:
             for w in widgets:
                 w.blockSignals(False)
@@ -454,6 +510,8 @@ class ModelPanel(QWidget):
         return names
 
     def _on_contrast_error(self, message: str) -> None:
+        if message:
+            message = f"{message}. Still using: {self.contrast_in_use()}"
         self.contrast_error.setText(message)
         self.contrast_error.setVisible(bool(message))
         self.contrast.setProperty("invalid", bool(message))
