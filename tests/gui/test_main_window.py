@@ -3,7 +3,9 @@
 from pathlib import Path
 
 import numpy as np
+from PySide6.QtCore import Qt
 from PySide6.QtGui import QImage
+from PySide6.QtWidgets import QTextBrowser
 
 import voxelscope
 from voxelscope.core.errors import Cancelled
@@ -92,3 +94,83 @@ def test_demo_screenshot(qapp, demo_files, tmp_path):
     assert launch(demo=True, screenshot=str(out), size=(1280, 800)) == 0
     w, h, var = _image_stats(out)
     assert (w, h) == (1280, 800) and var > 100.0
+
+
+def _answer(monkeypatch, button):
+    """Answer the unsaved-marks question with ``button`` (no dialog is shown)."""
+    from PySide6.QtWidgets import QMessageBox
+
+    asked = []
+
+    def exec_(box):
+        asked.append(box.text())
+        return button
+
+    monkeypatch.setattr(QMessageBox, "exec", exec_)
+    return asked
+
+
+def test_closing_with_unsaved_marks_asks_and_cancel_keeps_the_window(
+    window, ras_run, monkeypatch, qtbot
+):
+    from PySide6.QtWidgets import QMessageBox
+
+    assert window.open_run(ras_run["run"], background=False)
+    window.ask_before_closing = True
+    window.marks_panel.add_current("keep me")
+    asked = _answer(monkeypatch, QMessageBox.StandardButton.Cancel)
+    qtbot.keyClick(window, Qt.Key.Key_Q, Qt.KeyboardModifier.ControlModifier)  # File > Quit
+    assert asked and "marks (1)" in asked[0]
+    assert window.isVisible()
+    asked = _answer(monkeypatch, QMessageBox.StandardButton.Discard)
+    assert window.close()
+    assert asked and not window.isVisible()
+
+
+def test_closing_with_unsaved_marks_can_save_them(window, ras_run, monkeypatch, tmp_path):
+    from PySide6.QtWidgets import QFileDialog, QMessageBox
+
+    from voxelscope.core.marks import read_marks_tsv
+
+    assert window.open_run(ras_run["run"], background=False)
+    window.ask_before_closing = True
+    window.marks_panel.add_current("keep me")
+    _answer(monkeypatch, QMessageBox.StandardButton.Save)
+    out = tmp_path / "kept.tsv"
+    monkeypatch.setattr(QFileDialog, "getSaveFileName", lambda *a, **k: (str(out), ""))
+    assert window.close()
+    assert [m.title for m in read_marks_tsv(out)] == ["keep me"]
+
+
+def test_closing_with_saved_or_no_marks_asks_nothing(window, ras_run, monkeypatch, tmp_path):
+    from PySide6.QtWidgets import QMessageBox
+
+    assert window.open_run(ras_run["run"], background=False)
+    window.ask_before_closing = True
+    asked = _answer(monkeypatch, QMessageBox.StandardButton.Cancel)
+    window.marks_panel.add_current("saved")
+    window.marks_panel.export_tsv(tmp_path / "m.tsv")
+    assert window.close()
+    assert asked == []
+
+
+def test_long_status_message_is_cut_in_the_middle_before_the_run_line(window, ras_run):
+    assert window.open_run(ras_run["run"], background=False)
+    bar = window.statusBar()
+    path = "/a/very/long/folder/name/that/goes/on/" * 8 + "marks.tsv"
+    bar.showMessage(f"Wrote 3 marks to {path}")
+    shown = bar.shown_message()
+    assert shown.startswith("Wrote 3 marks to") and shown.endswith("marks.tsv") and "…" in shown
+    assert bar.fontMetrics().horizontalAdvance(shown) <= bar.message_width()
+    assert 6 + bar.message_width() <= window.run_label.x()
+    assert bar.currentMessage().endswith("marks.tsv") and bar.toolTip() == bar.currentMessage()
+    assert window.run_label.text().startswith("sub-ras_task-tt_bold.nii")
+
+
+def test_help_lists_keys_and_mouse(window, qtbot):
+    qtbot.keyClick(window, Qt.Key.Key_F1)
+    dialog = window.keys_dialog
+    assert dialog is not None and dialog.isVisible()
+    text = dialog.findChild(QTextBrowser, "keys_text").toPlainText()
+    for words in ("PgUp", "Wheel", "Ctrl+Z", "Add a mark", "Show mode", "Esc"):
+        assert words in text

@@ -200,3 +200,47 @@ def test_demo_loads_its_marks(window, demo_files):
         rows = list(csv.DictReader(fh, delimiter="\t", quoting=csv.QUOTE_NONE))
     assert [m.title for m in window.state.marks] == [r["title"] for r in rows]
     assert window.marks_panel.model.rowCount() == len(rows) > 0
+
+
+def test_a_new_mark_is_selected_with_its_note_ready(opened, qtbot):
+    panel = opened.marks_panel
+    opened.docks["Model"].raise_()  # Marks behind Model, as at start
+    row = panel.add_current("Hearing area, left")
+    assert panel.current_row() == row
+    assert panel.note.isEnabled()
+    assert "Select a mark" not in panel.note.placeholderText()
+    assert "Hearing area, left" in panel.note.placeholderText()
+    assert opened.docks["Marks"].isVisible()  # brought forward
+    qtbot.waitUntil(panel.note.hasFocus, timeout=2000)
+    qtbot.keyClicks(panel.note, "a tone cluster")
+    assert opened.state.marks[row].note == "a tone cluster"
+
+
+def test_titles_are_not_cut(opened, qtbot):
+    """A long title gets its full width, or wraps: every word is drawn (tooltip: whole)."""
+    panel = opened.marks_panel
+    opened.docks["Marks"].raise_()
+    title = "Hearing area at the rim of the phantom"
+    panel.add_current(title)
+    table = panel.table
+    qtbot.waitUntil(lambda: table.isVisible(), timeout=2000)
+    table.fit_columns()
+    fm = table.fontMetrics()
+    width, height = table.columnWidth(0), table.rowHeight(0)
+    lines = 1 if fm.horizontalAdvance(title) + 12 <= width else 2
+    # either the column holds the whole title, or the row is tall enough for it wrapped
+    assert lines == 1 or height >= 2 * fm.lineSpacing()
+    assert table.model().index(0, 0).data(Qt.ItemDataRole.ToolTipRole).startswith(title)
+
+
+def test_delete_key_deletes_the_selected_mark_and_undo_brings_it_back(opened, qtbot):
+    panel = opened.marks_panel
+    opened.docks["Marks"].raise_()
+    panel.add_current("a")
+    panel.add_current("b")
+    panel.select(0)
+    panel.table.setFocus()
+    qtbot.keyClick(panel.table, Qt.Key.Key_Delete)
+    assert titles(opened) == ["b"]
+    opened.undo_action.trigger()
+    assert titles(opened) == ["a", "b"]

@@ -107,12 +107,13 @@ def _demo_extras(window, marks_path) -> None:
     from voxelscope.core.errors import VoxelscopeError
     from voxelscope.core.marks import read_marks_tsv
 
-    window.set_contrast_text(DEMO_CONTRAST)
-    if marks_path is not None:
-        try:
-            window.state.set_marks(read_marks_tsv(marks_path))
-        except VoxelscopeError as err:
-            window.show_error(str(err))
+    with window.state.without_history():  # where the demo starts, not a step to undo
+        window.set_contrast_text(DEMO_CONTRAST)
+        if marks_path is not None:
+            try:
+                window.state.set_marks(read_marks_tsv(marks_path))
+            except VoxelscopeError as err:
+                window.show_error(str(err))
 
 
 def _save_session(window, path, ask: bool, force: bool = False) -> bool:

@@ -21,6 +21,8 @@ from PySide6.QtCore import (
 )
 from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
+    QDialog,
+    QDialogButtonBox,
     QDockWidget,
     QFileDialog,
     QLabel,
@@ -31,6 +33,8 @@ from PySide6.QtWidgets import (
     QScrollArea,
     QSplitter,
     QStackedWidget,
+    QTextBrowser,
+    QVBoxLayout,
     QWidget,
 )
 
@@ -52,6 +56,7 @@ from voxelscope.gui.session_io import install_lab_kit
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
 from voxelscope.gui.state import ViewerState
+from voxelscope.gui.status import ElidedLabel, StatusBar
 from voxelscope.gui.workers import OpenRunJob, stop_jobs
 
 __all__ = ["ORGANISATION", "MainWindow"]
@@ -95,6 +100,8 @@ class MainWindow(QMainWindow):
         self.settle_hooks: list = []  # called before a window image: finish background work
         self.record_recent = True  # False for a one-off offscreen rendering (--screenshot)
         self.study_browser = None  # File > Open study…
+        self.keys_dialog = None  # Help > Keys and mouse…
+        self.ask_before_closing = not self.offscreen()  # unsaved marks: save, discard, cancel
         self.setStyleSheet(stylesheet())
         self.setAcceptDrops(True)
 
@@ -223,7 +230,8 @@ class MainWindow(QMainWindow):
             self.arrange()
 
     def _build_status(self) -> None:
-        bar = self.statusBar()
+        bar = StatusBar(self)
+        self.setStatusBar(bar)
         self.progress = QProgressBar()
         self.progress.setRange(0, 1000)
         self.progress.setFixedWidth(220)
@@ -234,7 +242,8 @@ class MainWindow(QMainWindow):
         bar.addPermanentWidget(self.cancel_button)
         self.progress.setVisible(False)
         self.cancel_button.setVisible(False)
-        self.run_label = QLabel("")
+        self.run_label = ElidedLabel("")
+        self.run_label.setObjectName("run_label")
         bar.addPermanentWidget(self.run_label)
 
     def _build_menus(self) -> None:
@@ -268,9 +277,10 @@ class MainWindow(QMainWindow):
         m.addAction(act)
         m.addSeparator()
         act = QAction("&Quit", self)
-        act.setShortcut(QKeySequence.StandardKey.Quit)
+        act.setShortcut(QKeySequence("Ctrl+Q"))
         act.triggered.connect(self.close)
         m.addAction(act)
+        self._build_edit_menu()
         v = self.menuBar().addMenu("&View")
         for dock in self.docks.values():
             v.addAction(dock.toggleViewAction())
@@ -279,9 +289,29 @@ class MainWindow(QMainWindow):
         act.triggered.connect(self.reset_views)
         v.addAction(act)
         h = self.menuBar().addMenu("&Help")
+        act = QAction("&Keys and mouse…", self)
+        act.setShortcut(QKeySequence("F1"))
+        act.setToolTip("Every key and mouse action of the window")
+        act.triggered.connect(self.show_keys)
+        h.addAction(act)
+        self.keys_action = act
         act = QAction("About voxelscope", self)
         act.triggered.connect(self.about)
         h.addAction(act)
+
+    def _build_edit_menu(self) -> None:
+        """Edit ▸ Undo / Redo: model changes and marks (the state's history)."""
+        e = self.menuBar().addMenu("&Edit")
+        history = self.state.history
+        self.undo_action = history.createUndoAction(self, "&Undo")
+        self.undo_action.setShortcut(QKeySequence("Ctrl+Z"))
+        self.redo_action = history.createRedoAction(self, "&Redo")
+        self.redo_action.setShortcuts([QKeySequence("Ctrl+Shift+Z"), QKeySequence("Ctrl+Y")])
+        for act in (self.undo_action, self.redo_action):
+            act.setToolTip("Model changes (contrast, kernels, noise, drift, confounds) and marks")
+            e.addAction(act)
+            self.addAction(act)  # the keys work with the menu bar hidden (Show mode)
+        self.edit_menu = e
 
     # ------------------------------------------------------------------ messages
 
@@ -306,6 +336,27 @@ class MainWindow(QMainWindow):
 
     def _note(self, message: str) -> None:
         self.statusBar().showMessage(message, 20000)
+
+    def show_keys(self) -> None:
+        """Help ▸ Keys and mouse…: every shortcut and mouse action (from gui/keys.py)."""
+        from voxelscope.gui.keys import keys_html
+
+        if self.keys_dialog is None:
+            box = QDialog(self)
+            box.setObjectName("keys_dialog")
+            box.setWindowTitle("Keys and mouse")
+            lay = QVBoxLayout(box)
+            text = QTextBrowser()
+            text.setObjectName("keys_text")
+            text.setHtml(keys_html())
+            lay.addWidget(text)
+            buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close)
+            buttons.rejected.connect(box.close)
+            lay.addWidget(buttons)
+            box.resize(560, 640)
+            self.keys_dialog = box
+        self.keys_dialog.show()
+        self.keys_dialog.raise_()
 
     def about(self) -> None:
         text = (
@@ -675,6 +726,41 @@ class MainWindow(QMainWindow):
         if agreement is not None:
             agreement.compare_job = None
             agreement.explain_job = None
+
+    def closeEvent(self, ev) -> None:
+        """Closing (Ctrl+Q, the title bar) with unsaved marks asks to save, discard or stay."""
+        if self.ask_before_closing and not self.keep_marks():
+            ev.ignore()
+            return
+        autosave = getattr(self, "autosave", None)
+        if autosave is not None:
+            autosave.clear()  # a clean close leaves no recovery file
+        super().closeEvent(ev)
+
+    def keep_marks(self) -> bool:
+        """Ask what to do with unsaved marks; True when the window may close."""
+        st = self.state
+        if not st.unsaved_marks():
+            return True
+        n = len(st.marks)
+        box = QMessageBox(
+            QMessageBox.Icon.Question,
+            "Unsaved marks",
+            f"The marks ({n}) changed since they were last saved. Save them before closing?",
+            QMessageBox.StandardButton.Save
+            | QMessageBox.StandardButton.Discard
+            | QMessageBox.StandardButton.Cancel,
+            self,
+        )
+        box.setDefaultButton(QMessageBox.StandardButton.Save)
+        box.setInformativeText("Save writes them as a marks file (TSV) you can import again.")
+        answer = box.exec()
+        if answer == QMessageBox.StandardButton.Discard:
+            return True
+        if answer == QMessageBox.StandardButton.Save:
+            panel = getattr(self, "marks_panel", None)
+            return panel is not None and panel.ask_export() is not None
+        return False
 
     def reset_views(self) -> None:
         for view in self.slices.views.values():

@@ -16,11 +16,12 @@ import os
 from pathlib import Path
 
 from PySide6.QtCore import QAbstractTableModel, QMimeData, QModelIndex, Qt, Signal
-from PySide6.QtGui import QAction, QKeySequence
+from PySide6.QtGui import QAction, QKeySequence, QTextCursor
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QDialog,
     QDialogButtonBox,
+    QDockWidget,
     QFileDialog,
     QFormLayout,
     QHBoxLayout,
@@ -31,6 +32,8 @@ from PySide6.QtWidgets import (
     QMessageBox,
     QPlainTextEdit,
     QPushButton,
+    QStyledItemDelegate,
+    QStyleOptionViewItem,
     QTableView,
     QVBoxLayout,
     QWidget,
@@ -46,6 +49,13 @@ __all__ = ["MARKS_FILTER", "AddMarkDialog", "MarksModel", "MarksPanel", "MarksTa
 MARKS_FILTER = "Marks (*.tsv);;All files (*)"
 _MIME = "application/x-voxelscope-mark-row"
 COLUMNS = ("Title", "Note", "Position (mm)")
+NO_MARK_SELECTED = "Select a mark to read or edit its note."
+
+
+def _short(title: str, limit: int = 30) -> str:
+    """A title short enough for the Edit menu and the status bar."""
+    line = " ".join(title.split())
+    return line if len(line) <= limit else line[: limit - 1] + "…"
 
 
 def _one_line(text: str, limit: int = 90) -> str:
@@ -70,10 +80,11 @@ class MarksModel(QAbstractTableModel):
     def marks(self) -> MarkList:
         return self.state.marks
 
-    def _changed(self) -> None:
+    def _changed(self, text: str, before: list, merge: str = "") -> None:
+        """One undo step for an edit this model just made (see ViewerState.record_marks)."""
         self._own = True
         try:
-            self.state.marks_changed.emit()
+            self.state.record_marks(text, before, merge)
         finally:
             self._own = False
 
@@ -86,22 +97,27 @@ class MarksModel(QAbstractTableModel):
 
     def add(self, xyz_mm, title: str | None = None, note: str = "", row: int | None = None) -> int:
         """Add a mark (at the end or before ``row``); returns its row."""
+        before = list(self.marks)
         n = len(self.marks)
         row = n if row is None else max(0, min(int(row), n))
         self.beginInsertRows(QModelIndex(), row, row)
-        self.marks.add(xyz_mm, title, note, index=row)
+        mark = self.marks.add(xyz_mm, title, note, index=row)
         self.endInsertRows()
-        self._changed()
+        self._changed(f"add mark '{_short(mark.title)}'", before)
         return row
 
     def rename(self, row: int, title: str) -> Mark:
+        before = list(self.marks)
+        old = self.marks[row].title
         mark = self.marks.rename(row, title)
-        self._row_changed(row)
+        self._row_changed(row, f"rename mark '{_short(old)}'", before)
         return mark
 
     def set_note(self, row: int, note: str) -> Mark:
+        """Change a note; typing on in the same note is one undo step."""
+        before = list(self.marks)
         mark = self.marks.set_note(row, note)
-        self._row_changed(row)
+        self._row_changed(row, f"note of '{_short(mark.title)}'", before, merge=f"note {row}")
         return mark
 
     def move(self, source: int, destination: int) -> bool:
@@ -109,26 +125,28 @@ class MarksModel(QAbstractTableModel):
         n = len(self.marks)
         if not (0 <= source < n and 0 <= destination < n) or source == destination:
             return False
+        before = list(self.marks)
         # Qt counts the destination before the move: moving down lands before row dst + 1.
         qt_dest = destination + 1 if destination > source else destination
         if not self.beginMoveRows(QModelIndex(), source, source, QModelIndex(), qt_dest):
             return False
         self.marks.move(source, destination)
         self.endMoveRows()
-        self._changed()
+        self._changed(f"move mark '{_short(self.marks[destination].title)}'", before)
         return True
 
     def delete(self, row: int) -> Mark:
         self.marks[row]  # raises InputError for a row that does not exist
+        before = list(self.marks)
         self.beginRemoveRows(QModelIndex(), row, row)
         mark = self.marks.delete(row)
         self.endRemoveRows()
-        self._changed()
+        self._changed(f"delete mark '{_short(mark.title)}'", before)
         return mark
 
-    def _row_changed(self, row: int) -> None:
+    def _row_changed(self, row: int, text: str, before: list, merge: str = "") -> None:
         self.dataChanged.emit(self.index(row, 0), self.index(row, len(COLUMNS) - 1))
-        self._changed()
+        self._changed(text, before, merge)
 
     # ------------------------------------------------------------------ Qt model
 
@@ -245,12 +263,21 @@ class AddMarkDialog(QDialog):
         form.addRow(buttons)
 
 
+class _OneLine(QStyledItemDelegate):
+    """Draws a cell on one line, cut with "…" (the note column of a wrapping table)."""
+
+    def initStyleOption(self, option, index) -> None:
+        super().initStyleOption(option, index)
+        option.features &= ~QStyleOptionViewItem.ViewItemFeature.WrapText
+
+
 class MarksTable(QTableView):
     """The marks list: its columns always share the visible width (no sideways scrolling).
 
-    Title and note are cut with "…" (the whole note is in the box below, the tooltip shows
-    both); the world position keeps its full width. When the part is too narrow for three
-    columns the note column is left out.
+    The title is never cut: it gets the width its longest title needs, and when the part
+    is too narrow for that and a note column, the note column is left out (the whole note
+    is in the box below) and long titles wrap onto a second line. Notes are cut with "…";
+    the tooltip shows title and note in full. The world position keeps its full width.
     """
 
     NOTE_MIN = 80
@@ -259,7 +286,11 @@ class MarksTable(QTableView):
         super().__init__(parent)
         self.setHorizontalScrollBarPolicy(Qt.ScrollBarPolicy.ScrollBarAlwaysOff)
         self.setTextElideMode(Qt.TextElideMode.ElideRight)
+        self.setWordWrap(True)
         self.horizontalHeader().setMinimumSectionSize(40)
+        self.verticalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
+        self._one_line = _OneLine(self)
+        self.setItemDelegateForColumn(1, self._one_line)
 
     def setModel(self, model) -> None:
         super().setModel(model)
@@ -280,10 +311,14 @@ class MarksTable(QTableView):
         width = self.viewport().width()
         pos = max(self.sizeHintForColumn(2), hh.sectionSizeHint(2))
         rest = max(0, width - pos)
-        show_note = rest >= 2 * self.NOTE_MIN
+        fm = self.fontMetrics()
+        model = self.model()
+        titles = [model.index(r, 0).data() or "" for r in range(min(model.rowCount(), 200))]
+        need = max([hh.sectionSizeHint(0)] + [fm.horizontalAdvance(t) + 16 for t in titles])
+        show_note = rest - need >= self.NOTE_MIN
         self.setColumnHidden(1, not show_note)
         hh.resizeSection(2, pos)
-        title = int(rest * 0.55) if show_note else rest
+        title = need if show_note else rest
         hh.resizeSection(0, max(hh.minimumSectionSize(), title))
 
     def resizeEvent(self, ev) -> None:
@@ -309,9 +344,13 @@ class MarksPanel(QWidget):
         self.add_button = QPushButton("Add mark")
         self.add_button.setToolTip("Save the current voxel as a mark (Ctrl+M)")
         self.go_button = QPushButton("Go to")
+        self.go_button.setToolTip("Go to the selected mark (or click its row)")
         self.up_button = QPushButton("Up")
+        self.up_button.setToolTip("Move the selected mark up the list (or drag its row)")
         self.down_button = QPushButton("Down")
+        self.down_button.setToolTip("Move the selected mark down the list")
         self.delete_button = QPushButton("Delete")
+        self.delete_button.setToolTip("Delete the selected mark (Edit > Undo brings it back)")
         for b in (
             self.add_button,
             self.go_button,
@@ -338,15 +377,14 @@ class MarksPanel(QWidget):
         self.table.setDefaultDropAction(Qt.DropAction.MoveAction)
         self.table.setAlternatingRowColors(True)
         self.table.setShowGrid(False)
-        self.table.setWordWrap(False)
-        self.table.verticalHeader().setDefaultSectionSize(24)
+        self.table.verticalHeader().setMinimumSectionSize(24)
         lay.addWidget(self.table, 3)
         note_label = QLabel("Note of the selected mark")
         note_label.setObjectName("hint")
         lay.addWidget(note_label)
         self.note = QPlainTextEdit()
         self.note.setObjectName("mark_note")
-        self.note.setPlaceholderText("Select a mark to read or edit its note.")
+        self.note.setPlaceholderText(NO_MARK_SELECTED)
         self.note.setMaximumHeight(110)
         self.note.setEnabled(False)
         lay.addWidget(self.note, 1)
@@ -370,6 +408,11 @@ class MarksPanel(QWidget):
         self.delete_button.clicked.connect(lambda: self.delete(self.current_row()))
         self.import_button.clicked.connect(self.ask_import)
         self.export_button.clicked.connect(self.ask_export)
+        self.delete_action = QAction("Delete mark", self.table)
+        self.delete_action.setShortcut(QKeySequence("Del"))
+        self.delete_action.setShortcutContext(Qt.ShortcutContext.WidgetShortcut)
+        self.delete_action.triggered.connect(lambda: self.delete(self.current_row()))
+        self.table.addAction(self.delete_action)
         self.table.clicked.connect(lambda idx: self.jump(idx.row()))
         self.table.activated.connect(lambda idx: self.jump(idx.row()))
         self.table.selectionModel().currentRowChanged.connect(lambda *_: self._show_note())
@@ -411,13 +454,15 @@ class MarksPanel(QWidget):
         n = len(self.state.marks)
         self.note.blockSignals(True)
         if 0 <= row < n:
-            text = self.state.marks[row].note
-            if self.note.toPlainText() != text:
-                self.note.setPlainText(text)
+            mark = self.state.marks[row]
+            if self.note.toPlainText() != mark.note:
+                self.note.setPlainText(mark.note)
             self.note.setEnabled(True)
+            self.note.setPlaceholderText(f"Write a note for '{_short(mark.title)}' here.")
         else:
             self.note.setPlainText("")
             self.note.setEnabled(False)
+            self.note.setPlaceholderText(NO_MARK_SELECTED)
         self.note.blockSignals(False)
         self.up_button.setEnabled(0 < row < n)
         self.down_button.setEnabled(0 <= row < n - 1)
@@ -443,8 +488,23 @@ class MarksPanel(QWidget):
         xyz = tuple(float(v) for v in run.voxel_to_mm(self.state.voxel))
         row = self.model.add(xyz, title, note)
         self.select(row)
-        self._message(f"Added mark {row + 1}: {self.state.marks[row].title}")
+        self.note_here()
+        self._message(
+            f"Added mark {row + 1}: {self.state.marks[row].title}; write its note below "
+            "(Edit > Undo takes it back)"
+        )
         return row
+
+    def note_here(self) -> None:
+        """Show the Marks part and put the cursor in the selected mark's note."""
+        dock = self.parent()
+        while dock is not None and not isinstance(dock, QDockWidget):
+            dock = dock.parent()
+        if dock is not None:
+            dock.show()
+            dock.raise_()
+        self.note.setFocus(Qt.FocusReason.OtherFocusReason)
+        self.note.moveCursor(QTextCursor.MoveOperation.End)
 
     def ask_add(self, offscreen: bool | None = None) -> int:
         """Ask for a title and a note (a dialog on screen; offscreen the default title)."""
@@ -487,7 +547,7 @@ class MarksPanel(QWidget):
             return False
         mark = self.model.delete(row)
         self.select(min(row, len(self.state.marks) - 1))
-        self._message(f"Deleted mark '{mark.title}'")
+        self._message(f"Deleted mark '{_short(mark.title)}'. Edit > Undo (Ctrl+Z) brings it back.")
         return True
 
     def import_tsv(self, path: str | os.PathLike[str], replace: bool = True) -> bool:
@@ -500,7 +560,7 @@ class MarksPanel(QWidget):
             return False
         if not replace:
             marks = MarkList([*self.state.marks, *marks])
-        self.state.set_marks(marks)
+        self.state.set_marks(marks, saved=replace, text=f"import marks from {Path(path).name}")
         self._message(f"Read {len(marks)} marks from {Path(path).name}")
         return True
 
@@ -511,6 +571,7 @@ class MarksPanel(QWidget):
         except VoxelscopeError as err:
             self._message(str(err))
             return None
+        self.state.marks_saved()
         self._message(f"Wrote {len(self.state.marks)} marks to {out}")
         return out
 
@@ -536,12 +597,14 @@ class MarksPanel(QWidget):
             replace = box.clickedButton() is not add
         self.import_tsv(path, replace=replace)
 
-    def ask_export(self) -> None:
+    def ask_export(self) -> Path | None:
+        """Ask where to write the marks as TSV; the file written, None if cancelled."""
         start = str(Path(self._folder()) / "marks.tsv") if self._folder() else "marks.tsv"
         path, _ = QFileDialog.getSaveFileName(self, "Export marks", start, MARKS_FILTER)
-        if path:
-            # the file dialog has already asked before overwriting
-            self.export_tsv(path, force=True)
+        if not path:
+            return None
+        # the file dialog has already asked before overwriting
+        return self.export_tsv(path, force=True)
 
 
 def install(window) -> MarksPanel:

@@ -24,7 +24,7 @@ import os
 from collections.abc import Callable
 from pathlib import Path
 
-from PySide6.QtCore import QByteArray, QEvent, QObject, Qt, QTimer
+from PySide6.QtCore import QByteArray, QObject, Qt, QTimer
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import QApplication, QFileDialog, QMenu, QMessageBox
 
@@ -190,6 +190,7 @@ def save_window_session(window, path, force: bool = False) -> Path:
     """Write the window's session to ``path`` (atomic; existing file only with ``force``)."""
     out = save_session(collect_session(window), path, force=force)
     window.session_path = out
+    window.state.marks_saved()
     return out
 
 
@@ -320,9 +321,12 @@ def apply_session(
     name = Path(loaded.path).name if loaded.path is not None else "session"
 
     def finish() -> None:
-        _add_session_runs(window, files, notes, refused)
-        _apply_settings(window, s, notes)
-        window.state.set_marks(MarkList(s.marks))
+        with window.state.without_history():  # the session is where a new history starts
+            _add_session_runs(window, files, notes, refused)
+            _apply_settings(window, s, notes)
+            # recovered marks (no session file) were never saved by the user
+            window.state.set_marks(MarkList(s.marks), saved=loaded.path is not None)
+        window.state.history.clear()
         restore_layout(window, s.layout, geometry=geometry)
         if loaded.path is not None:
             window.session_path = Path(loaded.path)
@@ -475,7 +479,8 @@ class Autosave(QObject):
             sig.connect(self.significant)
         st.voxel_changed.connect(self.changed)
         st.units_changed.connect(self.changed)
-        window.installEventFilter(self)
+        # a clean close clears the file: MainWindow.closeEvent, once the close is certain
+        # (the user may still cancel it to save marks)
         app = QApplication.instance()
         if app is not None:
             app.aboutToQuit.connect(self.clear)
@@ -520,11 +525,6 @@ class Autosave(QObject):
             return clear_recovery(self.name, self.directory)
         except OSError:
             return False
-
-    def eventFilter(self, obj, ev) -> bool:
-        if obj is self.window and ev.type() == QEvent.Type.Close:
-            self.clear()
-        return False
 
 
 def offer_recovery(window, directory=None, ask: Callable[[Path], bool] | str = "ask") -> bool:

@@ -4,14 +4,25 @@ Views listen to :class:`ViewerState` and never to each other; user actions call 
 setters. Data flow is one way: input event -> state -> recompute -> views. A voxel's fits
 come from :meth:`voxelscope.core.model.Analysis.fit_voxel`, the same function the command
 line uses, so the window and ``voxelscope fit`` print the same numbers.
+
+Undo and redo (Edit menu) live here too: ``ViewerState.history`` is one ``QUndoStack``.
+Every model change that goes through :meth:`ViewerState.update_settings` (contrast,
+kernels, noise, drift, confounds, ...) and every change to the marks
+(:meth:`ViewerState.record_marks`, :meth:`ViewerState.set_marks`) is one step; a step
+holds the settings, or the (immutable) marks, before and after, so undoing puts back
+exactly what was there whatever a setting or a mark holds. Opening a run or another
+events file starts a new history (the old steps name another model).
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, replace
+from collections.abc import Iterator
+from contextlib import contextmanager
+from dataclasses import dataclass, fields, replace
 
 import numpy as np
 from PySide6.QtCore import QObject, Signal
+from PySide6.QtGui import QUndoCommand, QUndoStack
 
 from voxelscope.core.combine import CombinedFit, combine_fits, run_labels
 from voxelscope.core.errors import VoxelscopeError
@@ -23,7 +34,7 @@ from voxelscope.gui.orient import DisplayGrid
 
 qtfix.install()
 
-__all__ = ["MapSettings", "RunFit", "ViewerState"]
+__all__ = ["MapSettings", "RunFit", "ViewerState", "settings_change_words"]
 
 UNITS = ("data", "percent")
 
@@ -32,6 +43,87 @@ UNITS = ("data", "percent")
 #: cosine drift, constant), as on the command line. Confound columns found beside the run
 #: are listed in Model but switched off until the user picks them.
 START_SETTINGS = ModelSettings(confound_columns=())
+
+
+#: Words for a model setting in the Edit menu ("Undo contrast", "Redo noise model").
+_SETTING_WORDS = {
+    "contrast": "contrast",
+    "kernels": "kernels",
+    "noise": "noise model",
+    "highpass_s": "high-pass",
+    "onset_shift_s": "onset shift",
+    "derivatives": "derivatives",
+    "confound_columns": "confounds",
+    "fir_window_s": "FIR span",
+    "fir_bin_s": "FIR bins",
+    "drop_volumes": "volumes dropped",
+    "censor_fd_mm": "motion limit",
+    "modulators": "modulators",
+    "orthogonalize": "modulator orthogonalising",
+}
+
+
+def settings_change_words(old: ModelSettings, new: ModelSettings) -> str:
+    """What changed between two model settings, in the Edit menu's words.
+
+    >>> settings_change_words(ModelSettings(), ModelSettings(contrast="tap"))
+    "contrast 'tap'"
+    >>> settings_change_words(ModelSettings(), ModelSettings(noise="ols", drop_volumes=2))
+    'noise model, volumes dropped'
+    """
+    changed = [
+        f.name for f in fields(ModelSettings) if getattr(old, f.name) != getattr(new, f.name)
+    ]
+    if changed == ["contrast"]:
+        text = new.contrast or "default"
+        return f"contrast '{text if len(text) <= 30 else text[:29] + '…'}'"
+    words = [_SETTING_WORDS.get(n, n.replace("_", " ")) for n in changed]
+    return ", ".join(words) if len(words) <= 3 else "model settings"
+
+
+class _SettingsStep(QUndoCommand):
+    """One model change: the settings before and after (the change is already made)."""
+
+    def __init__(self, state: ViewerState, old: ModelSettings, new: ModelSettings) -> None:
+        super().__init__(settings_change_words(old, new))
+        self.state, self.old, self.new = state, old, new
+        self.done = True  # pushed after the state applied it
+
+    def redo(self) -> None:
+        if self.done:
+            self.done = False
+            return
+        self.state._put_settings(self.new, f"Redone: {self.text()}")
+
+    def undo(self) -> None:
+        self.state._put_settings(self.old, f"Undone: {self.text()}")
+
+
+class _MarksStep(QUndoCommand):
+    """One change to the marks: the list before and after (marks are immutable)."""
+
+    def __init__(self, state: ViewerState, text: str, before, after, merge: str = "") -> None:
+        super().__init__(text)
+        self.state, self.before, self.after, self.merge = state, list(before), list(after), merge
+        self.done = True
+
+    def id(self) -> int:
+        return 17 if self.merge else -1
+
+    def mergeWith(self, other) -> bool:
+        if not isinstance(other, _MarksStep) or other.merge != self.merge:
+            return False
+        self.after = other.after
+        return True
+
+    def redo(self) -> None:
+        if self.done:
+            self.done = False
+            return
+        self.state._put_marks(self.after, f"Redone: {self.text()}")
+
+    def undo(self) -> None:
+        self.state._put_marks(self.before, f"Undone: {self.text()}")
 
 
 @dataclass(frozen=True)
@@ -129,6 +221,10 @@ class ViewerState(QObject):
         self.combined: list[CombinedFit] = []
         self.signal_run = 0
         self.refusal = ""
+        # undo/redo of model changes and marks; the marks as last written or read
+        self.history = QUndoStack(self)
+        self._recording = True
+        self._saved_marks: list = []
         qtfix.start_timer(self)
 
     # ------------------------------------------------------------------ accessors
@@ -183,6 +279,7 @@ class ViewerState(QObject):
         self.run_fits = []
         self.combined = []
         self.signal_run = 0
+        self.history.clear()  # the old steps name another run's model
         self.run_changed.emit()
         self.runs_changed.emit()
         self.underlay_changed.emit()
@@ -219,6 +316,7 @@ class ViewerState(QObject):
         self.settings = START_SETTINGS
         self.contrast_text = ""
         self.contrast_problem = ""
+        self.history.clear()  # the old steps name other conditions
         self.run_changed.emit()
         self.settings_changed.emit(self.settings)
         self.contrast_error.emit("")
@@ -267,6 +365,8 @@ class ViewerState(QObject):
             self.settings_changed.emit(old)
             return False
         self.settings_changed.emit(new)
+        if self._recording:
+            self.history.push(_SettingsStep(self, old, new))
         if self.analysis is not None and (
             new.modulators != old.modulators or new.orthogonalize != old.orthogonalize
         ):
@@ -303,6 +403,55 @@ class ViewerState(QObject):
             self.message.emit(w)
         return True
 
+    # ------------------------------------------------------------------ history
+
+    @contextmanager
+    def without_history(self) -> Iterator[None]:
+        """Changes made inside are not undo steps (a session being applied, a slide
+        showing a mark's own model)."""
+        before = self._recording
+        self._recording = False
+        try:
+            yield
+        finally:
+            self._recording = before
+
+    def _put_settings(self, settings: ModelSettings, say: str) -> None:
+        """Undo/redo: put back whole settings (the contrast box follows)."""
+        old = self.settings
+        self.settings = settings
+        self.contrast_text = settings.contrast or ""
+        self.contrast_problem = ""
+        if not self.recompute():
+            self.settings = old
+            self.settings_changed.emit(old)
+            return
+        self.settings_changed.emit(settings)
+        self.contrast_error.emit("")
+        self.message.emit(say)
+
+    def record_marks(self, text: str, before, merge: str = "") -> None:
+        """The marks were just changed from ``before`` (a list of marks): one undo step
+        called ``text``; consecutive steps with the same non-empty ``merge`` key (typing in
+        one note) are one step. Emits ``marks_changed``."""
+        if self._recording:
+            self.history.push(_MarksStep(self, text, before, list(self.marks), merge))
+        self.marks_changed.emit()
+
+    def _put_marks(self, marks, say: str) -> None:
+        self.marks = MarkList(marks)
+        self.marks_changed.emit()
+        self.message.emit(say)
+
+    def marks_saved(self) -> None:
+        """The marks as they are now were written to (or read from) a file."""
+        self._saved_marks = list(self.marks)
+
+    def unsaved_marks(self) -> bool:
+        """The marks differ from those last saved or read (an undo back to them counts as
+        saved)."""
+        return list(self.marks) != self._saved_marks
+
     def set_contrast(self, text: str) -> bool:
         """Contrast as typed; a bad one shows an error and keeps the last good fit."""
         self.contrast_text = text
@@ -337,10 +486,15 @@ class ViewerState(QObject):
 
     # ------------------------------------------------------------------ marks
 
-    def set_marks(self, marks: MarkList) -> None:
-        """Replace the marks (import, session); views listen to ``marks_changed``."""
+    def set_marks(self, marks: MarkList, saved: bool = True, text: str = "replace marks") -> None:
+        """Replace the marks (import, session); views listen to ``marks_changed``.
+
+        One undo step; ``saved``: the new marks are those of a file (nothing to save)."""
+        before = list(self.marks)
         self.marks = marks if isinstance(marks, MarkList) else MarkList(marks)
-        self.marks_changed.emit()
+        self.record_marks(text, before)
+        if saved:
+            self.marks_saved()
 
     def jump_to_mark(self, index: int) -> bool:
         """Move to the voxel nearest a mark; a mark outside the grid is a one-line message."""

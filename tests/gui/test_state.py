@@ -1,0 +1,112 @@
+"""ViewerState's history: undo and redo of model changes and of the marks (Edit menu)."""
+
+from PySide6.QtCore import Qt
+
+from voxelscope.core.marks import Mark, MarkList
+from voxelscope.core.model import ModelSettings
+from voxelscope.gui.state import settings_change_words
+
+
+def _open(window, spec):
+    assert window.open_run(spec["run"], background=False), window.last_error
+    window.state.set_voxel(spec["hot"])
+    return window.state
+
+
+def test_undo_redo_model_changes_refit(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    start = st.settings
+    t0 = st.fits.by_kernel("double-gamma").t
+    assert st.update_settings(noise="ols")
+    assert window.set_contrast_text("tap - tone")
+    t2 = st.fits.by_kernel("double-gamma").t
+    assert window.undo_action.text() == "&Undo contrast 'tap - tone'"
+    qtbot.keyClick(window, Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)
+    assert st.settings == start.with_(noise="ols")
+    assert window.model_panel.contrast.text() == ""
+    assert "Undone: contrast 'tap - tone'" in window.statusBar().currentMessage()
+    window.undo_action.trigger()
+    assert st.settings == start
+    assert st.fits.by_kernel("double-gamma").t == t0  # the same voxel refitted
+    # Ctrl+Y and Ctrl+Shift+Z redo
+    qtbot.keyClick(window, Qt.Key.Key_Y, Qt.KeyboardModifier.ControlModifier)
+    assert st.settings.noise == "ols"
+    mods = Qt.KeyboardModifier.ControlModifier | Qt.KeyboardModifier.ShiftModifier
+    qtbot.keyClick(window, Qt.Key.Key_Z, mods)
+    assert st.settings.contrast == "tap - tone"
+    assert window.model_panel.contrast.text() == "tap - tone"
+    assert st.fits.by_kernel("double-gamma").t == t2
+    assert not window.redo_action.isEnabled()
+
+
+def test_kernels_undo_through_the_model_part(window, ras_run):
+    st = _open(window, ras_run)
+    box = window.model_panel.kernel_boxes["gamma"]
+    box.setChecked(False)
+    assert "gamma" not in st.settings.kernels
+    window.undo_action.trigger()
+    assert "gamma" in st.settings.kernels and box.isChecked()
+
+
+def test_refused_change_is_no_step_and_a_new_run_starts_a_new_history(window, ras_run):
+    st = _open(window, ras_run)
+    assert not st.set_contrast("nosuch")
+    assert st.history.count() == 0
+    assert st.update_settings(noise="ols")
+    assert st.history.count() == 1
+    assert window.open_run(ras_run["run"], background=False)
+    assert st.history.count() == 0
+
+
+def test_without_history_makes_no_step(window, ras_run):
+    st = _open(window, ras_run)
+    with st.without_history():
+        assert st.update_settings(noise="ols")
+        st.set_marks(MarkList([Mark(0, 0, 0, "a")]))
+    assert st.history.count() == 0 and st.settings.noise == "ols"
+
+
+def test_marks_undo_redo_and_unsaved(window, ras_run):
+    st = _open(window, ras_run)
+    panel = window.marks_panel
+    assert not st.unsaved_marks()
+    panel.add_current("first")
+    panel.add_current("second")
+    panel.model.set_note(1, "n")
+    panel.model.set_note(1, "no")
+    panel.model.set_note(1, "note")  # typing in one note: one step
+    assert st.unsaved_marks()
+    assert [m.note for m in st.marks] == ["", "note"]
+    assert panel.delete(0)
+    assert [m.title for m in st.marks] == ["second"]
+    assert "Edit > Undo (Ctrl+Z) brings it back" in window.statusBar().currentMessage()
+    window.undo_action.trigger()
+    assert [m.title for m in st.marks] == ["first", "second"]
+    assert panel.model.rowCount() == 2
+    window.undo_action.trigger()  # the note, all three keystrokes at once
+    assert [m.note for m in st.marks] == ["", ""]
+    window.undo_action.trigger()
+    window.undo_action.trigger()
+    assert len(st.marks) == 0 and not st.unsaved_marks()
+    window.redo_action.trigger()
+    assert [m.title for m in st.marks] == ["first"] and st.unsaved_marks()
+
+
+def test_saving_marks_clears_unsaved(window, ras_run, tmp_path):
+    st = _open(window, ras_run)
+    window.marks_panel.add_current("first")
+    assert st.unsaved_marks()
+    assert window.marks_panel.export_tsv(tmp_path / "m.tsv") is not None
+    assert not st.unsaved_marks()
+    window.marks_panel.model.rename(0, "renamed")
+    assert st.unsaved_marks()
+    window.undo_action.trigger()  # back to what the file holds
+    assert not st.unsaved_marks()
+
+
+def test_settings_change_words():
+    """The Edit menu's words for a change (our own wording, checked by hand)."""
+    s = ModelSettings()
+    assert settings_change_words(s, s.with_(kernels=("boxcar",))) == "kernels"
+    assert settings_change_words(s, s.with_(highpass_s=None)) == "high-pass"
+    assert settings_change_words(s, s.with_(contrast="x" * 40)) == f"contrast '{'x' * 29}…'"
