@@ -51,11 +51,21 @@ def test_table_equals_core_fit(window, ras_run, noise):
         row = table[f.kernel]
         for col, attr in COLUMNS.items():
             assert row[col] == pytest.approx(getattr(f, attr), rel=1e-12, abs=1e-300)
-        if noise == "ar1":
-            assert row["rho"] == pytest.approx(f.rho, rel=1e-12)
+        r = list(table).index(f.kernel)
+        if noise == "ar1":  # rho sits in the notes line and the copied table, not a column
+            assert window.fits.model.raw(r, "rho") == pytest.approx(f.rho, rel=1e-12)
+            assert f"{f.kernel} {f.rho:.2f}" in window.fits.notes.text()
         else:
-            assert "rho" not in row
-    assert table["fir"]["F"] == pytest.approx(fits.by_kernel("fir").f, rel=1e-12)
+            assert window.fits.model.raw(r, "rho") is None
+        assert "rho" not in row
+    fir = fits.by_kernel("fir")
+    assert window.fits.model.raw(list(table).index("fir"), "F") == pytest.approx(fir.f, rel=1e-12)
+    assert f"fir F({fir.f_df[0]}, {fir.f_df[1]})" in window.fits.notes.text()
+    assert "\tF\tdf F\tp F" in window.fits.model.to_tsv().splitlines()[0]
+    # the columns are the same whatever the model (no F columns that come and go)
+    assert st.update_settings(kernels=("boxcar", "gamma"))
+    assert list(_table(window)["gamma"]) == list(table["fir"])
+    assert "F test" not in window.fits.notes.text()
 
 
 def test_boxcar_row_matches_statsmodels(window, ras_run):

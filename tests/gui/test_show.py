@@ -42,8 +42,9 @@ def test_show_mode_keeps_only_slices_signal_and_fits(shown):
     assert {"Model", "Fits"} <= before
     shown.show_mode.enter()
     assert shown.show_mode.active
-    assert visible_docks(shown) == {"Fits"}
-    assert shown.slices.isVisible() and shown.signal.isVisible()
+    assert visible_docks(shown) == set()  # Fits sits beside the slices, out of its dock
+    assert shown.slices.isVisible() and shown.signal.isVisible() and shown.fits.isVisible()
+    assert shown.fits.parent() is shown.show_mode.top
     assert not shown.menuBar().isVisible()
     banner = shown.show_mode.banner
     assert banner.isVisible()
@@ -97,6 +98,8 @@ def test_escape_restores_the_layout_and_looks(shown, qtbot):
     assert not shown.show_mode.banner.isVisible()
     assert shown.signal.curves["gamma"].opts["pen"].widthF() == pytest.approx(width)
     assert shown.slices.views["axial"].vline.pen.widthF() == pytest.approx(cross)
+    assert shown.docks["Fits"].widget() is shown.fits  # back in its dock
+    assert shown.workspace.count() == 2  # no banner, no Show mode row left behind
 
 
 def test_f5_action_toggles(shown):

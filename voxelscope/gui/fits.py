@@ -1,7 +1,10 @@
 """Fits: one row per kernel at the current voxel (a Qt table model fed from the state).
 
-Columns: colour marker, kernel, beta, variance, t, df, p, R², and rho under AR(1); F, its
-df and p when the model has derivatives or FIR bins. The numbers are the fields of
+Columns: colour marker, kernel, beta, variance, t, df, p, R², the same whatever the model,
+so the table keeps its shape (and its width) when the model changes. Under the table, one
+line each: the F test of all the condition's columns when the model has derivatives or FIR
+bins, and the noise model's coefficients (rho under AR(1), the AR(p) coefficients); the
+copied table has them as columns. The numbers are the fields of
 :class:`voxelscope.core.model.KernelFit` (from ``Analysis.fit_voxel``), so they equal what
 the command line prints. Copy as tab-separated text with Ctrl+C or the context menu.
 """
@@ -10,6 +13,7 @@ from __future__ import annotations
 
 import math
 
+import numpy as np
 from PySide6.QtCore import QAbstractTableModel, QEvent, QModelIndex, Qt, Signal
 from PySide6.QtGui import QAction, QColor, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
@@ -26,7 +30,7 @@ from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["FitsModel", "FitsPanel", "format_value", "runs_summary"]
+__all__ = ["FitsModel", "FitsPanel", "f_summary", "format_value", "noise_summary", "runs_summary"]
 
 RAW_ROLE = Qt.ItemDataRole.UserRole + 1
 
@@ -40,6 +44,9 @@ _BASE = [
     ("p", "Two-sided p value of t"),
     ("R²", "Fraction of the data variance explained by the whole model"),
 ]
+
+#: Columns of the copied table beyond the shown ones, when some kernel has a value.
+_EXTRA_TSV = ("F", "df F", "p F", "rho")
 
 
 #: Typical widest cell texts of a column, for laying out the table before any fit.
@@ -105,6 +112,57 @@ def runs_summary(combined) -> list[str]:
         else:
             out.append(f"{run} cannot be combined here ({under}).")
     return out
+
+
+def f_summary(fits) -> str:
+    """The F test of every kernel that has one, in one line ("" when none has).
+
+    Examples
+    --------
+    >>> from types import SimpleNamespace as NS
+    >>> print(f_summary(NS(fits=[NS(kernel="fir", f=12.3456, f_df=(20, 197), f_p=1.2e-8)])))
+    F test of all the condition's columns: fir F(20, 197) = 12.346, p 1.20e-08
+    """
+    parts = [
+        f"{f.kernel} F({f.f_df[0]}, {f.f_df[1]}) = {format_value('F', f.f)}, "
+        f"p {format_value('p F', f.f_p)}"
+        for f in fits.fits
+        if f.f_df is not None
+    ]
+    return ("F test of all the condition's columns: " + " · ".join(parts)) if parts else ""
+
+
+def noise_summary(fits) -> tuple[str, str]:
+    """The noise model's coefficients of every kernel in one line, and the long form.
+
+    AR(p): the coefficients per kernel and where they come from, said once; AR(1): rho per
+    kernel; OLS: nothing. The long form (a tooltip) has one line per kernel.
+    """
+    parts, long = [], []
+    source = set()
+    for f in fits.fits:
+        est = getattr(f, "noise_estimate", None)
+        if est is not None:
+            parts.append(f"{f.kernel} {', '.join(f'{v:.2f}' for v in est.phi)}")
+            long.append(f"{f.kernel}: {est.describe()}")
+            source.add(f"from {est.n_neighbours} voxels around ({est.fwhm_mm:g} mm)")
+        elif f.result.noise == "arp" and f.result.ar is not None:
+            coefs = np.asarray(f.result.ar, dtype=float).reshape(-1)
+            parts.append(f"{f.kernel} {', '.join(f'{v:.2f}' for v in coefs)}")
+            long.append(f"{f.kernel}: {f.noise_text}")
+            source.add("from this voxel alone")
+        elif f.rho is not None:
+            parts.append(f"{f.kernel} {f.rho:.2f}")
+            long.append(f"{f.kernel}: {f.noise_text}")
+    if not parts:
+        return "", ""
+    if any(f.result.noise == "arp" for f in fits.fits):
+        head = "AR coefficients"
+        if len(source) == 1:
+            head += " " + source.pop()
+    else:
+        head = "AR(1) rho"
+    return f"{head}: " + " · ".join(parts), "\n".join(long)
 
 
 class FitsModel(QAbstractTableModel):
@@ -181,21 +239,14 @@ class FitsModel(QAbstractTableModel):
 
     def _on_fits(self, fits) -> None:
         rows: list[dict] = []
+        # the same columns whatever the model (a column that came and went moved the
+        # others and could push the table into sideways scrolling): the F test and AR(1)'s
+        # rho are lines under the table, and columns of the copied table
         cols = list(_BASE)
         several = self._several()
         if several is not None:
             cols, rows = several
         elif fits is not None and fits.fits:
-            ar1 = any(f.result.rho is not None for f in fits.fits)
-            has_f = any(f.f_df is not None for f in fits.fits)
-            if ar1:
-                cols.append(("rho", "AR(1) coefficient of the residuals"))
-            if has_f:
-                cols += [
-                    ("F", "F test of all the condition's columns (derivatives or FIR bins)"),
-                    ("df F", "Degrees of freedom of F (numerator, denominator)"),
-                    ("p F", "p value of F"),
-                ]
             for f in fits.fits:
                 rows.append(
                     {
@@ -284,11 +335,14 @@ class FitsModel(QAbstractTableModel):
     def to_tsv(self) -> str:
         """The table as tab-separated text: a header row, then one row per kernel."""
         names = [c for c in self.columns() if c != ""]
+        for extra in _EXTRA_TSV:  # shown in the lines under the table, copied as columns
+            if extra not in names and any(r.get(extra) is not None for r in self._rows):
+                names.append(extra)
         lines = ["\t".join(names)]
         for row in self._rows:
             cells = []
             for c in names:
-                v = row[c]
+                v = row.get(c)
                 if v is None:
                     cells.append("")
                 elif isinstance(v, float):
@@ -344,6 +398,8 @@ class FitsPanel(QWidget):
         self.notes.setWordWrap(True)
         lay.addWidget(self.notes)
         self.fit_width = False  # Show mode: squeeze the columns into the width
+        self.hidden_columns: tuple[str, ...] = ()  # Show mode leaves a few out
+        self.show_mode = False  # Show mode: no coefficient line
         self._widths: list[int] = []
         self._header_key = None
         self._header_widths: list[int] = []
@@ -366,7 +422,15 @@ class FitsPanel(QWidget):
         n = self.model.columnCount()
         if n == 0:
             return
-        base = self._content_widths()
+        names = self.model.columns()
+        hidden = self._hidden_now()
+        shown = [c for c in range(1, n) if names[c] not in hidden]
+        for c in range(1, n):
+            hide = c not in shown
+            if self.table.isColumnHidden(c) != hide:
+                self.table.setColumnHidden(c, hide)
+        everything = self._content_widths()
+        base = [everything[c - 1] for c in shown]
         first = max(30, hh.minimumSectionSize())  # the colour marker column
         room = self.table.viewport().width() - first
         # While the columns stay the same (clicks, a drag), a column does not narrow as long
@@ -387,7 +451,7 @@ class FitsPanel(QWidget):
         # Never below a column's header, which must stay readable.
         over = sum(base) - room
         if over > 0 and room > 0:
-            heads = self._header_widths[1:]
+            heads = [self._header_widths[c] for c in shown]
             slack = [max(0, min(6, b - h)) for b, h in zip(base, heads)]
             if sum(slack) > 0:
                 frac = min(1.0, over / sum(slack))
@@ -401,11 +465,30 @@ class FitsPanel(QWidget):
         elif self.fit_width and room > 0:
             scale = room / sum(need)
             need = [max(24, int(w * scale)) for w in need]
-        widths = [first, *need]
+        by_column = dict(zip(shown, need))
+        widths = [first] + [by_column.get(c, 0) for c in range(1, n)]
         if widths != self._widths:
             self._widths = widths
             for c, width in enumerate(widths):
-                self.table.setColumnWidth(c, width)
+                if width:
+                    self.table.setColumnWidth(c, width)
+
+    def _hidden_now(self) -> set[str]:
+        """Columns left out now (:attr:`hidden_columns` that the table has)."""
+        names = self.model.columns()
+        return set(self.hidden_columns) & set(names)
+
+    def refresh(self) -> None:
+        """Caption, notes and columns again (after :attr:`show_mode` changed)."""
+        self._on_fits(self.state.fits)
+        self.relayout()
+
+    def set_hidden_columns(self, names) -> None:
+        """Leave these columns out of the table (Show mode); ``()`` shows every column."""
+        names = tuple(names)
+        if names != self.hidden_columns:
+            self.hidden_columns = names
+            self.relayout()
 
     def relayout(self) -> None:
         """Lay the columns out again (after a change of font or of ``fit_width``)."""
@@ -441,7 +524,10 @@ class FitsPanel(QWidget):
 
     def table_width(self) -> int:
         """Pixels the table needs to show every column without scrolling."""
-        need = 30 + sum(w + 8 for w in self._content_widths())
+        names = self.model.columns()
+        widths = self._content_widths()
+        hidden = self._hidden_now()
+        need = 30 + sum(w + 8 for c, w in enumerate(widths, start=1) if names[c] not in hidden)
         margins = self.layout().contentsMargins()
         return need + 2 * self.table.frameWidth() + margins.left() + margins.right() + 4
 
@@ -483,14 +569,14 @@ class FitsPanel(QWidget):
             )
             notes += [f"{r.label}: {r.note}" for r in st.run_fits if r.note]
             notes += runs_summary(st.combined)
-        if fits is not None and s.noise == "arp":
-            # say how each kernel's AR coefficients were obtained (the map's whitening)
-            notes.extend(
-                f"{f.kernel}: "
-                + (f.noise_estimate.short() if f.noise_estimate is not None else f.noise_text)
-                for f in fits.fits
-            )
+        f_line = f_summary(fits) if fits is not None else ""
+        if f_line:
+            notes.append(f_line)
+        noise_line, noise_tip = noise_summary(fits) if fits is not None else ("", "")
+        if noise_line and not self.show_mode:
+            notes.append(noise_line)
         if fits is not None and not fits.fits:
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))
+        self.notes.setToolTip(noise_tip)
         self.notes.setVisible(bool(notes))

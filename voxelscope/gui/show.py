@@ -1,18 +1,21 @@
 """Show mode: walk a room through the marks with big, readable plots.
 
-**View ▸ Show mode** (F5) keeps only Slices, Signal and Fits, draws text and lines larger and
-puts the current mark's title and note in a banner above the slices. The arrow keys, Page
-Up/Down, Space, Home and End step through the marks (the voxel goes to each mark's
-nearest voxel, ``ViewerState.jump_to_mark``), instead of moving the voxel; Esc (or F5)
-leaves and puts every part back where it was (``QMainWindow.saveState`` before,
-``restoreState`` after).
+**View ▸ Show mode** (F5) hides the docks, menus and status bar and lays the middle of the
+window out for a projector: the current mark's title, note and model in a banner at the
+top; Slices and the Fits table side by side below it; Signal across the whole width at the
+bottom with most of the height. All text is at least :data:`MIN_TEXT_PX` pixels, lines are
+thicker. The arrow keys, Page Up/Down, Space, Home and End step through the marks: each
+slide goes to the mark's nearest voxel and restores the model the mark was made under
+(``ViewerState.jump_to_mark``, said on the slide); a mark without a saved model is shown
+under the current model, and the slide says that too. Esc (or F5) leaves and puts every
+part back where it was (``QMainWindow.saveState`` before, ``restoreState`` after).
 """
 
 from __future__ import annotations
 
 import pyqtgraph as pg
 from PySide6.QtCore import QEvent, QObject, Qt, Signal
-from PySide6.QtGui import QAction, QFont, QKeySequence, QPen
+from PySide6.QtGui import QAction, QFont, QKeySequence, QPen, QTextDocumentFragment
 from PySide6.QtWidgets import (
     QApplication,
     QFrame,
@@ -23,53 +26,101 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-__all__ = ["SHOW_STYLE", "ShowBanner", "ShowMode", "install"]
+__all__ = ["MIN_TEXT_PX", "SHOW_STYLE", "ShowBanner", "ShowMode", "install", "model_words"]
+
+#: The smallest text in Show mode, in pixels (readable from the back of a room).
+MIN_TEXT_PX = 20
 
 #: Added to the window's stylesheet while Show mode is on (sizes for a projector).
 SHOW_STYLE = """
-QWidget { font-size: 19px; }
-QLabel#part_title { font-size: 23px; }
-QLabel#readout { font-size: 20px; padding: 7px 12px; }
-QLabel#legend { font-size: 19px; }
-QLabel#fits_caption, QLabel#fits_notes { font-size: 19px; }
-QTableView { font-size: 21px; }
-QHeaderView::section { font-size: 19px; padding: 6px 8px; }
-QDockWidget { font-size: 19px; }
+QWidget { font-size: 20px; }
+QLabel#part_title { font-size: 24px; }
+QLabel#readout { font-size: 20px; padding: 5px 12px; }
+QLabel#legend { font-size: 20px; }
+QLabel#fits_caption, QLabel#fits_notes { font-size: 20px; }
+QLabel#colour_bar_title, QLabel#colour_bar_note { font-size: 20px; }
+QTableView { font-size: 22px; }
+QHeaderView::section { font-size: 20px; padding: 4px 6px; }
+QDockWidget { font-size: 20px; }
 """
 
 _BANNER_STYLE = """
 QFrame#show_banner { background: #FFFFFF; border-bottom: 5px solid #0072B2; }
 QFrame#show_banner QLabel { background: transparent; }
-QLabel#show_title { font-size: 38px; font-weight: bold; color: #14202B; }
-QLabel#show_note { font-size: 25px; color: #222222; }
-QLabel#show_count { font-size: 22px; font-weight: bold; color: #0072B2; }
-QLabel#show_hint { font-size: 15px; color: #5A5A5A; }
+QLabel#show_title { font-size: 34px; font-weight: bold; color: #14202B; }
+QLabel#show_note { font-size: 24px; color: #222222; }
+QLabel#show_model { font-size: 20px; color: #0B4F7A; }
+QLabel#show_count { font-size: 24px; font-weight: bold; color: #0072B2; }
+QLabel#show_hint { font-size: 20px; color: #5A5A5A; }
 """
 
 NEXT_KEYS = {Qt.Key.Key_Right, Qt.Key.Key_Down, Qt.Key.Key_PageDown, Qt.Key.Key_Space}
 PREVIOUS_KEYS = {Qt.Key.Key_Left, Qt.Key.Key_Up, Qt.Key.Key_PageUp, Qt.Key.Key_Backspace}
-HINT = "→ / Page Down: next mark    ← / Page Up: previous    Esc: leave Show mode"
+HINT = "→ next   ← back   Esc leave"
+
+#: Fits columns left out in Show mode (the room reads beta, t and p; df is in the caption).
+SHOW_HIDDEN_COLUMNS = ("variance", "df")
+
+#: Share of the height below the banner that Signal gets in Show mode.
+SIGNAL_SHARE = 0.56
+
+
+def model_words(settings, default_contrast: str | None = None, kernels: bool = True) -> str:
+    """A model in a few words for a slide (the kernels left out with ``kernels=False``).
+
+    Examples
+    --------
+    >>> from voxelscope.core.model import ModelSettings
+    >>> model_words(ModelSettings(contrast="tap", kernels=("gamma", "fir")))
+    'contrast tap · gamma, fir · AR(2), smoothed · high-pass 128 s'
+    """
+    from voxelscope.core.noise import NOISE_LABELS
+
+    contrast = settings.contrast or default_contrast or "the first condition"
+    parts = [f"contrast {contrast}"]
+    if kernels:
+        parts.append(", ".join(settings.kernels) or "no kernel")
+    parts.append(NOISE_LABELS.get(settings.noise, settings.noise))
+    hp = settings.highpass_s
+    parts.append("no high-pass" if hp is None else f"high-pass {hp:g} s")
+    if settings.onset_shift_s:
+        parts.append(f"onsets {settings.onset_shift_s:+g} s")
+    if settings.derivatives:
+        parts.append("+ derivative" if settings.derivatives == 1 else "+ 2 derivatives")
+    n_conf = len(settings.confound_columns or ())
+    if n_conf:
+        parts.append(f"{n_conf} confound{'s' if n_conf != 1 else ''}")
+    if settings.drop_volumes:
+        parts.append(f"first {settings.drop_volumes} volumes left out")
+    if settings.censor_fd_mm is not None:
+        parts.append(f"volumes above {settings.censor_fd_mm:g} mm FD left out")
+    if settings.modulators:
+        parts.append("modulators " + ", ".join(settings.modulators))
+    return " · ".join(parts)
 
 
 class ShowBanner(QFrame):
-    """The current mark's number, title and note, large."""
+    """The current mark's number, title, note and model, large."""
 
     def __init__(self, parent: QWidget | None = None) -> None:
         super().__init__(parent)
         self.setObjectName("show_banner")
         self.setStyleSheet(_BANNER_STYLE)
         lay = QVBoxLayout(self)
-        lay.setContentsMargins(24, 12, 24, 12)
-        lay.setSpacing(6)
+        lay.setContentsMargins(20, 8, 20, 8)
+        lay.setSpacing(2)
         head = QHBoxLayout()
         self.count = QLabel("")
         self.count.setObjectName("show_count")
         self.title = QLabel("")
         self.title.setObjectName("show_title")
         self.title.setWordWrap(True)
+        self.hint = QLabel(HINT)
+        self.hint.setObjectName("show_hint")
         head.addWidget(self.count, 0, Qt.AlignmentFlag.AlignVCenter)
-        head.addSpacing(16)
+        head.addSpacing(14)
         head.addWidget(self.title, 1)
+        head.addWidget(self.hint, 0, Qt.AlignmentFlag.AlignVCenter)
         lay.addLayout(head)
         self.note = QLabel("")
         self.note.setObjectName("show_note")
@@ -77,9 +128,12 @@ class ShowBanner(QFrame):
         self.note.setTextFormat(Qt.TextFormat.PlainText)
         self.title.setTextFormat(Qt.TextFormat.PlainText)
         lay.addWidget(self.note)
-        self.hint = QLabel(HINT)
-        self.hint.setObjectName("show_hint")
-        lay.addWidget(self.hint)
+        self.model = QLabel("")
+        self.model.setObjectName("show_model")
+        self.model.setWordWrap(True)
+        self.model.setTextFormat(Qt.TextFormat.PlainText)
+        self.model.setVisible(False)
+        lay.addWidget(self.model)
 
     def set_mark(self, number: int, total: int, title: str, note: str) -> None:
         self.count.setText(f"{number} / {total}")
@@ -88,11 +142,19 @@ class ShowBanner(QFrame):
         self.note.setVisible(bool(note))
         self.fit_height()
 
+    def set_model(self, text: str) -> None:
+        """The line that says which model the slide is shown under."""
+        self.model.setText(text)
+        self.model.setVisible(bool(text))
+        self.fit_height()
+
     def set_message(self, text: str) -> None:
         self.count.setText("")
         self.title.setText(text)
         self.note.setText("")
         self.note.setVisible(False)
+        self.model.setText("")
+        self.model.setVisible(False)
         self.fit_height()
 
     def fit_height(self) -> None:
@@ -102,14 +164,8 @@ class ShowBanner(QFrame):
         lay.activate()
         h = lay.heightForWidth(width) if lay.hasHeightForWidth() else lay.sizeHint().height()
         h = max(int(h), 60)
-        self.setFixedHeight(h)
-        splitter = self.parentWidget()
-        if isinstance(splitter, QSplitter) and splitter.indexOf(self) == 0:
-            sizes = splitter.sizes()
-            if sizes and sizes[0] != h and sum(sizes) > h:
-                rest = sum(sizes[1:]) or 1
-                spare = sum(sizes) - h
-                splitter.setSizes([h] + [round(spare * v / rest) for v in sizes[1:]])
+        if h != self.height() or self.minimumHeight() != h:
+            self.setFixedHeight(h)
 
     def resizeEvent(self, ev) -> None:
         super().resizeEvent(ev)
@@ -139,9 +195,15 @@ class ShowMode(QObject):
         self.index = -1
         self.banner = ShowBanner()
         self.banner.hide()
-        self._in_splitter = False
+        # Slices and Fits side by side (only while Show mode is on)
+        self.top = QSplitter(Qt.Orientation.Horizontal)
+        self.top.setObjectName("show_top")
+        self.top.setChildrenCollapsible(False)
+        self.top.hide()
         self._saved_state = None
         self._saved: dict = {}
+        self._looks: dict = {}
+        self.restore_models = True  # each slide restores the mark's own model
         window.state.marks_changed.connect(self._on_marks)
 
     # ------------------------------------------------------------------ state
@@ -166,31 +228,25 @@ class ShowMode(QObject):
             "status": w.statusBar().isVisible(),
             "sheet": w.styleSheet(),
             "workspace": w.workspace.sizes(),
+            "settings": w.state.settings,
         }
-        for title, dock in w.docks.items():
-            if title != "Fits":
-                dock.hide()
-        if "Fits" in w.docks:
-            w.docks["Fits"].show()
-            w.docks["Fits"].raise_()
+        for dock in w.docks.values():
+            dock.hide()
         w.menuBar().hide()
         w.statusBar().hide()
         w.setStyleSheet(self._saved["sheet"] + SHOW_STYLE)
+        self._arrange_parts()
         self._enlarge()
-        if not self._in_splitter:
-            w.workspace.insertWidget(0, self.banner)
-            w.workspace.setStretchFactor(0, 0)
-            self._in_splitter = True
         self.banner.show()
         self.banner.fit_height()
         w.fits.fit_width = True  # every Fits column on screen, at the larger font
-        QApplication.processEvents()  # let the larger style reach the table first
-        self._fit_fits()
-        self._share_workspace()
-        QApplication.processEvents()
-        self._fit_fits()
-        w.fits.relayout()
+        w.fits.show_mode = True
+        w.fits.set_hidden_columns(SHOW_HIDDEN_COLUMNS)
+        w.fits.refresh()
         self.active = True
+        QApplication.processEvents()  # let the larger style reach the table first
+        self.share()
+        w.fits.relayout()
         QApplication.instance().installEventFilter(self)
         w.state.units_changed.connect(self._restyle_labels)
         panel = getattr(w, "marks_panel", None)
@@ -201,7 +257,38 @@ class ShowMode(QObject):
         else:
             self.index = -1
             self.banner.set_message("No marks yet: leave with Esc and add some (Ctrl+M)")
+        self.share()
         self.entered.emit()
+
+    def _arrange_parts(self) -> None:
+        """Banner on top, then Slices | Fits, then Signal (the whole width)."""
+        w = self.window
+        ws = w.workspace
+        at = max(0, ws.indexOf(w.slices))
+        dock = w.docks.get("Fits")
+        self.top.addWidget(w.slices)
+        if dock is not None:
+            self.top.addWidget(w.fits)  # out of its dock for the time of the show
+        self.top.setStretchFactor(0, 3)
+        self.top.setStretchFactor(1, 2)
+        ws.insertWidget(at, self.top)
+        ws.insertWidget(0, self.banner)
+        ws.setStretchFactor(0, 0)
+        self.top.show()
+        w.fits.show()
+
+    def _restore_parts(self) -> None:
+        w = self.window
+        ws = w.workspace
+        at = max(0, ws.indexOf(self.top))
+        ws.insertWidget(at, w.slices)
+        dock = w.docks.get("Fits")
+        if dock is not None:
+            dock.setWidget(w.fits)
+        self.top.hide()
+        self.top.setParent(None)
+        self.banner.hide()
+        self.banner.setParent(None)
 
     def leave(self) -> None:
         if not self.active:
@@ -213,8 +300,11 @@ class ShowMode(QObject):
         except (RuntimeError, TypeError):
             pass
         self.active = False
-        self.banner.hide()
         w.fits.fit_width = False
+        w.fits.show_mode = False
+        w.fits.set_hidden_columns(())
+        w.fits.refresh()
+        self._restore_parts()
         self._shrink()
         w.setStyleSheet(self._saved.get("sheet", w.styleSheet()))
         w.menuBar().setVisible(self._saved.get("menu", True))
@@ -225,40 +315,37 @@ class ShowMode(QObject):
         if sizes and len(sizes) == w.workspace.count():
             w.workspace.setSizes(sizes)
         w.fits.relayout()
+        settings = self._saved.get("settings")
+        if self.restore_models and settings is not None and settings != w.state.settings:
+            self._apply_model(settings)  # the model from before the show
         self._saved_state = None
         self.left.emit()
 
-    def _share_workspace(self, signal_share: float = 0.46) -> None:
-        """Give Slices the larger share (the room must see where the voxel is)."""
-        ws = self.window.workspace
-        sizes = ws.sizes()
-        i_sl, i_sg = ws.indexOf(self.window.slices), ws.indexOf(self.window.signal)
-        if min(i_sl, i_sg) < 0:
-            return
-        free = sizes[i_sl] + sizes[i_sg]
-        sizes[i_sg] = round(free * signal_share)
-        sizes[i_sl] = free - sizes[i_sg]
-        ws.setSizes(sizes)
-
-    def _fit_fits(self) -> None:
-        """Make the Fits dock tall enough for every kernel's row at the larger size."""
+    def share(self) -> None:
+        """Heights and widths for the show: Signal gets most of the height, Slices as
+        much width as their pictures use, Fits the rest of the top row."""
         w = self.window
-        dock = w.docks.get("Fits")
-        if dock is None:
+        ws = w.workspace
+        if not self.active or ws.indexOf(self.top) < 0:
             return
-        fits = w.fits
-        rows = max(fits.model.rowCount(), 1)
-        table = fits.table
-        need = (
-            table.horizontalHeader().sizeHint().height()
-            + rows * table.verticalHeader().defaultSectionSize()
-            + _wrapped_height(fits.caption)
-            + (_wrapped_height(fits.notes) if fits.notes.isVisible() else 0)
-            + dock.widget().layout().spacing() * 2
-            + 2 * table.frameWidth()
-            + 48  # the dock's title bar, margins and the caption's spacing
-        )
-        w.resizeDocks([dock], [int(need)], Qt.Orientation.Vertical)
+        self.banner.fit_height()
+        sizes = ws.sizes()
+        i_b, i_t, i_s = ws.indexOf(self.banner), ws.indexOf(self.top), ws.indexOf(w.signal)
+        free = sum(sizes) - (sizes[i_b] if i_b >= 0 else 0)
+        sizes[i_s] = round(free * SIGNAL_SHARE)
+        sizes[i_t] = free - sizes[i_s]
+        if i_b >= 0:
+            sizes[i_b] = self.banner.height()
+        ws.setSizes(sizes)
+        # the top row: the table's width, the slices the rest
+        cap = w.fits.caption
+        plain = QTextDocumentFragment.fromHtml(cap.text()).toPlainText()
+        # bold words are a little wider than the metrics of the plain font say
+        cap_w = round(cap.fontMetrics().horizontalAdvance(plain) * 1.08) + 24
+        need = max(w.fits.table_width(), cap_w)
+        total = sum(self.top.sizes()) or self.top.width()
+        fits_w = min(need, round(0.45 * total))
+        self.top.setSizes([total - fits_w, fits_w])
 
     # ------------------------------------------------------------------ marks
 
@@ -271,6 +358,18 @@ class ShowMode(QObject):
             return False
         return self.go(target)
 
+    def _apply_model(self, settings) -> bool:
+        """Put the window under ``settings`` (a mark's model); the contrast box follows."""
+        w = self.window
+        ok = w.state.update_settings(**{
+            f: getattr(settings, f) for f in settings.__dataclass_fields__
+        })  # fmt: skip
+        if ok:
+            w.state.contrast_text = settings.contrast or ""
+            w.state.contrast_problem = ""
+            w.state.contrast_error.emit("")
+        return ok
+
     def go(self, index: int) -> bool:
         marks = self.window.state.marks
         if not 0 <= index < len(marks):
@@ -281,13 +380,37 @@ class ShowMode(QObject):
         panel = getattr(self.window, "marks_panel", None)
         if panel is not None:
             panel.select(index)
+        self._show_model(m)
         ok = self.window.state.jump_to_mark(index)
         if not ok:
             self.banner.note.setText("This mark is outside the open run's grid.")
             self.banner.note.setVisible(True)
             self.banner.fit_height()
+        self.share()
         self.stepped.emit(index)
         return ok
+
+    def _show_model(self, mark) -> None:
+        """Restore the mark's own model (if it has one) and say which model is shown."""
+        st = self.window.state
+        analysis = st.analysis
+        default = analysis.default_contrast() if analysis is not None else None
+        model = getattr(mark, "model", None)
+        if model is None:
+            self.banner.set_model(
+                "No model saved with this mark; shown under the current one: "
+                + model_words(st.settings, default, kernels=False)
+            )
+            return
+        if self.restore_models and model != st.settings and not self._apply_model(model):
+            self.banner.set_model(
+                "The mark's own model does not fit this run; shown under "
+                + model_words(st.settings, default, kernels=False)
+            )
+            return
+        self.banner.set_model(
+            "Shown under the mark's own model: " + model_words(model, default, kernels=False)
+        )
 
     def _on_marks(self) -> None:
         if not self.active:
@@ -304,7 +427,12 @@ class ShowMode(QObject):
     # ------------------------------------------------------------------ keys
 
     def eventFilter(self, obj, ev) -> bool:
-        if not self.active or ev.type() != QEvent.Type.KeyPress:
+        if not self.active:
+            return False
+        if obj is self.window and ev.type() == QEvent.Type.Resize:
+            self.share()
+            return False
+        if ev.type() != QEvent.Type.KeyPress:
             return False
         if not isinstance(obj, QWidget) or obj.window() is not self.window:
             return False
@@ -338,13 +466,22 @@ class ShowMode(QObject):
         keep["symbol"] = sig.data_curve.opts.get("symbolSize")
         sig.data_curve.setSymbolSize(8)
         big = QFont()
-        big.setPixelSize(20)
+        big.setPixelSize(MIN_TEXT_PX)
         for plot in (sig.plot, sig.resid):
             for name in ("left", "bottom"):
                 ax = plot.getAxis(name)
-                keep["axes"].append((ax, ax.style.get("tickFont"), ax.width()))
+                # only the left axes have a fixed width (a bottom axis given one would keep
+                # it after Show mode and cut the time axis short)
+                keep["axes"].append((ax, ax.style.get("tickFont"), ax.fixedWidth))
                 ax.setStyle(tickFont=big)
-            plot.getAxis("left").setWidth(96)
+            plot.getAxis("left").setWidth(100)
+        keep["units"] = [(b, b.isVisible()) for b in (sig.unit_data, sig.unit_pct)]
+        for b, _ in keep["units"]:
+            b.setVisible(False)  # a slide shows the units on the axis, not the choice
+        keep["resid_share"] = sig.resid_share
+        sig.set_resid_share(0.4)
+        bar = w.slices.colour_bar
+        keep["bar"] = bar.set_large(True)
         for view in w.slices.views.values():
             for line in (view.vline, view.hline):
                 keep["lines"].append((line, QPen(line.pen)))
@@ -354,31 +491,20 @@ class ShowMode(QObject):
             for item in [*view._letters.values(), view.caption]:
                 keep["fonts"].append((item, QFont(item.font())))
                 f = QFont(item.font())
-                f.setPixelSize(int(f.pixelSize() * 1.5) if f.pixelSize() > 0 else 22)
+                f.setPixelSize(max(MIN_TEXT_PX, int(f.pixelSize() * 1.5)))
                 item.setFont(f)
             view._place_labels()
-        lay = sig.canvas.ci.layout
-        keep["stretch"] = (lay.rowStretchFactor(0), lay.rowStretchFactor(1))
-        lay.setRowStretchFactor(0, 5)  # the signal itself gets most of the height
-        lay.setRowStretchFactor(1, 2)
         table = w.fits.table
         keep["row"] = table.verticalHeader().defaultSectionSize()
-        table.verticalHeader().setDefaultSectionSize(38)
+        table.verticalHeader().setDefaultSectionSize(34)
         self._looks = keep
         self._restyle_labels()
 
     def _restyle_labels(self, *args) -> None:
-        sig = self.window.signal
-        for plot in (sig.plot, sig.resid):
-            for name in ("left", "bottom"):
-                ax = plot.getAxis(name)
-                if ax.labelText:
-                    ax.setLabel(
-                        ax.labelText, ax.labelUnits, color="#202020", **{"font-size": "18px"}
-                    )
+        self.window.signal.set_label_size(MIN_TEXT_PX)
 
     def _shrink(self) -> None:
-        keep = getattr(self, "_looks", None)
+        keep = self._looks
         if not keep:
             return
         w = self.window
@@ -387,10 +513,15 @@ class ShowMode(QObject):
             item.setPen(pen)
         if keep.get("symbol") is not None:
             sig.data_curve.setSymbolSize(keep["symbol"])
-        for ax, font, width in keep["axes"]:
+        for ax, font, fixed in keep["axes"]:
             if font is not None:
                 ax.setStyle(tickFont=font)
-            ax.setWidth(width)
+            if ax.orientation in ("left", "right"):
+                ax.setWidth(fixed)
+        for b, visible in keep.get("units", []):
+            b.setVisible(visible)
+        sig.set_resid_share(keep.get("resid_share", sig.resid_share))
+        w.slices.colour_bar.set_large(False)
         for line, pen in keep["lines"]:
             line.setPen(pen)
         for item, font in keep["fonts"]:
@@ -398,17 +529,7 @@ class ShowMode(QObject):
         for view in w.slices.views.values():
             view._place_labels()
         w.fits.table.verticalHeader().setDefaultSectionSize(keep["row"])
-        if "stretch" in keep:
-            lay = sig.canvas.ci.layout
-            lay.setRowStretchFactor(0, keep["stretch"][0])
-            lay.setRowStretchFactor(1, keep["stretch"][1])
-        for plot in (sig.plot, sig.resid):
-            for name in ("left", "bottom"):
-                ax = plot.getAxis(name)
-                if ax.labelText:
-                    ax.setLabel(
-                        ax.labelText, ax.labelUnits, color="#303030", **{"font-size": "13px"}
-                    )
+        sig.set_label_size(None)
         self._looks = {}
 
 

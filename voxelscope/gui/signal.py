@@ -17,7 +17,7 @@ import html
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QRectF, Qt
+from PySide6.QtCore import QEvent, QRectF, Qt
 from PySide6.QtGui import QColor, QFont, QPainter
 from PySide6.QtWidgets import (
     QButtonGroup,
@@ -36,7 +36,16 @@ from voxelscope.core.hrf import KERNEL_NAMES
 from voxelscope.gui.colours import colours, condition_colour, kernel_colour
 from voxelscope.gui.state import ViewerState
 
-__all__ = ["SignalPanel", "to_percent"]
+__all__ = ["MIN_CANVAS_HEIGHT", "RESID_SHARE", "SignalPanel", "to_percent"]
+
+#: The plots never get less than this many pixels (signal and residuals together).
+MIN_CANVAS_HEIGHT = 170
+#: Share of the plots' height that the residuals get (the signal gets the rest).
+RESID_SHARE = 0.34
+#: The residual plot is never lower than this (its axis, tick labels and title).
+MIN_RESID_HEIGHT = 70
+#: Axis title size outside Show mode (pixels).
+LABEL_PX = 13
 
 #: Left-out volumes (non-steady-state, censored): a neutral grey band and hollow points.
 _LEFT_OUT_BAND = (120, 120, 120, 60)
@@ -177,8 +186,13 @@ class SignalPanel(QWidget):
         self.canvas.setObjectName("signal_canvas")
         self.plot = self.canvas.addPlot(row=0, col=0)
         self.resid = self.canvas.addPlot(row=1, col=0)
-        self.canvas.ci.layout.setRowStretchFactor(0, 3)
-        self.canvas.ci.layout.setRowStretchFactor(1, 1)
+        # Row heights are set from the canvas height (``_share_rows``): the layout's stretch
+        # factors only share what is left above each plot's preferred height, which let the
+        # residuals take more than the signal in a short part.
+        self.resid_share = RESID_SHARE
+        self._label_px: int | None = None
+        self.canvas.setMinimumHeight(MIN_CANVAS_HEIGHT)
+        self.canvas.installEventFilter(self)
         _style_plot(self.plot, font)
         _style_plot(self.resid, font)
         self.resid.setXLink(self.plot)
@@ -243,6 +257,43 @@ class SignalPanel(QWidget):
         state.fits_changed.connect(self._on_fits)
         state.units_changed.connect(self._on_units)
         state.runs_changed.connect(self._on_runs)
+
+    # ------------------------------------------------------------------ layout
+
+    def eventFilter(self, obj, ev) -> bool:
+        if obj is self.canvas and ev.type() == QEvent.Type.Resize:
+            self._share_rows(ev.size().height())
+        return super().eventFilter(obj, ev)
+
+    def _share_rows(self, height: int | None = None) -> None:
+        """Residuals get :attr:`resid_share` of the canvas (at least their axis and
+        title), the signal the rest."""
+        h = self.canvas.height() if height is None else int(height)
+        usable = max(0, h - 12)  # the layout's margins and spacing
+        resid = max(MIN_RESID_HEIGHT, round(usable * self.resid_share))
+        resid = min(resid, max(MIN_RESID_HEIGHT, usable - 40))
+        self.resid.setMinimumHeight(resid)
+        self.resid.setMaximumHeight(resid)
+        self.plot.setMinimumHeight(0)
+        self.plot.setMaximumHeight(max(1, usable - resid))
+
+    def set_resid_share(self, share: float) -> None:
+        """Change the residuals' share of the height (Show mode gives them more room for
+        larger tick labels)."""
+        self.resid_share = float(share)
+        self._share_rows()
+
+    def set_label_size(self, px: int | None) -> None:
+        """Axis titles at ``px`` pixels (None: the normal size)."""
+        self._label_px = px
+        self._set_labels()
+
+    def _set_labels(self) -> None:
+        pct = self.state.units == "percent"
+        style = {"color": "#303030", "font-size": f"{self._label_px or LABEL_PX}px"}
+        self.plot.setLabel("left", "% change" if pct else "signal", **style)
+        self.resid.setLabel("left", "residuals (%)" if pct else "residuals", **style)
+        self.resid.setLabel("bottom", "time (s)", **style)
 
     # ------------------------------------------------------------------ input
 
@@ -391,18 +442,7 @@ class SignalPanel(QWidget):
                 self.resid_curves[name].setData(t, r, connect="finite")
         if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
             self._label_key = pct
-            self.plot.setLabel(
-                "left",
-                "% change" if pct else "signal",
-                color="#303030",
-                **{"font-size": "13px"},
-            )
-            self.resid.setLabel(
-                "left",
-                "residuals (%)" if pct else "residuals",
-                color="#303030",
-                **{"font-size": "13px"},
-            )
+            self._set_labels()
         span = (float(t[0]), float(t[-1]))
         if self._x_span != span:
             self._x_span = span

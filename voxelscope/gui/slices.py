@@ -21,6 +21,7 @@ import pyqtgraph as pg
 from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QPen
 from PySide6.QtWidgets import (
+    QGraphicsRectItem,
     QGraphicsSimpleTextItem,
     QHBoxLayout,
     QLabel,
@@ -156,6 +157,16 @@ class SliceView(pg.GraphicsView):
             item.setFont(font)
             item.setZValue(20)
             self._letters[where] = item
+        # a dark plate under each label, so the crosshair never runs through its text
+        self._plates: dict[str, QGraphicsRectItem] = {}
+        plate = QColor(c["slice_background"])
+        plate.setAlpha(215)
+        for where in ("left", "right", "top", "bottom", "caption"):
+            rect = QGraphicsRectItem(self.box)
+            rect.setBrush(plate)
+            rect.setPen(QPen(Qt.PenStyle.NoPen))
+            rect.setZValue(15)
+            self._plates[where] = rect
         self.caption = QGraphicsSimpleTextItem(self.box)
         cap_font = QFont()
         cap_font.setPixelSize(13)
@@ -201,11 +212,26 @@ class SliceView(pg.GraphicsView):
             elif where == "right":
                 pos = QPointF(r.right() - m - b.width(), r.center().y() - b.height() / 2)
             elif where == "top":
-                pos = QPointF(r.center().x() - b.width() / 2, r.top() + m)
+                # never under the caption at the top left (a narrow view, large text)
+                cap = self.caption.boundingRect()
+                x = max(r.center().x() - b.width() / 2, r.left() + 2 * m + cap.width() + 4)
+                pos = QPointF(min(x, r.right() - m - b.width()), r.top() + m)
             else:
                 pos = QPointF(r.center().x() - b.width() / 2, r.bottom() - m - b.height())
             item.setPos(pos)
         self.caption.setPos(QPointF(r.left() + m, r.top() + m))
+        for where in self._plates:
+            self._fit_plate(where)
+
+    def _fit_plate(self, where: str) -> None:
+        item = self.caption if where == "caption" else self._letters[where]
+        b = item.boundingRect()
+        p = item.pos()
+        rect = QRectF(p.x() - 3, p.y() - 1, b.width() + 6, b.height() + 2)
+        plate = self._plates[where]
+        if plate.rect() != rect:
+            plate.setRect(rect)
+        plate.setVisible(bool(item.text()))
 
     def view_point(self, display_ijk) -> QPointF:
         """View coordinates (mm from the grid corner) of a display voxel's centre."""
@@ -304,6 +330,7 @@ class SliceView(pg.GraphicsView):
         self.caption.setText(
             f"{_TITLES[self.plane]}\n{_WORLD[self.n_axis]} = {float(world[self.n_axis]):.1f} mm"
         )
+        self._place_labels()  # the caption's width may change
 
     # ------------------------------------------------------------------ user input
 
@@ -394,9 +421,22 @@ class ColourBar(QWidget):
         self.note.setWordWrap(True)
         lay.addWidget(self.note)
         self.setFixedWidth(96)
+        self._tick_font = tick_font
         state.map_changed.connect(self._on_map)
         state.run_changed.connect(self._on_map)
         self._on_map()
+
+    def set_large(self, on: bool) -> bool:
+        """Numbers at 20 px and a wider bar (Show mode); returns the previous state."""
+        was = self.width() > 96
+        font = QFont(self._tick_font)
+        if on:
+            font.setPixelSize(20)
+        self.bar.axis.setStyle(tickFont=font)
+        self.bar.axis.setWidth(None)
+        self.canvas.setFixedWidth(150 if on else 92)
+        self.setFixedWidth(154 if on else 96)
+        return was
 
     def _on_map(self) -> None:
         layer = self.state.stat_map
