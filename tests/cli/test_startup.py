@@ -38,13 +38,18 @@ def _loaded_after(argv: list[str], prefixes: tuple[str, ...]) -> list[str]:
     return eval(proc.stdout.strip().splitlines()[-1])
 
 
+DASK = ("dask", "distributed")
+
+
 def test_version_loads_no_numpy():
-    assert _loaded_after(["--version"], ("numpy", "scipy", "nibabel", *QT)) == []
+    assert _loaded_after(["--version"], ("numpy", "scipy", "nibabel", *QT, *DASK)) == []
 
 
-@pytest.mark.parametrize("argv", [["--help"], ["fit", "--help"], ["map", "--help"]])
+@pytest.mark.parametrize(
+    "argv", [["--help"], ["fit", "--help"], ["map", "--help"], ["sweep", "--help"]]
+)
 def test_help_loads_no_scipy(argv):
-    assert _loaded_after(argv, ("scipy", "nibabel", *QT)) == []
+    assert _loaded_after(argv, ("scipy", "nibabel", *QT, *DASK)) == []
 
 
 def test_fit_loads_no_heavy_scipy(tmp_path):

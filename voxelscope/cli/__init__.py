@@ -2,7 +2,8 @@
 
 Every command calls :mod:`voxelscope.core`; none re-does its maths. Only ``view`` and
 ``demo`` (and ``voxelscope`` with no command, which opens an empty window) import Qt, and
-only inside their handlers, so ``fit``, ``map``, ``report`` and ``cache`` never load it.
+only inside their handlers, so ``fit``, ``map``, ``report``, ``sweep`` and ``cache`` never load
+it. ``sweep`` imports Dask only inside its handler.
 
 Errors the user can fix print one line, ``voxelscope: error: ...``, and exit with code 2.
 
@@ -99,6 +100,7 @@ _COMMAND_MODULES = {
     "view": "view",
     "demo": "view",
     "cache": "cache",
+    "sweep": "sweep",
 }
 
 
@@ -141,7 +143,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser = _top_parser()
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     modules = [fit, view, cache]
-    for name in ("map", "report"):
+    for name in ("sweep", "map", "report"):
         try:
             modules.insert(1, __import__(f"{__package__}.{name}", fromlist=["register"]))
         except ImportError:  # pragma: no cover - optional while a command is being built

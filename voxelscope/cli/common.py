@@ -115,14 +115,21 @@ def _positive_mm(text: str) -> float:
 
 
 def add_model_args(
-    p: argparse.ArgumentParser, kernels: bool = True, several_runs: bool = False
+    p: argparse.ArgumentParser,
+    kernels: bool = True,
+    several_runs: bool = False,
+    run_files: bool = True,
 ) -> None:
     """Add the run, events, confounds and model options.
 
     With ``several_runs`` the command takes ``RUN [RUN ...]`` (``args.runs``; ``args.run``
     is the first) and ``--events`` / ``--confounds`` may be given once per run, in order.
+    Without ``run_files`` (``sweep``: every run finds its own companions) there is no run
+    argument and no ``--events`` / ``--confounds``.
     """
-    if several_runs:
+    if not run_files:
+        pass
+    elif several_runs:
         p.add_argument(
             "run",
             nargs="+",
@@ -134,13 +141,14 @@ def add_model_args(
     else:
         p.add_argument("run", help="4D NIfTI run (.nii or .nii.gz)")
     each = {"action": _EachRun} if several_runs else {}
-    p.add_argument(
-        "--events",
-        **each,
-        metavar="FILE",
-        help="BIDS events.tsv (onset, duration in seconds; trial_type); "
-        "default: the BIDS-named file beside the run",
-    )
+    if run_files:
+        p.add_argument(
+            "--events",
+            **each,
+            metavar="FILE",
+            help="BIDS events.tsv (onset, duration in seconds; trial_type); "
+            "default: the BIDS-named file beside the run",
+        )
     p.add_argument(
         "--condition-column",
         metavar="NAME",
@@ -169,14 +177,15 @@ def add_model_args(
     # replaced options: a clear line instead of argparse's "unrecognized arguments"
     p.add_argument("--amplitude-column", metavar="NAME", help=argparse.SUPPRESS)
     p.add_argument("--fir-bins", metavar="N", help=argparse.SUPPRESS)
-    p.add_argument(
-        "--confounds",
-        **each,
-        metavar="FILE",
-        help="TSV or CSV of nuisance regressors with a header row; default: the confounds "
-        "table beside the run, read for the checks and excluded volumes but adding no "
-        "column until --confound-columns chooses some",
-    )
+    if run_files:
+        p.add_argument(
+            "--confounds",
+            **each,
+            metavar="FILE",
+            help="TSV or CSV of nuisance regressors with a header row; default: the "
+            "confounds table beside the run, read for the checks and excluded volumes but "
+            "adding no column until --confound-columns chooses some",
+        )
     p.add_argument(
         "--confound-columns",
         metavar="A,B",
