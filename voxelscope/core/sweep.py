@@ -745,7 +745,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
         )
         flags = [(f.id, f.text) for f in cf.flags]
         edge = float(edge0[c.peak_voxel])
-        from .checks import EDGE_LIMIT_MM
+        from .flags import EDGE_LIMIT_MM
 
         if edge <= EDGE_LIMIT_MM:
             flags.insert(
