@@ -84,3 +84,56 @@ def test_clicking_a_row_moves_to_the_peak(window, qtbot, ras_run):
     QTest.mouseClick(panel.view.viewport(), Qt.MouseButton.LeftButton, pos=rect.center())
     assert state.voxel == target
     assert panel.view.selectionModel().selectedRows()[0].row() == row
+
+
+def test_arrow_keys_move_the_selection_and_the_crosshair(window, qtbot, ras_run):
+    state, panel = _open(window, ras_run)
+    state.set_map_settings(threshold=2.0)
+    qtbot.waitUntil(lambda: panel.table is not None and len(panel.table) > 2)
+    window.docks["Findings"].raise_()
+    panel.go_to_row(0)
+    panel.view.setFocus()
+    panel.view.setCurrentIndex(panel.model.index(0, 0))
+    qtbot.keyClick(panel.view, Qt.Key.Key_Down)
+    assert panel.view.currentIndex().row() == 1
+    assert state.voxel == panel.table.clusters[1].peak_voxel
+    qtbot.keyClick(panel.view, Qt.Key.Key_Up)
+    assert state.voxel == panel.table.clusters[0].peak_voxel
+
+
+def test_threshold_rule_is_the_same_in_map_findings_and_slices(window, ras_run):
+    """Both boxes say '|v| > t' and the Slices draw exactly the voxels the clusters hold."""
+    from voxelscope.gui.slices import overlay_rgba
+
+    state, panel = _open(window, ras_run)
+    assert window.map_panel.threshold.prefix() == panel.threshold.prefix() == "|v| > "
+    data = state.stat_map.data
+    thr = float(np.sort(np.abs(data[np.isfinite(data)]))[-5])  # a value some voxel has
+    state.set_map_settings(threshold=thr)
+    panel.refresh()
+    lut = np.zeros((256, 3), np.uint8)
+    drawn = overlay_rgba(data, lut, 10.0, thr, 1.0)[..., 3] > 0
+    assert np.array_equal(drawn, panel.table.labels > 0)
+    assert (np.abs(data) == thr).any() and not drawn[np.abs(data) == thr].any()
+
+
+def test_drop_downs_are_not_cut_and_rows_fit_at_1280x800(demo_window, qtbot):
+    w = demo_window((1280, 800))
+    w.docks["Findings"].raise_()
+    assert w.map_panel.live.flush(60000)
+    panel = w.findings
+    panel.refresh()
+    qtbot.waitUntil(lambda: panel.table is not None and len(panel.table) > 4, timeout=20000)
+    assert w.width() <= 1280
+    for combo in (panel.mode, panel.connectivity):
+        fm = combo.fontMetrics()
+        longest = max(fm.horizontalAdvance(combo.itemText(i)) for i in range(combo.count()))
+        assert combo.width() >= longest + 20, combo.currentText()
+    view = panel.view
+    rows = sum(
+        1
+        for r in range(panel.model.rowCount())
+        if 0 <= view.rowViewportPosition(r)
+        and view.rowViewportPosition(r) + view.rowHeight(r) <= view.viewport().height()
+    )
+    assert rows > 3

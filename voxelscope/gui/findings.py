@@ -2,23 +2,29 @@
 
 The table comes from :func:`voxelscope.core.clusters.find_clusters` on the map the Slices
 show (live model map, kernel difference, file or disagreement), at the Map threshold,
-with the connectivity, minimum size and sign chosen here. Clicking a row moves the voxel
-to the cluster's peak. The table follows the map and the threshold; the cluster holding
-the current voxel is selected.
+with the connectivity, minimum size and sign chosen here. Clicking a row, or moving the
+selection with the arrow keys, moves the voxel to the cluster's peak. The table follows
+the map and the threshold; the cluster holding the current voxel is selected. The rule is
+the one the Slices draw with: ``|v| > threshold``.
 """
 
 from __future__ import annotations
 
-from PySide6.QtCore import QAbstractTableModel, QModelIndex, QPersistentModelIndex, Qt, QTimer
-from PySide6.QtGui import QGuiApplication
+from PySide6.QtCore import (
+    QAbstractTableModel,
+    QModelIndex,
+    QPersistentModelIndex,
+    Qt,
+    QTimer,
+    Signal,
+)
+from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QComboBox,
     QDoubleSpinBox,
     QHBoxLayout,
     QHeaderView,
-    QLabel,
-    QPushButton,
     QSpinBox,
     QTableView,
     QVBoxLayout,
@@ -27,17 +33,40 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.clusters import CONNECTIVITIES, ClusterTable, find_clusters
 from voxelscope.core.errors import VoxelscopeError
-from voxelscope.gui.sizing import compact_combo, compact_spin, shrinkable
+from voxelscope.gui.sizing import compact_spin, fit_combo
 from voxelscope.gui.state import ViewerState
+from voxelscope.gui.status import ElidedLabel
 
 __all__ = ["MODES", "ClusterModel", "FindingsPanel"]
 
 #: Sign modes of find_clusters, with their words.
 MODES = (
-    ("signed", "± separately"),
-    ("positive", "positive only"),
-    ("negative", "negative only"),
+    ("signed", "± apart"),
+    ("positive", "+ only"),
+    ("negative", "− only"),
     ("abs", "± together"),
+)
+#: What each sign mode does (the drop-down's tooltips).
+MODE_TIPS = {
+    "signed": "Positive and negative clusters found separately",
+    "positive": "Positive values only",
+    "negative": "Negative values only",
+    "abs": "Positive and negative voxels that touch form one cluster",
+}
+#: Which neighbours join a cluster, per connectivity (the drop-down's tooltips).
+CONNECTIVITY_TIPS = {
+    6: "Voxels that share a side",
+    18: "Voxels that share a side or an edge",
+    26: "Voxels that share a side, an edge or a corner",
+}
+#: Keys that move the selection in the table; the voxel follows to the cluster's peak.
+MOVE_KEYS = (
+    Qt.Key.Key_Up,
+    Qt.Key.Key_Down,
+    Qt.Key.Key_PageUp,
+    Qt.Key.Key_PageDown,
+    Qt.Key.Key_Home,
+    Qt.Key.Key_End,
 )
 
 _INDEX = QModelIndex | QPersistentModelIndex
@@ -111,6 +140,19 @@ class ClusterModel(QAbstractTableModel):
         return None
 
 
+class FindingsTable(QTableView):
+    """The clusters table: moving the selection with the keys emits ``moved`` (row)."""
+
+    moved = Signal(int)
+
+    def keyPressEvent(self, ev) -> None:
+        before = self.currentIndex().row()
+        super().keyPressEvent(ev)
+        row = self.currentIndex().row()
+        if ev.key() in MOVE_KEYS and row >= 0 and row != before:
+            self.moved.emit(row)
+
+
 class FindingsPanel(QWidget):
     """Clusters of the overlay, a table with a row per cluster."""
 
@@ -122,8 +164,8 @@ class FindingsPanel(QWidget):
         self._key = None
         self._layer = None
         lay = QVBoxLayout(self)
-        lay.setContentsMargins(8, 6, 8, 6)
-        lay.setSpacing(5)
+        lay.setContentsMargins(6, 3, 6, 3)  # tight: every pixel is a table row at 1280x800
+        lay.setSpacing(3)
         row = QHBoxLayout()
         row.setSpacing(6)
         self.threshold = QDoubleSpinBox()
@@ -132,7 +174,9 @@ class FindingsPanel(QWidget):
         self.threshold.setDecimals(2)
         self.threshold.setSingleStep(0.25)
         self.threshold.setPrefix("|v| > ")
-        self.threshold.setToolTip("The Map threshold: voxels beyond ±threshold form clusters")
+        self.threshold.setToolTip(
+            "The Map threshold: voxels beyond ±threshold form clusters, the ones the Slices draw"
+        )
         self.threshold.valueChanged.connect(
             lambda v: self.state.set_map_settings(threshold=float(v))
         )
@@ -140,47 +184,53 @@ class FindingsPanel(QWidget):
         self.mode = QComboBox()
         for key, text in MODES:
             self.mode.addItem(text, key)
+            self.mode.setItemData(
+                self.mode.count() - 1, MODE_TIPS[key], Qt.ItemDataRole.ToolTipRole
+            )
         self.mode.setToolTip("Signs: positive and negative clusters apart, one side, or together")
         self.mode.currentIndexChanged.connect(self.refresh)
         row.addWidget(self.mode)
         self.connectivity = QComboBox()
-        for c, text in zip(CONNECTIVITIES, ("sides", "sides + edges", "sides + edges + corners")):
-            self.connectivity.addItem(f"{c} ({text})", c)
+        for c in CONNECTIVITIES:
+            self.connectivity.addItem(f"{c} neighbours", c)
+            self.connectivity.setItemData(
+                self.connectivity.count() - 1, CONNECTIVITY_TIPS[c], Qt.ItemDataRole.ToolTipRole
+            )
         self.connectivity.setCurrentIndex(CONNECTIVITIES.index(26))
-        self.connectivity.setToolTip("Which neighbours join a cluster: 6, 18 or 26 neighbours")
+        self.connectivity.setToolTip(
+            "Which neighbours join a cluster: 6 share a side, 18 also an edge, 26 also a corner"
+        )
         self.connectivity.currentIndexChanged.connect(self.refresh)
         row.addWidget(self.connectivity)
-        row.addWidget(QLabel("min"))
         self.min_voxels = QSpinBox()
         self.min_voxels.setRange(1, 100000)
         self.min_voxels.setValue(1)
+        self.min_voxels.setPrefix("min ")
         self.min_voxels.setSuffix(" vox")
         self.min_voxels.setToolTip("Smaller clusters are left out")
         self.min_voxels.valueChanged.connect(self.refresh)
         row.addWidget(self.min_voxels)
         row.addStretch(1)
-        self.copy_button = QPushButton("Copy")
-        self.copy_button.setToolTip("Copy the table as tab-separated text")
-        self.copy_button.clicked.connect(self.copy)
-        row.addWidget(self.copy_button)
         for combo in (self.mode, self.connectivity):
-            compact_combo(combo, 7)
-        compact_spin(self.threshold, 100)
-        compact_spin(self.min_voxels, 76)
+            fit_combo(combo)  # never cut: as wide as the longest choice
+        compact_spin(self.threshold, 60, sample="|v| > 99.99")
+        compact_spin(self.min_voxels, 60, sample="min 999 vox")
         lay.addLayout(row)
-        self.summary = QLabel("")
+        self.summary = ElidedLabel("")  # one line; the whole text is its tooltip
         self.summary.setObjectName("hint")
-        self.summary.setWordWrap(True)
-        shrinkable(self.summary, 80)
         lay.addWidget(self.summary)
         self.model = ClusterModel(self)
-        self.view = QTableView()
+        self.view = FindingsTable()
         self.view.setObjectName("findings_table")
         self.view.setModel(self.model)
         self.view.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
         self.view.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         self.view.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
         self.view.verticalHeader().setVisible(False)
+        # compact rows, so more clusters fit in the bottom row of the window
+        self.view.verticalHeader().setMinimumSectionSize(0)
+        self.view.verticalHeader().setDefaultSectionSize(self.fontMetrics().height() + 6)
+        self.view.horizontalHeader().setFixedHeight(self.fontMetrics().height() + 10)
         self.view.setAlternatingRowColors(True)
         head = self.view.horizontalHeader()
         head.setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
@@ -189,6 +239,17 @@ class FindingsPanel(QWidget):
         head.setResizeContentsPrecision(100)
         head.setStretchLastSection(True)
         self.view.clicked.connect(self._clicked)
+        self.view.moved.connect(self.go_to_row)
+        self.view.setToolTip(
+            "Click a cluster, or move with the arrow keys, to go to its peak; "
+            "Ctrl+C or the right button copies the table"
+        )
+        self.view.setContextMenuPolicy(Qt.ContextMenuPolicy.ActionsContextMenu)
+        self.copy_action = QAction("Copy table as TSV", self.view)
+        self.copy_action.setShortcut(QKeySequence.StandardKey.Copy)
+        self.copy_action.setShortcutContext(Qt.ShortcutContext.WidgetWithChildrenShortcut)
+        self.copy_action.triggered.connect(self.copy)
+        self.view.addAction(self.copy_action)
         self.view.activated.connect(self._clicked)
         lay.addWidget(self.view, 1)
         self.timer = QTimer(self)
@@ -237,6 +298,7 @@ class FindingsPanel(QWidget):
             self.table = None
             self.model.set_table(None)
             self.summary.setText(str(err))
+            self.summary.setToolTip(str(err))
             st.message.emit(str(err))
             return
         self.table = table
@@ -245,11 +307,13 @@ class FindingsPanel(QWidget):
         name = getattr(layer, "title", "") or (layer.path.name if layer.path else "map")
         n = len(table)
         total = sum(c.size_voxels for c in table.clusters)
-        self.summary.setText(
+        text = (
             f"{n} cluster{'s' if n != 1 else ''} ({total} voxels) in {name} at |v| > "
-            f"{opts['threshold']:g}, {opts['connectivity']}-connected, "
+            f"{opts['threshold']:g}, {opts['connectivity']} neighbours, "
             f"at least {opts['min_voxels']} voxel{'s' if opts['min_voxels'] != 1 else ''}"
         )
+        self.summary.setText(text)
+        self.summary.setToolTip(text)
         self._select_current(st.voxel)
 
     # ------------------------------------------------------------------ interaction

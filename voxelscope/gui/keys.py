@@ -67,7 +67,12 @@ BINDINGS: tuple[Binding, ...] = (
     Binding(("Esc",), "Model: contrast", "Put back the contrast in use"),
     # Fits, Findings, Marks
     Binding(("Ctrl+C",), "Fits", "Copy the table as tab-separated text"),
-    Binding(("Up", "Down"), "Findings", "Select another cluster and go to its peak"),
+    Binding(
+        ("Up", "Down", "PgUp", "PgDown"),
+        "Findings",
+        "Another cluster: the crosshair goes to its peak",
+    ),
+    Binding(("Ctrl+C",), "Findings", "Copy the table as tab-separated text"),
     Binding(("Click",), "Findings", "Go to the cluster's peak", mouse=True),
     Binding(("Click",), "Marks", "Go to the mark", mouse=True),
     Binding(("Drag a row",), "Marks", "Put the mark elsewhere in the list", mouse=True),

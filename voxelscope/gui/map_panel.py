@@ -138,8 +138,11 @@ class MapPanel(QWidget):
         self.threshold.setRange(0.0, 1000.0)
         self.threshold.setDecimals(2)
         self.threshold.setSingleStep(0.25)
-        self.threshold.setPrefix("|v| ≥ ")
-        self.threshold.setToolTip("Only values at or beyond ±threshold are drawn (both signs)")
+        self.threshold.setPrefix("|v| > ")
+        self.threshold.setToolTip(
+            "Only values beyond ±threshold are drawn (both signs); Findings' clusters use "
+            "the same rule"
+        )
         self.threshold.valueChanged.connect(
             lambda v: self.state.set_map_settings(threshold=float(v))
         )
@@ -189,7 +192,7 @@ class MapPanel(QWidget):
         fit_combo(self.scale)
         for combo in (self.kernel, self.other):
             fit_combo(combo, grow=True)
-        compact_spin(self.threshold, 60, sample="|v| ≥ 99.99")
+        compact_spin(self.threshold, 60, sample="|v| > 99.99")
         compact_spin(self.limit, 60, sample="± 999.99")
 
         job_row = QHBoxLayout()

@@ -44,12 +44,13 @@ _WORLD = "xyz"
 def overlay_rgba(
     values: np.ndarray, lut: np.ndarray, limit: float, threshold: float, opacity: float
 ) -> np.ndarray:
-    """RGBA uint8 image of a signed map slice: colour from ``lut``, hidden below threshold.
+    """RGBA uint8 image of a signed map slice: colour from ``lut``; only ``|v| > threshold``
+    is drawn, the rule Findings' clusters use (:func:`voxelscope.core.clusters.find_clusters`).
 
     Examples
     --------
     >>> lut = np.zeros((256, 3), np.uint8)
-    >>> rgba = overlay_rgba(np.array([[0.5, 4.0], [np.nan, -5.0]]), lut, 5.0, 3.0, 1.0)
+    >>> rgba = overlay_rgba(np.array([[3.0, 4.0], [np.nan, -5.0]]), lut, 5.0, 3.0, 1.0)
     >>> rgba[..., 3].tolist()
     [[0, 255], [0, 255]]
     """
@@ -59,7 +60,7 @@ def overlay_rgba(
     idx = np.clip(((vv + limit) / (2.0 * limit) * 255.0 + 0.5).astype(np.int32), 0, 255)
     rgba = np.empty((*v.shape, 4), dtype=np.uint8)
     rgba[..., :3] = lut[idx]
-    show = finite & (np.abs(vv) >= threshold)
+    show = finite & (np.abs(vv) > threshold)
     rgba[..., 3] = np.where(show, np.uint8(round(255 * min(max(opacity, 0.0), 1.0))), 0)
     return rgba
 
@@ -458,7 +459,7 @@ class ColourBar(QWidget):
                 name = name[: -len(ext)]
         self.title.setText(_short(name))
         self.title.setToolTip(str(layer.path))
-        self.note.setText(f"hidden\n|v| < {ms.threshold:g}")
+        self.note.setText(f"hidden\n|v| ≤ {ms.threshold:g}")
         self.setVisible(True)
 
 

@@ -133,7 +133,8 @@ class MapSettings:
     Attributes
     ----------
     threshold : float
-        Values with ``|v| < threshold`` are not drawn (signed threshold: both tails).
+        Only values with ``|v| > threshold`` are drawn (both tails); Findings' clusters
+        use the same rule.
     opacity : float
         0..1.
     limit : float or None
