@@ -162,10 +162,11 @@ def test_wheel_steps_the_slice(window, qtbot, ras_run):
 
 
 def test_overlay_threshold_is_signed_and_two_tailed():
+    """|v| > t is drawn, exactly t is not (the rule Findings' clusters use)."""
     lut = np.arange(256, dtype=np.uint8)[:, None].repeat(3, axis=1)
-    v = np.array([[-4.0, -2.9, 0.0], [2.9, 3.0, np.nan]])
+    v = np.array([[-4.0, -2.9, 0.0], [2.9, 3.0, np.nan], [3.01, -3.0, -3.01]])
     rgba = overlay_rgba(v, lut, 4.0, 3.0, 0.5)
-    assert rgba[..., 3].tolist() == [[128, 0, 0], [0, 128, 0]]
+    assert rgba[..., 3].tolist() == [[128, 0, 0], [0, 0, 0], [128, 0, 128]]
     # -limit -> first colour, +limit -> last, 0 -> middle
     assert rgba[0, 0, 0] == 0 and rgba[1, 1, 0] == round((3.0 + 4) / 8 * 255)
 
