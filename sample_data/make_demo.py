@@ -701,7 +701,7 @@ def _marks(features: list[dict], spikes: list[int]) -> list[list[str]]:
         "late_cluster": (
             "Hearing area, right: late peak",
             "Responds to tone but about 3 s later than the left side. The canonical fit "
-            "lags the data; switch on FIR to see the peak near 8 s.",
+            "lags the data; FIR (on for this mark) shows the peak near 8 s.",
         ),
         "rim_motion": (
             "Edge blob: motion, not brain",
@@ -720,12 +720,25 @@ def _marks(features: list[dict], spikes: list[int]) -> list[list[str]]:
             "clearly smaller: trust the AR(1) one here.",
         ),
     }
+    # the model each mark was made under (only the settings that differ from the defaults)
+    tone, tap = {"contrast": "tone"}, {"contrast": "tap"}
+    models = {
+        "tone_cluster": tone,
+        "tap_cluster": tap,
+        "late_cluster": {
+            "contrast": "tone",
+            "kernels": ["boxcar", "gaussian", "gamma", "double-gamma", "fir"],
+        },
+        "rim_motion": tone,
+        "drift_cluster": tone,
+        "noisy_cluster": {"contrast": "tap", "noise": "ar1"},
+    }
     aff = bold_affine()
     rows = []
     for f in features:
         x, y, z = voxel_to_world(aff, np.array(f["centre_voxel"]))
         title, note = notes[f["name"]]
-        rows.append([f"{x:.1f}", f"{y:.1f}", f"{z:.1f}", title, note])
+        rows.append([f"{x:.1f}", f"{y:.1f}", f"{z:.1f}", title, note, _model(models[f["name"]])])
     # the earlier t map, at the late cluster where the shift matters most
     x, y, z = voxel_to_world(aff, np.array(FEATURES[2]["centre_voxel"]))
     rows.append(
@@ -736,6 +749,7 @@ def _marks(features: list[dict], spikes: list[int]) -> list[list[str]]:
             "Earlier t map: timing off by one TR",
             "Load the pipeline t map beside our fit. It was made with every onset 1.25 s late, "
             "so it disagrees with us most where the timing matters.",
+            _model(tone),
         ]
     )
     # the anatomical underlay: a ventricle is an easy landmark
@@ -748,9 +762,15 @@ def _marks(features: list[dict], spikes: list[int]) -> list[list[str]]:
             "Underlay check: left ventricle",
             "The fine anatomical image has its own grid (2 mm, flipped and tilted). The "
             "ventricle should sit in the same place in both images.",
+            _model(tone),
         ]
     )
     return rows
+
+
+def _model(settings: dict) -> str:
+    """A mark's model cell: one line of JSON (the marks file's ``model`` column)."""
+    return json.dumps(settings, separators=(",", ":"))
 
 
 def generate(out_dir: Path) -> dict[str, Path]:
@@ -1039,7 +1059,8 @@ def generate(out_dir: Path) -> dict[str, Path]:
     }
     _atomic_write(paths["truth"], (json.dumps(truth, indent=2) + "\n").encode("utf-8"))
     _atomic_write(
-        paths["marks"], _tsv(["x_mm", "y_mm", "z_mm", "title", "note"], _marks(features, spikes))
+        paths["marks"],
+        _tsv(["x_mm", "y_mm", "z_mm", "title", "note", "model"], _marks(features, spikes)),
     )
     return paths
 

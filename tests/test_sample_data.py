@@ -484,7 +484,7 @@ def test_truth_and_marks_agree_with_the_grid() -> None:
     run = _load_bold()
     _, marks = _read_tsv(DATA / FILES["marks"])
     header, _ = _read_tsv(DATA / FILES["marks"])
-    assert header == ["x_mm", "y_mm", "z_mm", "title", "note"]
+    assert header == ["x_mm", "y_mm", "z_mm", "title", "note", "model"]
     mark_xyz = np.array([[float(v) for v in r[:3]] for r in marks])
     assert all(r[3] and r[4] for r in marks)
     for f in TRUTH["features"]:

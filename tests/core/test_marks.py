@@ -29,6 +29,7 @@ from voxelscope.core.marks import (
     unescape_field,
     write_marks_tsv,
 )
+from voxelscope.core.model import ModelSettings
 
 SAMPLE = Path(__file__).resolve().parents[2] / "sample_data" / "demo_marks.tsv"
 
@@ -173,3 +174,67 @@ def test_sample_marks_file_reads():
     ml = read_marks_tsv(SAMPLE)
     assert len(ml) >= 1
     assert all(m.title for m in ml)
+
+
+#: Models a mark may carry: text anywhere a setting is text (tabs, newlines, quotes).
+models_st = st.builds(
+    ModelSettings,
+    kernels=st.lists(
+        st.sampled_from(["boxcar", "gamma", "double-gamma", "fir"]), min_size=1, unique=True
+    ).map(tuple),
+    contrast=st.one_of(st.none(), st.text(max_size=20)),
+    noise=st.sampled_from(["ols", "ar1", "arp"]),
+    highpass_s=st.one_of(st.none(), st.floats(20.0, 500.0)),
+    confound_columns=st.one_of(st.none(), st.lists(st.text(max_size=8), max_size=3).map(tuple)),
+    onset_shift_s=st.floats(-5, 5),
+)
+
+
+@given(
+    st.lists(
+        st.builds(Mark, coords, coords, coords, st.text(), st.text(), models_st | st.none()),
+        max_size=5,
+    )
+)
+def test_marks_keep_their_model_through_tsv_and_json(marks):
+    ml = MarkList(marks)
+    text = format_marks_tsv(ml)
+    assert parse_marks_tsv(text) == ml
+    if all(abs(v) <= 1e6 for m in marks for v in m.xyz_mm):  # JSON's bound on positions
+        assert MarkList.from_json(ml.to_json()) == ml
+    # outside reference: the csv module sees 6 fields per row when some mark has a model
+    rows = list(csv.reader(io.StringIO(text, newline=""), delimiter="\t", quoting=csv.QUOTE_NONE))
+    width = 6 if any(m.model is not None for m in marks) else 5
+    assert all(len(r) == width for r in rows)
+
+
+def test_marks_without_a_model_still_read():
+    """Files and sessions written before marks kept their model load with model None."""
+    old = "x_mm\ty_mm\tz_mm\ttitle\tnote\n1\t2\t3\tt\tn\n"
+    assert parse_marks_tsv(old)[0].model is None
+    assert MarkList.from_json([{"x_mm": 1, "y_mm": 2, "z_mm": 3}])[0].model is None
+    # a partial model: the missing settings are the defaults
+    m = parse_marks_tsv('x_mm\ty_mm\tz_mm\tmodel\n1\t2\t3\t{"contrast":"tap"}\n')[0]
+    assert m.model == ModelSettings(contrast="tap")
+
+
+@pytest.mark.parametrize(
+    ("cell", "expected"),
+    [
+        ("{not json", "line 2, column 'model'.*one line of JSON"),
+        ('{"noise":"loud"}', "line 2, column 'model'.*model.noise"),
+        ("[1, 2]", "line 2, column 'model' must be an object"),
+    ],
+)
+def test_a_bad_model_is_one_line_naming_row_and_column(cell, expected):
+    text = f"x_mm\ty_mm\tz_mm\tmodel\n1\t2\t3\t{cell}\n"
+    with pytest.raises(InputError, match=expected) as err:
+        parse_marks_tsv(text, "m.tsv")
+    assert "\n" not in str(err.value) and str(err.value).startswith("m.tsv")
+
+
+def test_add_keeps_the_model():
+    ml = MarkList()
+    model = ModelSettings(contrast="tap", noise="ols")
+    assert ml.add((1, 2, 3), "a", model=model).model == model
+    assert ml.rename(0, "b").model == model and ml.set_note(0, "n").model == model

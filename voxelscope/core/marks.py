@@ -4,13 +4,20 @@ A :class:`MarkList` is plain data with the operations the window offers (add, re
 edit the note, reorder, delete, jump). Marks are kept in world coordinates, so they stay
 valid for another run of the same subject on a different grid.
 
+A mark also keeps the model it was made under (:class:`~voxelscope.core.model.ModelSettings`:
+contrast, kernels, noise model, drift, confounds, ...), so a slide in Show mode can show
+the voxel as it was when the mark was made. Marks from files without a model have
+``model`` None.
+
 Marks file (TSV)
 ----------------
 UTF-8, a header row and one mark per row, columns ``x_mm``, ``y_mm``, ``z_mm``, ``title``,
-``note`` separated by tabs. In ``title`` and ``note`` a backslash, tab, newline and carriage
-return are written as ``\\\\``, ``\\t``, ``\\n`` and ``\\r``, so any text survives a round
-trip. On reading, columns may come in any order, ``title`` and ``note`` may be left out
-and other columns are ignored.
+``note`` and ``model`` separated by tabs. In ``title``, ``note`` and ``model`` a backslash,
+tab, newline and carriage return are written as ``\\\\``, ``\\t``, ``\\n`` and ``\\r``, so
+any text survives a round trip. ``model`` is the model as one line of JSON (the fields of
+a session's ``model``), empty for a mark without one; the column is written only when some
+mark has a model. On reading, columns may come in any order, ``title``, ``note`` and
+``model`` may be left out and other columns are ignored.
 
 Examples
 --------
@@ -25,6 +32,7 @@ True
 
 from __future__ import annotations
 
+import json
 import math
 import os
 from collections.abc import Iterable, Iterator, Sequence
@@ -35,9 +43,11 @@ from typing import Any
 from .atomic import write_text
 from .errors import InputError
 from .inputs import read_input_text
+from .model import ModelSettings
 
 __all__ = [
     "MARK_COLUMNS",
+    "MODEL_COLUMN",
     "Mark",
     "MarkList",
     "escape_field",
@@ -49,6 +59,8 @@ __all__ = [
 ]
 
 MARK_COLUMNS = ("x_mm", "y_mm", "z_mm", "title", "note")
+#: The optional column with each mark's model (one line of JSON).
+MODEL_COLUMN = "model"
 # NUL is escaped too, so a marks file is always text (the text reader refuses NUL bytes)
 _ESCAPES = {"\\": "\\\\", "\t": "\\t", "\n": "\\n", "\r": "\\r", "\x00": "\\0"}
 _UNESCAPES = {"\\": "\\", "t": "\t", "n": "\n", "r": "\r", "0": "\x00"}
@@ -63,6 +75,8 @@ class Mark:
     z_mm: float
     title: str = ""
     note: str = ""
+    #: The model the mark was made under (None: not known, e.g. an older marks file).
+    model: ModelSettings | None = None
 
     def __post_init__(self) -> None:
         for name in ("x_mm", "y_mm", "z_mm"):
@@ -72,6 +86,8 @@ class Mark:
             object.__setattr__(self, name, v)
         object.__setattr__(self, "title", str(self.title))
         object.__setattr__(self, "note", str(self.note))
+        if self.model is not None and not isinstance(self.model, ModelSettings):
+            raise TypeError("a mark's model is a ModelSettings or None")
 
     @property
     def xyz_mm(self) -> tuple[float, float, float]:
@@ -79,8 +95,13 @@ class Mark:
         return (self.x_mm, self.y_mm, self.z_mm)
 
     def to_json(self) -> dict[str, Any]:
-        """Plain dict with the TSV column names as keys."""
-        return {c: getattr(self, c) for c in MARK_COLUMNS}
+        """Plain dict with the TSV column names as keys (``model`` only when known)."""
+        out: dict[str, Any] = {c: getattr(self, c) for c in MARK_COLUMNS}
+        if self.model is not None:
+            from .session import model_to_json
+
+            out[MODEL_COLUMN] = model_to_json(self.model)
+        return out
 
     @classmethod
     def from_json(cls, data: dict[str, Any]) -> Mark:
@@ -101,7 +122,12 @@ class Mark:
         title, note = data.get("title", ""), data.get("note", "")
         if not isinstance(title, str) or not isinstance(note, str):
             raise InputError("a mark's title and note must be text")
-        return cls(*xyz, title=title, note=note)
+        model = None
+        if data.get(MODEL_COLUMN) is not None:
+            from .session import model_from_json
+
+            model = model_from_json(data[MODEL_COLUMN], f"mark '{title}'", "its model")
+        return cls(*xyz, title=title, note=note, model=model)
 
 
 class MarkList:
@@ -157,15 +183,17 @@ class MarkList:
         title: str | None = None,
         note: str = "",
         index: int | None = None,
+        model: ModelSettings | None = None,
     ) -> Mark:
         """Save a point as a new mark (at the end, or before ``index``); returns it.
 
-        An empty or missing title becomes ``"Mark N"``.
+        An empty or missing title becomes ``"Mark N"``; ``model`` is the model the mark is
+        made under.
         """
         x, y, z = (float(v) for v in xyz_mm)
         if not title:
             title = f"Mark {len(self._marks) + 1}"
-        mark = Mark(x, y, z, title, note)
+        mark = Mark(x, y, z, title, note, model)
         if index is None:
             self._marks.append(mark)
         else:
@@ -256,20 +284,44 @@ def format_marks_tsv(marks: Iterable[Mark]) -> str:
     >>> format_marks_tsv([Mark(1, 2, 3, "t", "n")]).split("\\n")
     ['x_mm\\ty_mm\\tz_mm\\ttitle\\tnote', '1.0\\t2.0\\t3.0\\tt\\tn', '']
     """
-    lines = ["\t".join(MARK_COLUMNS)]
+    marks = list(marks)
+    with_model = any(m.model is not None for m in marks)
+    lines = ["\t".join(MARK_COLUMNS + ((MODEL_COLUMN,) if with_model else ()))]
     for m in marks:
-        lines.append(
-            "\t".join(
-                [
-                    _coord(m.x_mm),
-                    _coord(m.y_mm),
-                    _coord(m.z_mm),
-                    escape_field(m.title),
-                    escape_field(m.note),
-                ]
-            )
-        )
+        cells = [
+            _coord(m.x_mm),
+            _coord(m.y_mm),
+            _coord(m.z_mm),
+            escape_field(m.title),
+            escape_field(m.note),
+        ]
+        if with_model:
+            cells.append(escape_field(_model_cell(m.model)))
+        lines.append("\t".join(cells))
     return "\n".join(lines) + "\n"
+
+
+def _model_cell(model: ModelSettings | None) -> str:
+    """A model as one line of JSON ("" for None)."""
+    if model is None:
+        return ""
+    from .session import model_to_json
+
+    return json.dumps(model_to_json(model), ensure_ascii=False, separators=(",", ":"))
+
+
+def _parse_model_cell(cell: str, source: str, line: int) -> ModelSettings | None:
+    if not cell.strip():
+        return None
+    from .inputs import parse_json
+    from .session import model_from_json
+
+    where = f"line {line}, column '{MODEL_COLUMN}'"
+    try:
+        data = parse_json(cell, f"{source} ({where})", "marks")
+    except InputError as err:
+        raise InputError(f"{err}; give the model as one line of JSON or leave it empty") from None
+    return model_from_json(data, source, where)
 
 
 def parse_marks_tsv(text: str, source: str = "marks.tsv") -> MarkList:
@@ -328,7 +380,10 @@ def parse_marks_tsv(text: str, source: str = "marks.tsv") -> MarkList:
             xyz.append(v)
         title = unescape_field(cells[col["title"]]) if "title" in col else ""
         note = unescape_field(cells[col["note"]]) if "note" in col else ""
-        marks.append(Mark(*xyz, title=title, note=note))
+        model = None
+        if MODEL_COLUMN in col:
+            model = _parse_model_cell(unescape_field(cells[col[MODEL_COLUMN]]), source, n)
+        marks.append(Mark(*xyz, title=title, note=note, model=model))
     return MarkList(marks)
 
 

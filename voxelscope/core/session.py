@@ -475,6 +475,40 @@ def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> Model
         return ModelSettings()
 
 
+def model_to_json(m: ModelSettings) -> dict[str, Any]:
+    """Model settings as plain JSON data (the session's ``model`` object).
+
+    >>> model_to_json(ModelSettings(contrast="tap"))["contrast"]
+    'tap'
+    """
+    return _model_to_json(m)
+
+
+def model_from_json(d: Any, source: str, where: str = "model") -> ModelSettings:
+    """Model settings from plain JSON data, checked field by field like a session's
+    ``model``; the first problem is one :class:`InputError` line naming ``where``.
+    Unknown fields are ignored (settings of a later version).
+
+    >>> model_from_json({"contrast": "tap", "noise": "ols"}, "m.tsv").noise
+    'ols'
+    >>> model_from_json({"noise": "loud"}, "m.tsv", "line 2, column 'model'")
+    Traceback (most recent call last):
+    ...
+    voxelscope.core.errors.InputError: m.tsv: line 2, column 'model': field 'model.noise' must be 'arp', 'ols' or 'ar1', not 'loud'; fix it or leave the mark's model out
+    """  # noqa: E501
+    if not isinstance(d, dict):
+        raise InputError(f"{source}: {where} must be an object of model settings")
+    c = _Check(source)
+    model = _model_from_json(d, c, [])
+    if c.problems:
+        first = c.problems[0]
+        prefix = f"{source}: "
+        first = first[len(prefix) :] if first.startswith(prefix) else first
+        first = first.replace("; fix it or save the session again", "")
+        raise InputError(f"{source}: {where}: {first}; fix it or leave the mark's model out")
+    return model
+
+
 def _map_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> dict[str, Any]:
     """Map settings checked field by field: numbers in range, names from the known lists."""
     out: dict[str, Any] = {}

@@ -101,7 +101,7 @@ class MarksModel(QAbstractTableModel):
         n = len(self.marks)
         row = n if row is None else max(0, min(int(row), n))
         self.beginInsertRows(QModelIndex(), row, row)
-        mark = self.marks.add(xyz_mm, title, note, index=row)
+        mark = self.marks.add(xyz_mm, title, note, index=row, model=self.state.settings)
         self.endInsertRows()
         self._changed(f"add mark '{_short(mark.title)}'", before)
         return row

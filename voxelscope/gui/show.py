@@ -361,9 +361,10 @@ class ShowMode(QObject):
     def _apply_model(self, settings) -> bool:
         """Put the window under ``settings`` (a mark's model); the contrast box follows."""
         w = self.window
-        ok = w.state.update_settings(**{
-            f: getattr(settings, f) for f in settings.__dataclass_fields__
-        })  # fmt: skip
+        with w.state.without_history():  # a slide is not an edit of the model
+            ok = w.state.update_settings(**{
+                f: getattr(settings, f) for f in settings.__dataclass_fields__
+            })  # fmt: skip
         if ok:
             w.state.contrast_text = settings.contrast or ""
             w.state.contrast_problem = ""
