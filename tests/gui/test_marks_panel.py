@@ -1,6 +1,7 @@
 """Marks part: add, rename, reorder (buttons and drag), delete, jump, TSV round trip."""
 
 import csv
+import json
 
 import numpy as np
 import pytest
@@ -155,8 +156,10 @@ def test_tsv_export_import_round_trip(opened, tmp_path):
     # the file has the documented columns, read with the csv module (TSV, one row per mark)
     with open(out, newline="", encoding="utf-8") as fh:
         rows = list(csv.reader(fh, delimiter="\t", quoting=csv.QUOTE_NONE))
-    assert rows[0] == ["x_mm", "y_mm", "z_mm", "title", "note"]
+    assert rows[0] == ["x_mm", "y_mm", "z_mm", "title", "note", "model"]
     assert len(rows) == 3
+    # each mark keeps the model it was made under, as one line of JSON (outside reader: json)
+    assert json.loads(rows[1][5])["contrast"] == opened.state.settings.contrast
     assert [float(v) for v in rows[1][:3]] == pytest.approx(world((2, 3, 4)))
     opened.state.set_marks(MarkList())
     assert panel.model.rowCount() == 0
