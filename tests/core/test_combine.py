@@ -31,6 +31,7 @@ from voxelscope.core.combine import (
 )
 from voxelscope.core.errors import InputError
 from voxelscope.core.events import Condition
+from voxelscope.core.glm import fit
 from voxelscope.core.maps import compute_map
 from voxelscope.core.model import Analysis, ModelSettings
 from voxelscope.core.run import open_run
@@ -192,8 +193,10 @@ def test_null_simulation_error_rates_of_q_and_combined_t():
         a = Analysis(_conditions(), n_volumes=T, tr=TR)
         x = a.design("gamma", settings).column("tone")
         e = rng.standard_normal((T, n_vox))
-        res = a.fit_many(600 + 2.0 * x[:, None] + e, "gamma", settings)
-        res0 = a.fit_many(600 + rng.standard_normal((T, n_vox)), "gamma", settings)
+        _d, prep = a.prepared("gamma", settings)
+        w = a.contrast_weights("gamma", settings)
+        res = fit(prep, 600 + 2.0 * x[:, None] + e, w, noise="ols")
+        res0 = fit(prep, 600 + rng.standard_normal((T, n_vox)), w, noise="ols")
         B.append(res.beta)
         V.append(res.variance)
         D.append(res.df)

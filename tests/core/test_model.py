@@ -23,6 +23,7 @@ from voxelscope.core import model as model_mod
 from voxelscope.core.confounds import Confounds
 from voxelscope.core.errors import InputError
 from voxelscope.core.events import Condition
+from voxelscope.core.glm import fit
 from voxelscope.core.model import Analysis, ModelSettings
 
 TR, N = 2.0, 150
@@ -117,13 +118,15 @@ def test_fir_fit_and_f_test():
     assert kf.f_df == (8, int(ft.df_denom))
 
 
-def test_fit_many_equals_fit_voxel():
-    """fit_many on (T, V) equals fit_voxel per column (same glm.fit path), to ~1e-12."""
+def test_a_batch_of_voxels_equals_fit_voxel():
+    """glm.fit on (T, V) with the analysis's prepared design and contrast (what a map does)
+    equals fit_voxel per column, to ~1e-12."""
     Y = np.column_stack([_simulated_voxel(s) for s in range(4)]).astype(np.float32)
     a = Analysis([TONE, TAP], N, TR)
     for noise in ("ols", "ar1"):
         s = ModelSettings(kernels=("double-gamma",), noise=noise)
-        many = a.fit_many(Y, "double-gamma", s)
+        _d, prep = a.prepared("double-gamma", s)
+        many = fit(prep, Y, a.contrast_weights("double-gamma", s), noise=noise)
         for j in range(4):
             one = a.fit_voxel(Y[:, j], s).fits[0]
             assert_allclose(many.t[j], one.t, rtol=1e-12)

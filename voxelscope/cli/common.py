@@ -9,10 +9,9 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-
 from ..core.errors import InputError
 from ..core.hrf import DEFAULT_KERNELS, get_kernel
+from ..core.jsonsafe import json_safe
 from ..core.model import Analysis, ModelSettings
 from ..core.pvalues import TAILS
 
@@ -23,7 +22,6 @@ __all__ = [
     "analysis_from_args",
     "companions_text",
     "excluded_json",
-    "json_safe",
     "parse_highpass",
     "parse_kernels",
     "request_from_args",
@@ -470,26 +468,6 @@ def excluded_json(loaded: Loaded) -> list[dict]:
     """The volumes left out of the fit, 0-based and sorted, each with its reason."""
     ex = loaded.analysis.excluded_volumes(loaded.settings)
     return [{"volume": v, "reason": why} for v, why in ex.items()]
-
-
-def json_safe(obj):
-    """Recursively replace NaN and infinities by None and numpy types by Python types."""
-    if isinstance(obj, dict):
-        return {str(k): json_safe(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [json_safe(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return json_safe(obj.tolist())
-    if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
 
 
 def print_warnings(warnings: list[str]) -> None:

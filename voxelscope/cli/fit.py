@@ -13,6 +13,7 @@ import numpy as np
 if TYPE_CHECKING:  # imported where used: --help and start-up stay short
     from ..core.combine import CombinedFit
 
+from ..core.jsonsafe import finite_or_none
 from ..core.model import KernelFit, VoxelFits
 from .common import (
     Loaded,
@@ -69,20 +70,15 @@ _TAIL_HEAD = {"two": "p(2-sided)", "positive": "p(t>0)", "negative": "p(t<0)"}
 
 
 def _tail_p(f: KernelFit, tail: str) -> float | None:
-    if tail == "two":
-        return f.p
-    v = float(f.result.p_tail(tail)[0])
-    return v if np.isfinite(v) else None
+    return f.p if tail == "two" else finite_or_none(f.result.p_tail(tail))
 
 
 def _neglog10p(f: KernelFit, tail: str) -> float | None:
-    v = float(f.result.neglog10p(tail)[0])
-    return v if np.isfinite(v) else None
+    return finite_or_none(f.result.neglog10p(tail))
 
 
 def _z(f: KernelFit) -> float | None:
-    v = float(f.result.z[0])
-    return v if np.isfinite(v) and f.t is not None else None
+    return finite_or_none(f.result.z) if f.t is not None else None
 
 
 def format_table(fits: VoxelFits, noise: str, tail: str = "two") -> str:

@@ -40,8 +40,10 @@ from typing import Any
 
 import numpy as np
 
+from .diagnostics import pearson_r
 from .errors import InputError
 from .hrf import DEFAULT_KERNELS
+from .jsonsafe import finite_or_none
 from .maps import MapResult, compute_map
 from .model import Analysis, ModelSettings
 
@@ -154,11 +156,8 @@ class Agreement:
                 f"voxel ({i}, {j}, {k}) is outside the grid {'x'.join(map(str, self.region.shape))}"
             )
 
-        def val(a: np.ndarray) -> float | None:
-            v = float(a[i, j, k])
-            return v if math.isfinite(v) else None
-
-        return val(self.ours), val(self.theirs), bool(self.region[i, j, k])
+        ours, theirs = self.ours[i, j, k], self.theirs[i, j, k]
+        return finite_or_none(ours), finite_or_none(theirs), bool(self.region[i, j, k])
 
     def describe(self) -> str:
         """One line with r, the slopes and the count of disagreeing voxels."""
@@ -233,10 +232,10 @@ def compare_maps(
     r = slope = intercept = rslope = rintercept = float("nan")
     if n >= 3 and np.ptp(x) > 0:
         xc, yc = x - x.mean(), y - y.mean()
-        sxx, syy, sxy = float(xc @ xc), float(yc @ yc), float(xc @ yc)
+        sxx, sxy = float(xc @ xc), float(xc @ yc)
         slope = sxy / sxx
         intercept = float(y.mean() - slope * x.mean())
-        r = sxy / math.sqrt(sxx * syy) if syy > 0 else float("nan")
+        r = pearson_r(x, y)
         rintercept, rslope = huber_fit(x, y)
     disagree = region & (np.abs(np.where(region, a - b, 0.0)) > tolerance)
     return Agreement(

@@ -75,7 +75,7 @@ Examples
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -91,6 +91,7 @@ from .diagnostics import (
     durbin_watson,
     influence,
     ljung_box,
+    pearson_r,
     robust_spikes,
     run_summary,
     variance_inflation,
@@ -99,6 +100,7 @@ from .errors import InputError, ModelError
 from .flags import Flag, edge_flags, flags_for
 from .glm import PreparedDesign, ar1_rho, fit, prais_winsten, prepare
 from .hrf import Kernel
+from .jsonsafe import json_safe
 from .model import Analysis, ModelSettings
 from .response import peri_event_response
 from .timing import SHIFTS_S, fir_estimate, shift_scan, task_periodicity
@@ -251,25 +253,7 @@ class VoxelChecks:
         out["confound_spikes"] = self.confound_spikes
         out["shift_scan"] = {"shifts_s": self.shifts_s, "t": self.shift_t}
         out["flags"] = [f.to_json() for f in self.flags]
-        return _plain(out)
-
-
-def _plain(obj: Any) -> Any:
-    """Recursively: numpy -> Python, NaN/inf -> None, tuples -> lists."""
-    if isinstance(obj, Mapping):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, np.ndarray):
-        return [_plain(v) for v in obj.tolist()]
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    return obj
+        return json_safe(out)
 
 
 # ----------------------------------------------------------------------------- the checks
@@ -627,16 +611,9 @@ def _confound_correlation(analysis: Analysis, d: DesignMatrix) -> dict[str, dict
         row: dict[str, float] = {}
         if conf is not None:
             for name in conf.file_columns:
-                row[name] = _pearson(x, conf.column(name))
+                row[name] = pearson_r(x, conf.column(name))
         out[cond] = row
     return out
-
-
-def _pearson(a: np.ndarray, b: np.ndarray) -> float:
-    a = np.asarray(a, float) - np.mean(a)
-    b = np.asarray(b, float) - np.mean(b)
-    den = math.sqrt(float(a @ a) * float(b @ b))
-    return float(a @ b) / den if den > 0 else math.nan
 
 
 def _spectrum_part(

@@ -50,6 +50,7 @@ import numpy as np
 from scipy import special
 
 from .errors import InputError
+from .jsonsafe import finite_or_none
 from .maps import STAT_NAMES, MapResult, compute_map
 from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t
 
@@ -220,11 +221,6 @@ class LeftOut:
         return {"run": self.run, "beta": self.beta, "t": self.t, "p": self.p}
 
 
-def _num(x: Any) -> float | None:
-    v = float(np.asarray(x).reshape(-1)[0])
-    return v if np.isfinite(v) else None
-
-
 @dataclass(frozen=True)
 class CombinedFit:
     """One kernel's fixed-effects combination at one voxel.
@@ -330,8 +326,8 @@ def combine_fits(
             )
         )
     loo: list[LeftOut] = []
-    p = _num(fe.p)
-    q_p = _num(fe.q_p)
+    p = finite_or_none(fe.p)
+    q_p = finite_or_none(fe.q_p)
     if not bad and k > 1:
         if q_p is not None and q_p < DISAGREE_P:
             flags.append(
@@ -345,7 +341,9 @@ def combine_fits(
         for i, lab in enumerate(labels):
             keep = np.arange(k) != i
             sub = fixed_effects(b[keep], v[keep], d[keep])
-            loo.append(LeftOut(lab, _num(sub.beta), _num(sub.t), _num(sub.p)))
+            loo.append(
+                LeftOut(lab, finite_or_none(sub.beta), finite_or_none(sub.t), finite_or_none(sub.p))
+            )
         if p is not None and p < EFFECT_P:
             sign = np.sign(fe.beta[0])
             for x in loo:
@@ -370,22 +368,22 @@ def combine_fits(
         }
         for lab, bi, vi, di in zip(labels, b, v, d)
     )
-    t = _num(fe.t)
+    t = finite_or_none(fe.t)
     p_tail = nl10 = z = None
     if t is not None:
         df_all = float(fe.df[0])
-        p_tail = _num(p_from_t(t, df_all, tail))
-        nl10 = _num(neglog10p_from_t(t, df_all, tail))
-        z = _num(z_from_t(t, df_all))
+        p_tail = finite_or_none(p_from_t(t, df_all, tail))
+        nl10 = finite_or_none(neglog10p_from_t(t, df_all, tail))
+        z = finite_or_none(z_from_t(t, df_all))
     return CombinedFit(
         kernel=str(kernel),
         contrast=str(contrast),
-        beta=_num(fe.beta),
-        variance=_num(fe.variance),
+        beta=finite_or_none(fe.beta),
+        variance=finite_or_none(fe.variance),
         t=t,
         df=float(fe.df[0]),
         p=p,
-        q=_num(fe.q),
+        q=finite_or_none(fe.q),
         q_p=q_p,
         n_runs=k,
         flags=tuple(flags),

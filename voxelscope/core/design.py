@@ -69,10 +69,13 @@ from .hrf import FIR, Boxcar, Kernel, get_kernel
 
 __all__ = [
     "BRIEF_EVENT_S",
+    "FINE_STEPS",
     "DesignMatrix",
     "boxcar_regressor",
     "build_design",
     "dct_drift",
+    "event_lengths",
+    "fine_step",
     "frame_times",
     "stimulus_regressor",
     "task_cycle",
@@ -82,6 +85,28 @@ __all__ = [
 #: Length given to a zero-duration event under the boxcar kernel (s): the area of the
 #: impulse that the unit-area kernels give it.
 BRIEF_EVENT_S = 1.0
+
+#: Steps of the fine time grid per TR on which stimuli are convolved (at least this many).
+FINE_STEPS = 16
+
+
+def fine_step(tr: float) -> float:
+    """The fine grid's step for a run of this TR: ``tr / FINE_STEPS`` seconds.
+
+    >>> fine_step(2.0)
+    0.125
+    """
+    return float(tr) / FINE_STEPS
+
+
+def event_lengths(durations: np.ndarray) -> np.ndarray:
+    """Durations with the brief-event rule: a zero duration counts as :data:`BRIEF_EVENT_S`.
+
+    >>> event_lengths(np.array([0.0, 2.5])).tolist()
+    [1.0, 2.5]
+    """
+    d = np.asarray(durations, dtype=np.float64)
+    return np.where(d > 0, d, BRIEF_EVENT_S)
 
 
 @dataclass(frozen=True, eq=False)
@@ -129,9 +154,6 @@ class DesignMatrix:
     @property
     def condition_names(self) -> tuple[str, ...]:
         return tuple(self.condition_columns)
-
-    def columns_of_kind(self, *kinds: str) -> list[int]:
-        return [i for i, k in enumerate(self.kinds) if k in kinds]
 
     def column(self, name: str) -> np.ndarray:
         return self.X[:, self.names.index(name)]
@@ -370,7 +392,7 @@ def boxcar_regressor(condition: Condition, times: np.ndarray, tr: float) -> np.n
         return np.zeros(times.shape)
     lo = times[:, None]
     hi = lo + float(tr)
-    du = np.where(condition.durations > 0, condition.durations, BRIEF_EVENT_S)
+    du = event_lengths(condition.durations)
     on = condition.onsets[None, :]
     overlap = np.clip(np.minimum(hi, on + du[None, :]) - np.maximum(lo, on), 0.0, None)
     return (overlap / float(tr)) @ condition.amplitudes
@@ -385,7 +407,7 @@ def build_design(
     highpass_s: float | None = 128.0,
     confounds: Confounds | None = None,
     reference_time_s: float = 0.0,
-    oversampling: int = 16,
+    oversampling: int = FINE_STEPS,
     modulators: Sequence[str] = (),
     orthogonalize: bool = False,
 ) -> DesignMatrix:
@@ -424,7 +446,7 @@ def build_design(
     if not conditions:
         raise InputError("the model has no conditions; the events file gave none")
     k = get_kernel(kernel)
-    oversampling = max(int(oversampling), 16)
+    oversampling = max(int(oversampling), FINE_STEPS)
     dt = tr / oversampling
     times = frame_times(n_volumes, tr, reference_time_s)
 

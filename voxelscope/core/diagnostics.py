@@ -7,6 +7,7 @@ Small flat functions on plain arrays, each with its published definition:
 * :func:`ljung_box` - Ljung & Box (1978) portmanteau test;
 * :func:`influence` - leverage, externally studentized residuals, Cook (1977) distance;
 * :func:`variance_inflation` - VIF of every design column;
+* :func:`pearson_r` - Pearson correlation of two series;
 * :func:`robust_spikes` - values above ``median + k * 1.4826 * MAD``;
 * :class:`RunSummary` / :func:`run_summary` - per-run brain-edge distances and the
   frame-to-frame RMS change over the mask, computed once per open run.
@@ -30,7 +31,6 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import ndimage, stats
 
 from .errors import InputError
 from .glm import PreparedDesign, prepare
@@ -45,6 +45,7 @@ __all__ = [
     "durbin_watson",
     "influence",
     "ljung_box",
+    "pearson_r",
     "robust_spikes",
     "run_summary",
     "variance_inflation",
@@ -57,6 +58,25 @@ LJUNG_BOX_LAGS = 10
 #: Run spikes: frame-to-frame RMS change above median + K * 1.4826 * MAD.
 RMS_SPIKE_K = 5.0
 _MAD_SCALE = 1.4826  # MAD -> SD for normal data (common practice)
+
+
+def pearson_r(a: np.ndarray, b: np.ndarray) -> float:
+    """Pearson correlation of two equally long series; NaN when either is constant.
+
+    ``sum(a_c b_c) / sqrt(sum(a_c^2) sum(b_c^2))`` with ``a_c``, ``b_c`` centred (the
+    published definition).
+
+    >>> pearson_r(np.array([1.0, 2.0, 3.0]), np.array([2.0, 4.0, 7.0]))  # doctest: +ELLIPSIS
+    0.99339...
+    >>> pearson_r(np.ones(3), np.arange(3.0))
+    nan
+    """
+    a = np.asarray(a, dtype=np.float64).reshape(-1)
+    b = np.asarray(b, dtype=np.float64).reshape(-1)
+    a = a - a.mean()
+    b = b - b.mean()
+    den = math.sqrt(float(a @ a) * float(b @ b))
+    return float(a @ b) / den if den > 0 else math.nan
 
 
 def acf(r: np.ndarray, nlags: int = ACF_LAGS) -> np.ndarray:
@@ -128,6 +148,8 @@ def ljung_box(r: np.ndarray, lags: int = LJUNG_BOX_LAGS) -> tuple[float, float]:
         return math.nan, math.nan
     k = np.arange(1, lags + 1)
     q = float(n * (n + 2) * np.sum(autocorr[1:] ** 2 / (n - k)))
+    from scipy import stats  # here, not at start-up
+
     return q, float(stats.chi2.sf(q, lags))
 
 
@@ -316,6 +338,8 @@ class RunSummary:
     def edge_distance(self) -> np.ndarray:
         if self._edge is None:
             padded = np.pad(self.mask, 1, constant_values=False)
+            from scipy import ndimage
+
             d = ndimage.distance_transform_edt(padded, sampling=self.voxel_size)
             self._edge = np.asarray(d[1:-1, 1:-1, 1:-1], dtype=float)
         return self._edge

@@ -133,10 +133,6 @@ class Kernel:
         t = self.times(dt)
         return float(t[int(np.argmax(self.shape(t)))])
 
-    def label(self) -> str:
-        """Short human-readable description with parameters."""
-        return self.name
-
 
 @dataclass(frozen=True)
 class Boxcar(Kernel):
@@ -179,9 +175,6 @@ class Gaussian(Kernel):
     def shape(self, t: np.ndarray) -> np.ndarray:
         return np.exp(-0.5 * ((t - self.centre_s) / self.sigma_s) ** 2)
 
-    def label(self) -> str:
-        return f"gaussian (peak {self.centre_s:g} s, sigma {self.sigma_s:g} s)"
-
 
 @dataclass(frozen=True)
 class Gamma(Kernel):
@@ -201,9 +194,6 @@ class Gamma(Kernel):
 
     def shape(self, t: np.ndarray) -> np.ndarray:
         return _gamma_pdf(t - self.delay_s, self.n, self.tau_s)
-
-    def label(self) -> str:
-        return f"gamma (n {self.n:g}, tau {self.tau_s:g} s, delay {self.delay_s:g} s)"
 
 
 @dataclass(frozen=True)
@@ -234,9 +224,6 @@ class DoubleGamma(Kernel):
         hi = _unit_area(replace(self, b1=self.b1 + eps).shape(t), dt)
         lo = _unit_area(replace(self, b1=self.b1 - eps).shape(t), dt)
         return (hi - lo) / (2 * eps)
-
-    def label(self) -> str:
-        return f"double-gamma (a1 {self.a1:g}, a2 {self.a2:g}, c {self.c:.3g})"
 
 
 @dataclass(frozen=True)
@@ -274,9 +261,6 @@ class FIR(Kernel):
 
     def shape(self, t: np.ndarray) -> np.ndarray:
         return ((t >= 0) & (t < self.length_s)).astype(float)
-
-    def label(self) -> str:
-        return f"FIR ({self.n_bins} bins of {self.bin_s:g} s)"
 
 
 _KERNELS: dict[str, type[Kernel]] = {k.name: k for k in (Boxcar, Gaussian, Gamma, DoubleGamma, FIR)}

@@ -38,6 +38,7 @@ __all__ = [
     "GZIP_MAGIC",
     "Image3D",
     "check_signature",
+    "coverage_note",
     "grid_overlap",
     "load_image",
     "load_nifti",
@@ -414,6 +415,27 @@ def resample_to_grid(
     return out.reshape(target_shape)
 
 
+def coverage_note(
+    source: Any, inside: np.ndarray, mask: np.ndarray | None, name: str
+) -> str | None:
+    """The warning for an image that covers too little of a target grid, or None.
+
+    ``inside`` marks the target voxels the image covers (:func:`grid_overlap`); the share
+    is taken over ``mask`` (all voxels when it is None or empty) and must reach
+    :data:`MIN_COVERAGE`.
+
+    >>> inside = np.zeros((4, 1, 1), bool); inside[0] = True
+    >>> coverage_note("half.nii", inside, None, "the run")
+    'half.nii covers only 25% of the run; the rest is shown as empty'
+    """
+    region = mask if mask is not None and np.any(mask) else np.ones(inside.shape, dtype=bool)
+    fraction = float(np.count_nonzero(inside & region)) / float(np.count_nonzero(region))
+    if fraction >= MIN_COVERAGE:
+        return None
+    where = f"the brain mask of {name}" if mask is not None else name
+    return f"{source} covers only {100 * fraction:.0f}% of {where}; the rest is shown as empty"
+
+
 def grid_overlap(
     shape: Sequence[int],
     affine: np.ndarray,
@@ -502,14 +524,8 @@ def load_on_grid(
             f"same space (affines)"
         )
     out = resample_to_grid(img.data, img.affine, shape, affine, order=order)
-    region = mask if mask is not None and np.any(mask) else np.ones(shape, dtype=bool)
-    fraction = float(np.count_nonzero(inside & region)) / float(np.count_nonzero(region))
-    if fraction < MIN_COVERAGE:
-        msg = (
-            f"{img.path} covers only {100 * fraction:.0f}% of the "
-            f"{'brain mask of ' if mask is not None else ''}{name}; "
-            f"the rest is shown as empty"
-        )
+    msg = coverage_note(img.path, inside, mask, name)
+    if msg is not None:
         if warnings is not None:
             warnings.append(msg)
         else:

@@ -2,7 +2,7 @@
 
 A map goes through exactly the code that fits one clicked voxel,
 :func:`voxelscope.core.glm.fit` with the analysis's prepared design and contrast (as
-:meth:`voxelscope.core.model.Analysis.fit_many` calls it), on blocks of voxels (the
+:meth:`voxelscope.core.model.Analysis.fit_voxel` calls it), on blocks of voxels (the
 columns of ``Y``). Blocks come from :meth:`voxelscope.core.run.Run.iter_blocks` in the
 store's own layout (a view of the mapped file or of the voxel-major cache where it can
 be, never a transposing copy); :func:`~voxelscope.core.glm.fit` centres every voxel and
@@ -482,7 +482,7 @@ def compute_map(
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
 
     def fit_chunk(idx: np.ndarray, data: np.ndarray):
-        # what Analysis.fit_many does, with p only when a map needs it
+        # what Analysis.fit_voxel does for one voxel, with p only when a map needs it
         ar = None if phi_flat is None else phi_flat[:, idx]
         return fit(
             _prep,

@@ -30,6 +30,7 @@ from .errors import InputError, VoxelscopeError
 from .events import Condition, EventsFile, events_sanity, shift_conditions
 from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, parse_contrast, prepare
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
+from .jsonsafe import finite_or_none
 
 __all__ = ["GAP_NOTE", "Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
 
@@ -124,33 +125,27 @@ class KernelFit:
         if noise == "ols":
             return "OLS (white noise assumed)"
         if noise == "ar1":
-            return f"AR(1), rho {self._scalar(self.result.rho):.3f} from this voxel's residuals"
+            return f"AR(1), rho {finite_or_none(self.result.rho):.3f} from this voxel's residuals"
         if self.noise_estimate is not None:
             return self.noise_estimate.describe()
         coefs = ", ".join(f"{v:.3f}" for v in np.asarray(self.result.ar).reshape(-1))
         return f"AR(p) coefficients {coefs} from this voxel alone (no neighbourhood given)"
 
-    def _scalar(self, a) -> float | None:
-        if a is None:
-            return None
-        v = float(np.asarray(a).reshape(-1)[0])
-        return v if np.isfinite(v) else None
-
     @property
     def beta(self) -> float | None:
-        return self._scalar(self.result.beta)
+        return finite_or_none(self.result.beta)
 
     @property
     def variance(self) -> float | None:
-        return self._scalar(self.result.variance)
+        return finite_or_none(self.result.variance)
 
     @property
     def t(self) -> float | None:
-        return self._scalar(self.result.t)
+        return finite_or_none(self.result.t)
 
     @property
     def p(self) -> float | None:
-        return self._scalar(self.result.p)
+        return finite_or_none(self.result.p)
 
     @property
     def df(self) -> int:
@@ -158,11 +153,11 @@ class KernelFit:
 
     @property
     def r2(self) -> float | None:
-        return self._scalar(self.result.r2)
+        return finite_or_none(self.result.r2)
 
     @property
     def rho(self) -> float | None:
-        return None if self.result.rho is None else self._scalar(self.result.rho)
+        return None if self.result.rho is None else finite_or_none(self.result.rho)
 
     @property
     def fitted(self) -> np.ndarray:
@@ -472,25 +467,6 @@ class Analysis:
             orthogonalize=orth,
         )
         return self.contrast_weights("boxcar", s)
-
-    def fit_many(
-        self,
-        Y: np.ndarray,
-        kernel: str | Kernel,
-        settings: ModelSettings,
-        rho_step: float | None = None,
-        keep_series: bool = False,
-        ar: np.ndarray | None = None,
-    ) -> FitResult:
-        """Fit many voxels (columns of ``Y``) under one kernel (whole-volume maps).
-
-        ``ar`` (order, V): AR(p) coefficients under ``noise="arp"`` (see
-        :func:`voxelscope.core.glm.fit`)."""
-        _d, prep = self.prepared(kernel, settings)
-        w = self.contrast_weights(kernel, settings)
-        return fit(
-            prep, Y, w, noise=settings.noise, rho_step=rho_step, keep_series=keep_series, ar=ar
-        )
 
     def noise_at(
         self,

@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 from scipy import signal
 
-from .design import BRIEF_EVENT_S, stimulus_regressor
+from .design import event_lengths, fine_step, stimulus_regressor
 from .errors import ModelError
 from .events import Condition
 from .glm import fit
@@ -337,12 +337,12 @@ def _kernel_response(
     c = next(c for c in analysis.conditions if c.name == condition)
     dur = float(np.median(c.durations)) if c.n_events else 0.0
     one = Condition(condition, [0.0], [dur])
-    dt = analysis.tr / 16.0
+    dt = fine_step(analysis.tr)
     total = np.zeros(times.size)
     if k.name == "boxcar":
         # the stimulus itself: height 1 during the event (a brief event lasts 1 s)
         col = d.names.index(condition)
-        box = (times >= 0) & (times < (dur if dur > 0 else BRIEF_EVENT_S))
+        box = (times >= 0) & (times < float(event_lengths(np.array([dur]))[0]))
         return res.betas[col, 0] * box.astype(float)
     for suffix, h in k.basis(dt, settings.derivatives):
         col = d.names.index(condition + suffix)

@@ -23,7 +23,7 @@ from pathlib import Path
 import numpy as np
 
 from voxelscope.core.errors import InputError
-from voxelscope.core.images import grid_overlap, load_image, load_on_grid
+from voxelscope.core.images import coverage_note, grid_overlap, load_image, load_on_grid
 from voxelscope.core.model import Analysis
 
 __all__ = [
@@ -118,14 +118,9 @@ def load_underlay(path: str | os.PathLike[str] | None, run, warnings: list[str])
     ignored: list[str] = []
     data = load_on_grid(path, (shape, affine), order=1, warnings=ignored)
     inside = grid_overlap(img.shape, img.affine, run.shape, run.affine)
-    mask = run.mask()
-    region = mask if mask.any() else np.ones(run.shape, bool)
-    covered = np.count_nonzero(inside & region) / max(1, np.count_nonzero(region))
-    if covered < 0.9:
-        warnings.append(
-            f"{path} covers only {100 * covered:.0f}% of the run's brain mask; "
-            "the rest is shown as empty"
-        )
+    note = coverage_note(path, inside, run.mask(), "the run")
+    if note is not None:
+        warnings.append(note)
     levels = _levels(data)
     data = np.where(np.isfinite(data), data, levels[0]).astype(np.float32)
     return Layer(path, data, factor, levels)
