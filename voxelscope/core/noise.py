@@ -126,8 +126,8 @@ def bias_matrix(X: np.ndarray, lags: int) -> np.ndarray:
     orthonormal basis ``Q`` of X (``R = I - Q Q'``) in ``O(n q^2)`` per entry:
     ``tr(L_j S_k) - tr(Q' S_k L_j Q) - tr(Q' L_j S_k Q) + tr(Q'L_jQ Q'S_kQ)``.
 
-    >>> bias_matrix(np.ones((10, 1)), 1).round(3).tolist()
-    [[9.0, -1.8], [-0.9, 16.2]]
+    >>> bias_matrix(np.ones((10, 1)), 1).round(3).tolist()  # tr(L_j R S_k R) by dense matrices
+    [[9.0, -1.8], [-0.9, 7.22]]
     """
     X = np.asarray(X, dtype=np.float64)
     n = X.shape[0]
@@ -187,8 +187,11 @@ def ar_from_autocorr(rho: np.ndarray, order: int | None = None) -> np.ndarray:
     Reflection coefficients are clipped to ``[-REFLECTION_LIMIT, REFLECTION_LIMIT]``, so
     the result is always a stationary AR process.
 
+    The Yule-Walker solution for AR(2) (a published formula) is
+    ``phi_1 = r_1 (1 - r_2) / (1 - r_1^2)``, ``phi_2 = (r_2 - r_1^2) / (1 - r_1^2)``:
+
     >>> np.round(ar_from_autocorr(np.array([0.6, 0.2]))[:, 0], 6).tolist()
-    [0.84375, -0.40625]
+    [0.75, -0.25]
     """
     rho = np.asarray(rho, dtype=np.float64)
     if rho.ndim == 1:
@@ -374,7 +377,7 @@ def smoothing_weights(
     """The three 1-D Gaussian weights (truncated at :data:`TRUNCATE_SIGMA` sigma).
 
     >>> [w.size for w in smoothing_weights((3.0, 3.0, 4.0))]
-    [9, 9, 7]
+    [7, 7, 5]
     """
     fwhm_mm = FWHM_MM if fwhm_mm is None else fwhm_mm
     out = []
