@@ -62,6 +62,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError, VoxelscopeError
+from .jsonsafe import json_safe
 from .model import ModelSettings
 
 __all__ = [
@@ -347,29 +348,10 @@ def _read_json(path: Path) -> dict | None:
     return data if isinstance(data, dict) else None
 
 
-def _plain(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _plain(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_plain(v) for v in obj]
-    if isinstance(obj, np.ndarray):
-        return _plain(obj.tolist())
-    if isinstance(obj, (bool, np.bool_)):
-        return bool(obj)
-    if isinstance(obj, (int, np.integer)):
-        return int(obj)
-    if isinstance(obj, (float, np.floating)):
-        v = float(obj)
-        return v if math.isfinite(v) else None
-    if isinstance(obj, Path):
-        return str(obj)
-    return obj
-
-
 def _write_json(path: Path, data: dict) -> None:
     from .atomic import write_text
 
-    text = json.dumps(_plain(data), indent=1, sort_keys=True, allow_nan=False)
+    text = json.dumps(json_safe(data), indent=1, sort_keys=True, allow_nan=False)
     write_text(path, text + "\n", force=True)
 
 

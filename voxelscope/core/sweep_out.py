@@ -31,7 +31,8 @@ import os
 from pathlib import Path
 from typing import Any
 
-from .sweep import SweepResult, SweepSettings, _plain
+from .jsonsafe import json_safe
+from .sweep import SweepResult, SweepSettings
 
 __all__ = ["CAUTION", "FINDING_COLUMNS", "finding_rows", "write_outputs"]
 
@@ -262,7 +263,7 @@ def write_outputs(result: SweepResult, settings: SweepSettings) -> list[dict[str
     write_text(out / "findings.tsv", "\n".join(lines) + "\n", force=True)
     write_text(
         out / "settings.json",
-        json.dumps(_plain(settings.to_json()), indent=1, sort_keys=True) + "\n",
+        json.dumps(json_safe(settings.to_json()), indent=1, sort_keys=True) + "\n",
         force=True,
     )
     write_text(out / "index.html", _page(result, settings, rows), force=True)
@@ -398,7 +399,9 @@ def _page(result: SweepResult, settings: SweepSettings, rows: list[dict]) -> str
         '<p class="small">Also in <a href="settings.json">settings.json</a>; each run\'s '
         "resolved model is in <code>runs/KEY.json</code>.</p>"
     )
-    out.append(f"<pre>{e(json.dumps(_plain(settings.to_json()), indent=1, sort_keys=True))}</pre>")
+    out.append(
+        f"<pre>{e(json.dumps(json_safe(settings.to_json()), indent=1, sort_keys=True))}</pre>"
+    )
     out.append(
         "<h2>Inputs</h2><table><thead><tr><th>run</th><th>role</th><th>file</th>"
         "<th>bytes</th><th>SHA-256</th></tr></thead><tbody>"
