@@ -174,3 +174,21 @@ def test_help_lists_keys_and_mouse(window, qtbot):
     text = dialog.findChild(QTextBrowser, "keys_text").toPlainText()
     for words in ("PgUp", "Wheel", "Ctrl+Z", "Add a mark", "Show mode", "Esc"):
         assert words in text
+
+
+def test_every_control_has_a_tooltip(window, ras_run):
+    """Buttons, check boxes, choices, number boxes, text boxes and sliders all say what they
+    do when the pointer rests on them (Qt's own dock, tab-bar and table buttons aside)."""
+    from PySide6.QtWidgets import QAbstractButton, QAbstractSpinBox, QComboBox, QLineEdit, QSlider
+
+    assert window.open_run(ras_run["run"], background=False)
+    missing = []
+    for cls in (QAbstractButton, QComboBox, QAbstractSpinBox, QLineEdit, QSlider):
+        for c in window.findChildren(cls):
+            name = c.objectName()
+            inside_qt = c.metaObject().className() == "QLineEditIconButton"  # clear button
+            if name.startswith(("qt_", "Scroll")) or inside_qt or c.toolTip():
+                continue
+            text = c.currentText() if isinstance(c, QComboBox) else getattr(c, "text", str)()
+            missing.append(f"{type(c).__name__} {name!r} {text!r}")
+    assert not missing, missing

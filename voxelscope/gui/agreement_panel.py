@@ -181,6 +181,7 @@ class AgreementPanel(QWidget):
         why.addWidget(self.explain_progress, 1)
         self.explain_cancel = QPushButton("Cancel")
         self.explain_cancel.setVisible(False)
+        self.explain_cancel.setToolTip("Stop looking for why the maps differ")
         self.explain_cancel.clicked.connect(self.cancel_explain)
         why.addWidget(self.explain_cancel)
         why.addStretch(0)

@@ -399,6 +399,7 @@ class ChecksPanel(QWidget):
         for key in FIGURES:
             b = QPushButton(FIGURE_TITLES[key])
             b.setObjectName("figure_button")
+            b.setToolTip(f"Show the {FIGURE_TITLES[key].lower()} figure of this voxel below")
             b.setCheckable(True)
             b.clicked.connect(lambda _c=False, k=key: self.show_figure(k))
             self.figure_group.addButton(b)

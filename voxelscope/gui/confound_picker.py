@@ -52,6 +52,9 @@ class ConfoundPicker(QWidget):
         self.filter.setObjectName("confound_filter")
         self.filter.setPlaceholderText("filter columns, e.g. trans or a_comp_cor_0[0-4]")
         self.filter.setClearButtonEnabled(True)
+        self.filter.setToolTip(
+            "Show only the columns whose names contain this text, or match a pattern with * ? [ ]"
+        )
         self.filter.textChanged.connect(self._apply_filter)
         lay.addWidget(self.filter)
         # rows of buttons (not a grid), so the part stays narrow in a small window

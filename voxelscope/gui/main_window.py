@@ -237,6 +237,7 @@ class MainWindow(QMainWindow):
         self.progress.setFixedWidth(220)
         self.progress.setFormat("opening run… %p%")
         self.cancel_button = QPushButton("Cancel")
+        self.cancel_button.setToolTip("Stop opening the run")
         self.cancel_button.clicked.connect(self.cancel_open)
         bar.addPermanentWidget(self.progress)
         bar.addPermanentWidget(self.cancel_button)

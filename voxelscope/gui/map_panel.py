@@ -114,6 +114,7 @@ class MapPanel(QWidget):
         self.stat_label = QLabel("Statistic")
         self.stat = QComboBox()
         self.stat.setObjectName("map_stat")
+        self.stat.setToolTip("Which number of the model map is drawn at each voxel")
         for key, text in MAP_STATS:
             self.stat.addItem(text, key)
         self.stat.currentIndexChanged.connect(
@@ -168,11 +169,13 @@ class MapPanel(QWidget):
         self.opacity = QSlider(Qt.Orientation.Horizontal)
         self.opacity.setRange(0, 100)
         self.opacity.setMinimumWidth(60)
+        self.opacity.setToolTip("How much of the underlay shows through the map")
         self.opacity.valueChanged.connect(
             lambda v: self.state.set_map_settings(opacity=float(v) / 100.0)
         )
         self.scale = QComboBox()
         self.scale.setObjectName("map_colours")
+        self.scale.setToolTip("Colours of the map: negative to positive, through white at 0")
         for name, text in COLOUR_SCALES:
             self.scale.addItem(_scale_icon(name), text, name)
             self.scale.setItemData(
@@ -198,6 +201,7 @@ class MapPanel(QWidget):
         job_row = QHBoxLayout()
         job_row.setSpacing(6)
         self.visible = QCheckBox("show the map")
+        self.visible.setToolTip("Draw the map over the slices (the map is kept when hidden)")
         self.visible.toggled.connect(lambda on: self.state.set_map_settings(visible=bool(on)))
         job_row.addWidget(self.visible)
         self.job_label = QLabel("")

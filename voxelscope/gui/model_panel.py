@@ -54,6 +54,20 @@ _REASONS = (
 _WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_.:\-]*$")
 
 
+def _kernel_tip(name: str) -> str:
+    """A kernel's tooltip from the kernel itself: its description and shape.
+
+    >>> _kernel_tip("boxcar")
+    'No convolution: the regressor is the stimulus itself.'
+    """
+    from voxelscope.core.hrf import get_kernel
+
+    k = get_kernel(name)
+    first = (type(k).__doc__ or "").strip().splitlines()[0].replace("``", "")
+    label = k.label()
+    return first if label == name else f"{first} Here: {label}."
+
+
 def swatch_icon(colour: str, size: int = 14) -> QIcon:
     """A small filled square in a colour (kernel markers)."""
     pix = QPixmap(size, size)
@@ -141,6 +155,7 @@ class ModelPanel(QWidget):
             box = QCheckBox(name)
             box.setObjectName(f"kernel_{name}")
             box.setIcon(swatch_icon(kernel_colour(name)))
+            box.setToolTip(_kernel_tip(name))
             box.toggled.connect(self._kernels_changed)
             kl.addWidget(box)
             self.kernel_boxes[name] = box
@@ -248,6 +263,7 @@ class ModelPanel(QWidget):
         self.highpass.setSuffix(" s")
         self.highpass.setToolTip("Cosine drift cutoff; 128 s is a common default")
         self.highpass_none = QCheckBox("none")
+        self.highpass_none.setToolTip("No drift regressors at all (only the constant)")
         self.highpass.valueChanged.connect(self._highpass_changed)
         self.highpass_none.toggled.connect(self._highpass_changed)
         hp_row.addWidget(self.highpass, 1)
@@ -274,6 +290,11 @@ class ModelPanel(QWidget):
         self.derivatives.addItem("none", 0)
         self.derivatives.addItem("time", 1)
         self.derivatives.addItem("time + dispersion", 2)
+        self.derivatives.setToolTip(
+            "Add each kernel's time derivative (and its width derivative) as regressors, so "
+            "a response a little early or late, or wider, still fits; Fits then also shows an "
+            "F test over them"
+        )
         self.derivatives.currentIndexChanged.connect(
             lambda _i: self.state.update_settings(derivatives=int(self.derivatives.currentData()))
         )
@@ -426,7 +447,9 @@ class ModelPanel(QWidget):
         has_fd = has_conf and "framewise_displacement" in analysis.confound_names
         self.censor_on.setEnabled(has_fd)
         self.censor_on.setToolTip(
-            "" if has_fd else "The confounds table has no framewise_displacement column"
+            "Leave out the volumes with more motion than this"
+            if has_fd
+            else "The confounds table has no framewise_displacement column"
         )
         self._on_settings(self.state.settings)
 

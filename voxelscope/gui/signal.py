@@ -172,6 +172,8 @@ class SignalPanel(QWidget):
         self.unit_data = QRadioButton("data values")
         self.unit_pct = QRadioButton("% signal change")
         self.unit_data.setChecked(True)
+        self.unit_data.setToolTip("Plot the run's own values")
+        self.unit_pct.setToolTip("Plot the change from the voxel's mean, in percent of it")
         group = QButtonGroup(self)
         group.addButton(self.unit_data)
         group.addButton(self.unit_pct)
