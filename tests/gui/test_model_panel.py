@@ -248,3 +248,22 @@ def test_highpass_below_the_task_cycle_is_said_in_model(window, ras_run, qtbot):
     assert any("on/off cycle" in w for w in st.fits.warnings)  # Fits' notes too
     window.model_panel.highpass.setValue(128.0)
     assert note.isHidden() and note.text() == ""
+
+
+def test_ctrl_z_in_the_contrast_box_edits_text_then_undoes_the_contrast(window, ras_run, qtbot):
+    st = _open(window, ras_run)
+    edit = window.model_panel.contrast
+    edit.setFocus()
+    qtbot.keyClicks(edit, "tap")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
+    assert st.settings.contrast == "tap"
+    qtbot.keyClicks(edit, " - tone")
+    qtbot.keyClick(edit, Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)
+    assert st.settings.contrast == "tap" and edit.text() != "tap - tone"  # the text's own undo
+    edit.setText("tap - tone")
+    qtbot.keyClick(edit, Qt.Key.Key_Return)
+    assert st.settings.contrast == "tap - tone"
+    qtbot.keyClick(edit, Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)
+    assert st.settings.contrast == "tap" and edit.text() == "tap"  # the window's undo
+    qtbot.keyClick(edit, Qt.Key.Key_Y, Qt.KeyboardModifier.ControlModifier)
+    assert st.settings.contrast == "tap - tone" and edit.text() == "tap - tone"

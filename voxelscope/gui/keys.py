@@ -42,7 +42,7 @@ BINDINGS: tuple[Binding, ...] = (
     Binding(("Ctrl+O",), "Anywhere", "Open a run"),
     Binding(("Ctrl+Shift+O",), "Anywhere", "Open a saved session"),
     Binding(("Ctrl+Shift+S",), "Anywhere", "Save the session (run, model, voxel, marks, layout)"),
-    Binding(("Ctrl+E",), "Anywhere", "Export the view as figures and tables"),
+    Binding(("Ctrl+E",), "Anywhere", "Save a part of the view or a figure as PNG or SVG"),
     Binding(("Ctrl+R",), "Anywhere", "Write a report"),
     Binding(("Ctrl+Z",), "Anywhere", "Undo the last model change or marks change"),
     Binding(("Ctrl+Shift+Z", "Ctrl+Y"), "Anywhere", "Redo what was undone"),
@@ -111,15 +111,12 @@ def keys_html() -> str:
     parts: dict[str, list[Binding]] = {}
     for b in BINDINGS:
         parts.setdefault(b.where, []).append(b)
-    out = [
-        "<style>td{padding:2px 10px 2px 0; vertical-align:top} "
-        "h3{margin:10px 0 2px 0} kbd{font-weight:bold}</style>"
-    ]
+    out = ["<style>td{padding:2px 10px 2px 0; vertical-align:top} h3{margin:10px 0 2px 0}</style>"]
     for where, items in parts.items():
         out.append(f"<h3>{html.escape(where)}</h3><table>")
         for b in items:
             keys = [k if b.mouse else _native(k) for k in b.keys]
-            shown = " or ".join(f"<kbd>{html.escape(k)}</kbd>" for k in keys)
+            shown = " or ".join(f"<b>{html.escape(k)}</b>" for k in keys)
             out.append(f"<tr><td>{shown}</td><td>{html.escape(b.what)}</td></tr>")
         out.append("</table>")
     return "".join(out)

@@ -13,8 +13,8 @@ from __future__ import annotations
 
 import re
 
-from PySide6.QtCore import QStringListModel, Qt, QTimer, Signal
-from PySide6.QtGui import QColor, QIcon, QPainter, QPixmap
+from PySide6.QtCore import QEvent, QKeyCombination, QStringListModel, Qt, QTimer, Signal
+from PySide6.QtGui import QColor, QIcon, QKeySequence, QPainter, QPixmap
 from PySide6.QtWidgets import (
     QCheckBox,
     QComboBox,
@@ -84,7 +84,10 @@ def swatch_icon(colour: str, size: int = 14) -> QIcon:
 class ContrastEdit(QLineEdit):
     """Contrast entry that offers condition names for the word being typed.
 
-    Esc (with no list of names open) emits ``reverted``: put back the contrast in use."""
+    Esc (with no list of names open) emits ``reverted``: put back the contrast in use.
+    Ctrl+Z / redo keys edit the text while it is being typed; once the text in the box is
+    the contrast in use (not modified since), they go to the window's Edit menu instead, so
+    Enter then Ctrl+Z undoes the contrast change."""
 
     reverted = Signal()
 
@@ -118,6 +121,21 @@ class ContrastEdit(QLineEdit):
             self.completer_.complete()
         else:
             self.completer_.popup().hide()
+
+    def event(self, ev) -> bool:
+        if (
+            ev.type() == QEvent.Type.ShortcutOverride
+            and not self.isModified()
+            and (
+                ev.matches(QKeySequence.StandardKey.Undo)
+                or ev.matches(QKeySequence.StandardKey.Redo)
+                or ev.keyCombination()
+                == QKeyCombination(Qt.KeyboardModifier.ControlModifier, Qt.Key.Key_Y)
+            )
+        ):
+            ev.ignore()  # not the box's own text undo: let the window's action have it
+            return False
+        return super().event(ev)
 
     def keyPressEvent(self, ev) -> None:
         if ev.key() == Qt.Key.Key_Escape and not self.completer_.popup().isVisible():
