@@ -54,18 +54,31 @@ _REASONS = (
 _WORD = re.compile(r"[A-Za-z_][A-Za-z0-9_.:\-]*$")
 
 
+#: What each kernel is, in a few words (its peak is added from the kernel itself).
+KERNEL_TIPS = {
+    "boxcar": "No convolution: the regressor is the stimulus itself",
+    "gaussian": "A bell-shaped response",
+    "gamma": "A single gamma-shaped response after a short delay",
+    "double-gamma": "A peak and a later, smaller undershoot",
+    "fir": "A free response shape: one regressor per time bin after each onset (span and "
+    "bins below)",
+}
+
+
 def _kernel_tip(name: str) -> str:
-    """A kernel's tooltip from the kernel itself: its description and shape.
+    """A kernel's tooltip: what it is and, for a shaped kernel, when it peaks.
 
     >>> _kernel_tip("boxcar")
-    'No convolution: the regressor is the stimulus itself.'
+    'No convolution: the regressor is the stimulus itself'
+    >>> _kernel_tip("gamma")
+    'A single gamma-shaped response after a short delay; peaks 4.9 s after onset'
     """
     from voxelscope.core.hrf import get_kernel
 
-    k = get_kernel(name)
-    first = (type(k).__doc__ or "").strip().splitlines()[0].replace("``", "")
-    label = k.label()
-    return first if label == name else f"{first} Here: {label}."
+    text = KERNEL_TIPS.get(name, name)
+    if name in ("boxcar", "fir"):
+        return text
+    return f"{text}; peaks {get_kernel(name).peak_s():.3g} s after onset"
 
 
 def swatch_icon(colour: str, size: int = 14) -> QIcon:
