@@ -23,7 +23,7 @@ def test_cache_info_and_clear(tmp_path, capsys):
     data = np.random.default_rng(0).standard_normal((4, 5, 3, 12)).astype(np.float32) + 100
     path = tmp_path / "r.nii.gz"
     nib.save(nib.Nifti1Image(data, np.eye(4)), path)
-    run = open_run(path, tr=2.0)  # builds the voxel-major cache under XDG_CACHE_HOME
+    run = open_run(path, tr=2.0)  # builds the fast-access copy under XDG_CACHE_HOME
     np.testing.assert_array_equal(run.timeseries((1, 2, 1)), data[1, 2, 1])
     assert main(["cache", "info"]) == 0
     out = capsys.readouterr().out
@@ -106,4 +106,5 @@ def test_big_cache_is_announced_on_stderr_before_the_fit(tmp_path, capsys, monke
     run = tmp_path / f"{stem}_space-phantom_desc-preproc_bold.nii.gz"
     assert main(["fit", str(run), "--voxel", "6", "23", "15", "--format", "json"]) == 0
     err = capsys.readouterr().err
-    assert err.count("cache in") == 1 and "voxelscope: " in err and " MB cache in " in err
+    assert err.count("fast-access copy of the run") == 1 and "voxelscope: " in err
+    assert " MB fast-access copy of the run" in err and "voxel-major" not in err

@@ -527,3 +527,15 @@ def test_highpass_shorter_than_the_task_cycle_warns(tmp_path, capsys):
     out = tmp_path / "t.nii"
     assert main(["map", str(path), "--highpass", "10", "--out", str(out)]) == 0
     assert "on/off cycle" in capsys.readouterr().err
+
+
+def test_checks_without_warning_signs_say_so(tmp_path, capsys):
+    """Issue 17 item 10: --checks on a white-noise voxel prints one line saying there are no
+    warning signs, instead of nothing."""
+    rng = np.random.default_rng(5)
+    path, _events, _ = _write_run(tmp_path, rng)
+    assert main(["fit", str(path), "--voxel", "2", "3", "1", "--checks"]) == 0
+    out = capsys.readouterr().out
+    assert "checks: no warning signs at this voxel (4 kernels checked)" in out
+    assert main(["fit", str(path), "--voxel", "2", "3", "1"]) == 0
+    assert "warning signs" not in capsys.readouterr().out  # not asked: not said

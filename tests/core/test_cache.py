@@ -720,8 +720,25 @@ def test_big_cache_is_announced_before_it_is_written(tmp_path, monkeypatch):
     run = open_run(path, cache_dir=cdir, notify=notify)
     assert len(said) == 1
     line, files_then = said[0]
-    assert "writing a" in line and "MB cache" in line and files_then == []
+    assert "writing a" in line and "MB fast-access copy of the run" in line
+    assert files_then == []
     assert run.storage == "cache" and not run.warnings
+
+
+def test_cache_larger_than_its_file_is_announced(tmp_path, monkeypatch):
+    """Issue 17 item 10: a copy larger than the compressed run (int16 stored as float32) is
+    announced with both sizes before it is written; below the floor it is not."""
+    monkeypatch.setattr(cache, "ANNOUNCE_BYTES", 10**15)
+    path = tmp_path / "r.nii.gz"
+    _write_gz(path, 21)
+    said: list[str] = []
+    open_run(path, cache_dir=tmp_path / "quiet", notify=said.append)
+    assert said == []  # a few kB: not worth a line
+    monkeypatch.setattr(cache, "ANNOUNCE_LARGER_MIN_BYTES", 1)
+    open_run(path, cache_dir=tmp_path / "c", notify=said.append)
+    assert len(said) == 1
+    assert "fast-access copy of the run" in said[0] and "compressed" in said[0]
+    assert "voxel-major" not in said[0]
 
 
 def test_bad_limit_variable_is_one_clear_line(tmp_path, monkeypatch):

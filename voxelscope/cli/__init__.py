@@ -125,8 +125,11 @@ class _OneLineParser(argparse.ArgumentParser):
 
 
 def _top_parser() -> argparse.ArgumentParser:
+    from .helptext import help_args
+
     parser = _OneLineParser(
         prog="voxelscope",
+        **help_args("voxelscope"),
         description=(
             "Inspect a first-level fMRI model voxel by voxel. Run without a command to open "
             "an empty window. Research software: not for clinical diagnosis."

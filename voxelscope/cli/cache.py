@@ -1,9 +1,15 @@
-"""``voxelscope cache info`` and ``voxelscope cache clear [RUN]``: the voxel-major cache."""
+"""``voxelscope cache info`` and ``voxelscope cache clear [RUN]``: the fast-access copies.
+
+A compressed run is copied once into a form that serves any voxel's time series at once
+(``core/cache.py``); these commands list and remove those copies.
+"""
 
 from __future__ import annotations
 
 import argparse
 import time
+
+from .helptext import help_args
 
 __all__ = ["register"]
 
@@ -11,22 +17,32 @@ __all__ = ["register"]
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "cache",
-        help="show or clear the voxel-major cache of compressed runs",
+        **help_args("cache"),
+        help="list or remove the fast-access copies of compressed runs",
         description=(
-            "The cache makes voxel time series of compressed runs instant. It keeps the "
-            "brain voxels of each run and stays under a size limit (20 GB unless the "
-            "environment variable VOXELSCOPE_CACHE_LIMIT says otherwise, e.g. 50GB); the "
-            "least recently used runs make room for new ones."
+            "The first time a compressed run (.nii.gz) is opened, voxelscope writes a "
+            "fast-access copy of it, so any voxel's time series is read at once. A copy "
+            "keeps the brain voxels of its run, and all copies stay under a size limit (20 GB "
+            "unless the environment variable VOXELSCOPE_CACHE_LIMIT says otherwise, e.g. "
+            "50GB); the least recently used make room for new ones."
         ),
     )
     s = p.add_subparsers(dest="cache_command", metavar="ACTION", required=True)
-    i = s.add_parser("info", help="list cached runs, their size and last use")
-    i.set_defaults(handler=run_info)
-    c = s.add_parser("clear", help="delete every cached run, or those of one run")
-    c.add_argument("run", nargs="?", metavar="RUN", help="only the cache of this run file")
-    c.add_argument(
-        "--stale", action="store_true", help="only entries whose source changed or is gone"
+    i = s.add_parser(
+        "info",
+        **help_args("cache info"),
+        help="list the copies: size, last use and the run each was made from",
+        description="List the fast-access copies: size, last use and the run of each.",
     )
+    i.set_defaults(handler=run_info)
+    c = s.add_parser(
+        "clear",
+        **help_args("cache clear"),
+        help="remove every copy, or the copy of one run",
+        description="Remove fast-access copies (they are made again when a run is opened).",
+    )
+    c.add_argument("run", nargs="?", metavar="RUN", help="only the copy of this run file")
+    c.add_argument("--stale", action="store_true", help="only copies whose run changed or is gone")
     c.set_defaults(handler=run_clear)
 
 

@@ -282,7 +282,10 @@ def add_model_args(
         "above derivatives/)",
     )
     p.add_argument(
-        "--no-cache", action="store_true", help="do not build or use the voxel-major cache"
+        "--no-cache",
+        action="store_true",
+        help="read a compressed run into memory instead of making or using its fast-access "
+        "copy on disk",
     )
 
 

@@ -25,9 +25,11 @@ from .common import (
     print_warnings,
     voxel_from_args,
 )
+from .helptext import count, help_args
 from .multirun import load_runs, run_paths, voxels_from_args
 
 __all__ = [
+    "checks_lines",
     "combine_voxel_fits",
     "fit_to_json",
     "format_combined_table",
@@ -39,6 +41,7 @@ __all__ = [
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
         "fit",
+        **help_args("fit"),
         help="fit one voxel under every kernel",
         description=(
             "Fit the GLM at one voxel under each kernel and print beta, variance, t, df, p and "
@@ -322,10 +325,8 @@ def _run_fit_several(args: argparse.Namespace) -> int:
             f"{mm[2]:.1f})  TR {ld.run.tr:g} s  {ld.run.n_volumes} volumes"
         )
         print(format_table(r[0], noise))
-        for kernel, c in r[1].items():
-            for flag in c.get("flags", []):
-                text = flag.get("text") if isinstance(flag, dict) else str(flag)
-                print(f"[{kernel}] {text}")
+        for line in checks_lines(r[1], args.checks):
+            print(line)
         print()
     print(
         f"combined: fixed effects over {len(loads)} runs  contrast {combined[0].contrast}  "
@@ -379,8 +380,29 @@ def run_fit(args: argparse.Namespace) -> int:
     if loaded.settings.noise == "arp":
         for f in fits.fits:
             print(f"[{f.kernel}] noise: {f.noise_text}")
+    for line in checks_lines(checks_by_kernel, args.checks):
+        print(line)
+    return 0
+
+
+def checks_lines(checks_by_kernel: dict[str, dict], asked: bool) -> list[str]:
+    """``[kernel] flag`` lines, or one line saying there is nothing to flag (``--checks``).
+
+    >>> checks_lines({"gamma": {"flags": []}}, True)
+    ['checks: no warning signs at this voxel (1 kernel checked)']
+    >>> checks_lines({"gamma": {"flags": [{"text": "residuals autocorrelated"}]}}, True)
+    ['[gamma] residuals autocorrelated']
+    >>> checks_lines({}, False)
+    []
+    """
+    lines = []
     for kernel, c in checks_by_kernel.items():
         for flag in c.get("flags", []):
             text = flag.get("text") if isinstance(flag, dict) else str(flag)
-            print(f"[{kernel}] {text}")
-    return 0
+            lines.append(f"[{kernel}] {text}")
+    if asked and not lines:
+        lines.append(
+            "checks: no warning signs at this voxel "
+            f"({count(len(checks_by_kernel), 'kernel')} checked)"
+        )
+    return lines

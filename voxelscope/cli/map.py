@@ -19,6 +19,7 @@ from pathlib import Path
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
 from .common import Loaded, add_model_args, analysis_from_args, print_warnings
+from .helptext import count, help_args
 from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]
@@ -63,6 +64,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     """Add the ``map`` subcommand."""
     p = sub.add_parser(
         "map",
+        **help_args("map"),
         help="fit one kernel at every voxel and write a statistic map",
         description=(
             "Fit the GLM at every voxel of the mask under one kernel and write one statistic "
@@ -217,7 +219,7 @@ def run_map(args: argparse.Namespace) -> int:
         write_text(args.clusters, table.to_tsv(), force=args.force)
         print(
             f"wrote {args.clusters}: {len(table)} clusters with |{args.stat}| > {args.threshold:g} "
-            f"({args.connectivity}-connected, at least {args.min_voxels} voxels)"
+            f"({args.connectivity}-connected, at least {count(args.min_voxels, 'voxel')})"
         )
 
     if args.compare:
@@ -284,7 +286,7 @@ def _write_clusters(args: argparse.Namespace, data, run, result) -> None:
     write_text(args.clusters, table.to_tsv(), force=args.force)
     print(
         f"wrote {args.clusters}: {len(table)} clusters with |{args.stat}| > {args.threshold:g} "
-        f"({args.connectivity}-connected, at least {args.min_voxels} voxels)"
+        f"({args.connectivity}-connected, at least {count(args.min_voxels, 'voxel')})"
     )
 
 

@@ -12,6 +12,7 @@ from .common import (
     print_warnings,
     voxel_from_args,
 )
+from .helptext import help_args
 from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_report"]
@@ -31,6 +32,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     """Add the ``report`` subcommand."""
     p = sub.add_parser(
         "report",
+        **help_args("report"),
         help="write an HTML report, CSVs and figures for a voxel or a marks file",
         description=(
             "Fit every kernel at one voxel (--voxel or --mm) or at every mark of a marks TSV "

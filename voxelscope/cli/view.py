@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 
 from ..core.errors import InputError
+from .helptext import help_args
 
 __all__ = ["open_empty_window", "register"]
 
@@ -42,9 +43,18 @@ def _add_screenshot_args(p: argparse.ArgumentParser) -> None:
 
 def register(sub: argparse._SubParsersAction) -> None:
     p = sub.add_parser(
-        "view", help="open a run in the window", description="Open a run in the inspection window."
+        "view",
+        **help_args("view"),
+        help="open a run in the window",
+        description=(
+            "Open a run in the window: Slices, Signal, Fits, Model, Map, Findings, Checks and "
+            "Marks. Events, confounds, sidecars and the brain mask are found beside the run "
+            "by their BIDS names unless given. Research software: not for clinical diagnosis."
+        ),
     )
-    p.add_argument("run", nargs="?", help="4D NIfTI run")
+    p.add_argument(
+        "run", nargs="?", help="4D NIfTI run (.nii or .nii.gz); without it, an empty window"
+    )
     p.add_argument(
         "--add-run",
         action="append",
@@ -53,13 +63,33 @@ def register(sub: argparse._SubParsersAction) -> None:
         help="another run of the same subject, fitted at the same place and combined by "
         "fixed effects (repeat for more runs)",
     )
-    p.add_argument("--events", metavar="FILE")
-    p.add_argument("--confounds", metavar="FILE")
-    p.add_argument("--anat", metavar="FILE", help="anatomical underlay on any grid")
+    p.add_argument(
+        "--events",
+        metavar="FILE",
+        help="BIDS events.tsv (onset, duration in seconds; trial_type); default: the "
+        "BIDS-named file beside the run",
+    )
+    p.add_argument(
+        "--confounds",
+        metavar="FILE",
+        help="TSV or CSV of nuisance regressors with a header row; default: the confounds "
+        "table beside the run (its columns are listed in Model, switched off)",
+    )
+    p.add_argument(
+        "--anat",
+        metavar="FILE",
+        help="anatomical underlay on any grid, drawn at its own resolution (default: the "
+        "run's mean image)",
+    )
     p.add_argument(
         "--map", metavar="FILE", dest="stat_map", help="statistic map overlay on any grid"
     )
-    p.add_argument("--tr", type=float, metavar="SECONDS")
+    p.add_argument(
+        "--tr",
+        type=float,
+        metavar="SECONDS",
+        help="repetition time; overrides the sidecar and the header",
+    )
     p.add_argument(
         "--mask",
         metavar="FILE|auto",
@@ -70,8 +100,20 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--bids-root", metavar="DIR", help="the raw BIDS dataset a derivative run comes from"
     )
     g = p.add_mutually_exclusive_group()
-    g.add_argument("--voxel", nargs=3, type=int, metavar=("I", "J", "K"))
-    g.add_argument("--mm", nargs=3, type=float, metavar=("X", "Y", "Z"))
+    g.add_argument(
+        "--voxel",
+        nargs=3,
+        type=int,
+        metavar=("I", "J", "K"),
+        help="start at this voxel (indices, 0-based)",
+    )
+    g.add_argument(
+        "--mm",
+        nargs=3,
+        type=float,
+        metavar=("X", "Y", "Z"),
+        help="start at these world coordinates in mm (nearest voxel)",
+    )
     p.add_argument("--session", metavar="FILE", help="restore a saved session")
     p.add_argument("--save-session", metavar="FILE", help="save the session to FILE after opening")
     _add_screenshot_args(p)
@@ -79,8 +121,13 @@ def register(sub: argparse._SubParsersAction) -> None:
 
     d = sub.add_parser(
         "demo",
+        **help_args("demo"),
         help="open the demo run (tone and tap blocks)",
-        description="Open the demo scenario.",
+        description=(
+            "Open the demo study: a made-up run with tone and tap blocks, its confounds, an "
+            "anatomical image, an earlier analysis's t map and prepared marks, each hiding "
+            "something for the tools to find. Not real data."
+        ),
     )
     _add_screenshot_args(d)
     d.set_defaults(handler=run_demo)

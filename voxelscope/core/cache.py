@@ -108,6 +108,7 @@ from voxelscope.core.voxelmajor import (
 
 __all__ = [
     "ANNOUNCE_BYTES",
+    "ANNOUNCE_LARGER_MIN_BYTES",
     "DEFAULT_LIMIT_BYTES",
     "LIMIT_ENV",
     "CacheEntry",
@@ -135,6 +136,9 @@ LIMIT_ENV = "VOXELSCOPE_CACHE_LIMIT"
 
 #: Entries at least this big are announced (one line) before they are written.
 ANNOUNCE_BYTES = 10**9
+#: Entries larger than the compressed file they copy are announced too, from this size on
+#: (a few MB more on disk are not worth a line).
+ANNOUNCE_LARGER_MIN_BYTES = 32 * 10**6
 
 #: Temporary files older than this (seconds) are stale whoever wrote them.
 STALE_TMP_SECONDS = 24 * 3600
@@ -698,8 +702,18 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
                 f"{directory}: the cache needs {need / 1e6:.0f} MB but only "
                 f"{free / 1e6:.0f} MB are free; free disk space or give another cache folder"
             )
-        if need >= ANNOUNCE_BYTES:
-            line = f"{layout.path}: writing a {_gb(need)} cache in {directory} (limit {_gb(limit)})"
+        try:
+            source_bytes = layout.path.stat().st_size
+        except OSError:
+            source_bytes = 0
+        larger = need > source_bytes and need >= ANNOUNCE_LARGER_MIN_BYTES
+        if need >= ANNOUNCE_BYTES or larger:
+            than = f", {_gb(source_bytes)} compressed" if source_bytes else ""
+            line = (
+                f"{layout.path}: writing a {_gb(need)} fast-access copy of the run{than}, "
+                f"in {directory} (all copies stay under {_gb(limit)}; "
+                "voxelscope cache clear removes them)"
+            )
             (notify or notes.append)(line)
         try:
             if tmp_data is None:
