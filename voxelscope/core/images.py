@@ -269,13 +269,15 @@ def _check_affine(path: Path, affine: np.ndarray, source: str) -> None:
         )
 
 
-def load_image(path: str | os.PathLike[str]) -> Image3D:
+def load_image(path: str | os.PathLike[str], what: str = "image") -> Image3D:
     """Read a 3D image (or a 4D image with a single volume) as float32.
 
     Parameters
     ----------
     path : str or path-like
         ``.nii`` or ``.nii.gz`` (NIfTI-1 or NIfTI-2).
+    what : str
+        Word used in messages (``"image"``, ``"underlay"``, ``"atlas"``, ``"mask"``).
 
     Returns
     -------
@@ -295,7 +297,7 @@ def load_image(path: str | os.PathLike[str]) -> Image3D:
     ((33, 41, 25), ('L', 'A', 'S'))
     """
     path = Path(path)
-    img = load_nifti(path, "image")
+    img = load_nifti(path, what)
     shape = tuple(int(n) for n in img.shape)
     if any(n == 0 for n in shape):
         raise InputError(f"{path}: zero-length dimension in shape {shape} (dim field)")

@@ -33,6 +33,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .atlas import Atlas, load_atlas
 from .companions import Companions, find_companions
 from .confounds import Confounds, choose_columns, read_confounds
 from .errors import InputError
@@ -90,6 +91,11 @@ class InputRequest:
         looked for beside the run. Distinct from not naming one (None: find the BIDS
         companion). A session uses it for an entry it refused (its recorded digest no
         longer matches), so a companion beside the run cannot take the refused file's place.
+    atlas : path, optional
+        A segmentation image on any grid (BIDS ``dseg``) whose region names are shown at
+        the cursor and in reports (:mod:`voxelscope.core.atlas`).
+    atlas_labels : path, optional
+        Its ``dseg.tsv``; default the one named like the image.
     summarize : bool
         Make the one pass over the data (mean image, NaN and constant voxels, brain mask)
         while opening, so its warnings are in :attr:`Inputs.warnings`. ``voxelscope fit``
@@ -110,6 +116,8 @@ class InputRequest:
     events_required: bool = True
     no_events: bool = False
     no_confounds: bool = False
+    atlas: Path | None = None
+    atlas_labels: Path | None = None
     summarize: bool = True
 
     def __post_init__(self) -> None:
@@ -117,7 +125,7 @@ class InputRequest:
             if getattr(self, flag) and getattr(self, name) is not None:
                 raise ValueError(f"{flag} and {name} exclude each other")
         object.__setattr__(self, "run", Path(self.run).expanduser())
-        for name in ("events", "confounds", "bids_root"):
+        for name in ("events", "confounds", "bids_root", "atlas", "atlas_labels"):
             value = getattr(self, name)
             if value is not None:
                 object.__setattr__(self, name, Path(value).expanduser())
@@ -133,7 +141,7 @@ class InputRequest:
 
     def input_paths(self) -> list[Path]:
         """Every input file named in the request (to keep outputs off them)."""
-        paths = [self.run, self.events, self.confounds]
+        paths = [self.run, self.events, self.confounds, self.atlas, self.atlas_labels]
         if isinstance(self.mask, Path):
             paths.append(self.mask)
         return [p for p in paths if p is not None]
@@ -188,6 +196,11 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
                 f"{run}: {len(both)} {role} files match this run ({names}); "
                 f"name the one to use with {option} FILE"
             )
+    if request.atlas_labels is not None and request.atlas is None:
+        raise InputError(
+            f"{request.atlas_labels}: --atlas-labels names the table of an atlas; give the "
+            "atlas image with --atlas FILE too"
+        )
     for label, given in (("events", request.events), ("confounds", request.confounds)):
         if given is not None and not given.exists():  # devices, folders: the reader says
             raise InputError(f"{given}: {label} file not found; check --{label}")
@@ -229,6 +242,8 @@ class Inputs:
         Every warning, in the order the steps ran.
     confound_columns : tuple of str or None
         The model's confound columns for the user's choice (None without a table).
+    atlas : Atlas or None
+        The segmentation image and label table given (``--atlas``).
     """
 
     request: InputRequest
@@ -240,6 +255,7 @@ class Inputs:
     mask_source: str = "intensity"
     warnings: list[str] = field(default_factory=list)
     confound_columns: tuple[str, ...] | None = None
+    atlas: Atlas | None = None
 
     @property
     def companions(self) -> Companions:
@@ -270,6 +286,7 @@ class Inputs:
             "sidecars": sidecars,
             "confounds": None if self.confounds_path is None else str(self.confounds_path),
             "mask": None if self.mask_path is None else str(self.mask_path),
+            "atlas": None if self.atlas is None else str(self.atlas.path),
         }
 
     def files_line(self) -> str:
@@ -422,6 +439,9 @@ def load_inputs(
         from .images import load_nifti
 
         load_nifti(resolved.mask, "mask")  # header only: unreadable masks fail now
+    atlas = None
+    if request.atlas is not None:
+        atlas = load_atlas(request.atlas, request.atlas_labels)  # before the run: cheap
     keep = None
     if resolved.mask is not None:
         mask_path = resolved.mask
@@ -487,6 +507,7 @@ def load_inputs(
         mask_source=mask_source,
         warnings=list(dict.fromkeys(warnings)),
         confound_columns=columns,
+        atlas=atlas,
     )
 
 
