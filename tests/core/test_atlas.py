@@ -102,7 +102,7 @@ def test_bad_label_table_is_one_line_naming_file_row_and_column(tmp_path, text, 
 
 def test_label_table_found_by_bids_name_or_given(tmp_path):
     path, _ = _write_atlas(tmp_path, table=None)
-    with pytest.raises(InputError, match="no label table beside the atlas.*--atlas-labels"):
+    with pytest.raises(InputError, match=r"no label table beside the atlas.*--atlas-labels"):
         load_atlas(path)
     # a dataset-level table whose entities all belong to the image
     (tmp_path / "space-X_atlas-demo_dseg.tsv").write_text(TABLE)
