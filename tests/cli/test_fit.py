@@ -539,3 +539,36 @@ def test_checks_without_warning_signs_say_so(tmp_path, capsys):
     assert "checks: no warning signs at this voxel (4 kernels checked)" in out
     assert main(["fit", str(path), "--voxel", "2", "3", "1"]) == 0
     assert "warning signs" not in capsys.readouterr().out  # not asked: not said
+
+
+def test_atlas_region_in_fit_json_and_table(tmp_path, capsys):
+    """Issue 17 item 6: --atlas names the region at the voxel, looked up through the
+    affines on the atlas's own grid (nibabel.affines.apply_affine as the reference)."""
+    from nibabel.affines import apply_affine
+
+    rng = np.random.default_rng(9)
+    path, _events, _ = _write_run(tmp_path, rng)
+    aff = np.diag([-1.5, 1.5, 1.5, 1.0])  # another grid, flipped left-right
+    aff[:3, 3] = (12.0, -2.0, -2.0)
+    labels = np.zeros((12, 14, 12), np.int16)
+    labels[:, 7:, :] = 3
+    atlas = tmp_path / "sub-01_atlas-test_dseg.nii.gz"
+    nib.save(nib.Nifti1Image(labels, aff), atlas)
+    (tmp_path / "sub-01_atlas-test_dseg.tsv").write_text("index\tname\n3\tupper half\n")
+    doc = _run_json(capsys, ["fit", str(path), "--voxel", "2", "3", "1", "--atlas", str(atlas)])
+    ijk = np.floor(apply_affine(np.linalg.inv(aff), doc["mm"]) + 0.5).astype(int)
+    want = int(labels[tuple(ijk)])
+    assert doc["region"]["index"] == want
+    assert doc["region"]["text"] == ("upper half" if want == 3 else "background")
+    assert doc["region"]["atlas"] == str(atlas)
+    assert doc["companions"]["atlas"] == str(atlas)
+    assert main(["fit", str(path), "--voxel", "4", "5", "3", "--atlas", str(atlas)]) == 0
+    out = capsys.readouterr().out
+    assert out.splitlines()[1].startswith("region ")
+    doc = _run_json(capsys, ["fit", str(path), "--voxel", "2", "3", "1"])
+    assert doc["region"] is None
+    (tmp_path / "sub-01_atlas-test_dseg.tsv").write_text("index\tname\nthree\tupper half\n")
+    code = main(["fit", str(path), "--voxel", "2", "3", "1", "--atlas", str(atlas)])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "dseg.tsv: row 2, column index: 'three' is not a whole number" in err

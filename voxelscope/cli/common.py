@@ -17,6 +17,7 @@ from ..core.pvalues import TAILS
 
 __all__ = [
     "Loaded",
+    "add_atlas_args",
     "add_model_args",
     "add_voxel_args",
     "analysis_from_args",
@@ -289,6 +290,21 @@ def add_model_args(
     )
 
 
+def add_atlas_args(p: argparse.ArgumentParser) -> None:
+    """``--atlas FILE`` and ``--atlas-labels TSV``: region names at the voxel."""
+    p.add_argument(
+        "--atlas",
+        metavar="FILE",
+        help="a segmentation image on any grid (BIDS dseg.nii[.gz]) whose region names are "
+        "given at the voxel; its dseg.tsv (columns index and name) is found by its name",
+    )
+    p.add_argument(
+        "--atlas-labels",
+        metavar="TSV",
+        help="the atlas's label table (default: the dseg.tsv named like the atlas)",
+    )
+
+
 def add_voxel_args(p: argparse.ArgumentParser, required: bool = True):
     """``--voxel I J K`` or ``--mm X Y Z``; returns the group, for further choices."""
     g = p.add_mutually_exclusive_group(required=required)
@@ -339,6 +355,8 @@ def request_from_args(args: argparse.Namespace, summarize: bool = True):
         use_cache=not getattr(args, "no_cache", False),
         events_required=True,
         summarize=summarize,
+        atlas=getattr(args, "atlas", None),
+        atlas_labels=getattr(args, "atlas_labels", None),
     )
 
 
@@ -454,6 +472,8 @@ def companions_text(loaded: Loaded) -> list[str]:
     if used["confounds"]:
         lines.append(f"confounds  {used['confounds']}")
     lines.append(f"mask       {used['mask'] or 'intensity rule (auto)'}")
+    if used.get("atlas"):
+        lines.append(f"atlas      {used['atlas']}")
     lines.append(
         f"reference  {got.run.reference_time_s:g} s into each TR ({got.run.reference_source})"
     )

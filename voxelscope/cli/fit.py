@@ -6,6 +6,7 @@ import argparse
 import csv
 import io
 import sys
+from pathlib import Path
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -17,6 +18,7 @@ from ..core.jsonsafe import finite_or_none
 from ..core.model import KernelFit, VoxelFits
 from .common import (
     Loaded,
+    add_atlas_args,
     add_model_args,
     add_voxel_args,
     companions_text,
@@ -51,6 +53,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     add_model_args(p, several_runs=True)
     add_voxel_args(p)
+    add_atlas_args(p)
     p.add_argument(
         "--format",
         choices=("table", "json", "csv"),
@@ -195,11 +198,20 @@ def _fit_one(loaded: Loaded, ijk: tuple[int, int, int], checks: bool, tail: str 
         "confounds": loaded.confounds_path,
         "confound_columns": list(loaded.settings.confound_columns or ()),
         "excluded_volumes": excluded_json(loaded),
+        "region": _region(loaded, mm),
         "y": y.tolist(),
         "fits": [fit_to_json(f, checks_by_kernel.get(f.kernel), tail) for f in fits.fits],
         "warnings": list(dict.fromkeys(warnings)),
     }
     return fits, checks_by_kernel, doc, warnings
+
+
+def _region(loaded: Loaded, mm) -> dict | None:
+    """The atlas region at the voxel's centre (``--atlas``), or None without an atlas."""
+    atlas = getattr(loaded.inputs, "atlas", None)
+    if atlas is None:
+        return None
+    return {**atlas.region_at(mm).to_json(), "atlas": str(atlas.path)}
 
 
 def combine_voxel_fits(
@@ -320,9 +332,11 @@ def _run_fit_several(args: argparse.Namespace) -> int:
         return 0
     for label, ld, ijk, r in zip(labels, loads, places, results):
         mm = r[2]["mm"]
+        region = r[2]["region"]
         print(
             f"{label}: voxel {tuple(int(v) for v in ijk)}  mm ({mm[0]:.1f}, {mm[1]:.1f}, "
             f"{mm[2]:.1f})  TR {ld.run.tr:g} s  {ld.run.n_volumes} volumes"
+            + (f"  region {region['text']}" if region is not None else "")
         )
         print(format_table(r[0], noise))
         for line in checks_lines(r[1], args.checks):
@@ -374,6 +388,8 @@ def run_fit(args: argparse.Namespace) -> int:
         f"TR {run.tr:g} s  {run.n_volumes} volumes{_left_out(loaded)}  "
         f"contrast {fits.fits[0].contrast}  noise {loaded.settings.noise}"
     )
+    if doc["region"] is not None:
+        print(f"region {doc['region']['text']} ({Path(doc['region']['atlas']).name})")
     print(format_table(fits, loaded.settings.noise, args.tail))
     for line in companions_text(loaded):
         print(line)

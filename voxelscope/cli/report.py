@@ -7,6 +7,7 @@ import math
 from pathlib import Path
 
 from .common import (
+    add_atlas_args,
     add_model_args,
     add_voxel_args,
     print_warnings,
@@ -44,6 +45,7 @@ def register(sub: argparse._SubParsersAction) -> None:
         ),
     )
     add_model_args(p, several_runs=True)
+    add_atlas_args(p)
     g = add_voxel_args(p)
     g.add_argument(
         "--marks",
@@ -84,6 +86,7 @@ def run_report(args: argparse.Namespace) -> int:
         "sidecar": sidecar,
         "mask": loaded.inputs.mask_path if loaded.inputs is not None else None,
         "marks": Path(args.marks) if args.marks else None,
+        "atlas": Path(args.atlas) if getattr(args, "atlas", None) else None,
     }
     for i, inherited in enumerate(tuple(getattr(run, "sidecars", ()))[:-1], start=1):
         inputs[f"sidecar (inherited {i})"] = inherited  # BIDS inheritance, farthest first
@@ -101,6 +104,7 @@ def run_report(args: argparse.Namespace) -> int:
         title=args.title,
         warnings=loaded.warnings,
         progress=terminal_progress("writing report"),
+        atlas=loaded.inputs.atlas if loaded.inputs is not None else None,
     )
     print_warnings(result.warnings)
     print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")

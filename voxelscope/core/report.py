@@ -66,6 +66,7 @@ class ReportSection:
     svg: Path | None = None
     png_bytes: bytes = b""
     responses: list[tuple[str, bytes]] = field(default_factory=list)
+    region: str = ""  # the atlas region at the voxel (empty without an atlas)
 
 
 @dataclass
@@ -308,6 +309,8 @@ def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
         where.append("voxel ({}, {}, {})".format(*sec.ijk))
     if sec.xyz_mm is not None:
         where.append("world ({:.1f}, {:.1f}, {:.1f}) mm".format(*sec.xyz_mm))
+    if sec.region:
+        where.append(f"region: {sec.region}")
     if where:
         out.append(f"<p>{_e(', '.join(where))}</p>")
     if sec.error:
@@ -476,6 +479,7 @@ def write_report(
     title: str | None = None,
     warnings: Sequence[str] = (),
     progress: Callable[[float], bool | None] | None = None,
+    atlas: Any = None,
 ) -> ReportResult:
     """Write a report for one voxel or for every mark.
 
@@ -514,6 +518,8 @@ def write_report(
     progress : callable, optional
         ``progress(fraction)`` after each section; returning False cancels
         (:class:`voxelscope.core.errors.Cancelled`), leaving nothing behind.
+    atlas : Atlas, optional
+        Name each section's region (:mod:`voxelscope.core.atlas`, at the voxel's centre).
 
     Returns
     -------
@@ -562,6 +568,11 @@ def write_report(
             sections.append(sec)
         if not sections:
             raise InputError("the marks list is empty; add marks or report one voxel")
+    if atlas is not None:  # the region at each voxel's centre, as the window's readout
+        for sec in sections:
+            at = _mm(run, sec.ijk) if sec.ijk is not None else sec.xyz_mm
+            if at is not None:
+                sec.region = f"{atlas.region_at(at).text} ({atlas.name})"
 
     html_path = out / "report.html"
     outputs = [html_path] + [p for s in sections for p in (s.csv, s.png, s.svg) if p is not None]
