@@ -221,3 +221,20 @@ def test_sample_data_marks_report(tmp_path, capsys):
     assert len(csvs) == n_marks
     html = (tmp_path / "demo" / "report.html").read_text(encoding="utf-8")
     assert html.count("<section id='sec-") == n_marks
+
+
+def test_report_names_the_atlas_region(tmp_path, capsys):
+    """Issue 17 item 6: each section says the region at its voxel (the same lookup as fit)."""
+    import nibabel as nib
+
+    path, _events = _write_run(tmp_path)[:2]
+    labels = np.full((6, 7, 5), 4, np.int16)
+    atlas = tmp_path / "atlas-x_dseg.nii"
+    nib.save(nib.Nifti1Image(labels, np.diag([3.0, 3.0, 3.5, 1.0])), atlas)
+    (tmp_path / "atlas-x_dseg.tsv").write_text("index\tname\n4\thand area\n")
+    out = tmp_path / "rep"
+    argv = ["report", str(path), "--voxel", "1", "2", "1", "-o", str(out), "--no-checks"]
+    assert main([*argv, "--atlas", str(atlas)]) == 0, capsys.readouterr().err
+    html = (out / "report.html").read_text()
+    assert "region: hand area (atlas-x_dseg.nii)" in html
+    assert "atlas-x_dseg.nii" in html  # listed among the input files
