@@ -99,6 +99,17 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.add_argument(
         "--bids-root", metavar="DIR", help="the raw BIDS dataset a derivative run comes from"
     )
+    p.add_argument(
+        "--atlas",
+        metavar="FILE",
+        help="a segmentation image on any grid (BIDS dseg.nii[.gz]): the region at the "
+        "cursor is named in the readout; its dseg.tsv is found by its name",
+    )
+    p.add_argument(
+        "--atlas-labels",
+        metavar="TSV",
+        help="the atlas's label table (default: the dseg.tsv named like the atlas)",
+    )
     g = p.add_mutually_exclusive_group()
     g.add_argument(
         "--voxel",
@@ -217,6 +228,8 @@ def run_view(args: argparse.Namespace) -> int:
         tr=args.tr,
         mask=args.mask,
         bids_root=args.bids_root,
+        atlas=args.atlas,
+        atlas_labels=args.atlas_labels,
         voxel=tuple(args.voxel) if args.voxel else None,
         mm=tuple(args.mm) if args.mm else None,
         screenshot=args.screenshot,

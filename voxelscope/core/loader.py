@@ -46,6 +46,7 @@ __all__ = [
     "ResolvedInputs",
     "analysis_for",
     "load_inputs",
+    "open_atlas",
     "open_events",
     "read_events_file",
     "resolve_inputs",
@@ -441,7 +442,7 @@ def load_inputs(
         load_nifti(resolved.mask, "mask")  # header only: unreadable masks fail now
     atlas = None
     if request.atlas is not None:
-        atlas = load_atlas(request.atlas, request.atlas_labels)  # before the run: cheap
+        atlas = open_atlas(request.atlas, request.atlas_labels)  # before the run: cheap
     keep = None
     if resolved.mask is not None:
         mask_path = resolved.mask
@@ -547,6 +548,14 @@ def read_events_file(
     if task == "task" and run_path is not None:
         task = task_name(run_path)
     return load_events(events, condition_column=condition_column, task=task)
+
+
+def open_atlas(
+    atlas: str | os.PathLike[str], labels: str | os.PathLike[str] | None = None
+) -> Atlas:
+    """An atlas (segmentation image and label table) for an open run (File > Open atlas):
+    the same reading as ``InputRequest.atlas``."""
+    return load_atlas(atlas, labels)
 
 
 def open_events(

@@ -163,6 +163,8 @@ def launch(
     add_runs: tuple = (),
     mask: str | None = None,
     bids_root: str | None = None,
+    atlas: str | None = None,
+    atlas_labels: str | None = None,
 ) -> int:
     """Open the inspection window; with ``screenshot``, render it to a PNG and return.
 
@@ -200,8 +202,9 @@ def launch(
     add_runs : sequence of path
         Other runs of the same subject, added after ``run`` (File ▸ Add runs…): each is
         fitted at the same place and the runs are combined by fixed effects.
-    mask, bids_root : optional
-        As on the command line (``--mask FILE|auto``, ``--bids-root DIR``).
+    mask, bids_root, atlas, atlas_labels : optional
+        As on the command line (``--mask FILE|auto``, ``--bids-root DIR``, ``--atlas FILE``,
+        ``--atlas-labels TSV``).
 
     Returns
     -------
@@ -252,6 +255,7 @@ def launch(
 
         window.autosave.enabled = False
         inputs = [run, events, confounds, anat, stat_map, session, marks_path, *add_runs]
+        inputs += [atlas, atlas_labels]
         try:  # refuse a bad screenshot path before the run is opened
             guard_output(screenshot, inputs, force=force)
         except VoxelscopeError as err:
@@ -267,7 +271,7 @@ def launch(
         elif run is not None:
             ok = window.open_run(
                 run, events, confounds, anat, stat_map, tr, voxel, mm, background=False,
-                mask=mask, bids_root=bids_root,
+                mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
             )  # fmt: skip
             if not ok:
                 _print_errors(window.last_error)
@@ -331,7 +335,7 @@ def launch(
         window.after_open = after
         window.open_run(
             run, events, confounds, anat, stat_map, tr, voxel, mm, background=True,
-            mask=mask, bids_root=bids_root,
+            mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
         )  # fmt: skip
     elif show:
         window.show_mode.enter()

@@ -65,6 +65,7 @@ class RunBundle:
     stat_map: Layer | None = None
     warnings: list[str] = field(default_factory=list)
     inputs: object = None  # the core's loader.Inputs: companions used, mask, reference time
+    atlas: object = None  # the core's atlas.Atlas (region names at the cursor), or None
 
 
 def fine_grid(shape, affine: np.ndarray, factor: int) -> tuple[tuple[int, int, int], np.ndarray]:
@@ -148,6 +149,8 @@ def load_bundle(
     bids_root: str | os.PathLike[str] | None = None,
     no_events: bool = False,
     no_confounds: bool = False,
+    atlas: str | os.PathLike[str] | None = None,
+    atlas_labels: str | os.PathLike[str] | None = None,
 ) -> RunBundle:
     """Open a run, its events and confounds (found by BIDS names when not given) and layers.
 
@@ -174,6 +177,8 @@ def load_bundle(
     no_events, no_confounds : bool
         Open without events / confounds and look for none beside the run (a session
         entry that was refused must not be replaced by a companion).
+    atlas, atlas_labels : path, optional
+        A segmentation image (BIDS dseg) and its label table: region names at the cursor.
     progress : callable, optional
         ``progress(fraction) -> bool | None``; False cancels.
 
@@ -199,6 +204,8 @@ def load_bundle(
         events_required=False,
         no_events=no_events,
         no_confounds=no_confounds,
+        atlas=atlas,
+        atlas_labels=atlas_labels,
         confound_columns="none",  # the window starts with no confound column (START_SETTINGS)
     )
     got = load_inputs(request, progress=progress)
@@ -214,6 +221,7 @@ def load_bundle(
         layer,
         warnings,
         got,
+        got.atlas,
     )
 
 

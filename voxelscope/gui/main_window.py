@@ -266,6 +266,12 @@ class MainWindow(QMainWindow):
         self.underlay_action = QAction("Open &underlay…", self)
         self.underlay_action.triggered.connect(self.ask_underlay)
         m.addAction(self.underlay_action)
+        self.atlas_action = QAction("Open a&tlas…", self)
+        self.atlas_action.setToolTip(
+            "A segmentation image (BIDS dseg) with its dseg.tsv: region names at the cursor"
+        )
+        self.atlas_action.triggered.connect(self.ask_atlas)
+        m.addAction(self.atlas_action)
         self.map_action = QAction("Open &map…", self)
         self.map_action.triggered.connect(self.ask_map)
         m.addAction(self.map_action)
@@ -452,6 +458,33 @@ class MainWindow(QMainWindow):
         if path:
             self.open_underlay(path)
 
+    def ask_atlas(self) -> None:
+        if self.state.run is None:
+            self.show_error("Open a run first (File > Open run).")
+            return
+        path, _ = QFileDialog.getOpenFileName(
+            self, "Open atlas (segmentation image)", self._last_dir(), NIFTI_FILTER
+        )
+        if path:
+            self.open_atlas(path)
+
+    def open_atlas(self, path, labels=None) -> bool:
+        """Read an atlas through the core's loader and name regions at the cursor."""
+        from voxelscope.core.loader import open_atlas
+
+        try:
+            atlas = open_atlas(path, labels)
+        except VoxelscopeError as err:
+            self.show_error(str(err))
+            return False
+        self.state.set_atlas(atlas)
+        self.statusBar().showMessage(
+            f"Atlas {atlas.name}: {len(atlas.names)} named regions; the region at the cursor "
+            "is in the Slices readout",
+            8000,
+        )
+        return True
+
     def ask_map(self) -> None:
         if self.state.run is None:
             self.show_error("Open a run first (File > Open run).")
@@ -490,6 +523,8 @@ class MainWindow(QMainWindow):
         bids_root=None,
         no_events: bool = False,
         no_confounds: bool = False,
+        atlas=None,
+        atlas_labels=None,
     ) -> bool:
         """Open a run (and companions); in the background with progress unless told not to.
 
@@ -510,6 +545,8 @@ class MainWindow(QMainWindow):
             bids_root=bids_root,
             no_events=no_events,
             no_confounds=no_confounds,
+            atlas=atlas,
+            atlas_labels=atlas_labels,
         )
         self._pending_voxel, self._pending_mm = voxel, mm
         if not background:
@@ -683,7 +720,7 @@ class MainWindow(QMainWindow):
         run = self.state.run
         has = run is not None
         self.stack.setCurrentIndex(1 if has else 0)
-        for act in (self.events_action, self.underlay_action, self.map_action):
+        for act in (self.events_action, self.underlay_action, self.atlas_action, self.map_action):
             act.setEnabled(has)
         if has:
             name = Path(run.path).name

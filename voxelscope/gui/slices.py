@@ -31,6 +31,7 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.gui.colours import colours
+from voxelscope.gui.plaintext import esc
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["PLANES", "ColourBar", "SliceView", "SlicesPanel"]
@@ -130,6 +131,10 @@ class SliceView(pg.GraphicsView):
         self.setFocusPolicy(Qt.FocusPolicy.StrongFocus)
         self.setMinimumSize(120, 120)
         self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
+        self.setToolTip(
+            "Click or drag: choose a voxel · wheel: next slice · Ctrl+wheel: zoom · right or "
+            "middle drag: pan · double click or Home: reset the view · arrows, Page Up/Down: move"
+        )
         self.box = _SliceBox()
         self.setCentralItem(self.box)
         self.under = pg.ImageItem(axisOrder="col-major")
@@ -511,6 +516,9 @@ class SlicesPanel(QWidget):
         self.colour_bar = ColourBar(state)
         row.addWidget(self.colour_bar)
         outer.addWidget(row_widget, 1)
+        from voxelscope.gui.goto import GoToBox
+
+        self.goto = GoToBox(state, self.reset_views)
         self.readout = QLabel("")
         self.readout.setTextFormat(Qt.TextFormat.RichText)  # numbers only, bold labels
         self.readout.setObjectName("readout")
@@ -519,10 +527,24 @@ class SlicesPanel(QWidget):
         # word wrap, so its height, and with it the views, never jump from click to click
         self.readout.setMinimumWidth(100)
         self.readout.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
-        outer.addWidget(_Holder(self.readout))
+        # the readout and the coordinate box share one line, so the views keep their height
+        bottom = QWidget()
+        bottom.setObjectName("slices_bottom")
+        line = QHBoxLayout(bottom)
+        line.setContentsMargins(0, 0, 0, 0)
+        line.setSpacing(0)
+        line.addWidget(_Holder(self.readout), 3)
+        line.addWidget(self.goto, 2)
+        outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._refresh)
         state.underlay_changed.connect(self._refresh)
+        state.atlas_changed.connect(self._refresh)
+
+    def reset_views(self) -> None:
+        """Undo zoom and pan in the three views (the Reset view button, Home in a view)."""
+        for view in self.views.values():
+            view.reset_view()
 
     def _refresh(self) -> None:
         if self.state.run is not None:
@@ -548,4 +570,7 @@ class SlicesPanel(QWidget):
         if layer is not None:
             v = float(layer.data[i, j, k])
             parts.append(f"<b>Map</b> {v:.3f}" if np.isfinite(v) else "<b>Map</b> –")
+        atlas = self.state.atlas
+        if atlas is not None:  # the region at the voxel's centre, through the affines
+            parts.append(f"<b>Region</b> {esc(atlas.region_at((x, y, z)).text)}")
         self.readout.setText("&nbsp;&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for p in parts))

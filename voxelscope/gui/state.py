@@ -190,6 +190,7 @@ class ViewerState(QObject):
 
     run_changed = Signal()
     underlay_changed = Signal()
+    atlas_changed = Signal()
     map_changed = Signal()
     voxel_changed = Signal(object)
     settings_changed = Signal(object)
@@ -297,6 +298,18 @@ class ViewerState(QObject):
             return
         self.bundle.underlay = layer
         self.underlay_changed.emit()
+
+    @property
+    def atlas(self):
+        """The atlas giving region names at the cursor (core ``Atlas``), or None."""
+        return None if self.bundle is None else getattr(self.bundle, "atlas", None)
+
+    def set_atlas(self, atlas) -> None:
+        """Name regions with ``atlas`` (None: no region names)."""
+        if self.bundle is None:
+            return
+        self.bundle.atlas = atlas
+        self.atlas_changed.emit()
 
     def set_map(self, layer: Layer | None, keep_scale: bool = False) -> None:
         """Show ``layer`` as the overlay; ``keep_scale`` keeps a fixed colour scale limit."""
