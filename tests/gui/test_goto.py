@@ -48,8 +48,7 @@ def test_enter_goes_to_a_voxel_or_a_world_position(window, qtbot, permuted_run):
     assert st.voxel == (3, 4, 2)
     target = (5, 2, 1)
     mm = apply_affine(permuted_run["affine"], target) + 0.4  # off-centre: nearest voxel
-    box.mode.setCurrentIndex(box.mode.findData("mm"))
-    _type(qtbot, box, " ".join(f"{v:.2f}" for v in mm))
+    _type(qtbot, box, " ".join(f"{v:.2f}" for v in mm) + " mm")
     assert st.voxel == target
     assert not box.edit.property("invalid")
 
@@ -66,8 +65,7 @@ def test_bad_text_or_outside_the_grid_is_one_status_line(window, qtbot, ras_run)
     msg = window.statusBar().currentMessage()
     assert "outside" in msg or "out of" in msg or "grid" in msg, msg
     assert st.voxel == before
-    box.mode.setCurrentIndex(box.mode.findData("mm"))
-    _type(qtbot, box, "900 0 0")
+    _type(qtbot, box, "900 0 0 mm")
     assert "outside the grid" in window.statusBar().currentMessage()
     assert st.voxel == before
     box.edit.setText("1 1 1")  # typing clears the red mark
@@ -83,7 +81,7 @@ def test_reset_view_undoes_zoom_and_pan(window, qtbot, ras_run):
     assert view.box.viewRange() != start
     qtbot.mouseClick(window.slices.goto.reset, Qt.MouseButton.LeftButton)
     assert np.allclose(view.box.viewRange(), start)
-    assert "zoom" in view.toolTip() and "Home" in window.slices.goto.hint.toolTip()
+    assert "zoom" in view.toolTip() and "Home" in window.slices.goto.reset.toolTip()
 
 
 def test_atlas_region_in_the_readout(window, qtbot, ras_run, tmp_path):

@@ -221,6 +221,11 @@ def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(
 
     window.findChild(QDockWidget, "dock_checks").raise_()  # on screen: it computes
     qtbot.waitUntil(checks.wanted, timeout=5000)
+    # let the layout settle after raising the dock: the press must land where it is aimed
+    size = None
+    while size != view.size():
+        size = view.size()
+        qtbot.wait(20)
     held = Qt.MouseButton.LeftButton
     send(QEvent.Type.MouseButtonPress, 0, held)
     calls = checks.calls

@@ -1,5 +1,5 @@
-"""The coordinate box under Slices: type a voxel (i j k) or a world position (x y z mm),
-Enter goes there; and the button that resets the slices' zoom and pan.
+"""The coordinate box under Slices: type a voxel (``i j k``) or a world position
+(``x y z mm``), Enter goes there; and the button that resets the slices' zoom and pan.
 
 A bad text or a place outside the grid is one line in the status bar (and the box turns
 red until the text changes); the voxel does not move.
@@ -19,9 +19,7 @@ import re
 
 from PySide6.QtCore import Qt
 from PySide6.QtWidgets import (
-    QComboBox,
     QHBoxLayout,
-    QLabel,
     QLineEdit,
     QPushButton,
     QSizePolicy,
@@ -36,9 +34,6 @@ __all__ = ["GoToBox", "parse_position"]
 
 _NUMBER = re.compile(r"^[+-]?(\d+(\.\d*)?|\.\d+)([eE][+-]?\d+)?$")
 
-#: The hint beside the box: how to zoom, pan and reset the slices.
-VIEW_HINT = "Ctrl+wheel zooms · right-drag pans · Home resets"
-
 
 def parse_position(text: str, mode: str) -> tuple[str, tuple[float, float, float]]:
     """``(mode, (a, b, c))`` from the typed text; ``mm`` after the numbers chooses mm.
@@ -51,8 +46,8 @@ def parse_position(text: str, mode: str) -> tuple[str, tuple[float, float, float
     >>> parse_position("1.5 2 3", "voxel")
     Traceback (most recent call last):
     ...
-    voxelscope.core.errors.InputError: voxel indices are whole numbers, not 1.5; choose mm \
-to go to a world position
+    voxelscope.core.errors.InputError: voxel indices are whole numbers, not 1.5; add mm after \
+the numbers to go to a world position
     """
     raw = str(text).strip()
     body = raw
@@ -77,8 +72,8 @@ to go to a world position
         for v in values:
             if v != int(v):
                 raise InputError(
-                    f"voxel indices are whole numbers, not {v:g}; choose mm to go to a world "
-                    "position"
+                    f"voxel indices are whole numbers, not {v:g}; add mm after the numbers to "
+                    "go to a world position"
                 )
     return mode, (values[0], values[1], values[2])
 
@@ -94,48 +89,33 @@ class GoToBox(QWidget):
         lay = QHBoxLayout(self)
         lay.setContentsMargins(6, 2, 6, 2)
         lay.setSpacing(6)
-        label = QLabel("Go to")
-        lay.addWidget(label)
-        self.mode = QComboBox()
-        self.mode.addItem("voxel", "voxel")
-        self.mode.addItem("mm", "mm")
-        self.mode.setToolTip("Voxel indices (i j k, from 0) or world coordinates (x y z in mm)")
-        lay.addWidget(self.mode)
         self.edit = QLineEdit()
         self.edit.setObjectName("goto_edit")
-        self.edit.setPlaceholderText("i j k, then Enter")
+        self.edit.setPlaceholderText("i j k or x y z mm")
         self.edit.setToolTip(
-            "Type three numbers and press Enter: voxel indices (i j k) or, with mm chosen or "
-            "'mm' after them, a world position (x y z)"
+            "Type a voxel's indices (i j k, from 0) or a world position with mm after it "
+            "(x y z mm) and press Enter"
         )
         self.edit.setClearButtonEnabled(True)
         self.edit.setMinimumWidth(90)
-        self.edit.setMaximumWidth(220)
+        self.edit.setMaximumWidth(170)
+        self.edit.setMinimumWidth(
+            self.edit.fontMetrics().horizontalAdvance("go to i j k or x y z mm") + 30
+        )
         self.edit.returnPressed.connect(self.go)
         self.edit.textChanged.connect(lambda _t: self._mark_invalid(False))
-        self.mode.currentIndexChanged.connect(self._mode_changed)
         lay.addWidget(self.edit)
         self.reset = QPushButton("Reset view")
         self.reset.setObjectName("reset_view")
-        self.reset.setToolTip("Undo zoom and pan in the three slices (Home in a slice)")
         self.reset.clicked.connect(reset_views)
         lay.addWidget(self.reset)
-        self.hint = QLabel(VIEW_HINT)
-        self.hint.setToolTip(
-            "Click or drag: choose a voxel · wheel: next slice · Ctrl+wheel: zoom · right or "
-            "middle drag: pan · double click or Home: reset the view"
+        self.reset.setToolTip(
+            "Undo zoom and pan in the three slices. In a slice: click or drag chooses a voxel, "
+            "the wheel steps through slices, Ctrl+wheel zooms, right or middle drag pans, "
+            "double click or Home resets"
         )
-        # the hint gives way first: the box never widens the window (nor moves the docks)
-        self.hint.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
-        self.hint.setMinimumWidth(0)
-        lay.addWidget(self.hint, 1)
-        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+        self.setSizePolicy(QSizePolicy.Policy.Maximum, QSizePolicy.Policy.Fixed)
         self.last_error = ""
-
-    def _mode_changed(self, _index: int) -> None:
-        mm = self.mode.currentData() == "mm"
-        self.edit.setPlaceholderText("x y z in mm, then Enter" if mm else "i j k, then Enter")
-        self._mark_invalid(False)
 
     def _mark_invalid(self, bad: bool) -> None:
         if bool(self.edit.property("invalid")) == bad:
@@ -150,7 +130,7 @@ class GoToBox(QWidget):
         try:
             if run is None:
                 raise InputError("open a run first (File > Open run), then type a place")
-            mode, values = parse_position(self.edit.text(), self.mode.currentData())
+            mode, values = parse_position(self.edit.text(), "voxel")
             if mode == "mm":
                 ijk = run.mm_to_voxel(values)
             else:
@@ -162,8 +142,6 @@ class GoToBox(QWidget):
             return False
         self.last_error = ""
         self._mark_invalid(False)
-        if mode == "mm" and self.mode.currentData() != "mm":
-            self.mode.setCurrentIndex(self.mode.findData("mm"))
         self.state.set_voxel(tuple(int(v) for v in ijk))
         return True
 

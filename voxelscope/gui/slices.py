@@ -533,8 +533,8 @@ class SlicesPanel(QWidget):
         line = QHBoxLayout(bottom)
         line.setContentsMargins(0, 0, 0, 0)
         line.setSpacing(0)
-        line.addWidget(_Holder(self.readout), 3)
-        line.addWidget(self.goto, 2)
+        line.addWidget(_Holder(self.readout), 1)
+        line.addWidget(self.goto)
         outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._refresh)
@@ -573,4 +573,4 @@ class SlicesPanel(QWidget):
         atlas = self.state.atlas
         if atlas is not None:  # the region at the voxel's centre, through the affines
             parts.append(f"<b>Region</b> {esc(atlas.region_at((x, y, z)).text)}")
-        self.readout.setText("&nbsp;&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for p in parts))
+        self.readout.setText("&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for p in parts))
