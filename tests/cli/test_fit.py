@@ -348,6 +348,7 @@ def test_json_reports_companions_and_reference_time(tmp_path, capsys):
         "sidecars": [str(sidecar)],
         "confounds": None,
         "mask": None,
+        "atlas": None,
     }
 
 

@@ -41,6 +41,11 @@ EXAMPLES = {
         "  voxelscope demo\n"
         "  voxelscope demo --show --screenshot show.png --size 1280x720"
     ),
+    "sweep": (
+        "examples:\n"
+        "  voxelscope sweep study -o sweep --task motor\n"
+        "  voxelscope sweep study -o sweep --scheduler tcp://10.0.0.5:8786"
+    ),
     "cache": ("examples:\n  voxelscope cache info\n  voxelscope cache clear --stale"),
     "cache info": "example:\n  voxelscope cache info",
     "cache clear": (f"examples:\n  voxelscope cache clear {_RUN}\n  voxelscope cache clear"),

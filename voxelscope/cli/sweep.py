@@ -65,9 +65,11 @@ def _address(text: str) -> str:
 def register(sub: argparse._SubParsersAction) -> None:
     """Add the ``sweep`` subcommand."""
     from ..core.sweep import DEFAULT_THRESHOLD, MAX_PEAKS, MIN_VOXELS
+    from .helptext import help_args
 
     p = sub.add_parser(
         "sweep",
+        **help_args("sweep"),
         help="map every run of a study, combine each subject's runs and list what deserves a look",
         description=(
             "Find every run with events in a BIDS study, map each run under one kernel, "
