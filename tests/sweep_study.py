@@ -36,34 +36,40 @@ AFFINE = np.array(
 )
 
 
-def brain_mask() -> np.ndarray:
-    """The ellipsoid brain (every run's mask)."""
-    i, j, k = np.indices(SHAPE, dtype=float)
-    c = (np.array(SHAPE) - 1) / 2.0
-    r = ((i - c[0]) / 6.0) ** 2 + ((j - c[1]) / 6.0) ** 2 + ((k - c[2]) / 4.4) ** 2
+def brain_mask(shape: tuple[int, int, int] = SHAPE) -> np.ndarray:
+    """The ellipsoid brain (every run's mask), filling most of the grid."""
+    i, j, k = np.indices(shape, dtype=float)
+    c = (np.array(shape) - 1) / 2.0
+    radii = c * np.array([6.0 / 6.5, 6.0 / 6.5, 4.4 / 4.5])
+    r = ((i - c[0]) / radii[0]) ** 2 + ((j - c[1]) / radii[1]) ** 2 + ((k - c[2]) / radii[2]) ** 2
     return r <= 1.0
 
 
-def _boxcar() -> np.ndarray:
-    t = np.arange(N_VOLUMES) * TR
-    box = np.zeros(N_VOLUMES)
-    for on in ONSETS:
+def _onsets(n_volumes: int) -> tuple[float, ...]:
+    """The blocks every 30 s that fit in the run (``ONSETS`` for the default length)."""
+    return tuple(float(on) for on in np.arange(10.0, n_volumes * TR - 20.0, 30.0))
+
+
+def _boxcar(n_volumes: int = N_VOLUMES) -> np.ndarray:
+    t = np.arange(n_volumes) * TR
+    box = np.zeros(n_volumes)
+    for on in _onsets(n_volumes):
         box[(t >= on) & (t < on + DURATION)] = 1.0
     return box
 
 
-def _response() -> np.ndarray:
+def _response(n_volumes: int = N_VOLUMES) -> np.ndarray:
     """Block regressor: the boxcar on a 0.1 s grid convolved with a double-gamma shape
     (peak 6 s, undershoot 16 s, ratio 1/6; common practice), sampled at each volume."""
     dt = 0.1
-    t = np.arange(0, N_VOLUMES * TR, dt)
+    t = np.arange(0, n_volumes * TR, dt)
     box = np.zeros(t.size)
-    for on in ONSETS:
+    for on in _onsets(n_volumes):
         box[(t >= on) & (t < on + DURATION)] = 1.0
     h_t = np.arange(0, 32, dt)
     h = stats.gamma.pdf(h_t, 6) - stats.gamma.pdf(h_t, 16) / 6.0
     x = np.convolve(box, h)[: t.size] * dt
-    x = x[:: round(TR / dt)][:N_VOLUMES]
+    x = x[:: round(TR / dt)][:n_volumes]
     return x / x.max()
 
 
@@ -78,11 +84,16 @@ def make_study(
     runs: int = 2,
     broken: bool = False,
     seed: int = 7,
+    shape: tuple[int, int, int] = SHAPE,
+    n_volumes: int = N_VOLUMES,
 ) -> Path:
     """Write the study under ``root`` (created); returns ``root``.
 
-    ``broken`` adds subject ``09`` whose only preprocessed run is not a NIfTI file.
+    ``broken`` adds subject ``09`` whose only preprocessed run is not a NIfTI file. Another
+    ``shape`` or ``n_volumes`` (the benchmark's bigger runs) keeps the real response at the
+    grid's centre and plants no artifact.
     """
+    assert np.allclose(_onsets(N_VOLUMES), ONSETS)
     rng = np.random.default_rng(seed)
     root = Path(root)
     _write_json(root / "dataset_description.json", {"Name": "sweep test", "BIDSVersion": "1.8.0"})
@@ -92,12 +103,14 @@ def make_study(
         prep / "dataset_description.json",
         {"Name": "prep", "BIDSVersion": "1.8.0", "DatasetType": "derivative"},
     )
-    mask = brain_mask()
-    x = _response()
+    mask = brain_mask(shape)
+    x = _response(n_volumes)
+    centre = tuple(n // 2 for n in shape)
+    artifact = ARTIFACT if tuple(shape) == SHAPE else None
     # the head drifts during each block and settles after it: the boxcar 4 s later, smoothed
-    drift = np.convolve(np.roll(_boxcar(), 2), [0.25, 0.5, 0.25], mode="same")
+    drift = np.convolve(np.roll(_boxcar(n_volumes), 2), [0.25, 0.5, 0.25], mode="same")
     events = "onset\tduration\ttrial_type\n" + "".join(
-        f"{on:g}\t{DURATION:g}\tgo\n" for on in ONSETS
+        f"{on:g}\t{DURATION:g}\tgo\n" for on in _onsets(n_volumes)
     )
     for s in range(1, subjects + 1):
         sub = f"{s:02d}"
@@ -106,12 +119,12 @@ def make_study(
             raw_func = root / f"sub-{sub}" / "func"
             raw_func.mkdir(parents=True, exist_ok=True)
             (raw_func / f"{stem}_events.tsv").write_text(events)
-            noise = rng.normal(0.0, 1.0, (*SHAPE, N_VOLUMES))
+            noise = rng.normal(0.0, 1.0, (*shape, n_volumes)).astype(np.float32)
             data = 100.0 + noise
-            ci, cj, ck = CENTRE
+            ci, cj, ck = centre
             data[ci - 1 : ci + 2, cj - 1 : cj + 2, ck - 1 : ck + 2, :] += 1.6 * x
-            motion = rng.normal(0.0, 0.02, (N_VOLUMES, 6))
-            if (sub, str(r)) == ARTIFACT:
+            motion = rng.normal(0.0, 0.02, (n_volumes, 6))
+            if (sub, str(r)) == artifact:
                 motion[:, 0] += 0.6 * drift  # trans_x follows the blocks
                 for v in EDGE_PATCH:
                     data[v] += 4.0 * motion[:, 0] / 0.6
@@ -129,7 +142,7 @@ def make_study(
             diff = np.vstack([np.zeros((1, 6)), np.diff(motion, axis=0)])
             fd = np.abs(diff[:, :3]).sum(axis=1) + 50.0 * np.abs(diff[:, 3:]).sum(axis=1)
             lines = ["\t".join([*names, "framewise_displacement"])]
-            for t in range(N_VOLUMES):
+            for t in range(n_volumes):
                 fd_text = "n/a" if t == 0 else f"{fd[t]:.6f}"
                 lines.append("\t".join([*(f"{v:.6f}" for v in motion[t]), fd_text]))
             (func / f"{stem}_desc-confounds_timeseries.tsv").write_text("\n".join(lines) + "\n")

@@ -15,7 +15,7 @@ import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-ORDER = ["startup", "companions", "fit", "run", "maps", "runs", "gui"]
+ORDER = ["startup", "companions", "fit", "run", "maps", "runs", "sweep", "gui"]
 
 
 def _print_rows(rows) -> None:

@@ -131,3 +131,11 @@ def test_ctrl_c_stops_cleanly_and_keeps_finished_runs(study, tmp_path):
     assert len(lines) == 1 and lines[0].startswith("voxelscope: interrupted;"), err
     kept = list((out / "runs").glob("*.json"))
     assert kept and not (out / "findings.tsv").exists()
+
+
+def test_doctests():
+    import doctest
+
+    from voxelscope.cli import sweep
+
+    assert doctest.testmod(sweep).failed == 0

@@ -137,10 +137,12 @@ def test_a_failing_run_is_a_row_with_its_reason(swept):
 
 
 def test_progress_counts_every_task(swept):
-    seen = swept["progress"]
-    total = 7 + 3
-    assert seen[-1][:2] == (total, total)
-    assert [d for d, _t, _l in seen] == sorted(d for d, _t, _l in seen)
+    seen = [p for (p,) in swept["progress"]]
+    last = seen[-1]
+    assert (last.runs_done, last.runs, last.subjects_done, last.subjects) == (7, 7, 3, 3)
+    assert last.fraction == 1.0 and seen[0].runs_done == 0
+    done = [p.runs_done + p.subjects_done for p in seen]
+    assert done == sorted(done) and done[-1] == 10
 
 
 def test_resumed_sweep_redoes_nothing(swept, study, scheduler):
@@ -220,3 +222,20 @@ def test_run_results_are_small(swept):
 def test_doctests():
     for module in (sweep, sweep_out):
         assert doctest.testmod(module, optionflags=doctest.ELLIPSIS).failed == 0
+
+
+def test_an_unexpected_error_is_a_row_and_is_tried_again(study, tmp_path, monkeypatch):
+    out = tmp_path / "out"
+    (out / "runs").mkdir(parents=True)
+    settings = SweepSettings(ModelSettings())
+    job = plan_sweep(study, settings).runs[0]
+
+    def boom(*args):
+        raise RuntimeError("disk went away")
+
+    monkeypatch.setattr(sweep, "_sweep_run", boom)
+    res = sweep_run(job, settings, str(out))
+    assert res["status"] == "failed" and "RuntimeError: disk went away" in res["reason"]
+    assert not list((out / "runs").iterdir())  # not saved: the next sweep tries again
+    lost = sweep._lost(job, MemoryError("out of memory"))
+    assert lost["status"] == "failed" and "the worker stopped" in lost["reason"]

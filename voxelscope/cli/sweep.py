@@ -199,7 +199,18 @@ def _check_out(out: Path, root: Path) -> None:
 
 
 class _Bar:
-    """runs done / total and the time left, on one line of stderr (terminals only)."""
+    """Runs done / total, combinations done / total and the time left, on one line of
+    stderr (terminals only).
+
+    >>> import io
+    >>> from voxelscope.core.sweep import SweepProgress
+    >>> out = io.StringIO()
+    >>> bar = _Bar(out)
+    >>> bar.tty = True
+    >>> bar(SweepProgress(3, 12, 0, 4, 75.0))
+    >>> out.getvalue().strip()
+    'sweep [####....................] runs 3/12, combined 0/4, about 1 min 15 s left'
+    """
 
     def __init__(self, stream=None) -> None:
         self.out = stream or sys.stderr
@@ -209,14 +220,16 @@ class _Bar:
             self.tty = False
         self.drawn = False
 
-    def __call__(self, done: int, total: int, left: float | None) -> None:
+    def __call__(self, p) -> None:
         if not self.tty:
             return
         width = 24
-        fill = int(width * done / max(total, 1))
-        text = f"\rsweep [{'#' * fill}{'.' * (width - fill)}] {done}/{total} tasks"
-        if left is not None:
-            text += f", about {_duration(left)} left"
+        fill = round(width * p.fraction)
+        text = f"\rsweep [{'#' * fill}{'.' * (width - fill)}] runs {p.runs_done}/{p.runs}"
+        if p.subjects:
+            text += f", combined {p.subjects_done}/{p.subjects}"
+        if p.seconds_left is not None:
+            text += f", about {_duration(p.seconds_left)} left"
         self.out.write(text + " " * 8)
         self.out.flush()
         self.drawn = True

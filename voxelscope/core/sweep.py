@@ -75,6 +75,7 @@ __all__ = [
     "RunJob",
     "SubjectJob",
     "SweepPlan",
+    "SweepProgress",
     "SweepResult",
     "SweepSettings",
     "plan_sweep",
@@ -249,7 +250,8 @@ def plan_sweep(dataset: str | os.PathLike[str], settings: SweepSettings) -> Swee
     """
     from .study import list_study
 
-    study = list_study(dataset, settings.bids_root)
+    # absolute paths: workers may run in another folder (or on another machine)
+    study = list_study(Path(dataset).expanduser().absolute(), settings.bids_root)
     chosen: dict[tuple, Any] = {}
     skipped: list[str] = []
     no_events = 0
@@ -819,7 +821,9 @@ def _runs_figure(labels, betas, variances, cf, job: SubjectJob):
     lo, hi = (min([*spans, 0.0]), max([*spans, 0.0])) if spans else (-1.0, 1.0)
     if hi <= lo:
         hi = lo + 1.0
-    left, right, top, bottom = 96.0, 16.0, 30.0, 30.0
+    pad = 0.05 * (hi - lo)
+    lo, hi = lo - pad, hi + pad
+    left, right, top, bottom = 96.0, 16.0, 30.0, 44.0
     pw, ph = w - left - right, h - top - bottom
     step = ph / max(len(rows), 1)
 
@@ -841,6 +845,7 @@ def _runs_figure(labels, betas, variances, cf, job: SubjectJob):
         x = px(tick)
         fig.add(Polyline([(x, top + ph), (x, top + ph + 4)], "#444444", 1.0))
         fig.add(Text(x, top + ph + 16, f"{tick:g}", 10.0, "#222222", "middle"))
+    fig.add(Text(left + pw / 2, h - 8, "contrast estimate", 11.0, "#222222", "middle"))
     return fig
 
 
@@ -859,7 +864,24 @@ class SweepResult:
     out: Path
 
 
-ProgressFn = Callable[[int, int, float | None], None]
+@dataclass(frozen=True)
+class SweepProgress:
+    """Where a sweep is: runs and subject combinations done, and an estimate of the time
+    left (None until a task has finished in this sweep)."""
+
+    runs_done: int
+    runs: int
+    subjects_done: int
+    subjects: int
+    seconds_left: float | None = None
+
+    @property
+    def fraction(self) -> float:
+        total = self.runs + self.subjects
+        return (self.runs_done + self.subjects_done) / total if total else 1.0
+
+
+ProgressFn = Callable[[SweepProgress], None]
 
 
 def _quiet_dask() -> None:
@@ -936,7 +958,7 @@ def run_sweep(
     scheduler : str, optional
         Address of a running Dask scheduler (``tcp://host:port``) instead.
     progress : callable, optional
-        ``progress(done, total, seconds_left)`` after each task.
+        ``progress(SweepProgress)`` at the start and after each task.
 
     Returns
     -------
@@ -973,7 +995,15 @@ def run_sweep(
         left = None
         if fresh > 0 and done < total:
             left = (time.perf_counter() - started) / fresh * (total - done)
-        progress(done, total, left)
+        progress(
+            SweepProgress(
+                runs_done=len(runs_by_key),
+                runs=len(plan.runs),
+                subjects_done=len(subjects),
+                subjects=len(plan.subjects),
+                seconds_left=left,
+            )
+        )
 
     tick()
     pending = list(plan.subjects)
@@ -1003,9 +1033,12 @@ def run_sweep(
             from distributed import as_completed
 
             target = str(out.resolve())
-            futures = [
-                client.submit(sweep_run, job, settings, target, pure=False) for job in todo_runs
-            ]
+            owner: dict[str, Any] = {}  # task key -> its job, to name a task that died
+            futures = []
+            for job in todo_runs:
+                fut = client.submit(sweep_run, job, settings, target, pure=False)
+                owner[fut.key] = job
+                futures.append(fut)
             with client.as_current():
                 ac = as_completed(futures)
 
@@ -1013,11 +1046,16 @@ def run_sweep(
                     for sj in [sj for sj in pending if ready(sj)]:
                         pending.remove(sj)
                         if not settle(sj):
-                            ac.add(_submit_subject(client, sj, runs_by_key, settings, target))
+                            fut = _submit_subject(client, sj, runs_by_key, settings, target)
+                            owner[fut.key] = sj
+                            ac.add(fut)
 
                 launch_ready()
                 for fut in ac:
-                    res = fut.result()
+                    try:
+                        res = fut.result()
+                    except Exception as exc:  # the worker died (memory, killed): a failed row
+                        res = _lost(owner[fut.key], exc)
                     done += 1
                     if res.get("kind") == "subject":
                         subjects[res["key"]] = res
@@ -1041,6 +1079,24 @@ def run_sweep(
     ordered_runs = [runs_by_key[j.key] for j in plan.runs]
     ordered_subjects = [subjects[s.key] for s in plan.subjects if s.key in subjects]
     return SweepResult(plan, ordered_runs, ordered_subjects, computed, out)
+
+
+def _lost(job: RunJob | SubjectJob, exc: BaseException) -> dict:
+    """The result of a task whose worker stopped (not saved: tried again next time)."""
+    kind = "subject" if isinstance(job, SubjectJob) else "run"
+    return {
+        "kind": kind,
+        "key": job.key,
+        "subject": job.subject,
+        "session": job.session,
+        "task": job.task,
+        "run": "all" if kind == "subject" else job.run,
+        "status": "failed",
+        "reason": f"the worker stopped ({exc.__class__.__name__}: {_one_line(exc)[:300]})",
+        "findings": [],
+        "reused": False,
+        "transient": True,
+    }
 
 
 def _subject_cached(sj: SubjectJob, runs: list[dict], settings: SweepSettings, out: Path):
