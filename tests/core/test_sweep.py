@@ -239,3 +239,17 @@ def test_an_unexpected_error_is_a_row_and_is_tried_again(study, tmp_path, monkey
     assert not list((out / "runs").iterdir())  # not saved: the next sweep tries again
     lost = sweep._lost(job, MemoryError("out of memory"))
     assert lost["status"] == "failed" and "the worker stopped" in lost["reason"]
+
+
+def test_importing_the_sweep_loads_no_dask_and_no_qt():
+    import subprocess
+    import sys
+
+    code = (
+        "import sys, voxelscope.core.sweep, voxelscope.core.sweep_out\n"
+        "print(sorted(m for m in sys.modules if m.split('.')[0] in "
+        "('dask', 'distributed', 'PySide6', 'pyqtgraph')))"
+    )
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout.strip() == "[]"
