@@ -110,3 +110,18 @@ def test_settings_change_words():
     assert settings_change_words(s, s.with_(kernels=("boxcar",))) == "kernels"
     assert settings_change_words(s, s.with_(highpass_s=None)) == "high-pass"
     assert settings_change_words(s, s.with_(contrast="x" * 40)) == f"contrast '{'x' * 29}…'"
+
+
+def test_undo_selects_the_mark_it_brought_back(window, ras_run):
+    st = _open(window, ras_run)
+    panel = window.marks_panel
+    for t in ("a", "b", "c"):
+        panel.add_current(t)
+    panel.model.set_note(2, "about c")
+    panel.delete(1)
+    panel.select(0)
+    window.undo_action.trigger()
+    assert [m.title for m in st.marks] == ["a", "b", "c"]
+    assert panel.current_row() == 1 and panel.note.isEnabled()
+    window.undo_action.trigger()  # the note of c
+    assert panel.current_row() == 2 and st.marks[2].note == ""

@@ -417,7 +417,11 @@ class MarksPanel(QWidget):
         self.table.activated.connect(lambda idx: self.jump(idx.row()))
         self.table.selectionModel().currentRowChanged.connect(lambda *_: self._show_note())
         self.note.textChanged.connect(self._note_edited)
+        self._seen = list(state.marks)  # the marks as last shown (to select what changed)
+        self.model.modelReset.connect(self._select_changed)
         self.model.modelReset.connect(self._refresh)
+        # after the model's own slot (which resets it): remember the marks now shown
+        state.marks_changed.connect(lambda: setattr(self, "_seen", list(self.state.marks)))
         self.model.rowsInserted.connect(self._refresh)
         self.model.rowsRemoved.connect(self._refresh)
         self.model.rowsMoved.connect(self._refresh)
@@ -435,6 +439,20 @@ class MarksPanel(QWidget):
         if 0 <= row < self.model.rowCount():
             self.table.selectRow(row)
             self.table.setCurrentIndex(self.model.index(row, 0))
+
+    def _select_changed(self) -> None:
+        """After an undo, a redo or an import: select the first mark that changed (or the
+        row where one went), so the list shows what the step did."""
+        before, now = self._seen, list(self.state.marks)
+        self._seen = now
+        if before == now or not now:
+            return
+        row = next((i for i, (a, b) in enumerate(zip(before, now)) if a != b), None)
+        if row is None:
+            row = min(len(before), len(now)) - (len(now) < len(before))
+        row = max(0, min(row, len(now) - 1))
+        self.select(row)
+        self.table.scrollTo(self.model.index(row, 0))
 
     def _refresh(self, *args) -> None:
         n = len(self.state.marks)
