@@ -19,17 +19,6 @@ DEMO_CONFOUNDS = f"{DEMO_PREP}_desc-confounds_timeseries.tsv"
 
 
 @pytest.fixture(autouse=True)
-def _qt_refcount_guard():
-    """PySide6 6.12.0 drops references to None/True (see voxelscope.gui.qtfix)."""
-    from voxelscope.gui import qtfix
-
-    qtfix.install()
-    qtfix.top_up()
-    yield
-    qtfix.top_up()
-
-
-@pytest.fixture(autouse=True)
 def _private_cache(tmp_path_factory, monkeypatch):
     """Keep the run cache of compressed test runs out of the user's cache folder."""
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path_factory.getbasetemp() / "xdg-cache"))

@@ -185,7 +185,7 @@ def test_export_dialog_shows_the_pixel_size_of_the_choice(opened):
 
 
 def test_file_menu_has_the_new_entries(window):
-    from voxelscope.gui.session_io import menu_named
+    from voxelscope.gui.menus import menu_named
 
     names = [a.text().replace("&", "") for a in menu_named(window, "File").actions()]
     for entry in ("Open session…", "Save session…", "Export view…", "Report…", "Quit"):

@@ -470,7 +470,7 @@ def ask_report(window):
 
 def install(window) -> None:
     """File ▸ Export view… and File ▸ Report…."""
-    from voxelscope.gui.session_io import insert_before_quit, menu_named
+    from voxelscope.gui.menus import insert_before_quit, menu_named
 
     window.report_job = None
     window.last_report = None

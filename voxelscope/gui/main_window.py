@@ -19,7 +19,7 @@ from PySide6.QtCore import (
     Qt,
     QTimer,
 )
-from PySide6.QtGui import QAction, QGuiApplication, QKeySequence
+from PySide6.QtGui import QAction, QGuiApplication
 from PySide6.QtWidgets import (
     QDialog,
     QDialogButtonBox,
@@ -43,21 +43,27 @@ from voxelscope.core.confounds import read_confounds
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.loader import analysis_for
 from voxelscope.core.loader import open_events as core_open_events
+from voxelscope.gui.agreement_panel import AgreementPanel
 from voxelscope.gui.checks_panel import install_checks
 from voxelscope.gui.colours import stylesheet
+from voxelscope.gui.export import install as install_export
+from voxelscope.gui.findings import FindingsPanel
 from voxelscope.gui.fits import FitsPanel
 from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, load_map, load_underlay
 from voxelscope.gui.map_panel import MapPanel
-from voxelscope.gui.mapjobs import install_map_parts
+from voxelscope.gui.mapjobs import LiveLayer, LiveMap
+from voxelscope.gui.marks_panel import install as install_marks
+from voxelscope.gui.menus import build_menus
 from voxelscope.gui.model_panel import ModelPanel
 from voxelscope.gui.plaintext import make_plain, plain_tooltip
 from voxelscope.gui.runs import install as install_runs
-from voxelscope.gui.session_io import install_lab_kit
+from voxelscope.gui.session_io import install as install_sessions
+from voxelscope.gui.show import install as install_show
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
 from voxelscope.gui.state import ViewerState
 from voxelscope.gui.status import ElidedLabel, StatusBar
-from voxelscope.gui.workers import OpenRunJob, stop_jobs
+from voxelscope.gui.workers import OpenRunJob, stop_all_at_exit, stop_jobs, wait_for_jobs
 
 __all__ = ["ORGANISATION", "MainWindow"]
 
@@ -145,11 +151,15 @@ class MainWindow(QMainWindow):
         self.add_part("Map", self.map_panel, Qt.DockWidgetArea.BottomDockWidgetArea)
         self.splitDockWidget(self.docks["Fits"], self.docks["Map"], Qt.Orientation.Horizontal)
         self.checks = install_checks(self)  # Checks, tabbed with Model (checks_panel.py)
-        install_map_parts(self)  # Findings, Agreement, live map hooks (mapjobs.py)
+        self._install_map_parts()  # Findings, Agreement, the live map's hooks
 
         self._build_status()
-        self._build_menus()
-        install_lab_kit(self)  # Marks, Show mode, sessions, export and report (session_io.py)
+        build_menus(self)  # File, Edit, View, Help (menus.py)
+        # parts that add menu items of their own
+        install_marks(self)  # Marks (marks_panel.py)
+        install_sessions(self)  # File > Open/Save session, autosave (session_io.py)
+        install_export(self)  # File > Export view, Report (export.py)
+        install_show(self)  # View > Show mode (show.py)
         install_runs(self)  # File > Add runs: several runs of one subject (runs.py)
         self._arranged = False
         self.auto_arrange = True  # False once a saved layout was restored
@@ -247,78 +257,37 @@ class MainWindow(QMainWindow):
         self.run_label.setObjectName("run_label")
         bar.addPermanentWidget(self.run_label)
 
-    def _build_menus(self) -> None:
-        m = self.menuBar().addMenu("&File")
-        act = QAction("Open &run…", self)
-        act.setShortcut(QKeySequence.StandardKey.Open)
-        act.triggered.connect(self.ask_run)
-        m.addAction(act)
-        act = QAction("Open &study…", self)
-        act.setToolTip("Pick a BIDS dataset folder (raw or derivatives) and browse its runs")
-        act.triggered.connect(self.ask_study)
-        m.addAction(act)
-        self.events_action = QAction("Open &events…", self)
-        self.events_action.triggered.connect(self.ask_events)
-        m.addAction(self.events_action)
-        self.confounds_action = QAction("Open &confounds…", self)
-        self.confounds_action.triggered.connect(self.ask_confounds)
-        m.addAction(self.confounds_action)
-        self.underlay_action = QAction("Open &underlay…", self)
-        self.underlay_action.triggered.connect(self.ask_underlay)
-        m.addAction(self.underlay_action)
-        self.atlas_action = QAction("Open a&tlas…", self)
-        self.atlas_action.setToolTip(
-            "A segmentation image (BIDS dseg) with its dseg.tsv: region names at the cursor"
-        )
-        self.atlas_action.triggered.connect(self.ask_atlas)
-        m.addAction(self.atlas_action)
-        self.map_action = QAction("Open &map…", self)
-        self.map_action.triggered.connect(self.ask_map)
-        m.addAction(self.map_action)
-        self.recent_menu = m.addMenu("Recent runs")
-        self.recent_studies_menu = m.addMenu("Recent studies")
-        self._fill_recent()
-        m.addSeparator()
-        act = QAction("Save window image…", self)
-        act.triggered.connect(self.ask_window_image)
-        m.addAction(act)
-        m.addSeparator()
-        act = QAction("&Quit", self)
-        act.setShortcut(QKeySequence("Ctrl+Q"))
-        act.triggered.connect(self.close)
-        m.addAction(act)
-        self._build_edit_menu()
-        v = self.menuBar().addMenu("&View")
-        for dock in self.docks.values():
-            v.addAction(dock.toggleViewAction())
-        v.addSeparator()
-        act = QAction("Reset slice views", self)
-        act.triggered.connect(self.reset_views)
-        v.addAction(act)
-        h = self.menuBar().addMenu("&Help")
-        act = QAction("&Keys and mouse…", self)
-        act.setShortcut(QKeySequence("F1"))
-        act.setToolTip("Every key and mouse action of the window")
-        act.triggered.connect(self.show_keys)
-        h.addAction(act)
-        self.keys_action = act
-        act = QAction("About voxelscope", self)
-        act.triggered.connect(self.about)
-        h.addAction(act)
+    def _install_map_parts(self) -> None:
+        """Findings (tabbed with Fits) and Agreement (with Model), tied to the live map.
 
-    def _build_edit_menu(self) -> None:
-        """Edit ▸ Undo / Redo: model changes and marks (the state's history)."""
-        e = self.menuBar().addMenu("&Edit")
-        history = self.state.history
-        self.undo_action = history.createUndoAction(self, "&Undo")
-        self.undo_action.setShortcut(QKeySequence("Ctrl+Z"))
-        self.redo_action = history.createRedoAction(self, "&Redo")
-        self.redo_action.setShortcuts([QKeySequence("Ctrl+Shift+Z"), QKeySequence("Ctrl+Y")])
-        for act in (self.undo_action, self.redo_action):
-            act.setToolTip("Model changes (contrast, kernels, noise, drift, confounds) and marks")
-            e.addAction(act)
-            self.addAction(act)  # the keys work with the menu bar hidden (Show mode)
-        self.edit_menu = e
+        The colour bar names live overlays; a window image waits for the map being
+        computed; closing the window stops background jobs (:meth:`closeEvent`).
+        """
+        live: LiveMap = self.map_panel.live
+        self.live_map = live
+        self.findings = FindingsPanel(self.state)
+        self.agreement = AgreementPanel(self.state, live)
+        area = Qt.DockWidgetArea
+        self.add_part("Findings", self.findings, area.BottomDockWidgetArea, tab_with="Fits")
+        self.add_part("Agreement", self.agreement, area.RightDockWidgetArea, tab_with="Model")
+        self.docks["Fits"].raise_()
+        self.docks["Model"].raise_()
+        agreement = self.agreement
+        self.docks["Agreement"].visibilityChanged.connect(
+            lambda on: agreement.catch_up() if on else None
+        )
+        self.state.map_changed.connect(self._name_live_overlay)
+        self.settle_hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
+        app = QCoreApplication.instance()
+        if app is not None:
+            app.aboutToQuit.connect(stop_all_at_exit)
+
+    def _name_live_overlay(self) -> None:
+        bar = self.slices.colour_bar
+        layer = self.state.stat_map
+        if isinstance(layer, LiveLayer) and bar.isVisible():
+            bar.title.setText(layer.title)
+            bar.title.setToolTip(layer.title)
 
     # ------------------------------------------------------------------ messages
 
@@ -680,9 +649,9 @@ class MainWindow(QMainWindow):
         items = [p for p in self.recent_runs(key) if p != path]
         items.insert(0, path)
         self.settings.setValue(key, items[:MAX_RECENT])
-        self._fill_recent()
+        self.fill_recent()
 
-    def _fill_recent(self) -> None:
+    def fill_recent(self) -> None:
         for menu, key, opener in (
             (self.recent_menu, "recent_runs", self.open_run),
             (self.recent_studies_menu, "recent_studies", self.open_study),
@@ -773,6 +742,7 @@ class MainWindow(QMainWindow):
         autosave = getattr(self, "autosave", None)
         if autosave is not None:
             autosave.clear()  # a clean close leaves no recovery file
+        self.shutdown()  # a running QThread must not outlive the window
         super().closeEvent(ev)
 
     def keep_marks(self) -> bool:

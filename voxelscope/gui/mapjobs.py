@@ -35,7 +35,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, Qt, QTimer, Signal
+from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, QTimer, Signal
 
 from voxelscope.core.maps import MapResult, compute_map, kernel_difference
 from voxelscope.core.model import ModelSettings
@@ -44,9 +44,6 @@ from voxelscope.gui.state import ViewerState
 from voxelscope.gui.workers import (
     BackgroundJob,
     JobFailure,
-    stop_all_at_exit,
-    stop_jobs,
-    wait_for_jobs,
 )
 
 __all__ = [
@@ -58,7 +55,6 @@ __all__ = [
     "MapRequest",
     "compute_request",
     "default_kernel",
-    "install_map_parts",
     "other_kernel",
     "preview_stat",
 ]
@@ -642,64 +638,3 @@ class _StrictCache(dict):
 
     def get(self, key, default=None):
         return self[key]
-
-
-# ----------------------------------------------------------------------------- window
-
-
-class _CloseGuard(QObject):
-    """Stops background jobs when the window closes (a running QThread must not be lost)."""
-
-    def eventFilter(self, obj, ev) -> bool:
-        from PySide6.QtCore import QEvent
-
-        if ev.type() == QEvent.Type.Close:
-            shutdown = getattr(obj, "shutdown", None)
-            if shutdown is not None:
-                shutdown()
-            else:
-                stop_jobs(obj)
-        return False
-
-
-def install_map_parts(window) -> None:
-    """Add Findings and Agreement to the window and tie the live map to it.
-
-    Findings is tabbed with Fits and Agreement with Model; the colour bar names live
-    overlays; a window image waits for the map that is being computed; closing the
-    window stops background jobs.
-    """
-    from voxelscope.gui.agreement_panel import AgreementPanel
-    from voxelscope.gui.findings import FindingsPanel
-
-    live: LiveMap = window.map_panel.live
-    window.live_map = live
-    window.findings = FindingsPanel(window.state)
-    window.agreement = AgreementPanel(window.state, live)
-    area = Qt.DockWidgetArea
-    window.add_part("Findings", window.findings, area.BottomDockWidgetArea, tab_with="Fits")
-    window.add_part("Agreement", window.agreement, area.RightDockWidgetArea, tab_with="Model")
-    window.docks["Fits"].raise_()
-    window.docks["Model"].raise_()
-    agreement = window.agreement
-    window.docks["Agreement"].visibilityChanged.connect(
-        lambda on: agreement.catch_up() if on else None
-    )
-    bar = window.slices.colour_bar
-
-    def title() -> None:
-        layer = window.state.stat_map
-        if isinstance(layer, LiveLayer) and bar.isVisible():
-            bar.title.setText(layer.title)
-            bar.title.setToolTip(layer.title)
-
-    window.state.map_changed.connect(title)
-    guard = _CloseGuard(window)
-    window.installEventFilter(guard)
-    window._map_close_guard = guard
-    hooks = getattr(window, "settle_hooks", None)
-    if hooks is not None:
-        hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
-    app = QCoreApplication.instance()
-    if app is not None:
-        app.aboutToQuit.connect(stop_all_at_exit)

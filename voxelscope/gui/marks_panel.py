@@ -640,7 +640,7 @@ def install(window) -> MarksPanel:
     act.triggered.connect(lambda: panel.ask_add())
     window.addAction(act)
     window.add_mark_action = act
-    from voxelscope.gui.session_io import menu_named
+    from voxelscope.gui.menus import menu_named
 
     view = menu_named(window, "View")
     if view is not None:

@@ -152,7 +152,7 @@ def ask_add_runs(window) -> None:
 
 def install(window) -> None:
     """Add File ▸ Add runs… and File ▸ Close added runs after File ▸ Open run…."""
-    from voxelscope.gui.session_io import menu_named
+    from voxelscope.gui.menus import menu_named
 
     menu = menu_named(window, "File")
     window.add_runs_action = QAction("&Add runs…", window)

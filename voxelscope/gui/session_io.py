@@ -26,7 +26,7 @@ from pathlib import Path
 
 from PySide6.QtCore import QByteArray, QObject, Qt, QTimer
 from PySide6.QtGui import QAction, QKeySequence
-from PySide6.QtWidgets import QApplication, QFileDialog, QMenu, QMessageBox
+from PySide6.QtWidgets import QApplication, QFileDialog, QMessageBox
 
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import MarkList
@@ -43,6 +43,7 @@ from voxelscope.core.session import (
     save_session,
     write_recovery,
 )
+from voxelscope.gui.menus import insert_before_quit, menu_named
 from voxelscope.gui.state import MapSettings
 
 __all__ = [
@@ -51,8 +52,6 @@ __all__ = [
     "collect_session",
     "find_recoveries",
     "install",
-    "install_lab_kit",
-    "menu_named",
     "offer_recovery",
     "open_session",
     "restore_layout",
@@ -66,37 +65,6 @@ ROLES = {"run": "run", "events": "events", "confounds": "confounds", "anatomy": 
 LAYOUT_KIND = "qt-main-window"
 
 Locate = Callable[[FileProblem], "Path | None"]
-
-
-# ---------------------------------------------------------------------------- menus
-
-
-def menu_named(window, name: str) -> QMenu | None:
-    """The window's top-level menu called ``name`` (ignoring ``&`` accelerators)."""
-    for act in window.menuBar().actions():
-        menu = act.menu()
-        if menu is not None and act.text().replace("&", "") == name:
-            return menu
-    return None
-
-
-def insert_before_quit(menu: QMenu, items: list) -> None:
-    """Insert actions (None for a separator) before the separator above File ▸ Quit."""
-    acts = menu.actions()
-    before = None
-    for n, act in enumerate(acts):
-        if act.text().replace("&", "") == "Quit":
-            before = acts[n - 1] if n > 0 and acts[n - 1].isSeparator() else act
-            break
-    for item in items:
-        if item is None:
-            sep = QAction(menu)
-            sep.setSeparator(True)
-            item = sep
-        if before is None:
-            menu.addAction(item)
-        else:
-            menu.insertAction(before, item)
 
 
 # ---------------------------------------------------------------------------- collect
@@ -614,13 +582,3 @@ def install(window, directory=None) -> Autosave:
         insert_before_quit(file_menu, [None, open_act, save_act])
     window.autosave = Autosave(window, directory)
     return window.autosave
-
-
-def install_lab_kit(window) -> None:
-    """Marks, Show mode, sessions, export of the view and the report: one call from the window."""
-    from voxelscope.gui import export, marks_panel, show
-
-    marks_panel.install(window)
-    install(window)
-    export.install(window)
-    show.install(window)

@@ -536,7 +536,7 @@ class ShowMode(QObject):
 
 def install(window) -> ShowMode:
     """View ▸ Show mode (F5); the action also lives on the window, so F5 works without menus."""
-    from voxelscope.gui.session_io import menu_named
+    from voxelscope.gui.menus import menu_named
 
     mode = ShowMode(window)
     window.show_mode = mode

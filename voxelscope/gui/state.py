@@ -28,11 +28,8 @@ from voxelscope.core.combine import CombinedFit, combine_fits, run_labels
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
-from voxelscope.gui import qtfix
 from voxelscope.gui.loading import Layer, RunBundle
 from voxelscope.gui.orient import DisplayGrid
-
-qtfix.install()
 
 __all__ = ["MapSettings", "RunFit", "ViewerState", "settings_change_words"]
 
@@ -227,7 +224,6 @@ class ViewerState(QObject):
         self.history = QUndoStack(self)
         self._recording = True
         self._saved_marks: list = []
-        qtfix.start_timer(self)
 
     # ------------------------------------------------------------------ accessors
 
@@ -525,7 +521,6 @@ class ViewerState(QObject):
 
     def recompute(self) -> bool:
         """Refit the current voxel under the current settings; emit ``fits_changed``."""
-        qtfix.top_up()
         run = self.run
         if run is None:
             return False
