@@ -11,7 +11,7 @@ import nibabel as nib
 import numpy as np
 
 from voxelscope.core.agreement import compare_maps
-from voxelscope.gui.mapjobs import LiveLayer
+from voxelscope.gui.state import LiveLayer
 
 
 def _open(window, files):
@@ -52,7 +52,7 @@ def test_value_at_voxel_is_their_resampled_value(window, qtbot, ras_run, tmp_pat
         x, y, z = state.run.voxel_to_mm(v)
         ours, theirs = panel.value_at(v)
         assert abs(theirs - (0.3 * x - 0.2 * y + 0.1 * z + 1.0)) < 1e-4
-        assert ours == float(window.map_panel.live.model.t[v])
+        assert ours == float(window.state.model_map.t[v])
         assert f"{theirs:.3f}" in panel.at_voxel.text()
 
 
@@ -60,7 +60,7 @@ def test_correlation_equals_numpy_corrcoef(window, qtbot, ras_run):
     _state, panel = _open(window, ras_run)
     assert panel.load_their_map(ras_run["map"])
     _wait(qtbot, panel)
-    model = window.map_panel.live.model
+    model = window.state.model_map
     theirs = nib.load(str(ras_run["map"])).get_fdata()  # the same grid: no resampling
     region = model.mask & np.isfinite(theirs)
     r = np.corrcoef(model.t[region].astype(float), theirs[region])[0, 1]
@@ -78,7 +78,7 @@ def test_disagreement_overlay(window, qtbot, ras_run):
     panel.show_differ.setChecked(True)
     layer = state.stat_map
     assert isinstance(layer, LiveLayer) and layer.source == "disagreement"
-    model = window.map_panel.live.model
+    model = window.state.model_map
     ref = compare_maps(model, panel.theirs, tolerance=2.0)
     np.testing.assert_array_equal(np.isfinite(layer.data), ref.disagree)
     assert state.map_settings.threshold == 0.0

@@ -15,7 +15,8 @@ import pytest
 from voxelscope.core.errors import Cancelled, ModelError
 from voxelscope.core.maps import compute_map, kernel_difference
 from voxelscope.gui import mapjobs
-from voxelscope.gui.mapjobs import LiveLayer, default_kernel
+from voxelscope.gui.mapjobs import default_kernel
+from voxelscope.gui.state import LiveLayer
 
 
 def _open(window, files):
@@ -38,7 +39,7 @@ def test_live_map_equals_compute_map(window, ras_run):
     assert isinstance(layer, LiveLayer) and layer.source == "model"
     ref = compute_map(state.run, state.analysis, state.settings, "double-gamma")
     np.testing.assert_array_equal(layer.data, ref.t)
-    assert live.model.kernel == "double-gamma"
+    assert state.model_map.kernel == "double-gamma"
     # another statistic and kernel, chosen in the Map part's combos
     window.map_panel.stat.setCurrentIndex(window.map_panel.stat.findData("z"))
     window.map_panel.kernel.setCurrentIndex(window.map_panel.kernel.findData("gamma"))
@@ -128,12 +129,12 @@ def test_opened_file_becomes_the_source_and_model_is_one_choice_away(window, ras
     state, live = _open(window, ras_run)
     assert window.open_map(ras_run["map"])
     assert state.map_settings.source == "file"
-    assert state.stat_map is live.file_layer and state.stat_map.path == ras_run["map"]
+    assert state.stat_map is state.file_layer and state.stat_map.path == ras_run["map"]
     window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("model"))
     assert live.flush(20000)
     assert isinstance(state.stat_map, LiveLayer)
     window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("file"))
-    assert state.stat_map is live.file_layer
+    assert state.stat_map is state.file_layer
 
 
 def test_run_without_events_shows_no_model(window, las_run):

@@ -106,7 +106,7 @@ def test_live_map_is_the_fixed_effects_map(window, qtbot, three_runs):
         req.kernel,
         stats=req.stats,
     )
-    np.testing.assert_allclose(live.model.t, ref.t, rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(window.state.model_map.t, ref.t, rtol=1e-6, atol=1e-6)
     assert "3 runs" in st.stat_map.title
     st.remove_runs()
     assert live.flush(30000)

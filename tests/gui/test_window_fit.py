@@ -63,7 +63,7 @@ def test_closing_during_a_map_job_leaves_no_thread(demo_window, qtbot, qapp, dem
             qapp.processEvents()
         w2 = demo_window((1280, 800))  # a second window still works
         w2.live_map.flush()
-        assert w2.live_map.model is not None
+        assert w2.state.model_map is not None
         w2.close()
         for _ in range(5):
             qapp.processEvents()

@@ -37,10 +37,9 @@ from PySide6.QtWidgets import (
 from voxelscope.core.agreement import Agreement, compare_maps, explain, load_their_map
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.gui.colours import colours
-from voxelscope.gui.mapjobs import LiveLayer, LiveMap
 from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import breakable, compact_spin, scroll_body
-from voxelscope.gui.state import ViewerState
+from voxelscope.gui.state import LiveLayer, ViewerState
 from voxelscope.gui.workers import BackgroundJob, JobFailure
 
 __all__ = ["MAX_POINTS", "AgreementPanel", "scatter_sample"]
@@ -71,11 +70,10 @@ def scatter_sample(region: np.ndarray, n: int = MAX_POINTS, seed: int = 0) -> np
 class AgreementPanel(QWidget):
     """Compare the live model map with an outside map."""
 
-    def __init__(self, state: ViewerState, live: LiveMap, parent: QWidget | None = None):
+    def __init__(self, state: ViewerState, parent: QWidget | None = None):
         super().__init__(parent)
         self.setObjectName("agreement_panel")
         self.state = state
-        self.live = live
         self.theirs: np.ndarray | None = None
         self.their_path: Path | None = None
         self.agreement: Agreement | None = None
@@ -83,6 +81,7 @@ class AgreementPanel(QWidget):
         self.compare_job: BackgroundJob | None = None
         self.explain_job: BackgroundJob | None = None
         self._again = False
+        self._before = "model"  # the source shown before "where the maps differ"
         self._voxel_stale = False
         self._sample = np.zeros(0, dtype=np.int64)
         c = colours()
@@ -192,8 +191,8 @@ class AgreementPanel(QWidget):
         self.statement.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
         lay.addWidget(self.statement)
 
-        live.set_provider("disagreement", self.disagreement_layer)
-        live.model_ready.connect(lambda _m: self.recompare())
+        state.set_source_layer("disagreement", None)  # this part offers the source
+        state.model_map_changed.connect(self._on_model_map)
         state.run_changed.connect(self._on_run)
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._sync_toggle)
@@ -239,11 +238,11 @@ class AgreementPanel(QWidget):
         self.cancel_explain()
         self.theirs = None
         self.their_path = None
-        self.agreement = None
+        self._set_agreement(None)
         self.file_label.setText("No outside map: Their map…" if self.state.run else "")
         self.file_label.setToolTip("")
         self.statement.setText("")
-        f = self.live.file_layer
+        f = self.state.file_layer
         if self.state.run is not None and f is not None and f.path is not None:
             self.load_their_map(f.path)  # a map opened with the run is the user's own
         self._show()
@@ -252,9 +251,9 @@ class AgreementPanel(QWidget):
 
     def recompare(self) -> None:
         """Compare the current model map with theirs, off the GUI thread."""
-        model = self.live.model
+        model = self.state.model_map
         if self.theirs is None or model is None:
-            self.agreement = None
+            self._set_agreement(None)
             self._show()
             return
         if self.compare_job is not None:
@@ -262,6 +261,7 @@ class AgreementPanel(QWidget):
             self.compare_job.cancel()
             return
         self._again = False
+        self._before = "model"  # the source shown before "where the maps differ"
         theirs, tol = self.theirs, float(self.tolerance.value())
         stat = self.state.map_settings.stat
         stat = stat if getattr(model, stat, None) is not None else "t"
@@ -285,12 +285,19 @@ class AgreementPanel(QWidget):
 
     def _compared(self, out) -> None:
         agreement, model = out
-        if self._again or model is not self.live.model:
+        if self._again or model is not self.state.model_map:
             return
-        self.agreement = agreement
+        self._set_agreement(agreement)
         self._show()
-        if self.state.map_settings.source == "disagreement":
-            self.live.apply()
+
+    def _set_agreement(self, agreement: Agreement | None) -> None:
+        """Keep the comparison and offer its overlay to the Map (source "disagreement")."""
+        self.agreement = agreement
+        self.state.set_source_layer("disagreement", self.disagreement_layer())
+
+    def _on_model_map(self, model) -> None:
+        if model is not None:
+            self.recompare()
 
     def _failed(self, failure: JobFailure) -> None:
         self.state.message.emit(failure.line)
@@ -318,9 +325,9 @@ class AgreementPanel(QWidget):
         ms = self.state.map_settings
         if on and ms.source != "disagreement":
             self._before = ms.source
-            self.live.set_source("disagreement")
+            self.state.set_map_source("disagreement")
         elif not on and ms.source == "disagreement":
-            self.live.set_source(getattr(self, "_before", "model"))
+            self.state.set_map_source(self._before)
 
     def _sync_toggle(self) -> None:
         on = self.state.map_settings.source == "disagreement"
@@ -334,7 +341,7 @@ class AgreementPanel(QWidget):
     def start_explain(self) -> None:
         """Run :func:`voxelscope.core.agreement.explain` in the background."""
         st = self.state
-        model = self.live.model
+        model = self.state.model_map
         if self.theirs is None or model is None or st.analysis is None:
             st.message.emit("Load their map and wait for our model map first.")
             return
@@ -392,10 +399,10 @@ class AgreementPanel(QWidget):
         a = self.agreement
         has = self.theirs is not None
         self.explain_button.setEnabled(
-            has and self.live.model is not None and self.explain_job is None
+            has and self.state.model_map is not None and self.explain_job is None
         )
         self.show_differ.setEnabled(a is not None)
-        model = self.live.model
+        model = self.state.model_map
         if a is None:
             self.summary.setText(
                 "" if not has else ("Waiting for our model map…" if model is None else "Comparing…")
@@ -445,8 +452,8 @@ class AgreementPanel(QWidget):
         ours = None
         if self.agreement is not None:
             ours = self.agreement.value_at((i, j, k))[0]
-        elif self.live.model is not None:
-            m = self.live.model
+        elif self.state.model_map is not None:
+            m = self.state.model_map
             stat = self.state.map_settings.stat
             vol = getattr(m, stat, None)
             vol = m.t if vol is None else vol

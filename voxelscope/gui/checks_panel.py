@@ -470,11 +470,8 @@ class ChecksPanel(QWidget):
     # ------------------------------------------------------------------ kernel choice
 
     def _map_kernel(self) -> str | None:
-        for source in (self.state, getattr(self.state, "map_settings", None)):
-            k = getattr(source, "map_kernel", None) or getattr(source, "kernel", None)
-            if isinstance(k, str):
-                return k
-        return None
+        """The kernel chosen for the Map (None: the Map's default)."""
+        return self.state.map_settings.kernel
 
     def kernel(self) -> str | None:
         """The kernel whose fit is checked (None when no kernel is switched on)."""
@@ -524,12 +521,12 @@ class ChecksPanel(QWidget):
         self._show_runs()
         # While the crosshair is dragged, the checks wait until the pointer rests: a job
         # per frame would take the CPU and the interpreter from the frames themselves.
-        self._timer.start(DRAG_REST_MS if getattr(self.state, "dragging", False) else 0)
+        self._timer.start(DRAG_REST_MS if self.state.dragging else 0)
 
     def runs_text(self) -> str:
         """The agreement between runs for the checked kernel ('' with one run)."""
         st = self.state
-        if not getattr(st, "run_fits", None):
+        if not st.run_fits:
             return ""
         kernel = self.kernel()
         c = next((c for c in st.combined if c.kernel == kernel), None)

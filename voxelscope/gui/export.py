@@ -340,14 +340,14 @@ def _report_kwargs(window, out_dir, what: str, force: bool) -> dict:
     state = window.state
     if state.run is None or state.analysis is None:
         raise InputError("a report needs an open run with its events (File > Open run)")
-    if getattr(state, "extra", None):
+    if state.extra:
         return _runs_report_kwargs(window, out_dir, what, force)
     bundle = state.bundle
     inputs = {
         "events": bundle.events_path,
         "confounds": bundle.confounds_path,
         "anatomy": bundle.underlay.path if bundle.underlay is not None else None,
-        "overlay": bundle.stat_map.path if bundle.stat_map is not None else None,
+        "overlay": state.stat_map.path if state.stat_map is not None else None,
     }
     kwargs = dict(
         out_dir=Path(out_dir),

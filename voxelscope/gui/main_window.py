@@ -51,7 +51,7 @@ from voxelscope.gui.findings import FindingsPanel
 from voxelscope.gui.fits import FitsPanel
 from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, load_map, load_underlay
 from voxelscope.gui.map_panel import MapPanel
-from voxelscope.gui.mapjobs import LiveLayer, LiveMap
+from voxelscope.gui.mapjobs import LiveMap
 from voxelscope.gui.marks_panel import install as install_marks
 from voxelscope.gui.menus import build_menus
 from voxelscope.gui.model_panel import ModelPanel
@@ -61,7 +61,7 @@ from voxelscope.gui.session_io import install as install_sessions
 from voxelscope.gui.show import install as install_show
 from voxelscope.gui.signal import SignalPanel
 from voxelscope.gui.slices import SlicesPanel
-from voxelscope.gui.state import ViewerState
+from voxelscope.gui.state import LiveLayer, ViewerState
 from voxelscope.gui.status import ElidedLabel, StatusBar
 from voxelscope.gui.workers import OpenRunJob, stop_all_at_exit, stop_jobs, wait_for_jobs
 
@@ -266,7 +266,7 @@ class MainWindow(QMainWindow):
         live: LiveMap = self.map_panel.live
         self.live_map = live
         self.findings = FindingsPanel(self.state)
-        self.agreement = AgreementPanel(self.state, live)
+        self.agreement = AgreementPanel(self.state)
         area = Qt.DockWidgetArea
         self.add_part("Findings", self.findings, area.BottomDockWidgetArea, tab_with="Fits")
         self.add_part("Agreement", self.agreement, area.RightDockWidgetArea, tab_with="Model")
@@ -610,7 +610,7 @@ class MainWindow(QMainWindow):
         except VoxelscopeError as err:
             self.show_error(str(err))
             return False
-        self.state.set_map(layer)
+        self.state.set_file_layer(layer)
         for w in warnings:
             self._note(w)
         return True

@@ -26,10 +26,10 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.core.noise import NOISE_LABELS
-from voxelscope.gui.mapjobs import MAP_STATS, SOURCES, LiveLayer, LiveMap
+from voxelscope.gui.mapjobs import LiveMap
 from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import ElidedLabel, compact_spin, fit_combo
-from voxelscope.gui.state import ViewerState
+from voxelscope.gui.state import MAP_STATS, SOURCES, LiveLayer, ViewerState
 
 __all__ = ["COLOUR_SCALES", "MapPanel"]
 
@@ -240,7 +240,7 @@ class MapPanel(QWidget):
     # ------------------------------------------------------------------ user input
 
     def _source_chosen(self, _index: int) -> None:
-        self.live.set_source(self.source.currentData())
+        self.state.set_map_source(self.source.currentData())
 
     def _kernel_chosen(self, _index: int) -> None:
         k = self.kernel.currentData()
@@ -311,8 +311,8 @@ class MapPanel(QWidget):
             enable = {
                 "model": has_model and bool(kernels),
                 "difference": has_model and len(kernels) > 1,
-                "file": live.file_layer is not None,
-                "disagreement": "disagreement" in live.providers and has_model,
+                "file": st.file_layer is not None,
+                "disagreement": "disagreement" in st.source_layers and has_model,
             }
             for n, (key, _text) in enumerate(SOURCES):
                 item = model.item(n)
@@ -356,7 +356,7 @@ class MapPanel(QWidget):
         if st.run is None:
             text = "Open a run first."
         elif s.source == "file":
-            f = self.live.file_layer
+            f = st.file_layer
             if f is None:
                 text = "No map file open: Open map…"
             else:
@@ -375,8 +375,8 @@ class MapPanel(QWidget):
             text = "No kernel enabled in Model."
         elif s.source == "difference" and self.live.other() is None:
             text = "Enable a second kernel in Model to compare kernels."
-        elif isinstance(layer, LiveLayer) and self.live.model is not None:
-            m = self.live.model
+        elif isinstance(layer, LiveLayer) and st.model_map is not None:
+            m = st.model_map
             text = (
                 f"contrast '{m.contrast}', "
                 f"{NOISE_LABELS.get(m.noise, m.noise)}, "

@@ -40,16 +40,13 @@ from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, QTimer, Sig
 from voxelscope.core.maps import MapResult, compute_map, kernel_difference
 from voxelscope.core.model import ModelSettings
 from voxelscope.gui.loading import Layer
-from voxelscope.gui.state import ViewerState
+from voxelscope.gui.state import LiveLayer, ViewerState
 from voxelscope.gui.workers import (
     BackgroundJob,
     JobFailure,
 )
 
 __all__ = [
-    "MAP_STATS",
-    "SOURCES",
-    "LiveLayer",
     "LiveMap",
     "MapOutcome",
     "MapRequest",
@@ -58,20 +55,6 @@ __all__ = [
     "other_kernel",
     "preview_stat",
 ]
-
-#: Overlay sources, with the words the Map part shows for them.
-SOURCES = (
-    ("model", "model map (live)"),
-    ("difference", "kernel difference"),
-    ("file", "map file"),
-    ("disagreement", "where the maps differ"),
-)
-
-#: Statistics the model map can show, with their labels.
-MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "beta"), ("variance", "variance"))
-
-#: Threshold a source starts with the first time it is shown (others keep the current one).
-FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
 
 #: Model maps kept for quick switching between kernels, statistics and sources.
 CACHE_SIZE = 6
@@ -144,16 +127,6 @@ class MapOutcome:
     other: MapResult | None = None
     difference: np.ndarray | None = None
     seconds: float = 0.0
-
-
-@dataclass(eq=False)
-class LiveLayer(Layer):
-    """An overlay made in the window (no file): ``title`` names it on the colour bar."""
-
-    title: str = ""
-    stat: str = "t"
-    source: str = "model"
-    preview: bool = False  # the planes on screen only, until the full map replaces it
 
 
 def compute_request(
@@ -268,9 +241,6 @@ class LiveMap(QObject):
         Fraction of the running job.
     shown(object)
         The overlay was replaced (the new layer, or None).
-    model_ready(object)
-        A model map (MapResult of the map's kernel and statistic) for the current model
-        settings is available; the Agreement part compares it with the outside map.
     failed(str)
         A job failed: one line (also sent to the status bar through ``state.message``).
     """
@@ -278,7 +248,6 @@ class LiveMap(QObject):
     busy = Signal(bool)
     progress = Signal(float)
     shown = Signal(object)
-    model_ready = Signal(object)
     failed = Signal(str)
 
     def __init__(self, state: ViewerState, parent: QObject | None = None) -> None:
@@ -293,22 +262,20 @@ class LiveMap(QObject):
         self.job: BackgroundJob | None = None
         self.jobs_started = 0
         self.jobs_done = 0
+        # the last finished job and the maps kept for quick switching: this part's own
+        # cache; what is shown and the model map are in the state
         self.outcome: MapOutcome | None = None
-        self.model: MapResult | None = None
-        self.file_layer: Layer | None = None
-        self.providers: dict[str, Callable[[], Layer | None]] = {}
         self.cache: OrderedDict = OrderedDict()
         self.last_seconds: float | None = None
         self.last_latency_s: float | None = None
         self._changed_at: float | None = None
         self._pending = False
-        self._mine: Layer | None = None
         self._seen = self._key()
-        self._thresholds: dict[str, float] = {}
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
         state.map_changed.connect(self._on_map)
         state.runs_changed.connect(self._on_runs)
+        state.source_layer_changed.connect(self._on_source_layer)
 
     # ------------------------------------------------------------------ what to show
 
@@ -342,21 +309,6 @@ class LiveMap(QObject):
     def is_busy(self) -> bool:
         return self.job is not None or self.timer.isActive() or self._pending
 
-    def set_source(self, source: str) -> None:
-        """Show another source; each source keeps the threshold it was last shown with."""
-        ms = self.state.map_settings
-        if source == ms.source:
-            return
-        if source not in dict(SOURCES):
-            raise ValueError(f"unknown map source {source!r}")
-        self._thresholds[ms.source] = ms.threshold
-        thr = self._thresholds.get(source, FIRST_THRESHOLD.get(source, ms.threshold))
-        self.state.set_map_settings(source=source, threshold=float(thr))
-
-    def set_provider(self, source: str, fn: Callable[[], Layer | None]) -> None:
-        """Register the maker of an overlay for ``source`` (e.g. ``"disagreement"``)."""
-        self.providers[source] = fn
-
     # ------------------------------------------------------------------ state events
 
     def _key(self):
@@ -364,23 +316,17 @@ class LiveMap(QObject):
         return (ms.source, ms.kernel, ms.other_kernel, ms.stat)
 
     def _on_run(self) -> None:
+        """A new run or events file: the old maps are of no use; with a model and a live
+        source the new model map is computed at once (the state has already set the
+        source and put a map file opened with the run aside)."""
         self.cancel()
         self.cache.clear()
         self.outcome = None
-        self.model = None
-        self._mine = None
-        bundle = self.state.bundle
-        self.file_layer = None if bundle is None else bundle.stat_map
         if self.state.analysis is not None and self.state.map_settings.source in (
             "model",
             "difference",
         ):
-            # the file stays one choice away; the model map replaces it shortly
-            if bundle is not None and bundle.stat_map is not None:
-                bundle.stat_map = None
             self.schedule(now=True)
-        elif self.state.map_settings.source != "file" and self.file_layer is not None:
-            self.state.map_settings = self.state.map_settings.with_(source="file")
         self._seen = self._key()
 
     def _on_runs(self) -> None:
@@ -392,16 +338,12 @@ class LiveMap(QObject):
         if self.state.run is not None and self.state.analysis is not None:
             self.schedule()
 
+    def _on_source_layer(self, source: str) -> None:
+        """Another part's overlay changed; shown again when its source is on screen."""
+        if source == self.state.map_settings.source:
+            self.apply()
+
     def _on_map(self) -> None:
-        layer = self.state.stat_map
-        if layer is not None and layer is not self._mine and layer is not self.file_layer:
-            # a map file was opened (menu, drop): it becomes the file source and is shown
-            self.file_layer = layer
-            self._mine = None
-            if self.state.map_settings.source != "file":
-                self.state.map_settings = self.state.map_settings.with_(source="file")
-            self._seen = self._key()
-            return
         key = self._key()
         if key != self._seen:
             self._seen = key
@@ -518,12 +460,11 @@ class LiveMap(QObject):
         if outcome.other is not None:
             self._remember(outcome.other)
         self.outcome = outcome
-        self.model = outcome.model
+        self.state.set_model_map(outcome.model)
         self.apply()
         if self._changed_at is not None:
             self.last_latency_s = time.perf_counter() - self._changed_at
             self._changed_at = None
-        self.model_ready.emit(outcome.model)
 
     def _preview(self, payload) -> None:
         """Show the preview (the planes on screen) of the map being computed; the full
@@ -541,7 +482,6 @@ class LiveMap(QObject):
         )  # fmt: skip
         keep = isinstance(st.stat_map, LiveLayer) and st.stat_map.source == "model"
         keep = keep and st.stat_map.stat == req.stat
-        self._mine = layer
         st.set_map(layer, keep_scale=keep)
         self.maps_shown += 1
         self.previews_shown += 1
@@ -581,17 +521,13 @@ class LiveMap(QObject):
                     self.schedule(now=True)
                     return
                 out = self.outcome = hit
-                self.model = hit.model
-                self.model_ready.emit(hit.model)
+                self.state.set_model_map(hit.model)
             if req is not None and out is not None:
                 layer = self._layer(out, source)
         elif source == "file":
-            layer = self.file_layer
+            layer = st.file_layer
         else:
-            fn = self.providers.get(source)
-            layer = fn() if fn is not None else None
-            if isinstance(layer, LiveLayer):
-                self._mine = layer
+            layer = st.source_layers.get(source)
         if layer is not st.stat_map:
             keep = isinstance(layer, LiveLayer) and isinstance(st.stat_map, LiveLayer)
             keep = keep and layer.source == st.stat_map.source and layer.stat == st.stat_map.stat
@@ -603,7 +539,7 @@ class LiveMap(QObject):
     def _from_cache(self, req: MapRequest) -> MapOutcome | None:
         try:
             return compute_request(None, None, req, cache=_StrictCache(self.cache))
-        except KeyError:
+        except _NotCached:
             return None
 
     def _layer(self, out: MapOutcome, source: str) -> LiveLayer:
@@ -622,19 +558,24 @@ class LiveMap(QObject):
         finite = np.abs(data[np.isfinite(data)])
         top = float(finite.max()) if finite.size else 1.0
         top = top if top > 0 else 1.0
-        layer = LiveLayer(None, data, 1, (-top, top), title=title, stat=stat, source=source)
-        self._mine = layer
-        return layer
+        return LiveLayer(None, data, 1, (-top, top), title=title, stat=stat, source=source)
 
     def wait(self, timeout_ms: int = 20000) -> bool:
         return self.flush(timeout_ms)
 
 
+class _NotCached(Exception):
+    """A map the request needs is not in the cache (only this; a KeyError is a bug)."""
+
+
 class _StrictCache(dict):
-    """A read-only view of the map cache that raises KeyError on a miss (no computing)."""
+    """A read-only view of the map cache that raises :class:`_NotCached` on a miss, so
+    nothing is computed."""
 
     def __init__(self, cache) -> None:
         super().__init__(cache)
 
     def get(self, key, default=None):
+        if key not in self:
+            raise _NotCached(key)
         return self[key]

@@ -105,8 +105,7 @@ def window_layout(window) -> dict:
 
 def _overlay_path(window) -> Path | None:
     """The map file opened over the run (kept aside while the live model map is shown)."""
-    live = getattr(window, "live_map", None)
-    for layer in (getattr(live, "file_layer", None), window.state.stat_map):
+    for layer in (window.state.file_layer, window.state.stat_map):
         if layer is not None and getattr(layer, "path", None) is not None:
             return Path(layer.path)
     return None
@@ -135,7 +134,7 @@ def collect_session(window) -> Session:
         # several runs: the added runs and their companions, as "run 2", "events 2", ...
         from voxelscope.gui.runs import run_roles
 
-        for n, b in enumerate(getattr(state, "extra", ()), start=2):
+        for n, b in enumerate(state.extra, start=2):
             role_run, role_events, role_conf = run_roles(n)
             files[role_run] = Path(b.run.path)
             if b.events_path is not None:

@@ -31,9 +31,32 @@ from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
 from voxelscope.gui.loading import Layer, RunBundle
 from voxelscope.gui.orient import DisplayGrid
 
-__all__ = ["MapSettings", "RunFit", "ViewerState", "settings_change_words"]
+__all__ = [
+    "FIRST_THRESHOLD",
+    "MAP_STATS",
+    "SOURCES",
+    "LiveLayer",
+    "MapSettings",
+    "RunFit",
+    "ViewerState",
+    "settings_change_words",
+]
 
 UNITS = ("data", "percent")
+
+#: Overlay sources, with the words the Map part shows for them.
+SOURCES = (
+    ("model", "model map (live)"),
+    ("difference", "kernel difference"),
+    ("file", "map file"),
+    ("disagreement", "where the maps differ"),
+)
+
+#: Statistics the model map can show, with their labels.
+MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "beta"), ("variance", "variance"))
+
+#: Threshold a source starts with the first time it is shown (others keep the current one).
+FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
 
 
 #: Model settings a newly opened run starts with: the default model exactly (conditions,
@@ -141,7 +164,7 @@ class MapSettings:
     colour_scale : str
         A pyqtgraph colour map name (a diverging, perceptually uniform one).
     source : str
-        What the overlay shows (see :data:`voxelscope.gui.mapjobs.SOURCES`): ``"model"``
+        What the overlay shows (see :data:`SOURCES`): ``"model"``
         the live model map, ``"difference"`` t under ``kernel`` minus t under
         ``other_kernel``, ``"file"`` a loaded map file, ``"disagreement"`` where our map
         and an outside map differ.
@@ -167,6 +190,16 @@ class MapSettings:
         return replace(self, **changes)
 
 
+@dataclass(eq=False)
+class LiveLayer(Layer):
+    """An overlay made in the window (no file): ``title`` names it on the colour bar."""
+
+    title: str = ""
+    stat: str = "t"
+    source: str = "model"
+    preview: bool = False  # the planes on screen only, until the full map replaces it
+
+
 @dataclass(frozen=True, eq=False)
 class RunFit:
     """One run's fit at the current place (several runs): its voxel, series and fits.
@@ -183,12 +216,42 @@ class RunFit:
 
 
 class ViewerState(QObject):
-    """Current run, voxel, model settings, map settings and fits, with change signals."""
+    """Current run, voxel, model settings, map settings, maps and fits, with change signals.
+
+    The map part of the state:
+
+    ``stat_map``
+        The overlay on screen (a map file, a :class:`LiveLayer` made in the window, or
+        None); :meth:`set_map`, signal ``map_changed`` (also sent when ``map_settings``
+        change).
+    ``map_settings.source``
+        What the overlay shows (:data:`SOURCES`); :meth:`set_map_source` remembers the
+        threshold each source was last shown with.
+    ``file_layer``
+        The map file opened over the run (with the run, File > Open map, a drop); it stays
+        one choice away while the model map is shown. :meth:`set_file_layer`, signal
+        ``file_layer_changed``.
+    ``model_map``
+        The whole-volume model map (a :class:`~voxelscope.core.maps.MapResult`) of the
+        map's kernel under the current model settings, None until it is computed (by
+        :class:`voxelscope.gui.mapjobs.LiveMap`). :meth:`set_model_map`, signal
+        ``model_map_changed``.
+    ``source_layers``
+        Overlays other parts make for a source of their own (the Agreement part's
+        ``"disagreement"``); a key present means the source can be chosen.
+        :meth:`set_source_layer`, signal ``source_layer_changed(source)``.
+
+    Opening a run or another events file (``run_changed``) resets ``model_map``; a new
+    run also ``file_layer``.
+    """
 
     run_changed = Signal()
     underlay_changed = Signal()
     atlas_changed = Signal()
     map_changed = Signal()
+    file_layer_changed = Signal()
+    model_map_changed = Signal(object)
+    source_layer_changed = Signal(str)
     voxel_changed = Signal(object)
     settings_changed = Signal(object)
     fits_changed = Signal(object)
@@ -207,6 +270,11 @@ class ViewerState(QObject):
         self.voxel: tuple[int, int, int] = (0, 0, 0)
         self.settings = ModelSettings()
         self.map_settings = MapSettings()
+        self._overlay: Layer | None = None
+        self.file_layer: Layer | None = None
+        self.model_map = None  # MapResult of the map's kernel under the current settings
+        self.source_layers: dict[str, Layer | None] = {}
+        self._source_thresholds: dict[str, float] = {}
         self.fits: VoxelFits | None = None
         self.series: np.ndarray | None = None
         self.units = "data"
@@ -241,7 +309,8 @@ class ViewerState(QObject):
 
     @property
     def stat_map(self) -> Layer | None:
-        return None if self.bundle is None else self.bundle.stat_map
+        """The overlay on screen (None without a run)."""
+        return None if self.bundle is None else self._overlay
 
     def map_limit(self) -> float:
         """Colour scale limit in use (settings, else from the map)."""
@@ -269,8 +338,17 @@ class ViewerState(QObject):
             self.contrast_text = ""
         self.contrast_problem = ""
         self.settings = settings
+        # the map file opened with the run; with a model the live model map replaces it
+        # shortly and the file stays one choice away (source "file")
+        self.file_layer = self._overlay = bundle.stat_map
+        self.model_map = None
         if bundle.stat_map is not None:
             self.map_settings = self.map_settings.with_(limit=None)
+            source = self.map_settings.source
+            if bundle.analysis is not None and source in ("model", "difference"):
+                self._overlay = None
+            elif source != "file":
+                self.map_settings = self.map_settings.with_(source="file")
         self.voxel = run.check_voxel(voxel) if voxel is not None else self._centre()
         self.fits = None
         self.extra = []
@@ -281,6 +359,7 @@ class ViewerState(QObject):
         self.run_changed.emit()
         self.runs_changed.emit()
         self.underlay_changed.emit()
+        self.file_layer_changed.emit()
         self.map_changed.emit()
         self.settings_changed.emit(self.settings)
         self.contrast_error.emit("")
@@ -311,10 +390,45 @@ class ViewerState(QObject):
         """Show ``layer`` as the overlay; ``keep_scale`` keeps a fixed colour scale limit."""
         if self.bundle is None:
             return
-        self.bundle.stat_map = layer
+        self._overlay = layer
         if not keep_scale:
             self.map_settings = self.map_settings.with_(limit=None)
         self.map_changed.emit()
+
+    def set_file_layer(self, layer: Layer) -> None:
+        """A map file opened over the run (File > Open map, a drop): it becomes the
+        ``"file"`` source and is shown."""
+        if self.bundle is None:
+            return
+        self.file_layer = layer
+        self.map_settings = self.map_settings.with_(source="file")
+        self.file_layer_changed.emit()
+        self.set_map(layer)
+
+    def set_map_source(self, source: str) -> None:
+        """Show another source (:data:`SOURCES`); each source keeps the threshold it was
+        last shown with (the first time: :data:`FIRST_THRESHOLD`, else the current one)."""
+        ms = self.map_settings
+        if source == ms.source:
+            return
+        if source not in dict(SOURCES):
+            raise ValueError(f"unknown map source {source!r}")
+        self._source_thresholds[ms.source] = ms.threshold
+        thr = self._source_thresholds.get(source, FIRST_THRESHOLD.get(source, ms.threshold))
+        self.set_map_settings(source=source, threshold=float(thr))
+
+    def set_model_map(self, result) -> None:
+        """The model map of the current model settings (a
+        :class:`~voxelscope.core.maps.MapResult`, or None); parts comparing with it
+        (Agreement) listen to ``model_map_changed``."""
+        self.model_map = result
+        self.model_map_changed.emit(result)
+
+    def set_source_layer(self, source: str, layer: Layer | None) -> None:
+        """The overlay a part makes for ``source`` (None: nothing to show yet); the key
+        being present makes the source selectable."""
+        self.source_layers[source] = layer
+        self.source_layer_changed.emit(source)
 
     def set_analysis(self, analysis: Analysis | None, events_path=None, confounds_path=None):
         """New conditions/confounds for the open run (settings back to defaults)."""
@@ -323,6 +437,7 @@ class ViewerState(QObject):
         self.bundle.analysis = analysis
         self.bundle.events_path = events_path
         self.bundle.confounds_path = confounds_path
+        self.model_map = None
         self.settings = START_SETTINGS
         self.contrast_text = ""
         self.contrast_problem = ""
