@@ -319,7 +319,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     width, height = (int(v) for v in args.size.lower().split("x"))
 
     import numpy as np
-    from PySide6.QtCore import QPointF, QSettings, Qt
+    from PySide6.QtCore import QSettings, Qt
     from PySide6.QtTest import QTest
     from PySide6.QtWidgets import QApplication
 
@@ -361,12 +361,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     views = list(w.slices.views.values())
 
     def click(view, voxel) -> float:
-        disp = st.grid.to_display(voxel)
-        f = st.underlay.factor
-        scene = view.under.mapToScene(
-            QPointF((disp[view.h_axis] + 0.5) * f, (disp[view.v_axis] + 0.5) * f)
-        )
-        pos = view.mapFromScene(scene)
+        pos = view.viewport_point(st.grid.to_display(voxel))
         t0 = time.perf_counter()
         QTest.mouseClick(view.viewport(), Qt.MouseButton.LeftButton, pos=pos)
         settle()  # the click's queued work and the repaint of what changed
@@ -397,13 +392,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
         if i % 10 == 0:
             # Is the screen complete after the click's own repaint? Compare the backing store
             # before and after a forced full repaint (not timed).
-            disp = st.grid.to_display(target)
-            f = st.underlay.factor
-            pos = view.mapFromScene(
-                view.under.mapToScene(
-                    QPointF((disp[view.h_axis] + 0.5) * f, (disp[view.v_axis] + 0.5) * f)
-                )
-            )
+            pos = view.viewport_point(st.grid.to_display(target))
             QTest.mouseClick(view.viewport(), Qt.MouseButton.LeftButton, pos=pos)
             settle()
             before = painted()

@@ -240,3 +240,40 @@ def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(
     assert not st.dragging
     assert seen[-1] == n_h - 1 and len(set(seen)) >= n_h - 2
     qtbot.waitUntil(lambda: checks.calls > calls, timeout=5000)  # let go: checked now
+
+
+def test_underlay_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_run, tmp_path):
+    """Issue 17 item 11: a finer anatomy on another grid (x flipped, 1 x 1 x 0.5 mm) is drawn
+    plane by plane at its own resolution; the centre of the anatomy voxel at a run voxel's
+    centre (nibabel.affines.apply_affine) lies under the crosshair (the overlay's grid)."""
+    import nibabel as nib
+
+    shape = (30, 34, 50)
+    aff = np.diag([-1.0, 1.0, 0.5, 1.0])
+    aff[:3, 3] = (12.0, -16.0, -10.0)  # every run voxel centre is an anatomy voxel centre
+    data = np.arange(np.prod(shape), dtype=np.float32).reshape(shape)  # value = flat index
+    anat = tmp_path / "sub-ras_T1w.nii.gz"
+    nib.save(nib.Nifti1Image(data, aff), anat)
+    assert window.open_run(ras_run["run"], anat=str(anat), background=False), window.last_error
+    state = window.state
+    planes = {"axial": (30, 34), "coronal": (30, 50), "sagittal": (34, 50)}
+    for voxel in [(2, 3, 4), (0, 0, 0), (8, 10, 6)]:
+        state.set_voxel(voxel)
+        world = apply_affine(ras_run["affine"], voxel)
+        a_ijk = np.round(apply_affine(np.linalg.inv(aff), world)).astype(int)
+        assert np.allclose(apply_affine(aff, a_ijk), world)
+        flat = float(np.ravel_multi_index(tuple(a_ijk), shape))
+        for name, view in window.slices.views.items():
+            image = view.under.image
+            assert image.shape == planes[name]  # native plane, not the 3 mm run grid
+            hits = np.argwhere(image == flat)
+            assert len(hits) == 1, (name, voxel)
+            p, q = hits[0]
+            centre = view.under.mapToView(QPointF(p + 0.5, q + 0.5))
+            assert centre.x() == pytest.approx(view.vline.value(), abs=1e-6)
+            assert centre.y() == pytest.approx(view.hline.value(), abs=1e-6)
+    # the readout gives the anatomy's own value at the voxel
+    state.set_voxel((2, 3, 4))
+    world = apply_affine(ras_run["affine"], (2, 3, 4))
+    a_ijk = tuple(np.round(apply_affine(np.linalg.inv(aff), world)).astype(int))
+    assert f"<b>Underlay</b> {data[a_ijk]:.5g}" in window.slices.readout.text()

@@ -42,15 +42,35 @@ MAX_UNDERLAY_REFINE = 4
 
 @dataclass(eq=False)
 class Layer:
-    """A 3D image brought onto (a refinement of) the run's grid.
+    """A 3D image to draw in Slices.
 
-    ``data`` has shape ``factor * run.shape`` and covers exactly the run's field of view.
+    Without ``affine``, ``data`` is on (a refinement by ``factor`` of) the run's grid and
+    covers exactly the run's field of view (the mean image, maps). With ``affine``, ``data``
+    is the image on its own grid at its own resolution (an anatomical underlay), drawn with
+    its own transform under the overlay.
     """
 
     path: Path | None
     data: np.ndarray
     factor: int = 1
     levels: tuple[float, float] = (0.0, 1.0)
+    affine: np.ndarray | None = None
+
+    def value_at(self, mm, voxel=None) -> float:
+        """The layer's value at a world position (nearest voxel; NaN off its grid).
+
+        >>> Layer(None, np.arange(8.0).reshape(2, 2, 2), affine=np.eye(4)).value_at((1, 0, 1))
+        5.0
+        """
+        if self.affine is None:
+            f = self.factor
+            i, j, k = (int(v) * f + f // 2 for v in voxel)
+            return float(self.data[i, j, k])
+        p = np.append(np.asarray(mm, dtype=float).reshape(3), 1.0)
+        ijk = np.floor((np.linalg.inv(self.affine) @ p)[:3] + 0.5).astype(int)
+        if np.any(ijk < 0) or np.any(ijk >= np.asarray(self.data.shape)):
+            return float("nan")
+        return float(self.data[tuple(ijk)])
 
 
 @dataclass(eq=False)
@@ -100,31 +120,30 @@ def _levels(data: np.ndarray) -> tuple[float, float]:
 
 
 def load_underlay(path: str | os.PathLike[str] | None, run, warnings: list[str]) -> Layer:
-    """The run's mean image, or an anatomical image resampled onto a refined run grid.
+    """The run's mean image (on the run's grid), or an anatomical image on its own grid.
 
-    The anatomical image is sampled (trilinear, :func:`voxelscope.core.images.resample_to_grid`
-    via ``load_on_grid``) at the centres of a grid up to :data:`MAX_UNDERLAY_REFINE` times
-    finer than the run's, so a 2 mm image over a 4 mm run keeps its detail while sharing the
-    run's field of view and orientation.
+    The anatomical image is kept at its own resolution with its affine; Slices draws each
+    plane of it with its own transform under the overlay (``Layer.affine``), so a 1 mm
+    image over a 3.5 mm run shows its 1 mm detail. Non-finite voxels show as its lowest
+    level.
     """
     if path is None:
         mean = np.array(run.mean_image(), dtype=np.float32)
         return Layer(None, mean, 1, _levels(mean))
     path = Path(path)
-    img = load_image(path)
-    run_mm = min(run.voxel_size)
-    img_mm = float(np.sqrt((img.affine[:3, :3] ** 2).sum(axis=0)).min())
-    factor = int(np.clip(round(run_mm / max(img_mm, 1e-6)), 1, MAX_UNDERLAY_REFINE))
-    shape, affine = fine_grid(run.shape, run.affine, factor)
-    ignored: list[str] = []
-    data = load_on_grid(path, (shape, affine), order=1, warnings=ignored)
+    img = load_image(path, what="underlay")
     inside = grid_overlap(img.shape, img.affine, run.shape, run.affine)
+    if not inside.any():
+        raise InputError(
+            f"{path}: its grid does not overlap the run {run.path} at all; check that both "
+            "are in the same space (affines)"
+        )
     note = coverage_note(path, inside, run.mask(), "the run")
     if note is not None:
         warnings.append(note)
-    levels = _levels(data)
-    data = np.where(np.isfinite(data), data, levels[0]).astype(np.float32)
-    return Layer(path, data, factor, levels)
+    levels = _levels(img.data)
+    data = np.where(np.isfinite(img.data), img.data, levels[0]).astype(np.float32)
+    return Layer(path, data, 1, levels, affine=np.asarray(img.affine, dtype=np.float64))
 
 
 def load_map(path: str | os.PathLike[str], run, warnings: list[str]) -> Layer:

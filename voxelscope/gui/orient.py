@@ -96,6 +96,24 @@ class DisplayGrid:
             out[a] = self.shape[a] - 1 - v if self.flipped[d] else v
         return tuple(out)  # type: ignore[return-value]
 
+    def display_affine(self) -> np.ndarray:
+        """4x4 matrix from display indices to world mm (the affine of the display layout).
+
+        >>> g = DisplayGrid((4, 5, 6), np.diag([-2.0, 3.0, 4.0, 1.0]))
+        >>> g.display_affine() @ [0, 0, 0, 1]  # display voxel 0 is the stored voxel 3 on x
+        array([-6.,  0.,  0.,  1.])
+        """
+        to_storage = np.zeros((4, 4))
+        to_storage[3, 3] = 1.0
+        for d in range(3):
+            a = self.source_axis[d]
+            if self.flipped[d]:
+                to_storage[a, d] = -1.0
+                to_storage[a, 3] = self.shape[a] - 1
+            else:
+                to_storage[a, d] = 1.0
+        return self.affine @ to_storage
+
     def clamp_display(self, dijk: Sequence[int]) -> tuple[int, int, int]:
         """Display indices clipped into the grid."""
         return tuple(  # type: ignore[return-value]

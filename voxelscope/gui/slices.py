@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
-from PySide6.QtGui import QColor, QFont, QPen
+from PySide6.QtGui import QColor, QFont, QPen, QTransform
 from PySide6.QtWidgets import (
     QGraphicsRectItem,
     QGraphicsSimpleTextItem,
@@ -187,6 +187,8 @@ class SliceView(pg.GraphicsView):
         self.box.dragging.connect(state.set_dragging)
         self._under_vol: np.ndarray | None = None
         self._under_factor = 1
+        self._under_affine: np.ndarray | None = None  # display index -> mm, own-grid underlay
+        self._run_from_world = np.eye(4)
         self._map_vol: np.ndarray | None = None
         self._shown_under: int | None = None
         self._shown_map: int | None = None
@@ -272,15 +274,51 @@ class SliceView(pg.GraphicsView):
         grid, layer = self.state.grid, self.state.underlay
         if grid is None or layer is None:
             return
+        if layer.affine is not None:  # on its own grid: reoriented to the display axes
+            from voxelscope.gui.orient import DisplayGrid
+
+            own = DisplayGrid(layer.data.shape, layer.affine)
+            self._under_vol = np.ascontiguousarray(own.display(layer.data))
+            self._under_affine = own.display_affine()
+            self._run_from_world = np.linalg.inv(grid.display_affine())
+            self._under_factor = 1
+            self.under.setImage(
+                self._slice(self._under_vol, 0), autoLevels=False, levels=layer.levels
+            )
+            self._shown_under = None
+            self._update_slices(force=True)
+            return
+        self._under_affine = None
         self._under_vol = np.ascontiguousarray(grid.display(layer.data))
         self._under_factor = int(layer.factor)
         self.under.setImage(self._slice(self._under_vol, 0), autoLevels=False, levels=layer.levels)
         sh, sv = self._sizes
         n_h = grid.display_shape[self.h_axis]
         n_v = grid.display_shape[self.v_axis]
+        self.under.setTransform(QTransform())
         self.under.setRect(QRectF(0, 0, n_h * sh, n_v * sv))
+        self.under.setVisible(True)
         self._shown_under = None
         self._update_slices(force=True)
+
+    def underlay_plane_transform(self, k: int) -> QTransform:
+        """Image pixel -> view coordinates for plane ``k`` of an underlay on its own grid.
+
+        Pixel ``(p, q)`` of the plane covers the underlay display voxel ``(p, q, k)``
+        (centre at ``p + 0.5``); its world position, through the run's display affine,
+        gives the view position (``(d + 0.5) * voxel size`` along each axis, as the
+        overlay and the crosshair). Three points fix the affine map.
+        """
+        sh, sv = self._sizes
+        pts = []
+        for p, q in ((0.0, 0.0), (1.0, 0.0), (0.0, 1.0)):
+            idx = np.zeros(4)
+            idx[self.h_axis], idx[self.v_axis], idx[self.n_axis] = p - 0.5, q - 0.5, k
+            idx[3] = 1.0
+            d = self._run_from_world @ (self._under_affine @ idx)
+            pts.append(((d[self.h_axis] + 0.5) * sh, (d[self.v_axis] + 0.5) * sv))
+        (x0, y0), (x1, y1), (x2, y2) = pts
+        return QTransform(x1 - x0, y1 - y0, x2 - x0, y2 - y0, x0, y0)
 
     def _on_map(self) -> None:
         grid, layer = self.state.grid, self.state.stat_map
@@ -312,7 +350,19 @@ class SliceView(pg.GraphicsView):
             return
         d = grid.to_display(self.state.voxel)
         k = d[self.n_axis]
-        if self._under_vol is not None and (force or self._shown_under != k):
+        if self._under_vol is not None and self._under_affine is not None:
+            # the underlay's own plane nearest to the current voxel's centre
+            world = grid.display_affine() @ np.array([*d, 1.0], dtype=float)
+            u = np.linalg.inv(self._under_affine) @ world
+            ku = int(np.floor(u[self.n_axis] + 0.5))
+            if force or self._shown_under != ku:
+                inside = 0 <= ku < self._under_vol.shape[self.n_axis]
+                if inside:
+                    self.under.setImage(self._slice(self._under_vol, ku), autoLevels=False)
+                    self.under.setTransform(self.underlay_plane_transform(ku))
+                self.under.setVisible(inside)
+                self._shown_under = ku
+        elif self._under_vol is not None and (force or self._shown_under != k):
             f = self._under_factor
             fine = min(k * f + f // 2, self._under_vol.shape[self.n_axis] - 1)
             self.under.setImage(self._slice(self._under_vol, fine), autoLevels=False)
@@ -563,9 +613,8 @@ class SlicesPanel(QWidget):
         ]
         under = self.state.underlay
         if under is not None and under.path is not None:
-            f = under.factor
-            fi, fj, fk = (v * f + f // 2 for v in voxel)
-            parts.append(f"<b>Underlay</b> {float(under.data[fi, fj, fk]):.5g}")
+            v = under.value_at((x, y, z), voxel)
+            parts.append(f"<b>Underlay</b> {v:.5g}" if np.isfinite(v) else "<b>Underlay</b> –")
         layer = self.state.stat_map
         if layer is not None:
             v = float(layer.data[i, j, k])
