@@ -899,6 +899,95 @@ def _gap_rss(R: np.ndarray, rho: np.ndarray, steps: np.ndarray) -> np.ndarray:
     return out
 
 
+def working_copy(
+    prep: PreparedDesign, Y: np.ndarray, order: str = "C"
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
+    """The float64 working copy of the kept volumes ``Y`` (n, V) that every fit uses.
+
+    Returns ``(Y, mean, tss, bad)``: the copy (centred when the design has a constant;
+    columns with a non-finite sample set to 0), the column means, the column sums of
+    squares of the copy, and the columns with a non-finite sample (None when there are
+    none).
+
+    >>> prep = prepare(np.ones((3, 1)))
+    >>> Yc, mean, tss, bad = working_copy(prep, np.array([[1.0], [2.0], [3.0]]))
+    >>> Yc[:, 0].tolist(), mean.tolist(), tss.tolist(), bad
+    ([-1.0, 0.0, 1.0], [2.0], [2.0], None)
+    """
+    Y = np.array(Y, dtype=np.float64, order=order, copy=True)
+    if Y.ndim == 1:
+        Y = Y[:, None]
+    n = Y.shape[0]
+    total = Y.sum(axis=0)
+    bad = None
+    if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
+        bad = ~np.isfinite(total)
+        Y[:, bad] = 0.0
+        total[bad] = 0.0
+    mean = total / n
+    if prep.constant_index is not None:
+        Y -= mean
+    # total sum of squares: centred when the design has a constant, else uncentred
+    tss = np.einsum("ij,ij->j", Y, Y)
+    return Y, mean, tss, bad
+
+
+def arp_block_sums(prep: PreparedDesign, data: np.ndarray, lags: int | None = None):
+    """The one-pass sums (:class:`voxelscope.core.noise.ArpSums`) of a block ``data``
+    (n_all, V) of any layout: what a map keeps of every voxel under ``noise="arp"``."""
+    from .noise import arp_sums
+
+    data = np.asarray(data)
+    if data.ndim == 1:
+        data = data[:, None]
+    if data.shape[0] != prep.n_all:
+        raise InputError(
+            f"the data have {data.shape[0]} time points but the design has {prep.n_all} rows"
+        )
+    if prep.keep is not None:
+        data = data[prep.keep]
+    Y, mean, tss, bad = working_copy(prep, data)
+    return arp_sums(prep, Y, mean, tss, bad, lags)
+
+
+def fit_sums(
+    design,
+    sums,
+    contrast: Sequence[float] | np.ndarray,
+    ar: np.ndarray,
+    want_p: bool = True,
+    series=None,
+) -> FitResult:
+    """:func:`fit` under ``noise="arp"`` from one-pass sums (:func:`arp_block_sums`)
+    instead of the data: what a map does once it knows every voxel's AR coefficients.
+
+    ``series(idx)`` returns the working copy (:func:`working_copy`) of some of the voxels;
+    it is called only for near-exact fits (see :data:`RSS_GUARD`). Fitted values and
+    residuals are not kept; ``r2`` is NaN.
+    """
+    from .noise import arp_solve
+
+    prep = _as_prepared(design)
+    c = np.asarray(contrast, dtype=float).reshape(-1)
+    if c.size != prep.X.shape[1]:
+        raise InputError(
+            f"the contrast has {c.size} weights but the design has {prep.X.shape[1]} columns"
+        )
+    ar = np.asarray(ar, dtype=np.float64)
+    if ar.ndim == 1:
+        ar = ar[:, None]
+    v = sums.n_voxels
+    if ar.shape[1] != v or not np.all(np.isfinite(ar)):
+        raise InputError(f"ar has {ar.shape[1]} columns for {v} voxels (or non-finite values)")
+    with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
+        B, cov, cvar, rss_w, _C = arp_solve(prep, sums, ar, c, want_cov=v <= 64, series=series)
+        bad = sums.bad if sums.bad.any() else None
+        return _finish(
+            prep, c, "arp", B, cov, cvar, np.full(v, np.nan), rss_w, sums.mean, sums.tss,
+            bad, None, False, want_p, None, None, np.arange(v), None, ar,
+        )  # fmt: skip
+
+
 def _fit_checked(
     prep: PreparedDesign,
     Y: np.ndarray,
@@ -910,51 +999,34 @@ def _fit_checked(
     ar: np.ndarray | None = None,
 ) -> FitResult:
     X = prep.X
-    n = X.shape[0]
     v = Y.shape[1]
     # One float64 working copy. OLS keeps Y's own layout (order "K"): a block of voxel-major
     # rows arrives as an F-ordered view and a block of volumes C-ordered, and neither is
     # transposed. AR(1) and AR(p) work in C order: rho is a ratio of sums over time whose rounding
     # depends on the layout, and t is sensitive to rho near 1, so a C-order copy keeps
     # AR(1) results the same to the last digit whichever store the data come from.
-    Y = np.array(Y, dtype=np.float64, order="K" if noise == "ols" else "C", copy=True)
-    total = Y.sum(axis=0)
-    bad = None
-    if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
-        bad = ~np.isfinite(total)
-        Y[:, bad] = 0.0
-        total[bad] = 0.0
-    mean = total / n
-    centred = prep.constant_index is not None
-    if centred:
-        Y -= mean
-    # total sum of squares: centred when the design has a constant, else uncentred
-    tss = np.einsum("ij,ij->j", Y, Y)
+    Y, mean, tss, bad = working_copy(prep, Y, order="K" if noise == "ols" else "C")
+    n = Y.shape[0]
     # constant voxels: what is left after centring is only the rounding of the mean
     flat = None if noise == "ols" else tss <= 1e-20 * mean * mean * n
 
     Rw = None
     if noise == "arp":
-        from .noise import gls_solve, whiten
+        from .noise import AR_ORDER, BIAS_LAGS, arp_solve, arp_sums, whiten
 
-        B, cov, cvar, filt, ywwy, gb = gls_solve(X, Y, ar, c, want_cov=keep_series or v <= 64)
+        sums = arp_sums(prep, Y, mean, tss, bad, max(ar.shape[0], AR_ORDER, BIAS_LAGS))
+        B, cov, cvar, rss_w, filt = arp_solve(
+            prep, sums, ar, c, want_cov=keep_series or v <= 64, series=lambda i: Y[:, i]
+        )
         if keep_series:  # residuals are shown: all explicit
             R = np.matmul(X, B)
             np.subtract(Y, R, out=R)
             rss = np.einsum("ij,ij->j", R, R)
             Rw = whiten(filt, R)
             rss_w = np.einsum("ij,ij->j", Rw, Rw)
-        else:
-            # maps: the whitened residual sum of squares y*'y* - b'X*'y*, with explicit
-            # residuals below the guard (near-exact fits), as for OLS; R^2 is not kept
+        else:  # maps: R^2 is not kept
             R = None
             rss = np.full(v, np.nan)
-            rss_w = ywwy - gb
-            close = np.flatnonzero(~(rss_w > RSS_GUARD * ywwy))
-            if close.size:
-                Rc = Y[:, close] - X @ B[:, close]
-                Rwc = whiten(filt[close], Rc)
-                rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
         if cov is None:
             cov = np.zeros((0, X.shape[1], X.shape[1]))
         group = np.arange(v)
@@ -965,8 +1037,8 @@ def _fit_checked(
         R = np.empty_like(Y)  # in place: R = Y - X B
         np.matmul(X, B, out=R)
         np.subtract(Y, R, out=R)
-    df = prep.df
     rho = None
+    cvar = cvar if noise == "arp" else None
     if noise != "arp":
         rss_w = rss
     if noise == "ar1":
@@ -996,7 +1068,41 @@ def _fit_checked(
         group = np.zeros(v, dtype=np.int64)
         cov = prep.cov_unscaled[None]
         cvar = _contrast_variance(prep, c)
+    return _finish(
+        prep, c, noise, B, cov, cvar, rss, rss_w, mean, tss, bad, flat, keep_series, want_p,
+        R, Rw, group, rho, ar,
+    )  # fmt: skip
 
+
+def _finish(
+    prep: PreparedDesign,
+    c: np.ndarray,
+    noise: str,
+    B: np.ndarray,
+    cov: np.ndarray,
+    cvar,
+    rss: np.ndarray,
+    rss_w: np.ndarray,
+    mean: np.ndarray,
+    tss: np.ndarray,
+    bad: np.ndarray | None,
+    flat: np.ndarray | None,
+    keep_series: bool,
+    want_p: bool,
+    R: np.ndarray | None,
+    Rw: np.ndarray | None,
+    group: np.ndarray,
+    rho: np.ndarray | None,
+    ar: np.ndarray | None,
+) -> FitResult:
+    """Variance, t, p and the degenerate voxels of a fit; the mean back into the constant."""
+    X = prep.X
+    n = X.shape[0]
+    v = B.shape[1]
+    centred = prep.constant_index is not None
+    df = prep.df
+    if cov is None:
+        cov = np.zeros((0, X.shape[1], X.shape[1]))
     sigma2 = rss_w / df if df > 0 else np.full(v, np.nan)
     # No residual variance at all: constant voxels or an exact fit, relative to the size of
     # the data (its mean and its spread).

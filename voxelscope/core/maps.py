@@ -342,6 +342,22 @@ def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -
                 fut.cancel()
 
 
+def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
+    """The fit's working copy (:func:`voxelscope.core.glm.working_copy`) of some voxels,
+    read again from the run: near-exact fits of a one-pass AR(p) map need their residuals
+    explicitly."""
+    from .glm import working_copy
+
+    if hasattr(run, "timeseries_many"):
+        rows = np.asarray(run.timeseries_many(flat_idx), dtype=np.float32)
+    else:
+        rows = np.asarray(run.data.reshape(-1, run.n_volumes)[flat_idx], dtype=np.float32)
+    data = rows.T
+    if getattr(prep, "keep", None) is not None:
+        data = data[prep.keep]
+    return working_copy(prep, data)[0]
+
+
 def compute_map(
     run: Any,
     analysis: Analysis,
@@ -440,9 +456,8 @@ def compute_map(
     need_p = "p" in want and tail == "two"
     noise = settings.noise
     arp = noise == "arp"
-    phi_flat = None
     ar_map = None
-    share = 0.5 if arp else 0.0  # of the progress bar spent on the AR pass
+    share = 0.85 if arp else 0.0  # of the progress bar spent on the pass over the data
 
     def report(fraction: float) -> None:
         if progress is not None and progress(fraction) is False:
@@ -454,55 +469,80 @@ def compute_map(
         # a run with only the row interface: (n, T) rows, transposed (a view)
         return ((i, d.T) for i, d in run.iter_chunks(mask, chunk_voxels=int(chunk_voxels)))
 
-    if arp:
-        # Pass 1: bias-corrected autocorrelations of the OLS residuals, smoothed in the mask
-        from .noise import AR_ORDER, BIAS_LAGS, ar_from_smoothed, ols_autocorr_block, smooth_map
-
-        order = AR_ORDER
-        n_lags = max(order, BIAS_LAGS) + 1
-        rho_flat = np.zeros((n_all, n_lags))  # autocovariances v_0..v_L per voxel
-        ok_flat = np.zeros(n_all, dtype=bool)
-        seen = 0
-
-        def store_rho(idx: np.ndarray, out) -> None:
-            nonlocal seen
-            rho_flat[idx] = out[0].T
-            ok_flat[idx] = out[1]
-            seen += idx.size
-            report(share * seen / total if total else share)
-
-        with _one_blas_thread():
-            _for_blocks(
-                chunks(), lambda d: ols_autocorr_block(_prep, d, order), store_rho, n_workers
-            )
-        sm = smooth_map(rho_flat.reshape((*shape, n_lags)), ok_flat.reshape(shape) & mask, run)
-        inside = np.flatnonzero(mask.reshape(-1))
-        phi_flat = np.zeros((order, n_all))
-        phi_flat[:, inside] = ar_from_smoothed(sm.reshape(-1, n_lags)[inside].T, order, _prep)[0]
-        ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
-
-    def fit_chunk(idx: np.ndarray, data: np.ndarray):
-        # what Analysis.fit_voxel does for one voxel, with p only when a map needs it
-        ar = None if phi_flat is None else phi_flat[:, idx]
-        return fit(
-            _prep,
-            data,
-            weights,
-            noise=noise,
-            rho_step=step,
-            keep_series=False,
-            want_p=need_p,
-            ar=ar,
-        )
-
     def store(idx: np.ndarray, res) -> None:
         nonlocal done
         _scatter(res, idx, flat, want, fitted, degenerate, rho, tail)
         done += idx.size
         report(share + (1.0 - share) * (done / total if total else 1.0))
 
-    with _one_blas_thread():
-        _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
+    if arp:
+        # One pass over the data keeps a few sums per voxel (voxelscope.core.noise, "one
+        # pass"): the bias-corrected autocovariances of the OLS residuals, smoothed in the
+        # mask, give every voxel's AR(p) coefficients, and the same sums give its GLS.
+        from .glm import arp_block_sums, fit_sums
+        from .noise import AR_ORDER, BIAS_LAGS, ar_from_smoothed, smooth_map
+
+        order = AR_ORDER
+        n_lags = max(order, BIAS_LAGS)
+        inside = np.flatnonzero(mask.reshape(-1))
+        values = np.zeros((n_all, n_lags + 1))
+        valid = np.zeros(n_all, dtype=bool)
+        kept: list = []  # (voxel indices, their sums), block by block
+        seen = 0
+
+        def store_sums(idx: np.ndarray, out) -> None:
+            nonlocal seen
+            kept.append((idx, out))
+            values[idx] = out.v.T
+            valid[idx] = out.ok
+            seen += idx.size
+            report(share * seen / total if total else share)
+
+        with _one_blas_thread():
+            _for_blocks(
+                chunks(), lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
+            )
+        sm = smooth_map(values.reshape((*shape, n_lags + 1)), valid.reshape(shape) & mask, run)
+        del values
+        phi_in = ar_from_smoothed(sm.reshape(-1, n_lags + 1)[inside].T, order, _prep)[0]
+        del sm
+        phi_flat = np.zeros((order, n_all))
+        phi_flat[:, inside] = phi_in
+        del phi_in
+        ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
+
+        def pieces():
+            while kept:
+                yield kept.pop(0)  # each block's sums are freed once fitted
+
+        def fit_piece(idx: np.ndarray, sums):
+            return fit_sums(
+                _prep,
+                sums,
+                weights,
+                phi_flat[:, idx],
+                want_p=need_p,
+                series=lambda i: _working_series(run, _prep, idx[i]),
+            )
+
+        with _one_blas_thread():
+            _for_blocks(pieces(), fit_piece, store, n_workers, with_index=True)
+    else:
+
+        def fit_chunk(idx: np.ndarray, data: np.ndarray):
+            # what Analysis.fit_voxel does for one voxel, with p only when a map needs it
+            return fit(
+                _prep,
+                data,
+                weights,
+                noise=noise,
+                rho_step=step,
+                keep_series=False,
+                want_p=need_p,
+            )
+
+        with _one_blas_thread():
+            _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
     if total == 0 and progress is not None:
         progress(1.0)
 

@@ -368,6 +368,288 @@ def _cholesky_solve(L: np.ndarray, b: np.ndarray) -> np.ndarray:
     return x
 
 
+# ----------------------------------------------------------------------------- one pass
+#
+# The whole AR(p) fit of a voxel needs only a few sums over its time series, so a map reads
+# the data once: with ``Xs`` the design scaled to unit-norm columns and ``L_d`` the lag-d
+# shift (``(L_d y)_t = y_{t-d}``, ``L_{-d} = L_d'``),
+#
+# * ``H_d = Xs' S_d y`` for ``d = 0..P``, ``S_0 = I``, ``S_d = L_d + L_d'`` (one product of
+#   the stacked, symmetrically lagged design with the data: only these sums enter),
+# * ``y' L_d y`` for ``d = 0..P`` (the data's own autocovariances), and
+# * the first and last ``P`` samples,
+#
+# give (1) the OLS residual autocovariances of step 2 above, ``r' L_j r = y'L_j y -
+# u'Q'S_j y + u' Q'L_j Q u`` (``j > 0``) with ``u = Q'y`` and ``Q`` an orthonormal basis
+# of the design, and (2) the GLS normal equations of step 6 for any AR(p) coefficients:
+# ``W'W`` is the band Toeplitz matrix of ``g_d = sum_k c_k c_{k+d}`` (``c`` the steady row of
+# the whitening filter) plus a correction in its first and last ``p`` rows and columns, so
+# ``X*'y* = sum_d g_d H_d + (boundary)``, ``X*'X*`` likewise from the design's own lagged
+# products and ``y*'y* = g_0 y'y + 2 sum_d g_d y'L_d y + (boundary)``. Every identity is
+# exact; the two residual sums of squares are differences (``y'y - u'u`` and ``y*'y* -
+# b'X*'y*``) on centred float64 data, exact to about ``eps / (1 - R^2)`` relative, and the
+# voxels below :data:`voxelscope.core.glm.RSS_GUARD` get explicit residuals instead (as for
+# OLS).
+
+
+@dataclass
+class ArpSums:
+    """Per-voxel sums of one pass over the data (every array has the voxels last).
+
+    Attributes
+    ----------
+    mean, tss : ndarray (V,)
+        Mean of the kept volumes and the sum of squares of the working copy (centred when
+        the design has a constant).
+    bad : ndarray of bool (V,)
+        Voxels with a non-finite sample (their working copy is all zeros).
+    H : ndarray (P + 1, q, V)
+        ``Xs' S_d y`` for ``d = 0..P`` (``S_0 = I``, ``S_d = L_d + L_d'``), with ``Xs`` the
+        design scaled to unit-norm columns.
+    acy : ndarray (P + 1, V)
+        ``y' L_d y`` for ``d = 0..P``.
+    head, tail : ndarray (P, V)
+        The first and last ``P`` samples of the working copy.
+    v : ndarray (L + 1, V)
+        Bias-corrected autocovariances of the OLS residuals (0 where not ``ok``).
+    ok : ndarray of bool (V,)
+        Voxels whose autocovariances are usable (not constant, finite, ``v_0 > 0``).
+    """
+
+    mean: np.ndarray
+    tss: np.ndarray
+    bad: np.ndarray
+    H: np.ndarray
+    acy: np.ndarray
+    head: np.ndarray
+    tail: np.ndarray
+    v: np.ndarray
+    ok: np.ndarray
+
+    @property
+    def lags(self) -> int:
+        return int(self.acy.shape[0] - 1)
+
+    @property
+    def n_voxels(self) -> int:
+        return int(self.mean.shape[0])
+
+    def take(self, sel: Any) -> ArpSums:
+        """The sums of some voxels (an index, slice or boolean mask over the last axis)."""
+        return ArpSums(*(getattr(self, f)[..., sel] for f in _SUM_FIELDS))
+
+    @classmethod
+    def empty(cls, n_voxels: int, q: int, lags: int, bias_lags: int) -> ArpSums:
+        """Zeroed sums for ``n_voxels`` (filled block by block with :meth:`put`)."""
+        P = lags
+        return cls(
+            np.zeros(n_voxels),
+            np.zeros(n_voxels),
+            np.zeros(n_voxels, dtype=bool),
+            np.zeros((P + 1, q, n_voxels)),
+            np.zeros((P + 1, n_voxels)),
+            np.zeros((P, n_voxels)),
+            np.zeros((P, n_voxels)),
+            np.zeros((bias_lags + 1, n_voxels)),
+            np.zeros(n_voxels, dtype=bool),
+        )
+
+    def put(self, pos: np.ndarray, other: ArpSums) -> None:
+        """Store ``other``'s voxels at positions ``pos``."""
+        pos = np.asarray(pos)
+        if pos.size and pos[-1] - pos[0] == pos.size - 1 and np.all(np.diff(pos) == 1):
+            pos = slice(int(pos[0]), int(pos[-1]) + 1)  # a run of positions: no scatter
+        for f in _SUM_FIELDS:
+            getattr(self, f)[..., pos] = getattr(other, f)
+
+
+_SUM_FIELDS = ("mean", "tss", "bad", "H", "acy", "head", "tail", "v", "ok")
+
+
+def _coldot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Column-wise dot products of two (k, V) arrays."""
+    return np.einsum("iv,iv->v", a, b)
+
+
+def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
+    """Design-only pieces of the one-pass sums, memoised on the prepared design."""
+    key = ("_ar_lags", lags)
+    got = prep.memo.get(key)
+    if got is not None:
+        return got
+    X = np.asarray(prep.X, dtype=np.float64)
+    norms = np.linalg.norm(X, axis=0)
+    Xs = X / norms
+    q, _r = np.linalg.qr(X)
+    r_inv = np.linalg.solve(_r, np.eye(_r.shape[0]))
+    P = lags
+    # row block d of the stack is (S_d Xs)': its product with y is Xs' S_d y
+    stack = np.concatenate([_sym(Xs, d).T for d in range(P + 1)], axis=0)
+    K = np.stack([Xs.T @ _sym(Xs, d) for d in range(P + 1)])  # Xs' S_d Xs
+    QLQ = np.stack([q.T @ _lag(q, j) for j in range(P + 1)])  # Q' L_j Q
+    got = {
+        "norms": norms,
+        "Xs": Xs,
+        "stack": np.ascontiguousarray(stack),
+        "K": K,
+        "QT": r_inv.T * norms[None, :],  # Q' S_d y = QT @ H_d
+        "QLQ": QLQ,
+    }
+    prep.memo[key] = got
+    return got
+
+
+def arp_sums(
+    prep: Any,
+    Y: np.ndarray,
+    mean: np.ndarray,
+    tss: np.ndarray,
+    bad: np.ndarray | None,
+    lags: int | None = None,
+) -> ArpSums:
+    """The one-pass sums of a working copy ``Y`` (kept volumes, float64, centred when the
+    design has a constant; see :func:`voxelscope.core.glm.working_copy`).
+
+    Also computes the bias-corrected OLS residual autocovariances (``v``, ``ok``) of step
+    3, from the sums (explicit residuals below the guard).
+    """
+    from .glm import RSS_GUARD
+
+    P = max(AR_ORDER, BIAS_LAGS) if lags is None else int(lags)
+    n, V = Y.shape
+    if n <= 2 * P:
+        raise InputError(f"{n} volumes are too few for an AR({P}) noise model")
+    D = _design_lags(prep, P)
+    q = D["Xs"].shape[1]
+    H = (D["stack"] @ Y).reshape(P + 1, q, V)
+    acy = np.empty((P + 1, V))
+    acy[0] = tss
+    for d in range(1, P + 1):
+        acy[d] = np.einsum("ij,ij->j", Y[d:], Y[: n - d])
+    head = np.array(Y[:P])
+    tail = np.array(Y[n - P :])
+    bad = np.zeros(V, dtype=bool) if bad is None else np.asarray(bad, dtype=bool)
+    # step 2: residual autocovariances r' L_j r from the sums
+    L = max(P, BIAS_LAGS)
+    QT = D["QT"]
+    u = QT @ H[0]  # Q'y
+    a = np.empty((L + 1, V))
+    for j in range(L + 1):
+        both = QT @ H[j] if j else 2.0 * u  # Q'L_j y + Q'L_j' y
+        a[j] = acy[j] - _coldot(u, both) + _coldot(u, D["QLQ"][j] @ u)
+    close = np.flatnonzero(~(a[0] > RSS_GUARD * tss))
+    if close.size:  # near-exact fits and constant voxels: explicit residuals
+        Yc = Y[:, close]
+        Rc = Yc - prep.X @ (prep.pinv @ Yc)
+        a[:, close] = residual_autocov(Rc, L)
+    M = design_bias_matrix(prep, L)
+    v = np.linalg.solve(M, a)
+    ok = ~bad & np.isfinite(v).all(axis=0) & (v[0] > 0)
+    ok &= a[0] > 1e-20 * np.maximum(tss, 1e-300)
+    if not POOL_VARIANCE:
+        v = v / np.where(ok, v[0], 1.0)
+    v[:, ~ok] = 0.0
+    return ArpSums(np.asarray(mean, dtype=np.float64), tss, bad, H, acy, head, tail, v, ok)
+
+
+def _boundary(C: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``W'W`` minus its band Toeplitz part in the first and last ``p`` rows and columns:
+    (V, p, p) each. ``C`` (V, p+1, p+1) are the filters, ``g`` (p+1, V) the Toeplitz
+    values."""
+    V, p1, _ = C.shape
+    p = p1 - 1
+    m = 2 * p
+    W = np.zeros((V, m, m))
+    for t in range(m):
+        row = C[:, min(t, p), :]
+        for k in range(min(t, p) + 1):
+            W[:, t, t - k] = row[:, k]
+    top = np.einsum("vts,vtu->vsu", W, W)[:, :p, :p]
+    for s in range(p):
+        for u in range(p):
+            top[:, s, u] -= g[abs(s - u)]
+    bot = np.zeros((V, p, p))
+    c = C[:, p, :]
+    for a in range(p):
+        for b in range(p):
+            for k in range(min(a, b) + 1):
+                bot[:, a, b] -= c[:, p - a + k] * c[:, p - b + k]
+    return top, bot
+
+
+def arp_solve(
+    prep: Any,
+    s: ArpSums,
+    phi: np.ndarray,
+    c: np.ndarray,
+    want_cov: bool = True,
+    series: Any = None,
+) -> tuple[np.ndarray, np.ndarray | None, np.ndarray, np.ndarray, np.ndarray]:
+    """GLS of every voxel of the sums under its own AR(p) whitening ``phi`` (p, V).
+
+    ``series(idx)`` returns the working copy of some voxels (T, k): it is called only for
+    voxels whose whitened residual sum of squares falls below the guard (near-exact fits),
+    which then get explicit whitened residuals.
+
+    Returns
+    -------
+    B : (q, V) betas of the working copy; cov : (V, q, q) ``(X*'X*)^-1`` (None unless
+    ``want_cov``); cvar : (V,) ``c' (X*'X*)^-1 c``; rss_w : (V,) the whitened residual sum
+    of squares; C : (V, p+1, p+1) the whitening filters.
+    """
+    from .glm import RSS_GUARD
+
+    phi = np.asarray(phi, dtype=np.float64)
+    if phi.ndim == 1:
+        phi = phi[:, None]
+    p = phi.shape[0]
+    P = s.lags
+    if p > P:
+        raise InputError(f"the sums have {P} lags, too few for AR({p}) whitening")
+    D = _design_lags(prep, P)
+    norms, Xs, K = D["norms"], D["Xs"], D["K"]
+    n = Xs.shape[0]
+    C = whitening_filter(phi)
+    cp = C[:, p, :]
+    g = np.stack([np.einsum("vk,vk->v", cp[:, : p + 1 - d], cp[:, d:]) for d in range(p + 1)])
+    Ksym, Hsym = K[: p + 1], s.H[: p + 1]
+    q = Xs.shape[1]
+    V = g.shape[1]
+    G = (g.T @ Ksym.reshape(p + 1, q * q)).reshape(V, q, q)
+    gv = g[0] * Hsym[0]
+    yy = g[0] * s.acy[0]
+    for d in range(1, p + 1):
+        gv += g[d] * Hsym[d]
+        yy += 2.0 * g[d] * s.acy[d]
+    top, bot = _boundary(C, g)
+    for rows, E, h in ((Xs[:p], top, s.head[:p]), (Xs[n - p :], bot, s.tail[P - p :])):
+        outer = np.einsum("ti,sj->tsij", rows, rows).reshape(p * p, q * q)
+        G += (E.reshape(V, p * p) @ outer).reshape(V, q, q)
+        Eh = np.stack([sum(E[:, t, u] * h[u] for u in range(p)) for t in range(p)])  # (p, V)
+        gv += rows.T @ Eh
+        yy += _coldot(h, Eh)
+    cs = c / norms
+    if want_cov:
+        Ginv = np.linalg.inv(G)
+        Bs = np.einsum("vij,jv->iv", Ginv, gv)
+        cov = Ginv / np.outer(norms, norms)
+        cvar = np.einsum("i,vij,j->v", c, cov, c)
+    else:  # maps: a batched Cholesky solve instead of a full inverse per voxel
+        Lc = _batched_cholesky(G)
+        Bs = _cholesky_solve(Lc, gv.T).T
+        w = _forward(Lc, np.broadcast_to(cs, gv.T.shape))
+        cvar = np.einsum("vi,vi->v", w, w)  # c' G^-1 c = |L^-1 c|^2
+        cov = None
+    rss_w = yy - _coldot(gv, Bs)
+    B = Bs / norms[:, None]
+    close = np.flatnonzero(~(rss_w > RSS_GUARD * yy))
+    if close.size and series is not None:
+        Rc = series(close) - prep.X @ B[:, close]
+        Rwc = whiten(C[close], Rc)
+        rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
+    return B, cov, cvar, rss_w, C
+
+
 # ----------------------------------------------------------------------------- space
 
 
@@ -476,30 +758,23 @@ def smooth_map(rho: np.ndarray, valid: np.ndarray, run: Any, fwhm_mm: float | No
 
 
 def _ols_autocorr(prep: Any, Y: np.ndarray, M: np.ndarray, lags: int):
-    """Bias-corrected autocovariances ``v_0..v_lags`` (lags + 1, V) of the OLS residuals
-    and their validity (V,). Invalid voxels (constant, non-finite, ``v_0 <= 0``) are 0.
+    """Bias-corrected autocovariances ``v_0..v_L`` (L + 1, V) of the OLS residuals and
+    their validity (V,), from the same one-pass sums as a map (:func:`arp_sums`), so a
+    clicked voxel's neighbourhood gives exactly the map's values. Invalid voxels
+    (constant, non-finite, ``v_0 <= 0``) are 0; ``L = M.shape[0] - 1``.
 
-    With :data:`POOL_VARIANCE` False the values are ``1, rho_1..rho_lags`` instead (each
+    With :data:`POOL_VARIANCE` False the values are ``1, rho_1..rho_L`` instead (each
     voxel normalised by its own ``v_0``)."""
-    Y = np.array(Y, dtype=np.float64, order="C", copy=True)
+    from .glm import working_copy
+
+    Y = np.asarray(Y)
     if Y.ndim == 1:
         Y = Y[:, None]
     keep = getattr(prep, "keep", None)
     if keep is not None and Y.shape[0] != prep.X.shape[0]:
         Y = Y[keep]  # left-out volumes leave the estimate too
-    finite = np.isfinite(Y).all(axis=0)
-    Y[:, ~finite] = 0.0
-    Y -= Y.mean(axis=0)
-    R = Y - prep.X @ (prep.pinv @ Y)
-    a = residual_autocov(R, M.shape[0] - 1)
-    v = np.linalg.solve(M, a)
-    tss = np.einsum("ij,ij->j", Y, Y)
-    ok = finite & np.isfinite(v).all(axis=0) & (v[0] > 0)
-    ok &= a[0] > 1e-20 * np.maximum(tss, 1e-300)
-    if not POOL_VARIANCE:
-        v = v / np.where(ok, v[0], 1.0)
-    v[:, ~ok] = 0.0
-    return v, ok
+    s = arp_sums(prep, *working_copy(prep, Y), lags=max(lags, M.shape[0] - 1))
+    return s.v[: M.shape[0]], s.ok
 
 
 def _ratio(v: np.ndarray) -> np.ndarray:
