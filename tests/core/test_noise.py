@@ -114,6 +114,104 @@ def test_whitening_is_the_inverse_cholesky_of_the_ar_covariance(phi):
         np.testing.assert_allclose(W, glm.prais_winsten(np.eye(n), float(phi[0])), atol=1e-14)
 
 
+def _one_pass_case(n_vox=80, seed=5):
+    """A real design (conditions, cosine drift, constant) and AR(2) series around 1000."""
+    a = _analysis()
+    d = a.design(KERNEL, ModelSettings())
+    rng = np.random.default_rng(seed)
+    e = rng.standard_normal((T + 50, n_vox))
+    x = np.zeros_like(e)
+    for t in range(e.shape[0]):
+        x[t] = e[t] + (0.5 * x[t - 1] if t >= 1 else 0) + (0.2 * x[t - 2] if t >= 2 else 0)
+    Y = 1000 + 3 * x[50:] + d.X[:, :1] * rng.normal(0, 2, n_vox)
+    return a, d, Y
+
+
+def test_one_pass_residual_autocovariances_equal_explicit_ones():
+    """The sums of one pass give the OLS residual autocovariances sum_t r_t r_{t-j}: equal
+    to statsmodels' acovf (not demeaned, not adjusted, times n) of the residuals of
+    statsmodels OLS."""
+    sm = pytest.importorskip("statsmodels.api")
+    from statsmodels.tsa.stattools import acovf
+
+    from voxelscope.core.noise import design_bias_matrix
+
+    _a, d, Y = _one_pass_case()
+    prep = glm.prepare(d.X)
+    s = glm.arp_block_sums(prep, Y.astype(np.float32))
+    M = design_bias_matrix(prep, s.lags)
+    for v in (0, 7, 41):
+        y = Y[:, v].astype(np.float32).astype(np.float64)
+        r = sm.OLS(y, d.X).fit().resid
+        ref = acovf(r, adjusted=False, demean=False, fft=False, nlag=s.lags)[: s.lags + 1] * T
+        np.testing.assert_allclose(M @ s.v[:, v], ref, rtol=1e-9, atol=1e-9 * ref[0])
+
+
+@pytest.mark.parametrize("order", [1, 2, 3])
+def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order):
+    """fit_sums (the map's path: batched Cholesky over > 64 voxels, no data) and fit
+    (with the data) both equal statsmodels GLS with sigma = the Toeplitz AR(p) correlation
+    (arma_acf) of each voxel's own coefficients, at every sampled voxel."""
+    sm = pytest.importorskip("statsmodels.api")
+    a, d, Y = _one_pass_case(n_vox=100, seed=order)
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    rng = np.random.default_rng(order)
+    rho = np.vstack([rng.uniform(-0.2, 0.8, 100), rng.uniform(-0.2, 0.3, 100),
+                     rng.uniform(-0.1, 0.1, 100)])[:order]  # fmt: skip
+    phi = ar_from_autocorr(rho, order)
+    prep = glm.prepare(d.X)
+    from voxelscope.core.noise import AR_ORDER, BIAS_LAGS
+
+    s = glm.arp_block_sums(prep, Y, max(order, AR_ORDER, BIAS_LAGS))
+    many = glm.fit_sums(prep, s, w, phi)
+    direct = glm.fit(prep, Y, w, noise="arp", ar=phi, keep_series=False)
+    for v in (0, 13, 77, 99):
+        Sigma = toeplitz(arma_acf(np.r_[1, -phi[:, v]], [1], T))
+        tt = sm.GLS(Y[:, v], d.X, sigma=Sigma).fit().t_test(w)
+        for res in (many, direct):
+            assert float(res.beta[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+            assert float(res.variance[v]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
+            assert float(res.t[v]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
+
+
+def test_one_pass_near_exact_fits_use_explicit_residuals():
+    """A voxel that the design fits almost exactly (1 - R^2 ~ 1e-14): the difference
+    y*'y* - b'X*'y* would cancel, so fit_sums asks for the voxel's series and whitens its
+    residuals; the variance equals statsmodels GLS to 1e-6 (its own rounding)."""
+    sm = pytest.importorskip("statsmodels.api")
+    a, d, Y = _one_pass_case(n_vox=70)
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    Y[:, 3] = d.X @ np.arange(1.0, d.X.shape[1] + 1) + 1e-6 * Y[:, 4]
+    prep = glm.prepare(d.X)
+    phi = np.tile([[0.4], [0.1]], (1, 70))
+    Yc = glm.working_copy(prep, Y)[0]
+    asked = []
+
+    def series(idx):
+        asked.extend(idx.tolist())
+        return Yc[:, idx]
+
+    res = glm.fit_sums(prep, glm.arp_block_sums(prep, Y), w, phi, series=series)
+    assert 3 in asked and len(asked) < 5
+    Sigma = toeplitz(arma_acf([1, -0.4, -0.1], [1], T))
+    tt = sm.GLS(Y[:, 3], d.X, sigma=Sigma).fit().t_test(w)
+    assert float(res.variance[3]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-6)
+
+
+def test_batched_cholesky_solve_equals_numpy():
+    """The voxels-last Cholesky solve equals numpy.linalg.solve matrix by matrix."""
+    from voxelscope.core.noise import _spd_solve
+
+    rng = np.random.default_rng(3)
+    A = rng.standard_normal((50, 9, 30))
+    G = np.einsum("vik,vjk->ijv", A, A)
+    rhs = rng.standard_normal((9, 2, 50))
+    x = _spd_solve(G, rhs)
+    for v in (0, 17, 49):
+        np.testing.assert_allclose(x[:, :, v], np.linalg.solve(G[:, :, v], rhs[:, :, v]),
+                                   rtol=1e-10, atol=1e-12)  # fmt: skip
+
+
 def _null_run(seed, shape=(9, 8, 6), phi=(0.45, 0.15)):
     rng = np.random.default_rng(seed)
     e = rng.standard_normal((*shape, T + 100))

@@ -35,9 +35,13 @@ AR(p) noise model (the default of maps, fits and the window)
 ``noise="arp"`` prewhitens every voxel with AR(p) coefficients given by the caller
 (``ar``, one row per voxel): the bias-corrected, spatially smoothed estimates of
 :mod:`voxelscope.core.noise` (Worsley et al. 2002). The whitening is the exact inverse
-Cholesky factor of the AR(p) covariance (Prais-Winsten for p = 1), the GLS normal
-equations are assembled per voxel from lagged products of the design, and the residual
-variance comes from explicitly whitened residuals; ``df = n - rank``.
+Cholesky factor of the AR(p) covariance (Prais-Winsten for p = 1). The GLS normal
+equations and the whitened residual sum of squares are assembled per voxel from a few
+sums of one pass over the data (lagged products of the design with the data, the data's
+autocovariances at lags 0..p and its first and last p samples; see
+:mod:`voxelscope.core.noise`), so a map (:func:`arp_block_sums`, then :func:`fit_sums`)
+reads the data once; near-exact fits (below :data:`RSS_GUARD`) and shown series get
+explicitly whitened residuals; ``df = n - rank``.
 
 Examples
 --------
@@ -66,12 +70,15 @@ __all__ = [
     "FitResult",
     "PreparedDesign",
     "ar1_rho",
+    "arp_block_sums",
     "condition_f_matrix",
     "f_test",
     "fit",
+    "fit_sums",
     "parse_contrast",
     "prais_winsten",
     "prepare",
+    "working_copy",
 ]
 
 _RHO_LIMIT = 0.99

@@ -342,6 +342,10 @@ def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -
                 fut.cancel()
 
 
+#: Voxels per batched solve of a one-pass AR(p) map (from the sums, not the data).
+SOLVE_VOXELS = 8192  # the solves themselves go in pieces of noise.SOLVE_PIECE
+
+
 def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
     """The fit's working copy (:func:`voxelscope.core.glm.working_copy`) of some voxels,
     read again from the run: near-exact fits of a one-pass AR(p) map need their residuals
@@ -480,7 +484,7 @@ def compute_map(
         # pass"): the bias-corrected autocovariances of the OLS residuals, smoothed in the
         # mask, give every voxel's AR(p) coefficients, and the same sums give its GLS.
         from .glm import arp_block_sums, fit_sums
-        from .noise import AR_ORDER, BIAS_LAGS, ar_from_smoothed, smooth_map
+        from .noise import AR_ORDER, BIAS_LAGS, ArpSums, ar_from_smoothed, smooth_map
 
         order = AR_ORDER
         n_lags = max(order, BIAS_LAGS)
@@ -499,12 +503,11 @@ def compute_map(
             report(share * seen / total if total else share)
 
         with _one_blas_thread():
-            _for_blocks(
-                chunks(), lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
-            )
+            _for_blocks(chunks(), lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers)
         sm = smooth_map(values.reshape((*shape, n_lags + 1)), valid.reshape(shape) & mask, run)
         del values
-        phi_in = ar_from_smoothed(sm.reshape(-1, n_lags + 1)[inside].T, order, _prep)[0]
+        with _one_blas_thread():  # small products: one BLAS thread is faster, as above
+            phi_in = ar_from_smoothed(sm.reshape(-1, n_lags + 1)[inside].T, order, _prep)[0]
         del sm
         phi_flat = np.zeros((order, n_all))
         phi_flat[:, inside] = phi_in
@@ -512,8 +515,13 @@ def compute_map(
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
 
         def pieces():
+            # the solves are elementwise over voxels: pieces of at least SOLVE_VOXELS keep
+            # numpy's per-call cost small; each block's sums are freed once fitted
             while kept:
-                yield kept.pop(0)  # each block's sums are freed once fitted
+                got = [kept.pop(0)]
+                while kept and sum(i.size for i, _ in got) < SOLVE_VOXELS:
+                    got.append(kept.pop(0))
+                yield np.concatenate([i for i, _ in got]), ArpSums.concat([x for _, x in got])
 
         def fit_piece(idx: np.ndarray, sums):
             return fit_sums(
