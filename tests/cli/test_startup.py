@@ -60,3 +60,15 @@ def test_fit_loads_no_heavy_scipy(tmp_path):
     path, events = write_run(tmp_path, 500 + rng.standard_normal((4, 5, 3, 60)), 1.5)
     argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1", "--noise", "ols"]
     assert _loaded_after(argv, (*HEAVY, *QT)) == []
+
+
+def test_every_command_is_registered_and_a_broken_one_is_not_hidden(monkeypatch):
+    """The full parser (``voxelscope --help``) lists every command of the dispatch table; a
+    command module that fails to import raises instead of vanishing from the list."""
+    import voxelscope.cli as cli
+
+    sub = next(a for a in cli.build_parser()._actions if a.dest == "command")
+    assert set(sub.choices) == set(cli._COMMAND_MODULES)
+    monkeypatch.setitem(sys.modules, "voxelscope.cli.report", None)  # its import fails
+    with pytest.raises(ImportError):
+        cli.build_parser()

@@ -13,7 +13,6 @@ import csv
 import hashlib
 import io
 import os
-import sys
 from html.parser import HTMLParser
 
 import nibabel as nib
@@ -21,7 +20,8 @@ import numpy as np
 import pytest
 
 from voxelscope import RESEARCH_CAUTION, __version__
-from voxelscope.core.errors import InputError
+from voxelscope.core import checks
+from voxelscope.core.errors import InputError, ModelError
 from voxelscope.core.events import read_events
 from voxelscope.core.marks import Mark, MarkList
 from voxelscope.core.model import Analysis, ModelSettings
@@ -254,15 +254,27 @@ def test_bad_requests_are_one_line_errors(demo, tmp_path):
     assert not (tmp_path / "o").exists()
 
 
-def test_missing_checks_module_is_skipped_with_a_note(demo, tmp_path, monkeypatch):
+def test_checks_that_cannot_run_are_a_note_and_bugs_surface(demo, tmp_path, monkeypatch):
+    """A user-facing error from the checks (the model at this voxel) becomes a note in the
+    report; any other exception is a bug and is not turned into "not available"."""
     run, analysis, _run_path, _events = demo
-    monkeypatch.setitem(sys.modules, "voxelscope.core.checks", None)  # import fails
+
+    def refuse(*_a, **_k):
+        raise ModelError("too few volumes for the checks")
+
+    monkeypatch.setattr(checks, "voxel_checks", refuse)
     res = write_report(tmp_path / "out", run, analysis, ModelSettings(), voxel=(0, 0, 0))
-    assert "checks are not available" in res.html.read_text(encoding="utf-8")
+    assert "checks could not be run here: too few volumes" in res.html.read_text(encoding="utf-8")
+
+    def broken(*_a, **_k):
+        raise TypeError("a bug")
+
+    monkeypatch.setattr(checks, "voxel_checks", broken)
+    with pytest.raises(TypeError, match="a bug"):
+        write_report(tmp_path / "out2", run, analysis, ModelSettings(), voxel=(0, 0, 0))
 
 
-def test_checks_flags_appear_when_available(demo, tmp_path):
-    checks = pytest.importorskip("voxelscope.core.checks")
+def test_checks_flags_appear_in_the_report(demo, tmp_path):
     run, analysis, _run_path, _events = demo
     settings = ModelSettings(kernels=("gamma",))
     res = write_report(tmp_path / "out", run, analysis, settings, voxel=(2, 2, 2))

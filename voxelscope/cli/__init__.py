@@ -141,18 +141,13 @@ def _top_parser() -> argparse.ArgumentParser:
 
 def build_parser() -> argparse.ArgumentParser:
     """The argument parser with every subcommand registered."""
-    from . import cache, fit, view
+    from importlib import import_module
 
     parser = _top_parser()
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
-    modules = [fit, view, cache]
-    for name in ("sweep", "map", "report"):
-        try:
-            modules.insert(1, __import__(f"{__package__}.{name}", fromlist=["register"]))
-        except ImportError:  # pragma: no cover - optional while a command is being built
-            pass
-    for m in modules:
-        m.register(sub)
+    # every command is always there: a module that fails to import is a bug, never hidden
+    for name in ("fit", "report", "map", "sweep", "view", "cache"):
+        import_module(f"{__package__}.{name}").register(sub)
     _once_each(parser)
     return parser
 

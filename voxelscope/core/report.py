@@ -145,19 +145,15 @@ def _mm(run: Any, ijk: Sequence[int]) -> tuple[float, float, float]:
 def _checks_for(
     analysis: Analysis, settings: ModelSettings, fits: VoxelFits, run: Any, ijk
 ) -> tuple[dict[str, dict[str, Any]], str]:
-    try:
-        from .checks import voxel_checks
-    except ImportError:
-        return {}, "checks are not available in this version of voxelscope"
+    from .checks import voxel_checks
+
     out: dict[str, dict[str, Any]] = {}
     try:
         for f in fits.fits:
             c = voxel_checks(analysis, settings, f.kernel, fits.y, run=run, ijk=tuple(ijk))
             out[f.kernel] = c.to_json()
-    except VoxelscopeError as err:
+    except VoxelscopeError as err:  # the data or model at this voxel (said in the report)
         return out, f"checks could not be run here: {err}"
-    except (AttributeError, TypeError) as err:  # checks API not as expected
-        return out, f"checks are not available in this version of voxelscope ({err})"
     return out, ""
 
 

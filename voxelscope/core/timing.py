@@ -290,9 +290,9 @@ def fir_estimate(
             continue
         try:
             both = _kernel_response(analysis, settings, name, y, condition, np.r_[times, fine], ar)
-        except (ModelError, ValueError):
-            # a kernel that cannot be fitted under these settings is not drawn (e.g. boxcar
-            # with derivatives, which the kernel module cannot differentiate)
+        except ModelError:
+            # a kernel whose design cannot be fitted under these settings (rank, too few
+            # volumes) is not drawn; anything else is a bug and surfaces
             continue
         at_bins[str(name)], at_fine[str(name)] = both[: times.size], both[times.size :]
     sign = 1.0 if float(np.sum(est)) >= 0 else -1.0
