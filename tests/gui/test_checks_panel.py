@@ -280,15 +280,17 @@ def test_hidden_part_computes_nothing(win, qtbot, demo_files, monkeypatch):
     for ijk in [(20, 20, 15), (21, 20, 15), (22, 20, 15)]:
         st.set_voxel(ijk)
     st.update_settings(noise="ar1")
-    qtbot.wait(100)
-    assert calls == []
+    # the requests have been handled (the panel's timer fired and _launch ran) and none
+    # started a job: the panel counts jobs as it starts them, so this cannot pass by timing
+    qtbot.waitUntil(lambda: not win.checks._timer.isActive(), timeout=WAIT)
+    assert win.checks.calls == 0 and calls == []
     panel = _show_checks(win, qtbot)
     _settle(panel, qtbot)
     assert calls == [(22, 20, 15)]
     win.docks["Checks"].close()
     st.set_voxel((10, 20, 15))
-    qtbot.wait(100)
-    assert len(calls) == 1
+    qtbot.waitUntil(lambda: not panel._timer.isActive(), timeout=WAIT)
+    assert panel.calls == 1 and len(calls) == 1
 
 
 def test_fits_do_not_wait_for_the_checks(win, qtbot, demo_files, monkeypatch):
