@@ -64,6 +64,7 @@ import numpy as np
 
 from .errors import InputError, ModelError
 from .pvalues import neglog10p_from_t, p_from_t, z_from_t
+from .workcopy import RSS_GUARD, working_copy
 
 __all__ = [
     "NOISE_MODELS",
@@ -86,13 +87,6 @@ _RHO_LIMIT = 0.99
 #: Noise models: ordinary least squares, AR(1) from the OLS residuals (Prais-Winsten), and
 #: the default AR(p), bias-corrected and smoothed in space (voxelscope.core.noise).
 NOISE_MODELS = ("ols", "ar1", "arp")
-
-#: Voxels whose ``1 - R^2`` (residual over total sum of squares) is below this get their
-#: residual sum of squares from explicit residuals instead of ``||y||^2 - ||Q'y||^2``:
-#: the shortcut's relative error is about ``eps / (1 - R^2)`` (measured: at most 6.4 times
-#: that), so it stays below about 1.5e-9 wherever it is used; explicit residuals carry
-#: about ``eps / sqrt(1 - R^2)``. tests/core/test_glm.py checks both on near-exact fits.
-RSS_GUARD = 1e-6
 
 
 # ----------------------------------------------------------------------------- design prep
@@ -904,39 +898,6 @@ def _gap_rss(R: np.ndarray, rho: np.ndarray, steps: np.ndarray) -> np.ndarray:
         d = R[t] - rg * R[t - 1]
         out = out + w * np.einsum("ij,ij->j", d, d)
     return out
-
-
-def working_copy(
-    prep: PreparedDesign, Y: np.ndarray, order: str = "C"
-) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray | None]:
-    """The float64 working copy of the kept volumes ``Y`` (n, V) that every fit uses.
-
-    Returns ``(Y, mean, tss, bad)``: the copy (centred when the design has a constant;
-    columns with a non-finite sample set to 0), the column means, the column sums of
-    squares of the copy, and the columns with a non-finite sample (None when there are
-    none).
-
-    >>> prep = prepare(np.ones((3, 1)))
-    >>> Yc, mean, tss, bad = working_copy(prep, np.array([[1.0], [2.0], [3.0]]))
-    >>> Yc[:, 0].tolist(), mean.tolist(), tss.tolist(), bad
-    ([-1.0, 0.0, 1.0], [2.0], [2.0], None)
-    """
-    Y = np.array(Y, dtype=np.float64, order=order, copy=True)
-    if Y.ndim == 1:
-        Y = Y[:, None]
-    n = Y.shape[0]
-    total = Y.sum(axis=0)
-    bad = None
-    if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
-        bad = ~np.isfinite(total)
-        Y[:, bad] = 0.0
-        total[bad] = 0.0
-    mean = total / n
-    if prep.constant_index is not None:
-        Y -= mean
-    # total sum of squares: centred when the design has a constant, else uncentred
-    tss = np.einsum("ij,ij->j", Y, Y)
-    return Y, mean, tss, bad
 
 
 def arp_block_sums(prep: PreparedDesign, data: np.ndarray, lags: int | None = None):

@@ -60,6 +60,7 @@ from typing import Any
 import numpy as np
 
 from .errors import InputError
+from .workcopy import RSS_GUARD, working_copy
 
 __all__ = [
     "AR_ORDER",
@@ -415,8 +416,6 @@ def arp_sums(
     Also computes the bias-corrected OLS residual autocovariances (``v``, ``ok``) of step
     3, from the sums (explicit residuals below the guard).
     """
-    from .glm import RSS_GUARD
-
     P = max(AR_ORDER, BIAS_LAGS) if lags is None else int(lags)
     n, V = Y.shape
     if n <= 2 * P:
@@ -538,8 +537,6 @@ def arp_solve(
     ``want_cov``); cvar : (V,) ``c' (X*'X*)^-1 c``; rss_w : (V,) the whitened residual sum
     of squares; C : (V, p+1, p+1) the whitening filters.
     """
-    from .glm import RSS_GUARD
-
     phi = np.asarray(phi, dtype=np.float64)
     if phi.ndim == 1:
         phi = phi[:, None]
@@ -731,8 +728,6 @@ def _ols_autocorr(prep: Any, Y: np.ndarray, M: np.ndarray, lags: int):
 
     With :data:`POOL_VARIANCE` False the values are ``1, rho_1..rho_L`` instead (each
     voxel normalised by its own ``v_0``)."""
-    from .glm import working_copy
-
     Y = np.asarray(Y)
     if Y.ndim == 1:
         Y = Y[:, None]
