@@ -320,6 +320,7 @@ FILES = {
     **_run_files(2),
     "description": f"{STUDY}/dataset_description.json",
     "sidecar": f"{STUDY}/task-tonetap_bold.json",
+    "sidecar_events": f"{STUDY}/task-tonetap_events.json",
     "prep_description": f"{STUDY}/derivatives/prep/dataset_description.json",
     "anat": f"{STUDY}/sub-demo/anat/sub-demo_T1w.nii.gz",
     "pipeline_t": "sub-demo_task-tonetap_run-1_pipeline-t.nii.gz",
@@ -962,6 +963,19 @@ def generate(out_dir: Path) -> dict[str, Path]:
         "SliceTiming": slice_timing,
     }
     _atomic_write(paths["sidecar"], (json.dumps(sidecar, indent=2) + "\n").encode("utf-8"))
+    # the events' own description (BIDS): the conditions in the study's order, tone first
+    events_sidecar = {
+        "trial_type": {
+            "Description": "What the participant did in the block",
+            "Levels": {
+                "tone": "listen to a sequence of tones",
+                "tap": "tap the right index finger",
+            },
+        }
+    }
+    _atomic_write(
+        paths["sidecar_events"], (json.dumps(events_sidecar, indent=2) + "\n").encode("utf-8")
+    )
     description = {
         "Name": "voxelscope demo: tone and tap (synthetic)",
         "BIDSVersion": "1.8.0",

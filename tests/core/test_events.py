@@ -211,3 +211,29 @@ def test_sanity_counts_each_kind_in_one_line():
     assert w[2].startswith("1 event(s) run past the end of the run") and "'tap'" in w[2]
     assert w[3].startswith("1 event(s) overlap the previous event") and "'tone'" in w[3]
     assert all("\n" not in line for line in w)
+
+
+def test_default_condition_follows_the_events_sidecar_levels(tmp_path):
+    """One rule for the default contrast: the events sidecar's Levels order (BIDS), found
+    beside the file or inherited from the dataset root; else the file's first condition."""
+    from voxelscope.core.events import default_condition, load_events
+
+    root = tmp_path / "study"
+    func = root / "sub-01" / "func"
+    func.mkdir(parents=True)
+    (root / "dataset_description.json").write_text('{"Name": "x", "BIDSVersion": "1.8.0"}')
+    ev = func / "sub-01_task-tt_run-1_events.tsv"
+    ev.write_text("onset\tduration\ttrial_type\n0\t5\ttap\n20\t5\ttone\n")
+    got = load_events(ev)
+    assert got.levels == () and default_condition([c.name for c in got.conditions]) == "tap"
+    (root / "task-tt_events.json").write_text(
+        '{"trial_type": {"Levels": {"tone": "listen", "tap": "tap", "rest": "none"}}}'
+    )
+    got = load_events(ev)
+    assert got.levels == ("tone", "tap", "rest")
+    assert default_condition([c.name for c in got.conditions], got.levels) == "tone"
+    (root / "task-other_events.json").write_text('{"trial_type": {"Levels": {"tap": "x"}}}')
+    assert load_events(ev).levels[0] == "tone"  # another task's sidecar does not apply
+    (func / "sub-01_task-tt_run-1_events.json").write_text("{not json")
+    got = load_events(ev)
+    assert got.levels == () and any("condition order is not used" in w for w in got.warnings)

@@ -192,3 +192,33 @@ def test_every_control_has_a_tooltip(window, ras_run):
             text = c.currentText() if isinstance(c, QComboBox) else getattr(c, "text", str)()
             missing.append(f"{type(c).__name__} {name!r} {text!r}")
     assert not missing, missing
+
+
+def test_demo_contrast_is_the_core_default_like_the_command_line(demo_files, qtbot, tmp_path):
+    """Issue 17 item 10: one rule for the default contrast (core.events.default_condition):
+    the demo window opens with the contrast `voxelscope fit` uses on the same files, without
+    setting it itself (the events sidecar lists tone first, though tap comes first in run 1)."""
+    import json
+    import subprocess
+    import sys
+
+    from PySide6.QtCore import QSettings
+
+    from voxelscope.gui.app import DEMO_CONTRAST, _demo_extras, demo_paths
+    from voxelscope.gui.main_window import MainWindow
+
+    d = demo_paths()
+    w = MainWindow(settings=QSettings(str(tmp_path / "s.ini"), QSettings.Format.IniFormat))
+    qtbot.addWidget(w)
+    assert w.open_run(d["run"], d["events"], d["confounds"], voxel=d["voxel"], background=False)
+    _demo_extras(w, None)
+    assert w.state.settings.contrast is None  # nothing set: the core's rule decides
+    assert w.state.analysis.default_contrast() == DEMO_CONTRAST
+    assert w.state.fits.fits[0].contrast == DEMO_CONTRAST
+    code = (
+        "import sys, voxelscope.cli; sys.exit(voxelscope.cli.main(['fit', "
+        f"{str(d['run'])!r}, '--voxel', '1', '1', '1', '--format', 'json', '--kernels', 'boxcar']))"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=300)
+    assert out.returncode == 0, out.stderr
+    assert json.loads(out.stdout)["fits"][0]["contrast"] == DEMO_CONTRAST

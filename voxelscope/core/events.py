@@ -45,7 +45,9 @@ __all__ = [
     "EventsFile",
     "check_events_in_run",
     "condition_column_candidates",
+    "default_condition",
     "events_sanity",
+    "find_events_sidecar",
     "load_events",
     "modulator_values",
     "parse_events",
@@ -165,6 +167,9 @@ class EventsFile:
     numeric_columns : tuple of str
         Columns usable as parametric modulators.
     source : str
+    levels : tuple of str
+        The conditions in the order the events file's JSON sidecar lists them (BIDS
+        ``Levels`` of the condition column), when it has one; see :func:`default_condition`.
     """
 
     conditions: tuple[Condition, ...]
@@ -173,6 +178,87 @@ class EventsFile:
     condition_candidates: tuple[str, ...] = ()
     numeric_columns: tuple[str, ...] = ()
     source: str = "events.tsv"
+    levels: tuple[str, ...] = ()
+
+
+def default_condition(names: Sequence[str], levels: Sequence[str] = ()) -> str:
+    """The one rule for the default contrast, used by the window and the command line:
+    the first condition the events file's sidecar lists (BIDS ``Levels``, the dataset's own
+    order, the same for every run of a task), else the first condition in the events file.
+
+    >>> default_condition(["tap", "tone"], ["tone", "tap"])
+    'tone'
+    >>> default_condition(["tap", "tone"])
+    'tap'
+    """
+    for name in levels:
+        if name in names:
+            return name
+    return names[0]
+
+
+def find_events_sidecar(events: str | Path) -> Path | None:
+    """The JSON sidecar of an events file: the same name with ``.json``, else the nearest
+    ``*_events.json`` whose entities all belong to the events file, in its folder or up to
+    three folders above (BIDS inheritance: ``task-X_events.json`` at the dataset root).
+
+    >>> import tempfile
+    >>> d = Path(tempfile.mkdtemp())
+    >>> (d / "sub-1" / "func").mkdir(parents=True)
+    >>> _ = (d / "task-a_events.json").write_text("{}")
+    >>> find_events_sidecar(d / "sub-1" / "func" / "sub-1_task-a_events.tsv").name
+    'task-a_events.json'
+    """
+    from .bids import applies_to, parse_name
+
+    p = Path(events)
+    own = p.with_name(p.name[: -len(".tsv")] + ".json") if p.name.endswith(".tsv") else None
+    if own is not None and own.is_file():
+        return own
+    name = parse_name(p.name)
+    if name is None:
+        return None
+    folder = p.parent
+    for _ in range(4):
+        try:
+            entries = sorted(folder.iterdir())
+        except OSError:
+            return None
+        best = None
+        for q in entries:
+            if not q.name.endswith("_events.json") or not q.is_file():
+                continue
+            cand = parse_name(q.name)
+            if cand is not None and applies_to(cand, name):
+                if best is None or len(cand.entities) > best[0]:
+                    best = (len(cand.entities), q)
+        if best is not None:
+            return best[1]
+        if (folder / "dataset_description.json").is_file() or folder.parent == folder:
+            return None
+        folder = folder.parent
+    return None
+
+
+def sidecar_levels(events: str | Path, column: str | None) -> tuple[tuple[str, ...], list[str]]:
+    """The ``Levels`` keys of ``column`` in the events file's sidecar, in order, and notes
+    (an unreadable sidecar is a note, never an error: it only orders the default)."""
+    from .inputs import parse_json, read_input_text
+
+    if column is None:
+        return (), []
+    side = find_events_sidecar(events)
+    if side is None:
+        return (), []
+    try:
+        data = parse_json(read_input_text(side, "sidecar"), str(side), "sidecar")
+    except InputError as err:
+        return (), [f"{err} (its condition order is not used)"]
+    entry = data.get(column) if isinstance(data, dict) else None
+    levels = entry.get("Levels") if isinstance(entry, dict) else None
+    if not isinstance(levels, dict):
+        return (), []
+    return tuple(str(k) for k in levels), []
 
 
 def task_name(path: str | Path | None) -> str:
@@ -408,11 +494,17 @@ def load_events(
         A missing file, missing or non-numeric ``onset``/``duration``, negative durations,
         an unknown condition column, or no events at all: one line naming file and field.
     """
+    import dataclasses
+
     from .inputs import read_input_text
 
     p = Path(path)
     text = read_input_text(p, "events")  # bounded; one line for size, encoding, access
-    return _parse(io.StringIO(text), str(p), condition_column, task)
+    got = _parse(io.StringIO(text), str(p), condition_column, task)
+    levels, notes = sidecar_levels(p, got.condition_column)
+    if levels or notes:
+        got = dataclasses.replace(got, levels=levels, warnings=got.warnings + tuple(notes))
+    return got
 
 
 def read_events(

@@ -433,7 +433,12 @@ class Analysis:
         return self.prepared(kernel, settings)[0]
 
     def default_contrast(self) -> str:
-        return self.conditions[0].name
+        """The contrast used when none is given, by the one rule for every front end
+        (:func:`voxelscope.core.events.default_condition`)."""
+        from .events import default_condition
+
+        levels = getattr(self.events_file, "levels", ()) or ()
+        return default_condition([c.name for c in self.conditions], levels)
 
     def contrast_weights(self, kernel: str | Kernel, settings: ModelSettings) -> np.ndarray:
         """Weights of the settings' contrast on this kernel's design."""
