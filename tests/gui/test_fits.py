@@ -54,18 +54,18 @@ def test_table_equals_core_fit(window, ras_run, noise):
         r = list(table).index(f.kernel)
         if noise == "ar1":  # rho sits in the notes line and the copied table, not a column
             assert window.fits.model.raw(r, "rho") == pytest.approx(f.rho, rel=1e-12)
-            assert f"{f.kernel} {f.rho:.2f}" in window.fits.notes.text()
+            assert f"{f.kernel} {f.rho:.2f}" in window.fits.noise_line.full_text()
         else:
             assert window.fits.model.raw(r, "rho") is None
         assert "rho" not in row
     fir = fits.by_kernel("fir")
     assert window.fits.model.raw(list(table).index("fir"), "F") == pytest.approx(fir.f, rel=1e-12)
-    assert f"fir F({fir.f_df[0]}, {fir.f_df[1]})" in window.fits.notes.text()
+    assert f"fir F({fir.f_df[0]}, {fir.f_df[1]})" in window.fits.noise_line.full_text()
     assert "\tF\tdf F\tp F" in window.fits.model.to_tsv().splitlines()[0]
     # the columns are the same whatever the model (no F columns that come and go)
     assert st.update_settings(kernels=("boxcar", "gamma"))
     assert list(_table(window)["gamma"]) == list(table["fir"])
-    assert "F test" not in window.fits.notes.text()
+    assert "F test" not in window.fits.noise_line.full_text()
 
 
 def test_boxcar_row_matches_statsmodels(window, ras_run):

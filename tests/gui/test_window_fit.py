@@ -90,3 +90,75 @@ def test_offscreen_size_hint_notice_is_filtered(monkeypatch):
     finally:
         qInstallMessageHandler(before)
     assert seen == ["a message that must stay"]
+
+
+def test_signal_and_fits_have_room_at_1280x800(demo_window, qapp):
+    """At 1280 x 800 the Signal plot was about 65 px high and Fits showed 2-3 of 4 rows."""
+    w = demo_window((1280, 800))
+    w.arrange()
+    for _ in range(3):
+        qapp.processEvents()
+    sig = w.signal
+    assert sig.plot.getViewBox().height() >= 80
+    assert sig.resid.getViewBox().height() >= 35
+    assert sig.plot.getViewBox().height() > sig.resid.getViewBox().height()
+    # the legend is one line (no wrap): as high as one line of its font
+    assert sig.legend.height() <= 2 * sig.legend.fontMetrics().height()
+    # every kernel's row of Fits without scrolling, and the coefficient line is one line
+    assert w.fits.table.verticalScrollBar().maximum() == 0
+    assert w.fits.noise_line.height() <= 2 * w.fits.noise_line.fontMetrics().height()
+
+
+def test_no_stray_tab_bars_over_fits(demo_window, qapp):
+    """Qt kept spare "Fits | Findings" tab bars at the top of Fits, drawn over the caption."""
+    from PySide6.QtCore import QPoint
+    from PySide6.QtWidgets import QTabBar
+
+    w = demo_window((1280, 800))
+    qapp.processEvents()
+    w.show_mode.enter()
+    w.show_mode.leave()
+    qapp.processEvents()
+    fits_dock = w.docks["Fits"]
+    top = fits_dock.mapTo(w, QPoint(0, 0)).y()
+    for bar in w.findChildren(QTabBar):
+        if bar.isVisible():
+            assert bar.count() > 0
+            y = bar.mapTo(w, QPoint(0, 0)).y()
+            assert not (top <= y < top + fits_dock.height() - 40), [
+                bar.tabText(i) for i in range(bar.count())
+            ]
+
+
+def test_kernel_difference_keeps_the_slices_size(demo_window, qapp):
+    """Map > Show > kernel difference added a row to Map, the bottom row grew and the
+    slices never got their height back."""
+    w = demo_window((1280, 800))
+    w.arrange()
+    qapp.processEvents()
+    before = {k: v.height() for k, v in w.slices.views.items()}
+    for source in ("difference", "model"):
+        w.state.set_map_settings(source=source)
+        for _ in range(3):
+            qapp.processEvents()
+        assert {k: v.height() for k, v in w.slices.views.items()} == before, source
+
+
+@pytest.mark.parametrize("change", [{"noise": "ar1"}, {"kernels": "with fir"}])
+def test_fir_or_ar1_keeps_the_fits_table_on_screen(demo_window, qapp, change):
+    """Turning on FIR or AR(1) added columns, a sideways scroll bar, and hid the FIR row."""
+    w = demo_window((1280, 800))
+    w.arrange()
+    qapp.processEvents()
+    columns = w.fits.model.columns()
+    if change.get("kernels"):
+        change = {"kernels": (*w.state.settings.kernels, "fir")}
+    assert w.state.update_settings(**change)
+    for _ in range(3):
+        qapp.processEvents()
+    table = w.fits.table
+    assert w.fits.model.columns() == columns
+    assert not table.horizontalScrollBar().isVisible()
+    last = w.fits.model.rowCount() - 1
+    bottom = table.rowViewportPosition(last) + table.rowHeight(last)
+    assert bottom <= table.viewport().height() + 1

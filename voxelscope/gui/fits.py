@@ -2,11 +2,12 @@
 
 Columns: colour marker, kernel, beta, variance, t, df, p, R², the same whatever the model,
 so the table keeps its shape (and its width) when the model changes. Under the table, one
-line each: the F test of all the condition's columns when the model has derivatives or FIR
-bins, and the noise model's coefficients (rho under AR(1), the AR(p) coefficients); the
-copied table has them as columns. The numbers are the fields of
-:class:`voxelscope.core.model.KernelFit` (from ``Analysis.fit_voxel``), so they equal what
-the command line prints. Copy as tab-separated text with Ctrl+C or the context menu.
+line: the F test of all the condition's columns when the model has derivatives or FIR
+bins, then the noise model's coefficients (rho under AR(1), the AR(p) coefficients), cut
+with "…" when narrow and whole in its tooltip; the copied table has them as columns.
+The numbers are the fields of :class:`voxelscope.core.model.KernelFit` (from
+``Analysis.fit_voxel``), so they equal what the command line prints. Copy as
+tab-separated text with Ctrl+C or the context menu.
 """
 
 from __future__ import annotations
@@ -28,6 +29,7 @@ from PySide6.QtWidgets import (
 from voxelscope.core.noise import NOISE_LABELS
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
+from voxelscope.gui.sizing import ElidedLabel
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["FitsModel", "FitsPanel", "f_summary", "format_value", "noise_summary", "runs_summary"]
@@ -397,6 +399,12 @@ class FitsPanel(QWidget):
         self.notes.setObjectName("fits_notes")
         self.notes.setWordWrap(True)
         lay.addWidget(self.notes)
+        # the noise model's coefficients: always one line (cut with "…" when narrow; the
+        # whole text, one line per kernel, in the tooltip)
+        self.noise_line = ElidedLabel("", min_width=60)
+        self.noise_line.setObjectName("fits_notes")
+        self.noise_line.setVisible(False)
+        lay.addWidget(self.noise_line)
         self.fit_width = False  # Show mode: squeeze the columns into the width
         self.hidden_columns: tuple[str, ...] = ()  # Show mode leaves a few out
         self.show_mode = False  # Show mode: no coefficient line
@@ -405,6 +413,7 @@ class FitsPanel(QWidget):
         self._header_widths: list[int] = []
         self._grown: tuple[tuple, list[int]] = ((), [])
         self.model.modelReset.connect(self._layout_columns)
+        self.model.modelReset.connect(self._fit_rows)
         self.model.values_changed.connect(self._layout_columns)
         state.fits_changed.connect(self._on_fits)
 
@@ -483,6 +492,22 @@ class FitsPanel(QWidget):
         self._on_fits(self.state.fits)
         self.relayout()
 
+    def _fit_rows(self) -> None:
+        """Rows a little lower when that shows every kernel without scrolling (never
+        lower than the text): a part a few pixels short hid the last row (FIR's)."""
+        vh = self.table.verticalHeader()
+        n = self.model.rowCount()
+        if n == 0:
+            return
+        full = vh.defaultSectionSize()
+        least = self.table.fontMetrics().height() + 2
+        if vh.minimumSectionSize() > least:
+            vh.setMinimumSectionSize(least)
+        h = max(least, min(full, self.table.viewport().height() // n))
+        for r in range(n):
+            if vh.sectionSize(r) != h:
+                vh.resizeSection(r, h)
+
     def set_hidden_columns(self, names) -> None:
         """Leave these columns out of the table (Show mode); ``()`` shows every column."""
         names = tuple(names)
@@ -534,6 +559,7 @@ class FitsPanel(QWidget):
     def eventFilter(self, obj, ev) -> bool:
         if obj is self.table.viewport() and ev.type() == QEvent.Type.Resize:
             self._layout_columns()
+            self._fit_rows()
         elif obj is self.table and ev.type() in (QEvent.Type.FontChange, QEvent.Type.StyleChange):
             self.relayout()
         return super().eventFilter(obj, ev)
@@ -569,14 +595,18 @@ class FitsPanel(QWidget):
             )
             notes += [f"{r.label}: {r.note}" for r in st.run_fits if r.note]
             notes += runs_summary(st.combined)
+        # the F test and the noise coefficients share one line (F first: it matters more)
         f_line = f_summary(fits) if fits is not None else ""
-        if f_line:
-            notes.append(f_line)
         noise_line, noise_tip = noise_summary(fits) if fits is not None else ("", "")
-        if noise_line and not self.show_mode:
-            notes.append(noise_line)
+        if self.show_mode:
+            noise_line = noise_tip = ""
+        line = ".   ".join(t for t in (f_line, noise_line) if t)
+        tip = "\n".join(t for t in (f_line, noise_tip) if t)
+        if line != self.noise_line.full_text():
+            self.noise_line.setText(line)
+            self.noise_line.setToolTip(tip)
+        self.noise_line.setVisible(bool(line))
         if fits is not None and not fits.fits:
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))
-        self.notes.setToolTip(noise_tip)
         self.notes.setVisible(bool(notes))

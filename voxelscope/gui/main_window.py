@@ -232,12 +232,48 @@ class MainWindow(QMainWindow):
         # apply the new sizes now, so nothing moves under the next click
         self.layout().activate()
         QCoreApplication.sendPostedEvents(None, QEvent.Type.LayoutRequest)
+        # Signal gets a bit less than half of the middle (its plots need height; the slices are
+        # limited by their width in a narrow window anyway)
+        ws = self.workspace
+        i_sl, i_sg = ws.indexOf(self.slices), ws.indexOf(self.signal)
+        if i_sl >= 0 and i_sg >= 0:
+            sizes = ws.sizes()
+            free = sizes[i_sl] + sizes[i_sg]
+            sig = max(self.signal.minimumSizeHint().height(), round(0.44 * free))
+            sizes[i_sg], sizes[i_sl] = sig, max(0, free - sig)
+            ws.setSizes(sizes)
 
     def showEvent(self, ev) -> None:
         super().showEvent(ev)
         if not self._arranged and self.auto_arrange:
             self._arranged = True
             self.arrange()
+        self.tuck_tab_bars()
+
+    def tuck_tab_bars(self) -> None:
+        """Hide the spare tab bars Qt leaves behind.
+
+        Tabbing Findings with Fits, which shares its row with Map, leaves Qt with two
+        spare "Fits | Findings" tab bars that it still shows, at the top of Fits, where
+        they showed through above the caption. Of the tab bars with the same tabs, the one
+        in use is the lowest on the screen (tabs sit below their parts); the others, and
+        tab bars without tabs, are hidden. Called after each layout change that can bring
+        them back (showing the window, leaving Show mode).
+        """
+        from PySide6.QtWidgets import QTabBar
+
+        groups: dict[tuple, list] = {}
+        for bar in self.findChildren(QTabBar, options=Qt.FindChildOption.FindDirectChildrenOnly):
+            if bar.isVisible() and bar.count() == 0:
+                bar.hide()
+            elif bar.isVisible():
+                texts = tuple(bar.tabText(i) for i in range(bar.count()))
+                groups.setdefault(texts, []).append(bar)
+        for bars in groups.values():
+            if len(bars) > 1:
+                bars.sort(key=lambda b: b.geometry().bottom())
+                for bar in bars[:-1]:
+                    bar.hide()
 
     def _build_status(self) -> None:
         bar = StatusBar(self)
@@ -794,6 +830,10 @@ class MainWindow(QMainWindow):
         if size is not None and (self.width(), self.height()) != tuple(size):
             self.resize(int(size[0]), int(size[1]))
             QCoreApplication.processEvents()
+            self.arrange()
+            QCoreApplication.processEvents()
+        elif size is not None and self.auto_arrange:
+            # resized before (the command line sizes the window first): share it out again
             self.arrange()
             QCoreApplication.processEvents()
         for hook in self.settle_hooks:  # e.g. the live map being computed

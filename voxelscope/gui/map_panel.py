@@ -120,15 +120,23 @@ class MapPanel(QWidget):
         self.stat.currentIndexChanged.connect(
             lambda _i: self.state.set_map_settings(stat=self.stat.currentData())
         )
-        self.rows["kernel"] = add_row(
-            1, self.kernel_label, (self.kernel, 1), self.stat_label, self.stat
-        )
         self.other_label = QLabel("minus")
         self.other = QComboBox()
         self.other.setObjectName("map_other_kernel")
-        self.other.setToolTip("t under the kernel above minus t under this one")
+        self.other.setToolTip("t under the kernel beside it minus t under this one")
         self.other.currentIndexChanged.connect(self._other_chosen)
-        self.rows["other"] = add_row(2, self.other_label, (self.other, 1))
+        # the second kernel of a difference takes the place of the statistic on the same
+        # row: a row of its own made the part taller, which took height from Slices for
+        # good (a dock keeps the height it grew to)
+        self.rows["kernel"] = add_row(
+            1,
+            self.kernel_label,
+            (self.kernel, 1),
+            self.stat_label,
+            self.stat,
+            self.other_label,
+            (self.other, 1),
+        )
 
         self.file_label = ElidedLabel("No map open.", min_width=60)
         self.file_label.setObjectName("hint")

@@ -315,6 +315,10 @@ class ShowMode(QObject):
         if sizes and len(sizes) == w.workspace.count():
             w.workspace.setSizes(sizes)
         w.fits.relayout()
+        tuck = getattr(w, "tuck_tab_bars", None)
+        if tuck is not None:
+            QApplication.processEvents()  # the restored layout places its tab bars first
+            tuck()
         settings = self._saved.get("settings")
         if self.restore_models and settings is not None and settings != w.state.settings:
             self._apply_model(settings)  # the model from before the show

@@ -40,11 +40,11 @@ from voxelscope.gui.state import ViewerState
 __all__ = ["MIN_CANVAS_HEIGHT", "RESID_SHARE", "SignalPanel", "to_percent"]
 
 #: The plots never get less than this many pixels (signal and residuals together).
-MIN_CANVAS_HEIGHT = 170
+MIN_CANVAS_HEIGHT = 200
 #: Share of the plots' height that the residuals get (the signal gets the rest).
 RESID_SHARE = 0.34
 #: The residual plot is never lower than this (its axis, tick labels and title).
-MIN_RESID_HEIGHT = 70
+MIN_RESID_HEIGHT = 84
 #: Axis title size outside Show mode (pixels).
 LABEL_PX = 13
 
