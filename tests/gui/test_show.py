@@ -149,8 +149,9 @@ def test_each_slide_restores_the_marks_own_model_and_says_so(window, ras_run):
     st.set_marks(MarkList([*st.marks, old]))
     assert st.update_settings(contrast="tone", noise="arp")  # ...whatever comes later
     before = st.settings
-    window.show_mode.enter()
+    window.show_mode.enter()  # starts at the mark selected in Marks
     banner = window.show_mode.banner
+    window.show_mode.go(0)
     assert st.marks[0].model.contrast == "tone" and st.settings == st.marks[0].model
     window.show_mode.step(1)
     assert st.settings == made  # the slide fits under the mark's own model
