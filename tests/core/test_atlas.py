@@ -102,8 +102,9 @@ def test_bad_label_table_is_one_line_naming_file_row_and_column(tmp_path, text, 
 
 def test_label_table_found_by_bids_name_or_given(tmp_path):
     path, _ = _write_atlas(tmp_path, table=None)
-    with pytest.raises(InputError, match=r"no label table beside the atlas.*--atlas-labels"):
+    with pytest.raises(InputError, match=r"no label table beside the atlas") as err:
         load_atlas(path)
+    assert err.value.remedy == "atlas_labels"
     # a dataset-level table whose entities all belong to the image
     (tmp_path / "space-X_atlas-demo_dseg.tsv").write_text(TABLE)
     (tmp_path / "space-Y_atlas-demo_dseg.tsv").write_text("index\tname\n1\twrong\n")
@@ -142,5 +143,6 @@ def test_atlas_through_the_one_way_in(tmp_path):
     (tmp_path / "fake_dseg.tsv").write_text(TABLE)
     with pytest.raises(InputError, match="not a gzip-compressed NIfTI image"):
         load_inputs(InputRequest(run, atlas=fake, events_required=False))
-    with pytest.raises(InputError, match="give the atlas image with --atlas"):
+    with pytest.raises(InputError, match="no atlas image was given") as err:
         load_inputs(InputRequest(run, atlas_labels=tmp_path / "fake_dseg.tsv"))
+    assert err.value.remedy == "atlas"

@@ -25,7 +25,7 @@ def test_refuses_overwrite_without_force_and_keeps_old_content(tmp_path):
     with pytest.raises(InputError) as err:
         write_text(p, "new\n")
     msg = str(err.value)
-    assert "out.csv" in msg and "--force" in msg and "\n" not in msg
+    assert "out.csv" in msg and err.value.remedy == "force" and "\n" not in msg
     assert p.read_text() == "old\n"
     assert sorted(os.listdir(tmp_path)) == ["out.csv"]
 
@@ -51,8 +51,9 @@ def test_new_file_mode_follows_umask(tmp_path):
 
 def test_check_outputs_names_the_first_existing_file(tmp_path):
     (tmp_path / "b.png").write_bytes(b"")
-    with pytest.raises(InputError, match=r"b\.png already exists; use --force"):
+    with pytest.raises(InputError, match=r"b\.png already exists") as err:
         check_outputs([tmp_path / "a.png", tmp_path / "b.png"])
+    assert err.value.remedy == "force"
     check_outputs([tmp_path / "b.png"], force=True)
 
 

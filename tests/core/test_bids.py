@@ -183,7 +183,7 @@ def test_two_candidate_events_files_name_both(study):
     extra = _text(study["func"] / "sub-01_ses-1_task-gamble_run-1_desc-old_events.tsv")
     with pytest.raises(InputError, match="2 events files match this run") as err:
         load_inputs(InputRequest(study["run"]))
-    assert str(extra) in str(err.value) and "--events FILE" in str(err.value)
+    assert str(extra) in str(err.value) and err.value.remedy == "choose_events"
     chosen = study["func"] / "sub-01_ses-1_task-gamble_run-1_events.tsv"
     assert load_inputs(InputRequest(study["run"], events=chosen)).events_path == chosen
 

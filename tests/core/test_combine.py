@@ -319,8 +319,9 @@ def test_runs_on_different_grids_combine_at_the_same_place_in_mm(tmp_path):
         assert (m.t[ijk] > 8) == planted, (ijk, mm, m.t[ijk])
         checked += 1
     assert checked >= 40
-    with pytest.raises(InputError, match="--mm"):
+    with pytest.raises(InputError, match=r"different grids.*position in mm") as err:
         voxel_in_runs([r1, r2], voxel=(1, 1, 1))
+    assert err.value.remedy == "position"
     assert voxel_in_runs([r1, r1], voxel=(1, 1, 1)) == [(1, 1, 1), (1, 1, 1)]
 
 

@@ -210,7 +210,7 @@ def test_big_table_needs_a_choice_small_table_is_all(table, tmp_path):
     with pytest.raises(InputError) as err:
         c.default_choice()
     msg = str(err.value)
-    assert f"{len(cols)} columns" in msg and "--confound-columns" in msg
+    assert f"{len(cols)} columns" in msg and err.value.remedy == "confound_columns"
     for name in NAMED_SETS:
         assert name in msg
     small = parse_confounds(io.StringIO(table_text({k: cols[k] for k in MOTION6})), "m.tsv")

@@ -79,7 +79,8 @@ def test_condition_column_choice(tmp_path):
     with pytest.raises(InputError) as err:
         read_events(p, condition_column="hand")
     msg = str(err.value)
-    assert "'hand'" in msg and "side" in msg and "--condition-column" in msg and "\n" not in msg
+    assert "'hand'" in msg and "side" in msg and "condition column" in msg and "\n" not in msg
+    assert err.value.remedy == "condition_column"
 
 
 def test_na_durations_are_brief_with_one_counted_note(tmp_path):

@@ -186,7 +186,7 @@ def test_file_cosines_next_to_our_drift_name_the_fix():
     with pytest.raises(ModelError) as err:
         prepare(X, names)
     msg = str(err.value)
-    assert "rank 8 of 14" in msg and "--highpass none" in msg and "'cosine03'" in msg
+    assert "rank 8 of 14" in msg and "high-pass filter off" in msg and "'cosine03'" in msg
 
 
 def test_compcor_duplicates_say_choose_fewer():

@@ -68,8 +68,9 @@ def test_explicit_inputs_are_refused(tmp_path):
 
 def test_existing_output_needs_force(tmp_path):
     out = _file(tmp_path / "old.csv", "old")
-    with pytest.raises(OutputExistsError, match="already exists; use --force"):
+    with pytest.raises(OutputExistsError, match="already exists") as err:
         write_text(out, "new")
+    assert err.value.remedy == "force" and err.value.path == out
     assert out.read_text() == "old"
     write_text(out, "new", force=True)
     assert out.read_text() == "new"

@@ -225,7 +225,7 @@ def test_existing_outputs_are_not_overwritten_without_force(demo, tmp_path):
     out = tmp_path / "out"
     write_report(out, run, analysis, ModelSettings(), voxel=(0, 0, 0))
     snapshot = {p.name: p.read_bytes() for p in out.iterdir()}
-    with pytest.raises(InputError, match=r"report\.html already exists; use --force"):
+    with pytest.raises(InputError, match=r"report\.html already exists"):
         write_report(out, run, analysis, ModelSettings(kernels=("gamma",)), voxel=(1, 0, 0))
     assert {p.name: p.read_bytes() for p in out.iterdir()} == snapshot
     write_report(out, run, analysis, ModelSettings(kernels=("gamma",)), voxel=(1, 0, 0), force=True)

@@ -268,9 +268,9 @@ def test_xyzt_units_time(tmp_path, unit, value, code, expected):
 def test_header_tr_still_implausible_asks_for_tr(tmp_path):
     """A header TR that is implausible even as ms (5e6 'seconds') is an InputError."""
     path = _save(tmp_path / "bad_tr.nii", np.ones((2, 2, 2, 4), np.float32), tr=5e6)
-    with pytest.raises(InputError, match="--tr") as err:
+    with pytest.raises(InputError, match="TR") as err:
         open_run(path)
-    assert str(path) in str(err.value)
+    assert str(path) in str(err.value) and err.value.remedy == "tr"  # the TR fixes it
     assert open_run(path, tr=1.0).tr == 1.0
 
 
@@ -281,14 +281,16 @@ def test_header_tr_too_short_in_ms_asks_for_tr(tmp_path):
     img.header.set_xyzt_units("mm", "msec")
     path = tmp_path / "short.nii"
     nib.save(img, str(path))
-    with pytest.raises(InputError, match="--tr"):
+    with pytest.raises(InputError, match="TR") as err:
         open_run(path)
+    assert err.value.remedy == "tr" and "give the TR in seconds" in str(err.value)
 
 
 def test_no_tr_anywhere(tmp_path):
     path = _save(tmp_path / "no_tr.nii", np.ones((2, 2, 2, 4), np.float32), tr=0.0)
-    with pytest.raises(InputError, match=r"no usable TR.*--tr"):
+    with pytest.raises(InputError, match=r"no usable TR.*give the TR in seconds") as err:
         open_run(path)
+    assert err.value.remedy == "tr" and err.value.field == "TR"
 
 
 @pytest.mark.parametrize("bad", [0.0, -2.0, float("nan"), 2000.0])

@@ -10,7 +10,7 @@ import time
 
 from voxelscope.core.errors import Cancelled, InputError, OutputExistsError
 from voxelscope.gui import workers
-from voxelscope.gui.workers import BackgroundJob, JobFailure, describe
+from voxelscope.gui.workers import WINDOW_REMEDIES, BackgroundJob, JobFailure, describe
 
 
 def _run(qtbot, job, signal):
@@ -44,8 +44,9 @@ def test_failure_carries_the_exception_object(qtbot):
     (failure,) = _run(qtbot, job, job.failed)
     assert isinstance(failure, JobFailure)
     assert failure.error is error
-    assert failure.line == str(error)
-    assert str(failure) == failure.line
+    # the window's words for the remedy, never the command line's flag
+    assert failure.line == "/tmp/report/index.html already exists; " + WINDOW_REMEDIES["force"]
+    assert "--force" not in failure.line and str(failure) == failure.line
 
 
 def test_a_bug_is_one_line_for_the_user_and_a_traceback_in_the_log(qtbot, caplog):

@@ -209,8 +209,11 @@ def _run(argv: list[str]) -> int:
     try:
         return int(args.handler(args) or 0)
     except VoxelscopeError as exc:
+        from .remedies import CLI_REMEDIES
+
         for line in getattr(exc, "problems", None) or [exc]:  # a session: one line each
-            print(f"voxelscope: error: {_error_line(line)}", file=sys.stderr)
+            text = line.phrase(CLI_REMEDIES) if isinstance(line, VoxelscopeError) else line
+            print(f"voxelscope: error: {_error_line(text)}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("voxelscope: interrupted", file=sys.stderr)

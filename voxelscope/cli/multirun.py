@@ -82,7 +82,10 @@ def load_runs(
             text = str(exc)
             if str(path) in text or Path(path).name in text:
                 raise
-            raise type(exc)(f"{path}: {text}") from None
+            named = copy.copy(exc)  # the same error and remedy, naming the run
+            named.message = f"{path}: {exc.message}"
+            named.args = (named.message,)
+            raise named from None
         loads.append(loaded)
     labels = run_labels(paths)
     if len(getattr(args, "events_each", None) or []) == 1:

@@ -61,7 +61,7 @@ def _header_tr(path: Path, header: Any) -> _HeaderTR:
         value = raw / 1000.0
         note = (
             f"{path}: the {where} says {raw:g} s, which is implausible; reading it as "
-            f"{raw:g} ms = {value:g} s (give --tr to override)"
+            f"{raw:g} ms = {value:g} s (give the TR to override it)"
         )
     lo, hi = PLAUSIBLE_TR_S
     if not lo <= value <= hi:
@@ -132,18 +132,29 @@ def resolve_tr(
     if tr is not None:
         value = _number(tr)
         if value is None or value <= 0:
-            raise InputError(f"{path}: TR {tr!r} must be a positive number of seconds (--tr)")
+            raise InputError(
+                f"{path}: TR {tr!r} must be a positive number of seconds",
+                file=path,
+                field="TR",
+                value=tr,
+                remedy="tr",
+            )
         if value > MS_THRESHOLD_S:
             raise InputError(
-                f"{path}: TR {value:g} s is implausible; give the TR in seconds (--tr)"
-            )
+                f"{path}: TR {value:g} s is implausible", file=path, field="TR", value=value,
+                remedy="tr",
+            )  # fmt: skip
         chosen, source = value, "argument"
     elif "RepetitionTime" in meta:
         value = _number(meta["RepetitionTime"])
         if value is None or not lo <= value <= hi:
             raise InputError(
                 f"{where('RepetitionTime')}: RepetitionTime {meta['RepetitionTime']!r} is not "
-                f"a plausible TR in seconds (BIDS); fix the sidecar or give --tr"
+                f"a plausible TR in seconds (BIDS); fix the sidecar or give the TR",
+                file=where("RepetitionTime"),
+                field="RepetitionTime",
+                value=meta["RepetitionTime"],
+                remedy="tr",
             )
         chosen, source = value, "sidecar"
         if head.value is not None and abs(head.value - value) > 1e-3 * max(value, 1.0):
@@ -159,7 +170,7 @@ def resolve_tr(
     else:
         where = f"; no RepetitionTime in {sidecar.name}" if sidecar is not None else ""
         raise InputError(
-            f"{path}: no usable TR: {head.problem}{where}; give the TR in seconds (--tr)"
+            f"{path}: no usable TR: {head.problem}{where}", file=path, field="TR", remedy="tr"
         )
 
     timing = None

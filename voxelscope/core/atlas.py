@@ -273,7 +273,9 @@ def load_atlas(path: str | os.PathLike[str], table: str | os.PathLike[str] | Non
     if table_path is None:
         raise InputError(
             f"{path}: no label table beside the atlas (a BIDS dseg.tsv with the columns index "
-            "and name, named like the image); give it with --atlas-labels FILE"
+            "and name, named like the image)",
+            file=path,
+            remedy="atlas_labels",
         )
     names = read_label_table(table_path)
     img = load_image(path, what="atlas")

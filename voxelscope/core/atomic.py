@@ -17,7 +17,7 @@ Examples
 >>> write_text(d / "a.txt", "again\\n")
 Traceback (most recent call last):
 ...
-voxelscope.core.errors.OutputExistsError: ...a.txt already exists; use --force to overwrite it
+voxelscope.core.errors.OutputExistsError: ...a.txt already exists; allow overwriting it
 >>> _ = write_text(d / "a.txt", "again\\n", force=True)
 >>> sorted(x.name for x in d.iterdir())
 ['a.txt']

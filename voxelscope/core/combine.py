@@ -472,7 +472,8 @@ def voxel_in_runs(
         if not same_grid(runs):
             raise InputError(
                 f"the runs are on different grids ({_grids_text(runs)}); voxel indices "
-                "mean different places in each, so give a position with --mm X Y Z"
+                "mean different places in each",
+                remedy="position",
             )
         return [r.check_voxel(tuple(voxel)) for r in runs]
     return [r.mm_to_voxel(tuple(mm)) for r in runs]  # type: ignore[arg-type]

@@ -367,10 +367,11 @@ class Confounds:
         if len(cols) <= SMALL_TABLE:
             return cols
         raise InputError(
-            f"{self.source}: the table has {len(cols)} columns, too many to use them all; "
-            "choose with --confound-columns, e.g. 'motion24,acompcor5' (sets: "
+            f"{self.source}: the table has {len(cols)} columns, too many to use them all (sets: "
             + ", ".join(NAMED_SETS)
-            + "; names and wildcards like a_comp_cor_0[0-4] too)"
+            + "; names and wildcards like a_comp_cor_0[0-4] too)",
+            file=self.source,
+            remedy="confound_columns",
         )
 
     # ------------------------------------------------------------------ volumes

@@ -409,8 +409,10 @@ def _parse(
             offer = _names(text_cols)
             raise InputError(
                 f"{source}: no column '{excerpt(col)}' to name the conditions (text columns: "
-                f"{offer}); "
-                "pass --condition-column with one of them, or 'none' for one condition"
+                f"{offer})",
+                file=source,
+                field=col,
+                remedy="condition_column",
             )
     mod_cols = [c for c in numeric if c != col]
     i_mods = [header.index(c) for c in mod_cols]

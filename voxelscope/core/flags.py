@@ -157,8 +157,8 @@ def edge_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
 
 
 _NEXT_MODEL = {
-    "ols": "Fit with the default noise model, which allows for autocorrelation (--noise arp)",
-    "ar1": "AR(1) does not describe this noise; use the default AR(p) model (--noise arp)",
+    "ols": "Fit with the default noise model, AR(p), which allows for autocorrelation",
+    "ar1": "AR(1) does not describe this noise; use the default AR(p) model",
 }
 
 

@@ -180,7 +180,7 @@ def _rank_fix(cols: Sequence[str]) -> str:
     if re.search(r"comp_cor", text) and sum("comp_cor" in c for c in cols) > 1:
         return "choose fewer CompCor components (or one kind of them)"
     if any(c.startswith("drift_") for c in cols):
-        return "use --highpass none, or drop the confound columns that repeat the drift"
+        return "switch the high-pass filter off, or drop the confound columns that repeat the drift"
     if any(re.match(r"cosine_?\d+$", c) for c in cols):
         return "drop the cosine columns or the other drift-like columns"
     return f"drop one of them (e.g. {cols[-1]!r})"
@@ -382,7 +382,7 @@ def parse_contrast(
     names = list(names)
     if expr is None or not str(expr).strip():
         if default is None:
-            raise InputError("no contrast given; name a condition, e.g. --contrast tone")
+            raise InputError("no contrast given", field="contrast", remedy="contrast")
         expr = default
     from .inputs import excerpt
     from .limits import CONTRAST_CHARS, CONTRAST_COEFFICIENT

@@ -185,33 +185,41 @@ def resolve_inputs(request: InputRequest) -> ResolvedInputs:
     if not run.is_file():
         raise InputError(f"{run}: run file not found; check the path (a 4D .nii or .nii.gz)")
     comp = find_companions(run, request.bids_root)
-    for role, option, given, refused in (
-        ("events", "--events", request.events, request.no_events),
-        ("confounds", "--confounds", request.confounds, request.no_confounds),
-        ("mask", "--mask", request.mask, False),
+    for role, given, refused in (
+        ("events", request.events, request.no_events),
+        ("confounds", request.confounds, request.no_confounds),
+        ("mask", request.mask, False),
     ):
         both = comp.ambiguous.get(role)
         if both and given is None and not refused:
             names = " and ".join(str(p) for p in both)
             raise InputError(
-                f"{run}: {len(both)} {role} files match this run ({names}); "
-                f"name the one to use with {option} FILE"
+                f"{run}: {len(both)} {role} files match this run ({names})",
+                file=run,
+                field=role,
+                remedy=f"choose_{role}",
             )
     if request.atlas_labels is not None and request.atlas is None:
         raise InputError(
-            f"{request.atlas_labels}: --atlas-labels names the table of an atlas; give the "
-            "atlas image with --atlas FILE too"
+            f"{request.atlas_labels}: a label table names the regions of an atlas image, and "
+            "no atlas image was given",
+            file=request.atlas_labels,
+            remedy="atlas",
         )
     for label, given in (("events", request.events), ("confounds", request.confounds)):
         if given is not None and not given.exists():  # devices, folders: the reader says
             raise InputError(f"{given}: {label} file not found; check --{label}")
     if isinstance(request.mask, Path) and not request.mask.is_file():
-        raise InputError(f"{request.mask}: mask file not found; check --mask (or use 'auto')")
+        raise InputError(
+            f"{request.mask}: mask file not found", file=request.mask, remedy="mask_file"
+        )
     events = None if request.no_events else (request.events or comp.events)
     if events is None and request.events_required:
         raise InputError(
-            f"{run}: no events file given and none found beside it; pass --events FILE "
-            "(a BIDS events.tsv with onset and duration in seconds)"
+            f"{run}: no events file given and none found beside it (a BIDS events.tsv with "
+            "onset and duration in seconds)",
+            file=run,
+            remedy="events",
         )
     confounds = None if request.no_confounds else (request.confounds or comp.confounds)
     mask = None
@@ -390,8 +398,7 @@ def _apply_mask(run, path: Path, warnings: list[str]) -> None:
     mask = np.isfinite(m) & (m != 0)
     if not mask.any():
         raise InputError(
-            f"{path}: the mask has no voxel inside the run's grid; give the mask of this run "
-            "(--mask FILE) or use --mask auto"
+            f"{path}: the mask has no voxel inside the run's grid", file=path, remedy="mask"
         )
     run.set_mask(mask, source=str(path))
 
@@ -525,8 +532,11 @@ def _read_confounds(
     if path is None:
         if choice is not None and choice.strip().lower() != "none":
             raise InputError(
-                "--confound-columns needs a confounds table: pass --confounds FILE (none was "
-                "found beside the run)"
+                "confound columns were chosen but there is no confounds table (none was found "
+                "beside the run)",
+                field="confound columns",
+                value=choice,
+                remedy="confounds_for_columns",
             )
         return None, None, []
     try:

@@ -396,8 +396,9 @@ class Run:
                 if not mask.any():
                     raise InputError(
                         f"{self.mask_source}: no voxel of the mask holds a usable time series "
-                        f"of {self.path} (all are NaN or constant); give this run's mask "
-                        "(--mask FILE) or use --mask auto"
+                        f"of {self.path} (all are NaN or constant)",
+                        file=self.mask_source,
+                        remedy="mask",
                     )
                 mask.flags.writeable = False
                 self._mask = mask

@@ -7,6 +7,8 @@ import os
 import sys
 from pathlib import Path
 
+from voxelscope.cli.remedies import CLI_REMEDIES
+
 __all__ = ["DEMO_CONTRAST", "QUIET_MESSAGES", "demo_paths", "install_message_filter", "launch"]
 
 #: Qt messages that say nothing to the user (the offscreen platform has no window manager).
@@ -238,7 +240,7 @@ def launch(
             d = demo_paths()
         except VoxelscopeError as err:
             if screenshot is not None:
-                print(f"voxelscope: error: {err}", file=sys.stderr)
+                print(f"voxelscope: error: {err.phrase(CLI_REMEDIES)}", file=sys.stderr)
                 return 2
             window.show_error(str(err))
             d = None
@@ -260,7 +262,7 @@ def launch(
         try:  # refuse a bad screenshot path before the run is opened
             guard_output(screenshot, inputs, force=force)
         except VoxelscopeError as err:
-            print(f"voxelscope: error: {err}", file=sys.stderr)
+            print(f"voxelscope: error: {err.phrase(CLI_REMEDIES)}", file=sys.stderr)
             window.close()
             return 2
         window.show()
@@ -303,7 +305,7 @@ def launch(
         try:
             window.save_image(screenshot, size, force=force)
         except VoxelscopeError as err:
-            print(f"voxelscope: error: {err}", file=sys.stderr)
+            print(f"voxelscope: error: {err.phrase(CLI_REMEDIES)}", file=sys.stderr)
             code = 2
         window.close()
         return code

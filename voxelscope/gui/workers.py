@@ -33,6 +33,7 @@ from voxelscope.core.errors import Cancelled, VoxelscopeError
 from voxelscope.gui.loading import load_bundle
 
 __all__ = [
+    "WINDOW_REMEDIES",
     "BackgroundJob",
     "JobFailure",
     "OpenRunJob",
@@ -47,6 +48,18 @@ log = logging.getLogger(__name__)
 _JOBS: set[BackgroundJob] = set()
 
 
+#: The window's words for the remedies the core's errors name (menu items, not flags);
+#: keys missing here keep the core's plain words (:data:`voxelscope.core.errors.REMEDIES`).
+WINDOW_REMEDIES: dict[str, str] = {
+    "events": "open one with File > Open events…",
+    "choose_events": "choose one with File > Open events…",
+    "confounds_for_columns": "open a table with File > Open confounds…",
+    "choose_confounds": "choose one with File > Open confounds…",
+    "atlas": "open the atlas image with File > Open atlas…",
+    "force": "choose to replace it or pick another folder",
+}
+
+
 def describe(error: BaseException, what: str = "the job") -> str:
     """The one line the window shows for ``error`` raised by the work called ``what``.
 
@@ -58,13 +71,15 @@ def describe(error: BaseException, what: str = "the job") -> str:
     >>> from voxelscope.core.errors import InputError
     >>> describe(InputError("a.tsv: no onset column; add one"), "the map")
     'a.tsv: no onset column; add one'
+    >>> describe(InputError("run.nii: no events file given", remedy="events"), "opening")
+    'run.nii: no events file given; open one with File > Open events…'
     >>> describe(MemoryError(), "the map")
     'the map: not enough memory'
     >>> describe(ZeroDivisionError("division by zero"), "the map")
     'the map failed (ZeroDivisionError: division by zero)'
     """
     if isinstance(error, VoxelscopeError):
-        return str(error)
+        return error.phrase(WINDOW_REMEDIES)
     if isinstance(error, MemoryError):
         return f"{what}: not enough memory"
     text = " ".join(str(error).split())[:160]
