@@ -780,25 +780,47 @@ def design_bias_matrix(prep: Any, lags: int = AR_ORDER) -> np.ndarray:
 
 def full_bias_matrix(X: np.ndarray, lags: int) -> np.ndarray:
     """``tr(L_j R S_k R)`` for ``j = 0..lags`` and every ``k = 0..n-1`` (lags + 1, n):
-    the expected residual autocovariances under a noise model with all its lags."""
+    the expected residual autocovariances under a noise model with all its lags.
+
+    Every term of :func:`bias_matrix`'s expansion is a sum along one diagonal of an
+    n x n matrix (``tr(A S_k)`` is the sum of A's diagonals at offsets ``+-k``), so all
+    ``k`` come from a few diagonal sums at once.
+    """
     X = np.asarray(X, dtype=np.float64)
     n = X.shape[0]
     q, _r = np.linalg.qr(X)
-    lq = [_lag(q, j) for j in range(lags + 1)]
-    qlq = [q.T @ a for a in lq]
+    Gq = q @ q.T
     out = np.zeros((lags + 1, n))
-    for k in range(n):
-        sq = _sym(q, k)
-        qsq = q.T @ sq
-        for j in range(lags + 1):
-            if k == 0:
-                t0 = float(n) if j == 0 else 0.0
-            else:
-                t0 = float(n - j) if j == k else 0.0
-            t1 = float(np.sum(q * _sym(lq[j], k)))
-            t2 = float(np.sum(q * _lag(sq, j)))
-            t3 = float(np.sum(qlq[j] * qsq.T))
-            out[j, k] = t0 - t1 - t2 + t3
+    k = np.arange(n)
+    for j in range(lags + 1):
+        lq = _lag(q, j)
+        t1 = _sym_diagonals(q @ lq.T)  # tr(Q' S_k L_j Q)
+        t2 = _sym_diagonals(Gq[j:], n)  # tr(Q' L_j S_k Q): rows t >= j of Q Q'
+        t3 = _sym_diagonals(q @ (q.T @ lq) @ q.T)  # tr(Q'L_jQ Q'S_kQ) = tr(Q Q'L_jQ Q' S_k)
+        t0 = np.where(k == j, float(n - j), 0.0)
+        out[j] = t0 - t1 - t2 + t3
+    return out
+
+
+def _sym_diagonals(A: np.ndarray, n: int | None = None) -> np.ndarray:
+    """``d[k] = sum_i A[i, i - k] + sum_i A[i, i + k]`` (once for ``k = 0``) for
+    ``k = 0..n-1``: ``tr(A' S_k)`` of an (r, c) matrix, diagonals relative to its own
+    first row.
+
+    >>> _sym_diagonals(np.arange(9.0).reshape(3, 3)).tolist()
+    [12.0, 16.0, 8.0]
+    """
+    r, c = A.shape
+    n = c if n is None else n
+    rows, cols = np.indices((r, c))
+    d = np.bincount((cols - rows + r - 1).ravel(), weights=A.ravel(), minlength=r + c - 1)
+    # offset m = col - row sits at index m + r - 1
+    out = np.zeros(n)
+    for sign in (1, -1):
+        m = sign * np.arange(n) + r - 1
+        ok = (m >= 0) & (m < d.size)
+        out[ok] += d[m[ok]]
+    out[0] -= d[r - 1]  # k = 0 counted once
     return out
 
 
