@@ -17,7 +17,7 @@ Rows:
   stream). Goal: at most 1 ms.
 - ``timeseries .nii``: the same on an uncompressed file (memory map); reference nibabel's
   memory-mapped ``img.dataobj[i, j, k, :]``. Goal: at most 1 ms.
-- ``brain pass``: every brain voxel through ``Run.iter_chunks`` (from the cache, and from
+- ``brain pass``: every brain voxel through ``Run.iter_rows`` (from the cache, and from
   the .nii memory map); reference: nibabel's full decompression in this process (scale).
 
 Setting for the time-series rows: a synthetic 64x64x40 run of 400 volumes, int16 with
@@ -229,7 +229,7 @@ def main():
         )
 
         t0 = time.perf_counter()
-        n = sum(idx.size for idx, _ in run.iter_chunks())
+        n = sum(idx.size for idx, _ in run.iter_rows())
         brain = time.perf_counter() - t0
         rows.append((f"brain pass, {n} voxels (cache)", brain, r, brain / r, "-", None))
 
@@ -244,7 +244,7 @@ def main():
 
         plain.mask()  # one pass for the mean image, as the window does on open
         t0 = time.perf_counter()
-        n = sum(idx.size for idx, _ in plain.iter_chunks())
+        n = sum(idx.size for idx, _ in plain.iter_rows())
         brain = time.perf_counter() - t0
         rows.append((f"brain pass, {n} voxels (.nii memmap)", brain, r, brain / r, "-", None))
 

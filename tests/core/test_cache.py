@@ -402,7 +402,7 @@ def test_input_bytes_unchanged(tmp_path):
     mtime = path.stat().st_mtime_ns
     run = open_run(path, cache_dir=tmp_path / "c")
     run.mask()
-    list(run.iter_chunks())
+    list(run.iter_rows())
     open_run(path, cache_dir=tmp_path / "c")
     assert _sha(path) == before and path.stat().st_mtime_ns == mtime
     assert _files(tmp_path) == ["c", "r.nii.gz"]  # nothing written beside the input

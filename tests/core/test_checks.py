@@ -117,7 +117,7 @@ def ar1_noise(rng, n, rho):
 
 
 class FakeRun:
-    """Stand-in with the Run contract the checks use (mask, voxel_size, iter_chunks, ...)."""
+    """Stand-in with the Run contract the checks use (mask, voxel_size, iter_rows, ...)."""
 
     def __init__(self, data: np.ndarray, mask: np.ndarray, voxel_size=(3.0, 3.0, 3.0)):
         self.data = np.asarray(data, dtype=np.float32)
@@ -131,7 +131,7 @@ class FakeRun:
     def mask(self):
         return self._mask
 
-    def iter_chunks(self, mask=None, chunk_voxels=64):
+    def iter_rows(self, mask=None, chunk_voxels=64):
         self.chunk_calls += 1
         flat = np.flatnonzero(self._mask if mask is None else mask)
         rows = self.data.reshape(-1, self.n_volumes)

@@ -210,9 +210,9 @@ class VolumeRun:
 
 
 class FakeRun(VolumeRun):
-    """Adds iter_chunks (voxel-major chunks in C order, as Run.iter_chunks)."""
+    """Adds iter_rows (voxel-major chunks in C order, as Run.iter_rows)."""
 
-    def iter_chunks(self, mask=None, chunk_voxels=7):
+    def iter_rows(self, mask=None, chunk_voxels=7):
         self.chunk_calls += 1
         mask = self._mask if mask is None else mask
         flat = np.flatnonzero(mask)

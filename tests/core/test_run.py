@@ -107,7 +107,7 @@ def test_functional_geometry_matches_nibabel():
 
 
 def test_functional_many_chunks_volume_mean_match_nibabel():
-    """timeseries_many / iter_chunks / volume / mean_image against nibabel's get_fdata()
+    """timeseries_many / iter_rows / volume / mean_image against nibabel's get_fdata()
     (float32 results, so a relative tolerance of float32 precision)."""
     ref = nib.load(str(FUNCTIONAL)).get_fdata()
     run = open_run(FUNCTIONAL)
@@ -119,7 +119,7 @@ def test_functional_many_chunks_volume_mean_match_nibabel():
     np.testing.assert_allclose(run.volume(7), ref[..., 7], rtol=1e-6)
     np.testing.assert_allclose(run.mean_image(), ref.mean(axis=3), rtol=1e-6)
     mask = rng.random(run.shape) < 0.4
-    parts = list(run.iter_chunks(mask, chunk_voxels=37))
+    parts = list(run.iter_rows(mask, chunk_voxels=37))
     idx = np.concatenate([p[0] for p in parts])
     np.testing.assert_array_equal(idx, np.flatnonzero(mask))
     np.testing.assert_allclose(
@@ -182,7 +182,7 @@ def test_scaling_applied_every_store(tmp_path, suffix, use_cache, storage):
     )
     np.testing.assert_allclose(run.volume(3), expect[..., 3], rtol=1e-6, atol=1e-5)
     full = np.ones(run.shape, dtype=bool)
-    idx, data = zip(*run.iter_chunks(full, chunk_voxels=17))
+    idx, data = zip(*run.iter_rows(full, chunk_voxels=17))
     np.testing.assert_array_equal(np.concatenate(idx), np.arange(run.n_voxels))
     np.testing.assert_allclose(np.concatenate(data), expect.reshape(-1, 9), rtol=1e-6, atol=1e-5)
     np.testing.assert_allclose(run.mean_image(), expect.mean(axis=3), rtol=1e-6, atol=1e-5)
@@ -393,7 +393,7 @@ def test_nan_and_constant_voxels_leave_the_mask_said_once(tmp_path):
     mean = run.mean_image()
     assert np.all(np.isfinite(mean)) and mean[5, 5, 5] == 0.0
     np.testing.assert_allclose(mean[6, 6, 6], np.mean(data[6, 6, 6], dtype=np.float64), rtol=1e-6)
-    chunks = list(run.iter_chunks())
+    chunks = list(run.iter_rows())
     assert sum(len(c[0]) for c in chunks) == int(expect.sum())
     assert all(np.all(np.isfinite(c[1])) for c in chunks)
 
@@ -466,7 +466,7 @@ def test_input_file_is_never_modified(tmp_path):
     before = _sha(path)
     run = open_run(path)
     run.mask()
-    list(run.iter_chunks())
+    list(run.iter_rows())
     assert _sha(path) == before
 
 
@@ -634,7 +634,7 @@ def test_returned_arrays_are_plain_writable_copies(tmp_path, suffix, use_cache, 
         run.volume(2),
         run.timeseries((1, 1, 1)),
         run.timeseries_many(np.arange(5)),
-        next(run.iter_chunks())[1],
+        next(run.iter_rows())[1],
     ):
         assert type(arr) is np.ndarray and arr.flags.writeable
         arr[...] = 0

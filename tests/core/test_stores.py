@@ -79,11 +79,11 @@ def test_rows_follow_the_order_given_and_are_copies(opened):
     _close(store.rows(flat), ref.reshape(-1, SHAPE[3])[flat])
 
 
-def test_chunks_cover_the_ascending_indices(opened):
+def test_rows_cover_the_ascending_indices(opened):
     store, ref = opened
     flat = np.flatnonzero(np.random.default_rng(2).random(SHAPE[:3]) < 0.5).astype(np.int64)
     seen = []
-    for idx, data in store.chunks(flat, 9):
+    for idx, data in store.iter_rows(flat, 9):
         assert 1 <= idx.size <= 9 and data.shape == (idx.size, SHAPE[3])
         assert data.dtype == np.float32
         _close(data, ref.reshape(-1, SHAPE[3])[idx])
@@ -96,14 +96,14 @@ def test_blocks_hold_each_voxel_of_the_mask_once(opened, block):
     store, ref = opened
     mask = np.random.default_rng(3).random(SHAPE[:3]) < 0.6
     seen = []
-    for idx, data in store.blocks(mask, block):
+    for idx, data in store.iter_blocks(mask, block):
         assert idx.dtype == np.int64 and 1 <= idx.size <= block
         assert data.dtype == np.float32 and data.shape == (SHAPE[3], idx.size)
         _close(data, ref[np.unravel_index(idx, SHAPE[:3])].T)
         seen.append(idx)
     seen = np.concatenate(seen)
     np.testing.assert_array_equal(np.sort(seen), np.flatnonzero(mask))
-    assert list(store.blocks(np.zeros(SHAPE[:3], bool), block)) == []
+    assert list(store.iter_blocks(np.zeros(SHAPE[:3], bool), block)) == []
 
 
 def test_volume_equals_nibabel(opened):

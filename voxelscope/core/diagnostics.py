@@ -287,7 +287,7 @@ class RunSummary:
     Parameters
     ----------
     run : Run-like
-        Needs ``mask()``, ``voxel_size``, ``n_volumes`` and either ``iter_chunks(mask)`` or
+        Needs ``mask()``, ``voxel_size``, ``n_volumes`` and either ``iter_rows(mask)`` or
         ``volume(t)``.
 
     Attributes
@@ -378,8 +378,8 @@ def _frame_rms_change(run: Any, mask: np.ndarray, n_volumes: int) -> np.ndarray:
         return out
     sumsq = np.zeros(n_volumes - 1)
     count = 0
-    if hasattr(run, "iter_chunks"):
-        for _idx, data in run.iter_chunks(mask=mask):
+    if hasattr(run, "iter_rows"):
+        for _idx, data in run.iter_rows(mask=mask):
             d = np.diff(np.asarray(data, dtype=np.float64), axis=1)
             sumsq += np.einsum("ij,ij->j", d, d)
             count += d.shape[0]

@@ -222,7 +222,7 @@ class ArrayRun:
         varies = np.ptp(np.where(finite[:, None], flat, 0), axis=1) > 0
         return (finite & varies).reshape(self.shape)
 
-    def iter_chunks(
+    def iter_rows(
         self, mask: np.ndarray | None = None, chunk_voxels: int = 4096
     ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         mask = self.mask() if mask is None else np.asarray(mask, dtype=bool)
@@ -236,7 +236,7 @@ class ArrayRun:
         self, mask: np.ndarray | None = None, block_voxels: int = 1024
     ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """(flat_idx, float32 (T, n)) blocks in C order, as :meth:`Run.iter_blocks`."""
-        for idx, rows in self.iter_chunks(mask, chunk_voxels=block_voxels):
+        for idx, rows in self.iter_rows(mask, chunk_voxels=block_voxels):
             yield idx, rows.T
 
     def voxel_to_mm(self, ijk: Any) -> np.ndarray:
@@ -381,7 +381,7 @@ def compute_map(
     ----------
     run : Run
         Anything with ``shape``, ``n_volumes``, ``affine``, ``mask()`` and
-        ``iter_blocks(mask, block_voxels)`` (or only ``iter_chunks(mask, chunk_voxels)``);
+        ``iter_blocks(mask, block_voxels)`` (or only ``iter_rows(mask, chunk_voxels)``);
         see :class:`voxelscope.core.run.Run`.
     analysis : Analysis
         Conditions and confounds of the run.
@@ -471,7 +471,7 @@ def compute_map(
         if hasattr(run, "iter_blocks"):
             return run.iter_blocks(mask, block_voxels=int(chunk_voxels))
         # a run with only the row interface: (n, T) rows, transposed (a view)
-        return ((i, d.T) for i, d in run.iter_chunks(mask, chunk_voxels=int(chunk_voxels)))
+        return ((i, d.T) for i, d in run.iter_rows(mask, chunk_voxels=int(chunk_voxels)))
 
     def store(idx: np.ndarray, res) -> None:
         nonlocal done

@@ -265,7 +265,7 @@ class Run:
         """
         return self._store.rows(self._check_flat(flat_idx))
 
-    def iter_chunks(
+    def iter_rows(
         self, mask: np.ndarray | None = None, chunk_voxels: int = 4096
     ) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """Iterate over the voxels of a mask in C order, a chunk at a time.
@@ -296,7 +296,7 @@ class Run:
         flat = np.flatnonzero(mask).astype(np.int64)
         if flat.size == 0:
             return
-        yield from self._store.chunks(flat, int(chunk_voxels))
+        yield from self._store.iter_rows(flat, int(chunk_voxels))
 
     def iter_blocks(
         self, mask: np.ndarray | None = None, block_voxels: int = 1024
@@ -346,7 +346,7 @@ class Run:
             )
         if block_voxels < 1:
             raise ValueError("block_voxels must be at least 1")
-        yield from self._store.blocks(mask, int(block_voxels))
+        yield from self._store.iter_blocks(mask, int(block_voxels))
 
     def volume(self, t: int) -> np.ndarray:
         """Volume ``t`` (0-based) as float32 (X, Y, Z)."""

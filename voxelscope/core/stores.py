@@ -36,7 +36,7 @@ from voxelscope.core.rawfile import RawLayout
 __all__ = ["MappedStore", "VoxelSource"]
 
 # Float32 bytes of one slab copied while iterating an uncompressed run in C order
-# (chunks); blocks read the file in place and copy at most one block.
+# (iter_rows); blocks read the file in place and copy at most one block.
 SLAB_BYTES = 32 * 1024 * 1024
 # Columns of a memory-mapped run handed out as blocks before their pages are released.
 RELEASE_COLUMNS = 8192
@@ -64,11 +64,11 @@ class VoxelSource(Protocol):
         """Many voxels' time series, float32 (n, T), in the order given."""
         ...
 
-    def chunks(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_rows(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """``(flat_idx, data (n, T))`` for ascending ``flat``, ``chunk`` voxels at most."""
         ...
 
-    def blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """``(flat_idx, data (T, n))`` for the voxels of ``mask`` in the store's own order.
 
         ``data`` may be a read-only view of the store (not necessarily contiguous).
@@ -143,7 +143,7 @@ class MappedStore:
         i, j, k = np.unravel_index(flat_idx, self.shape)
         return self._scale32(self.raw[i, j, k, :])
 
-    def chunks(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_rows(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         x, y, z = self.shape
         t = self.raw.shape[3]
         plane = y * z  # flat indices of x-slab [i0, i1) are [i0*plane, i1*plane)
@@ -165,7 +165,7 @@ class MappedStore:
                 cols = tmp2[:, local[a : a + chunk]]
                 yield sel[a : a + chunk], self._scale32(np.ascontiguousarray(cols.T))
 
-    def blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """(T, n) blocks straight from the file's layout, in Fortran (x fastest) order.
 
         The file is a C-order (T, X*Y*Z) array whose column ``f`` is the voxel with Fortran

@@ -425,7 +425,7 @@ class VoxelStore:
     def rows(self, flat_idx: np.ndarray) -> np.ndarray:
         return self._guarded(lambda: self._gather(np.asarray(flat_idx, dtype=np.int64)))
 
-    def chunks(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_rows(self, flat: np.ndarray, chunk: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         self._prefetch(flat)
         for a in range(0, flat.size, chunk):
             idx = flat[a : a + chunk]
@@ -440,7 +440,7 @@ class VoxelStore:
             with self._lock:
                 self._fetched = dict(zip(other.tolist(), got))
 
-    def blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+    def iter_blocks(self, mask: np.ndarray, block: int) -> Iterator[tuple[np.ndarray, np.ndarray]]:
         """(T, n) blocks of the voxels of ``mask`` in storage order.
 
         A block is a read-only view of the rows where its voxels are consecutive stored
@@ -450,7 +450,7 @@ class VoxelStore:
         if flat.size == 0:
             return
         if self._rows is None:
-            for idx, rows in self.chunks(flat, block):
+            for idx, rows in self.iter_rows(flat, block):
                 yield idx, rows.T
             return
         pos = self._pos[flat].astype(np.int64)
@@ -461,7 +461,7 @@ class VoxelStore:
             yield idx, self._guarded(lambda idx=idx: self._block_of(idx))
         rest = flat[~have]
         if rest.size:
-            for idx, rows in self.chunks(rest, block):
+            for idx, rows in self.iter_rows(rest, block):
                 yield idx, rows.T
 
     def _block_of(self, idx: np.ndarray) -> np.ndarray:
