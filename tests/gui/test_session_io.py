@@ -266,3 +266,22 @@ def test_refused_entries_are_not_replaced_by_companions(qtbot, ras_run, tmp_path
     assert bundle.events_path is None and bundle.confounds_path is None
     used = bundle.inputs.used_files()
     assert used["events"] is None and used["confounds"] is None
+
+
+def test_session_keeps_the_atlas(qtbot, ras_run, tmp_path):
+    """The atlas and its label table are session inputs (digests checked like the others)."""
+    import nibabel as nib
+
+    atlas = tmp_path / "atlas-x_dseg.nii.gz"
+    nib.save(nib.Nifti1Image(np.full((4, 4, 4), 3, np.int16), np.diag([9, 9, 9, 1.0])), atlas)
+    table = tmp_path / "labels.tsv"
+    table.write_text("index\tname\n3\tsomewhere\n")
+    a = new_window(qtbot, tmp_path, "a")
+    assert a.open_run(ras_run["run"], background=False, atlas=str(atlas), atlas_labels=str(table))
+    path = save_window_session(a, tmp_path / "view.voxelscope.json")
+    files = json.loads(Path(path).read_text())["files"]
+    assert "atlas" in files and "atlas labels" in files
+    b = new_window(qtbot, tmp_path, "b")
+    assert open_session(b, path)
+    assert b.state.atlas is not None and b.state.atlas.names == {3: "somewhere"}
+    assert "<b>Region</b>" in b.slices.readout.text()

@@ -61,7 +61,7 @@ __all__ = [
 SESSION_FILTER = f"voxelscope sessions (*{SESSION_SUFFIX});;JSON (*.json);;All files (*)"
 #: Roles of input files in a session (core names) and the ``open_run`` argument for each.
 ROLES = {"run": "run", "events": "events", "confounds": "confounds", "anatomy": "anat",
-         "overlay": "stat_map"}  # fmt: skip
+         "overlay": "stat_map", "atlas": "atlas", "atlas labels": "atlas_labels"}  # fmt: skip
 LAYOUT_KIND = "qt-main-window"
 
 Locate = Callable[[FileProblem], "Path | None"]
@@ -128,6 +128,11 @@ def collect_session(window) -> Session:
             files["sidecar"] = sidecar
         if bundle.underlay is not None and bundle.underlay.path is not None:
             files["anatomy"] = Path(bundle.underlay.path)
+        atlas = getattr(bundle, "atlas", None)
+        if atlas is not None and atlas.path is not None:
+            files["atlas"] = Path(atlas.path)
+            if atlas.table_path is not None:
+                files["atlas labels"] = Path(atlas.table_path)
         overlay = _overlay_path(window)
         if overlay is not None:
             files["overlay"] = overlay
@@ -325,6 +330,8 @@ def apply_session(
         tr=tr,
         voxel=s.voxel,
         background=background,
+        atlas=kwargs.get("atlas"),
+        atlas_labels=kwargs.get("atlas_labels") if kwargs.get("atlas") else None,
         no_events="events" in refused,
         no_confounds="confounds" in refused,
     )
