@@ -2,15 +2,15 @@
 
 A :class:`Figure` is a list of primitives (:class:`Rect`, :class:`Polyline`, :class:`Text`)
 in logical units (CSS pixels). :meth:`Figure.to_svg` writes them as SVG text;
-:meth:`Figure.to_png` rasterises the same list in pure numpy (anti-aliased lines and
-rectangle edges, a small built-in 5x7 bitmap font) and encodes a PNG with zlib, so the two
-files always show the same content. Text outside printable ASCII appears as ``?`` in the
-PNG (the SVG keeps it).
+:meth:`Figure.to_png` draws the same list with matplotlib's Agg renderer (anti-aliased,
+text in :data:`~voxelscope.core.palette.FIGURE_FONT`, the family the window's plots use)
+and saves it with Pillow, so the two files show the same content. matplotlib is imported
+only when a figure is drawn or its text measured, never by the command line's start-up.
 
-:func:`signal_figure` lays out the report figure for one voxel: the time series in dark
-grey, each kernel's fitted signal in its colour (Okabe & Ito, 2008, colour-universal
-palette), condition blocks as light shaded bands, a residual panel, ticks, axis labels and
-a legend.
+:func:`signal_figure` lays out the report figure for one voxel: the time series in grey,
+each kernel's fitted signal in its colour (Okabe & Ito, 2008, colour-universal palette, from
+``resources/colours.json`` through :mod:`voxelscope.core.palette`), condition blocks as
+light shaded bands, a residual panel, ticks, axis labels and a legend.
 
 Examples
 --------
@@ -27,31 +27,28 @@ True
 
 from __future__ import annotations
 
-import itertools
-import json
+import io
 import math
 import os
 import struct
-import zlib
+import warnings
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
-from xml.sax.saxutils import escape
+from xml.sax.saxutils import escape, quoteattr
 
 import numpy as np
 
 from .atomic import write_bytes, write_text
+from .palette import FIGURE_FONT, colours, condition_colours, kernel_colours
 
 __all__ = [
-    "DATA_COLOUR",
-    "FALLBACK_CONDITION_COLOURS",
-    "FALLBACK_KERNEL_COLOURS",
     "Figure",
     "Polyline",
     "Rect",
     "Text",
-    "colour_mismatches",
-    "encode_png",
+    "data_colour",
     "kernel_colours",
     "nice_ticks",
     "png_size",
@@ -60,118 +57,17 @@ __all__ = [
     "text_width",
 ]
 
-DATA_COLOUR = "#333333"
-# Okabe & Ito (2008) colour-universal palette; the same colour per kernel everywhere. These
-# fall-backs equal resources/colours.json (the window's colours) when that file is missing.
-FALLBACK_KERNEL_COLOURS: dict[str, str] = {
-    "boxcar": "#000000",  # black
-    "gaussian": "#009E73",  # bluish green
-    "gamma": "#CC79A7",  # reddish purple
-    "double-gamma": "#D55E00",  # vermillion
-    "fir": "#0072B2",  # blue
-}
+# colours for kernels the palette file does not name (Okabe & Ito hues not used by kernels)
 _SPARE_COLOURS = ("#E69F00", "#56B4E9", "#F0E442")
-# condition bands: palette hues drawn at low opacity behind the signal
-FALLBACK_CONDITION_COLOURS = ("#56B4E9", "#E69F00", "#009E73", "#F0E442", "#CC79A7", "#0072B2")
-_BAND_OPACITY = 0.22
-
-
-# ----------------------------------------------------------------------------- colours
-
-
-def _colour_files() -> list[Path]:
-    here = Path(__file__).resolve().parent.parent  # voxelscope/
-    return [here / "resources" / "colours.json", here.parent / "resources" / "colours.json"]
-
-
-def _load_colour_file() -> dict | None:
-    for p in _colour_files():
-        if p.is_file():
-            try:
-                data = json.loads(p.read_text(encoding="utf-8"))
-            except (OSError, ValueError):
-                return None
-            return data if isinstance(data, dict) else None
-    return None
-
-
-def _is_hex(c: object) -> bool:
-    return isinstance(c, str) and len(c) == 7 and c[0] == "#" and _parse_ok(c[1:])
-
-
-def _parse_ok(h: str) -> bool:
-    try:
-        int(h, 16)
-    except ValueError:
-        return False
-    return True
-
-
-def _section(data: dict | None, key: str) -> dict[str, str]:
-    if not data:
-        return {}
-    sec = data.get(key)
-    if isinstance(sec, dict):
-        out = {}
-        for k, v in sec.items():
-            if isinstance(v, dict):  # {"colour": "#..."} style entries
-                v = v.get("colour", v.get("color"))
-            if _is_hex(v):
-                out[str(k)] = v
-        return out
-    return {}
-
-
-def kernel_colours() -> dict[str, str]:
-    """Kernel name -> ``#RRGGBB``: from ``resources/colours.json`` (key ``kernels``) when it
-    exists, else :data:`FALLBACK_KERNEL_COLOURS`.
-
-    >>> kernel_colours()["double-gamma"].startswith("#")
-    True
-    """
-    colours = dict(FALLBACK_KERNEL_COLOURS)
-    colours.update(_section(_load_colour_file(), "kernels"))
-    return colours
-
-
-def colour_mismatches() -> list[str]:
-    """Differences between ``resources/colours.json`` and the fallback colours (for checks).
-
-    >>> isinstance(colour_mismatches(), list)
-    True
-    """
-    from_file = _section(_load_colour_file(), "kernels")
-    return [
-        f"kernel '{k}': colours.json has {from_file[k]}, figure.py falls back to {v}"
-        for k, v in FALLBACK_KERNEL_COLOURS.items()
-        if k in from_file and from_file[k].lower() != v.lower()
-    ]
-
-
-def _condition_colours() -> list[str]:
-    data = _load_colour_file() or {}
-    sec = data.get("conditions")
-    if isinstance(sec, dict):
-        sec = list(sec.values())
-    good = [c for c in sec if _is_hex(c)] if isinstance(sec, list) else []
-    return good or list(FALLBACK_CONDITION_COLOURS)
-
-
-def _band_opacity() -> float:
-    v = (_load_colour_file() or {}).get("condition_band_alpha")
-    ok = isinstance(v, (int, float)) and not isinstance(v, bool) and 0 < v <= 1
-    return float(v) if ok else _BAND_OPACITY
 
 
 def data_colour() -> str:
-    """Colour of the voxel's time series (``data_trace`` in colours.json, else dark grey)."""
-    v = (_load_colour_file() or {}).get("data_trace")
-    return v if _is_hex(v) else DATA_COLOUR
+    """Colour of the voxel's time series (``data_trace`` in colours.json)."""
+    return str(colours()["data_trace"])
 
 
-def _rgb(colour: str) -> np.ndarray:
-    h = colour.lstrip("#")
-    return np.array([int(h[i : i + 2], 16) for i in (0, 2, 4)], dtype=np.float32) / 255.0
+def _band_opacity() -> float:
+    return float(colours()["condition_band_alpha"])
 
 
 # -------------------------------------------------------------------------- primitives
@@ -212,19 +108,44 @@ class Text:
     rotate: int = 0
 
 
+@lru_cache(maxsize=1)
+def _text_measure():
+    from matplotlib.font_manager import FontProperties
+    from matplotlib.textpath import TextToPath
+
+    return TextToPath(), FontProperties(family=FIGURE_FONT)
+
+
+@lru_cache(maxsize=512)
 def text_width(text: str, size: float) -> float:
-    """Advance width of ``text`` at font size ``size`` (0.6 em per character)."""
-    return 0.6 * size * len(text)
+    """Advance width of ``text`` at font size ``size`` in :data:`FIGURE_FONT` (logical
+    units; measured by matplotlib with the font the PNG is drawn in).
+
+    >>> round(text_width("tone", 10.0) / text_width("tone", 20.0), 3)
+    0.5
+    """
+    if not text:
+        return 0.0
+    measure, props = _text_measure()
+    p = props.copy()
+    p.set_size(size)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")  # a glyph the font lacks is drawn as a box
+        w, _h, _d = measure.get_text_width_height_descent(_clean(text), p, ismath=False)
+    return float(w)
 
 
 def _clean(text: str) -> str:
-    """Text safe for XML 1.0 and the bitmap font: control characters become spaces."""
+    """Text safe for XML 1.0: control characters become spaces."""
     return "".join(
         " "
         if ch < " " or ch == "\x7f" or ch in "\ufffe\uffff" or "\ud800" <= ch <= "\udfff"
         else ch
         for ch in str(text)
     )
+
+
+_ANCHOR = {"start": "left", "middle": "center", "end": "right"}
 
 
 class Figure:
@@ -243,9 +164,10 @@ class Figure:
     def to_svg(self) -> str:
         """The figure as a standalone SVG document (text)."""
         w, h = _num(self.width), _num(self.height)
+        family = quoteattr(f"{FIGURE_FONT}, sans-serif")
         out = [
             f'<svg xmlns="http://www.w3.org/2000/svg" width="{w}" height="{h}" '
-            f'viewBox="0 0 {w} {h}">',
+            f'viewBox="0 0 {w} {h}" font-family={family}>',
             f'<rect x="0" y="0" width="{w}" height="{h}" fill="{self.background}"/>',
         ]
         for it in self.items:
@@ -269,7 +191,7 @@ class Figure:
                     else ""
                 )
                 out.append(
-                    f'<text x="{_num(it.x)}" y="{_num(it.y)}" font-family="monospace" '
+                    f'<text x="{_num(it.x)}" y="{_num(it.y)}" '
                     f'font-size="{_num(it.size)}" fill="{it.fill}" text-anchor="{anchor}" '
                     f'dominant-baseline="central"{rot}>{escape(_clean(it.text))}</text>'
                 )
@@ -278,27 +200,88 @@ class Figure:
 
     # ------------------------------------------------------------------------- PNG
     def to_array(self, scale: float = 1.0) -> np.ndarray:
-        """Rasterise to an RGB uint8 array of shape ``(round(H*scale), round(W*scale), 3)``."""
+        """Draw with matplotlib (Agg) to an RGB uint8 array of shape
+        ``(round(H*scale), round(W*scale), 3)``."""
         if not (scale > 0 and math.isfinite(scale)):
             raise ValueError("scale must be a positive number")
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure as MplFigure
+        from matplotlib.lines import Line2D
+        from matplotlib.patches import Rectangle
+
         W = max(1, round(self.width * scale))
         H = max(1, round(self.height * scale))
-        canvas = np.empty((H, W, 3), dtype=np.float32)
-        canvas[:] = _rgb(self.background)
+        # one logical unit = one point at 72 * scale dots per inch, so sizes and line
+        # widths in logical units are matplotlib's points; the small margin keeps Agg
+        # from rounding the canvas one pixel short
+        dpi = 72.0 * scale
+        pad = 0.25
+        fig = MplFigure(figsize=((W + pad) / dpi, (H + pad) / dpi), dpi=dpi)
+        fig.patch.set_facecolor(self.background)
+        canvas = FigureCanvasAgg(fig)
+        ax = fig.add_axes((0.0, 0.0, 1.0, 1.0))
+        ax.set_axis_off()
+        ax.set_xlim(0.0, (W + pad) / scale)
+        ax.set_ylim(H / scale, -pad / scale)  # the pad lies above the top row, unseen
         for it in self.items:
             if isinstance(it, Rect):
-                _fill_rect(canvas, it, scale)
+                ax.add_patch(
+                    Rectangle(
+                        (it.x, it.y),
+                        it.w,
+                        it.h,
+                        facecolor=it.fill,
+                        alpha=it.opacity,
+                        linewidth=0,
+                        snap=False,  # a half-covered pixel is blended, as in the SVG
+                        clip_on=False,
+                    )
+                )
             elif isinstance(it, Polyline):
-                _stroke(canvas, it, scale)
+                xs = [p[0] for p in it.points]
+                ys = [p[1] for p in it.points]
+                ax.add_line(
+                    Line2D(
+                        xs,
+                        ys,
+                        color=it.stroke,
+                        linewidth=it.width,
+                        alpha=it.opacity,
+                        solid_joinstyle="round",
+                        solid_capstyle="round",
+                        clip_on=False,
+                    )
+                )
             elif isinstance(it, Text):
-                _draw_text(canvas, it, scale)
-        return np.clip(np.rint(canvas * 255.0), 0, 255).astype(np.uint8)
+                ax.text(
+                    it.x,
+                    it.y,
+                    _clean(it.text),
+                    fontsize=it.size,
+                    color=it.fill,
+                    family=FIGURE_FONT,
+                    ha=_ANCHOR[it.anchor],
+                    va="center",
+                    rotation=-it.rotate,
+                    rotation_mode="anchor",
+                    parse_math=False,
+                    clip_on=False,
+                )
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # a glyph the font lacks is drawn as a box
+            canvas.draw()
+        rgba = np.asarray(canvas.buffer_rgba())
+        return np.ascontiguousarray(rgba[:H, :W, :3])
 
     def to_png(self, scale: float = 1.0, width_px: int | None = None) -> bytes:
         """PNG bytes at ``scale`` device pixels per unit (or scaled to ``width_px`` wide)."""
         if width_px is not None:
             scale = float(width_px) / self.width
-        return encode_png(self.to_array(scale))
+        from PIL import Image
+
+        buf = io.BytesIO()
+        Image.fromarray(self.to_array(scale), "RGB").save(buf, format="PNG")
+        return buf.getvalue()
 
     def save_svg(self, path: str | os.PathLike[str], force: bool = False) -> Path:
         """Write the SVG atomically (refuses to overwrite unless ``force``)."""
@@ -324,184 +307,10 @@ def _opacity(op: float, what: str) -> str:
     return "" if op >= 1.0 else f' {what}-opacity="{_num(op)}"'
 
 
-# ----------------------------------------------------------------------- rasteriser
-
-
-def _blend(canvas: np.ndarray, ys: slice, xs: slice, alpha: np.ndarray, colour: str) -> None:
-    a = alpha[..., None]
-    region = canvas[ys, xs]
-    region *= 1.0 - a
-    region += a * _rgb(colour)
-
-
-def _cover_1d(lo: float, hi: float, n: int) -> tuple[int, np.ndarray]:
-    """Per-pixel coverage of the interval [lo, hi] on pixels 0..n-1; returns (start, cover)."""
-    i0 = max(0, math.floor(lo))
-    i1 = min(n, math.ceil(hi))
-    if i1 <= i0:
-        return 0, np.zeros(0, dtype=np.float32)
-    px = np.arange(i0, i1, dtype=np.float32)
-    cov = np.clip(np.minimum(px + 1, hi) - np.maximum(px, lo), 0.0, 1.0)
-    return i0, cov.astype(np.float32)
-
-
-def _fill_rect(canvas: np.ndarray, r: Rect, s: float) -> None:
-    H, W = canvas.shape[:2]
-    x0, c_x = _cover_1d(r.x * s, (r.x + r.w) * s, W)
-    y0, c_y = _cover_1d(r.y * s, (r.y + r.h) * s, H)
-    if c_x.size == 0 or c_y.size == 0:
-        return
-    alpha = np.outer(c_y, c_x) * float(r.opacity)
-    _blend(canvas, slice(y0, y0 + c_y.size), slice(x0, x0 + c_x.size), alpha, r.fill)
-
-
-def _stroke(canvas: np.ndarray, line: Polyline, s: float) -> None:
-    pts = np.asarray(line.points, dtype=np.float64).reshape(-1, 2) * s
-    if len(pts) == 0:
-        return
-    if len(pts) == 1:
-        pts = np.vstack([pts, pts])
-    H, W = canvas.shape[:2]
-    hw = max(line.width * s, 1.0) / 2.0
-    pad = hw + 1.0
-    lo = np.floor(np.maximum(pts.min(axis=0) - pad, 0)).astype(int)
-    hi = np.ceil(np.minimum(pts.max(axis=0) + pad, [W, H])).astype(int)
-    if np.any(hi <= lo):
-        return
-    cov = np.zeros((hi[1] - lo[1], hi[0] - lo[0]), dtype=np.float32)
-    for (ax, ay), (bx, by) in itertools.pairwise(pts):
-        x0 = max(math.floor(min(ax, bx) - pad), lo[0])
-        x1 = min(math.ceil(max(ax, bx) + pad), hi[0])
-        y0 = max(math.floor(min(ay, by) - pad), lo[1])
-        y1 = min(math.ceil(max(ay, by) + pad), hi[1])
-        if x1 <= x0 or y1 <= y0:
-            continue
-        px = np.arange(x0, x1, dtype=np.float32)[None, :] + 0.5
-        py = np.arange(y0, y1, dtype=np.float32)[:, None] + 0.5
-        dx, dy = bx - ax, by - ay
-        L2 = dx * dx + dy * dy
-        if L2 > 0:
-            t = np.clip(((px - ax) * dx + (py - ay) * dy) / L2, 0.0, 1.0)
-        else:
-            t = np.zeros((1, 1), dtype=np.float32)
-        d = np.hypot(px - (ax + t * dx), py - (ay + t * dy))
-        c = np.clip(hw + 0.5 - d, 0.0, 1.0)
-        sub = cov[y0 - lo[1] : y1 - lo[1], x0 - lo[0] : x1 - lo[0]]
-        np.maximum(sub, c, out=sub)
-    _blend(canvas, slice(lo[1], hi[1]), slice(lo[0], hi[0]), cov * float(line.opacity), line.stroke)
-
-
-# Our own 5x7 glyphs for printable ASCII (32..126): 7 rows per glyph, each row one base-32
-# digit whose 5 bits are the pixels from left to right.
-_FONT = (
-    "00000004444404aa00000avaaava4fke5u4op248j3cic8lid44000002488842842224804lel40044v440"
-    "0000648000v00000000cc01248g0ehjlphe4c4444eeh1248vv2421he26aiv22vgu11he68guhhev124888"
-    "ehhehheehhf12c0cc0cc00cc0c48248g84200v0v008421248eh12404eh1dlleehhvhhhuhhuhhuehggghe"
-    "sihhhisvgguggvvggugggehgnhhfhhhvhhhe44444e72222ichikokihggggggvhrllhhhhhpljhhehhhhhe"
-    "uhhugggehhhliduhhukihfgge11uv444444hhhhhhehhhhha4hhhlllahha4ahhhha4444v1248gve88888e"
-    "0g84210e22222e4ah0000000000v840000000e1fhfggmphhu00egghe11djhhf00ehvge698s888fhhhf1e"
-    "ggmphhh40c444e20622icggikokic44444e00qllhh00mphhh00ehhheuhhhuggfhhhf1100mpggg00ege1u"
-    "88s889600hhhjd00hhha400hhlla00ha4ahhhhhf1e00v248v244844244444448442448008l200"
-)
-_GLYPHS: dict[str, np.ndarray] = {}
-_DESCENDERS = "gpqy"
-
-
-def _glyph(ch: str) -> np.ndarray:
-    g = _GLYPHS.get(ch)
-    if g is None:
-        code = ord(ch) if " " <= ch <= "~" else ord("?")
-        rows = _FONT[(code - 32) * 7 : (code - 32) * 7 + 7]
-        bits = [[(int(r, 32) >> (4 - b)) & 1 for b in range(5)] for r in rows]
-        g = np.array(bits, dtype=np.float32)
-        _GLYPHS[ch] = g
-    return g
-
-
-def _text_mask(text: str, k: int) -> np.ndarray:
-    """Bitmap of a text line: cells of 6 x 10 font pixels, each scaled by ``k``.
-
-    Glyphs sit on rows 1-7; ``g p q y`` sit two rows lower so their tails descend.
-    """
-    n = max(len(text), 1)
-    mask = np.zeros((10, 6 * n), dtype=np.float32)
-    for i, ch in enumerate(text):
-        r = 3 if ch in _DESCENDERS else 1
-        mask[r : r + 7, 6 * i : 6 * i + 5] = _glyph(ch)
-    return np.kron(mask, np.ones((k, k), dtype=np.float32))
-
-
-def _draw_text(canvas: np.ndarray, t: Text, s: float) -> None:
-    text = _clean(t.text)
-    if not text.strip():
-        return
-    unit = t.size * s / 10.0  # one font pixel: a 7-row glyph is 0.7 em tall
-    k = max(1, round(unit))
-    mask = _text_mask(text, k)
-    # the mask is drawn at the nominal width so layout matches the SVG
-    if t.rotate:
-        mask = np.rot90(mask)  # -90 degrees: text reads bottom to top
-    mh, mw = mask.shape
-    along = mw if not t.rotate else mh
-    shift = {"start": 0.0, "middle": along / 2.0, "end": float(along)}[t.anchor]
-    cx, cy = t.x * s, t.y * s
-    centre = 4.5 * k  # middle of the capital letters (rows 1-7 of a cell)
-    if not t.rotate:
-        x0 = round(cx - shift)
-        y0 = round(cy - centre)
-    else:
-        x0 = round(cx - centre)
-        y0 = round(cy - along + shift)
-    H, W = canvas.shape[:2]
-    xa, ya = max(x0, 0), max(y0, 0)
-    xb, yb = min(x0 + mw, W), min(y0 + mh, H)
-    if xb <= xa or yb <= ya:
-        return
-    sub = mask[ya - y0 : yb - y0, xa - x0 : xb - x0]
-    _blend(canvas, slice(ya, yb), slice(xa, xb), sub, t.fill)
-
-
-# ----------------------------------------------------------------------------- PNG io
-
-
-def encode_png(rgb: np.ndarray) -> bytes:
-    """Encode an ``(H, W, 3)`` uint8 array as an 8-bit RGB PNG (zlib, "Up" filter).
-
-    >>> len(encode_png(np.zeros((2, 3, 3), dtype=np.uint8))) > 40
-    True
-    """
-    a = np.ascontiguousarray(rgb, dtype=np.uint8)
-    if a.ndim != 3 or a.shape[2] != 3:
-        raise ValueError("encode_png takes an (H, W, 3) uint8 array")
-    h, w = a.shape[:2]
-    rows = a.reshape(h, 3 * w)
-    raw = np.empty((h, 1 + 3 * w), dtype=np.uint8)
-    raw[:, 0] = 2  # filter type "Up": each byte minus the byte above (PNG specification)
-    raw[:, 1:] = rows
-    raw[1:, 1:] -= rows[:-1]  # uint8 arithmetic wraps modulo 256, as the filter needs
-
-    def chunk(kind: bytes, data: bytes) -> bytes:
-        return (
-            struct.pack(">I", len(data))
-            + kind
-            + data
-            + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
-        )
-
-    ihdr = struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0)
-    return (
-        b"\x89PNG\r\n\x1a\n"
-        + chunk(b"IHDR", ihdr)
-        + chunk(b"tEXt", b"Software\x00voxelscope")
-        + chunk(b"IDAT", zlib.compress(raw.tobytes(), 6))
-        + chunk(b"IEND", b"")
-    )
-
-
 def png_size(png: bytes) -> tuple[int, int]:
-    """``(width, height)`` from a PNG's IHDR chunk.
+    """``(width, height)`` from a PNG's IHDR chunk (PNG specification, 11.2.2).
 
-    >>> png_size(encode_png(np.zeros((2, 3, 3), dtype=np.uint8)))
+    >>> png_size(Figure(3, 2).to_png())
     (3, 2)
     """
     if png[:8] != b"\x89PNG\r\n\x1a\n" or png[12:16] != b"IHDR":
@@ -600,7 +409,7 @@ def _draw_panel(
     show_x_labels: bool,
     zero_line: bool,
     font: float,
-    band_opacity: float = _BAND_OPACITY,
+    band_opacity: float = 0.22,
 ) -> None:
     fig.add(Rect(p.x, p.y, p.w, p.h, "#ffffff"))
     for start, stop, colour in bands:
@@ -679,7 +488,7 @@ def signal_figure(
     kcol = {}
     for name, _f, _r in fits:
         kcol[name] = colours.get(name) or next(spare)
-    ccols = _condition_colours()
+    ccols = condition_colours()
     conds = list(conditions)
     cond_colour = {c.name: ccols[i % len(ccols)] for i, c in enumerate(conds)}
 

@@ -224,6 +224,9 @@ def launch(
     app = QApplication.instance() or QApplication(sys.argv[:1])
     app.setApplicationName("voxelscope")
     app.setOrganizationName("voxelscope-project")
+    from voxelscope.gui.colours import use_figure_font
+
+    use_figure_font(app)  # the window's plots in the report figures' type
     import pyqtgraph as pg
 
     pg.setConfigOptions(antialias=True, imageAxisOrder="col-major")

@@ -1,7 +1,7 @@
-"""Colours of the window, read once from ``voxelscope/resources/colours.json``.
+"""Colours of the window, from the one palette file (:mod:`voxelscope.core.palette`).
 
 Kernel colours follow the colour-blind-safe palette of Okabe & Ito (2008); a kernel has
-the same colour in every part of the window.
+the same colour in every part of the window, in exported figures and in reports.
 
 Examples
 --------
@@ -13,11 +13,10 @@ True
 
 from __future__ import annotations
 
-import json
-from functools import lru_cache
 from importlib import resources
 from pathlib import Path
-from typing import Any
+
+from voxelscope.core.palette import FIGURE_FONT, colours, resource_text
 
 __all__ = [
     "colours",
@@ -25,18 +24,8 @@ __all__ = [
     "kernel_colour",
     "resource_text",
     "stylesheet",
+    "use_figure_font",
 ]
-
-
-def resource_text(name: str) -> str:
-    """Text of a file in the package's ``resources`` folder."""
-    return resources.files("voxelscope").joinpath("resources", name).read_text(encoding="utf-8")
-
-
-@lru_cache(maxsize=1)
-def colours() -> dict[str, Any]:
-    """The colour definitions (a dict, cached)."""
-    return json.loads(resource_text("colours.json"))
 
 
 def kernel_colour(kernel: str) -> str:
@@ -60,3 +49,27 @@ def stylesheet() -> str:
     """The window's Qt style sheet, with ``@RESOURCES@`` pointing at the resources folder."""
     folder = Path(str(resources.files("voxelscope").joinpath("resources"))).as_posix()
     return resource_text("style.qss").replace("@RESOURCES@", folder)
+
+
+def use_figure_font(app) -> str:
+    """Give the application the figures' font family (:data:`FIGURE_FONT`), so the window's
+    plots and the report figures are set in the same type; returns the family Qt uses.
+
+    Where the system lacks the family, matplotlib's copy of it is registered with Qt (only
+    then is matplotlib imported); the point size stays the system's.
+    """
+    from PySide6.QtGui import QFont, QFontDatabase, QFontInfo
+
+    if FIGURE_FONT not in QFontDatabase.families():
+        try:
+            import matplotlib
+
+            folder = Path(matplotlib.get_data_path()) / "fonts" / "ttf"
+            for name in ("DejaVuSans.ttf", "DejaVuSans-Bold.ttf"):
+                QFontDatabase.addApplicationFont(str(folder / name))
+        except (ImportError, OSError):
+            pass
+    font = QFont(app.font())
+    font.setFamily(FIGURE_FONT)
+    app.setFont(font)
+    return QFontInfo(app.font()).family()
