@@ -283,7 +283,7 @@ def test_planted_spike_is_found_and_drives_t():
     assert c.t - c.t_dropping[0] > 1.0 and c.t != c.t_without_influential
     assert {"outliers", "influence"} <= set(c.flag_ids())
     text = next(f.text for f in c.flags if f.id == "influence")
-    assert text == f"One volume ({vol}) alone raises t from {t_ref:.1f} to {c.t:.1f}."
+    assert text == f"One volume ({vol}) alone raises t from {t_ref:.2f} to {c.t:.2f}."
 
 
 def test_two_spikes_in_two_blocks_are_named_together():
@@ -303,7 +303,7 @@ def test_two_spikes_in_two_blocks_are_named_together():
     t_ref = OLS(y[keep], d.X[keep]).fit().t_test(np.eye(d.n_columns)[0]).tvalue.item()
     text = next(f.text for f in c.flags if f.id == "influence")
     named = ", ".join(str(v) for v in c.influential_volumes[:2])
-    assert text == f"2 volumes ({named}) raise t from {t_ref:.1f} to {c.t:.1f}."
+    assert text == f"2 volumes ({named}) raise t from {t_ref:.2f} to {c.t:.2f}."
 
 
 def test_late_response_is_flagged():
@@ -316,7 +316,7 @@ def test_late_response_is_flagged():
     assert c.best_shift_s == pytest.approx(3.0, abs=0.5)
     assert c.peak_latency_s == pytest.approx(8.0, abs=0.5)
     flag = next(f for f in c.flags if f.id == "timing")
-    assert flag.figure == "shift_scan" and "later than the kernel's 5.0 s" in flag.text
+    assert flag.figure == "shift_scan" and "later than the kernel's 5 s" in flag.text
 
 
 def test_autocorrelated_noise_is_flagged_and_ar1_answers_it():
@@ -352,7 +352,7 @@ def test_confound_locked_to_the_task_is_flagged():
     assert r > CONFOUND_R_LIMIT
     flag = next(f for f in c.flags if f.id == "confound")
     assert flag.figure == "confounds"
-    assert flag.text == f"The tone regressor correlates {r:.2f} with confound column move_z."
+    assert flag.text == f"The tone regressor correlates {r:.3f} with confound column move_z."
 
 
 def test_edge_voxel_and_outside_voxel():

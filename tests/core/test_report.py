@@ -188,7 +188,12 @@ def test_report_lists_inputs_settings_and_leaves_inputs_untouched(demo, tmp_path
     body = "".join(_parse(res.html).text)
     for p in (run_path, events):
         assert p.name in body and _sha(p) in body
-    assert "ar1" in body and "onset_shift_s" in body and "highpass_s" in body
+    # the Model section speaks in words, not field names (issue 17 item 9)
+    assert "Noise model" in body and "AR(1) prewhitening" in body
+    assert "Onset shift" in body and "+1 s" in body
+    assert "High-pass cut-off" in body and "none (no drift columns)" in body
+    for internal in ("onset_shift_s", "highpass_s", "fir_bin_s", "censor_fd_mm", "ar1"):
+        assert internal not in body, internal
     assert sorted(x.name for x in (tmp_path / "out").iterdir()) == [
         "figure.png", "figure.svg", "report.html", "timeseries.csv",
     ]  # fmt: skip
@@ -297,3 +302,75 @@ def test_format_csv_and_slugify():
     text = format_csv(an.fit_voxel(y, ModelSettings(kernels=("boxcar",), highpass_s=None)))
     rows = list(csv.reader(io.StringIO(text)))
     assert len(rows) == 13 and np.allclose([float(r[1]) for r in rows[1:]], y, rtol=0, atol=0)
+
+
+def _chromium() -> str | None:
+    import shutil
+
+    return shutil.which("chromium") or shutil.which("chromium-browser")
+
+
+@pytest.mark.slow
+@pytest.mark.skipif(_chromium() is None, reason="chromium is not installed (Debian: chromium)")
+def test_report_renders_in_a_real_browser(demo, tmp_path):
+    """Issue 17 item 9: the report as a browser draws it. Headless Chromium (Debian's package)
+    renders the page to PNG; Pillow reads it. The page is not blank, the embedded figure
+    loaded (its condition bands and fitted curves are on screen, which an image that
+    failed to load would not give), and both research-use cautions are drawn."""
+    import subprocess
+
+    from PIL import Image
+
+    from voxelscope.core.palette import colours
+
+    run, analysis, _run_path, _events = demo
+    res = write_report(tmp_path / "out", run, analysis, ModelSettings(), voxel=(2, 2, 2))
+    shot = tmp_path / "page.png"
+    cmd = [
+        _chromium(), "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic",
+        "--no-first-run", "--disable-background-networking", "--disable-component-update",
+        "--disable-sync", f"--user-data-dir={tmp_path / 'profile'}", "--hide-scrollbars",
+        f"--screenshot={shot}", "--window-size=1280,9000", res.html.as_uri(),
+    ]  # fmt: skip
+    subprocess.run(cmd, capture_output=True, timeout=180, check=False)
+    assert shot.is_file(), "chromium wrote no screenshot"
+    page = np.asarray(Image.open(shot).convert("RGB")).astype(int)
+    assert page.shape[:2] == (9000, 1280)
+
+    ink = (page < 235).any(axis=2)
+    assert ink.mean() > 0.01  # not a blank page
+    rows = np.where(ink.any(axis=1))[0]
+    assert rows.max() - rows.min() > 1500  # header, figures, tables, model, inputs
+    assert rows.max() < 8990, "the page is longer than the screenshot; make it taller"
+
+    def near(colour: str, tol: int = 14) -> np.ndarray:
+        rgb = np.array([int(colour[i : i + 2], 16) for i in (1, 3, 5)])
+        return np.abs(page - rgb).sum(axis=2) <= tol
+
+    # a condition band: the first condition's hue at the band opacity over white
+    alpha = float(colours()["condition_band_alpha"])
+    band = 255 - alpha * (255 - np.array([int(colours()["conditions"][0][i : i + 2], 16)
+                                          for i in (1, 3, 5)]))  # fmt: skip
+    band_px = (np.abs(page - band).sum(axis=2) <= 12).sum()
+    assert band_px > 5000, band_px  # only the figures draw bands
+    # every kernel's fitted curve, in its colour (table swatches alone are ~200 px each)
+    for kernel in ModelSettings().kernels:
+        if kernel == "boxcar":  # black, like the text
+            continue
+        assert near(colours()["kernels"][kernel]).sum() > 400, kernel
+    # the research-use caution at the top and at the bottom of the page
+    caution_rows = np.where(near("#fff7e0", 6).sum(axis=1) > 400)[0]
+    assert caution_rows.size > 20
+    assert caution_rows.min() < 400 and caution_rows.max() > rows.max() - 400
+
+
+def test_every_model_setting_has_words_for_people():
+    """Issue 17 item 9: the Model section shows labels, never field names."""
+    from dataclasses import fields
+
+    from voxelscope.core.report import _STYLE, SETTING_LABELS
+
+    assert {f.name for f in fields(ModelSettings)} <= set(SETTING_LABELS)
+    from voxelscope.core.palette import FIGURE_FONT
+
+    assert f'font-family:"{FIGURE_FONT}"' in _STYLE  # the page in the figures' font

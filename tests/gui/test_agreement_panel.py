@@ -11,6 +11,7 @@ import nibabel as nib
 import numpy as np
 
 from voxelscope.core.agreement import compare_maps
+from voxelscope.core.numfmt import format_value, stat_kind
 from voxelscope.gui.state import LiveLayer
 
 
@@ -53,7 +54,8 @@ def test_value_at_voxel_is_their_resampled_value(window, qtbot, ras_run, tmp_pat
         ours, theirs = panel.value_at(v)
         assert abs(theirs - (0.3 * x - 0.2 * y + 0.1 * z + 1.0)) < 1e-4
         assert ours == float(window.state.model_map.t[v])
-        assert f"{theirs:.3f}" in panel.at_voxel.text()
+        kind = stat_kind(state.map_settings.stat)
+        assert f"theirs <b>{format_value(kind, theirs)}</b>" in panel.at_voxel.text()
 
 
 def test_correlation_equals_numpy_corrcoef(window, qtbot, ras_run):
@@ -65,7 +67,7 @@ def test_correlation_equals_numpy_corrcoef(window, qtbot, ras_run):
     region = model.mask & np.isfinite(theirs)
     r = np.corrcoef(model.t[region].astype(float), theirs[region])[0, 1]
     assert abs(panel.agreement.r - r) < 1e-9
-    assert f"r {r:.3f}" in panel.summary.text()
+    assert f"r {format_value('r', r)}" in panel.summary.text()
     assert panel.scatter.data.size == int(region.sum())  # fewer than 5000: every voxel
 
 

@@ -99,7 +99,7 @@ def test_copy_as_tsv(window, ras_run, qtbot):
 
 
 def test_number_formats():
-    assert format_value("p", 0.5) == "0.5"
+    assert format_value("p", 0.5) == "0.500"  # the one rule: core/numfmt.py
     assert format_value("p", 2e-7) == "2.00e-07"
     assert format_value("df", 210) == "210"
     assert format_value("t", float("nan")) == "–"

@@ -6,6 +6,7 @@ from nibabel.affines import apply_affine
 from PySide6.QtCore import QPointF, Qt
 from PySide6.QtWidgets import QApplication
 
+from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.gui.slices import PLANES, overlay_rgba
 
 
@@ -177,7 +178,7 @@ def test_map_overlay_and_readout(window, qtbot, ras_run):
     state.set_voxel(ras_run["hot"])
     axial = window.slices.views["axial"]
     assert axial.over.isVisible() and axial.over.image is not None
-    assert "Map</b> 9.000" in window.slices.readout.text()
+    assert "Map</b> 9.00" in window.slices.readout.text()
     assert window.slices.colour_bar.isVisible()
     state.set_map_settings(threshold=10.0)
     img = axial.over.image
@@ -276,4 +277,4 @@ def test_underlay_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_
     state.set_voxel((2, 3, 4))
     world = apply_affine(ras_run["affine"], (2, 3, 4))
     a_ijk = tuple(np.round(apply_affine(np.linalg.inv(aff), world)).astype(int))
-    assert f"<b>Underlay</b> {data[a_ijk]:.5g}" in window.slices.readout.text()
+    assert f"<b>Underlay</b> {fmt('value', data[a_ijk])}" in window.slices.readout.text()

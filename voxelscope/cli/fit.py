@@ -16,6 +16,7 @@ if TYPE_CHECKING:  # imported where used: --help and start-up stay short
 
 from ..core.jsonsafe import finite_or_none
 from ..core.model import KernelFit, VoxelFits
+from ..core.numfmt import format_seconds, format_value, format_xyz
 from .common import (
     Loaded,
     add_atlas_args,
@@ -66,10 +67,8 @@ def register(sub: argparse._SubParsersAction) -> None:
     p.set_defaults(handler=run_fit)
 
 
-def _fmt(v, spec: str) -> str:
-    if v is None or (isinstance(v, float) and not np.isfinite(v)):
-        return "-"
-    return format(v, spec)
+def _fmt(v, kind: str) -> str:
+    return format_value(kind, v)
 
 
 _TAIL_HEAD = {"two": "p(2-sided)", "positive": "p(t>0)", "negative": "p(t<0)"}
@@ -96,15 +95,15 @@ def format_table(fits: VoxelFits, noise: str, tail: str = "two") -> str:
     for f in fits.fits:
         row = [
             f.kernel,
-            _fmt(f.beta, ".5g"),
-            _fmt(f.variance, ".5g"),
-            _fmt(f.t, ".3f"),
-            str(f.df),
-            _fmt(_tail_p(f, tail), ".3g"),
-            _fmt(f.r2, ".3f"),
+            _fmt(f.beta, "beta"),
+            _fmt(f.variance, "variance"),
+            _fmt(f.t, "t"),
+            _fmt(f.df, "df"),
+            _fmt(_tail_p(f, tail), "p"),
+            _fmt(f.r2, "r"),
         ]
         if noise == "ar1":
-            row.append(_fmt(f.rho, ".3f"))
+            row.append(_fmt(f.rho, "r"))
         rows.append(row)
     widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
     lines = []
@@ -245,13 +244,13 @@ def format_combined_table(combined: list[CombinedFit], tail: str = "two") -> str
         rows.append(
             [
                 c.kernel,
-                _fmt(c.beta, ".5g"),
-                _fmt(c.variance, ".5g"),
-                _fmt(c.t, ".3f"),
-                f"{c.df:g}",
-                _fmt(c.p if tail == "two" else c.p_tail, ".3g"),
-                _fmt(c.q, ".3g"),
-                _fmt(c.q_p, ".3g"),
+                _fmt(c.beta, "beta"),
+                _fmt(c.variance, "variance"),
+                _fmt(c.t, "t"),
+                _fmt(c.df, "df"),
+                _fmt(c.p if tail == "two" else c.p_tail, "p"),
+                _fmt(c.q, "Q"),
+                _fmt(c.q_p, "p"),
             ]
         )
     widths = [max(len(r[i]) for r in rows) for i in range(len(head))]
@@ -334,8 +333,8 @@ def _run_fit_several(args: argparse.Namespace) -> int:
         mm = r[2]["mm"]
         region = r[2]["region"]
         print(
-            f"{label}: voxel {tuple(int(v) for v in ijk)}  mm ({mm[0]:.1f}, {mm[1]:.1f}, "
-            f"{mm[2]:.1f})  TR {ld.run.tr:g} s  {ld.run.n_volumes} volumes"
+            f"{label}: voxel {tuple(int(v) for v in ijk)}  mm {format_xyz(mm)}  "
+            f"TR {format_seconds(ld.run.tr)}  {ld.run.n_volumes} volumes"
             + (f"  region {region['text']}" if region is not None else "")
         )
         print(format_table(r[0], noise))
@@ -384,8 +383,8 @@ def run_fit(args: argparse.Namespace) -> int:
         sys.stdout.write(buf.getvalue())
         return 0
     print(
-        f"voxel {tuple(int(v) for v in ijk)}  mm ({mm[0]:.1f}, {mm[1]:.1f}, {mm[2]:.1f})  "
-        f"TR {run.tr:g} s  {run.n_volumes} volumes{_left_out(loaded)}  "
+        f"voxel {tuple(int(v) for v in ijk)}  mm {format_xyz(mm)}  "
+        f"TR {format_seconds(run.tr)}  {run.n_volumes} volumes{_left_out(loaded)}  "
         f"contrast {fits.fits[0].contrast}  noise {loaded.settings.noise}"
     )
     if doc["region"] is not None:

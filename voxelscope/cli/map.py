@@ -18,6 +18,7 @@ from pathlib import Path
 
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
+from ..core.numfmt import format_value
 from .common import Loaded, add_model_args, analysis_from_args, print_warnings
 from .helptext import count, help_args
 from .multirun import load_runs, run_paths
@@ -266,7 +267,8 @@ def explain_lines(ex) -> list[str]:
                     f"round {alt.round}: keeping the best change so far (when {kept}), "
                     "one more change on top:"
                 )
-        lines.append(f"  r {alt.r:6.3f}  slope {alt.slope:7.3g}  {alt.label}")
+        r, slope = format_value("r", alt.r), format_value("value", alt.slope)
+        lines.append(f"  r {r:>6}  slope {slope:>8}  {alt.label}")
     return lines
 
 

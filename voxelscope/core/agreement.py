@@ -46,6 +46,7 @@ from .hrf import DEFAULT_KERNELS
 from .jsonsafe import finite_or_none
 from .maps import MapResult, compute_map
 from .model import Analysis, ModelSettings
+from .numfmt import format_seconds, format_value
 
 __all__ = [
     "Agreement",
@@ -162,10 +163,12 @@ class Agreement:
     def describe(self) -> str:
         """One line with r, the slopes and the count of disagreeing voxels."""
         return (
-            f"r {self.r:.3f} over {self.n_voxels} voxels; theirs = {self.slope:.3g} x ours "
-            f"{'+' if self.intercept >= 0 else '-'} {abs(self.intercept):.3g} "
-            f"(robust slope {self.robust_slope:.3g}); {self.n_disagree} voxels differ by "
-            f"more than {self.tolerance:g}"
+            f"r {format_value('r', self.r)} over {self.n_voxels} voxels; theirs = "
+            f"{format_value('value', self.slope)} x ours "
+            f"{'+' if self.intercept >= 0 else '-'} "
+            f"{format_value('value', abs(self.intercept))} "
+            f"(robust slope {format_value('value', self.robust_slope)}); "
+            f"{self.n_disagree} voxels differ by more than {self.tolerance:g}"
         )
 
 
@@ -295,7 +298,7 @@ class Explanation:
 
 
 def _fmt_s(v: float) -> str:
-    return f"{v:+.3g} s"
+    return format_seconds(v, signed=True)
 
 
 def _improves(r_base: float, r_best: float, min_gain: float) -> bool:
@@ -310,8 +313,9 @@ def _improves(r_base: float, r_best: float, min_gain: float) -> bool:
 
 
 def _fmt_pair(a: float, b: float) -> tuple[str, str]:
-    """Both numbers with the fewest decimals (2 to 4) that tell them apart."""
-    for d in (2, 3, 4):
+    """Both numbers (r) with the fewest decimals (3, the one rule of core/numfmt.py, or 4)
+    that tell them apart."""
+    for d in (3, 4):
         if f"{a:.{d}f}" != f"{b:.{d}f}":
             break
     return f"{a:.{d}f}", f"{b:.{d}f}"
@@ -320,8 +324,8 @@ def _fmt_pair(a: float, b: float) -> tuple[str, str]:
 def _scale_note(slope: float, r: float) -> str | None:
     if math.isfinite(slope) and math.isfinite(r) and r >= 0.9 and abs(slope - 1.0) > 0.05:
         return (
-            f"their values are about {slope:.3g} times ours, a pure scale factor (another "
-            "statistic, e.g. beta instead of t, or another variance estimate)"
+            f"their values are about {format_value('value', slope)} times ours, a pure scale "
+            "factor (another statistic, e.g. beta instead of t, or another variance estimate)"
         )
     return None
 
@@ -518,17 +522,18 @@ def explain(
     elif base.r >= 0.9:
         note = _scale_note(baseline.robust_slope, base.r)
         if note:
-            statement = f"The maps agree in pattern (r {base.r:.2f}), but {note}."
+            statement = f"The maps agree in pattern (r {format_value('r', base.r)}), but {note}."
         else:
             statement = (
-                f"The maps agree (r {base.r:.2f}, slope {baseline.slope:.2f}); "
+                f"The maps agree (r {format_value('r', base.r)}, "
+                f"slope {format_value('value', baseline.slope)}); "
                 "no tested change improves the agreement."
             )
     else:
         statement = (
             f"None of the tested changes (other kernels, onsets shifted by one TR, the other "
             f"noise model, no confounds) raises the agreement by {min_gain:.2f} or more "
-            f"(r {base.r:.2f}); the difference lies elsewhere (preprocessing, masks or "
-            "smoothing)."
+            f"(r {format_value('r', base.r)}); the difference lies elsewhere (preprocessing, "
+            "masks or smoothing)."
         )
     return Explanation(baseline, tuple(alternatives), best, statement)

@@ -52,6 +52,7 @@ from scipy import special
 from .errors import InputError
 from .jsonsafe import finite_or_none
 from .maps import STAT_NAMES, MapResult, compute_map
+from .numfmt import format_value
 from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
@@ -271,7 +272,7 @@ class CombinedFit:
 
 
 def _fmt_p(p: float) -> str:
-    return f"{p:.2g}" if p >= 1e-4 else f"{p:.1e}"
+    return format_value("p", p)
 
 
 def combine_fits(
@@ -333,7 +334,8 @@ def combine_fits(
             flags.append(
                 RunFlag(
                     "runs-disagree",
-                    f"The runs disagree here (Cochran's Q = {float(fe.q[0]):.3g} on {k - 1} "
+                    "The runs disagree here (Cochran's Q = "
+                    f"{format_value('Q', fe.q[0])} on {k - 1} "
                     f"df, p = {_fmt_p(q_p)} < {DISAGREE_P:g}); look at each run before "
                     "trusting the combined estimate.",
                 )

@@ -21,6 +21,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from .diagnostics import LJUNG_BOX_LAGS, RMS_SPIKE_K
+from .numfmt import format_value as fmt
 
 if TYPE_CHECKING:
     from .checks import VoxelChecks
@@ -149,8 +150,8 @@ def edge_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         return [Flag("outside-mask", "The voxel lies outside the brain mask.", "edge")]
     if c.edge_distance_mm is not None and c.edge_distance_mm <= EDGE_LIMIT_MM:
         text = (
-            f"The voxel is {c.edge_distance_mm:.1f} mm from the brain edge, where head motion "
-            "can look like activation."
+            f"The voxel is {fmt('mm', c.edge_distance_mm)} mm from the brain edge, where head "
+            "motion can look like activation."
         )
         return [Flag("edge", text, "edge")]
     return []
@@ -167,14 +168,14 @@ def _autocorrelation_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     first = np.asarray(c.whitened_acf, dtype=float)[1 : FLAG_LAGS + 1]
     if not (math.isfinite(p) and p < LJUNG_BOX_ALPHA and np.nanmax(first) > ACF_POSITIVE):
         return []
-    lags = ", ".join(f"{v:.2f}" for v in first)
+    lags = ", ".join(fmt("r", v) for v in first)
     strong = "strongly " if abs(float(np.asarray(c.whitened_acf)[1])) > AR1_LIMIT else ""
     where = {"ols": "Residuals", "ar1": "Residuals after AR(1) prewhitening"}.get(
         c.noise, "Residuals after AR(p) prewhitening"
     )
     text = (
         f"{where} are {strong}autocorrelated (lags 1-{FLAG_LAGS}: {lags}; Ljung-Box p "
-        f"{p:.2g} over {LJUNG_BOX_LAGS} lags), so the t is likely too large. "
+        f"{fmt('p', p)} over {LJUNG_BOX_LAGS} lags), so the t is likely too large. "
     )
     text += _NEXT_MODEL.get(
         c.noise,
@@ -191,7 +192,7 @@ def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     v = c.studentized_outliers
     if v:
         worst = max(v, key=lambda i: abs(c.studentized[i]))
-        size = f"{c.studentized[worst]:.1f}"
+        size = fmt("t", c.studentized[worst])
         if len(v) == 1:
             text = f"Volume {v[0]} is an outlier at this voxel (studentized residual {size})."
         else:
@@ -272,18 +273,18 @@ def _influence_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
                 if m == 1
                 else ("raise" if c.t > tk else "lower")
             )
-            return [Flag("influence", f"{who} {verb} t from {tk:.1f} to {c.t:.1f}.", "influence")]
+            text = f"{who} {verb} t from {fmt('t', tk)} to {fmt('t', c.t)}."
+            return [Flag("influence", text, "influence")]
     return []
 
 
 def _secs(x: float) -> str:
-    """Seconds to two decimals without trailing zeros beyond one: 8.0, 7.5, 7.25.
+    """Seconds by the one rule (core/numfmt.py): 8, 7.5, 7.25.
 
     >>> _secs(8.0), _secs(7.5), _secs(7.25)
-    ('8.0', '7.5', '7.25')
+    ('8', '7.5', '7.25')
     """
-    text = f"{x:.2f}"
-    return text[:-1] if text.endswith("0") else text
+    return fmt("s", x)
 
 
 def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
@@ -304,8 +305,8 @@ def _timing_flag(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
     when = "later" if c.best_shift_s > 0 else "earlier"
     text = (
         f"The response peaks at {_secs(c.peak_latency_s)} s, {when} than the kernel's "
-        f"{_secs(c.kernel_peak_s)} s (t {c.t_at_zero_shift:.1f} as given, {t_best:.1f} with the "
-        f"onsets moved by {c.best_shift_s:+.2f} s)"
+        f"{_secs(c.kernel_peak_s)} s (t {fmt('t', c.t_at_zero_shift)} as given, "
+        f"{fmt('t', t_best)} with the onsets moved by {fmt('s', c.best_shift_s, signed=True)} s)"
     )
     if c.best_shift_s in (float(c.shifts_s[0]), float(c.shifts_s[-1])):
         text += "; the best shift is at the end of the scanned range"
@@ -321,14 +322,16 @@ def _confound_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
             more = ""
             if len(hits) > 1:
                 more = f" (and {len(hits) - 1} other column{'s' * (len(hits) > 2)})"
-            text = f"The {cond} regressor correlates {r:.2f} with confound column {name}{more}."
+            text = (
+                f"The {cond} regressor correlates {fmt('r', r)} with confound column {name}{more}."
+            )
             out.append(Flag("confound", text, "confounds"))
     for cond, idx in d.condition_columns.items():
         v = c.vif.get(d.names[idx[0]], math.nan)
         if math.isfinite(v) and v > VIF_LIMIT:
             text = (
-                f"The {cond} regressor overlaps the rest of the model (VIF {v:.1f}), so its "
-                "beta is uncertain."
+                f"The {cond} regressor overlaps the rest of the model (VIF {fmt('value', v)}), "
+                "so its beta is uncertain."
             )
             out.append(Flag("collinear", text, "confounds"))
     return out

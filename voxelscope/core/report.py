@@ -37,6 +37,8 @@ from .events import shift_conditions
 from .figure import signal_figure
 from .marks import Mark
 from .model import Analysis, ModelSettings, VoxelFits
+from .noise import AR_ORDER
+from .numfmt import MISSING, format_seconds, format_value, format_xyz
 from .session import file_digest
 
 __all__ = [
@@ -121,10 +123,8 @@ def format_csv(fits: VoxelFits) -> str:
 # ------------------------------------------------------------------------------- helpers
 
 
-def _fmt(v: float | None, spec: str) -> str:
-    if v is None or not math.isfinite(float(v)):
-        return "-"
-    return format(float(v), spec)
+def _fmt(v: float | None, kind: str) -> str:
+    return format_value(kind, v)
 
 
 def _value_attr(v: float | None) -> str:
@@ -157,24 +157,25 @@ def _checks_for(
     return out, ""
 
 
-_CHECK_NUMBERS = (
-    ("durbin_watson", "Durbin-Watson", ".2f"),
-    ("ar1", "lag-1 autocorrelation of residuals", ".2f"),
-    ("ljung_box_p", "Ljung-Box p", ".3g"),
-    ("whitened_ljung_box_p", "Ljung-Box p, model's residuals", ".3g"),
-    ("tsnr", "tSNR", ".1f"),
-    ("cooks_distance_max", "largest Cook's distance", ".3g"),
-    ("t_without_influential", "t without influential volumes", ".2f"),
-    ("best_shift_s", "onset shift with the largest t (s)", ".2f"),
-    ("peak_latency_s", "peak latency (s)", ".1f"),
-    ("drift_fraction", "drift fraction", ".2f"),
+_CHECK_NUMBERS = (  # key, label, kind of number (core/numfmt.py)
+    ("durbin_watson", "Durbin-Watson", "t"),
+    ("ar1", "lag-1 autocorrelation of residuals", "r"),
+    ("ljung_box_p", "Ljung-Box p", "p"),
+    ("whitened_ljung_box_p", "Ljung-Box p, model's residuals", "p"),
+    ("tsnr", "tSNR", "value"),
+    ("cooks_distance_max", "largest Cook's distance", "value"),
+    ("t_without_influential", "t without influential volumes", "t"),
+    ("best_shift_s", "onset shift with the largest t (s)", "s"),
+    ("peak_latency_s", "peak latency (s)", "s"),
+    ("drift_fraction", "drift fraction", "r"),
 )
 
 
 # ---------------------------------------------------------------------------------- HTML
 
+# the page is set in the figures' font (palette.FIGURE_FONT), as the window's plots are
 _STYLE = """
-body{font-family:system-ui,sans-serif;max-width:1000px;margin:2em auto;padding:0 1em;
+body{font-family:"DejaVu Sans",system-ui,sans-serif;max-width:1000px;margin:2em auto;padding:0 1em;
 color:#1f1f1f;background:#fff;line-height:1.45}
 h1{font-size:1.6em;margin-bottom:.2em}h2{border-bottom:1px solid #ddd;padding-bottom:.2em;
 margin-top:2em}
@@ -203,20 +204,21 @@ def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(f.kernel)}</td>",
             f"<td class='contrast'>{_e(f.contrast)}</td>",
-            f"<td class='num beta'{_value_attr(f.beta)}>{_fmt(f.beta, '.4g')}</td>",
-            f"<td class='num variance'{_value_attr(f.variance)}>{_fmt(f.variance, '.4g')}</td>",
-            f"<td class='num t'{_value_attr(f.t)}>{_fmt(f.t, '.2f')}</td>",
-            f"<td class='num df' data-value='{f.df}'>{f.df}</td>",
-            f"<td class='num p'{_value_attr(f.p)}>{_fmt(f.p, '.3g')}</td>",
-            f"<td class='num r2'{_value_attr(f.r2)}>{_fmt(f.r2, '.3f')}</td>",
+            f"<td class='num beta'{_value_attr(f.beta)}>{_fmt(f.beta, 'beta')}</td>",
+            f"<td class='num variance'{_value_attr(f.variance)}>"
+            f"{_fmt(f.variance, 'variance')}</td>",
+            f"<td class='num t'{_value_attr(f.t)}>{_fmt(f.t, 't')}</td>",
+            f"<td class='num df' data-value='{f.df}'>{_fmt(f.df, 'df')}</td>",
+            f"<td class='num p'{_value_attr(f.p)}>{_fmt(f.p, 'p')}</td>",
+            f"<td class='num r2'{_value_attr(f.r2)}>{_fmt(f.r2, 'r')}</td>",
         ]
         if noise == "ar1":
-            cells.append(f"<td class='num rho'{_value_attr(f.rho)}>{_fmt(f.rho, '.3f')}</td>")
+            cells.append(f"<td class='num rho'{_value_attr(f.rho)}>{_fmt(f.rho, 'r')}</td>")
         if has_f:
-            fdf = f"{f.f_df[0]}, {f.f_df[1]}" if f.f_df else "-"
-            cells.append(f"<td class='num f'{_value_attr(f.f)}>{_fmt(f.f, '.2f')}</td>")
+            fdf = f"{f.f_df[0]}, {f.f_df[1]}" if f.f_df else MISSING
+            cells.append(f"<td class='num f'{_value_attr(f.f)}>{_fmt(f.f, 'F')}</td>")
             cells.append(f"<td class='num fdf'>{fdf}</td>")
-            cells.append(f"<td class='num fp'{_value_attr(f.f_p)}>{_fmt(f.f_p, '.3g')}</td>")
+            cells.append(f"<td class='num fp'{_value_attr(f.f_p)}>{_fmt(f.f_p, 'p')}</td>")
         rows.append(f"<tr data-kernel='{_e(f.kernel)}'>" + "".join(cells) + "</tr>")
     rows.append("</tbody></table>")
     return "\n".join(rows)
@@ -289,7 +291,8 @@ def _checks_html(sec: ReportSection) -> str:
         for key, label, spec in _CHECK_NUMBERS:
             v = c.get(key)
             if isinstance(v, (int, float)) and not isinstance(v, bool):
-                nums.append(f"<tr><td>{_e(label)}</td><td class='num'>{_fmt(v, spec)}</td></tr>")
+                text = format_value(spec, v, signed=key == "best_shift_s")
+                nums.append(f"<tr><td>{_e(label)}</td><td class='num'>{text}</td></tr>")
         if nums:
             out.append("<table class='checks'>" + "".join(nums) + "</table>")
     return "\n".join(out)
@@ -304,7 +307,7 @@ def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
     if sec.ijk is not None:
         where.append("voxel ({}, {}, {})".format(*sec.ijk))
     if sec.xyz_mm is not None:
-        where.append("world ({:.1f}, {:.1f}, {:.1f}) mm".format(*sec.xyz_mm))
+        where.append(f"world {format_xyz(sec.xyz_mm)} mm")
     if sec.region:
         where.append(f"region: {sec.region}")
     if where:
@@ -319,7 +322,7 @@ def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
     alt = f"signal, fitted signals and residuals at {sec.title}"
     out.append(f"<figure><img alt='{_e(alt)}' src='data:image/png;base64,{b64}'>")
     shift = (
-        f" Onsets shifted by {settings.onset_shift_s:g} s as in the model."
+        f" Onsets shifted by {format_seconds(settings.onset_shift_s, signed=True)} as in the model."
         if settings.onset_shift_s
         else ""
     )
@@ -350,27 +353,82 @@ def _section_html(sec: ReportSection, settings: ModelSettings, colours) -> str:
     return "\n".join(out)
 
 
+#: Model settings in words for people: field -> label (the report's Model section).
+SETTING_LABELS = {
+    "kernels": "Kernels",
+    "contrast": "Contrast",
+    "noise": "Noise model",
+    "highpass_s": "High-pass cut-off",
+    "confound_columns": "Confound columns",
+    "onset_shift_s": "Onset shift",
+    "derivatives": "Kernel derivatives",
+    "fir_window_s": "FIR window",
+    "fir_bin_s": "FIR bin width",
+    "drop_volumes": "Volumes dropped at the start",
+    "censor_fd_mm": "Framewise-displacement limit",
+    "modulators": "Parametric modulators",
+    "orthogonalize": "Modulators orthogonalised",
+}
+
+#: Noise models in words (the report; the window's short labels are noise.NOISE_LABELS).
+NOISE_WORDS = {
+    "ols": "ordinary least squares",
+    "ar1": "AR(1) prewhitening, rho from each voxel's own residuals",
+    "arp": f"AR({AR_ORDER}) prewhitening, coefficients bias-corrected and smoothed in space",
+}
+
+_DERIVATIVES = {0: "none", 1: "time derivative", 2: "time and dispersion derivatives"}
+
+
+def _setting_text(name: str, v: Any, analysis: Analysis) -> str:
+    """One model setting's value in words, numbers by the one rule (core/numfmt.py)."""
+    if name == "contrast":
+        return v if v is not None else f"{analysis.default_contrast()} (the first condition)"
+    if name == "noise":
+        return NOISE_WORDS.get(v, str(v))
+    if name == "confound_columns":
+        if v is None:
+            v = analysis.confound_names
+        return ", ".join(v) if v else "none"
+    if name == "derivatives":
+        return _DERIVATIVES.get(v, str(v))
+    if name == "fir_bin_s" and v is None:
+        return f"{format_seconds(analysis.tr)} (one TR)"
+    if name == "highpass_s" and v is None:
+        return "none (no drift columns)"
+    if name == "censor_fd_mm":
+        return "none" if v is None else f"{format_value('mm', v)} mm (volumes above it left out)"
+    if name == "onset_shift_s":
+        return format_seconds(v, signed=True) if v else "none"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, tuple):
+        return ", ".join(v) if v else "none"
+    if name.endswith("_s") and isinstance(v, (int, float)):
+        return format_seconds(v)
+    return str(v)
+
+
 def _settings_rows(settings: ModelSettings, analysis: Analysis) -> list[tuple[str, str]]:
-    rows = [("TR (s)", f"{analysis.tr:g}"), ("volumes", str(analysis.n_volumes))]
-    rows.append(("conditions", ", ".join(analysis.condition_names)))
+    """The Model section's rows, in words: the run's TR, volumes and conditions, then
+    every model setting (:data:`SETTING_LABELS`).
+
+    >>> from voxelscope.core.events import Condition
+    >>> a = Analysis([Condition("tone", [5.0], [10.0])], n_volumes=30, tr=2.0)
+    >>> rows = dict(_settings_rows(ModelSettings(noise="ols"), a))
+    >>> rows["Noise model"], rows["High-pass cut-off"], rows["FIR bin width"], rows["TR"]
+    ('ordinary least squares', '128 s', '2 s (one TR)', '2 s')
+    """
+    rows = [("TR", format_seconds(analysis.tr)), ("Volumes", str(analysis.n_volumes))]
+    rows.append(("Conditions", ", ".join(analysis.condition_names)))
     for f in fields(ModelSettings):
-        v = getattr(settings, f.name)
-        if f.name == "contrast" and v is None:
-            v = f"{analysis.default_contrast()} (first condition)"
-        elif f.name == "confound_columns" and v is None:
-            v = ", ".join(analysis.confound_names) if analysis.confound_names else "none"
-        elif f.name == "highpass_s" and v is None:
-            v = "none"
-        elif f.name == "fir_bin_s" and v is None:
-            v = f"{analysis.tr:g} (one TR)"
-        elif isinstance(v, tuple):
-            v = ", ".join(v) if v else "none"
-        rows.append((f.name, str(v)))
+        label = SETTING_LABELS.get(f.name, f.name.replace("_", " ").capitalize())
+        rows.append((label, _setting_text(f.name, getattr(settings, f.name), analysis)))
     ex = analysis.excluded_volumes(settings)
     if ex:  # every number in the report leaves these volumes out
         parts = [f"{v} ({why})" for v, why in list(ex.items())[:20]]
         more = f" and {len(ex) - 20} more" if len(ex) > 20 else ""
-        rows.append(("volumes left out", f"{len(ex)}: " + "; ".join(parts) + more))
+        rows.append(("Volumes left out", f"{len(ex)}: " + "; ".join(parts) + more))
     return rows
 
 

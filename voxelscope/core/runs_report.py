@@ -35,6 +35,7 @@ from .events import shift_conditions
 from .figure import Figure, Polyline, Rect, Text, kernel_colours, nice_ticks, signal_figure
 from .marks import Mark
 from .model import Analysis, ModelSettings, VoxelFits
+from .numfmt import format_value, format_xyz
 from .report import (
     _STYLE,
     ReportSection,
@@ -238,13 +239,14 @@ def _combined_table(combined: Sequence[CombinedFit], colours: Mapping[str, str])
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(c.kernel)}</td>",
             f"<td class='contrast'>{_e(c.contrast)}</td>",
-            f"<td class='num beta'{_value_attr(c.beta)}>{_fmt(c.beta, '.4g')}</td>",
-            f"<td class='num variance'{_value_attr(c.variance)}>{_fmt(c.variance, '.4g')}</td>",
-            f"<td class='num t'{_value_attr(c.t)}>{_fmt(c.t, '.2f')}</td>",
-            f"<td class='num df' data-value='{c.df:g}'>{c.df:g}</td>",
-            f"<td class='num p'{_value_attr(c.p)}>{_fmt(c.p, '.3g')}</td>",
-            f"<td class='num q'{_value_attr(c.q)}>{_fmt(c.q, '.3g')}</td>",
-            f"<td class='num q_p'{_value_attr(c.q_p)}>{_fmt(c.q_p, '.3g')}</td>",
+            f"<td class='num beta'{_value_attr(c.beta)}>{_fmt(c.beta, 'beta')}</td>",
+            f"<td class='num variance'{_value_attr(c.variance)}>"
+            f"{_fmt(c.variance, 'variance')}</td>",
+            f"<td class='num t'{_value_attr(c.t)}>{_fmt(c.t, 't')}</td>",
+            f"<td class='num df' data-value='{c.df:g}'>{_fmt(c.df, 'df')}</td>",
+            f"<td class='num p'{_value_attr(c.p)}>{_fmt(c.p, 'p')}</td>",
+            f"<td class='num q'{_value_attr(c.q)}>{_fmt(c.q, 'Q')}</td>",
+            f"<td class='num q_p'{_value_attr(c.q_p)}>{_fmt(c.q_p, 'p')}</td>",
         ]
         out.append(f"<tr data-kernel='{_e(c.kernel)}'>" + "".join(cells) + "</tr>")
     out.append("</tbody></table>")
@@ -268,7 +270,7 @@ def _section_html(sec: RunsSection, labels: Sequence[str], settings: ModelSettin
     if sec.note:
         out.append(f"<p class='note'>{_e(sec.note)}</p>")
     if sec.xyz_mm is not None:
-        out.append("<p>world ({:.1f}, {:.1f}, {:.1f}) mm</p>".format(*sec.xyz_mm))
+        out.append(f"<p>world {format_xyz(sec.xyz_mm)} mm</p>")
     if sec.error:
         out.append(f"<p class='warn'>{_e(sec.error)}</p></section>")
         return "\n".join(out)
@@ -364,7 +366,7 @@ def write_runs_report(
             "voxel ({}, {}, {})".format(*ijk0)
             if voxel is not None
             else (
-                "position ({:.1f}, {:.1f}, {:.1f}) mm".format(*(float(v) for v in mm))  # type: ignore[union-attr]
+                f"position {format_xyz(mm)} mm"  # type: ignore[arg-type]
             )
         )
         sec = RunsSection(1, name, "", xyz, list(places))  # type: ignore[arg-type]
@@ -492,7 +494,7 @@ def _page(
     for lab, r, a in zip(labels, runs, analyses):
         out.append(
             f"<tr><td>{_e(lab)}</td><td>{_e(Path(str(getattr(r, 'path', ''))).name)}</td>"
-            f"<td class='num'>{a.tr:g}</td><td class='num'>{a.n_volumes}</td>"
+            f"<td class='num'>{format_value('s', a.tr)}</td><td class='num'>{a.n_volumes}</td>"
             f"<td>{_e(', '.join(a.condition_names))}</td></tr>"
         )
     out.append("</table></section>")

@@ -36,6 +36,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.agreement import Agreement, compare_maps, explain, load_their_map
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.numfmt import format_value, stat_kind
 from voxelscope.gui.colours import colours
 from voxelscope.gui.plaintext import plain_tooltip
 from voxelscope.gui.sizing import breakable, compact_spin, scroll_body
@@ -412,11 +413,13 @@ class AgreementPanel(QWidget):
             self.fit_line.setData([], [])
             self._sample = np.zeros(0, dtype=np.int64)
         else:
-            r = "–" if not math.isfinite(a.r) else f"{a.r:.3f}"
+            r = format_value("r", a.r)
             self.summary.setText(
-                f"<b>r {r}</b> over {a.n_voxels} voxels · theirs ≈ {a.slope:.3g} × ours "
-                f"{'+' if a.intercept >= 0 else '−'} {abs(a.intercept):.3g} "
-                f"(robust slope {a.robust_slope:.3g}) · <b>{a.n_disagree}</b> voxels differ "
+                f"<b>r {r}</b> over {a.n_voxels} voxels · theirs ≈ "
+                f"{format_value('value', a.slope)} × ours "
+                f"{'+' if a.intercept >= 0 else '−'} {format_value('value', abs(a.intercept))} "
+                f"(robust slope {format_value('value', a.robust_slope)}) · "
+                f"<b>{a.n_disagree}</b> voxels differ "
                 f"by more than {a.tolerance:g}"
             )
             idx = scatter_sample(a.region)
@@ -482,15 +485,17 @@ class AgreementPanel(QWidget):
             return
         ours, theirs = self.value_at(voxel)
 
+        kind = stat_kind(self.state.map_settings.stat)
+
         def fmt(v):
-            return "–" if v is None else f"{v:.3f}"
+            return format_value(kind, v)
 
         where = tuple(int(v) for v in voxel)
         text = f"At voxel {where}: ours <b>{fmt(ours)}</b>, theirs <b>{fmt(theirs)}</b>"
         a = self.agreement
         if ours is not None and theirs is not None:
             i, j, k = voxel
-            text += f", difference {ours - theirs:+.3f}"
+            text += f", difference {format_value(kind, ours - theirs, signed=True)}"
             if a is not None and bool(a.disagree[i, j, k]):
                 text += " (beyond the tolerance)"
             self.here.setData([ours], [theirs])

@@ -20,6 +20,8 @@ from PySide6.QtGui import QColor, QFont
 from PySide6.QtWidgets import QLabel, QVBoxLayout, QWidget
 
 from voxelscope.core.flags import CONFOUND_R_LIMIT, EDGE_LIMIT_MM
+from voxelscope.core.numfmt import format_seconds
+from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.gui.colours import colours, condition_colour, kernel_colour
 
 __all__ = ["FIGURES", "FIGURE_TITLES", "FigurePage", "make_figures"]
@@ -145,7 +147,7 @@ class AcfFigure(FigurePage):
         self.plot.setYRange(lo, 1.05, padding=0)
         self.plot.setXRange(-0.7, max(float(lags[-1]) if lags.size else 20.0, 1.0) + 0.7, padding=0)
         self.caption.setText(
-            f"Residual autocorrelation by lag; lag-1 is <b>{c.ar1:.2f}</b>. The shaded band "
+            f"Residual autocorrelation by lag; lag-1 is <b>{fmt('r', c.ar1)}</b>. The shaded band "
             f"(±1.96/√n, n = {c.n_volumes}) is where white noise would stay."
         )
 
@@ -206,7 +208,7 @@ class InfluenceFigure(FigurePage):
         if c.outlier_volumes:
             parts.append(f"marked: outlier volumes {', '.join(map(str, c.outlier_volumes[:8]))}")
         if c.cooks_volume is not None and _finite(c.cooks_distance_max):
-            parts.append(f"largest {c.cooks_distance_max:.3f} at volume {c.cooks_volume}")
+            parts.append(f"largest {fmt('value', c.cooks_distance_max)} at volume {c.cooks_volume}")
         text = "Cook's distance of each volume (dashed: 4/n)"
         text += "; " + "; ".join(parts) if parts else ""
         rms = _arr(c.frame_rms_change)
@@ -265,11 +267,15 @@ class ShiftFigure(FigurePage):
             self.best.setData([float(c.best_shift_s)], [float(t[i])])
             self.best_line.setPos(float(c.best_shift_s))
             self.best_line.show()
-            lat = "" if c.peak_latency_s is None else f", response peak {c.peak_latency_s:.1f} s"
+            lat = (
+                ""
+                if c.peak_latency_s is None
+                else f", response peak {format_seconds(c.peak_latency_s)}"
+            )
             self.caption.setText(
                 f"t of the contrast with every onset moved (dotted: as given, t "
-                f"{c.t_at_zero_shift:.2f}). Best shift <b>{c.best_shift_s:+.2f} s</b> "
-                f"(t {float(t[i]):.2f}){lat}."
+                f"{fmt('t', c.t_at_zero_shift)}). Best shift "
+                f"<b>{format_seconds(c.best_shift_s, signed=True)}</b> (t {fmt('t', t[i])}){lat}."
             )
         else:
             self.best.setData([], [])
@@ -351,7 +357,7 @@ class FirFigure(FigurePage):
             ),
         ]
         peak = fir.get("peak_s")
-        peak_text = f"; FIR peak at {peak:.1f} s" if _finite(peak) else ""
+        peak_text = f"; FIR peak at {format_seconds(peak)}" if _finite(peak) else ""
         self.caption.setText(
             f"Response to <b>{html.escape(str(fir.get('condition', c.condition)))}</b>, free "
             f"shape (bins of {float(fir.get('bin_s') or 0):g} s){peak_text}.<br>"
@@ -581,7 +587,7 @@ class ConfoundsFigure(FigurePage):
         self.plot.setYRange(-0.6, len(columns) - 0.4, padding=0)
         self.plot.setXRange(-1.0, 1.0, padding=0.02)
         vif = [
-            f"{html.escape(k)} {v:.1f}"
+            f"{html.escape(k)} {fmt('value', v)}"
             for k, v in (c.vif or {}).items()
             if k in conds and v is not None and math.isfinite(v)
         ]
@@ -641,7 +647,7 @@ class EdgeFigure(FigurePage):
             self.bar.setOpts(width=[float(d)], brush=_MARK if d <= EDGE_LIMIT_MM else "#6E6E6E")
             near = d <= EDGE_LIMIT_MM
             self.big.setText(
-                f"<b>{d:.1f} mm</b> from the edge of the brain mask"
+                f"<b>{fmt('mm', d)} mm</b> from the edge of the brain mask"
                 + (" — close enough for head motion to look like activation." if near else ".")
             )
             self.plot.setXRange(0.0, max(2.0 * EDGE_LIMIT_MM, float(d) * 1.1), padding=0)

@@ -53,6 +53,8 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.checks import VoxelChecks, voxel_checks
 from voxelscope.core.noise import NOISE_LABELS
+from voxelscope.core.numfmt import format_seconds
+from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.gui.checks_figures import FIGURE_TITLES, FIGURES, make_figures
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
@@ -112,26 +114,28 @@ def _fmt(key: str, value: Any, c: VoxelChecks) -> str:
             return "outside the mask"
         return "–"
     v = float(value)
-    if key in ("ljung_box_p", "whitened_ljung_box_p"):
-        return f"{v:.3g}" if v >= 1e-3 else f"{v:.1e}"
-    if key in ("durbin_watson", "ar1", "ar1_whitened"):
-        return f"{v:.2f}"
-    if key == "tsnr":
-        return f"{v:.1f}"
     if key == "edge_distance_mm":
-        return "outside the mask" if c.in_mask is False else f"{v:.1f} mm"
+        return "outside the mask" if c.in_mask is False else f"{fmt('mm', v)} mm"
     if key == "best_shift_s":
-        return f"{v:+.2f} s"
+        return format_seconds(v, signed=True)
     if key == "peak_latency_s":
-        return f"{v:.2f} s (kernel {c.kernel_peak_s:.1f} s)"
+        return f"{format_seconds(v)} (kernel {format_seconds(c.kernel_peak_s)})"
     if key == "cooks_distance_max":
         at = "" if c.cooks_volume is None else f" (volume {c.cooks_volume})"
-        return f"{v:.3f}{at}"
-    if key == "t_without_influential":
-        return f"{v:.2f}"
-    if key == "t":
-        return f"{v:.2f}"
-    return f"{v:.4g}"
+        return f"{fmt('value', v)}{at}"
+    return fmt(_CHECK_KINDS.get(key, "value"), v)
+
+
+#: Kind of number (core/numfmt.py) of the table's other rows.
+_CHECK_KINDS = {
+    "ljung_box_p": "p",
+    "whitened_ljung_box_p": "p",
+    "durbin_watson": "t",  # a test statistic: 2 decimals
+    "ar1": "r",
+    "ar1_whitened": "r",
+    "t_without_influential": "t",
+    "t": "t",
+}
 
 
 #: During a drag, the checks run once the pointer has rested this long (ms).
@@ -537,10 +541,10 @@ class ChecksPanel(QWidget):
         if c.q is None or c.q_p is None:
             head = f"Runs ({c.n_runs}, {kernel}): agreement undefined here."
         else:
-            p = f"{c.q_p:.3g}" if c.q_p >= 1e-3 else f"{c.q_p:.2e}"
+            p = fmt("p", c.q_p)
             verdict = "they disagree" if c.q_p < 0.05 else "no sign that they disagree"
             head = (
-                f"Runs ({c.n_runs}, {kernel}): Cochran's Q = {c.q:.3g} on {c.n_runs - 1} df, "
+                f"Runs ({c.n_runs}, {kernel}): Cochran's Q = {fmt('Q', c.q)} on {c.n_runs - 1} df, "
                 f"p = {p}: {verdict}."
             )
         lines.insert(0, head)

@@ -33,6 +33,8 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.clusters import CONNECTIVITIES, ClusterTable, find_clusters
 from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.numfmt import format_value as fmt
+from voxelscope.core.numfmt import format_xyz, stat_kind
 from voxelscope.gui.sizing import compact_spin, fit_combo
 from voxelscope.gui.state import ViewerState
 from voxelscope.gui.status import ElidedLabel
@@ -125,10 +127,10 @@ class ClusterModel(QAbstractTableModel):
             if col == 2:
                 return str(c.size_voxels)
             if col == 3:
-                return f"{c.size_mm3:.0f}" if c.size_mm3 >= 100 else f"{c.size_mm3:.3g}"
+                return fmt("value", c.size_mm3)
             if col == 4:
-                return f"{c.peak_value:.2f}"
-            return "({:.1f}, {:.1f}, {:.1f})".format(*c.peak_mm)
+                return fmt(stat_kind(self.stat), c.peak_value)
+            return format_xyz(c.peak_mm)
         if role == Qt.ItemDataRole.TextAlignmentRole:
             if col in (2, 3, 4):
                 return int(Qt.AlignmentFlag.AlignRight | Qt.AlignmentFlag.AlignVCenter)

@@ -27,6 +27,8 @@ from PySide6.QtWidgets import (
 )
 
 from voxelscope.core.noise import NOISE_LABELS
+from voxelscope.core.numfmt import MISSING, format_seconds
+from voxelscope.core.numfmt import format_value as format_number
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
 from voxelscope.gui.sizing import ElidedLabel
@@ -62,32 +64,42 @@ _TYPICAL = {
 }
 
 
+#: Kind of number (core/numfmt.py) of each numeric column.
+_KINDS = {
+    "beta": "beta",
+    "variance": "variance",
+    "t": "t",
+    "F": "F",
+    "Q": "Q",
+    "p": "p",
+    "p F": "p",
+    "Q p": "p",
+    "R²": "r",
+    "rho": "r",
+    "df": "df",
+}
+
+
 def format_value(column: str, value) -> str:
-    """Display text of one number in the Fits table.
+    """Display text of one number in the Fits table, by the project's one rule
+    (:func:`voxelscope.core.numfmt.format_value`).
 
     Examples
     --------
     >>> format_value("p", 0.00001234)
     '1.23e-05'
     >>> format_value("t", 4.56789)
-    '4.568'
+    '4.57'
     >>> format_value("beta", None)
     '–'
     """
     if value is None:
-        return "–"
+        return MISSING
     if isinstance(value, str):
         return value
-    if column in ("df", "df F"):
+    if column == "df F":
         return str(value)
-    v = float(value)
-    if not math.isfinite(v):
-        return "–"
-    if column in ("p", "p F", "Q p"):
-        return f"{v:.3g}" if v >= 1e-3 else f"{v:.2e}"
-    if column in ("t", "F", "R²", "rho", "Q"):
-        return f"{v:.3f}"
-    return f"{v:.4g}"
+    return format_number(_KINDS.get(column, "value"), value)
 
 
 def runs_summary(combined) -> list[str]:
@@ -579,8 +591,10 @@ class FitsPanel(QWidget):
             return
         contrast = s.contrast or analysis.default_contrast()
         noise = NOISE_LABELS.get(s.noise, s.noise)
-        hp = "none" if s.highpass_s is None else f"{s.highpass_s:g} s"
-        shift = f", onsets {s.onset_shift_s:+g} s" if s.onset_shift_s else ""
+        hp = "none" if s.highpass_s is None else format_seconds(s.highpass_s)
+        shift = (
+            f", onsets {format_seconds(s.onset_shift_s, signed=True)}" if s.onset_shift_s else ""
+        )
         self.caption.setText(
             f"<b>Contrast</b> {esc(contrast)}&nbsp;&nbsp;·&nbsp;&nbsp;<b>Noise</b> {noise}"
             f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>High-pass</b> {hp}{shift}"

@@ -41,6 +41,7 @@ from PySide6.QtWidgets import (
 
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import Mark, MarkList, read_marks_tsv, write_marks_tsv
+from voxelscope.core.numfmt import format_xyz
 from voxelscope.gui.sizing import FlowButtons
 from voxelscope.gui.state import ViewerState
 
@@ -166,7 +167,7 @@ class MarksModel(QAbstractTableModel):
                 return m.title
             if col == 1:
                 return _one_line(m.note)
-            return "({:.1f}, {:.1f}, {:.1f})".format(*m.xyz_mm)
+            return format_xyz(m.xyz_mm)
         if role == Qt.ItemDataRole.EditRole:
             return m.title if col == 0 else m.note if col == 1 else None
         if role == Qt.ItemDataRole.ToolTipRole:
@@ -535,8 +536,8 @@ class MarksPanel(QWidget):
         if offscreen:
             return self.add_current()
         i, j, k = self.state.voxel
-        x, y, z = (float(v) for v in self.state.run.voxel_to_mm(self.state.voxel))
-        where = f"Voxel ({i}, {j}, {k}) at ({x:.1f}, {y:.1f}, {z:.1f}) mm"
+        mm = format_xyz(self.state.run.voxel_to_mm(self.state.voxel))
+        where = f"Voxel ({i}, {j}, {k}) at {mm} mm"
         dialog = AddMarkDialog(f"Mark {len(self.state.marks) + 1}", where, self)
         if dialog.exec() != QDialog.DialogCode.Accepted:
             return -1

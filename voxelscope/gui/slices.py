@@ -30,6 +30,8 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
+from voxelscope.core.numfmt import format_value as fmt
+from voxelscope.core.numfmt import format_xyz, stat_kind
 from voxelscope.gui.colours import colours
 from voxelscope.gui.plaintext import esc
 from voxelscope.gui.state import ViewerState
@@ -384,7 +386,7 @@ class SliceView(pg.GraphicsView):
         run = self.state.run
         world = run.voxel_to_mm(self.state.voxel)
         self.caption.setText(
-            f"{_TITLES[self.plane]}\n{_WORLD[self.n_axis]} = {float(world[self.n_axis]):.1f} mm"
+            f"{_TITLES[self.plane]}\n{_WORLD[self.n_axis]} = {fmt('mm', world[self.n_axis])} mm"
         )
         self._place_labels()  # the caption's width may change
 
@@ -608,17 +610,16 @@ class SlicesPanel(QWidget):
         x, y, z = (float(v) for v in run.voxel_to_mm(voxel))
         parts = [
             f"<b>Voxel</b> ({i}, {j}, {k})",
-            f"<b>World</b> ({x:.1f}, {y:.1f}, {z:.1f}) mm",
-            f"<b>Mean</b> {float(run.mean_image()[i, j, k]):.6g}",
+            f"<b>World</b> {format_xyz((x, y, z))} mm",
+            f"<b>Mean</b> {fmt('value', run.mean_image()[i, j, k])}",
         ]
         under = self.state.underlay
         if under is not None and under.path is not None:
-            v = under.value_at((x, y, z), voxel)
-            parts.append(f"<b>Underlay</b> {v:.5g}" if np.isfinite(v) else "<b>Underlay</b> –")
+            parts.append(f"<b>Underlay</b> {fmt('value', under.value_at((x, y, z), voxel))}")
         layer = self.state.stat_map
         if layer is not None:
-            v = float(layer.data[i, j, k])
-            parts.append(f"<b>Map</b> {v:.3f}" if np.isfinite(v) else "<b>Map</b> –")
+            kind = stat_kind(self.state.map_settings.stat)
+            parts.append(f"<b>Map</b> {fmt(kind, layer.data[i, j, k])}")
         atlas = self.state.atlas
         if atlas is not None:  # the region at the voxel's centre, through the affines
             parts.append(f"<b>Region</b> {esc(atlas.region_at((x, y, z)).text)}")
