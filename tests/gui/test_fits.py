@@ -9,6 +9,7 @@ from voxelscope.core.companions import find_companions
 from voxelscope.core.confounds import read_confounds
 from voxelscope.core.events import read_events
 from voxelscope.core.model import Analysis
+from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.core.run import open_run
 from voxelscope.gui.fits import format_value
 
@@ -54,7 +55,7 @@ def test_table_equals_core_fit(window, ras_run, noise):
         r = list(table).index(f.kernel)
         if noise == "ar1":  # rho sits in the notes line and the copied table, not a column
             assert window.fits.model.raw(r, "rho") == pytest.approx(f.rho, rel=1e-12)
-            assert f"{f.kernel} {f.rho:.2f}" in window.fits.noise_line.full_text()
+            assert f"{f.kernel} {fmt('r', f.rho)}" in window.fits.noise_line.full_text()
         else:
             assert window.fits.model.raw(r, "rho") is None
         assert "rho" not in row

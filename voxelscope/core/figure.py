@@ -27,6 +27,7 @@ True
 
 from __future__ import annotations
 
+import gc
 import io
 import math
 import os
@@ -270,8 +271,14 @@ class Figure:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")  # a glyph the font lacks is drawn as a box
             canvas.draw()
-        rgba = np.asarray(canvas.buffer_rgba())
-        return np.ascontiguousarray(rgba[:H, :W, :3])
+        out = np.ascontiguousarray(np.asarray(canvas.buffer_rgba())[:H, :W, :3])
+        # matplotlib's artists and transforms refer to each other: a drawn figure is cyclic
+        # garbage that Python's collector reaches late, so a report of many figures would
+        # pile them up (tests/core/test_report_faults.py measures the peak); free it now
+        fig.clear()
+        del fig, canvas, ax
+        gc.collect()
+        return out
 
     def to_png(self, scale: float = 1.0, width_px: int | None = None) -> bytes:
         """PNG bytes at ``scale`` device pixels per unit (or scaled to ``width_px`` wide)."""

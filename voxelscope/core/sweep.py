@@ -64,6 +64,7 @@ import numpy as np
 from .errors import InputError, VoxelscopeError
 from .jsonsafe import json_safe
 from .model import ModelSettings
+from .numfmt import format_value
 
 __all__ = [
     "BETA_KEPT",
@@ -536,7 +537,8 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
                 flags.append(
                     (
                         "task-motion",
-                        f"The task regressor correlates {task_r:.2f} with the motion columns "
+                        "The task regressor correlates "
+                        f"{format_value('r', task_r)} with the motion columns "
                         f"and only {100 * max(kept, 0):.0f}% of the effect is left once the "
                         "six motion parameters join the model: motion locked to the task "
                         "is a likely cause.",
@@ -736,7 +738,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
                 0,
                 (
                     "edge",
-                    f"The peak is {edge:.1f} mm from the brain edge of the "
+                    f"The peak is {format_value('mm', edge)} mm from the brain edge of the "
                     "first run, where head motion can look like activation.",
                 ),
             )

@@ -32,6 +32,7 @@ from pathlib import Path
 from typing import Any
 
 from .jsonsafe import json_safe
+from .numfmt import format_value
 from .sweep import SweepResult, SweepSettings
 
 __all__ = ["CAUTION", "FINDING_COLUMNS", "finding_rows", "write_outputs"]
@@ -134,7 +135,7 @@ def _rows_of(res: dict, agreement: dict) -> list[dict[str, Any]]:
         flags = [tuple(x) for x in f["flags"]]
         agree = agreement.get(f"{res['key']}#{f['cluster']}")
         if agree and agree.get("alone"):
-            ts = ", ".join(f"{t:.1f}" for t in agree["others_t"])
+            ts = ", ".join(format_value("t", t) for t in agree["others_t"])
             flags.append(
                 (
                     "this-run-only",

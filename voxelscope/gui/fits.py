@@ -135,7 +135,7 @@ def f_summary(fits) -> str:
     --------
     >>> from types import SimpleNamespace as NS
     >>> print(f_summary(NS(fits=[NS(kernel="fir", f=12.3456, f_df=(20, 197), f_p=1.2e-8)])))
-    F test of all the condition's columns: fir F(20, 197) = 12.346, p 1.20e-08
+    F test of all the condition's columns: fir F(20, 197) = 12.35, p 1.20e-08
     """
     parts = [
         f"{f.kernel} F({f.f_df[0]}, {f.f_df[1]}) = {format_value('F', f.f)}, "
@@ -157,16 +157,16 @@ def noise_summary(fits) -> tuple[str, str]:
     for f in fits.fits:
         est = getattr(f, "noise_estimate", None)
         if est is not None:
-            parts.append(f"{f.kernel} {', '.join(f'{v:.2f}' for v in est.phi)}")
+            parts.append(f"{f.kernel} {', '.join(format_number('r', v) for v in est.phi)}")
             long.append(f"{f.kernel}: {est.describe()}")
             source.add(f"from {est.n_neighbours} voxels around ({est.fwhm_mm:g} mm)")
         elif f.result.noise == "arp" and f.result.ar is not None:
             coefs = np.asarray(f.result.ar, dtype=float).reshape(-1)
-            parts.append(f"{f.kernel} {', '.join(f'{v:.2f}' for v in coefs)}")
+            parts.append(f"{f.kernel} {', '.join(format_number('r', v) for v in coefs)}")
             long.append(f"{f.kernel}: {f.noise_text}")
             source.add("from this voxel alone")
         elif f.rho is not None:
-            parts.append(f"{f.kernel} {f.rho:.2f}")
+            parts.append(f"{f.kernel} {format_number('r', f.rho)}")
             long.append(f"{f.kernel}: {f.noise_text}")
     if not parts:
         return "", ""
