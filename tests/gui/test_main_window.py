@@ -215,6 +215,7 @@ def test_demo_contrast_is_the_core_default_like_the_command_line(demo_files, qtb
     assert w.state.settings.contrast is None  # nothing set: the core's rule decides
     assert w.state.analysis.default_contrast() == DEMO_CONTRAST
     assert w.state.fits.fits[0].contrast == DEMO_CONTRAST
+    assert w.model_panel.contrast.placeholderText() == f"{DEMO_CONTRAST} (default)"
     code = (
         "import sys, voxelscope.cli; sys.exit(voxelscope.cli.main(['fit', "
         f"{str(d['run'])!r}, '--voxel', '1', '1', '1', '--format', 'json', '--kernels', 'boxcar']))"

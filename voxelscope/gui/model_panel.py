@@ -464,7 +464,8 @@ class ModelPanel(QWidget):
         self.contrast.set_names(names)
         if names:
             example = f"{names[0]} - {names[1]}" if len(names) > 1 else names[0]
-            self.contrast.setPlaceholderText(f"{names[0]} (default)")
+            # the core's one rule (events sidecar order, else the file's first condition)
+            self.contrast.setPlaceholderText(f"{analysis.default_contrast()} (default)")
             self.contrast_hint.setText(f"Conditions: {', '.join(names)}. Example: {example}")
         else:
             self.contrast.setPlaceholderText("open an events file first")
