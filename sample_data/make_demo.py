@@ -721,18 +721,17 @@ def _marks(features: list[dict], spikes: list[int]) -> list[list[str]]:
             "clearly smaller: trust the AR(1) one here.",
         ),
     }
-    # the model each mark was made under (only the settings that differ from the defaults)
-    tone, tap = {"contrast": "tone"}, {"contrast": "tap"}
+    # the model each mark was made under (only the settings that differ from the defaults;
+    # no confound columns, as the window starts)
+    tone = {"contrast": "tone", "confound_columns": []}
+    tap = {"contrast": "tap", "confound_columns": []}
     models = {
         "tone_cluster": tone,
         "tap_cluster": tap,
-        "late_cluster": {
-            "contrast": "tone",
-            "kernels": ["boxcar", "gaussian", "gamma", "double-gamma", "fir"],
-        },
+        "late_cluster": {**tone, "kernels": ["boxcar", "gaussian", "gamma", "double-gamma", "fir"]},
         "rim_motion": tone,
         "drift_cluster": tone,
-        "noisy_cluster": {"contrast": "tap", "noise": "ar1"},
+        "noisy_cluster": {**tap, "noise": "ar1"},
     }
     aff = bold_affine()
     rows = []

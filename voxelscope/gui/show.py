@@ -407,9 +407,16 @@ class ShowMode(QObject):
                 + model_words(st.settings, default, kernels=False)
             )
             return
-        if self.restore_models and model != st.settings and not self._apply_model(model):
+        said: list[str] = []
+        st.message.connect(said.append)
+        try:
+            ok = not self.restore_models or model == st.settings or self._apply_model(model)
+        finally:
+            st.message.disconnect(said.append)
+        if not ok:
+            why = f" ({said[-1]})" if said else ""
             self.banner.set_model(
-                "The mark's own model does not fit this run; shown under "
+                f"The mark's own model does not fit this run{why}; shown under "
                 + model_words(st.settings, default, kernels=False)
             )
             return
@@ -483,6 +490,10 @@ class ShowMode(QObject):
         keep["units"] = [(b, b.isVisible()) for b in (sig.unit_data, sig.unit_pct)]
         for b, _ in keep["units"]:
             b.setVisible(False)  # a slide shows the units on the axis, not the choice
+        goto = getattr(w.slices, "goto", None)
+        if goto is not None:  # typing a place is not for a slide; the readout gets the row
+            keep["goto"] = (goto, goto.isVisible())
+            goto.setVisible(False)
         keep["resid_share"] = sig.resid_share
         sig.set_resid_share(0.4)
         bar = w.slices.colour_bar
@@ -526,6 +537,8 @@ class ShowMode(QObject):
         for b, visible in keep.get("units", []):
             b.setVisible(visible)
         sig.set_resid_share(keep.get("resid_share", sig.resid_share))
+        if "goto" in keep:
+            keep["goto"][0].setVisible(keep["goto"][1])
         w.slices.colour_bar.set_large(False)
         for line, pen in keep["lines"]:
             line.setPen(pen)

@@ -279,6 +279,8 @@ class SignalPanel(QWidget):
         self.resid.setMaximumHeight(resid)
         self.plot.setMinimumHeight(0)
         self.plot.setMaximumHeight(max(1, usable - resid))
+        if self._label_px is not None:
+            self._space_ticks()
 
     def set_resid_share(self, share: float) -> None:
         """Change the residuals' share of the height (Show mode gives them more room for
@@ -287,9 +289,36 @@ class SignalPanel(QWidget):
         self._share_rows()
 
     def set_label_size(self, px: int | None) -> None:
-        """Axis titles at ``px`` pixels (None: the normal size)."""
+        """Axis titles at ``px`` pixels (None: the normal size); with a size, the value
+        axes also keep their tick labels at least two text lines apart."""
         self._label_px = px
         self._set_labels()
+        self._space_ticks()
+
+    def _space_ticks(self) -> None:
+        """Large text (Show mode): on the value axes, about one tick label per one and a
+        half text heights (at least two), at a step of 1, 2 or 5 times a power of ten;
+        automatic otherwise."""
+        for plot in (self.plot, self.resid):
+            ax = plot.getAxis("left")
+            if self._label_px is None:
+                if ax._tickSpacing is not None:
+                    ax.setTickSpacing()
+                continue
+            lo, hi = plot.getViewBox().viewRange()[1]
+            room = plot.getViewBox().height()
+            fits = max(2, int(room // (1.5 * self._label_px)))
+            span = hi - lo
+            if not (span > 0 and np.isfinite(span)):
+                continue
+            raw = span / fits
+            base = 10.0 ** np.floor(np.log10(raw))
+            steps = [m * base for m in (0.1, 0.2, 0.5, 1, 2, 5, 10)]
+            k = next(i for i, v in enumerate(steps) if v >= raw)
+            # at least two labels (a lone "0" does not say the scale)
+            while k > 0 and np.floor(hi / steps[k]) - np.ceil(lo / steps[k]) < 1:
+                k -= 1
+            ax.setTickSpacing(levels=[(steps[k], 0.0)])
 
     def _set_labels(self) -> None:
         pct = self.state.units == "percent"
@@ -452,6 +481,7 @@ class SignalPanel(QWidget):
             self.plot.setXRange(*span, padding=0.01)
         _set_y(self.plot, _span(top))
         _set_y(self.resid, _span([*bottom, [0.0]]))
+        self._space_ticks()
         self._update_legend(shown)
 
     def _update_legend(self, shown) -> None:
