@@ -155,8 +155,8 @@ def test_open_runs_at_once_in_the_background(window, qtbot, three_runs):
     from voxelscope.gui.runs import open_runs
 
     assert open_runs(window, [r["run"] for r in three_runs])
-    qtbot.waitUntil(lambda: len(window.state.bundles) == 3, timeout=20000)
-    qtbot.waitUntil(lambda: not getattr(window, "runs_jobs", []), timeout=20000)
+    qtbot.waitUntil(lambda: len(window.state.bundles) == 3, timeout=60000)
+    qtbot.waitUntil(lambda: not getattr(window, "runs_jobs", []), timeout=60000)
     assert [r.label for r in window.state.run_fits] == ["run-1", "run-2", "run-3"]
 
 
