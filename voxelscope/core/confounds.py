@@ -444,7 +444,12 @@ def parse_confounds(
     if not lines:
         raise InputError(f"{source}: the confounds file is empty; it needs a header row")
     delim = "\t" if "\t" in lines[0] else ","
-    rows = list(csv.reader(lines, delimiter=delim))
+    try:  # Python 3.10's csv refuses NUL bytes, later versions read them as text
+        rows = list(csv.reader(lines, delimiter=delim))
+    except csv.Error as err:
+        raise InputError(
+            f"{source}: not a readable table ({err}); save it as plain tab-separated text"
+        ) from None
     header = [h.strip() for h in rows[0]]
     body = rows[1:]
     try:

@@ -314,7 +314,12 @@ def _read_rows(
 ) -> tuple[list[str], list[tuple[int, list[str]]]]:
     # split lines ourselves: a lone carriage return inside a cell would stop the csv module
     text = stream.read() if hasattr(stream, "read") else "".join(stream)
-    reader = csv.reader(text.splitlines(), delimiter="\t")
+    try:  # Python 3.10's csv refuses NUL bytes, later versions read them as text
+        reader = iter(list(csv.reader(text.splitlines(), delimiter="\t")))
+    except csv.Error as err:
+        raise InputError(
+            f"{source}: not a readable table ({err}); save it as plain tab-separated text"
+        ) from None
     try:
         header = [h.strip() for h in next(reader)]
     except StopIteration:
