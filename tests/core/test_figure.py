@@ -237,7 +237,7 @@ def test_save_writes_atomically_and_refuses_overwrite(tmp_path):
     fig = _fits_figure()
     fig.save_png(tmp_path / "f.png", scale=1)
     fig.save_svg(tmp_path / "f.svg")
-    with pytest.raises(Exception, match="--force"):
+    with pytest.raises(Exception, match="already exists"):
         fig.save_png(tmp_path / "f.png")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["f.png", "f.svg"]
 

@@ -108,7 +108,7 @@ def test_read_errors_name_the_file(tmp_path):
 
 def test_write_refuses_to_overwrite(tmp_path):
     p = write_marks_tsv([Mark(0, 0, 0, "a")], tmp_path / "m.tsv")
-    with pytest.raises(InputError, match="--force"):
+    with pytest.raises(InputError, match="already exists"):
         write_marks_tsv([], p)
     write_marks_tsv([], p, force=True)
     assert len(read_marks_tsv(p)) == 0

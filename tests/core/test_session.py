@@ -157,7 +157,7 @@ def test_moving_only_the_session_file_uses_the_absolute_path(tmp_path):
 
 def test_save_refuses_overwrite_without_force(tmp_path):
     p = S.save_session(S.Session(), tmp_path / "v.voxelscope.json")
-    with pytest.raises(InputError, match="--force"):
+    with pytest.raises(InputError, match="already exists"):
         S.save_session(S.Session(voxel=(1, 1, 1)), p)
     S.save_session(S.Session(voxel=(1, 1, 1)), p, force=True)
     assert S.load_session(p).session.voxel == (1, 1, 1)
