@@ -109,7 +109,7 @@ def test_explain_finds_a_kernel_and_a_scale_factor():
     ex2 = explain(run, a, s, 2.5 * ours.t, kernel="double-gamma", ours=ours, shifts_s=())
     assert ex2.best.kind == "as given" and ex2.baseline.r == pytest.approx(1.0)
     assert ex2.baseline.robust_slope == pytest.approx(2.5, rel=1e-6)
-    assert "2.5 times ours" in ex2.statement
+    assert "2.50 times ours" in ex2.statement  # 3 significant digits (core/numfmt.py)
     ex3 = explain(run, a, s, ours.t, kernel="double-gamma", ours=ours, shifts_s=(), kernels=())
     assert ex3.statement.startswith("The maps agree")
 
