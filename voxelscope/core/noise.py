@@ -37,7 +37,9 @@ with its data goes through the same sums.
 7. **Degrees of freedom**: ``n - rank``. The paper gives an effective df that adds the
    variance of the estimated autocorrelations; with the smoothing kernel averaging
    hundreds of voxels that term is small, and the calibration benchmark
-   (``tests/benchmarks/calibration.py``) measures the resulting false-positive rates.
+   (``tests/benchmarks/calibration.py``) finds the rates nominal without it for AR noise
+   and conservative for 1/f-like noise under block designs, so a smaller df would only
+   make the test more conservative.
 
 Examples
 --------
