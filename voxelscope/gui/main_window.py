@@ -232,16 +232,6 @@ class MainWindow(QMainWindow):
         # apply the new sizes now, so nothing moves under the next click
         self.layout().activate()
         QCoreApplication.sendPostedEvents(None, QEvent.Type.LayoutRequest)
-        # Signal gets a bit less than half of the middle (its plots need height; the slices are
-        # limited by their width in a narrow window anyway)
-        ws = self.workspace
-        i_sl, i_sg = ws.indexOf(self.slices), ws.indexOf(self.signal)
-        if i_sl >= 0 and i_sg >= 0:
-            sizes = ws.sizes()
-            free = sizes[i_sl] + sizes[i_sg]
-            sig = max(self.signal.minimumSizeHint().height(), round(0.44 * free))
-            sizes[i_sg], sizes[i_sl] = sig, max(0, free - sig)
-            ws.setSizes(sizes)
 
     def showEvent(self, ev) -> None:
         super().showEvent(ev)
@@ -830,10 +820,6 @@ class MainWindow(QMainWindow):
         if size is not None and (self.width(), self.height()) != tuple(size):
             self.resize(int(size[0]), int(size[1]))
             QCoreApplication.processEvents()
-            self.arrange()
-            QCoreApplication.processEvents()
-        elif size is not None and self.auto_arrange:
-            # resized before (the command line sizes the window first): share it out again
             self.arrange()
             QCoreApplication.processEvents()
         for hook in self.settle_hooks:  # e.g. the live map being computed
