@@ -334,9 +334,10 @@ def test_sessions_and_reports_keep_the_left_out_volumes(tmp_path):
     a, _rng, _n = _censored_analysis()
     s = ModelSettings(drop_volumes=5, censor_fd_mm=0.5, confound_columns=())
     rows = dict(_settings_rows(s, a))
-    assert rows["drop_volumes"] == "5" and rows["censor_fd_mm"] == "0.5"
-    assert rows["volumes left out"].startswith("8: 0 (non-steady-state")
-    assert "97 (framewise displacement 0.90 mm > 0.5 mm)" in rows["volumes left out"]
+    assert rows["Volumes dropped at the start"] == "5"
+    assert rows["Framewise-displacement limit"].startswith("0.5 mm")
+    assert rows["Volumes left out"].startswith("8: 0 (non-steady-state")
+    assert "97 (framewise displacement 0.90 mm > 0.5 mm)" in rows["Volumes left out"]
 
     from voxelscope.core import session
 
