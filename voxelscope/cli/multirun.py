@@ -58,7 +58,7 @@ def load_runs(
         A run that cannot be loaded (the message names it), mismatched ``--events`` /
         ``--confounds`` counts, or the same run twice.
     """
-    from ..core.combine import run_labels  # here: --help and start-up stay short
+    from ..core.bids import run_labels
 
     paths = run_paths(args)
     n = len(paths)

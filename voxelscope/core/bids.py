@@ -34,6 +34,7 @@ from __future__ import annotations
 
 import os
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -49,6 +50,7 @@ __all__ = [
     "find_dataset",
     "find_for_run",
     "parse_name",
+    "run_labels",
 ]
 
 #: Entities that identify an acquisition (BIDS entity table); pipeline entities (space,
@@ -335,3 +337,37 @@ def find_for_run(run_path: Path, bids_root: Path | None = None) -> Found:
         ambiguous=ambiguous,
         dataset=ds,
     )
+
+
+_RUN_ENTITY = re.compile(r"(?:^|_)(run-[A-Za-z0-9]+)(?:_|$)")
+
+
+def _stem(path: Path) -> str:
+    name = path.name
+    for ext in (".nii.gz", ".nii"):
+        if name.endswith(ext):
+            return name[: -len(ext)]
+    return path.stem
+
+
+def run_labels(paths: Sequence[str | os.PathLike[str]]) -> list[str]:
+    """Short, unique names for runs: the BIDS ``run-`` entity when that tells them apart,
+    else the file name without its extension, else a number.
+
+    >>> run_labels(["a/sub-1_task-x_run-1_bold.nii.gz", "a/sub-1_task-x_run-2_bold.nii.gz"])
+    ['run-1', 'run-2']
+    >>> run_labels(["x/one.nii", "y/two.nii.gz"])
+    ['one', 'two']
+    >>> run_labels(["x/r.nii", "y/r.nii"])
+    ['1: r', '2: r']
+    """
+    stems = [_stem(Path(p)) for p in paths]
+    ents = []
+    for s in stems:
+        m = _RUN_ENTITY.search(s)
+        ents.append(m.group(1) if m else None)
+    if all(ents) and len(set(ents)) == len(ents):
+        return [str(e) for e in ents]
+    if len(set(stems)) == len(stems):
+        return stems
+    return [f"{i + 1}: {s}" for i, s in enumerate(stems)]

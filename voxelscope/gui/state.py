@@ -24,7 +24,8 @@ import numpy as np
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
 
-from voxelscope.core.combine import CombinedFit, combine_fits, run_labels
+from voxelscope.core.bids import run_labels
+from voxelscope.core.combine import CombinedFit, combine_fits
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
