@@ -15,7 +15,7 @@ import time
 from pathlib import Path
 
 HERE = Path(__file__).resolve().parent
-ORDER = ["startup", "companions", "fit", "run", "maps", "runs", "sweep", "gui"]
+ORDER = ["startup", "companions", "fit", "run", "maps", "noise", "runs", "sweep", "gui"]
 
 
 def _print_rows(rows) -> None:
@@ -46,6 +46,13 @@ def main(argv: list[str] | None = None) -> int:
     os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
     sys.path.insert(0, str(HERE))
     names = argv if argv else [n for n in ORDER if (HERE / f"bench_{n}.py").exists()]
+    unknown = [n for n in names if not (HERE / f"bench_{n}.py").exists()]
+    if unknown:
+        known = ", ".join(sorted(p.stem[6:] for p in HERE.glob("bench_*.py")))
+        print(
+            f"run.py: no benchmark named {', '.join(unknown)}; choose from {known}", file=sys.stderr
+        )
+        return 2
     all_ok = True
     for name in names:
         mod = importlib.import_module(f"bench_{name}")
