@@ -3,9 +3,10 @@
 The generated study of ``tests/sweep_study.py`` (invented data) with 4 subjects x 3 runs of
 64x64x40 voxels and 240 volumes (``.nii``, brain masks, confounds tables): runs of a real
 study's size per task, 157 MB each. With toy runs (40x40x30 x 150, about a second of work
-each) the cluster's fixed costs dominate: 0.72x on the idle 2-core machine against 0.59x here. Both sides are
-the whole command, ``voxelscope sweep STUDY -o OUT --workers N`` into a fresh OUT (nothing
-to resume), started as fresh processes in alternation so a change of load hits both alike.
+each) the cluster's fixed costs dominate: 0.72x on the idle 2-core machine against 0.59x
+here. Both sides are the whole command, ``voxelscope sweep STUDY -o OUT --workers N``
+into a fresh OUT (nothing to resume), started as fresh processes in alternation so a change
+of load hits both alike.
 The row is the ratio of the median times, 2 workers over 1; goal <= 0.6 (issue 19, for a
 machine with 4 cores to spare). A local cluster starts its worker processes and each
 imports voxelscope, which costs the same whatever the number of workers; on a machine with
