@@ -47,6 +47,21 @@ def parse_highpass(text: str) -> float | None:
     return v
 
 
+def parse_threshold(text: str) -> float:
+    """``--threshold``: a finite number >= 0 (|t| or the map's own statistic).
+
+    >>> parse_threshold("3.5")
+    3.5
+    """
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--threshold takes a number, not '{text}'") from None
+    if not (v >= 0 and math.isfinite(v)):
+        raise argparse.ArgumentTypeError("--threshold must be a number >= 0")
+    return v
+
+
 def parse_kernels(text: str) -> tuple[str, ...]:
     """Comma-separated kernel names, checked."""
     names = tuple(n.strip().lower() for n in str(text).split(",") if n.strip())

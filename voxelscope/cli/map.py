@@ -13,13 +13,18 @@ Examples
 from __future__ import annotations
 
 import argparse
-import math
 from pathlib import Path
 
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
 from ..core.numfmt import format_value
-from .common import Loaded, add_model_args, analysis_from_args, print_warnings
+from .common import (
+    Loaded,
+    add_model_args,
+    analysis_from_args,
+    parse_threshold,
+    print_warnings,
+)
 from .helptext import count, help_args
 from .multirun import load_runs, run_paths
 
@@ -48,16 +53,6 @@ def _rho_step(text: str) -> float | None:
         ) from None
     if not (0 < v <= 0.5):
         raise argparse.ArgumentTypeError("--rho-step must be above 0 and at most 0.5, or 'exact'")
-    return v
-
-
-def _threshold(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--threshold takes a number, not '{text}'") from None
-    if not (v >= 0 and math.isfinite(v)):
-        raise argparse.ArgumentTypeError("--threshold must be a number >= 0")
     return v
 
 
@@ -109,7 +104,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     g.add_argument(
         "--threshold",
-        type=_threshold,
+        type=parse_threshold,
         metavar="T",
         help="cluster threshold on |stat| (needed with --clusters)",
     )
@@ -135,7 +130,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     g.add_argument(
         "--tolerance",
-        type=_threshold,
+        type=parse_threshold,
         default=1.0,
         metavar="D",
         help="a voxel disagrees when the maps differ by more than D (default 1)",

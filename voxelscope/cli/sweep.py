@@ -10,13 +10,12 @@ Examples
 from __future__ import annotations
 
 import argparse
-import math
 import sys
 import time
 from pathlib import Path
 
 from ..core.errors import InputError
-from .common import _names, add_model_args, check_model_args
+from .common import _names, add_model_args, check_model_args, parse_threshold
 
 __all__ = ["register", "run_sweep_command"]
 
@@ -28,16 +27,6 @@ def _kernel(text: str) -> str:
         return get_kernel(str(text).strip().lower()).name
     except Exception as exc:  # InputError with the list of kernels
         raise argparse.ArgumentTypeError(str(exc)) from None
-
-
-def _threshold(text: str) -> float:
-    try:
-        v = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--threshold takes a number, not '{text}'") from None
-    if not (v >= 0 and math.isfinite(v)):
-        raise argparse.ArgumentTypeError("--threshold must be a number >= 0")
-    return v
 
 
 def _count(name: str, low: int, high: int):
@@ -94,7 +83,7 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument(
         "--threshold",
-        type=_threshold,
+        type=parse_threshold,
         default=DEFAULT_THRESHOLD,
         metavar="T",
         help=f"clusters are voxels with |t| > T (default {DEFAULT_THRESHOLD:g})",

@@ -63,8 +63,8 @@ _MAD_SCALE = 1.4826  # MAD -> SD for normal data (common practice)
 def pearson_r(a: np.ndarray, b: np.ndarray) -> float:
     """Pearson correlation of two equally long series; NaN when either is constant.
 
-    ``sum(a_c b_c) / sqrt(sum(a_c^2) sum(b_c^2))`` with ``a_c``, ``b_c`` centred (the
-    published definition).
+    The cross-product of the centred series over the square root of the product of their
+    centred sums of squares (the published definition).
 
     >>> pearson_r(np.array([1.0, 2.0, 3.0]), np.array([2.0, 4.0, 7.0]))  # doctest: +ELLIPSIS
     0.99339...
