@@ -328,8 +328,8 @@ def test_fir_estimate_uses_the_kept_volumes():
 
 def test_sessions_and_reports_keep_the_left_out_volumes(tmp_path):
     from voxelscope.core.model import ModelSettings
+    from voxelscope.core.model_json import FieldCheck, model_to_json, read_model_fields
     from voxelscope.core.report import _settings_rows
-    from voxelscope.core.session import _model_from_json, _model_to_json
 
     a, _rng, _n = _censored_analysis()
     s = ModelSettings(drop_volumes=5, censor_fd_mm=0.5, confound_columns=())
@@ -339,10 +339,8 @@ def test_sessions_and_reports_keep_the_left_out_volumes(tmp_path):
     assert rows["Volumes left out"].startswith("8: 0 (non-steady-state")
     assert "97 (framewise displacement 0.90 mm > 0.5 mm)" in rows["Volumes left out"]
 
-    from voxelscope.core import session
-
-    c = session._Check("s.json")  # the session reader's field checker
-    back = _model_from_json(_model_to_json(s), c, [])
+    c = FieldCheck("s.json")  # the session reader's field checker
+    back = read_model_fields(model_to_json(s), c, [])
     assert back.drop_volumes == 5 and back.censor_fd_mm == 0.5
 
 

@@ -44,6 +44,7 @@ from .atomic import write_text
 from .errors import InputError
 from .inputs import read_input_text
 from .model import ModelSettings
+from .model_json import model_from_json, model_to_json
 
 __all__ = [
     "MARK_COLUMNS",
@@ -98,8 +99,6 @@ class Mark:
         """Plain dict with the TSV column names as keys (``model`` only when known)."""
         out: dict[str, Any] = {c: getattr(self, c) for c in MARK_COLUMNS}
         if self.model is not None:
-            from .session import model_to_json
-
             out[MODEL_COLUMN] = model_to_json(self.model)
         return out
 
@@ -124,8 +123,6 @@ class Mark:
             raise InputError("a mark's title and note must be text")
         model = None
         if data.get(MODEL_COLUMN) is not None:
-            from .session import model_from_json
-
             model = model_from_json(data[MODEL_COLUMN], f"mark '{title}'", "its model")
         return cls(*xyz, title=title, note=note, model=model)
 
@@ -305,8 +302,6 @@ def _model_cell(model: ModelSettings | None) -> str:
     """A model as one line of JSON ("" for None)."""
     if model is None:
         return ""
-    from .session import model_to_json
-
     return json.dumps(model_to_json(model), ensure_ascii=False, separators=(",", ":"))
 
 
@@ -314,7 +309,6 @@ def _parse_model_cell(cell: str, source: str, line: int) -> ModelSettings | None
     if not cell.strip():
         return None
     from .inputs import parse_json
-    from .session import model_from_json
 
     where = f"line {line}, column '{MODEL_COLUMN}'"
     try:

@@ -46,10 +46,9 @@ from __future__ import annotations
 import datetime as _dt
 import hashlib
 import json
-import math
 import os
 from collections.abc import Callable
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -57,9 +56,10 @@ from .atomic import write_text
 from .errors import InputError
 from .hrf import KERNEL_NAMES
 from .inputs import excerpt, parse_json, read_input_text
-from .limits import CONTRAST_CHARS, setting_problem
+from .limits import setting_problem
 from .marks import MarkList
 from .model import ModelSettings
+from .model_json import FieldCheck, model_to_json, read_model_fields
 
 __all__ = [
     "MAP_COLOUR_SCALES",
@@ -96,8 +96,6 @@ MAP_SOURCES = ("model", "difference", "file", "disagreement")
 MAP_STATS = ("t", "z", "beta", "variance", "p", "neglog10p")
 #: No grid has more voxels along an axis than this (NIfTI-1 stores dimensions as int16).
 MAX_VOXEL_INDEX = 1_000_000
-#: Most problems listed for one session file.
-_MAX_PROBLEMS = 20
 
 # version n -> function turning a version-n dict into a version-(n+1) dict
 _UPGRADES: dict[int, Callable[[dict[str, Any]], dict[str, Any]]] = {}
@@ -213,14 +211,6 @@ def file_digest(path: str | os.PathLike[str], chunk_size: int = _CHUNK) -> str:
 # ----------------------------------------------------------------------------- to JSON
 
 
-def _model_to_json(m: ModelSettings) -> dict[str, Any]:
-    out: dict[str, Any] = {}
-    for f in fields(ModelSettings):
-        v = getattr(m, f.name)
-        out[f.name] = list(v) if isinstance(v, tuple) else v
-    return out
-
-
 def _stored_path(p: Path, base: Path, relative: bool) -> str:
     if relative:
         try:
@@ -260,7 +250,7 @@ def session_to_json(
         "saved": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
         "software": _software_version(),
         "files": files,
-        "model": _model_to_json(session.model),
+        "model": model_to_json(session.model),
         "kernels": {k: dict(v) for k, v in session.kernels.items()},
         "voxel": None if session.voxel is None else [int(v) for v in session.voxel],
         "map": session.map,
@@ -310,206 +300,7 @@ def save_session(
 # --------------------------------------------------------------------------- from JSON
 
 
-class _Check:
-    """Field validation with messages that name the file and the field."""
-
-    def __init__(self, source: str) -> None:
-        self.source = source
-        self.problems: list[str] = []
-
-    def collect(self, fn: Callable[[], Any], default: Any = None) -> Any:
-        """Run one field's check; a problem is recorded and ``default`` returned."""
-        try:
-            return fn()
-        except InputError as err:
-            if len(self.problems) < _MAX_PROBLEMS:
-                self.problems.append(str(err))
-            return default
-
-    def fail(self, fieldname: str, what: str) -> InputError:
-        return InputError(
-            f"{self.source}: field '{fieldname}' {what}; fix it or save the session again"
-        )
-
-    def obj(self, v: Any, name: str) -> dict[str, Any]:
-        if not isinstance(v, dict):
-            raise self.fail(name, "must be an object")
-        return v
-
-    def number(self, v: Any, name: str, allow_none: bool = False) -> float | None:
-        if v is None and allow_none:
-            return None
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise self.fail(
-                name, f"must be a number{' or null' if allow_none else ''}, not {excerpt(repr(v))}"
-            )
-        return float(v)
-
-    def integer(self, v: Any, name: str) -> int:
-        if isinstance(v, bool) or not isinstance(v, int):
-            raise self.fail(name, f"must be a whole number, not {excerpt(repr(v))}")
-        return int(v)
-
-    def text(self, v: Any, name: str, allow_none: bool = False) -> str | None:
-        if v is None and allow_none:
-            return None
-        if not isinstance(v, str):
-            raise self.fail(
-                name, f"must be text{' or null' if allow_none else ''}, not {excerpt(repr(v))}"
-            )
-        return v
-
-    def texts(self, v: Any, name: str, allow_none: bool = False) -> tuple[str, ...] | None:
-        if v is None and allow_none:
-            return None
-        if not isinstance(v, list) or not all(isinstance(x, str) for x in v):
-            raise self.fail(name, "must be a list of text")
-        return tuple(v)
-
-
-def _model_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> ModelSettings:
-    """Model settings; each bad field is one problem in ``c`` (and the default is kept)."""
-    known = {f.name for f in fields(ModelSettings)}
-    for k in sorted(set(d) - known - {"fir_bins"}):
-        warnings.append(f"{c.source}: unknown model setting '{excerpt(k)}' ignored")
-    kw: dict[str, Any] = {}
-
-    def kernels() -> tuple[str, ...]:
-        ks = c.texts(d["kernels"], "model.kernels")
-        bad = [excerpt(k) for k in ks if k.lower() not in KERNEL_NAMES]
-        if bad or not ks:
-            raise c.fail(
-                "model.kernels",
-                f"has unknown kernel(s) {', '.join(bad[:5])}; use {', '.join(KERNEL_NAMES)}"
-                if bad
-                else "is empty; list at least one kernel",
-            )
-        return ks
-
-    def contrast() -> str | None:
-        text = c.text(d["contrast"], "model.contrast", allow_none=True)
-        if text is not None and len(text) > CONTRAST_CHARS:
-            raise c.fail("model.contrast", f"is {len(text)} characters long")
-        return text
-
-    def noise() -> str:
-        value = c.text(d["noise"], "model.noise")
-        if value not in ("arp", "ols", "ar1"):
-            raise c.fail("model.noise", f"must be 'arp', 'ols' or 'ar1', not '{excerpt(value)}'")
-        return value
-
-    def ranged(name: str, integer: bool = False, allow_none: bool = False):
-        def check():
-            where = f"model.{name}"
-            v = d[name]
-            if v is None and allow_none:
-                return None
-            v = c.integer(v, where) if integer else c.number(v, where)
-            problem = setting_problem(name, v)
-            if problem is not None:
-                raise c.fail(where, problem)
-            return v
-
-        return check
-
-    def derivatives() -> int:
-        der = c.integer(d["derivatives"], "model.derivatives")
-        if der not in (0, 1, 2):
-            raise c.fail("model.derivatives", f"must be 0, 1 or 2, not {der}")
-        return der
-
-    def drop_volumes():
-        dv = c.integer(d["drop_volumes"], "model.drop_volumes")
-        if dv < 0:
-            raise c.fail("model.drop_volumes", "must be 0 or more volumes")
-        return dv
-
-    def censor_fd_mm():
-        fd = c.number(d["censor_fd_mm"], "model.censor_fd_mm", allow_none=True)
-        if fd is not None and fd <= 0:
-            raise c.fail("model.censor_fd_mm", "must be a positive number of mm or null")
-        return fd
-
-    def orthogonalize() -> bool:
-        if not isinstance(d["orthogonalize"], bool):
-            raise c.fail("model.orthogonalize", "must be true or false")
-        return d["orthogonalize"]
-
-    checks = {
-        "kernels": kernels,
-        "contrast": contrast,
-        "noise": noise,
-        "highpass_s": ranged("highpass_s", allow_none=True),
-        "confound_columns": lambda: c.texts(
-            d["confound_columns"], "model.confound_columns", allow_none=True
-        ),
-        "onset_shift_s": ranged("onset_shift_s"),
-        "derivatives": derivatives,
-        "fir_window_s": ranged("fir_window_s"),
-        "fir_bin_s": ranged("fir_bin_s", allow_none=True),
-        "drop_volumes": drop_volumes,
-        "censor_fd_mm": censor_fd_mm,
-        "modulators": lambda: c.texts(d["modulators"], "model.modulators"),
-        "orthogonalize": orthogonalize,
-    }
-    bad = object()
-    for name, check in checks.items():
-        if name in d:
-            value = c.collect(check, bad)
-            if value is not bad:
-                kw[name] = value
-    for name in sorted(known - set(checks)):  # fields added later: passed on as given
-        if name in d:
-            kw[name] = tuple(d[name]) if isinstance(d[name], list) else d[name]
-    if "fir_bins" in d and "fir_window_s" not in d:
-        # sessions written before the FIR window was given in seconds: bins x bin width
-        nb = c.collect(ranged("fir_bins", integer=True), bad)
-        if nb is not bad and nb and kw.get("fir_bin_s"):
-            window = float(nb) * float(kw["fir_bin_s"])
-            if setting_problem("fir_window_s", window) is None:
-                kw["fir_window_s"] = window
-    try:
-        return ModelSettings(**kw)
-    except (TypeError, ValueError, InputError) as err:
-        c.problems.append(f"{c.source}: field 'model' is not valid ({excerpt(err, 80)})")
-        return ModelSettings()
-
-
-def model_to_json(m: ModelSettings) -> dict[str, Any]:
-    """Model settings as plain JSON data (the session's ``model`` object).
-
-    >>> model_to_json(ModelSettings(contrast="tap"))["contrast"]
-    'tap'
-    """
-    return _model_to_json(m)
-
-
-def model_from_json(d: Any, source: str, where: str = "model") -> ModelSettings:
-    """Model settings from plain JSON data, checked field by field like a session's
-    ``model``; the first problem is one :class:`InputError` line naming ``where``.
-    Unknown fields are ignored (settings of a later version).
-
-    >>> model_from_json({"contrast": "tap", "noise": "ols"}, "m.tsv").noise
-    'ols'
-    >>> model_from_json({"noise": "loud"}, "m.tsv", "line 2, column 'model'")
-    Traceback (most recent call last):
-    ...
-    voxelscope.core.errors.InputError: m.tsv: line 2, column 'model': field 'model.noise' must be 'arp', 'ols' or 'ar1', not 'loud'; fix it or leave the mark's model out
-    """  # noqa: E501
-    if not isinstance(d, dict):
-        raise InputError(f"{source}: {where} must be an object of model settings")
-    c = _Check(source)
-    model = _model_from_json(d, c, [])
-    if c.problems:
-        first = c.problems[0]
-        prefix = f"{source}: "
-        first = first[len(prefix) :] if first.startswith(prefix) else first
-        first = first.replace("; fix it or save the session again", "")
-        raise InputError(f"{source}: {where}: {first}; fix it or leave the mark's model out")
-    return model
-
-
-def _map_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> dict[str, Any]:
+def _map_from_json(d: dict[str, Any], c: FieldCheck, warnings: list[str]) -> dict[str, Any]:
     """Map settings checked field by field: numbers in range, names from the known lists."""
     out: dict[str, Any] = {}
 
@@ -563,7 +354,7 @@ def _map_from_json(d: dict[str, Any], c: _Check, warnings: list[str]) -> dict[st
     return out
 
 
-def _upgrade(data: dict[str, Any], c: _Check) -> dict[str, Any]:
+def _upgrade(data: dict[str, Any], c: FieldCheck) -> dict[str, Any]:
     version = data.get("version")
     if isinstance(version, bool) or not isinstance(version, int):
         raise c.fail("version", f"must be a whole number, not {excerpt(repr(version))}")
@@ -597,7 +388,7 @@ def session_from_json(
         Per role the stored record (``path``, ``absolute``, ``sha256``, ``size``).
     warnings : list of str
     """
-    c = _Check(source)
+    c = FieldCheck(source)
     if not isinstance(data, dict) or data.get("schema") != SCHEMA:
         raise InputError(f"{source}: not a voxelscope session (field 'schema' must be '{SCHEMA}')")
     data = _upgrade(data, c)
@@ -627,7 +418,7 @@ def session_from_json(
         c.collect(one_file)
 
     model_json = c.collect(lambda: c.obj(data.get("model", {}), "model"), {})
-    model = _model_from_json(model_json or {}, c, warnings)
+    model = read_model_fields(model_json or {}, c, warnings)
 
     kernels: dict[str, dict[str, float]] = {}
     for name, params in (
