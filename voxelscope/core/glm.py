@@ -58,7 +58,7 @@ from __future__ import annotations
 import math
 import re
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -72,6 +72,7 @@ __all__ = [
     "PreparedDesign",
     "ar1_rho",
     "arp_block_sums",
+    "censored_design",
     "condition_f_matrix",
     "f_test",
     "fit",
@@ -118,6 +119,15 @@ class PreparedDesign:
         whitening treats those as gaps).
     warnings : tuple of str
         A poorly conditioned design (see :data:`CONDITION_LIMIT`).
+    spikes : ndarray of int or None
+        Only in the design of :func:`censored_design`: rows of ``X`` (volumes read into the
+        fit) that are censored and carry one indicator column each.
+    n_model : int or None
+        Only there too: the number of model columns (the rest are indicator columns, which
+        every result leaves out).
+    fit_keep : ndarray of bool (n_all,) or None
+        Only there too: the volumes that really enter the fit (``keep`` also reads the
+        censored volumes between them).
     """
 
     X: np.ndarray
@@ -134,6 +144,9 @@ class PreparedDesign:
     X_all: np.ndarray | None = None
     steps: np.ndarray | None = None
     warnings: tuple[str, ...] = ()
+    spikes: np.ndarray | None = None
+    n_model: int | None = None
+    fit_keep: np.ndarray | None = None
 
     @property
     def n_all(self) -> int:
@@ -300,6 +313,71 @@ def prepare(
         q=q,
         r_inv=r_inv,
     )
+
+
+def censored_design(prep: PreparedDesign) -> PreparedDesign:
+    """The design of an exact AR(p) fit when volumes inside the run are left out.
+
+    An AR(p) whitening needs consecutive volumes. The volumes before the first kept one and
+    after the last kept one are dropped (what stays is a contiguous stretch of a stationary
+    series: exact). Every volume left out between them stays in the series with one
+    indicator column of its own (1 at that volume, 0 elsewhere; censoring by such columns is
+    common practice). Under any noise covariance ``V``, GLS of ``[X, E]`` on the stretch
+    gives the same betas of ``X``, the same residual quadratic form and the same
+    ``df = n_kept - rank`` as GLS of ``X`` on the kept volumes alone with their own
+    covariance (the kept part of ``V``): the indicator columns fit the censored volumes
+    exactly, and the rest is the likelihood of the kept volumes (tests/core/test_glm.py
+    checks this against statsmodels GLS). The bias correction of the AR estimate then uses
+    the residual-forming matrix of ``[X, E]``, which is the right one. The censored volumes'
+    values never matter (:func:`working_copy` sets them to the mean of the kept ones).
+
+    The design without interior gaps is returned as it is. Memoised on ``prep``.
+
+    >>> p = prepare(np.column_stack([np.ones(8), np.arange(8.0)]), keep=[0, 1, 1, 0, 1, 1, 1, 0])
+    >>> c = censored_design(p)
+    >>> c.X.shape, c.df == p.df, c.spikes.tolist(), c.names[-1]
+    ((5, 3), True, [2], 'censored volume 3')
+    """
+    if prep.steps is None or prep.spikes is not None:
+        return prep
+    got = prep.memo.get("_censored")
+    if got is not None:
+        return got
+    keep = np.asarray(prep.keep)
+    kept = np.flatnonzero(keep)
+    lo, hi = int(kept[0]), int(kept[-1]) + 1
+    stretch = np.zeros(keep.size, dtype=bool)
+    stretch[lo:hi] = True
+    inner = np.flatnonzero(~keep[lo:hi])  # censored volumes inside the stretch
+    E = np.zeros((keep.size, inner.size))
+    E[lo + inner, np.arange(inner.size)] = 1.0
+    names = (*prep.names, *(f"censored volume {lo + int(i)}" for i in inner))
+    full = np.column_stack([np.asarray(prep.X_all), E])
+    sp = prepare(full, names, keep=stretch if not stretch.all() else None)
+    inner.setflags(write=False)
+    sp = replace(
+        sp,
+        keep=sp.keep if sp.keep is not None else _readonly(np.ones(keep.size, dtype=bool)),
+        X_all=prep.X_all,
+        spikes=inner,
+        n_model=int(prep.X.shape[1]),
+        fit_keep=prep.keep,
+        warnings=prep.warnings,
+    )
+    prep.memo["_censored"] = sp
+    return sp
+
+
+def _readonly(a: np.ndarray) -> np.ndarray:
+    a.setflags(write=False)
+    return a
+
+
+def _pad_contrast(prep: PreparedDesign, c: np.ndarray) -> np.ndarray:
+    """Contrast weights over the model columns, with zeros for indicator columns."""
+    if prep.n_model is not None and c.size == prep.n_model:
+        return np.concatenate([c, np.zeros(prep.X.shape[1] - c.size)])
+    return c
 
 
 def _basis(prep: PreparedDesign) -> tuple[np.ndarray, np.ndarray]:
@@ -731,6 +809,8 @@ def fit(
     FitResult
     """
     prep = _as_prepared(design)
+    if noise == "arp":  # censored volumes inside the run: exact, with indicator columns
+        prep = censored_design(prep)
     Y = np.asarray(Y)
     if Y.ndim == 1:
         Y = Y[:, None]
@@ -739,7 +819,7 @@ def fit(
         raise InputError(
             f"the data have {Y.shape[0]} time points but the design has {prep.n_all} rows"
         )
-    c = np.asarray(contrast, dtype=float).reshape(-1)
+    c = _pad_contrast(prep, np.asarray(contrast, dtype=float).reshape(-1))
     if c.size != p:
         raise InputError(f"the contrast has {c.size} weights but the design has {p} columns")
     if noise not in NOISE_MODELS:
@@ -785,7 +865,7 @@ def _fit_kept(
         fitted = prep.X_all @ res.betas
         res.fitted = fitted
         res.residuals = np.asarray(Y, dtype=np.float64) - fitted
-    res.keep = prep.keep
+    res.keep = prep.keep if prep.fit_keep is None else prep.fit_keep
     return res
 
 
@@ -936,7 +1016,7 @@ def fit_sums(
     from .noise import arp_solve
 
     prep = _as_prepared(design)
-    c = np.asarray(contrast, dtype=float).reshape(-1)
+    c = _pad_contrast(prep, np.asarray(contrast, dtype=float).reshape(-1))
     if c.size != prep.X.shape[1]:
         raise InputError(
             f"the contrast has {c.size} weights but the design has {prep.X.shape[1]} columns"
@@ -1082,6 +1162,11 @@ def _finish(
     if centred:  # the constant column need not be all ones
         B[prep.constant_index] += mean / X[0, prep.constant_index]
     beta = c @ B
+    if prep.n_model is not None:  # indicator columns of censored volumes: not reported
+        m = prep.n_model
+        B, c, X = B[:m], c[:m], X[:, :m]
+        if cov.shape[0]:
+            cov = cov[:, :m, :m]
     variance = sigma2 * cvar
     t = beta / np.sqrt(variance)
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
@@ -1130,7 +1215,7 @@ def _finish(
         degenerate=degenerate,
         cov_unscaled=cov,
         group=group,
-        names=prep.names,
+        names=prep.names if prep.n_model is None else prep.names[: prep.n_model],
         ar=ar if noise == "arp" else None,
         whitened_residuals=Rw,
     )

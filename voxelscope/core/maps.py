@@ -135,7 +135,6 @@ class MapResult:
     neglog10p: np.ndarray | None = None
     tail: str = "two"
     ar: np.ndarray | None = None
-    gaps: bool = False
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -175,10 +174,6 @@ class MapResult:
         )
         if deg:
             text += f" ({deg} constant or exactly fitted voxels set to 0)"
-        if self.noise == "arp" and self.gaps:
-            from .model import GAP_NOTE
-
-            text += f"; {GAP_NOTE}"
         return text
 
 
@@ -483,9 +478,10 @@ def compute_map(
         # One pass over the data keeps a few sums per voxel (voxelscope.core.noise, "one
         # pass"): the bias-corrected autocovariances of the OLS residuals, smoothed in the
         # mask, give every voxel's AR(p) coefficients, and the same sums give its GLS.
-        from .glm import arp_block_sums, fit_sums
+        from .glm import arp_block_sums, censored_design, fit_sums
         from .noise import AR_ORDER, BIAS_LAGS, ArpSums, ar_from_smoothed, smooth_map
 
+        _prep = censored_design(_prep)  # censored volumes inside the run: exact
         order = AR_ORDER
         n_lags = max(order, BIAS_LAGS)
         inside = np.flatnonzero(mask.reshape(-1))
@@ -576,7 +572,6 @@ def compute_map(
         settings=settings,
         rho_step=rho_step if ar1 else None,
         ar=ar_map,
-        gaps=getattr(_prep, "steps", None) is not None,
         neglog10p=vol("neglog10p"),
         tail=tail,
     )

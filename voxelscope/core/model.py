@@ -32,13 +32,7 @@ from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, par
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
 from .jsonsafe import finite_or_none
 
-__all__ = ["GAP_NOTE", "Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
-
-#: Said when the AR(p) model meets censored volumes inside the run.
-GAP_NOTE = (
-    "AR(p) prewhitening reads the kept volumes on either side of a censored one as "
-    "consecutive (an approximation); AR(1) handles such gaps exactly"
-)
+__all__ = ["Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
 
 
 @dataclass(frozen=True)
@@ -550,8 +544,6 @@ class Analysis:
                 f_df = (q, dfd)
             fits.append(KernelFit(name, d, res, expr, f, f_p, f_df, est))
         warnings = []
-        if arp and any(getattr(pr, "steps", None) is not None for _n, _d, pr, _w, _C in plan):
-            warnings.append(GAP_NOTE)
         if arp and not noise:
             warnings.append(
                 "AR(p) coefficients from this voxel alone: the map smooths them over the "

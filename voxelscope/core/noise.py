@@ -967,6 +967,9 @@ def voxel_ar(
 
     Reads only the box of neighbours within the truncated smoothing kernel.
     """
+    from .glm import censored_design
+
+    prep = censored_design(prep)  # the map's design when volumes inside the run are left out
     order = AR_ORDER if order is None else int(order)
     fwhm_mm = FWHM_MM if fwhm_mm is None else float(fwhm_mm)
     shape = tuple(int(n) for n in run.shape)

@@ -31,6 +31,11 @@ def working_copy(
     squares of the copy, and the columns with a non-finite sample (None when there are
     none).
 
+    Censored rows of a design with indicator columns (``prep.spikes``, see
+    :func:`voxelscope.core.glm.censored_design`) are set to the mean of the other rows
+    (0 in a centred copy) and count nowhere: their values never matter to the fit, and a
+    huge or non-finite value there would only cost digits.
+
     >>> from voxelscope.core.glm import prepare
     >>> prep = prepare(np.ones((3, 1)))
     >>> Yc, mean, tss, bad = working_copy(prep, np.array([[1.0], [2.0], [3.0]]))
@@ -41,6 +46,10 @@ def working_copy(
     if Y.ndim == 1:
         Y = Y[:, None]
     n = Y.shape[0]
+    spikes = getattr(prep, "spikes", None)
+    if spikes is not None and spikes.size:
+        Y[spikes] = 0.0
+        n -= int(spikes.size)
     total = Y.sum(axis=0)
     bad = None
     if not np.isfinite(total).all():  # a NaN or infinity anywhere makes its column's sum so
@@ -50,6 +59,8 @@ def working_copy(
     mean = total / n
     if prep.constant_index is not None:
         Y -= mean
+        if spikes is not None and spikes.size:
+            Y[spikes] = 0.0
     # total sum of squares: centred when the design has a constant, else uncentred
     tss = np.einsum("ij,ij->j", Y, Y)
     return Y, mean, tss, bad
