@@ -149,7 +149,7 @@ def test_too_few_kept_volumes_and_empty_columns():
     X = np.column_stack([np.r_[np.zeros(5), np.ones(5)], np.ones(10)])
     with pytest.raises(ModelError, match="all zero on the kept volumes"):
         prepare(X, ["late", "constant"], keep=np.r_[np.ones(5, bool), np.zeros(5, bool)])
-    with pytest.raises(ModelError, match="1 kept volumes \\(9 left out\\)"):
+    with pytest.raises(ModelError, match="1 kept volume \\(9 left out\\)"):
         prepare(X, keep=np.r_[True, np.zeros(9, bool)])
 
 

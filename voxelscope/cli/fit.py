@@ -16,7 +16,7 @@ if TYPE_CHECKING:  # imported where used: --help and start-up stay short
 
 from ..core.jsonsafe import finite_or_none
 from ..core.model import KernelFit, VoxelFits
-from ..core.numfmt import format_seconds, format_value, format_xyz
+from ..core.numfmt import count, format_seconds, format_value, format_xyz
 from .common import (
     Loaded,
     add_atlas_args,
@@ -28,7 +28,7 @@ from .common import (
     print_warnings,
     voxel_from_args,
 )
-from .helptext import count, help_args
+from .helptext import help_args
 from .multirun import load_runs, run_paths, voxels_from_args
 
 __all__ = [

@@ -1,5 +1,5 @@
-"""Words of the command line: examples at the end of each command's ``--help`` and
-counts with the right plural (plain text, no imports: start-up).
+"""Words of the command line: examples at the end of each command's ``--help`` (plain text,
+no imports: start-up). Counts with the right plural are :func:`voxelscope.core.numfmt.count`.
 
 >>> print(EXAMPLES["cache"].splitlines()[0])
 examples:
@@ -9,7 +9,7 @@ from __future__ import annotations
 
 import argparse
 
-__all__ = ["EXAMPLES", "ExamplesFormatter", "count", "help_args"]
+__all__ = ["EXAMPLES", "ExamplesFormatter", "help_args"]
 
 _RUN = "sub-01_task-motor_bold.nii.gz"
 
@@ -64,12 +64,3 @@ class ExamplesFormatter(argparse.HelpFormatter):
 def help_args(command: str) -> dict:
     """``add_parser`` keyword arguments that end the command's help with its examples."""
     return {"epilog": EXAMPLES[command], "formatter_class": ExamplesFormatter}
-
-
-def count(n: int, word: str, plural: str | None = None) -> str:
-    """``n`` and ``word`` with the English plural rule: one voxel, two voxels, 0 voxels.
-
-    >>> count(1, "voxel"), count(3, "voxel"), count(0, "run"), count(2, "match", "matches")
-    ('1 voxel', '3 voxels', '0 runs', '2 matches')
-    """
-    return f"{n} {word if n == 1 else (plural or word + 's')}"

@@ -17,7 +17,7 @@ from pathlib import Path
 
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
-from ..core.numfmt import format_value
+from ..core.numfmt import count, format_value
 from .common import (
     Loaded,
     add_model_args,
@@ -25,7 +25,7 @@ from .common import (
     parse_threshold,
     print_warnings,
 )
-from .helptext import count, help_args
+from .helptext import help_args
 from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]

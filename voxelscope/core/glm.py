@@ -63,6 +63,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 
 from .errors import InputError, ModelError
+from .numfmt import count
 from .pvalues import neglog10p_from_t, p_from_t, z_from_t
 from .workcopy import RSS_GUARD, working_copy
 
@@ -253,7 +254,8 @@ def prepare(
     if n < p:
         left = "" if X_all is None else f" ({X_all.shape[0] - n} left out)"
         raise ModelError(
-            f"the run has {n}{where} volumes{left} but the model has {p} columns; "
+            f"the run has {count(n, where.strip() + ' volume' if where else 'volume')}{left} "
+            f"but the model has {count(p, 'column')}; "
             "use fewer regressors or leave out fewer volumes"
         )
     if not np.all(np.isfinite(X)):

@@ -44,7 +44,7 @@ from __future__ import annotations
 import math
 from collections.abc import Iterable
 
-__all__ = ["KINDS", "MISSING", "format_seconds", "format_value", "format_xyz", "stat_kind"]
+__all__ = ["KINDS", "MISSING", "count", "format_seconds", "format_value", "format_xyz", "stat_kind"]
 
 MISSING = "–"
 
@@ -158,3 +158,16 @@ def stat_kind(stat: str) -> str:
     ('t', 'beta', 'value')
     """
     return stat if stat in KINDS else "value"
+
+
+def count(n: int, word: str, plural: str | None = None) -> str:
+    """``n`` and ``word`` with the English plural rule: one voxel, two voxels, 0 voxels.
+
+    Examples
+    --------
+    >>> count(1, "voxel"), count(3, "voxel"), count(0, "run"), count(2, "match", "matches")
+    ('1 voxel', '3 voxels', '0 runs', '2 matches')
+    >>> count(1, "kept volume")
+    '1 kept volume'
+    """
+    return f"{n} {word if n == 1 else (plural or word + 's')}"
