@@ -249,3 +249,21 @@ def test_figure_module_does_not_import_qt():
         "assert not bad, bad\n"
     )
     subprocess.run([sys.executable, "-c", code], check=True, cwd=Path(__file__).parents[2])
+
+
+def test_a_condition_keeps_its_colour_whatever_order_the_events_file_lists_it():
+    """Two runs whose events files list ``tap`` and ``tone`` in another order draw each
+    condition in the same colour (the several-run figures and the window put runs side by
+    side, so a colour must mean one condition)."""
+    t = np.arange(60) * 1.25
+    y = 100 + np.sin(t / 6)
+    fits = [("boxcar", y, np.zeros(60))]
+    tone = Condition("tone", [5.0, 40.0], [10.0, 10.0])
+    tap = Condition("tap", [22.0], [8.0])
+
+    def bands(conds):
+        fig = F.signal_figure(t, y, fits, conds, "", width=300.0, height=200.0)
+        return {(round(i.x, 3), i.fill) for i in fig.items if isinstance(i, F.Rect)}
+
+    assert bands([tone, tap]) == bands([tap, tone])
+    assert len({fill for _, fill in bands([tone, tap])}) >= 2  # still two colours

@@ -31,3 +31,11 @@ def test_window_uses_the_figure_font(qtbot):
         assert get_font(path).family_name == family  # the report figures' font
     finally:
         app.setFont(saved)
+
+
+def test_condition_colours_follow_the_name_not_the_file_order():
+    from voxelscope.gui.colours import condition_colour_map
+
+    a = condition_colour_map(["tone", "tap", "rest"])
+    b = condition_colour_map(["rest", "tap", "tone"])
+    assert a == b and len(set(a.values())) == 3

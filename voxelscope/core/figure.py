@@ -42,7 +42,7 @@ from xml.sax.saxutils import escape, quoteattr
 import numpy as np
 
 from .atomic import write_bytes, write_text
-from .palette import FIGURE_FONT, colours, condition_colours, kernel_colours
+from .palette import FIGURE_FONT, colours, condition_colour_map, kernel_colours
 
 __all__ = [
     "Figure",
@@ -495,9 +495,8 @@ def signal_figure(
     kcol = {}
     for name, _f, _r in fits:
         kcol[name] = colours.get(name) or next(spare)
-    ccols = condition_colours()
     conds = list(conditions)
-    cond_colour = {c.name: ccols[i % len(ccols)] for i, c in enumerate(conds)}
+    cond_colour = condition_colour_map(c.name for c in conds)
 
     dcol = data_colour()
     band_opacity = _band_opacity()
@@ -512,7 +511,7 @@ def signal_figure(
     # legend rows
     entries: list[tuple[str, str, str]] = [("data", dcol, "line")]
     entries += [(name, kcol[name], "line") for name, _f, _r in fits]
-    entries += [(c.name, cond_colour[c.name], "band") for c in conds]
+    entries += [(n, cond_colour[n], "band") for n in cond_colour]  # the colours' order
     x = left
     row_y = top + 7
     for label, colour, kind in entries:

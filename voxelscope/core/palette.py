@@ -16,6 +16,8 @@ Examples
 '#D55E00'
 >>> kernel_colours()["fir"], condition_colours()[0]
 ('#0072B2', '#56B4E9')
+>>> condition_colour_map(["tap", "rest"]) == condition_colour_map(["rest", "tap"])
+True
 """
 
 from __future__ import annotations
@@ -28,6 +30,7 @@ from typing import Any
 __all__ = [
     "FIGURE_FONT",
     "colours",
+    "condition_colour_map",
     "condition_colours",
     "kernel_colours",
     "resource_text",
@@ -56,3 +59,20 @@ def kernel_colours() -> dict[str, str]:
 def condition_colours() -> list[str]:
     """The cycle of condition colours."""
     return list(colours()["conditions"])
+
+
+def condition_colour_map(names) -> dict[str, str]:
+    """Condition name -> ``#RRGGBB``, the same whatever order the names come in.
+
+    Colours follow the names' sorted order, not the order of the events file, so two runs
+    whose files list their conditions in another order still draw ``tap`` in one colour, in
+    the window, in figures and in reports.
+
+    Examples
+    --------
+    >>> m = condition_colour_map(["tap", "rest", "tap"])
+    >>> m["rest"] == condition_colours()[0], m["tap"] == condition_colours()[1]
+    (True, True)
+    """
+    cycle = condition_colours()
+    return {name: cycle[i % len(cycle)] for i, name in enumerate(sorted(set(map(str, names))))}

@@ -22,7 +22,7 @@ from PySide6.QtWidgets import QLabel, QVBoxLayout, QWidget
 from voxelscope.core.flags import CONFOUND_R_LIMIT, EDGE_LIMIT_MM
 from voxelscope.core.numfmt import format_seconds
 from voxelscope.core.numfmt import format_value as fmt
-from voxelscope.gui.colours import colours, condition_colour, kernel_colour
+from voxelscope.gui.colours import colours, condition_colour, condition_colour_map, kernel_colour
 
 __all__ = ["FIGURES", "FIGURE_TITLES", "FigurePage", "make_figures"]
 
@@ -564,8 +564,9 @@ class ConfoundsFigure(FigurePage):
             return
         thick = 0.8 / max(len(conds), 1)
         legend = []
+        cmap = condition_colour_map(conds)
         for n, cond in enumerate(conds):
-            colour = condition_colour(n)
+            colour = cmap[cond]
             item = self.bars.get(cond)
             if item is None:
                 item = pg.BarGraphItem(x0=[], y=[], width=[], height=thick, brush=colour, pen=None)

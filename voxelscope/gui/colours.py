@@ -16,11 +16,12 @@ from __future__ import annotations
 from importlib import resources
 from pathlib import Path
 
-from voxelscope.core.palette import FIGURE_FONT, colours, resource_text
+from voxelscope.core.palette import FIGURE_FONT, colours, condition_colour_map, resource_text
 
 __all__ = [
     "colours",
     "condition_colour",
+    "condition_colour_map",
     "kernel_colour",
     "resource_text",
     "stylesheet",

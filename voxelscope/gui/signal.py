@@ -34,7 +34,7 @@ from voxelscope.core.design import frame_times
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.events import shift_conditions
 from voxelscope.core.hrf import KERNEL_NAMES
-from voxelscope.gui.colours import colours, condition_colour, kernel_colour
+from voxelscope.gui.colours import colours, condition_colour_map, kernel_colour
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["MIN_CANVAS_HEIGHT", "RESID_SHARE", "SignalPanel", "to_percent"]
@@ -381,8 +381,9 @@ class SignalPanel(QWidget):
         rects = []
         if analysis is not None:
             alpha = round(255 * float(colours()["condition_band_alpha"]))
-            for n, cond in enumerate(shift_conditions(analysis.conditions, shift)):
-                col = QColor(condition_colour(n))
+            cmap = condition_colour_map(analysis.condition_names)
+            for cond in shift_conditions(analysis.conditions, shift):
+                col = QColor(cmap[cond.name])
                 col.setAlpha(alpha)
                 for on, du in zip(cond.onsets, cond.durations):
                     rects.append((float(on), float(on + max(du, analysis.tr * 0.25)), col))
@@ -495,8 +496,9 @@ class SignalPanel(QWidget):
             )
         analysis = self._shown()[1]
         if analysis is not None:
-            for n, cond in enumerate(analysis.condition_names):
-                col = QColor(condition_colour(n))
+            cmap = condition_colour_map(analysis.condition_names)
+            for cond in analysis.condition_names:
+                col = QColor(cmap[cond])
                 parts.append(
                     f'<span style="color:{col.name()}">&#9608;&#9608;</span>&nbsp;'
                     f"{html.escape(cond)}"
