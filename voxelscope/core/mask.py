@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from voxelscope.core import components
 from voxelscope.core.summary import Summary
 
 __all__ = [
@@ -50,7 +51,8 @@ def brain_mask(
     ``valid`` says so) and its mean exceeds ``fraction`` times the ``percentile``-th
     percentile of the valid means (a robust maximum, insensitive to a few hot voxels).
     Optionally the largest 26-connected component is kept and enclosed holes are
-    filled (filled voxels must be valid too).
+    filled (filled voxels must be valid too); both with numpy only
+    (:mod:`voxelscope.core.components`, the same result as ``scipy.ndimage``'s).
 
     Parameters
     ----------
@@ -83,17 +85,9 @@ def brain_mask(
     ref = float(np.percentile(mean[ok], percentile))
     mask = ok & (mean > fraction * ref) if ref > 0 else ok & (mean > 0)
     if largest_component and mask.any():
-        from scipy import ndimage  # here, not at start-up (about 0.25 s)
-
-        labels, n = ndimage.label(mask, structure=np.ones((3, 3, 3), dtype=bool))
-        if n > 1:
-            sizes = np.bincount(labels.ravel())
-            sizes[0] = 0
-            mask = labels == int(np.argmax(sizes))
+        mask = components.largest_component(mask, connectivity=26)
     if fill_holes and mask.any():
-        from scipy import ndimage
-
-        mask = ndimage.binary_fill_holes(mask) & ok
+        mask = components.fill_holes(mask) & ok
     return mask
 
 
@@ -113,7 +107,7 @@ def summary_mask(s: Summary) -> tuple[np.ndarray, bool]:
 def _enclosed(mask: np.ndarray) -> np.ndarray:
     """Voxels outside ``mask`` that meet it in all six axis directions.
 
-    A superset of the holes that :func:`scipy.ndimage.binary_fill_holes` fills: a hole's
+    A superset of the holes that :func:`voxelscope.core.components.fill_holes` fills: a hole's
     straight path to the edge of the grid must cross the mask (numpy only, no scipy).
 
     Examples
@@ -131,7 +125,7 @@ def _enclosed(mask: np.ndarray) -> np.ndarray:
 
 
 def _mask_superset(s: Summary, fraction: float, valid: np.ndarray) -> np.ndarray:
-    """The intensity rule of :func:`brain_mask` without its scipy steps: every voxel over
+    """The intensity rule of :func:`brain_mask` without its connected-part steps: every voxel over
     the threshold (any component) and every voxel they enclose; contains the mask."""
     mean = np.asarray(s.mean, dtype=np.float64)
     ok = valid & np.isfinite(mean)
