@@ -349,7 +349,7 @@ def test_late_cluster_peaks_later_than_tone_cluster(bold: np.ndarray) -> None:
 
 def test_rim_motion_spikes_match_confounds(bold: np.ndarray) -> None:
     """Confound spikes at the documented volumes, which sit at the start of tone blocks; the
-    frame-to-frame column is the usual displacement sum with turns as arc length on a 50 mm
+    volume-to-volume column is the usual displacement sum with turns as arc length on a 50 mm
     sphere (common practice); the rim voxels jump in those volumes."""
     header, rows = _read_tsv(DATA / FILES["confounds"])
     n, tr = TRUTH["n_volumes"], TRUTH["tr"]

@@ -45,7 +45,7 @@ REQUIRED_KEYS = {
     "durbin_watson", "ar1", "ljung_box_p", "acf", "outlier_volumes", "cooks_distance_max",
     "cooks_volume", "t_without_influential", "vif", "confound_correlation", "tsnr",
     "edge_distance_mm", "best_shift_s", "peak_latency_s", "fir", "spectrum", "flags",
-    "shift_scan", "leverage", "cooks", "studentized", "frame_rms_change", "rms_spikes",
+    "shift_scan", "leverage", "cooks", "studentized", "volume_rms_change", "rms_spikes",
 }  # fmt: skip
 
 
@@ -377,7 +377,7 @@ def test_edge_voxel_and_outside_voxel():
 
 
 def test_run_spike_is_found_once_per_run():
-    """A whole-brain jump at volume 90 shows in the frame-to-frame RMS change at 90 and 91
+    """A whole-brain jump at volume 90 shows in the volume-to-volume RMS change at 90 and 91
     (change into and out of the bad volume), joins the outlier volumes, raises the
     run-spikes flag, and the run is read only once for several clicks."""
     rng = np.random.default_rng(16)
@@ -391,7 +391,7 @@ def test_run_spike_is_found_once_per_run():
     assert c1.rms_spikes == (90, 91) and {90, 91} <= set(c2.outlier_volumes)
     masked = run.data.astype(float)[run.mask()]
     expect = np.sqrt(np.mean(np.diff(masked, axis=1) ** 2, axis=0))
-    np.testing.assert_allclose(c1.frame_rms_change[1:], expect, rtol=1e-10)
+    np.testing.assert_allclose(c1.volume_rms_change[1:], expect, rtol=1e-10)
     assert "run-spikes" in c1.flag_ids()
 
 
@@ -453,7 +453,7 @@ def test_bad_inputs_are_one_line_errors():
 def test_with_a_real_run_on_disk(tmp_path, monkeypatch):
     """voxelscope.core.run.open_run on a small NIfTI written with nibabel: the edge distance
     matches a brute-force search over run.mask() (voxel sizes 3 x 3 x 3.5 mm from the
-    affine) and the frame-to-frame RMS change matches numpy on the stored data."""
+    affine) and the volume-to-volume RMS change matches numpy on the stored data."""
     nib = pytest.importorskip("nibabel")
     from voxelscope.core.run import open_run
 
@@ -481,7 +481,7 @@ def test_with_a_real_run_on_disk(tmp_path, monkeypatch):
     assert c.edge_distance_mm == pytest.approx(np.sqrt(((outside - p) ** 2).sum(1)).min())
     assert "edge" in c.flag_ids()
     expect = np.sqrt(np.mean(np.diff(data[mask].astype(float), axis=1) ** 2, axis=0))
-    np.testing.assert_allclose(c.frame_rms_change[1:], expect, rtol=1e-6)
+    np.testing.assert_allclose(c.volume_rms_change[1:], expect, rtol=1e-6)
     assert c.rms_spikes == (150, 151)
 
 
@@ -549,7 +549,7 @@ def _motion_case(spike_in_voxel: bool, include: bool):
 
 
 def test_confound_jumps_are_found_by_the_run_spike_rule():
-    """The jump's start and end are spikes of the frame-to-frame change (median + 5 MAD,
+    """The jump's start and end are spikes of the volume-to-volume change (median + 5 MAD,
     checked against scipy.stats.median_abs_deviation(scale='normal'))."""
     spikes, _ = _motion_case(False, False)
     assert set(spikes["move_y"]) == {70, 73}

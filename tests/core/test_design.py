@@ -26,9 +26,9 @@ from voxelscope.core.design import (
     boxcar_regressor,
     build_design,
     dct_drift,
-    frame_times,
     task_cycle,
     task_cycle_warning,
+    volume_times,
 )
 from voxelscope.core.errors import InputError, ModelError
 from voxelscope.core.events import Condition, check_events_in_run, shift_conditions
@@ -79,7 +79,7 @@ def test_default_model_is_conditions_drift_constant():
     assert d.X.shape == (n, 5) and d.X.dtype == np.float64
     assert d.condition_columns == {"tone": (0,), "tap": (1,)}
     assert_allclose(d.column("constant"), 1.0)
-    assert_allclose(d.frame_times, np.arange(n) * tr)
+    assert_allclose(d.volume_times, np.arange(n) * tr)
     assert not d.X.flags.writeable
 
 
@@ -88,8 +88,8 @@ def test_highpass_none_removes_drift():
     assert d.names == ("tone", "tap", "constant")
 
 
-def test_frame_times_reference():
-    assert_allclose(frame_times(4, 2.0, 0.75), [0.75, 2.75, 4.75, 6.75])
+def test_volume_times_reference():
+    assert_allclose(volume_times(4, 2.0, 0.75), [0.75, 2.75, 4.75, 6.75])
 
 
 # ----------------------------------------------------------------------------- convolution
@@ -105,7 +105,7 @@ def test_convolution_equals_numpy_convolve(kernel, events, tr, amp):
     """Blocks on the fine grid (dt = TR/16): regressor = numpy.convolve(boxcar, kernel) * dt.
 
     The fine-grid boxcar is built here: bin j covers [j dt, (j+1) dt) and is read at its
-    centre; the sampled regressor is the linear interpolation at the frame times (the
+    centre; the sampled regressor is the linear interpolation at the volume times (the
     module's documented convention). Kernel samples from the published formulas above.
     """
     n = 120
@@ -213,7 +213,7 @@ def test_derivative_columns():
 def test_fir_columns_are_indicator_boxes(tr, bin_s, onsets):
     """FIR column k is 1 while the time since an onset is in [k bin_s, (k+1) bin_s).
 
-    Expected values written from that definition (hrf.FIR docstring) at the frame times.
+    Expected values written from that definition (hrf.FIR docstring) at the volume times.
     """
     n, n_bins = 60, 6
     cond = Condition("c", onsets, np.zeros(len(onsets)))
@@ -517,7 +517,7 @@ def test_task_cycle_is_the_periodogram_peak(cycle_s):
     from scipy import signal
 
     tr, n = 2.0, int(8 * cycle_s / 2.0)
-    x = boxcar_regressor(_blocks(cycle_s, 8), frame_times(n, tr), tr)
+    x = boxcar_regressor(_blocks(cycle_s, 8), volume_times(n, tr), tr)
     f, p = signal.periodogram(x - x.mean(), fs=1.0 / tr)
     assert task_cycle(x, tr) == pytest.approx(1.0 / f[1 + np.argmax(p[1:])])
     assert task_cycle(x, tr) == pytest.approx(cycle_s)
@@ -532,7 +532,7 @@ def test_highpass_below_the_cycle_warns_with_the_share_removed():
     cond = _blocks(40.0, 8)
     line = task_cycle_warning([cond], n, tr, 16.0)
     assert line is not None and "\n" not in line
-    x = boxcar_regressor(cond, frame_times(n, tr), tr)
+    x = boxcar_regressor(cond, volume_times(n, tr), tr)
     r2 = sm.OLS(x - x.mean(), dct_drift(n, tr, 16.0)).fit().rsquared
     assert f"removes {100 * r2:.0f}% of tap's variation" in line
     assert "cut-off 16 s" in line and "about 40 s" in line and "e.g. 80 s" in line

@@ -244,7 +244,7 @@ def test_edge_distance_brute_force():
     assert np.all(rs.edge_distance[~mask] == 0)
 
 
-def test_frame_rms_change_and_spike():
+def test_volume_rms_change_and_spike():
     """Reference: the definition sqrt(mean over mask of (v_t - v_{t-1})^2), by numpy on the
     full 4D array; a whole-brain jump at volume 25 is a spike at 25 and 26."""
     rng = np.random.default_rng(11)
@@ -256,12 +256,12 @@ def test_frame_rms_change_and_spike():
     rs = RunSummary(run)
     masked = data.astype(np.float32).astype(float)[mask]  # (n_voxels, T)
     expect = np.sqrt(np.mean(np.diff(masked, axis=1) ** 2, axis=0))
-    np.testing.assert_allclose(rs.frame_rms_change[1:], expect, rtol=1e-10)
-    assert np.isnan(rs.frame_rms_change[0])
+    np.testing.assert_allclose(rs.volume_rms_change[1:], expect, rtol=1e-10)
+    assert np.isnan(rs.volume_rms_change[0])
     assert rs.rms_spikes == [25, 26]
     # the volume-by-volume path gives the same series
     vo = VolumeRun(data, mask, (3.0, 3.0, 3.0))
-    np.testing.assert_allclose(RunSummary(vo).frame_rms_change[1:], expect, rtol=1e-10)
+    np.testing.assert_allclose(RunSummary(vo).volume_rms_change[1:], expect, rtol=1e-10)
     assert vo.volume_calls == T
 
 
@@ -273,8 +273,8 @@ def test_run_summary_is_cached_per_run():
     a = FakeRun(rng.standard_normal((3, 3, 3, 20)), mask, (2.0, 2.0, 2.0))
     b = FakeRun(rng.standard_normal((3, 3, 3, 20)), mask, (2.0, 2.0, 2.0))
     s1 = run_summary(a)
-    _ = s1.frame_rms_change
+    _ = s1.volume_rms_change
     s2 = run_summary(a)
-    _ = s2.frame_rms_change
+    _ = s2.volume_rms_change
     assert s1 is s2 and a.chunk_calls == 1
     assert run_summary(b) is not s1

@@ -28,7 +28,7 @@ Fits table and the maps.
   below ``LJUNG_BOX_ALPHA``, whatever the lag-1 value (AR(2) noise can leave lag 1 small).
 * **Outlier volumes**: externally studentized residuals beyond the Bonferroni-corrected
   two-sided quantile ``t_{df-1}(1 - OUTLIER_ALPHA / (2 n))`` (the classical outlier test),
-  together with the run's spikes: volumes whose frame-to-frame RMS change over the brain
+  together with the run's spikes: volumes whose volume-to-volume RMS change over the brain
   mask exceeds ``median + RMS_SPIKE_K * 1.4826 * MAD`` (see
   :class:`~voxelscope.core.diagnostics.RunSummary`).
 * **Influence**: leverage and Cook's distance (Cook, 1977) per volume. The influential
@@ -148,9 +148,9 @@ class VoxelChecks:
     leverage, cooks, studentized : per volume, for the influence plot
     cooks_distance_max, cooks_volume : the largest Cook's distance and its volume
     influential_volumes, t_dropping, t_without_influential : the refits without them
-    frame_rms_change, rms_spikes, rms_threshold : run-level (None without a run)
+    volume_rms_change, rms_spikes, rms_threshold : run-level (None without a run)
     vif, confound_correlation : design checks
-    confound_spikes : confound column -> volumes where its frame-to-frame change is a spike
+    confound_spikes : confound column -> volumes where its volume-to-volume change is a spike
         (above the median + RMS_SPIKE_K MAD of that change), from the motion columns of the
         confounds file (see :func:`confound_spikes`), in the model or not
     confound_jumps : the same jumps with their size (column units) and size / threshold
@@ -202,7 +202,7 @@ class VoxelChecks:
     t_without_influential: float = math.nan
     t_dropping: tuple[float, ...] = ()
     # run-level spikes (None without a run)
-    frame_rms_change: np.ndarray | None = None
+    volume_rms_change: np.ndarray | None = None
     rms_spikes: tuple[int, ...] | None = None
     rms_threshold: float | None = None
     # design
@@ -284,7 +284,7 @@ def voxel_checks(
     y : ndarray (n_volumes,)
         The voxel's time series.
     run : Run, optional
-        For the edge distance and the run's frame-to-frame spikes (computed once per run,
+        For the edge distance and the run's volume-to-volume spikes (computed once per run,
         see :func:`voxelscope.core.diagnostics.run_summary`); None skips both (None fields).
     ijk : sequence of 3 int, optional
         The voxel's index, for the edge distance.
@@ -425,7 +425,7 @@ def _steps(conf, name: str) -> np.ndarray:
 
 
 def confound_spikes(analysis: Analysis, k: float = RMS_SPIKE_K) -> dict[str, tuple[int, ...]]:
-    """Volumes where a confound column jumps: its absolute frame-to-frame change exceeds
+    """Volumes where a confound column jumps: its absolute volume-to-volume change exceeds
     ``median + k * 1.4826 * MAD`` of that change (the rule of the run's RMS spikes).
 
     A jump between volumes ``v - 1`` and ``v`` is reported at ``v``, the volume where the
@@ -477,7 +477,7 @@ def _run_part(run: Any, ijk: Sequence[int] | None) -> dict[str, Any]:
         return {}
     rs = run_summary(run)
     out: dict[str, Any] = {
-        "frame_rms_change": rs.frame_rms_change,
+        "volume_rms_change": rs.volume_rms_change,
         "rms_spikes": tuple(rs.rms_spikes),
         "rms_threshold": rs.rms_threshold,
     }

@@ -3,7 +3,7 @@
 Reading
 -------
 Every column of the table is read. Empty or ``n/a`` cells in the leading rows (as produced by
-frame-to-frame differences) become 0; the warning about them is given only for columns that
+volume-to-volume differences) become 0; the warning about them is given only for columns that
 enter the model (:meth:`Confounds.missing_warnings`). Missing cells anywhere else, a text cell
 in a column of numbers, a repeated header name or a row with the wrong number of cells stop
 the reading with one line naming the file, the column, the row and the value. A column of

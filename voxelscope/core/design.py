@@ -76,10 +76,10 @@ __all__ = [
     "dct_drift",
     "event_lengths",
     "fine_step",
-    "frame_times",
     "stimulus_regressor",
     "task_cycle",
     "task_cycle_warning",
+    "volume_times",
 ]
 
 #: Length given to a zero-duration event under the boxcar kernel (s): the area of the
@@ -129,7 +129,7 @@ class DesignMatrix:
         Modulator column name -> its condition.
     kernel : Kernel
     tr : float
-    frame_times : ndarray
+    volume_times : ndarray
         Sampling time of each volume in seconds.
     """
 
@@ -139,7 +139,7 @@ class DesignMatrix:
     condition_columns: dict[str, tuple[int, ...]]
     kernel: Kernel
     tr: float
-    frame_times: np.ndarray
+    volume_times: np.ndarray
     warnings: tuple[str, ...] = field(default=())
     modulators: dict[str, str] = field(default_factory=dict)
 
@@ -159,10 +159,10 @@ class DesignMatrix:
         return self.X[:, self.names.index(name)]
 
 
-def frame_times(n_volumes: int, tr: float, reference_time_s: float = 0.0) -> np.ndarray:
+def volume_times(n_volumes: int, tr: float, reference_time_s: float = 0.0) -> np.ndarray:
     """Sampling time of each volume: ``n * tr + reference_time_s``.
 
-    >>> frame_times(3, 2.0, 0.5).tolist()
+    >>> volume_times(3, 2.0, 0.5).tolist()
     [0.5, 2.5, 4.5]
     """
     return np.arange(n_volumes) * float(tr) + float(reference_time_s)
@@ -244,7 +244,7 @@ def task_cycle_warning(
     """
     if highpass_s is None or not conditions or n_volumes < 2 * CYCLE_MIN_REPEATS:
         return None
-    times = frame_times(n_volumes, tr, reference_time_s)
+    times = volume_times(n_volumes, tr, reference_time_s)
     drift = dct_drift(n_volumes, tr, highpass_s)
     if drift.shape[1] == 0:
         return None
@@ -385,7 +385,7 @@ def boxcar_regressor(condition: Condition, times: np.ndarray, tr: float) -> np.n
     ``amplitude * duration`` of the events inside the run.
 
     >>> c = Condition("a", [1.0, 5.5], [0.0, 0.5])
-    >>> boxcar_regressor(c, frame_times(4, 2.0), 2.0).tolist()
+    >>> boxcar_regressor(c, volume_times(4, 2.0), 2.0).tolist()
     [0.5, 0.0, 0.25, 0.0]
     """
     if condition.n_events == 0:
@@ -448,7 +448,7 @@ def build_design(
     k = get_kernel(kernel)
     oversampling = max(int(oversampling), FINE_STEPS)
     dt = tr / oversampling
-    times = frame_times(n_volumes, tr, reference_time_s)
+    times = volume_times(n_volumes, tr, reference_time_s)
 
     cols: list[np.ndarray] = []
     names: list[str] = []

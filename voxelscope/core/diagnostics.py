@@ -10,7 +10,7 @@ Small flat functions on plain arrays, each with its published definition:
 * :func:`pearson_r` - Pearson correlation of two series;
 * :func:`robust_spikes` - values above ``median + k * 1.4826 * MAD``;
 * :class:`RunSummary` / :func:`run_summary` - per-run brain-edge distances and the
-  frame-to-frame RMS change over the mask, computed once per open run.
+  volume-to-volume RMS change over the mask, computed once per open run.
 
 Examples
 --------
@@ -55,7 +55,7 @@ __all__ = [
 ACF_LAGS = 20
 #: Lags of the Ljung-Box test.
 LJUNG_BOX_LAGS = 10
-#: Run spikes: frame-to-frame RMS change above median + K * 1.4826 * MAD.
+#: Run spikes: volume-to-volume RMS change above median + K * 1.4826 * MAD.
 RMS_SPIKE_K = 5.0
 _MAD_SCALE = 1.4826  # MAD -> SD for normal data (common practice)
 
@@ -297,7 +297,7 @@ class RunSummary:
     mask : bool (X, Y, Z)
     edge_distance : float (X, Y, Z)
         mm to the nearest voxel outside the mask (0 outside); the grid border is outside.
-    frame_rms_change : float (T,)
+    volume_rms_change : float (T,)
         ``sqrt(mean over the mask of (v_t - v_{t-1})^2)`` for ``t >= 1``; NaN at ``t = 0``.
         A single corrupted volume ``t`` raises the change at ``t`` and at ``t + 1``.
     rms_spikes : list of int
@@ -308,8 +308,8 @@ class RunSummary:
     Notes
     -----
     The summary refers to its run weakly (it does not keep a closed run's data alive), so
-    keep the run while using it. The frame-to-frame change reads the whole run once; a front
-    end may compute it off the GUI thread (``run_summary(run).frame_rms_change``) so that
+    keep the run while using it. The volume-to-volume change reads the whole run once; a front
+    end may compute it off the GUI thread (``run_summary(run).volume_rms_change``) so that
     the first click is quick.
     """
 
@@ -345,9 +345,9 @@ class RunSummary:
         return self._edge
 
     @property
-    def frame_rms_change(self) -> np.ndarray:
+    def volume_rms_change(self) -> np.ndarray:
         if self._rms is None:
-            self._rms = _frame_rms_change(self._get_run(), self.mask, self.n_volumes)
+            self._rms = _volume_rms_change(self._get_run(), self.mask, self.n_volumes)
         return self._rms
 
     @property
@@ -360,7 +360,7 @@ class RunSummary:
 
     def _spike_info(self) -> tuple[list[int], float]:
         if self._spikes is None:
-            self._spikes = robust_spikes(self.frame_rms_change, RMS_SPIKE_K)
+            self._spikes = robust_spikes(self.volume_rms_change, RMS_SPIKE_K)
         return self._spikes
 
 
@@ -372,7 +372,7 @@ def _weakrefable(obj: Any) -> bool:
     return True
 
 
-def _frame_rms_change(run: Any, mask: np.ndarray, n_volumes: int) -> np.ndarray:
+def _volume_rms_change(run: Any, mask: np.ndarray, n_volumes: int) -> np.ndarray:
     out = np.full(n_volumes, np.nan)
     if n_volumes < 2 or not mask.any():
         return out

@@ -450,7 +450,7 @@ def _draw_panel(
 
 
 def signal_figure(
-    frame_times: np.ndarray,
+    volume_times: np.ndarray,
     y: np.ndarray,
     fits: Sequence[tuple[str, np.ndarray, np.ndarray]],
     conditions: Sequence = (),
@@ -464,7 +464,7 @@ def signal_figure(
 
     Parameters
     ----------
-    frame_times : ndarray (T,)
+    volume_times : ndarray (T,)
         Sampling time of each volume, seconds.
     y : ndarray (T,)
         The voxel's time series.
@@ -476,7 +476,7 @@ def signal_figure(
     width, height : float
         Logical size; the PNG is ``round(width * scale)`` pixels wide.
     run_length_s : float, optional
-        End of the time axis (default: last frame time plus one frame step).
+        End of the time axis (default: last volume time plus one TR).
     colours : dict, optional
         Kernel colours (default :func:`kernel_colours`).
 
@@ -488,7 +488,7 @@ def signal_figure(
     >>> "gamma" in fig.to_svg()
     True
     """
-    t = np.asarray(frame_times, dtype=float).reshape(-1)
+    t = np.asarray(volume_times, dtype=float).reshape(-1)
     y = np.asarray(y, dtype=float).reshape(-1)
     colours = {**kernel_colours(), **(colours or {})}
     spare = iter(_SPARE_COLOURS * 4)

@@ -206,7 +206,7 @@ def _outlier_flags(c: VoxelChecks, d: DesignMatrix) -> list[Flag]:
         plural = "s" if len(c.rms_spikes) > 1 else ""
         text = (
             f"The whole brain changes suddenly at volume{plural} {_vols(c.rms_spikes)} "
-            f"(frame-to-frame change above the median + {RMS_SPIKE_K:g} MAD)"
+            f"(volume-to-volume change above the median + {RMS_SPIKE_K:g} MAD)"
         )
         text += f"; volume {_vols(also)} is an outlier here too." if also else "."
         out.append(Flag("run-spikes", text, "influence"))

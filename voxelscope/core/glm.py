@@ -818,9 +818,7 @@ def fit(
         Y = Y[:, None]
     p = prep.X.shape[1]
     if Y.shape[0] != prep.n_all:
-        raise InputError(
-            f"the data have {Y.shape[0]} time points but the design has {prep.n_all} rows"
-        )
+        raise InputError(f"the data have {Y.shape[0]} volumes but the design has {prep.n_all} rows")
     c = _pad_contrast(prep, np.asarray(contrast, dtype=float).reshape(-1))
     if c.size != p:
         raise InputError(f"the contrast has {c.size} weights but the design has {p} columns")
@@ -992,7 +990,7 @@ def arp_block_sums(prep: PreparedDesign, data: np.ndarray, lags: int | None = No
         data = data[:, None]
     if data.shape[0] != prep.n_all:
         raise InputError(
-            f"the data have {data.shape[0]} time points but the design has {prep.n_all} rows"
+            f"the data have {data.shape[0]} volumes but the design has {prep.n_all} rows"
         )
     if prep.keep is not None:
         data = data[prep.keep]

@@ -109,7 +109,7 @@ def format_csv(fits: VoxelFits) -> str:
     >>> len(text.splitlines())
     21
     """
-    t = fits.fits[0].design.frame_times if fits.fits else np.arange(len(fits.y), dtype=float)
+    t = fits.fits[0].design.volume_times if fits.fits else np.arange(len(fits.y), dtype=float)
     cols = [("time_s", np.asarray(t, float)), ("signal", np.asarray(fits.y, float))]
     for f in fits.fits:
         cols.append((f"fitted_{f.kernel}", f.fitted))
@@ -661,7 +661,7 @@ def write_report(
         if sec.ijk is not None and voxel is None:
             fig_title += " - voxel ({}, {}, {})".format(*sec.ijk)
         fig = signal_figure(
-            sec.fits.fits[0].design.frame_times,
+            sec.fits.fits[0].design.volume_times,
             sec.fits.y,
             [(f.kernel, f.fitted, f.residuals) for f in sec.fits.fits],
             conditions,

@@ -43,7 +43,7 @@ from typing import Any
 import numpy as np
 from scipy import stats
 
-from .design import frame_times
+from .design import volume_times
 from .errors import InputError, ModelError
 from .glm import fit
 from .model import Analysis, ModelSettings
@@ -109,7 +109,7 @@ class PeriEventResponse:
 
 
 def _epochs(
-    y: np.ndarray, frame_times: np.ndarray, onsets: np.ndarray, edges: np.ndarray, base_s: float
+    y: np.ndarray, volume_times: np.ndarray, onsets: np.ndarray, edges: np.ndarray, base_s: float
 ) -> tuple[np.ndarray, np.ndarray]:
     """Per event and bin: mean of the samples in the bin minus the event's baseline (NaN
     where no sample falls); and the summed lags and counts for the bin times."""
@@ -119,7 +119,7 @@ def _epochs(
     lag_n = np.zeros(n_bins)
     finite = np.isfinite(y)  # left-out volumes come as NaN
     for e, on in enumerate(onsets):
-        lag = frame_times - on
+        lag = volume_times - on
         base = (lag >= -base_s - 1e-9) & (lag < -1e-9) & finite
         if not base.any():
             continue
@@ -177,10 +177,10 @@ def peri_event_response(
     n_post = max(1, math.ceil(window / bin_s - 1e-9))
     edges = np.arange(-n_pre, n_post + 1) * bin_s
     centres = (edges[:-1] + edges[1:]) / 2
-    volume_times = frame_times(analysis.n_volumes, analysis.tr, analysis.reference_time_s)
+    times_s = volume_times(analysis.n_volumes, analysis.tr, analysis.reference_time_s)
     keep = analysis.keep_mask(settings)  # volumes left out of the fit leave the average too
     gone = np.zeros(y.size, dtype=bool) if keep is None else ~keep
-    data, lag_mean = _epochs(np.where(gone, np.nan, y), volume_times, onsets, edges, baseline_s)
+    data, lag_mean = _epochs(np.where(gone, np.nan, y), times_s, onsets, edges, baseline_s)
     times = np.where(np.isfinite(lag_mean), lag_mean, centres)
     n = np.sum(np.isfinite(data), axis=0)
     mean = np.full(times.size, np.nan)
@@ -212,7 +212,7 @@ def peri_event_response(
         res = fit(prep, y, w, noise=settings.noise, ar=ar)
         cols = [i for i, k in enumerate(d.kinds) if k in _TASK_KINDS]
         task = d.X[:, cols] @ res.betas[cols, 0]
-        pred, _ = _epochs(np.where(gone, np.nan, task), volume_times, onsets, edges, baseline_s)
+        pred, _ = _epochs(np.where(gone, np.nan, task), times_s, onsets, edges, baseline_s)
         with np.errstate(invalid="ignore"):
             predictions[str(kernel)] = np.array(
                 [

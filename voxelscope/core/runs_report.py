@@ -415,7 +415,7 @@ def write_runs_report(
                 chk.checks, chk.checks_note = _checks_for(a, settings, vf, run, ijk)
             sec.checks.append(chk)
             fig = signal_figure(
-                vf.fits[0].design.frame_times,
+                vf.fits[0].design.volume_times,
                 vf.y,
                 [(f.kernel, f.fitted, f.residuals) for f in vf.fits],
                 shift_conditions(a.conditions, settings.onset_shift_s),

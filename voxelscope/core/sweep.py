@@ -546,7 +546,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
                 )
         title = f"sub-{job.subject} {job.task} run {job.run}: cluster {c.label} peak"
         fig = signal_figure(
-            kf.design.frame_times,
+            kf.design.volume_times,
             y,
             [(kf.kernel, kf.fitted, kf.residuals)],
             conditions,

@@ -281,7 +281,7 @@ def fir_estimate(
     est = res.betas[cols, 0].copy()
     cov = res.cov_unscaled[int(res.group[0])]
     se = np.sqrt(float(res.sigma2[0]) * np.diag(cov)[cols])
-    times = _bin_times(analysis, settings, condition, n_bins, bin_s, d.frame_times)
+    times = _bin_times(analysis, settings, condition, n_bins, bin_s, d.volume_times)
     fine = np.arange(0.0, n_bins * bin_s + 1e-9, _FINE_DT)
     at_bins: dict[str, np.ndarray] = {}
     at_fine: dict[str, np.ndarray] = {}
@@ -306,10 +306,10 @@ def _bin_times(
     condition: str,
     n_bins: int,
     bin_s: float,
-    frame_times: np.ndarray,
+    volume_times: np.ndarray,
 ) -> np.ndarray:
     c = next(c for c in analysis.conditions if c.name == condition)
-    lag = frame_times[:, None] - (c.onsets + float(settings.onset_shift_s))[None, :]
+    lag = volume_times[:, None] - (c.onsets + float(settings.onset_shift_s))[None, :]
     b = np.floor(lag / bin_s + 1e-9).astype(int)
     inside = lag >= -1e-9
     out = (np.arange(n_bins) + 0.5) * bin_s

@@ -157,7 +157,7 @@ class AcfFigure(FigurePage):
 
 
 class InfluenceFigure(FigurePage):
-    """Cook's distance per volume (marked volumes) over the run's frame-to-frame change."""
+    """Cook's distance per volume (marked volumes) over the run's volume-to-volume change."""
 
     key = "influence"
 
@@ -169,7 +169,9 @@ class InfluenceFigure(FigurePage):
         _style(self.cooks_plot, "", "")
         _style(self.rms_plot, "volume", "")
         self.cooks_plot.setTitle("Cook's distance at this voxel", size="9pt", color=_TEXT)
-        self.rms_plot.setTitle("frame-to-frame change of the whole brain", size="9pt", color=_TEXT)
+        self.rms_plot.setTitle(
+            "volume-to-volume change of the whole brain", size="9pt", color=_TEXT
+        )
         self.cooks_plot.getAxis("bottom").setStyle(showValues=False)
         self.rms_plot.setXLink(self.cooks_plot)
         self.cooks_curve = self.cooks_plot.plot(pen=pg.mkPen("#6E6E6E", width=1))
@@ -211,7 +213,7 @@ class InfluenceFigure(FigurePage):
             parts.append(f"largest {fmt('value', c.cooks_distance_max)} at volume {c.cooks_volume}")
         text = "Cook's distance of each volume (dashed: 4/n)"
         text += "; " + "; ".join(parts) if parts else ""
-        rms = _arr(c.frame_rms_change)
+        rms = _arr(c.volume_rms_change)
         if rms.size:
             spikes = [v for v in (c.rms_spikes or ()) if 0 <= v < rms.size]
             self.rms_curve.setData(np.arange(rms.size, dtype=float), rms, connect="finite")
@@ -222,7 +224,9 @@ class InfluenceFigure(FigurePage):
             else:
                 self.rms_line.hide()
             spk = f"spikes at {', '.join(map(str, spikes[:8]))}" if spikes else "no spikes"
-            text += f". Below: the whole brain's frame-to-frame change (dashed: spike line; {spk})."
+            text += (
+                f". Below: the whole brain's volume-to-volume change (dashed: spike line; {spk})."
+            )
         else:
             self.rms_curve.setData([], [])
             self.rms_marks.setData([], [])

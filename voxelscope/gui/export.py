@@ -177,7 +177,7 @@ def signal_figure(state, title: str | None = None, width: float = 900.0, height:
         raise InputError("no fit to draw: open a run with its events and switch on a kernel")
     i, j, k = state.voxel
     return core_figure(
-        fits.fits[0].design.frame_times,
+        fits.fits[0].design.volume_times,
         fits.y,
         [(f.kernel, f.fitted, f.residuals) for f in fits.fits],
         shift_conditions(analysis.conditions, state.settings.onset_shift_s),

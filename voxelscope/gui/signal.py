@@ -30,7 +30,7 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from voxelscope.core.design import frame_times
+from voxelscope.core.design import volume_times
 from voxelscope.core.errors import VoxelscopeError
 from voxelscope.core.events import shift_conditions
 from voxelscope.core.hrf import KERNEL_NAMES
@@ -369,7 +369,7 @@ class SignalPanel(QWidget):
 
     def _times(self, run=None) -> np.ndarray:
         run = self.state.run if run is None else run
-        return frame_times(run.n_volumes, run.tr, run.reference_time_s)
+        return volume_times(run.n_volumes, run.tr, run.reference_time_s)
 
     def _update_bands(self) -> None:
         analysis = self._shown()[1]
