@@ -264,3 +264,29 @@ def test_time_axis_is_whole_after_show_mode(demo_window, qapp):
     lo, hi = sig.plot.viewRange()[0]
     t_end = (w.state.run.n_volumes - 1) * w.state.run.tr
     assert lo <= 0 and hi >= t_end
+
+
+def test_the_readout_stays_on_screen_in_show_mode_at_1280x720(demo_window, qapp):
+    """At Show mode's larger text the readout line ran off the right edge ("Mean 1023 Ur"):
+    it now leaves out its least needed parts (the place in mm stays), and the
+    whole line is the tooltip."""
+    from PySide6.QtGui import QFont, QFontMetrics, QTextDocumentFragment
+
+    w = demo_window((1280, 720))
+    w.state.set_voxel((6, 23, 15))
+    qapp.processEvents()
+    normal = w.slices.readout.text()
+    w.show_mode.enter()
+    for _ in range(3):
+        qapp.processEvents()
+    label = w.slices.readout
+    plain = QTextDocumentFragment.fromHtml(label.text()).toPlainText()
+    font = QFont(label.font())
+    font.setBold(True)
+    assert QFontMetrics(font).horizontalAdvance(plain) <= label.contentsRect().width()
+    assert "World" in plain and "Map" in plain  # the place and the value stay
+    if label.text() != normal:  # something was left out: the tooltip has all of it
+        assert "Mean" in label.toolTip()
+    w.show_mode.leave()
+    qapp.processEvents()
+    assert "Mean" in w.slices.readout.text() and w.slices.readout.toolTip() == ""

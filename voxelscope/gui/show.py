@@ -241,12 +241,14 @@ class ShowMode(QObject):
         self.banner.fit_height()
         w.fits.fit_width = True  # every Fits column on screen, at the larger font
         w.fits.show_mode = True
+        w.slices.fit_readout = True  # the larger text must not run off the right edge
         w.fits.set_hidden_columns(SHOW_HIDDEN_COLUMNS)
         w.fits.refresh()
         self.active = True
         QApplication.processEvents()  # let the larger style reach the table first
         self.share()
         w.fits.relayout()
+        w.slices.show_readout()
         QApplication.instance().installEventFilter(self)
         w.state.units_changed.connect(self._restyle_labels)
         panel = getattr(w, "marks_panel", None)
@@ -302,6 +304,8 @@ class ShowMode(QObject):
         self.active = False
         w.fits.fit_width = False
         w.fits.show_mode = False
+        w.slices.fit_readout = False
+        w.slices.show_readout()
         w.fits.set_hidden_columns(())
         w.fits.refresh()
         self._restore_parts()

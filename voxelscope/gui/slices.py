@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
-from PySide6.QtGui import QColor, QFont, QPen, QTransform
+from PySide6.QtGui import QColor, QFont, QFontMetrics, QPen, QTextDocumentFragment, QTransform
 from PySide6.QtWidgets import (
     QGraphicsRectItem,
     QGraphicsSimpleTextItem,
@@ -531,9 +531,10 @@ class _Holder(QWidget):
     alone: a label's new text asks its parent's layout to run again, which went up to the
     main window on every click; this holder's size does not depend on the text."""
 
-    def __init__(self, label: QLabel, parent: QWidget | None = None) -> None:
+    def __init__(self, label: QLabel, parent: QWidget | None = None, on_resize=None) -> None:
         super().__init__(parent)
         self.label = label
+        self._on_resize = on_resize
         label.setParent(self)
         self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
 
@@ -545,6 +546,8 @@ class _Holder(QWidget):
 
     def resizeEvent(self, ev) -> None:
         self.label.setGeometry(self.rect())
+        if self._on_resize is not None:
+            self._on_resize()
 
 
 class SlicesPanel(QWidget):
@@ -585,7 +588,10 @@ class SlicesPanel(QWidget):
         line = QHBoxLayout(bottom)
         line.setContentsMargins(0, 0, 0, 0)
         line.setSpacing(0)
-        line.addWidget(_Holder(self.readout), 1)
+        #: Show mode: the readout keeps to its width, dropping its least needed parts
+        self.fit_readout = False
+        self._readout_parts: list[tuple[int, str]] = []
+        line.addWidget(_Holder(self.readout, on_resize=self.show_readout), 1)
         line.addWidget(self.goto)
         outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
@@ -608,19 +614,51 @@ class SlicesPanel(QWidget):
             return
         i, j, k = voxel
         x, y, z = (float(v) for v in run.voxel_to_mm(voxel))
+        # (rank, text): when the line must fit (Show mode) the highest ranks go first; a room
+        # wants the place in mm, the region and the map value before the voxel's indices
         parts = [
-            f"<b>Voxel</b> ({i}, {j}, {k})",
-            f"<b>World</b> {format_xyz((x, y, z))} mm",
-            f"<b>Mean</b> {fmt('value', run.mean_image()[i, j, k])}",
+            (3, f"<b>Voxel</b> ({i}, {j}, {k})"),
+            (0, f"<b>World</b> {format_xyz((x, y, z))} mm"),
+            (4, f"<b>Mean</b> {fmt('value', run.mean_image()[i, j, k])}"),
         ]
         under = self.state.underlay
         if under is not None and under.path is not None:
-            parts.append(f"<b>Underlay</b> {fmt('value', under.value_at((x, y, z), voxel))}")
+            value = fmt("value", under.value_at((x, y, z), voxel))
+            parts.append((5, f"<b>Underlay</b> {value}"))
         layer = self.state.stat_map
         if layer is not None:
             kind = stat_kind(self.state.map_settings.stat)
-            parts.append(f"<b>Map</b> {fmt(kind, layer.data[i, j, k])}")
+            parts.append((2, f"<b>Map</b> {fmt(kind, layer.data[i, j, k])}"))
         atlas = self.state.atlas
         if atlas is not None:  # the region at the voxel's centre, through the affines
-            parts.append(f"<b>Region</b> {esc(atlas.region_at((x, y, z)).text)}")
-        self.readout.setText("&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for p in parts))
+            parts.append((1, f"<b>Region</b> {esc(atlas.region_at((x, y, z)).text)}"))
+        self._readout_parts = parts
+        self.show_readout()
+
+    def show_readout(self) -> None:
+        """Write the readout line; in Show mode (:attr:`fit_readout`) leave out the parts
+        that do not fit, least needed first (anatomy, mean, voxel indices, map value, region),
+        rather than cut the line at the right edge; the whole line is then the tooltip."""
+        parts = list(self._readout_parts)
+
+        def html(ps) -> str:
+            return "&nbsp;&nbsp; ".join(f"<nobr>{p}</nobr>" for _r, p in ps)
+
+        full = html(parts)
+        if self.fit_readout and parts:
+            font = QFont(self.readout.font())
+            font.setBold(True)  # measure as if all bold: never too wide
+            metrics = QFontMetrics(font)
+            room = self.readout.contentsRect().width() - 24  # the style's padding
+
+            def width(ps) -> int:
+                plain = "    ".join(QTextDocumentFragment.fromHtml(p).toPlainText() for _r, p in ps)
+                return metrics.horizontalAdvance(plain)
+
+            while len(parts) > 1 and width(parts) > room:
+                parts.remove(max(parts, key=lambda rp: rp[0]))
+        shown = html(parts)
+        self.readout.setText(shown)
+        self.readout.setToolTip(
+            "" if shown == full else QTextDocumentFragment.fromHtml(full).toPlainText()
+        )
