@@ -26,6 +26,7 @@ def write_run(
     img.header["pixdim"][4] = tr
     path = tmp_path / name
     nib.save(img, path)
-    events = tmp_path / name.replace("_bold.nii", "_events.tsv")
+    stem = name.removesuffix(".gz").removesuffix("_bold.nii")
+    events = tmp_path / f"{stem}_events.tsv"
     events.write_text(EVENTS)
     return path, events

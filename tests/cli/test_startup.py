@@ -3,7 +3,8 @@
 Start-up time is measured in tests/benchmarks/bench_startup.py; these tests only check the
 imports that make it: ``--version`` loads no numpy, ``--help`` and ``fit --help`` load no
 scipy, and ``fit`` on a run loads none of the heavy scipy subpackages (stats, signal,
-optimize, interpolate, ndimage) and no Qt. Each runs in a fresh interpreter.
+optimize, interpolate, ndimage) and no Qt (under the default AR(p) model, once the run is
+cached). Each runs in a fresh interpreter.
 """
 
 from __future__ import annotations
@@ -59,6 +60,19 @@ def test_fit_loads_no_heavy_scipy(tmp_path):
     rng = np.random.default_rng(3)
     path, events = write_run(tmp_path, 500 + rng.standard_normal((4, 5, 3, 60)), 1.5)
     argv = ["fit", str(path), "--events", str(events), "--voxel", "1", "1", "1", "--noise", "ols"]
+    assert _loaded_after(argv, (*HEAVY, *QT)) == []
+
+
+def test_fit_on_a_cached_run_loads_no_heavy_scipy(tmp_path, monkeypatch):
+    """Under the default AR(p) model too, on a compressed run while its cache is built and
+    once it is (the brain mask is then read from the cache)."""
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+    rng = np.random.default_rng(4)
+    data = 500 + rng.standard_normal((6, 7, 5, 60))
+    path, events = write_run(tmp_path, data, 1.5, name="sub-01_task-y_bold.nii.gz")
+    argv = ["fit", str(path), "--events", str(events), "--voxel", "2", "3", "2"]
+    assert _loaded_after(argv, (*HEAVY, *QT)) == []
+    assert list((tmp_path / "cache" / "voxelscope" / "runs").glob("*.mask"))
     assert _loaded_after(argv, (*HEAVY, *QT)) == []
 
 

@@ -978,3 +978,145 @@ def test_small_gzip_holding_a_big_run_is_refused_from_the_cache(tmp_path, monkey
     assert not (tmp_path / "c").exists() or _files(tmp_path / "c") == []
     for ijk in [(0, 0, 0), (127, 5, 63), (64, 64, 32)]:
         np.testing.assert_array_equal(run.timeseries(ijk), data[ijk])
+
+
+# --------------------------------------------------------------------------- kept masks
+
+
+def _mask_file(cdir: Path) -> Path:
+    rows, _summary, _meta = _entry(cdir)
+    return rows.with_name(rows.name[: -len(".rows")] + cache.MASK_SUFFIX)
+
+
+def _phantom_run(tmp_path: Path) -> Path:
+    data, _brain = _phantom(seed=5)
+    hole = np.random.default_rng(1).normal(50.0, 5.0, (3, 3, 3, data.shape[3]))
+    data[6:9, 5:8, 4:7] = hole  # dim but varying: a hole the rule fills
+    data[1, 1, 1] = 900.0  # an island the rule drops
+    return _save(tmp_path / "r_bold.nii.gz", data)
+
+
+def _recomputed(run) -> np.ndarray:
+    from voxelscope.core.mask import summary_mask
+
+    return summary_mask(run.summary())[0]
+
+
+def test_kept_mask_equals_the_recomputed_one_and_skips_the_rule(tmp_path, monkeypatch):
+    """Issue 18: the first use of a cached run's mask keeps it beside the entry; a later
+    open serves it without applying the rule again, equal to the rule's own result."""
+    from voxelscope.core import run as run_module
+
+    path = _phantom_run(tmp_path)
+    first = open_run(path, cache_dir=tmp_path / "c")
+    assert not _mask_file(tmp_path / "c").exists()  # written when first asked for
+    want = first.mask().copy()
+    assert _mask_file(tmp_path / "c").exists()
+
+    def no_rule(_s):
+        raise AssertionError("the mask rule ran although its result was kept")
+
+    monkeypatch.setattr(run_module, "summary_mask", no_rule)
+    second = open_run(path, cache_dir=tmp_path / "c")
+    got = second.mask()
+    np.testing.assert_array_equal(got, want)
+    monkeypatch.undo()
+    np.testing.assert_array_equal(got, _recomputed(second))
+    assert not got.flags.writeable
+    assert got[7, 6, 5] and not got[1, 1, 1]  # the hole filled, the island dropped
+
+
+def _count_rule_runs(monkeypatch) -> list[int]:
+    from voxelscope.core import run as run_module
+
+    calls: list[int] = []
+    real = run_module.summary_mask
+
+    def counted(s):
+        calls.append(1)
+        return real(s)
+
+    monkeypatch.setattr(run_module, "summary_mask", counted)
+    return calls
+
+
+def test_kept_mask_of_another_rule_version_is_recomputed(tmp_path, monkeypatch):
+    from voxelscope.core import mask as mask_module
+
+    path = _phantom_run(tmp_path)
+    want = open_run(path, cache_dir=tmp_path / "c").mask().copy()
+    calls = _count_rule_runs(monkeypatch)
+    monkeypatch.setattr(mask_module, "MASK_RULE_VERSION", mask_module.MASK_RULE_VERSION + 1)
+    np.testing.assert_array_equal(open_run(path, cache_dir=tmp_path / "c").mask(), want)
+    assert calls == [1]
+    # and kept again under the new rule
+    np.testing.assert_array_equal(open_run(path, cache_dir=tmp_path / "c").mask(), want)
+    assert calls == [1]
+
+
+def test_kept_mask_of_another_summary_is_never_served(tmp_path, monkeypatch):
+    """A mask file with a valid checksum but made for another run (copied under this
+    run's key) is recomputed: it names the other entry and the other summary."""
+    path = _phantom_run(tmp_path)
+    other = tmp_path / "o"
+    other.mkdir()
+    data, _ = _phantom(seed=6)
+    data[:8] = 0.0
+    other_path = _save(other / "r_bold.nii.gz", data)
+    open_run(other_path, cache_dir=tmp_path / "oc").mask()
+    want = open_run(path, cache_dir=tmp_path / "c").mask().copy()
+    _mask_file(tmp_path / "c").write_bytes(_mask_file(tmp_path / "oc").read_bytes())
+    calls = _count_rule_runs(monkeypatch)
+    np.testing.assert_array_equal(open_run(path, cache_dir=tmp_path / "c").mask(), want)
+    assert calls == [1]
+
+
+@settings(max_examples=25, deadline=None)
+@given(where=st.floats(0, 1), xor=st.integers(1, 255), cut=st.booleans())
+def test_damaged_kept_mask_is_recomputed_never_served(tmp_path_factory, where, xor, cut):
+    """Fault injection: one byte of the kept mask XOR-ed with any value, or the file cut
+    short there: the mask served is the rule's own result."""
+    import shutil
+
+    base = tmp_path_factory.mktemp("maskflip")
+    path = _phantom_run(base)
+    want = open_run(path, cache_dir=base / "c").mask().copy()
+    target = _mask_file(base / "c")
+    blob = bytearray(target.read_bytes())
+    at = min(len(blob) - 1, int(where * len(blob)))
+    if cut:
+        del blob[at:]
+    else:
+        blob[at] ^= xor
+    target.write_bytes(bytes(blob))
+    run = open_run(path, cache_dir=base / "c")
+    np.testing.assert_array_equal(run.mask(), want)
+    np.testing.assert_array_equal(run.mask(), _recomputed(run))
+    shutil.rmtree(base)
+
+
+def test_kept_mask_that_cannot_be_written_is_computed_each_time(tmp_path, monkeypatch):
+    path = _phantom_run(tmp_path)
+    want = open_run(path, cache_dir=tmp_path / "c").mask().copy()
+    _mask_file(tmp_path / "c").unlink()
+
+    def refuse(*_a, **_k):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(cache, "_write_bytes_atomic", refuse)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    np.testing.assert_array_equal(run.mask(), want)
+    assert not _mask_file(tmp_path / "c").exists()
+    assert not [p for p in (tmp_path / "c").iterdir() if p.name.endswith(".tmp")]
+
+
+def test_kept_mask_goes_with_its_entry(tmp_path):
+    """cache info counts it, cache clear removes it with the entry."""
+    path = _phantom_run(tmp_path)
+    open_run(path, cache_dir=tmp_path / "c").mask()
+    kept = _mask_file(tmp_path / "c")
+    info = cache_info(tmp_path / "c")
+    assert info.total_bytes == sum(p.stat().st_size for p in (tmp_path / "c").iterdir())
+    assert kept.stat().st_size > 0
+    cache_clear(tmp_path / "c")
+    assert _files(tmp_path / "c") == []

@@ -25,9 +25,11 @@ from voxelscope.core.summary import Summary
 __all__ = [
     "MASK_FRACTION",
     "MASK_PERCENTILE",
+    "MASK_RULE_VERSION",
     "brain_mask",
     "cache_must_keep",
     "cache_selection",
+    "mask_rule",
     "summary_mask",
 ]
 
@@ -35,6 +37,22 @@ __all__ = [
 MASK_FRACTION = 0.2
 #: ... where the robust maximum is this percentile of the valid voxels' means.
 MASK_PERCENTILE = 98.0
+#: Version of :func:`summary_mask`'s rule. Raise it whenever the rule would give another
+#: mask for the same summary: masks kept in the cache name the rule they were computed
+#: by (:func:`mask_rule`) and are computed again when it differs.
+MASK_RULE_VERSION = 1
+
+
+def mask_rule() -> str:
+    """The rule :func:`summary_mask` applies, as the cache records it beside a kept mask.
+
+    >>> mask_rule()
+    'intensity rule 1: mean > 0.2 x percentile 98.0; largest 26-connected part; holes filled'
+    """
+    return (
+        f"intensity rule {MASK_RULE_VERSION}: mean > {MASK_FRACTION} x percentile "
+        f"{MASK_PERCENTILE}; largest 26-connected part; holes filled"
+    )
 
 
 def brain_mask(

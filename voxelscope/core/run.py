@@ -52,7 +52,7 @@ from voxelscope.core.acquisition import resolve_tr, sampling_reference
 from voxelscope.core.companions import find_companions, merge_sidecars
 from voxelscope.core.errors import InputError
 from voxelscope.core.images import _check_affine, _check_dtype, load_nifti, nifti_affine
-from voxelscope.core.mask import cache_must_keep, cache_selection, summary_mask
+from voxelscope.core.mask import cache_must_keep, cache_selection, mask_rule, summary_mask
 from voxelscope.core.rawfile import RawLayout
 from voxelscope.core.stores import MappedStore, VoxelSource
 from voxelscope.core.summary import Summary, summarize_volumes
@@ -129,6 +129,7 @@ class Run:
     _mean: np.ndarray | None = field(default=None, repr=False)
     _mask: np.ndarray | None = field(default=None, repr=False)
     _given_mask: np.ndarray | None = field(default=None, repr=False)
+    _mask_memo: Any = field(default=None, repr=False)  # cache.MaskMemo of a cached run
     _lock: Any = field(default_factory=threading.RLock, repr=False)
 
     def set_mask(self, mask: np.ndarray, source: str) -> None:
@@ -403,7 +404,15 @@ class Run:
                 mask.flags.writeable = False
                 self._mask = mask
             if self._mask is None:
-                mask, fallback = summary_mask(self.summary())
+                # a cached run keeps the mask it computed the first time (checked there)
+                memo, rule = self._mask_memo, mask_rule()
+                kept = memo.load(rule) if memo is not None else None
+                if kept is not None:
+                    mask, fallback = kept
+                else:
+                    mask, fallback = summary_mask(self.summary())
+                    if memo is not None:
+                        memo.save(rule, mask, fallback)
                 if fallback:
                     self.warnings.append(
                         f"{self.path}: no voxel is bright enough for an intensity mask; "
@@ -560,6 +569,7 @@ def open_run(
     )
     summary = None
     cache_path = None
+    mask_memo = None
     if not layout.compressed:
         needed = layout.offset + layout.volume_bytes * t
         size = path.stat().st_size
@@ -592,7 +602,7 @@ def open_run(
             progress=progress,
             notify=notify,
         )
-        store, summary = opened.store, opened.summary
+        store, summary, mask_memo = opened.store, opened.summary, opened.mask_memo
         storage, cache_path = opened.storage, opened.cache_path
         notes.extend(opened.notes)
 
@@ -618,6 +628,7 @@ def open_run(
         reference_source=reference_source,
         _store=store,
         _summary=summary,
+        _mask_memo=mask_memo,
     )
     if summary is not None:
         run._note_summary()
