@@ -259,3 +259,21 @@ def test_view_adds_runs_and_refuses_a_bad_one(tmp_path):
     errors = [line for line in bad.stderr.splitlines() if line.startswith("voxelscope: error")]
     assert bad.returncode == 2 and len(errors) == 1 and "nope_bold.nii" in errors[0]
     assert "Traceback" not in bad.stderr
+
+
+def test_report_of_several_runs_names_the_atlas_region(tmp_path, capsys):
+    """The several-run report names the region at each place, as the one-run report does."""
+    paths = _three_runs(tmp_path)
+    labels = np.full((20, 20, 20), 4, np.int16)
+    aff = np.diag([3.0, 3.0, 3.0, 1.0])
+    aff[:3, 3] = -30.0
+    atlas = tmp_path / "atlas-x_dseg.nii"
+    nib.save(nib.Nifti1Image(labels, aff), atlas)
+    (tmp_path / "atlas-x_dseg.tsv").write_text("index\tname\n4\thand area\n")
+    out = tmp_path / "rep"
+    argv = ["report", *paths, "--mm", "6", "9", "3.5", "--kernels", "gamma", "-o", str(out)]
+    assert main([*argv, "--scale", "1", "--no-checks", "--atlas", str(atlas)]) == 0
+    capsys.readouterr()
+    page = (out / "report.html").read_text(encoding="utf-8")
+    assert "region: hand area (atlas-x_dseg.nii)" in page
+    assert "atlas-x_dseg.nii" in page.split("region:")[-1]  # and among the input files

@@ -126,6 +126,9 @@ def _run_report_several(args: argparse.Namespace, marks) -> int:
         warnings += [f"{label}: {w}" for w in ld.warnings]
     if args.marks:
         inputs.append(("marks", Path(args.marks)))
+    atlas = loads[0].inputs.atlas if loads[0].inputs is not None else None
+    if getattr(args, "atlas", None):
+        inputs.append(("atlas", Path(args.atlas)))
     result = write_runs_report(
         args.output,
         [ld.run for ld in loads],
@@ -141,6 +144,7 @@ def _run_report_several(args: argparse.Namespace, marks) -> int:
         checks=not args.no_checks,
         title=args.title,
         warnings=warnings,
+        atlas=atlas,
     )
     print_warnings(result.warnings)
     print(f"wrote {result.html} and {len(result.files) - 1} more file(s) in {result.directory}")

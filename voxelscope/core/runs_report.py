@@ -74,6 +74,7 @@ class RunsSection:
     error: str = ""
     prefix: str = ""
     png: dict[str, bytes] = field(default_factory=dict)
+    region: str = ""  # the atlas region at the place (empty without an atlas)
 
 
 @dataclass
@@ -269,8 +270,11 @@ def _section_html(sec: RunsSection, labels: Sequence[str], settings: ModelSettin
     out = [f"<section id='sec-{sec.number}'>", f"<h2>{sec.number}. {_e(sec.title)}</h2>"]
     if sec.note:
         out.append(f"<p class='note'>{_e(sec.note)}</p>")
-    if sec.xyz_mm is not None:
-        out.append(f"<p>world {format_xyz(sec.xyz_mm)} mm</p>")
+    where = [] if sec.xyz_mm is None else [f"world {format_xyz(sec.xyz_mm)} mm"]
+    if sec.region:
+        where.append(f"region: {sec.region}")
+    if where:
+        out.append(f"<p>{_e(', '.join(where))}</p>")
     if sec.error:
         out.append(f"<p class='warn'>{_e(sec.error)}</p></section>")
         return "\n".join(out)
@@ -314,6 +318,7 @@ def write_runs_report(
     checks: bool = True,
     title: str | None = None,
     warnings: Sequence[str] = (),
+    atlas: Any = None,
 ) -> RunsReportResult:
     """Write a report of several runs for one place (``voxel`` or ``mm``) or every mark.
 
@@ -331,6 +336,9 @@ def write_runs_report(
         Input files listed with their SHA-256 (the runs are always listed).
     force, scale, size, checks, title, warnings
         As for :func:`voxelscope.core.report.write_report`.
+    atlas : Atlas, optional
+        Name each section's region (:mod:`voxelscope.core.atlas`), at the section's
+        position in mm (the first run's voxel centre for a voxel).
 
     Returns
     -------
@@ -384,6 +392,11 @@ def write_runs_report(
             sections.append(sec)
         if not sections:
             raise InputError("the marks list is empty; add marks or report one voxel")
+
+    if atlas is not None:  # the region at each place, as the window's readout
+        for sec in sections:
+            if sec.xyz_mm is not None:
+                sec.region = f"{atlas.region_at(sec.xyz_mm).text} ({atlas.name})"
 
     html_path = out / "report.html"
     outputs = [html_path]
