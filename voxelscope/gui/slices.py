@@ -191,6 +191,8 @@ class SliceView(pg.GraphicsView):
         self._under_factor = 1
         self._under_affine: np.ndarray | None = None  # display index -> mm, own-grid underlay
         self._run_from_world = np.eye(4)
+        # an underlay tilted against the run: resampled in the run's planes (data, affine)
+        self._tilted: tuple[np.ndarray, np.ndarray] | None = None
         self._map_vol: np.ndarray | None = None
         self._shown_under: int | None = None
         self._shown_map: int | None = None
@@ -283,6 +285,8 @@ class SliceView(pg.GraphicsView):
             self._under_vol = np.ascontiguousarray(own.display(layer.data))
             self._under_affine = own.display_affine()
             self._run_from_world = np.linalg.inv(grid.display_affine())
+            rel = (self._run_from_world @ self._under_affine)[:3, :3]
+            self._tilted = (layer.data, np.asarray(layer.affine, float)) if _tilted(rel) else None
             self._under_factor = 1
             self.under.setImage(
                 self._slice(self._under_vol, 0), autoLevels=False, levels=layer.levels
@@ -291,6 +295,7 @@ class SliceView(pg.GraphicsView):
             self._update_slices(force=True)
             return
         self._under_affine = None
+        self._tilted = None
         self._under_vol = np.ascontiguousarray(grid.display(layer.data))
         self._under_factor = int(layer.factor)
         self.under.setImage(self._slice(self._under_vol, 0), autoLevels=False, levels=layer.levels)
@@ -302,6 +307,34 @@ class SliceView(pg.GraphicsView):
         self.under.setVisible(True)
         self._shown_under = None
         self._update_slices(force=True)
+
+    def tilted_plane(self, k: int) -> tuple[np.ndarray, QRectF]:
+        """An underlay tilted against the run, sampled in the run's display plane ``k``.
+
+        Its own planes cut the run's at an angle, so no plane of it is the one shown: the
+        plane is sampled (trilinear, through the two affines) on a grid as fine as the
+        underlay's smallest voxel over the run's field of view; outside the underlay it is
+        the underlay's lowest level. Returns the image and its rectangle in the view.
+        """
+        from scipy.ndimage import map_coordinates
+
+        data, affine = self._tilted  # type: ignore[misc]
+        grid = self.state.grid
+        sh, sv = self._sizes
+        fine = float(np.min(np.linalg.norm(affine[:3, :3], axis=0)))
+        n_h = grid.display_shape[self.h_axis]
+        n_v = grid.display_shape[self.v_axis]
+        m_h = max(1, min(4 * n_h, int(np.ceil(n_h * sh / fine))))  # at most 4x the run's grid
+        m_v = max(1, min(4 * n_v, int(np.ceil(n_v * sv / fine))))
+        h = (np.arange(m_h) + 0.5) * (n_h / m_h) - 0.5  # pixel centres, run display index
+        v = (np.arange(m_v) + 0.5) * (n_v / m_v) - 0.5
+        idx = np.zeros((4, m_h, m_v))
+        idx[self.h_axis], idx[self.v_axis] = np.meshgrid(h, v, indexing="ij")
+        idx[self.n_axis], idx[3] = float(k), 1.0
+        own = np.linalg.inv(affine) @ grid.display_affine() @ idx.reshape(4, -1)
+        low = float(self.state.underlay.levels[0])
+        plane = map_coordinates(data, own[:3], order=1, mode="constant", cval=low)
+        return plane.reshape(m_h, m_v).astype(np.float32), QRectF(0, 0, n_h * sh, n_v * sv)
 
     def underlay_plane_transform(self, k: int) -> QTransform:
         """Image pixel -> view coordinates for plane ``k`` of an underlay on its own grid.
@@ -352,7 +385,15 @@ class SliceView(pg.GraphicsView):
             return
         d = grid.to_display(self.state.voxel)
         k = d[self.n_axis]
-        if self._under_vol is not None and self._under_affine is not None:
+        if self._under_vol is not None and self._tilted is not None:
+            if force or self._shown_under != k:  # sampled in the run's plane through k
+                plane, rect = self.tilted_plane(k)
+                self.under.setImage(plane, autoLevels=False)
+                self.under.setTransform(QTransform())
+                self.under.setRect(rect)
+                self.under.setVisible(True)
+                self._shown_under = k
+        elif self._under_vol is not None and self._under_affine is not None:
             # the underlay's own plane nearest to the current voxel's centre
             world = grid.display_affine() @ np.array([*d, 1.0], dtype=float)
             u = np.linalg.inv(self._under_affine) @ world
@@ -524,6 +565,18 @@ def _short(name: str, n: int = 14) -> str:
     parts = name.split("_")
     tail = parts[-1] if parts else name
     return tail if len(tail) <= n else tail[: n - 1] + "…"
+
+
+def _tilted(rel: np.ndarray, tol: float = 1e-3) -> bool:
+    """Whether a 3 x 3 map between display grids mixes axes (a rotation beyond flips and
+    swaps): each column then has more than one part above ``tol`` of its length.
+
+    >>> _tilted(np.diag([2.0, 1.0, 3.0])), _tilted(np.array([[1, 1, 0], [-1, 1, 0], [0, 0, 1.0]]))
+    (False, True)
+    """
+    cols = np.abs(np.asarray(rel, float))
+    cols = cols / np.maximum(cols.max(axis=0, keepdims=True), 1e-300)
+    return bool(np.any((cols > tol).sum(axis=0) > 1))
 
 
 class _Holder(QWidget):
