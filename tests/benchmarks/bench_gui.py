@@ -343,7 +343,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
         d["run"],
         d["events"],
         d["confounds"],
-        d["anat"],
+        d["anatomy"],
         d["stat_map"],
         voxel=d["voxel"],
         background=False,

@@ -39,3 +39,17 @@ def test_demo_without_display_exits_2(monkeypatch, capsys):
     assert main(["demo"]) == 2
     err = capsys.readouterr().err.strip()
     assert err.startswith("voxelscope: error: no display") and len(err.splitlines()) == 1
+
+
+def test_anatomy_flag_and_its_earlier_spelling(capsys):
+    """``--anatomy`` is the flag; ``--anat`` (the earlier spelling) still works, unlisted."""
+    from voxelscope.cli import build_parser
+
+    parser = build_parser()
+    for flag in ("--anatomy", "--anat"):
+        args = parser.parse_args(["view", "run.nii.gz", flag, "t1.nii.gz"])
+        assert args.anatomy == "t1.nii.gz"
+    with pytest.raises(SystemExit):
+        parser.parse_args(["view", "--help"])
+    out = capsys.readouterr().out
+    assert "--anatomy FILE" in out and "--anat " not in out

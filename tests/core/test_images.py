@@ -215,7 +215,7 @@ def _text_named(tmp_path, name: str) -> Path:
 
 def test_text_named_nii_gz_is_not_a_gzip_image_for_every_opener(tmp_path):
     """A text file named .nii.gz: one line saying it is not gzip-compressed, wherever it is
-    opened (run, mask, underlay, outside map); the gzip signature 1f 8b is RFC 1952's."""
+    opened (run, mask, anatomy, outside map); the gzip signature 1f 8b is RFC 1952's."""
     from voxelscope.core.loader import InputRequest, load_inputs
 
     fake = _text_named(tmp_path, "sub-01_task-x_bold.nii.gz")

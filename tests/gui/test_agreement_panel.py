@@ -118,7 +118,7 @@ def test_demo_uses_the_pipeline_map(window, qtbot, demo_files):
         d["run"],
         d["events"],
         d["confounds"],
-        d["anat"],
+        d["anatomy"],
         d["stat_map"],
         voxel=d["voxel"],
         background=False,

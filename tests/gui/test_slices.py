@@ -32,8 +32,8 @@ def _expected_display(affine, shape, voxel):
 
 
 def _screen_point(view, display):
-    """Viewport pixel of a display voxel's centre, through the underlay image item."""
-    f = view.state.underlay.factor
+    """Viewport pixel of a display voxel's centre, through the backdrop image item."""
+    f = view.state.backdrop.factor
     h, v = display[view.h_axis], display[view.v_axis]
     scene = view.under.mapToScene(QPointF((h + 0.5) * f, (v + 0.5) * f))
     return view.mapFromScene(scene)
@@ -108,7 +108,7 @@ def test_crosshair_moves_in_all_three_views(window, qtbot, las_run):
     disp = _expected_display(state.run.affine, state.run.shape, target)
     for name, view in window.slices.views.items():
         centre = view.under.mapToView(
-            QPointF(disp[view.h_axis] + 0.5, disp[view.v_axis] + 0.5) * state.underlay.factor
+            QPointF(disp[view.h_axis] + 0.5, disp[view.v_axis] + 0.5) * state.backdrop.factor
         )
         assert (view.vline.value(), view.hline.value()) != before[name]
         assert view.vline.value() == pytest.approx(centre.x())
@@ -255,7 +255,7 @@ def test_underlay_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_
     data = np.arange(np.prod(shape), dtype=np.float32).reshape(shape)  # value = flat index
     anat = tmp_path / "sub-ras_T1w.nii.gz"
     nib.save(nib.Nifti1Image(data, aff), anat)
-    assert window.open_run(ras_run["run"], anat=str(anat), background=False), window.last_error
+    assert window.open_run(ras_run["run"], anatomy=str(anat), background=False), window.last_error
     state = window.state
     planes = {"axial": (30, 34), "coronal": (30, 50), "sagittal": (34, 50)}
     for voxel in [(2, 3, 4), (0, 0, 0), (8, 10, 6)]:
@@ -277,7 +277,7 @@ def test_underlay_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_
     state.set_voxel((2, 3, 4))
     world = apply_affine(ras_run["affine"], (2, 3, 4))
     a_ijk = tuple(np.round(apply_affine(np.linalg.inv(aff), world)).astype(int))
-    assert f"<b>Underlay</b> {fmt('value', data[a_ijk])}" in window.slices.readout.text()
+    assert f"<b>Anatomy</b> {fmt('value', data[a_ijk])}" in window.slices.readout.text()
 
 
 def test_a_tilted_anatomy_is_sampled_in_the_runs_planes(window, qtbot, ras_run, tmp_path):
@@ -299,7 +299,7 @@ def test_a_tilted_anatomy_is_sampled_in_the_runs_planes(window, qtbot, ras_run, 
     data = (world @ coef + 500.0).reshape(shape).astype(np.float32)
     anat = tmp_path / "sub-ras_T1w.nii.gz"
     nib.save(nib.Nifti1Image(data, aff), anat)
-    assert window.open_run(ras_run["run"], anat=str(anat), background=False), window.last_error
+    assert window.open_run(ras_run["run"], anatomy=str(anat), background=False), window.last_error
     state = window.state
     grid = state.grid
     inv = np.linalg.inv(aff)

@@ -33,7 +33,7 @@ EXAMPLES = {
     ),
     "view": (
         "examples:\n"
-        f"  voxelscope view {_RUN} --anat sub-01_T1w.nii.gz\n"
+        f"  voxelscope view {_RUN} --anatomy sub-01_T1w.nii.gz\n"
         f"  voxelscope view {_RUN} --screenshot window.png --size 1280x800"
     ),
     "demo": (

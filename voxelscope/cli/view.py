@@ -76,11 +76,13 @@ def register(sub: argparse._SubParsersAction) -> None:
         "table beside the run (its columns are listed in Model, switched off)",
     )
     p.add_argument(
-        "--anat",
+        "--anatomy",
         metavar="FILE",
-        help="anatomical underlay on any grid, drawn at its own resolution (default: the "
+        help="anatomical image on any grid, drawn at its own resolution (default: the "
         "run's mean image)",
     )
+    # the earlier spelling, kept so that existing commands keep working; not in the help
+    p.add_argument("--anat", dest="anatomy", metavar="FILE", help=argparse.SUPPRESS)
     p.add_argument(
         "--map", metavar="FILE", dest="stat_map", help="statistic map overlay on any grid"
     )
@@ -223,7 +225,7 @@ def run_view(args: argparse.Namespace) -> int:
         run=args.run,
         events=args.events,
         confounds=args.confounds,
-        anat=args.anat,
+        anatomy=args.anatomy,
         stat_map=args.stat_map,
         tr=args.tr,
         mask=args.mask,

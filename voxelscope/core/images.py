@@ -1,4 +1,4 @@
-"""Single 3D images (anatomical underlays, statistic maps) and their resampling onto a run.
+"""Single 3D images (anatomies, maps) and their resampling onto a run.
 
 An image on any grid and in any orientation is brought into the run's display grid through
 the two affines: for every voxel centre of the target grid we find its world position (mm),
@@ -277,7 +277,7 @@ def load_image(path: str | os.PathLike[str], what: str = "image") -> Image3D:
     path : str or path-like
         ``.nii`` or ``.nii.gz`` (NIfTI-1 or NIfTI-2).
     what : str
-        Word used in messages (``"image"``, ``"underlay"``, ``"atlas"``, ``"mask"``).
+        Word used in messages (``"image"``, ``"anatomy"``, ``"atlas"``, ``"mask"``).
 
     Returns
     -------
@@ -483,7 +483,7 @@ def load_on_grid(
     Parameters
     ----------
     path : str or path-like
-        The map or underlay (``.nii`` / ``.nii.gz``).
+        The map or anatomy (``.nii`` / ``.nii.gz``).
     run_or_shape_affine : Run or (shape, affine)
         The target grid. With a :class:`~voxelscope.core.run.Run`, coverage is measured on
         its brain mask; with a pair, on the whole grid.

@@ -436,7 +436,7 @@ def _run_shape(path: Path, img: Any) -> tuple[int, int, int, int]:
     if len(shape) < 4:
         raise InputError(
             f"{path}: a {len(shape)}D image {shape} is not a run; a run needs 4 dimensions "
-            f"(x, y, z, time), open it as an underlay or map instead"
+            f"(x, y, z, time), open it as the anatomy or a map instead"
         )
     if len(shape) > 4 and any(n != 1 for n in shape[4:]):
         raise InputError(

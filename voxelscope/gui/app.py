@@ -72,12 +72,12 @@ def demo_paths() -> dict:
         "study": folder / "study",
         "events": raw / "func" / f"{stem}_events.tsv",
         "confounds": prep / f"{stem}_desc-confounds_timeseries.tsv",
-        "anat": raw / "anat" / "sub-demo_T1w.nii.gz",
+        "anatomy": raw / "anat" / "sub-demo_T1w.nii.gz",
         "stat_map": folder / f"{stem}_pipeline-t.nii.gz",
         "voxel": None,
         "marks": folder / "demo_marks.tsv",
     }
-    for key in ("run2", "events", "confounds", "anat", "stat_map", "marks"):
+    for key in ("run2", "events", "confounds", "anatomy", "stat_map", "marks"):
         if not out[key].is_file():
             out[key] = None
     truth = folder / "demo_truth.json"
@@ -150,7 +150,7 @@ def launch(
     run: str | None = None,
     events: str | None = None,
     confounds: str | None = None,
-    anat: str | None = None,
+    anatomy: str | None = None,
     stat_map: str | None = None,
     voxel: tuple[int, int, int] | None = None,
     mm: tuple[float, float, float] | None = None,
@@ -176,8 +176,8 @@ def launch(
     run : path, optional
         4D run; its events, sidecar and confounds are found by BIDS names beside it when
         ``events`` / ``confounds`` are not given. Without a run the window says how to open one.
-    events, confounds, anat, stat_map : path, optional
-        Events TSV, confounds TSV, anatomical underlay, statistic map overlay.
+    events, confounds, anatomy, stat_map : path, optional
+        Events TSV, confounds TSV, anatomy, statistic map overlay.
     voxel : (i, j, k), optional
         Starting voxel; or ``mm``, a world position.
     tr : float, optional
@@ -187,7 +187,7 @@ def launch(
         atomically and return without entering the event loop.
     size : (width, height)
     demo : bool
-        Open the demo run (sample_data) with its events, confounds, anatomical underlay,
+        Open the demo run (sample_data) with its events, confounds, anatomy,
         earlier t map and prepared marks, at the tone cluster's voxel.
     session : path, optional
         Restore a saved session (``voxelscope view --session FILE``); the run and the other
@@ -251,7 +251,7 @@ def launch(
             run = str(d["run"])
             events = events or (str(d["events"]) if d["events"] else None)
             confounds = confounds or (str(d["confounds"]) if d["confounds"] else None)
-            anat = anat or (str(d["anat"]) if d["anat"] else None)
+            anatomy = anatomy or (str(d["anatomy"]) if d["anatomy"] else None)
             stat_map = stat_map or (str(d["stat_map"]) if d["stat_map"] else None)
             marks_path = d["marks"]
             if voxel is None and mm is None:
@@ -260,7 +260,7 @@ def launch(
         from voxelscope.core.outputs import guard_output
 
         window.autosave.enabled = False
-        inputs = [run, events, confounds, anat, stat_map, session, marks_path, *add_runs]
+        inputs = [run, events, confounds, anatomy, stat_map, session, marks_path, *add_runs]
         inputs += [atlas, atlas_labels]
         try:  # refuse a bad screenshot path before the run is opened
             guard_output(screenshot, inputs, force=force)
@@ -276,7 +276,7 @@ def launch(
                 return 2
         elif run is not None:
             ok = window.open_run(
-                run, events, confounds, anat, stat_map, tr, voxel, mm, background=False,
+                run, events, confounds, anatomy, stat_map, tr, voxel, mm, background=False,
                 mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
             )  # fmt: skip
             if not ok:
@@ -340,7 +340,7 @@ def launch(
     elif run is not None:
         window.after_open = after
         window.open_run(
-            run, events, confounds, anat, stat_map, tr, voxel, mm, background=True,
+            run, events, confounds, anatomy, stat_map, tr, voxel, mm, background=True,
             mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
         )  # fmt: skip
     elif show:

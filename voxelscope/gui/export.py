@@ -346,7 +346,7 @@ def _report_kwargs(window, out_dir, what: str, force: bool) -> dict:
     inputs = {
         "events": bundle.events_path,
         "confounds": bundle.confounds_path,
-        "anatomy": bundle.underlay.path if bundle.underlay is not None else None,
+        "anatomy": bundle.backdrop.path if bundle.backdrop is not None else None,
         "overlay": state.stat_map.path if state.stat_map is not None else None,
     }
     kwargs = dict(

@@ -1,4 +1,4 @@
-"""Opening a run with its companions, underlay and map: plain functions, no Qt.
+"""Opening a run with its companions, anatomy and map: plain functions, no Qt.
 
 The window calls :func:`load_bundle` on a worker thread (see :mod:`voxelscope.gui.workers`);
 screenshot mode and the tests call it directly. Everything that can go wrong becomes a
@@ -31,13 +31,13 @@ __all__ = [
     "RunBundle",
     "check_nifti_kind",
     "fine_grid",
+    "load_backdrop",
     "load_bundle",
     "load_map",
-    "load_underlay",
 ]
 
-#: The underlay is resampled onto the run grid refined by up to this factor per axis.
-MAX_UNDERLAY_REFINE = 4
+#: The backdrop is resampled onto the run grid refined by up to this factor per axis.
+MAX_BACKDROP_REFINE = 4
 
 
 @dataclass(eq=False)
@@ -46,7 +46,7 @@ class Layer:
 
     Without ``affine``, ``data`` is on (a refinement by ``factor`` of) the run's grid and
     covers exactly the run's field of view (the mean image, maps). With ``affine``, ``data``
-    is the image on its own grid at its own resolution (an anatomical underlay), drawn with
+    is the image on its own grid at its own resolution (an anatomy), drawn with
     its own transform under the overlay.
     """
 
@@ -81,7 +81,7 @@ class RunBundle:
     analysis: Analysis | None
     events_path: Path | None
     confounds_path: Path | None
-    underlay: Layer
+    backdrop: Layer
     stat_map: Layer | None = None
     warnings: list[str] = field(default_factory=list)
     inputs: object = None  # the core's loader.Inputs: companions used, mask, reference time
@@ -119,7 +119,7 @@ def _levels(data: np.ndarray) -> tuple[float, float]:
     return float(lo), float(hi)
 
 
-def load_underlay(path: str | os.PathLike[str] | None, run, warnings: list[str]) -> Layer:
+def load_backdrop(path: str | os.PathLike[str] | None, run, warnings: list[str]) -> Layer:
     """The run's mean image (on the run's grid), or an anatomical image on its own grid.
 
     The anatomical image is kept at its own resolution with its affine; Slices draws each
@@ -131,7 +131,7 @@ def load_underlay(path: str | os.PathLike[str] | None, run, warnings: list[str])
         mean = np.array(run.mean_image(), dtype=np.float32)
         return Layer(None, mean, 1, _levels(mean))
     path = Path(path)
-    img = load_image(path, what="underlay")
+    img = load_image(path, what="anatomy")
     inside = grid_overlap(img.shape, img.affine, run.shape, run.affine)
     if not inside.any():
         raise InputError(
@@ -160,7 +160,7 @@ def load_bundle(
     run_path: str | os.PathLike[str],
     events: str | os.PathLike[str] | None = None,
     confounds: str | os.PathLike[str] | None = None,
-    anat: str | os.PathLike[str] | None = None,
+    anatomy: str | os.PathLike[str] | None = None,
     stat_map: str | os.PathLike[str] | None = None,
     tr: float | None = None,
     progress: Callable[[float], bool | None] | None = None,
@@ -182,8 +182,8 @@ def load_bundle(
         4D ``.nii`` / ``.nii.gz``.
     events, confounds : path, optional
         Default: the BIDS companions beside the run (``find_companions``).
-    anat : path, optional
-        Anatomical underlay; default the run's mean image.
+    anatomy : path, optional
+        Anatomy; default the run's mean image.
     stat_map : path, optional
         Statistic map overlay.
     tr : float, optional
@@ -229,14 +229,14 @@ def load_bundle(
     )
     got = load_inputs(request, progress=progress)
     warnings = list(got.warnings)
-    underlay = load_underlay(anat, got.run, warnings)
+    backdrop = load_backdrop(anatomy, got.run, warnings)
     layer = load_map(stat_map, got.run, warnings) if stat_map is not None else None
     return RunBundle(
         got.run,
         got.analysis,
         got.events_path if got.analysis is not None else None,
         got.confounds_path if got.analysis is not None else None,
-        underlay,
+        backdrop,
         layer,
         warnings,
         got,

@@ -49,7 +49,7 @@ from voxelscope.gui.colours import stylesheet
 from voxelscope.gui.export import install as install_export
 from voxelscope.gui.findings import FindingsPanel
 from voxelscope.gui.fits import FitsPanel
-from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_bundle, load_map, load_underlay
+from voxelscope.gui.loading import RunBundle, check_nifti_kind, load_backdrop, load_bundle, load_map
 from voxelscope.gui.map_panel import MapPanel
 from voxelscope.gui.mapjobs import LiveMap
 from voxelscope.gui.marks_panel import install as install_marks
@@ -445,13 +445,13 @@ class MainWindow(QMainWindow):
         )
         return True
 
-    def ask_underlay(self) -> None:
+    def ask_anatomy(self) -> None:
         if self.state.run is None:
             self.show_error("Open a run first (File > Open run).")
             return
-        path, _ = QFileDialog.getOpenFileName(self, "Open underlay", self._last_dir(), NIFTI_FILTER)
+        path, _ = QFileDialog.getOpenFileName(self, "Open anatomy", self._last_dir(), NIFTI_FILTER)
         if path:
-            self.open_underlay(path)
+            self.open_anatomy(path)
 
     def ask_atlas(self) -> None:
         if self.state.run is None:
@@ -508,7 +508,7 @@ class MainWindow(QMainWindow):
         path,
         events=None,
         confounds=None,
-        anat=None,
+        anatomy=None,
         stat_map=None,
         tr=None,
         voxel=None,
@@ -533,7 +533,7 @@ class MainWindow(QMainWindow):
             run_path=str(path),
             events=events,
             confounds=confounds,
-            anat=anat,
+            anatomy=anatomy,
             stat_map=stat_map,
             tr=tr,
             mask=mask,
@@ -617,14 +617,14 @@ class MainWindow(QMainWindow):
         )
         return True
 
-    def open_underlay(self, path) -> bool:
+    def open_anatomy(self, path) -> bool:
         warnings: list[str] = []
         try:
-            layer = load_underlay(path, self.state.run, warnings)
+            layer = load_backdrop(path, self.state.run, warnings)
         except VoxelscopeError as err:
             self.show_error(str(err))
             return False
-        self.state.set_underlay(layer)
+        self.state.set_backdrop(layer)
         for w in warnings:
             self._note(w)
         return True
@@ -715,7 +715,7 @@ class MainWindow(QMainWindow):
         run = self.state.run
         has = run is not None
         self.stack.setCurrentIndex(1 if has else 0)
-        for act in (self.events_action, self.underlay_action, self.atlas_action, self.map_action):
+        for act in (self.events_action, self.anatomy_action, self.atlas_action, self.map_action):
             act.setEnabled(has)
         if has:
             name = Path(run.path).name

@@ -177,7 +177,7 @@ class MapPanel(QWidget):
         self.opacity = QSlider(Qt.Orientation.Horizontal)
         self.opacity.setRange(0, 100)
         self.opacity.setMinimumWidth(60)
-        self.opacity.setToolTip("How much of the underlay shows through the map")
+        self.opacity.setToolTip("How much of the image below shows through the map")
         self.opacity.valueChanged.connect(
             lambda v: self.state.set_map_settings(opacity=float(v) / 100.0)
         )

@@ -34,9 +34,9 @@ def build_menus(window) -> None:
     window.confounds_action = QAction("Open &confounds…", window)
     window.confounds_action.triggered.connect(window.ask_confounds)
     m.addAction(window.confounds_action)
-    window.underlay_action = QAction("Open &underlay…", window)
-    window.underlay_action.triggered.connect(window.ask_underlay)
-    m.addAction(window.underlay_action)
+    window.anatomy_action = QAction("Open &anatomy…", window)
+    window.anatomy_action.triggered.connect(window.ask_anatomy)
+    m.addAction(window.anatomy_action)
     window.atlas_action = QAction("Open a&tlas…", window)
     window.atlas_action.setToolTip(
         "A segmentation image (BIDS dseg) with its dseg.tsv: region names at the cursor"

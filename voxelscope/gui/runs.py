@@ -101,7 +101,7 @@ def open_runs(window, paths, background: bool = True, **first) -> bool:
     given on the command line): the first as File ▸ Open run does, then the others added.
 
     ``first`` holds further :meth:`MainWindow.open_run` arguments for the first run
-    (voxel, mm, anat, ...). Returns False when the first run could not be opened.
+    (voxel, mm, anatomy, ...). Returns False when the first run could not be opened.
     """
     paths = [str(p) for p in paths]
     if not paths:

@@ -60,7 +60,7 @@ __all__ = [
 
 SESSION_FILTER = f"voxelscope sessions (*{SESSION_SUFFIX});;JSON (*.json);;All files (*)"
 #: Roles of input files in a session (core names) and the ``open_run`` argument for each.
-ROLES = {"run": "run", "events": "events", "confounds": "confounds", "anatomy": "anat",
+ROLES = {"run": "run", "events": "events", "confounds": "confounds", "anatomy": "anatomy",
          "overlay": "stat_map", "atlas": "atlas", "atlas labels": "atlas_labels"}  # fmt: skip
 LAYOUT_KIND = "qt-main-window"
 
@@ -126,8 +126,8 @@ def collect_session(window) -> Session:
         sidecar = getattr(bundle.run, "sidecar", None)
         if sidecar is not None and sidecar.is_file():
             files["sidecar"] = sidecar
-        if bundle.underlay is not None and bundle.underlay.path is not None:
-            files["anatomy"] = Path(bundle.underlay.path)
+        if bundle.backdrop is not None and bundle.backdrop.path is not None:
+            files["anatomy"] = Path(bundle.backdrop.path)
         atlas = getattr(bundle, "atlas", None)
         if atlas is not None and atlas.path is not None:
             files["atlas"] = Path(atlas.path)
@@ -325,7 +325,7 @@ def apply_session(
         str(files["run"]),
         events=kwargs.get("events"),
         confounds=kwargs.get("confounds"),
-        anat=kwargs.get("anat"),
+        anatomy=kwargs.get("anatomy"),
         stat_map=kwargs.get("stat_map"),
         tr=tr,
         voxel=s.voxel,

@@ -1,9 +1,9 @@
 """Slices: three orthogonal views through the current voxel, and the Map colour bar.
 
 Each view shows one plane of the R-A-S display layout (:mod:`voxelscope.gui.orient`): the
-underlay in grey, the thresholded statistic map on top, a crosshair at the current voxel
-and the orientation letters at the edges. Pixels have the voxel's size in mm, so the
-aspect ratio is true.
+backdrop in grey (the anatomy or the run's mean image), the thresholded map on top, a
+crosshair at the current voxel and the orientation letters at the edges. Pixels have the
+voxel's size in mm, so the aspect ratio is true.
 
 Mouse: left click or drag selects a voxel; the wheel steps through slices; Ctrl + wheel
 zooms about the pointer; right or middle drag pans; double click resets the view.
@@ -189,9 +189,9 @@ class SliceView(pg.GraphicsView):
         self.box.dragging.connect(state.set_dragging)
         self._under_vol: np.ndarray | None = None
         self._under_factor = 1
-        self._under_affine: np.ndarray | None = None  # display index -> mm, own-grid underlay
+        self._under_affine: np.ndarray | None = None  # display index -> mm, own-grid backdrop
         self._run_from_world = np.eye(4)
-        # an underlay tilted against the run: resampled in the run's planes (data, affine)
+        # a backdrop tilted against the run: resampled in the run's planes (data, affine)
         self._tilted: tuple[np.ndarray, np.ndarray] | None = None
         self._map_vol: np.ndarray | None = None
         self._shown_under: int | None = None
@@ -199,7 +199,7 @@ class SliceView(pg.GraphicsView):
         self._sizes = (1.0, 1.0)
         self._lut = None
         state.run_changed.connect(self._on_run)
-        state.underlay_changed.connect(self._on_underlay)
+        state.backdrop_changed.connect(self._on_backdrop)
         state.map_changed.connect(self._on_map)
         state.voxel_changed.connect(self._on_voxel)
 
@@ -274,8 +274,8 @@ class SliceView(pg.GraphicsView):
         self._map_vol = None
         self.reset_view()
 
-    def _on_underlay(self) -> None:
-        grid, layer = self.state.grid, self.state.underlay
+    def _on_backdrop(self) -> None:
+        grid, layer = self.state.grid, self.state.backdrop
         if grid is None or layer is None:
             return
         if layer.affine is not None:  # on its own grid: reoriented to the display axes
@@ -309,12 +309,12 @@ class SliceView(pg.GraphicsView):
         self._update_slices(force=True)
 
     def tilted_plane(self, k: int) -> tuple[np.ndarray, QRectF]:
-        """An underlay tilted against the run, sampled in the run's display plane ``k``.
+        """A backdrop tilted against the run, sampled in the run's display plane ``k``.
 
         Its own planes cut the run's at an angle, so no plane of it is the one shown: the
         plane is sampled (trilinear, through the two affines) on a grid as fine as the
-        underlay's smallest voxel over the run's field of view; outside the underlay it is
-        the underlay's lowest level. Returns the image and its rectangle in the view.
+        backdrop's smallest voxel over the run's field of view; outside the backdrop it is
+        the backdrop's lowest level. Returns the image and its rectangle in the view.
         """
         from scipy.ndimage import map_coordinates
 
@@ -332,14 +332,14 @@ class SliceView(pg.GraphicsView):
         idx[self.h_axis], idx[self.v_axis] = np.meshgrid(h, v, indexing="ij")
         idx[self.n_axis], idx[3] = float(k), 1.0
         own = np.linalg.inv(affine) @ grid.display_affine() @ idx.reshape(4, -1)
-        low = float(self.state.underlay.levels[0])
+        low = float(self.state.backdrop.levels[0])
         plane = map_coordinates(data, own[:3], order=1, mode="constant", cval=low)
         return plane.reshape(m_h, m_v).astype(np.float32), QRectF(0, 0, n_h * sh, n_v * sv)
 
-    def underlay_plane_transform(self, k: int) -> QTransform:
-        """Image pixel -> view coordinates for plane ``k`` of an underlay on its own grid.
+    def backdrop_plane_transform(self, k: int) -> QTransform:
+        """Image pixel -> view coordinates for plane ``k`` of a backdrop on its own grid.
 
-        Pixel ``(p, q)`` of the plane covers the underlay display voxel ``(p, q, k)``
+        Pixel ``(p, q)`` of the plane covers the backdrop display voxel ``(p, q, k)``
         (centre at ``p + 0.5``); its world position, through the run's display affine,
         gives the view position (``(d + 0.5) * voxel size`` along each axis, as the
         overlay and the crosshair). Three points fix the affine map.
@@ -394,7 +394,7 @@ class SliceView(pg.GraphicsView):
                 self.under.setVisible(True)
                 self._shown_under = k
         elif self._under_vol is not None and self._under_affine is not None:
-            # the underlay's own plane nearest to the current voxel's centre
+            # the backdrop's own plane nearest to the current voxel's centre
             world = grid.display_affine() @ np.array([*d, 1.0], dtype=float)
             u = np.linalg.inv(self._under_affine) @ world
             ku = int(np.floor(u[self.n_axis] + 0.5))
@@ -402,7 +402,7 @@ class SliceView(pg.GraphicsView):
                 inside = 0 <= ku < self._under_vol.shape[self.n_axis]
                 if inside:
                     self.under.setImage(self._slice(self._under_vol, ku), autoLevels=False)
-                    self.under.setTransform(self.underlay_plane_transform(ku))
+                    self.under.setTransform(self.backdrop_plane_transform(ku))
                 self.under.setVisible(inside)
                 self._shown_under = ku
         elif self._under_vol is not None and (force or self._shown_under != k):
@@ -649,7 +649,7 @@ class SlicesPanel(QWidget):
         outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
         state.map_changed.connect(self._refresh)
-        state.underlay_changed.connect(self._refresh)
+        state.backdrop_changed.connect(self._refresh)
         state.atlas_changed.connect(self._refresh)
 
     def reset_views(self) -> None:
@@ -674,10 +674,10 @@ class SlicesPanel(QWidget):
             (0, f"<b>World</b> {format_xyz((x, y, z))} mm"),
             (4, f"<b>Mean</b> {fmt('value', run.mean_image()[i, j, k])}"),
         ]
-        under = self.state.underlay
+        under = self.state.backdrop
         if under is not None and under.path is not None:
             value = fmt("value", under.value_at((x, y, z), voxel))
-            parts.append((5, f"<b>Underlay</b> {value}"))
+            parts.append((5, f"<b>Anatomy</b> {value}"))
         layer = self.state.stat_map
         if layer is not None:
             kind = stat_kind(self.state.map_settings.stat)

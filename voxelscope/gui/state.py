@@ -149,7 +149,7 @@ class _MarksStep(QUndoCommand):
 
 @dataclass(frozen=True)
 class MapSettings:
-    """How the statistic map is drawn over the underlay.
+    """How the map is drawn over the backdrop.
 
     Attributes
     ----------
@@ -247,7 +247,7 @@ class ViewerState(QObject):
     """
 
     run_changed = Signal()
-    underlay_changed = Signal()
+    backdrop_changed = Signal()
     atlas_changed = Signal()
     map_changed = Signal()
     file_layer_changed = Signal()
@@ -305,8 +305,8 @@ class ViewerState(QObject):
         return None if self.bundle is None else self.bundle.analysis
 
     @property
-    def underlay(self) -> Layer | None:
-        return None if self.bundle is None else self.bundle.underlay
+    def backdrop(self) -> Layer | None:
+        return None if self.bundle is None else self.bundle.backdrop
 
     @property
     def stat_map(self) -> Layer | None:
@@ -359,7 +359,7 @@ class ViewerState(QObject):
         self.history.clear()  # the old steps name another run's model
         self.run_changed.emit()
         self.runs_changed.emit()
-        self.underlay_changed.emit()
+        self.backdrop_changed.emit()
         self.file_layer_changed.emit()
         self.map_changed.emit()
         self.settings_changed.emit(self.settings)
@@ -369,11 +369,11 @@ class ViewerState(QObject):
         for w in bundle.warnings:
             self.message.emit(w)
 
-    def set_underlay(self, layer: Layer) -> None:
+    def set_backdrop(self, layer: Layer) -> None:
         if self.bundle is None:
             return
-        self.bundle.underlay = layer
-        self.underlay_changed.emit()
+        self.bundle.backdrop = layer
+        self.backdrop_changed.emit()
 
     @property
     def atlas(self):
