@@ -243,7 +243,7 @@ def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(
     qtbot.waitUntil(lambda: checks.calls > calls, timeout=5000)  # let go: checked now
 
 
-def test_underlay_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_run, tmp_path):
+def test_anatomy_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_run, tmp_path):
     """Issue 17 item 11: a finer anatomy on another grid (x flipped, 1 x 1 x 0.5 mm) is drawn
     plane by plane at its own resolution; the centre of the anatomy voxel at a run voxel's
     centre (nibabel.affines.apply_affine) lies under the crosshair (the overlay's grid)."""
