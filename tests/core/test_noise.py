@@ -147,11 +147,63 @@ def test_one_pass_residual_autocovariances_equal_explicit_ones():
         np.testing.assert_allclose(M @ s.v[:, v], ref, rtol=1e-9, atol=1e-9 * ref[0])
 
 
+def test_one_pass_lagged_sums_equal_dense_products_with_a_confound():
+    """The sums Xs' S_d y of the stacked product: the cosine drift columns and the constant
+    are closed under the symmetric shifts away from the ends (cos(w(t-d)) + cos(w(t+d)) =
+    2 cos(wd) cos(wt), a trigonometric identity), so they come from Xs'y and the first and
+    last samples; the task and confound columns from their own shifted rows. Both equal
+    the products with dense shift matrices (numpy, np.eye(n, k=d))."""
+    from voxelscope.core.confounds import Confounds
+    from voxelscope.core.noise import _design_lags
+
+    rng = np.random.default_rng(8)
+    a = _analysis()
+    conf = Confounds(("motion_x",), rng.standard_normal((T, 1)))
+    a = Analysis(a.conditions, T, TR, confounds=conf)
+    d = a.design(KERNEL, ModelSettings(confound_columns=("motion_x",)))
+    prep = glm.prepare(d.X)
+    _a, _d, Y = _one_pass_case(n_vox=30)
+    s = glm.arp_block_sums(prep, Y, 3)
+    D = _design_lags(prep, 3)
+    names = np.array(d.names)
+    assert "motion_x" in names and "tone" in names
+    assert {n for n in names[D["closed"]]} == {n for n in names if n.startswith("drift")} | {
+        "constant"
+    }
+    Yc = glm.working_copy(prep, Y)[0]
+    Xs = d.X / np.linalg.norm(d.X, axis=0)
+    for k in range(4):
+        S = np.eye(T) if k == 0 else np.eye(T, k=k) + np.eye(T, k=-k)
+        np.testing.assert_allclose(s.H[k], Xs.T @ S @ Yc, rtol=1e-12, atol=1e-12 * abs(Yc).max())
+
+
+def test_implied_autocovariances_equal_the_full_sequence():
+    """_implied stops each voxel's AR autocorrelation sequence where it has decayed below
+    1e-13: F @ g equals the product with the whole sequence of statsmodels' arma_acf, for
+    voxels that decay at very different speeds computed together."""
+    from voxelscope.core.noise import _implied, _stationary_rho
+
+    n = 200
+    X = np.column_stack([np.ones(n), np.linspace(-1, 1, n)])
+    F = full_bias_matrix(X, 2)
+    phi = np.array([[0.01, 0.5, 1.6, -0.3, 0.9], [0.0, 0.2, -0.8, 0.1, 0.05]])
+    rho = _stationary_rho(phi, np.zeros_like(phi))
+    got = _implied(phi, rho, F)
+    for v in range(phi.shape[1]):
+        g = arma_acf(np.r_[1, -phi[:, v]], [1], n)
+        np.testing.assert_allclose(got[:, v], F @ g, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("piece", [2048, 7])
 @pytest.mark.parametrize("order", [1, 2, 3])
-def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order):
-    """fit_sums (the map's path: batched Cholesky over > 64 voxels, no data) and fit
-    (with the data) both equal statsmodels GLS with sigma = the Toeplitz AR(p) correlation
-    (arma_acf) of each voxel's own coefficients, at every sampled voxel."""
+def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order, piece, monkeypatch):
+    """fit_sums (the map's path: batched Cholesky over > 64 voxels, no data; in pieces of
+    7 voxels, the last one shorter, as well as in one piece) and fit (with the data) both
+    equal statsmodels GLS with sigma = the Toeplitz AR(p) correlation (arma_acf) of each
+    voxel's own coefficients, at every sampled voxel."""
+    from voxelscope.core import noise
+
+    monkeypatch.setattr(noise, "SOLVE_PIECE", piece)
     sm = pytest.importorskip("statsmodels.api")
     a, d, Y = _one_pass_case(n_vox=100, seed=order)
     w = a.contrast_weights(KERNEL, ModelSettings())

@@ -376,6 +376,59 @@ def _coldot(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     return np.einsum("iv,iv->v", a, b)
 
 
+#: A design column counts as closed under the lag-d shifts when the interior rows of
+#: ``S_d x`` are a combination of the design's columns to within this (relative to the
+#: column's largest value; the identity holds to rounding for the discrete cosine drift
+#: columns and the constant).
+SHIFT_CLOSED_TOL = 1e-13
+
+
+def _shift_closed(Xs: np.ndarray, P: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Columns of ``Xs`` whose symmetric shifts ``S_d x`` (d = 1..P) are, away from the
+    first and last P rows, combinations of the columns themselves.
+
+    For such a column ``S_d x = Xs a_d + e_d`` with ``e_d`` zero except in the first and
+    last P rows, so ``x' S_d y = a_d' (Xs' y) + e_d' y`` needs only ``Xs' y`` and the first
+    and last P samples: no product of the shifted column with the data. This holds for
+    the discrete cosine drift columns (``cos(w (t - d)) + cos(w (t + d)) = 2 cos(w d)
+    cos(w t)``, a trigonometric identity) and the constant; other columns (the task
+    regressors, confounds) are not closed.
+
+    Returns ``(closed, A, E)``: the closed columns' indices (c,), ``A`` (P, c, q) with
+    rows ``a_d'`` and ``E`` (P, c, 2P) with ``e_d`` at the first and last P rows.
+
+    >>> t = np.arange(40)
+    >>> task = np.random.default_rng(0).standard_normal(40)
+    >>> Xs = np.column_stack([np.ones(40), np.cos(np.pi * (2 * t + 1) / 80), task])
+    >>> Xs = Xs / np.linalg.norm(Xs, axis=0)
+    >>> closed, A, E = _shift_closed(Xs, 2)
+    >>> closed.tolist(), A.shape, E.shape
+    ([0, 1], (2, 2, 3), (2, 2, 4))
+    """
+    n, q = Xs.shape
+    none = (np.zeros(0, dtype=np.int64), np.zeros((P, 0, q)), np.zeros((P, 0, 2 * P)))
+    if P < 1 or n - 2 * P < 2 * q:
+        return none
+    inner = slice(P, n - P)
+    pinv = np.linalg.pinv(Xs[inner])
+    ends = np.r_[0:P, n - P : n]
+    coefs, resid = [], []
+    for d in range(1, P + 1):
+        S = _sym(Xs, d)
+        a = pinv @ S[inner]  # (q, q): column k's combination
+        e = S - Xs @ a
+        scale = np.maximum(np.abs(S).max(axis=0), 1e-300)
+        coefs.append(a)
+        resid.append((e, np.abs(e[inner]).max(axis=0) <= SHIFT_CLOSED_TOL * scale))
+    ok = np.logical_and.reduce([r[1] for r in resid])
+    closed = np.flatnonzero(ok)
+    if closed.size == 0:
+        return none
+    A = np.stack([a[:, closed].T for a in coefs])
+    E = np.stack([e[ends][:, closed].T for e, _ in resid])
+    return closed, A, E
+
+
 def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
     """Design-only pieces of the one-pass sums, memoised on the prepared design."""
     key = ("_ar_lags", lags)
@@ -388,17 +441,26 @@ def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
     q, _r = np.linalg.qr(X)
     r_inv = np.linalg.solve(_r, np.eye(_r.shape[0]))
     P = lags
-    # row block d of the stack is (S_d Xs)': its product with y is Xs' S_d y
-    stack = np.concatenate([_sym(Xs, d).T for d in range(P + 1)], axis=0)
+    closed, shift_a, shift_e = _shift_closed(Xs, P)
+    open_ = np.setdiff1d(np.arange(Xs.shape[1]), closed)
+    # the stack's first q rows are Xs'; then, for d = 1..P, (S_d Xs)' of the columns that
+    # are not closed under shifts (the others follow from Xs'y and the first and last P
+    # samples, see _shift_closed): its product with y gives every Xs' S_d y
+    stack = np.concatenate([Xs.T] + [_sym(Xs, d)[:, open_].T for d in range(1, P + 1)])
     K = np.stack([Xs.T @ _sym(Xs, d) for d in range(P + 1)])  # Xs' S_d Xs
     QLQ = np.stack([q.T @ _lag(q, j) for j in range(P + 1)])  # Q' L_j Q
     got = {
         "norms": norms,
         "Xs": Xs,
         "stack": np.ascontiguousarray(stack),
+        "open": open_,
+        "closed": closed,
+        "shift_a": shift_a,
+        "shift_e": shift_e,
         "K": K,
         "QT": r_inv.T * norms[None, :],  # Q' S_d y = QT @ H_d
         "QLQ": QLQ,
+        "QLQ_stack": np.ascontiguousarray(QLQ[1:].reshape(-1, QLQ.shape[2])),
     }
     prep.memo[key] = got
     return got
@@ -424,22 +486,33 @@ def arp_sums(
         raise InputError(f"{n} volumes are too few for an AR({P}) noise model")
     D = _design_lags(prep, P)
     q = D["Xs"].shape[1]
-    H = (D["stack"] @ Y).reshape(P + 1, q, V)
+    prod = D["stack"] @ Y
+    H = np.empty((P + 1, q, V))
+    H[0] = prod[:q]
+    head = np.array(Y[:P])
+    tail = np.array(Y[n - P :])
+    op, closed = D["open"], D["closed"]
+    if op.size:
+        H[1:, op] = prod[q:].reshape(P, op.size, V)
+    if closed.size:
+        ends = np.concatenate([head, tail])
+        for d in range(1, P + 1):
+            H[d, closed] = D["shift_a"][d - 1] @ H[0] + D["shift_e"][d - 1] @ ends
     acy = np.empty((P + 1, V))
     acy[0] = tss
     for d in range(1, P + 1):
         acy[d] = np.einsum("ij,ij->j", Y[d:], Y[: n - d])
-    head = np.array(Y[:P])
-    tail = np.array(Y[n - P :])
     bad = np.zeros(V, dtype=bool) if bad is None else np.asarray(bad, dtype=bool)
     # step 2: residual autocovariances r' L_j r from the sums
     L = max(P, BIAS_LAGS)
     QT = D["QT"]
     u = QT @ H[0]  # Q'y
+    w = QT.T @ u  # u'Q'S_j y = w'H_j
+    quad = (D["QLQ_stack"] @ u).reshape(L, -1, V)  # Q'L_j Q u, j = 1..L
     a = np.empty((L + 1, V))
-    for j in range(L + 1):
-        both = QT @ H[j] if j else 2.0 * u  # Q'L_j y + Q'L_j' y
-        a[j] = acy[j] - _coldot(u, both) + _coldot(u, D["QLQ"][j] @ u)
+    a[0] = acy[0] - _coldot(u, u)  # Q'Q = I
+    for j in range(1, L + 1):
+        a[j] = acy[j] - _coldot(w, H[j]) + _coldot(u, quad[j - 1])
     close = np.flatnonzero(~(a[0] > RSS_GUARD * tss))
     if close.size:  # near-exact fits and constant voxels: explicit residuals
         Yc = Y[:, close]
@@ -481,41 +554,74 @@ def _boundary(C: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return top, bot
 
 
+def _bordered_cholesky(A: np.ndarray, tmp: np.ndarray | None = None) -> np.ndarray:
+    """Cholesky factor of a batch of symmetric positive definite matrices, with forward
+    substitution of right-hand sides on the way, in place, voxels last.
+
+    ``A`` (q, q + m, V) holds column ``j`` of each matrix in ``A[j, :q]`` (only rows
+    ``j..q-1`` are read: the lower triangle) and the ``m`` right-hand sides ``b_r`` in
+    ``A[j, q + r] = b_r[j]``. Afterwards ``A[j, j:q]`` is column ``j`` of the lower
+    factor ``L`` (``L L' = G``) and ``A[:, q + r]`` is ``L^-1 b_r``: the right-hand sides
+    are extra rows of the matrix (a bordered Cholesky), so one left-looking loop over the
+    q columns does both. Every step is an elementwise operation over the voxels (NaN where
+    a matrix is not positive definite). ``tmp`` (at least (q + m, V)) is scratch space.
+
+    >>> A = np.array([[4.0, 2.0, 2.0], [0.0, 3.0, 1.0]])[:, :, None]  # G = [[4, 2], [2, 3]]
+    >>> _bordered_cholesky(A)[:, :, 0].round(6).tolist()  # L = [[2, 0], [1, sqrt 2]]
+    [[2.0, 1.0, 1.0], [0.0, 1.414214, 0.0]]
+    """
+    q, width, V = A.shape
+    if tmp is None:
+        tmp = np.empty((width, V))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for j in range(q):
+            col = A[j, j:]
+            for k in range(j):
+                col -= np.multiply(A[k, j:], A[k, j], out=tmp[: width - j])
+            np.sqrt(col[0], out=col[0])
+            col[1:] /= col[0]
+    return A
+
+
+def _back_substitute(A: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """``x = L'^-1 z`` for the factors of :func:`_bordered_cholesky` (``A``) and ``z``
+    (q, V) or (q, m, V)."""
+    q = A.shape[0]
+    x = np.empty(z.shape)
+    many = z.ndim == 3
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for i in range(q - 1, -1, -1):
+            if i == q - 1:
+                x[i] = z[i] / A[i, i]
+                continue
+            if many:
+                acc = z[i] - np.einsum("kv,kmv->mv", A[i, i + 1 : q], x[i + 1 :])
+            else:
+                acc = z[i] - np.einsum("kv,kv->v", A[i, i + 1 : q], x[i + 1 :])
+            x[i] = acc / A[i, i]
+    return x
+
+
 def _spd_solve(G: np.ndarray, rhs: np.ndarray) -> np.ndarray:
     """Solve ``G x = rhs`` for a batch of symmetric positive definite matrices laid out
-    voxels last: ``G`` (q, q, V), ``rhs`` (q, m, V) -> (q, m, V). Cholesky, column by
-    column, each step an elementwise operation over the voxels (NaN where a matrix is not
-    positive definite). Only the lower triangle of ``G`` is read. Fastest for a few
-    thousand voxels at a time (the working set stays in cache): see :data:`SOLVE_PIECE`.
+    voxels last: ``G`` (q, q, V), ``rhs`` (q, m, V) -> (q, m, V), by
+    :func:`_bordered_cholesky` and back substitution (NaN where a matrix is not positive
+    definite). Only the lower triangle of ``G`` is read.
 
     >>> G = np.array([[4.0, 2.0], [2.0, 3.0]])[:, :, None]
     >>> _spd_solve(G, np.array([[2.0], [1.0]])[:, :, None])[:, 0, 0].round(6).tolist()
     [0.5, 0.0]
     """
-    q = G.shape[0]
-    L = np.empty_like(G)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        for j in range(q):
-            Lj = L[j, :j]
-            d = G[j, j] - np.einsum("kv,kv->v", Lj, Lj) if j else G[0, 0]
-            L[j, j] = np.sqrt(d)
-            if j + 1 < q:
-                off = G[j + 1 :, j] - np.einsum("ikv,kv->iv", L[j + 1 :, :j], Lj)
-                off /= L[j, j]
-                L[j + 1 :, j] = off
-        u = np.empty(rhs.shape)
-        for i in range(q):  # L u = rhs
-            acc = rhs[i] - np.einsum("kv,kmv->mv", L[i, :i], u[:i]) if i else rhs[i]
-            u[i] = acc / L[i, i]
-        x = np.empty(rhs.shape)
-        for i in range(q - 1, -1, -1):  # L' x = u
-            acc = u[i] - np.einsum("kv,kmv->mv", L[i + 1 :, i], x[i + 1 :]) if i < q - 1 else u[i]
-            x[i] = acc / L[i, i]
-    return x
+    q, m, V = rhs.shape
+    A = np.empty((q, q + m, V))
+    A[:, :q] = np.swapaxes(G, 0, 1)  # A[j, i] = G[i, j]
+    A[:, q:] = rhs
+    _bordered_cholesky(A)
+    return _back_substitute(A, A[:, q:])
 
 
-#: Voxels per batched solve (the (q, q, V) working set of a few thousand voxels stays in
-#: the processor's cache; measured 3x faster than 8192 at a time for q = 12).
+#: Voxels per batched solve (the (q, q + 2, V) working set of a few thousand voxels
+#: stays in the processor's cache).
 SOLVE_PIECE = 2048
 
 
@@ -571,23 +677,43 @@ def arp_solve(
     cs = c / norms
     Bs = np.empty((q, V))
     cvar = np.empty(V)
+    zz = np.empty(V)
     cov = np.empty((V, q, q)) if want_cov else None
-    for a in range(0, V, SOLVE_PIECE):
-        sl = slice(a, min(V, a + SOLVE_PIECE))
-        G = (basis @ coef[:, sl]).reshape(q, q, -1)
-        if want_cov:
+    if want_cov:
+        for a in range(0, V, SOLVE_PIECE):
+            sl = slice(a, min(V, a + SOLVE_PIECE))
+            G = (basis @ coef[:, sl]).reshape(q, q, -1)
             Ginv = np.linalg.inv(np.moveaxis(G, 2, 0))
             Bs[:, sl] = np.einsum("vij,jv->iv", Ginv, gv[:, sl])
             cov[sl] = Ginv / np.outer(norms, norms)
             cvar[sl] = np.einsum("i,vij,j->v", c, cov[sl], c)
-        else:  # one batched Cholesky solve for the betas and c' G^-1 c
-            rhs = np.empty((q, 2, G.shape[2]))
-            rhs[:, 0] = gv[:, sl]
-            rhs[:, 1] = cs[:, None]
-            x = _spd_solve(G, rhs)
-            Bs[:, sl] = x[:, 0]
-            cvar[sl] = cs @ x[:, 1]
-    rss_w = yy - np.einsum("iv,iv->v", gv, Bs)
+            zz[sl] = np.einsum("iv,iv->v", gv[:, sl], Bs[:, sl])
+    else:  # one bordered Cholesky per voxel: its factor, L^-1 X*'y* and L^-1 c at once
+        columns = D.get(("columns", p))
+        if columns is None:
+            columns = D[("columns", p)] = _gram_columns(basis, q)
+        w = min(V, SOLVE_PIECE)
+        A = np.empty((q, q + 2, w))
+        tmp = np.empty((q + 2, w))
+        for a in range(0, V, SOLVE_PIECE):
+            b = min(V, a + SOLVE_PIECE)
+            sl = slice(a, b)
+            if b - a < w:  # the last, shorter piece
+                w = b - a
+                A = np.empty((q, q + 2, w))
+                tmp = np.empty((q + 2, w))
+            part = coef[:, sl]
+            for j in range(q):
+                np.matmul(columns[j], part, out=A[j, j:q])
+            A[:, q] = gv[:, sl]
+            A[:, q + 1] = cs[:, None]
+            _bordered_cholesky(A, tmp)
+            z = A[:, q]
+            u = A[:, q + 1]
+            Bs[:, sl] = _back_substitute(A, z)
+            cvar[sl] = np.einsum("iv,iv->v", u, u)  # c' G^-1 c = |L^-1 c|^2
+            zz[sl] = np.einsum("iv,iv->v", z, z)  # y*'X* G^-1 X*'y* = |L^-1 X*'y*|^2
+    rss_w = yy - zz
     B = Bs / norms[:, None]
     close = np.flatnonzero(~(rss_w > RSS_GUARD * yy))
     if close.size and series is not None:
@@ -595,6 +721,12 @@ def arp_solve(
         Rwc = whiten(C[close], Rc)
         rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
     return B, cov, cvar, rss_w, C
+
+
+def _gram_columns(basis: np.ndarray, q: int) -> list[np.ndarray]:
+    """Rows of ``basis`` (:func:`_normal_basis`) that give column ``j`` of ``X*'X*`` from
+    its diagonal down (rows ``j..q-1``): the lower triangle, q (q + 1) / 2 entries."""
+    return [np.ascontiguousarray(basis[np.arange(j, q) * q + j]) for j in range(q)]
 
 
 def _normal_basis(D: dict, p: int) -> tuple[np.ndarray, np.ndarray]:
@@ -826,24 +958,8 @@ def _sym_diagonals(A: np.ndarray, n: int | None = None) -> np.ndarray:
     return out
 
 
-def _ar_acf(phi: np.ndarray, rho: np.ndarray, n: int, tol: float = 1e-13) -> np.ndarray:
-    """Autocorrelations at lags 0..K-1 (K, V) of AR(p) processes ``phi`` (p, V) whose first
-    p autocorrelations are ``rho`` (p, V) (the Yule-Walker extension), with ``K <= n`` the
-    first lag after which p consecutive values are all below ``tol`` (the rest is 0)."""
-    p, V = phi.shape
-    g = np.zeros((n, V))
-    g[0] = 1.0
-    g[1 : p + 1] = rho[: min(p, n - 1)]
-    small = 0
-    for k in range(p + 1, n):
-        acc = phi[0] * g[k - 1]
-        for i in range(1, p):
-            acc = acc + phi[i] * g[k - 1 - i]
-        g[k] = acc
-        small = small + 1 if np.max(np.abs(acc)) < tol else 0
-        if small >= p:
-            return g[: k + 1]
-    return g
+#: Lags of the AR autocorrelation sequence computed between two convergence checks.
+_SEGMENT = 16
 
 
 def _implied(
@@ -852,26 +968,67 @@ def _implied(
     F: np.ndarray,
     tol: float = 1e-13,
     buf: np.ndarray | None = None,
+    segment: int | None = None,
 ) -> np.ndarray:
     """``F @ g`` (L + 1, V) for the autocorrelations ``g_0..g_{n-1}`` of AR(p) processes
     ``phi`` (p, V) whose first p autocorrelations are ``rho`` (p, V) (the Yule-Walker
-    extension). The sequence stops (the rest counts as 0) at the first multiple of 8 lags
-    where its last p values are below ``tol`` in magnitude for every voxel. ``buf`` (at
-    least (n, V)) is reused across calls: fresh pages cost more than the arithmetic."""
+    extension). Each voxel's sequence stops (the rest counts as 0) at the end of the first
+    segment of ``segment`` lags where its own last p values are below ``tol`` in
+    magnitude, so a voxel's value does not depend on the others it is computed with, and
+    the recursion runs only as long as each voxel needs (the voxels still running are
+    gathered together after every segment). ``buf`` (at least (segment + p + 1) * V) is
+    reused across calls: fresh pages cost more than the arithmetic.
+
+    >>> F = np.ones((1, 50))
+    >>> round(float(_implied(np.array([[0.5]]), np.array([[0.5]]), F)[0, 0]), 12)  # sum of 0.5^k
+    2.0
+    """
+    segment = _SEGMENT if segment is None else int(segment)
     p, V = phi.shape
     n = F.shape[1]
-    g = np.empty((n, V)) if buf is None else buf.reshape(-1)[: n * V].reshape(n, V)
-    g[0] = 1.0
-    g[1 : p + 1] = rho[: min(p, n - 1)]
-    K = n
-    for k in range(p + 1, n):
-        np.multiply(phi[0], g[k - 1], out=g[k])
-        for i in range(1, p):
-            g[k] += phi[i] * g[k - 1 - i]
-        if k % 8 == 0 and np.max(np.abs(g[k - p + 1 : k + 1])) < tol:
-            K = k + 1
-            break
-    return F[:, :K] @ g[:K]
+    head = min(p + 1, n)
+    g0 = np.empty((head, V))
+    g0[0] = 1.0
+    g0[1:head] = rho[: head - 1]
+    out = F[:, :head] @ g0
+    if head >= n or V == 0:
+        return out
+    need = (segment + p + 1) * V
+    if buf is None or buf.size < need:
+        buf = np.empty(need)
+    active = None  # all voxels, in order, until some stop
+    ph = phi
+    width = V
+    rows = buf[: (segment + p) * width].reshape(segment + p, width)
+    rows[:p] = g0[head - p : head]
+    tmp = buf[(segment + p) * V : (segment + p + 1) * V]
+    k = head
+    while k < n and width:
+        m = min(segment, n - k)
+        t = tmp[:width]
+        for r in range(p, p + m):
+            np.multiply(ph[0], rows[r - 1], out=rows[r])
+            for i in range(1, p):
+                np.multiply(ph[i], rows[r - 1 - i], out=t)
+                rows[r] += t
+        part = F[:, k : k + m] @ rows[p : p + m]
+        if active is None:
+            out += part
+        else:
+            out[:, active] += part
+        k += m
+        going = np.max(np.abs(rows[m : m + p]), axis=0) >= tol
+        if going.all():
+            rows[:p] = rows[m : m + p]
+            continue
+        keep = np.flatnonzero(going)
+        last = rows[m : m + p][:, keep]
+        ph = ph[:, keep]
+        active = keep if active is None else active[keep]
+        width = keep.size
+        rows = buf[: (segment + p) * width].reshape(segment + p, width)
+        rows[:p] = last
+    return out
 
 
 def _step_down(phi: np.ndarray) -> tuple[list[np.ndarray], np.ndarray]:
@@ -915,7 +1072,7 @@ def ar_from_smoothed(
         prep.memo[key] = F
     valid = values[0] > 0
     Minv = _inverse(M)
-    buf = np.empty(F.shape[1] * min(chunk, values.shape[1]))
+    buf = np.empty((_SEGMENT + order + 1) * min(chunk, values.shape[1]))
     phi_all = np.zeros((order, values.shape[1]))
     rho_all = np.zeros((order, values.shape[1]))
     for a in range(0, values.shape[1], chunk):
@@ -924,7 +1081,7 @@ def ar_from_smoothed(
         rho = ro.copy()
         phi = ar_from_autocorr(rho, order)
         for _ in range(REFINE_STEPS):
-            rho = _ratio(_ar_acf(phi, _stationary_rho(phi, rho), lags + 1))[:order]
+            rho = _stationary_rho(phi, rho)  # the model's first p autocorrelations
             implied = _ratio(Minv @ _implied(phi, rho, F, buf=buf))[:order]
             rho = np.clip(rho + (ro - implied), -REFLECTION_LIMIT, REFLECTION_LIMIT)
             phi = ar_from_autocorr(rho, order)
