@@ -3,7 +3,8 @@
 Outside references: mpmath (arbitrary precision, 50 digits) for the regularised incomplete
 beta function that gives the t tail (``P(T <= -|t|) = I_{df/(df+t^2)}(df/2, 1/2) / 2``, a
 standard identity, Abramowitz & Stegun 26.7.1) and for the normal tail it is inverted
-through; scipy.stats.t for p at moderate t and for the one-sided tails.
+through; scipy.stats.t for p at moderate t and for the one-sided tails. A few values at a
+time take a path without scipy: checked against mpmath and against the scipy path.
 """
 
 from __future__ import annotations
@@ -15,9 +16,12 @@ from scipy import stats
 
 from voxelscope.core.errors import InputError
 from voxelscope.core.pvalues import (
+    FEW,
+    log_p_from_t,
     log_t_lower_tail,
     neglog10p_from_t,
     p_from_t,
+    two_sided_p,
     z_from_t,
 )
 
@@ -108,3 +112,76 @@ def test_shapes_are_kept():
     assert z_from_t(np.zeros((2, 3)), 5).shape == (2, 3)
     assert np.ndim(z_from_t(1.5, 5)) == 0
     assert neglog10p_from_t(np.ones(4), 5, "negative").shape == (4,)
+
+
+# ------------------------------------------- a few values without scipy (issue 18)
+
+
+def _few(fn, t: float, df: float, *args) -> float:
+    """One value: the math-module path (at most FEW values)."""
+    return float(fn(np.array([t]), df, *args)[0])
+
+
+def _many(fn, t: float, df: float, *args) -> float:
+    """The same value inside a batch of FEW + 1: the scipy.special path."""
+    return float(fn(np.full(FEW + 1, t), df, *args)[0])
+
+
+def test_few_values_match_mpmath():
+    """The math-module path (one voxel's fits) against mpmath at 50 digits: log tail,
+    two-sided log p (through the central part below |t| = 1) and z, over |t| 1e-9..1e3
+    and df 1..3e5 (large df is where subtracting two log-gammas would lose digits)."""
+    rng = np.random.default_rng(18)
+    n = 40
+    ts = 10.0 ** rng.uniform(-9, 3, n) * rng.choice([-1.0, 1.0], n)
+    dfs = np.round(10.0 ** rng.uniform(0.0, 5.5, n))
+    worst = 0.0
+    for t, df in zip(ts.tolist(), dfs.tolist()):
+        low = _mp_lower(t, df)
+        log_low = float(mp.log(low))
+        two = float(mp.log(2 * low))
+        worst = max(worst, abs(_few(log_t_lower_tail, t, df) - log_low) / abs(log_low))
+        if two != 0.0:
+            worst = max(worst, abs(_few(log_p_from_t, t, df, "two") - two) / abs(two))
+        assert _few(log_p_from_t, t, df, "two") == pytest.approx(two, rel=1e-11, abs=1e-300)
+        z = _few(z_from_t, t, df)
+        assert z == pytest.approx(_mp_z(t, df), rel=1e-11)
+    assert worst < 1e-11
+
+
+def test_few_values_two_sided_p_matches_scipy():
+    """scipy.stats.t.sf (reference library) at moderate df and t, one value at a time."""
+    for t in (-3.0, -1.0, -0.2, 1e-5, 0.7, 2.0, 5.5, 12.0):
+        for df in (3, 57, 191):
+            want = 2 * stats.t.sf(abs(t), df)
+            assert float(two_sided_p(np.array([t]), df)[0]) == pytest.approx(want, rel=1e-12)
+            assert _few(p_from_t, t, df, "positive") == pytest.approx(stats.t.sf(t, df), rel=1e-12)
+
+
+def test_few_and_many_values_agree():
+    """Both paths give the same numbers: to 1e-12 relative up to df 1000; beyond that
+    scipy.special.stdtr's own error grows (mpmath puts it near 4e-9 at df 2e5, the math
+    path within 1e-11, see above), so the bound there is 1e-8."""
+    rng = np.random.default_rng(5)
+    for t, df in zip(rng.normal(0, 6, 60).tolist(), np.round(10.0 ** rng.uniform(0, 5.3, 60))):
+        tol = 1e-12 if df <= 1000 else 1e-8
+        for fn in (log_t_lower_tail, z_from_t):
+            assert _few(fn, t, df) == pytest.approx(_many(fn, t, df), rel=tol)
+        for tail in ("two", "positive", "negative"):
+            a, b = _few(log_p_from_t, t, df, tail), _many(log_p_from_t, t, df, tail)
+            assert a == pytest.approx(b, rel=tol, abs=1e-300)
+        assert _few(two_sided_p, t, df) == pytest.approx(_many(two_sided_p, t, df), rel=tol)
+
+
+def test_few_values_at_the_edges():
+    t = np.array([0.0, -0.0, 1e-300, 1e-9, np.inf, -np.inf, np.nan, 1e150])
+    assert t.size <= FEW
+    z = z_from_t(t, 12)
+    assert z[0] == 0.0 and z[2] > 0.0 and np.isinf(z[4]) and z[5] == -np.inf and np.isnan(z[6])
+    assert np.isfinite(z[7]) and z[7] > 30
+    lp = log_p_from_t(t, 12, "two")
+    assert lp[0] == 0.0 and lp[4] == -np.inf and np.isnan(lp[6]) and np.isfinite(lp[7])
+    assert np.isnan(two_sided_p(np.array([1.0]), 0)).all()
+    # z of a tiny t: the slope f_T(0) / phi(0) (mpmath from the densities at 0)
+    slope = float(mp.npdf(0, 0, 1) ** -1 * mp.gamma(6.5) / (mp.sqrt(12 * mp.pi) * mp.gamma(6)))
+    assert float(z[3]) == pytest.approx(1e-9 * slope, rel=1e-12)

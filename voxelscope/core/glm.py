@@ -64,7 +64,7 @@ import numpy as np
 
 from .errors import InputError, ModelError
 from .numfmt import count
-from .pvalues import neglog10p_from_t, p_from_t, z_from_t
+from .pvalues import neglog10p_from_t, p_from_t, two_sided_p, z_from_t
 from .workcopy import RSS_GUARD, working_copy
 
 __all__ = [
@@ -1171,10 +1171,8 @@ def _finish(
     t = beta / np.sqrt(variance)
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     pval = None
-    if want_p:
-        from scipy import special  # imported where used: start-up stays short
-
-        pval = 2.0 * special.stdtr(df, -np.abs(t)) if df > 0 else np.full(v, np.nan)
+    if want_p:  # a few voxels (a click, a fit) without importing scipy.special
+        pval = two_sided_p(t, df)
     if degenerate.any():
         for a in (variance, t, pval):
             if a is not None:
