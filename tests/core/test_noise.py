@@ -36,6 +36,7 @@ from voxelscope.core.noise import (
     ar_from_autocorr,
     bias_matrix,
     full_bias_matrix,
+    smooth_in_mask,
     voxel_ar,
     whiten,
     whitening_filter,
@@ -319,6 +320,10 @@ def test_clicked_voxel_uses_the_maps_whitening():
         est = a.noise_at(run, ijk, s)
         assert set(est) == {"gamma", KERNEL}
         np.testing.assert_allclose(est[KERNEL].phi, m.ar[ijk], rtol=1e-5, atol=1e-6)
+        # every kernel shares one read of the box: the same as reading it for each
+        alone = voxel_ar(run, a.prepared("gamma", s)[1], ijk)
+        np.testing.assert_array_equal(est["gamma"].phi, alone.phi)
+        assert est["gamma"].n_neighbours == alone.n_neighbours
         vf = a.fit_voxel(run.data[ijk], s, est)
         f = vf.by_kernel(KERNEL)
         assert f.t == pytest.approx(float(m.t[ijk]), rel=1e-5, abs=1e-6)
@@ -358,6 +363,35 @@ def test_checks_judge_the_arp_whitened_residuals_with_ljung_box():
     lb = acorr_ljungbox(rw, lags=[10])
     assert c.whitened_ljung_box_p == pytest.approx(float(lb["lb_pvalue"].iloc[0]), rel=1e-6)
     assert c.t == pytest.approx(float(res.t[0]), rel=1e-12)
+
+
+def test_smoothing_over_the_valid_box_equals_scipy_over_the_whole_grid():
+    """Reference: scipy.ndimage.correlate1d over the whole grid (normalised convolution,
+    common practice); the box around the valid voxels must give the same numbers."""
+    from scipy import ndimage
+
+    rng = np.random.default_rng(3)
+    shape = (23, 19, 17)
+    weights = tuple(
+        np.exp(-0.5 * (np.arange(-r, r + 1) / s) ** 2) for r, s in ((3, 1.5), (2, 1.0), (4, 2.0))
+    )
+    for valid in (
+        np.zeros(shape, bool),  # nothing valid
+        rng.random(shape) < 0.3,  # scattered over the grid
+    ):
+        plane = np.zeros(shape, bool)
+        plane[:, :, 2] = valid[:, :, 2]  # one plane near the edge, as the window's preview
+        for ok in (valid, plane):
+            values = rng.normal(size=(*shape, 3))
+            num = values * ok[..., None]
+            den = ok.astype(float)
+            for axis, w in enumerate(weights):
+                num = ndimage.correlate1d(num, w, axis=axis, mode="constant")
+                den = ndimage.correlate1d(den, w, axis=axis, mode="constant")
+            want = np.where(den[..., None] > 0, num / np.where(den > 0, den, 1)[..., None], 0)
+            got, got_den = smooth_in_mask(values, ok, weights)
+            np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-15)
+            np.testing.assert_allclose(got_den, den, rtol=1e-12, atol=1e-15)
 
 
 def test_bad_and_degenerate_inputs():

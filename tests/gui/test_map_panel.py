@@ -177,6 +177,28 @@ def test_preview_holds_the_full_maps_values_on_the_planes_on_screen(window, ras_
     assert not prev[~planes].any() and full[~planes].any()
 
 
+def test_preview_grows_plane_by_plane_to_the_three_planes(window, ras_run):
+    """Plane of constant k first, then j, then i; under OLS each step holds the full
+    map's values on the planes fitted so far and 0 elsewhere, and the last step equals
+    the three-plane preview."""
+    state, live = _open(window, ras_run)
+    req = live.request()
+    req = dataclasses.replace(req, settings=req.settings.with_(noise="ols"))
+    full = compute_map(state.run, state.analysis, req.settings, req.kernel).t
+    voxel = state.voxel
+    steps = list(mapjobs.preview_planes(state.run, state.analysis, req, voxel))
+    assert len(steps) == 3
+    seen = np.zeros(full.shape, dtype=bool)
+    for axis, step in zip(mapjobs.PREVIEW_AXES, steps):
+        index = [slice(None)] * 3
+        index[axis] = voxel[axis]
+        seen[tuple(index)] = True
+        np.testing.assert_array_equal(step[seen], full[seen])
+        assert not step[~seen].any()
+    together = mapjobs.preview_stat(state.run, state.analysis, req, voxel)
+    np.testing.assert_array_equal(steps[-1], together)
+
+
 def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, monkeypatch):
     """A settings change on a large run shows a coarse preview first, then the full map
     replaces it; the full map equals compute_map exactly."""
@@ -187,7 +209,8 @@ def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, mon
     previews, done = live.previews_shown, live.jobs_done
     state.update_settings(highpass_s=77.0)
     qtbot.waitUntil(lambda: live.jobs_done > done, timeout=20000)
-    assert live.previews_shown == previews + 1
+    # one preview per plane (plane of constant k first), then the full map
+    assert live.previews_shown == previews + len(mapjobs.PREVIEW_AXES)
     assert titles[0].endswith("(preview)") and not titles[-1].endswith("(preview)")
     ref = compute_map(state.run, state.analysis, state.settings, live.kernel())
     np.testing.assert_array_equal(state.stat_map.data, ref.t)

@@ -480,11 +480,13 @@ class Analysis:
         """
         if settings.noise != "arp":
             return {}
-        from .noise import voxel_ar
+        from .noise import voxel_ar, voxel_box
 
+        plan = self._plan(settings)
+        box = voxel_box(run, ijk, mask=mask)  # read once, shared by every kernel
         out: dict[str, Any] = {}
-        for name, _d, prep, _w, _C in self._plan(settings):
-            out[name] = voxel_ar(run, prep, ijk, mask=mask)
+        for name, _d, prep, _w, _C in plan:
+            out[name] = voxel_ar(run, prep, ijk, box=box)
         return out
 
     def _plan(self, settings: ModelSettings) -> list[tuple]:

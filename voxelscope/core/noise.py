@@ -71,6 +71,7 @@ __all__ = [
     "REFLECTION_LIMIT",
     "TRUNCATE_SIGMA",
     "ArEstimate",
+    "VoxelBox",
     "ar_from_autocorr",
     "bias_matrix",
     "corrected_autocorr",
@@ -78,6 +79,7 @@ __all__ = [
     "smooth_in_mask",
     "smoothing_weights",
     "voxel_ar",
+    "voxel_box",
     "whiten",
     "whitening_filter",
 ]
@@ -775,18 +777,44 @@ def smooth_in_mask(
 
     Returns the smoothed values (0 where no valid voxel is in reach) and the summed
     weight of valid neighbours (the denominator).
+
+    Only the box around the valid voxels, widened by the kernel's reach, is convolved:
+    outside it both sums are exactly 0, so the result is the same as over the whole grid
+    (a map of a few planes, the window's preview, smooths a thin slab, not the volume).
+
+    Examples
+    --------
+    >>> v = np.zeros((9, 9, 9, 1)); ok = np.zeros((9, 9, 9), bool)
+    >>> v[4, 4, 4, 0], ok[4, 4, 4] = 2.0, True
+    >>> out, den = smooth_in_mask(v, ok, (np.ones(3),) * 3)
+    >>> float(out[3, 5, 4, 0]), float(out[0, 0, 0, 0]), float(den[4, 4, 4])
+    (2.0, 0.0, 1.0)
     """
     from scipy import ndimage
 
-    m = valid.astype(np.float64)
-    num = values * m[..., None]
+    valid = np.asarray(valid, dtype=bool)
+    out = np.zeros(values.shape, dtype=np.float64)
+    den_all = np.zeros(valid.shape, dtype=np.float64)
+    hit = np.argwhere(valid)
+    if hit.size == 0:
+        return out, den_all
+    box = []
+    for axis, w in enumerate(weights):
+        r = (np.asarray(w).size - 1) // 2
+        lo = max(0, int(hit[:, axis].min()) - r)
+        hi = min(valid.shape[axis], int(hit[:, axis].max()) + r + 1)
+        box.append(slice(lo, hi))
+    box_t = tuple(box)
+    m = valid[box_t].astype(np.float64)
+    num = values[box_t] * m[..., None]
     den = m
     for axis, w in enumerate(weights):
         num = ndimage.correlate1d(num, w, axis=axis, mode="constant", cval=0.0)
         den = ndimage.correlate1d(den, w, axis=axis, mode="constant", cval=0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        out = np.where(den[..., None] > 0, num / np.where(den > 0, den, 1.0)[..., None], 0.0)
-    return out, den
+        out[box_t] = np.where(den[..., None] > 0, num / np.where(den > 0, den, 1.0)[..., None], 0.0)
+    den_all[box_t] = den
+    return out, den_all
 
 
 def voxel_sizes(affine: np.ndarray) -> tuple[float, float, float]:
@@ -1112,6 +1140,69 @@ def _stationary_rho(phi: np.ndarray, rho: np.ndarray) -> np.ndarray:
     return out
 
 
+@dataclass(frozen=True)
+class VoxelBox:
+    """A voxel's neighbourhood within the truncated smoothing kernel, read once.
+
+    ``glob`` (n, 3) are the mask voxels of the box, ``weights`` (n,) their smoothing
+    weights, ``data`` (T, n) float32 their series (None when the box holds no mask
+    voxel). The box depends on the run, the voxel, the mask and the FWHM only, not on the
+    design, so every kernel's estimate at a voxel can share it (:meth:`voxel_box`).
+    """
+
+    ijk: tuple[int, int, int]
+    glob: np.ndarray
+    weights: np.ndarray
+    data: np.ndarray | None
+    fwhm_mm: float
+
+
+def voxel_box(
+    run: Any,
+    ijk: Sequence[int],
+    mask: np.ndarray | None = None,
+    fwhm_mm: float | None = None,
+) -> VoxelBox:
+    """Read the box of mask voxels that :func:`voxel_ar` averages over (one read of their
+    series for every kernel).
+
+    Examples
+    --------
+    >>> from voxelscope.core.maps import ArrayRun
+    >>> run = ArrayRun(np.random.default_rng(0).normal(size=(5, 5, 5, 30)))
+    >>> box = voxel_box(run, (0, 0, 0), fwhm_mm=2.0)  # reach 2 voxels: a 3x3x3 corner
+    >>> box.glob.shape, box.data.shape
+    ((27, 3), (30, 27))
+    """
+    fwhm_mm = FWHM_MM if fwhm_mm is None else float(fwhm_mm)
+    shape = tuple(int(n) for n in run.shape)
+    mask = np.asarray(run.mask() if mask is None else mask, dtype=bool)
+    if mask.shape != shape:
+        raise InputError(f"the mask has shape {mask.shape} but the run grid is {shape}")
+    centre = tuple(int(v) for v in ijk)
+    weights = smoothing_weights(voxel_sizes(getattr(run, "affine", np.eye(4))), fwhm_mm)
+    lo, hi, wts = [], [], []
+    for axis, w in enumerate(weights):
+        r = (w.size - 1) // 2
+        c = centre[axis]
+        a, b = max(0, c - r), min(shape[axis], c + r + 1)
+        lo.append(a)
+        hi.append(b)
+        wts.append(w[a - c + r : b - c + r])
+    sub = mask[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]]
+    local = np.argwhere(sub)
+    if local.size == 0:
+        return VoxelBox(centre, np.zeros((0, 3), dtype=np.intp), np.zeros(0), None, fwhm_mm)
+    glob = local + np.array(lo)
+    flat = np.ravel_multi_index(glob.T, shape)
+    if hasattr(run, "timeseries_many"):
+        data = np.asarray(run.timeseries_many(flat), dtype=np.float32).T
+    else:
+        data = run.data.reshape(-1, run.n_volumes)[flat].astype(np.float32).T
+    w = wts[0][local[:, 0]] * wts[1][local[:, 1]] * wts[2][local[:, 2]]
+    return VoxelBox(centre, glob, w, data, fwhm_mm)
+
+
 def voxel_ar(
     run: Any,
     prep: Any,
@@ -1119,43 +1210,27 @@ def voxel_ar(
     mask: np.ndarray | None = None,
     order: int | None = None,
     fwhm_mm: float | None = None,
+    box: VoxelBox | None = None,
 ) -> ArEstimate:
     """One voxel's AR(p) coefficients, exactly as :func:`smoothed_ar_map` gives them.
 
-    Reads only the box of neighbours within the truncated smoothing kernel.
+    Reads only the box of neighbours within the truncated smoothing kernel; ``box``
+    (from :func:`voxel_box` for the same voxel, mask and FWHM) saves reading it again.
     """
     from .glm import censored_design
 
     prep = censored_design(prep)  # the map's design when volumes inside the run are left out
     order = AR_ORDER if order is None else int(order)
-    fwhm_mm = FWHM_MM if fwhm_mm is None else float(fwhm_mm)
-    shape = tuple(int(n) for n in run.shape)
-    mask = np.asarray(run.mask() if mask is None else mask, dtype=bool)
-    if mask.shape != shape:
-        raise InputError(f"the mask has shape {mask.shape} but the run grid is {shape}")
-    weights = smoothing_weights(voxel_sizes(getattr(run, "affine", np.eye(4))), fwhm_mm)
-    lo, hi, wts = [], [], []
-    for axis, w in enumerate(weights):
-        r = (w.size - 1) // 2
-        c = int(ijk[axis])
-        a, b = max(0, c - r), min(shape[axis], c + r + 1)
-        lo.append(a)
-        hi.append(b)
-        wts.append(w[a - c + r : b - c + r])
-    sub = mask[lo[0] : hi[0], lo[1] : hi[1], lo[2] : hi[2]]
-    local = np.argwhere(sub)
+    if box is None:
+        box = voxel_box(run, ijk, mask=mask, fwhm_mm=fwhm_mm)
+    fwhm_mm = box.fwhm_mm
     M = design_bias_matrix(prep, order)
-    if local.size == 0:
+    if box.data is None:
         rho = np.zeros(order)
         return ArEstimate(np.zeros(order), rho, 0, fwhm_mm, None)
-    glob = local + np.array(lo)
-    flat = np.ravel_multi_index(glob.T, shape)
-    if hasattr(run, "timeseries_many"):
-        data = np.asarray(run.timeseries_many(flat), dtype=np.float32).T
-    else:
-        data = run.data.reshape(-1, run.n_volumes)[flat].astype(np.float32).T
+    glob, data = box.glob, box.data
     vals, ok = _ols_autocorr(prep, data, M, order)
-    w = wts[0][local[:, 0]] * wts[1][local[:, 1]] * wts[2][local[:, 2]] * ok
+    w = box.weights * ok
     centre = np.flatnonzero((glob == np.asarray(ijk)).all(axis=1))
     own = _ratio(vals[:, centre[:1]])[:order, 0] if centre.size and ok[centre[0]] else None
     den = float(w.sum())

@@ -7,11 +7,12 @@ clicked voxel) and shows the result as the overlay. A change while a job runs ca
 (the core's progress callback returns False) and starts one job for the newest settings.
 The GUI thread only swaps image data, so clicks and their per-voxel fits stay instant.
 On a large run (at least :data:`PREVIEW_MIN_VOXELS` in the mask) the job first fits the
-three planes through the current voxel, the ones the Slices part shows, and puts that
-preview on screen (final values there under OLS and AR(1), close under AR(p); 0
-elsewhere); the full map then replaces it in
-place. The debounce is short (:attr:`LiveMap.debounce_ms`, 40 ms) because a further change
-cancels the running job at its next block.
+three planes through the current voxel, the ones the Slices part shows, one plane at a
+time (:data:`PREVIEW_AXES`: the plane read fastest first), and puts each on screen as it
+comes (final values there under OLS and AR(1), close under AR(p); 0 elsewhere); the full
+map then replaces the preview in place. The debounce is short
+(:attr:`LiveMap.debounce_ms`, 40 ms) because a further change cancels the running job at
+its next block; the first change after a quiet spell does not wait for it.
 
 Overlay sources (:data:`SOURCES`):
 
@@ -53,6 +54,7 @@ __all__ = [
     "compute_request",
     "default_kernel",
     "other_kernel",
+    "preview_planes",
     "preview_stat",
 ]
 
@@ -189,21 +191,121 @@ def compute_request(
     )
 
 
+#: The order the preview's planes are fitted and shown in: the plane of constant ``k``
+#: first (contiguous in every volume of a ``.nii``, so the cheapest to read), then ``j``,
+#: then ``i`` (one value of every row of the file).
+PREVIEW_AXES = (2, 1, 0)
+
+
+def _plane_index(voxel, axis: int) -> tuple:
+    index: list = [slice(None)] * 3
+    index[axis] = int(voxel[axis])
+    return tuple(index)
+
+
+def _plane_stat(
+    run: Any,
+    analysis: Any,
+    request: MapRequest,
+    voxel,
+    axis: int,
+    progress: Callable[[float], bool | None] | None = None,
+) -> np.ndarray:
+    """The request's statistic on one plane through ``voxel`` (the plane's own 2-D array).
+
+    The plane's voxels are read once into a run of their own, one voxel thick
+    (:class:`voxelscope.core.maps.ArrayRun`, the run's voxel sizes), and that run is
+    fitted by :func:`voxelscope.core.maps.compute_map`: the same fit, with every
+    whole-grid array of the map (the AR(p) sums and their smoothing) the size of a plane.
+    """
+    from voxelscope.core.maps import ArrayRun
+
+    shape = tuple(int(n) for n in run.shape)
+    index = _plane_index(voxel, axis)
+    mask = np.asarray(run.mask(), dtype=bool)
+    on_plane = np.zeros(shape, dtype=bool)
+    on_plane[index] = True
+    keep = mask & on_plane
+    thin = list(shape)
+    thin[axis] = 1
+    data = np.zeros((int(np.prod(thin)), int(run.n_volumes)), dtype=np.float32)
+    # flat C-order index on the grid -> on the one-voxel-thick plane
+    coords = np.unravel_index(np.flatnonzero(keep), shape)
+    local = list(coords)
+    local[axis] = np.zeros_like(local[axis])
+    to_plane = np.full(int(np.prod(shape)), -1, dtype=np.int64)
+    to_plane[np.flatnonzero(keep)] = np.ravel_multi_index(tuple(local), tuple(thin))
+    for idx, block in run.iter_blocks(keep, block_voxels=4096):
+        data[to_plane[idx]] = np.asarray(block, dtype=np.float32).T
+    sub = ArrayRun(data.reshape(*thin, -1), affine=getattr(run, "affine", None), tr=run.tr)
+    m = compute_map(
+        sub, analysis, request.settings, request.kernel,
+        mask=keep[index].reshape(thin), progress=progress, stats=request.stats,
+    )  # fmt: skip
+    return np.asarray(m.stat(request.stat), dtype=np.float32).reshape(thin)[
+        tuple(0 if a == axis else slice(None) for a in range(3))
+    ]
+
+
+def preview_planes(
+    run: Any,
+    analysis: Any,
+    request: MapRequest,
+    voxel: tuple[int, int, int],
+    progress: Callable[[float], bool | None] | None = None,
+    axes: tuple[int, ...] = PREVIEW_AXES,
+):
+    """Yield the preview growing plane by plane (``axes`` order, by the voxel axis each
+    plane holds fixed): after each plane, the request's statistic on the planes fitted so
+    far and 0 elsewhere, float32 (X, Y, Z). Where planes cross, the first plane's value
+    stays.
+
+    These are the planes the Slices part shows, so the map is on screen long before the
+    whole volume is fitted. Each plane is fitted alone by the same fit as the full map
+    (:func:`_plane_stat`): under OLS and AR(1), whose noise estimate is the voxel's own,
+    the values are final; under AR(p) the neighbourhood averaging of the noise estimate
+    sees only the plane, so they are close but not final.
+
+    Examples
+    --------
+    >>> from voxelscope.core.events import Condition
+    >>> from voxelscope.core.maps import ArrayRun
+    >>> from voxelscope.core.model import Analysis, ModelSettings
+    >>> run = ArrayRun(np.random.default_rng(0).normal(100, 1, (4, 4, 4, 40)))
+    >>> a = Analysis([Condition("tone", [10.0], [10.0])], n_volumes=40, tr=1.0)
+    >>> steps = list(preview_planes(run, a, MapRequest(ModelSettings(), "boxcar"), (1, 2, 3)))
+    >>> [int(np.count_nonzero(s)) for s in steps]
+    [16, 28, 37]
+    """
+    shape = tuple(int(n) for n in run.shape)
+    out = np.zeros(shape, dtype=np.float32)
+    filled = np.zeros(shape, dtype=bool)
+    n = len(axes)
+    for step, axis in enumerate(axes):
+        sub = None
+        if progress is not None:
+
+            def sub(f: float, step: int = step) -> bool | None:
+                return progress((step + f) / n)
+
+        vals = _plane_stat(run, analysis, request, voxel, axis, progress=sub)
+        index = _plane_index(voxel, axis)
+        new = ~filled[index]
+        out[index] = np.where(new, vals, out[index])
+        filled[index] = True
+        yield out.copy()
+
+
 def preview_stat(
     run: Any,
     analysis: Any,
     request: MapRequest,
     voxel: tuple[int, int, int],
     progress: Callable[[float], bool | None] | None = None,
+    axes: tuple[int, ...] = PREVIEW_AXES,
 ) -> np.ndarray:
-    """The request's statistic on the three planes through ``voxel`` (no Qt).
-
-    These are the planes the Slices part shows, so the map is on screen long before the
-    whole volume is fitted: :func:`voxelscope.core.maps.compute_map` fits the mask's voxels
-    on those planes (the same fit as the full map, so under OLS and AR(1) the values are
-    final; under AR(p) the neighbourhood averaging of the noise estimate sees only the
-    planes, so they are close but not final); the rest of the volume is 0 until the full
-    map replaces the preview. Returns float32 (X, Y, Z).
+    """The request's statistic on the planes through ``voxel`` (default the three the
+    Slices part shows), 0 elsewhere: the last step of :func:`preview_planes` (no Qt).
 
     Examples
     --------
@@ -216,15 +318,10 @@ def preview_stat(
     >>> v.shape, bool(v[1, 0, 0] != 0), bool(v[0, 0, 0] == 0)
     ((4, 4, 4), True, True)
     """
-    mask = np.asarray(run.mask(), dtype=bool)
-    planes = np.zeros_like(mask)
-    i, j, k = (int(v) for v in voxel)
-    planes[i, :, :] = planes[:, j, :] = planes[:, :, k] = True
-    m = compute_map(
-        run, analysis, request.settings, request.kernel, mask=mask & planes,
-        progress=progress, stats=request.stats,
-    )  # fmt: skip
-    return np.asarray(m.stat(request.stat), dtype=np.float32)
+    out = np.zeros(tuple(int(n) for n in run.shape), dtype=np.float32)
+    for step in preview_planes(run, analysis, request, voxel, progress, axes):
+        out = step
+    return out
 
 
 # ----------------------------------------------------------------------------- live map
@@ -269,6 +366,7 @@ class LiveMap(QObject):
         self.last_seconds: float | None = None
         self.last_latency_s: float | None = None
         self._changed_at: float | None = None
+        self._last_change: float | None = None  # when schedule() was last called
         self._pending = False
         self._seen = self._key()
         state.run_changed.connect(self._on_run)
@@ -352,7 +450,15 @@ class LiveMap(QObject):
     # ------------------------------------------------------------------ jobs
 
     def schedule(self, now: bool = False) -> None:
-        """Recompute after the debounce delay (restarted by every further change)."""
+        """Recompute after the debounce delay (restarted by every further change); the
+        first change after a quiet spell starts at once (the next event-loop pass), so a
+        single change is not kept waiting for changes that do not come."""
+        quiet = self._last_change is None or (
+            time.perf_counter() - self._last_change >= self.debounce_ms / 1e3
+        )
+        self._last_change = time.perf_counter()
+        if quiet and not self.is_busy():
+            now = True
         if self._changed_at is None or not self.is_busy():
             self._changed_at = time.perf_counter()
         if self.job is not None:
@@ -420,7 +526,8 @@ class LiveMap(QObject):
                 def sub(f: float) -> bool | None:
                     return progress(part * f)
 
-                partial((req, preview_stat(run, analysis, req, voxel, progress=sub)))
+                for shown in preview_planes(run, analysis, req, voxel, progress=sub):
+                    partial((req, shown))
 
                 def rest(f: float) -> bool | None:
                     return progress(part + (1 - part) * f)
