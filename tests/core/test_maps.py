@@ -395,3 +395,75 @@ def test_one_sided_tails_in_maps_match_scipy():
         )
     with pytest.raises(Exception, match="tail must be one of"):
         compute_map(run, a, s, tail="left")
+
+
+def _one_pass_run(rng, shape=(14, 12, 10)):
+    """A plain float32 run, bright almost everywhere (so a map reads it once), with a NaN
+    voxel, a constant voxel, a dim corner, and a voxel dark in the first volumes (outside
+    the guess from them) but bright on average (inside the mask)."""
+    data = _data(rng, shape=shape)
+    data[0, 0, :3] = rng.uniform(20, 60, (3, 1))  # dim: outside the mask
+    data[2, 2, 2, 7] = np.nan
+    data[3, 3, 3] = 9000.0  # constant
+    data[0, 5, 5, :10] = 5.0  # dark while the guess is taken, then bright (on a face)
+    return data
+
+
+@pytest.mark.parametrize("noise", ["ols", "ar1"])
+def test_one_pass_map_equals_the_two_pass_map(tmp_path, noise, monkeypatch):
+    """A plain .nii whose mask is still to be decided is read once: the summary gathered
+    while fitting equals the run's own summary pass bit for bit (mean image, NaN and
+    constant flags), so the mask equals that of the map fitted after the mask (the two-pass
+    way) exactly, and every statistic to the last digits (a mask voxel the first volumes
+    missed is fitted afterwards, among other voxels)."""
+    from voxelscope.core import maps
+
+    data = _one_pass_run(np.random.default_rng(21))
+    path = _write(tmp_path, data)
+    a, s = _analysis(), ModelSettings(noise=noise)
+    calls = []
+    real = maps._one_pass
+    monkeypatch.setattr(maps, "_one_pass", lambda *args: calls.append(1) or real(*args))
+    once = open_run(path, use_cache=False)
+    assert once.mask_pending()
+    assert not once.likely_mask(maps.GUESS_VOLUMES)[0, 5, 5]  # the guess misses it
+    m1 = compute_map(once, a, s, "double-gamma", chunk_voxels=64)
+    assert calls == [1] and not once.mask_pending()
+    twice = open_run(path, use_cache=False)
+    m2 = compute_map(twice, a, s, "double-gamma", mask=twice.mask(), chunk_voxels=64)
+    for name in ("mean", "nonfinite", "constant"):
+        np.testing.assert_array_equal(
+            getattr(once.summary(), name), getattr(twice.summary(), name), err_msg=name
+        )
+    np.testing.assert_array_equal(once.mask(), twice.mask())
+    assert once.mask()[0, 5, 5] and m1.mask[0, 5, 5]
+    assert not once.mask()[2, 2, 2] and not once.mask()[3, 3, 3] and not once.mask()[0, 0, 0]
+    for name in ("t", "beta", "variance", "z", "p", "neglog10p"):
+        a1, a2 = m1.stat(name), m2.stat(name)
+        # the same arithmetic per voxel; only a block of other voxels around it may change
+        # the product's last float64 digits (one float32 rounding at most)
+        rtol = 1e-12 if a1.dtype == np.float64 else 2.5e-7
+        np.testing.assert_allclose(a1, a2, rtol=rtol, atol=0, err_msg=name)
+    np.testing.assert_array_equal(m1.mask, m2.mask)
+    np.testing.assert_array_equal(m1.degenerate, m2.degenerate)
+    assert np.all(m1.t[~once.mask()] == 0) and np.all(m1.p[~once.mask()] == 1)
+    # the NaN voxel is said once, as by the summary pass
+    assert sum("NaN" in w for w in once.warnings) == 1
+
+
+def test_runs_with_much_background_keep_the_summary_pass(tmp_path, monkeypatch):
+    """When the guess holds less than ONE_PASS_SHARE of the grid, the run's own summary
+    pass decides the mask first (cheaper for the background); the map is the same."""
+    from voxelscope.core import maps
+
+    rng = np.random.default_rng(22)
+    data = _data(rng, shape=(12, 10, 8))
+    data[:6] = rng.uniform(20, 60, (6, 10, 8, T)).astype(np.float32)  # half dim
+    path = _write(tmp_path, data)
+    monkeypatch.setattr(maps, "_one_pass", lambda *a: pytest.fail("one pass with background"))
+    a, s = _analysis(), ModelSettings(noise="ols")
+    m1 = compute_map(open_run(path, use_cache=False), a, s, "double-gamma")
+    run = open_run(path, use_cache=False)
+    m2 = compute_map(run, a, s, "double-gamma", mask=run.mask())
+    np.testing.assert_array_equal(m1.t, m2.t)
+    np.testing.assert_array_equal(m1.mask, m2.mask)

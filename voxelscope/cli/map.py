@@ -175,19 +175,19 @@ def run_map(args: argparse.Namespace) -> int:
     run, analysis = loaded.run, loaded.analysis
     settings = loaded.settings.with_(kernels=(args.kernel,))
     warnings = list(loaded.warnings)
-    mask = run.mask()  # the run's brain mask file, --mask FILE or the intensity rule
     stats = (args.stat,) if args.stat == "t" else ("t", args.stat)
     result = compute_map(
         run,
         analysis,
         settings,
         args.kernel,
-        mask=mask,
+        mask=None,  # the run's mask (file or rule); a plain .nii is read once for both
         rho_step=args.rho_step,
         progress=terminal_progress("fitting map"),
         stats=stats,
         tail=args.tail,
     )
+    mask = run.mask()  # decided by now: the run's brain mask file, --mask FILE or the rule
     data = result.stat(args.stat)
     tail = f" tail={args.tail}" if args.stat in ("p", "neglog10p") else ""
     desc = (

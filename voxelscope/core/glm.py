@@ -656,6 +656,12 @@ class FitResult:
     cov_unscaled : ndarray (n_groups, p, p)
         ``(X'X)^-1`` (OLS: one group for all voxels) or ``(X*'X*)^-1`` per voxel (AR(1));
         ``group`` gives each voxel's row.
+    mean, tss : ndarray (n_voxels,) float64 or None
+        Each voxel's mean over the fitted volumes and the sum of squares of its working
+        copy (centred when the design has a constant): 0 when ``nonfinite``, 0 ``tss`` for
+        a constant voxel. A map gathers the run's mean image from them.
+    nonfinite : ndarray of bool (n_voxels,) or None
+        Voxels with a NaN or infinite sample (None when there are none).
     """
 
     noise: str
@@ -678,6 +684,9 @@ class FitResult:
     keep: np.ndarray | None = None
     ar: np.ndarray | None = None
     whitened_residuals: np.ndarray | None = None
+    mean: np.ndarray | None = None
+    tss: np.ndarray | None = None
+    nonfinite: np.ndarray | None = None
 
     @property
     def n_voxels(self) -> int:
@@ -1216,6 +1225,9 @@ def _finish(
         names=prep.names if prep.n_model is None else prep.names[: prep.n_model],
         ar=ar if noise == "arp" else None,
         whitened_residuals=Rw,
+        mean=mean,
+        tss=tss,
+        nonfinite=bad,
     )
 
 

@@ -357,6 +357,79 @@ def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
     return working_copy(prep, data)[0]
 
 
+#: Volumes read first to guess the brain mask for a one-pass map (:func:`_one_pass`).
+GUESS_VOLUMES = 8
+#: A one-pass map when the guess holds at least this share of the grid. Below it, the
+#: voxels outside the guess are cheaper to summarise in the run's own streaming pass than
+#: block by block (measured on 64x64x40x300 runs, 2 workers: one pass 0.65-0.95x of two
+#: at 100 % of the grid bright, 1.13x at 60 %, 1.2x at 31 %).
+ONE_PASS_SHARE = 0.9
+
+
+def _one_pass(
+    run: Any, guess: np.ndarray, fit_chunk, store, advance, n_workers: int, block: int
+) -> np.ndarray:
+    """Fit the voxels the brain mask will probably hold while gathering the run's summary,
+    in one pass over a plain memory-mapped run; return the run's brain mask.
+
+    The mask needs every voxel's mean (the intensity rule), which used to cost a pass of
+    its own before the fit. Here the blocks of the whole grid are read once, in file
+    order; every voxel's sum over time is taken as the summary pass takes it
+    (:class:`~voxelscope.core.summary.BlockSummary`, equal bit for bit), and the voxels
+    of ``guess`` (:meth:`Run.likely_mask` from the first volumes, the cache's margin below
+    the threshold) are fitted, their working copy telling which are constant. The summary
+    then decides the mask by the one rule (:meth:`Run.adopt_summary`, :meth:`Run.mask`);
+    voxels of the mask outside the guess, if any, are fitted afterwards. Every voxel is
+    fitted exactly as a two-pass map fits it; the caller sets voxels outside the mask to 0.
+    """
+    shape = tuple(int(n) for n in run.shape)
+    guess = guess.reshape(-1)
+    gather = run.summary_gatherer()
+
+    def work(idx: np.ndarray, data: np.ndarray):
+        totals = gather.totals(data)
+        inside = guess[idx]
+        if inside.all():
+            return None, totals, fit_chunk(idx, data), None
+        pick = np.flatnonzero(inside)
+        res = None
+        rest = data  # no voxel of the guess: the block as it is
+        if pick.size:  # np.take copies columns of a strided view ~6x faster than data[:, i]
+            res = fit_chunk(idx[pick], np.take(data, pick, axis=1))
+            rest = np.take(data, np.flatnonzero(~inside), axis=1)
+        with np.errstate(invalid="ignore"):
+            flat_ = rest.min(axis=0) == rest.max(axis=0)
+        return inside, totals, res, flat_
+
+    def keep(idx: np.ndarray, got) -> None:
+        inside, totals, res, flat_ = got
+        constant = np.zeros(idx.size, dtype=bool)
+        if res is not None:
+            # a constant float32 series centres to exact zeros (its float64 mean is exact)
+            if inside is None:
+                constant[:] = res.tss == 0.0
+                store(idx, res)
+            else:
+                constant[inside] = res.tss == 0.0
+                store(idx[inside], res)
+        if flat_ is not None:
+            constant[~inside] = flat_
+            advance(int(np.count_nonzero(~inside)))
+        gather.add(idx, totals, constant)
+
+    with _one_blas_thread():
+        blocks = run.iter_blocks(np.ones(shape, dtype=bool), block_voxels=block)
+        _for_blocks(blocks, work, keep, n_workers, with_index=True)
+    run.adopt_summary(gather.summary(int(run.n_volumes)))
+    mask = np.asarray(run.mask(), dtype=bool)
+    missed = mask & ~guess.reshape(shape)
+    if missed.any():
+        with _one_blas_thread():
+            blocks = run.iter_blocks(missed, block_voxels=block)
+            _for_blocks(blocks, fit_chunk, store, n_workers, with_index=True)
+    return mask
+
+
 def compute_map(
     run: Any,
     analysis: Analysis,
@@ -385,7 +458,10 @@ def compute_map(
     kernel : str, optional
         Kernel name; default the first of ``settings.kernels``.
     mask : ndarray of bool, optional
-        Voxels to fit; default ``run.mask()``.
+        Voxels to fit; default ``run.mask()``. When that mask is still to be decided from
+        a plain float32 ``.nii`` that is bright almost everywhere, the run is read once for
+        both: its summary is gathered while fitting (:func:`_one_pass`), with the same
+        mask and the same numbers as fitting after the summary pass.
     rho_step : float or None
         AR(1) only: round rho to this step first (None, the default: exact per voxel).
     chunk_voxels : int
@@ -423,13 +499,28 @@ def compute_map(
             f"the run has {run.n_volumes} volumes but the model was built for {analysis.n_volumes}"
         )
     kernel = str(kernel if kernel is not None else settings.kernels[0])
-    mask = _check_mask(run, mask)
     design, _prep = analysis.prepared(kernel, settings)  # raises ModelError early
     weights = analysis.contrast_weights(kernel, settings)
     ar1 = settings.noise == "ar1"
     shape = tuple(int(n) for n in run.shape)
     n_all = int(np.prod(shape))
-    total = int(np.count_nonzero(mask))
+    # the run's own mask still to be decided from a plain .nii: gather its summary while
+    # fitting (_one_pass) instead of reading the run once for the mask and once to fit
+    guess = None
+    if (
+        mask is None
+        and settings.noise in ("ols", "ar1")
+        and _prep.keep is None
+        and _prep.constant_index is not None
+        and callable(getattr(run, "mask_pending", None))
+        and run.mask_pending()
+    ):
+        guess = np.asarray(run.likely_mask(GUESS_VOLUMES), dtype=bool)
+        if np.count_nonzero(guess) < ONE_PASS_SHARE * guess.size:
+            guess = None  # much background: the summary's own streaming pass is cheaper
+    one_pass = guess is not None
+    mask = None if one_pass else _check_mask(run, mask)
+    total = n_all if one_pass else int(np.count_nonzero(mask))
 
     # Flat float32 outputs, filled chunk by chunk; variance in float64, since it squares the
     # data's units and a run in huge units would overflow float32 to inf.
@@ -468,11 +559,14 @@ def compute_map(
         # a run with only the row interface: (n, T) rows, transposed (a view)
         return ((i, d.T) for i, d in run.iter_rows(mask, chunk_voxels=int(chunk_voxels)))
 
-    def store(idx: np.ndarray, res) -> None:
+    def advance(n: int) -> None:
         nonlocal done
+        done += n
+        report(share + (1.0 - share) * (min(1.0, done / total) if total else 1.0))
+
+    def store(idx: np.ndarray, res) -> None:
         _scatter(res, idx, flat, want, fitted, degenerate, rho, tail)
-        done += idx.size
-        report(share + (1.0 - share) * (done / total if total else 1.0))
+        advance(idx.size)
 
     if arp:
         # One pass over the data keeps a few sums per voxel (voxelscope.core.noise, "one
@@ -545,8 +639,17 @@ def compute_map(
                 want_p=need_p,
             )
 
-        with _one_blas_thread():
-            _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
+        if one_pass:
+            mask = _one_pass(run, guess, fit_chunk, store, advance, n_workers, int(chunk_voxels))
+            outside = ~mask.reshape(-1)
+            for name, values in flat.items():  # guessed voxels the mask left out
+                values[outside] = 1.0 if name == "p" else 0.0
+            fitted[outside] = degenerate[outside] = False
+            if rho is not None:
+                rho[outside] = 0.0
+        else:
+            with _one_blas_thread():
+                _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
     if total == 0 and progress is not None:
         progress(1.0)
 

@@ -55,7 +55,7 @@ from voxelscope.core.images import _check_affine, _check_dtype, load_nifti, nift
 from voxelscope.core.mask import cache_must_keep, cache_selection, mask_rule, summary_mask
 from voxelscope.core.rawfile import RawLayout
 from voxelscope.core.stores import MappedStore, VoxelSource
-from voxelscope.core.summary import Summary, summarize_volumes
+from voxelscope.core.summary import BlockSummary, Summary, summarize_volumes
 from voxelscope.core.voxelmajor import VoxelStore
 
 __all__ = ["Run", "open_run"]
@@ -372,6 +372,52 @@ class Run:
                 f"{self.path}: {bad} voxels hold NaN or infinite values; they are left "
                 f"out of the brain mask"
             )
+
+    def mask_pending(self) -> bool:
+        """True when the intensity mask still waits for the summary pass of a plain float32
+        memory-mapped file (no summary yet, no mask file given).
+
+        A whole-volume pass may then gather the summary itself and hand it over
+        (:meth:`adopt_summary`), so that a map reads the run once instead of twice
+        (:func:`voxelscope.core.maps.compute_map`).
+        """
+        with self._lock:
+            store = self._store
+            return (
+                self._mask is None
+                and self._given_mask is None
+                and self._summary is None
+                and isinstance(store, MappedStore)
+                and store.plain
+            )
+
+    def adopt_summary(self, summary: Summary) -> None:
+        """Use ``summary`` (every voxel's mean, non-finite and constant flags, gathered by a
+        pass over the whole run) as the run's summary, unless it already has one."""
+        if summary.mean.shape != self.shape:
+            raise ValueError(f"summary of shape {summary.mean.shape} for the grid {self.shape}")
+        with self._lock:
+            if self._summary is None:
+                self._summary = summary
+                self._note_summary()
+
+    def summary_gatherer(self) -> BlockSummary:
+        """An empty :class:`~voxelscope.core.summary.BlockSummary` for this run: a pass
+        over its blocks fills it, and :meth:`adopt_summary` takes what it gathered."""
+        store = self._store
+        assert isinstance(store, MappedStore) and store.plain
+        return BlockSummary(self.shape, store.batch_volumes())
+
+    def likely_mask(self, n_volumes: int = 8) -> np.ndarray:
+        """A cheap guess at the brain mask from the first volumes: the rule the cache uses
+        to choose its voxels (:func:`voxelscope.core.mask.cache_selection`, a margin below
+        the intensity threshold and the voxels it encloses). Only a guess: a pass that
+        relies on it checks the real mask afterwards."""
+        store = self._store
+        assert isinstance(store, MappedStore)
+        k = int(max(1, min(n_volumes, self.n_volumes)))
+        first = np.asarray(store.raw[..., :k]).T  # (k, Z, Y, X) view, as raw_batches
+        return cache_selection(summarize_volumes(iter([first]), store.layout))
 
     def mean_image(self) -> np.ndarray:
         """Mean over time, float32 (X, Y, Z); 0 at voxels with non-finite values.
