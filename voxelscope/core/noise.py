@@ -444,7 +444,9 @@ def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
     r_inv = np.linalg.solve(_r, np.eye(_r.shape[0]))
     P = lags
     closed, shift_a, shift_e = _shift_closed(Xs, P)
-    open_ = np.setdiff1d(np.arange(Xs.shape[1]), closed)
+    is_open = np.ones(Xs.shape[1], dtype=bool)  # not np.setdiff1d: it imports numpy.ma
+    is_open[closed] = False
+    open_ = np.flatnonzero(is_open)
     # the stack's first q rows are Xs'; then, for d = 1..P, (S_d Xs)' of the columns that
     # are not closed under shifts (the others follow from Xs'y and the first and last P
     # samples, see _shift_closed): its product with y gives every Xs' S_d y
