@@ -344,7 +344,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
         d["events"],
         d["confounds"],
         d["anatomy"],
-        d["stat_map"],
+        d["map"],
         voxel=d["voxel"],
         background=False,
     )

@@ -137,7 +137,7 @@ def demo_window(qtbot, tmp_path, demo_files):
         qtbot.waitExposed(w)
         d = demo_paths()
         ok = w.open_run(
-            d["run"], d["events"], d["confounds"], d["anatomy"], d["stat_map"],
+            d["run"], d["events"], d["confounds"], d["anatomy"], d["map"],
             voxel=d["voxel"], background=False,
         )  # fmt: skip
         assert ok, w.last_error

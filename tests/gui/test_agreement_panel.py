@@ -78,7 +78,7 @@ def test_disagreement_overlay(window, qtbot, ras_run):
     panel.tolerance.setValue(2.0)
     qtbot.waitUntil(lambda: panel.agreement.tolerance == 2.0 and panel.compare_job is None)
     panel.show_differ.setChecked(True)
-    layer = state.stat_map
+    layer = state.overlay
     assert isinstance(layer, LiveLayer) and layer.source == "disagreement"
     model = window.state.model_map
     ref = compare_maps(model, panel.theirs, tolerance=2.0)
@@ -119,12 +119,12 @@ def test_demo_uses_the_pipeline_map(window, qtbot, demo_files):
         d["events"],
         d["confounds"],
         d["anatomy"],
-        d["stat_map"],
+        d["map"],
         voxel=d["voxel"],
         background=False,
     )
     assert window.map_panel.live.flush(20000)
     panel = window.agreement
-    assert panel.their_path == d["stat_map"]
+    assert panel.their_path == d["map"]
     _wait(qtbot, panel)
     assert np.isfinite(panel.agreement.r)

@@ -22,7 +22,7 @@ def test_saved_session_renders_the_same_screenshot(qapp, ras_run, tmp_path):
     first, second = tmp_path / "first.png", tmp_path / "second.png"
     code = launch(
         run=str(ras_run["run"]),
-        stat_map=str(ras_run["map"]),
+        map_file=str(ras_run["map"]),
         voxel=(2, 3, 4),
         save_session=str(session),
         screenshot=str(first),

@@ -25,7 +25,7 @@ def _rows(table):
 
 def test_table_equals_find_clusters(window, ras_run):
     state, panel = _open(window, ras_run)
-    data = state.stat_map.data
+    data = state.overlay.data
     ref = find_clusters(data, 3.0, affine=state.run.affine)
     assert len(ref) > 0
     assert _rows(panel.table) == _rows(ref)
@@ -46,7 +46,7 @@ def test_threshold_and_options_update_the_table(window, qtbot, ras_run):
     panel.min_voxels.setValue(2)
     panel.mode.setCurrentIndex(panel.mode.findData("positive"))
     ref = find_clusters(
-        state.stat_map.data,
+        state.overlay.data,
         2.0,
         affine=state.run.affine,
         connectivity=6,
@@ -68,7 +68,7 @@ def test_table_follows_the_map(window, qtbot, ras_run):
             and panel.model.headerData(4, Qt.Orientation.Horizontal) == "peak value"
         )
     )
-    ref = find_clusters(state.stat_map.data, 3.0, affine=state.run.affine)
+    ref = find_clusters(state.overlay.data, 3.0, affine=state.run.affine)
     assert _rows(panel.table) == _rows(ref)
 
 
@@ -107,7 +107,7 @@ def test_threshold_rule_is_the_same_in_map_findings_and_slices(window, ras_run):
 
     state, panel = _open(window, ras_run)
     assert window.map_panel.threshold.prefix() == panel.threshold.prefix() == "|v| > "
-    data = state.stat_map.data
+    data = state.overlay.data
     thr = float(np.sort(np.abs(data[np.isfinite(data)]))[-5])  # a value some voxel has
     state.set_map_settings(threshold=thr)
     panel.refresh()

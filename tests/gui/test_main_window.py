@@ -50,7 +50,7 @@ def test_cancel_stops_the_open(qtbot, gz_run):
 def test_drop_opens_a_3d_image_as_map(window, ras_run):
     assert window.open_run(ras_run["run"], background=False)
     assert window.open_dropped(str(ras_run["map"]))
-    assert window.state.stat_map is not None
+    assert window.state.overlay is not None
 
 
 def test_about_has_the_research_caution(window):

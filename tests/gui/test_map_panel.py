@@ -35,7 +35,7 @@ def test_default_kernel_rule():
 
 def test_live_map_equals_compute_map(window, ras_run):
     state, live = _open(window, ras_run)
-    layer = state.stat_map
+    layer = state.overlay
     assert isinstance(layer, LiveLayer) and layer.source == "model"
     ref = compute_map(state.run, state.analysis, state.settings, "double-gamma")
     np.testing.assert_array_equal(layer.data, ref.t)
@@ -45,7 +45,7 @@ def test_live_map_equals_compute_map(window, ras_run):
     window.map_panel.kernel.setCurrentIndex(window.map_panel.kernel.findData("gamma"))
     assert live.flush(20000)
     ref = compute_map(state.run, state.analysis, state.settings, "gamma")
-    np.testing.assert_array_equal(state.stat_map.data, ref.z)
+    np.testing.assert_array_equal(state.overlay.data, ref.z)
     assert "z · gamma" in window.slices.colour_bar.title.text()
 
 
@@ -59,7 +59,7 @@ def test_quick_changes_give_one_job(window, qtbot, ras_run):
     assert (live.jobs_started - started, live.jobs_done - done) == (1, 1)
     ref = compute_map(state.run, state.analysis, state.settings, "double-gamma")
     assert state.settings.highpass_s == 80.0
-    np.testing.assert_array_equal(state.stat_map.data, ref.t)
+    np.testing.assert_array_equal(state.overlay.data, ref.t)
 
 
 def _slow_compute_map(started: threading.Event):
@@ -79,7 +79,7 @@ def _slow_compute_map(started: threading.Event):
 
 def test_cancel_stops_the_job_and_clicks_stay_live(window, qtbot, ras_run, monkeypatch):
     state, live = _open(window, ras_run)
-    before = state.stat_map
+    before = state.overlay
     started = threading.Event()
     monkeypatch.setattr(mapjobs, "compute_map", _slow_compute_map(started))
     done = live.jobs_done
@@ -92,7 +92,7 @@ def test_cancel_stops_the_job_and_clicks_stay_live(window, qtbot, ras_run, monke
     assert state.fits.fits[0].design.names  # fitted under the new settings
     window.map_panel.cancel_button.click()
     qtbot.waitUntil(lambda: not live.is_busy(), timeout=5000)
-    assert live.jobs_done == done and state.stat_map is before
+    assert live.jobs_done == done and state.overlay is before
     assert "cancelled" in window.map_panel.job_label.text()
 
 
@@ -115,33 +115,33 @@ def test_kernel_difference_source(window, ras_run):
     assert live.flush(20000)
     a = compute_map(state.run, state.analysis, state.settings, "double-gamma")
     b = compute_map(state.run, state.analysis, state.settings, "boxcar")
-    layer = state.stat_map
+    layer = state.overlay
     assert layer.source == "difference"
     np.testing.assert_array_equal(layer.data, kernel_difference(a, b, "t"))
     assert state.map_settings.threshold == 1.0  # the difference source's own threshold
     window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("model"))
     assert live.flush(20000)
     assert state.map_settings.threshold == 3.0
-    np.testing.assert_array_equal(state.stat_map.data, a.t)
+    np.testing.assert_array_equal(state.overlay.data, a.t)
 
 
 def test_opened_file_becomes_the_source_and_model_is_one_choice_away(window, ras_run):
     state, live = _open(window, ras_run)
     assert window.open_map(ras_run["map"])
     assert state.map_settings.source == "file"
-    assert state.stat_map is state.file_layer and state.stat_map.path == ras_run["map"]
+    assert state.overlay is state.file_layer and state.overlay.path == ras_run["map"]
     window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("model"))
     assert live.flush(20000)
-    assert isinstance(state.stat_map, LiveLayer)
+    assert isinstance(state.overlay, LiveLayer)
     window.map_panel.source.setCurrentIndex(window.map_panel.source.findData("file"))
-    assert state.stat_map is state.file_layer
+    assert state.overlay is state.file_layer
 
 
 def test_run_without_events_shows_no_model(window, las_run):
     assert window.open_run(las_run["run"], background=False)  # no events beside it
     live = window.map_panel.live
     assert live.flush(5000)
-    assert window.state.stat_map is None
+    assert window.state.overlay is None
     assert "events" in window.map_panel.file_label.toolTip()
 
 
@@ -213,4 +213,4 @@ def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, mon
     assert live.previews_shown == previews + len(mapjobs.PREVIEW_AXES)
     assert titles[0].endswith("(preview)") and not titles[-1].endswith("(preview)")
     ref = compute_map(state.run, state.analysis, state.settings, live.kernel())
-    np.testing.assert_array_equal(state.stat_map.data, ref.t)
+    np.testing.assert_array_equal(state.overlay.data, ref.t)

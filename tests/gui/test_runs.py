@@ -107,7 +107,7 @@ def test_live_map_is_the_fixed_effects_map(window, qtbot, three_runs):
         stats=req.stats,
     )
     np.testing.assert_allclose(window.state.model_map.t, ref.t, rtol=1e-6, atol=1e-6)
-    assert "3 runs" in st.stat_map.title
+    assert "3 runs" in st.overlay.title
     st.remove_runs()
     assert live.flush(30000)
     assert not live.request().runs and st.run_fits == []

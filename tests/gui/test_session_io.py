@@ -49,7 +49,7 @@ def grab_array(window, qapp):
 
 def prepare_view(w, ras_run):
     """A view that differs from every default: model, contrast, voxel, map, marks, layout."""
-    assert w.open_run(ras_run["run"], stat_map=ras_run["map"], voxel=(2, 3, 4), background=False)
+    assert w.open_run(ras_run["run"], map_file=ras_run["map"], voxel=(2, 3, 4), background=False)
     assert w.state.update_settings(noise="ar1", highpass_s=90.0, onset_shift_s=1.0)
     assert w.set_contrast_text("tone - tap")
     w.state.set_map_settings(threshold=2.5, opacity=0.6)

@@ -19,7 +19,7 @@ class _Seen(QObject):
     def __init__(self, state: ViewerState) -> None:
         super().__init__()
         self.names: list[tuple] = []
-        state.map_changed.connect(lambda: self.names.append(("map",)))
+        state.overlay_changed.connect(lambda: self.names.append(("map",)))
         state.file_layer_changed.connect(lambda: self.names.append(("file",)))
         state.model_map_changed.connect(lambda m: self.names.append(("model", m)))
         state.source_layer_changed.connect(lambda s: self.names.append(("layer", s)))
@@ -36,10 +36,10 @@ def opened(ras_run):
 def test_a_run_opened_with_a_map_keeps_the_file_aside_for_the_model_map(ras_run):
     state = ViewerState()
     seen = _Seen(state)
-    bundle = load_bundle(run_path=str(ras_run["run"]), stat_map=str(ras_run["map"]))
+    bundle = load_bundle(run_path=str(ras_run["run"]), map_file=str(ras_run["map"]))
     state.set_bundle(bundle)
-    assert state.file_layer is bundle.stat_map and state.file_layer.path == ras_run["map"]
-    assert state.map_settings.source == "model" and state.stat_map is None
+    assert state.file_layer is bundle.file_layer and state.file_layer.path == ras_run["map"]
+    assert state.map_settings.source == "model" and state.overlay is None
     assert ("file",) in seen.names and ("map",) in seen.names
 
 
@@ -49,9 +49,9 @@ def test_a_run_without_events_shows_its_map_file(ras_run, tmp_path):
     run = tmp_path / "alone_bold.nii"
     shutil.copy(ras_run["run"], run)
     state = ViewerState()
-    state.set_bundle(load_bundle(run_path=str(run), stat_map=str(ras_run["map"])))
+    state.set_bundle(load_bundle(run_path=str(run), map_file=str(ras_run["map"])))
     assert state.analysis is None
-    assert state.map_settings.source == "file" and state.stat_map is state.file_layer
+    assert state.map_settings.source == "file" and state.overlay is state.file_layer
 
 
 def test_opening_a_map_file_makes_it_the_file_source_and_shows_it(opened):
@@ -60,7 +60,7 @@ def test_opening_a_map_file_makes_it_the_file_source_and_shows_it(opened):
     state.set_map_settings(limit=4.0)
     layer = load_map(spec["map"], state.run, [])
     state.set_file_layer(layer)
-    assert state.file_layer is layer and state.stat_map is layer
+    assert state.file_layer is layer and state.overlay is layer
     assert state.map_settings.source == "file" and state.map_settings.limit is None
     assert seen.names[-2:] == [("file",), ("map",)]
 
@@ -111,9 +111,9 @@ def test_the_window_shows_a_part_layer_when_its_source_is_chosen(window, ras_run
         None, np.ones(st.run.shape[:3], np.float32), 1, (-1.0, 1.0), source="disagreement"
     )
     st.set_source_layer("disagreement", layer)
-    assert st.stat_map is not layer  # not on screen until chosen
+    assert st.overlay is not layer  # not on screen until chosen
     st.set_map_source("disagreement")
-    assert st.stat_map is layer
+    assert st.overlay is layer
     again = LiveLayer(None, layer.data * 2, 1, (-2.0, 2.0), source="disagreement")
     st.set_source_layer("disagreement", again)
-    assert st.stat_map is again
+    assert st.overlay is again

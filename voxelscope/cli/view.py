@@ -84,7 +84,10 @@ def register(sub: argparse._SubParsersAction) -> None:
     # the earlier spelling, kept so that existing commands keep working; not in the help
     p.add_argument("--anat", dest="anatomy", metavar="FILE", help=argparse.SUPPRESS)
     p.add_argument(
-        "--map", metavar="FILE", dest="stat_map", help="statistic map overlay on any grid"
+        "--map",
+        metavar="FILE",
+        dest="map_file",
+        help="a map from elsewhere (e.g. a t map), on any grid, shown over the slices",
     )
     p.add_argument(
         "--tr",
@@ -226,7 +229,7 @@ def run_view(args: argparse.Namespace) -> int:
         events=args.events,
         confounds=args.confounds,
         anatomy=args.anatomy,
-        stat_map=args.stat_map,
+        map_file=args.map_file,
         tr=args.tr,
         mask=args.mask,
         bids_root=args.bids_root,

@@ -444,8 +444,8 @@ def _draw_panel(
         for run in _segments(t, v):
             pts = list(zip(p.px(t[run]).tolist(), p.py(v[run]).tolist()))
             fig.add(Polyline(pts, colour, width))
-    frame = [(p.x, p.y), (p.x + p.w, p.y), (p.x + p.w, p.y + p.h), (p.x, p.y + p.h), (p.x, p.y)]
-    fig.add(Polyline(frame, "#555555", 1.0))
+    border = [(p.x, p.y), (p.x + p.w, p.y), (p.x + p.w, p.y + p.h), (p.x, p.y + p.h), (p.x, p.y)]
+    fig.add(Polyline(border, "#555555", 1.0))
     fig.add(Text(p.x - 54, p.y + p.h / 2, ylabel, font + 1, "#222222", "middle", rotate=-90))
 
 

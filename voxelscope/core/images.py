@@ -512,8 +512,8 @@ def load_on_grid(
     >>> from nibabel.testing import data_path
     >>> from voxelscope.core.run import open_run
     >>> run = open_run(Path(data_path) / "functional.nii")
-    >>> anat = load_on_grid(Path(data_path) / "anatomical.nii", run)
-    >>> anat.shape
+    >>> t1 = load_on_grid(Path(data_path) / "anatomical.nii", run)
+    >>> t1.shape
     (17, 21, 3)
     """
     img = load_image(path)

@@ -215,8 +215,8 @@ def runs_figure(
             fig.add(Polyline([(px(b - _Z95 * s), yy), (px(b + _Z95 * s), yy)], col, 2.0))
             size = 8.0 if row == "combined" else 6.0
             fig.add(Rect(px(b) - size / 2, yy - size / 2, size, size, col))
-    frame = [(left, y0), (left + pw, y0), (left + pw, y0 + plot_h), (left, y0 + plot_h)]
-    fig.add(Polyline([*frame, (left, y0)], "#555555", 1.0))
+    border = [(left, y0), (left + pw, y0), (left + pw, y0 + plot_h), (left, y0 + plot_h)]
+    fig.add(Polyline([*border, (left, y0)], "#555555", 1.0))
     fig.add(
         Text(
             left + pw / 2,

@@ -1,4 +1,4 @@
-"""Agreement: our live model map against the user's own statistic map.
+"""Agreement: our live model map against the user's own map.
 
 Their map (any grid) is resampled onto the run's grid with
 :func:`voxelscope.core.agreement.load_their_map`; the comparison is
@@ -98,8 +98,7 @@ class AgreementPanel(QWidget):
         top.addWidget(self.file_label, 1)
         self.open_button = QPushButton("Their map…")
         self.open_button.setToolTip(
-            "Open your own statistic map (e.g. a t map from your pipeline); any grid, "
-            "resampled onto the run"
+            "Open your own map (e.g. a t map from your pipeline); any grid, resampled onto the run"
         )
         self.open_button.clicked.connect(self.ask_their_map)
         top.addWidget(self.open_button)
@@ -196,7 +195,7 @@ class AgreementPanel(QWidget):
         state.model_map_changed.connect(self._on_model_map)
         state.run_changed.connect(self._on_run)
         state.voxel_changed.connect(self._on_voxel)
-        state.map_changed.connect(self._sync_toggle)
+        state.overlay_changed.connect(self._sync_toggle)
         self._on_run()
 
     # ------------------------------------------------------------------ their map

@@ -73,11 +73,11 @@ def demo_paths() -> dict:
         "events": raw / "func" / f"{stem}_events.tsv",
         "confounds": prep / f"{stem}_desc-confounds_timeseries.tsv",
         "anatomy": raw / "anat" / "sub-demo_T1w.nii.gz",
-        "stat_map": folder / f"{stem}_pipeline-t.nii.gz",
+        "map": folder / f"{stem}_pipeline-t.nii.gz",
         "voxel": None,
         "marks": folder / "demo_marks.tsv",
     }
-    for key in ("run2", "events", "confounds", "anatomy", "stat_map", "marks"):
+    for key in ("run2", "events", "confounds", "anatomy", "map", "marks"):
         if not out[key].is_file():
             out[key] = None
     truth = folder / "demo_truth.json"
@@ -151,7 +151,7 @@ def launch(
     events: str | None = None,
     confounds: str | None = None,
     anatomy: str | None = None,
-    stat_map: str | None = None,
+    map_file: str | None = None,
     voxel: tuple[int, int, int] | None = None,
     mm: tuple[float, float, float] | None = None,
     tr: float | None = None,
@@ -176,8 +176,8 @@ def launch(
     run : path, optional
         4D run; its events, sidecar and confounds are found by BIDS names beside it when
         ``events`` / ``confounds`` are not given. Without a run the window says how to open one.
-    events, confounds, anatomy, stat_map : path, optional
-        Events TSV, confounds TSV, anatomy, statistic map overlay.
+    events, confounds, anatomy, map_file : path, optional
+        Events TSV, confounds TSV, anatomy, map shown over the slices.
     voxel : (i, j, k), optional
         Starting voxel; or ``mm``, a world position.
     tr : float, optional
@@ -252,7 +252,7 @@ def launch(
             events = events or (str(d["events"]) if d["events"] else None)
             confounds = confounds or (str(d["confounds"]) if d["confounds"] else None)
             anatomy = anatomy or (str(d["anatomy"]) if d["anatomy"] else None)
-            stat_map = stat_map or (str(d["stat_map"]) if d["stat_map"] else None)
+            map_file = map_file or (str(d["map"]) if d["map"] else None)
             marks_path = d["marks"]
             if voxel is None and mm is None:
                 voxel = d["voxel"]
@@ -260,7 +260,7 @@ def launch(
         from voxelscope.core.outputs import guard_output
 
         window.autosave.enabled = False
-        inputs = [run, events, confounds, anatomy, stat_map, session, marks_path, *add_runs]
+        inputs = [run, events, confounds, anatomy, map_file, session, marks_path, *add_runs]
         inputs += [atlas, atlas_labels]
         try:  # refuse a bad screenshot path before the run is opened
             guard_output(screenshot, inputs, force=force)
@@ -276,7 +276,7 @@ def launch(
                 return 2
         elif run is not None:
             ok = window.open_run(
-                run, events, confounds, anatomy, stat_map, tr, voxel, mm, background=False,
+                run, events, confounds, anatomy, map_file, tr, voxel, mm, background=False,
                 mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
             )  # fmt: skip
             if not ok:
@@ -340,7 +340,7 @@ def launch(
     elif run is not None:
         window.after_open = after
         window.open_run(
-            run, events, confounds, anatomy, stat_map, tr, voxel, mm, background=True,
+            run, events, confounds, anatomy, map_file, tr, voxel, mm, background=True,
             mask=mask, bids_root=bids_root, atlas=atlas, atlas_labels=atlas_labels,
         )  # fmt: skip
     elif show:

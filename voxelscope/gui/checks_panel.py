@@ -435,7 +435,7 @@ class ChecksPanel(QWidget):
         # let go of a dragged crosshair: the checks of where it rests, now
         state.dragging_changed.connect(lambda on: None if on else self.request())
         state.run_changed.connect(self._on_run)
-        state.map_changed.connect(self.request)
+        state.overlay_changed.connect(self.request)
         self._on_run()
 
     # ------------------------------------------------------------------ figures and flags

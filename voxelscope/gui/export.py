@@ -347,7 +347,7 @@ def _report_kwargs(window, out_dir, what: str, force: bool) -> dict:
         "events": bundle.events_path,
         "confounds": bundle.confounds_path,
         "anatomy": bundle.backdrop.path if bundle.backdrop is not None else None,
-        "overlay": state.stat_map.path if state.stat_map is not None else None,
+        "overlay": state.overlay.path if state.overlay is not None else None,
     }
     kwargs = dict(
         out_dir=Path(out_dir),

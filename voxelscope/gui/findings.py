@@ -258,7 +258,7 @@ class FindingsPanel(QWidget):
         self.timer.setSingleShot(True)
         self.timer.setInterval(40)
         self.timer.timeout.connect(self.refresh)
-        state.map_changed.connect(self.timer.start)
+        state.overlay_changed.connect(self.timer.start)
         state.run_changed.connect(self.timer.start)
         state.voxel_changed.connect(self._select_current)
         self.refresh()
@@ -281,7 +281,7 @@ class FindingsPanel(QWidget):
         self.threshold.blockSignals(True)
         self.threshold.setValue(st.map_settings.threshold)
         self.threshold.blockSignals(False)
-        layer = st.stat_map
+        layer = st.overlay
         if getattr(layer, "preview", False):
             return  # the live map's preview holds a few planes only; the full map follows
         opts = self.options()

@@ -82,7 +82,7 @@ class RunBundle:
     events_path: Path | None
     confounds_path: Path | None
     backdrop: Layer
-    stat_map: Layer | None = None
+    file_layer: Layer | None = None
     warnings: list[str] = field(default_factory=list)
     inputs: object = None  # the core's loader.Inputs: companions used, mask, reference time
     atlas: object = None  # the core's atlas.Atlas (region names at the cursor), or None
@@ -147,7 +147,7 @@ def load_backdrop(path: str | os.PathLike[str] | None, run, warnings: list[str])
 
 
 def load_map(path: str | os.PathLike[str], run, warnings: list[str]) -> Layer:
-    """A statistic map resampled onto the run grid (trilinear; NaN where it has no data)."""
+    """A map file resampled onto the run grid (trilinear; NaN where it has no data)."""
     path = Path(path)
     data = load_on_grid(path, run, order=1, warnings=warnings)
     finite = np.abs(data[np.isfinite(data)])
@@ -161,7 +161,7 @@ def load_bundle(
     events: str | os.PathLike[str] | None = None,
     confounds: str | os.PathLike[str] | None = None,
     anatomy: str | os.PathLike[str] | None = None,
-    stat_map: str | os.PathLike[str] | None = None,
+    map_file: str | os.PathLike[str] | None = None,
     tr: float | None = None,
     progress: Callable[[float], bool | None] | None = None,
     mask: str | os.PathLike[str] | None = None,
@@ -184,8 +184,8 @@ def load_bundle(
         Default: the BIDS companions beside the run (``find_companions``).
     anatomy : path, optional
         Anatomy; default the run's mean image.
-    stat_map : path, optional
-        Statistic map overlay.
+    map_file : path, optional
+        A map file, shown over the slices.
     tr : float, optional
         Overrides the sidecar and header TR.
     mask : path or "auto", optional
@@ -230,7 +230,7 @@ def load_bundle(
     got = load_inputs(request, progress=progress)
     warnings = list(got.warnings)
     backdrop = load_backdrop(anatomy, got.run, warnings)
-    layer = load_map(stat_map, got.run, warnings) if stat_map is not None else None
+    layer = load_map(map_file, got.run, warnings) if map_file is not None else None
     return RunBundle(
         got.run,
         got.analysis,

@@ -302,7 +302,7 @@ class MainWindow(QMainWindow):
         self.docks["Agreement"].visibilityChanged.connect(
             lambda on: agreement.catch_up() if on else None
         )
-        self.state.map_changed.connect(self._name_live_overlay)
+        self.state.overlay_changed.connect(self._name_live_overlay)
         self.settle_hooks.append(lambda: (live.flush(), wait_for_jobs(20000)))
         app = QCoreApplication.instance()
         if app is not None:
@@ -310,7 +310,7 @@ class MainWindow(QMainWindow):
 
     def _name_live_overlay(self) -> None:
         bar = self.slices.colour_bar
-        layer = self.state.stat_map
+        layer = self.state.overlay
         if isinstance(layer, LiveLayer) and bar.isVisible():
             bar.title.setText(layer.title)
             bar.title.setToolTip(layer.title)
@@ -509,7 +509,7 @@ class MainWindow(QMainWindow):
         events=None,
         confounds=None,
         anatomy=None,
-        stat_map=None,
+        map_file=None,
         tr=None,
         voxel=None,
         mm=None,
@@ -534,7 +534,7 @@ class MainWindow(QMainWindow):
             events=events,
             confounds=confounds,
             anatomy=anatomy,
-            stat_map=stat_map,
+            map_file=map_file,
             tr=tr,
             mask=mask,
             bids_root=bids_root,

@@ -102,7 +102,7 @@ class MapPanel(QWidget):
         )
         self.source.currentIndexChanged.connect(self._source_chosen)
         self.open_button = QPushButton("Open map…")
-        self.open_button.setToolTip("Open a statistic map file (any grid; resampled to the run)")
+        self.open_button.setToolTip("Open a map file (any grid; resampled to the run)")
         self.open_button.clicked.connect(self.open_requested.emit)
         self.rows["show"] = add_row(0, "Show", (self.source, 1), self.open_button)
 
@@ -240,7 +240,7 @@ class MapPanel(QWidget):
         )
         self.live.shown.connect(lambda _layer: self._on_map())
         self.live.failed.connect(self._failed)
-        state.map_changed.connect(self._on_map)
+        state.overlay_changed.connect(self._on_map)
         state.run_changed.connect(self._on_map)
         state.settings_changed.connect(lambda _s: self._on_map())
         self._on_map()
@@ -294,7 +294,7 @@ class MapPanel(QWidget):
     def _on_map(self) -> None:
         st = self.state
         s = st.map_settings
-        layer = st.stat_map
+        layer = st.overlay
         has_run = st.run is not None
         has_model = has_run and st.analysis is not None
         live = self.live

@@ -371,7 +371,7 @@ class LiveMap(QObject):
         self._seen = self._key()
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
-        state.map_changed.connect(self._on_map)
+        state.overlay_changed.connect(self._on_map)
         state.runs_changed.connect(self._on_runs)
         state.source_layer_changed.connect(self._on_source_layer)
 
@@ -587,9 +587,9 @@ class LiveMap(QObject):
             None, data, 1, (-top, top), title=f"{req.stat} · {req.kernel} (preview)",
             stat=req.stat, source="model", preview=True,
         )  # fmt: skip
-        keep = isinstance(st.stat_map, LiveLayer) and st.stat_map.source == "model"
-        keep = keep and st.stat_map.stat == req.stat
-        st.set_map(layer, keep_scale=keep)
+        keep = isinstance(st.overlay, LiveLayer) and st.overlay.source == "model"
+        keep = keep and st.overlay.stat == req.stat
+        st.set_overlay(layer, keep_scale=keep)
         self.maps_shown += 1
         self.previews_shown += 1
         self.shown.emit(layer)
@@ -635,10 +635,10 @@ class LiveMap(QObject):
             layer = st.file_layer
         else:
             layer = st.source_layers.get(source)
-        if layer is not st.stat_map:
-            keep = isinstance(layer, LiveLayer) and isinstance(st.stat_map, LiveLayer)
-            keep = keep and layer.source == st.stat_map.source and layer.stat == st.stat_map.stat
-            st.set_map(layer, keep_scale=keep)
+        if layer is not st.overlay:
+            keep = isinstance(layer, LiveLayer) and isinstance(st.overlay, LiveLayer)
+            keep = keep and layer.source == st.overlay.source and layer.stat == st.overlay.stat
+            st.set_overlay(layer, keep_scale=keep)
             if isinstance(layer, LiveLayer):
                 self.maps_shown += 1
         self.shown.emit(layer)

@@ -61,7 +61,7 @@ __all__ = [
 SESSION_FILTER = f"voxelscope sessions (*{SESSION_SUFFIX});;JSON (*.json);;All files (*)"
 #: Roles of input files in a session (core names) and the ``open_run`` argument for each.
 ROLES = {"run": "run", "events": "events", "confounds": "confounds", "anatomy": "anatomy",
-         "overlay": "stat_map", "atlas": "atlas", "atlas labels": "atlas_labels"}  # fmt: skip
+         "overlay": "map_file", "atlas": "atlas", "atlas labels": "atlas_labels"}  # fmt: skip
 LAYOUT_KIND = "qt-main-window"
 
 Locate = Callable[[FileProblem], "Path | None"]
@@ -105,7 +105,7 @@ def window_layout(window) -> dict:
 
 def _overlay_path(window) -> Path | None:
     """The map file opened over the run (kept aside while the live model map is shown)."""
-    for layer in (window.state.file_layer, window.state.stat_map):
+    for layer in (window.state.file_layer, window.state.overlay):
         if layer is not None and getattr(layer, "path", None) is not None:
             return Path(layer.path)
     return None
@@ -326,7 +326,7 @@ def apply_session(
         events=kwargs.get("events"),
         confounds=kwargs.get("confounds"),
         anatomy=kwargs.get("anatomy"),
-        stat_map=kwargs.get("stat_map"),
+        map_file=kwargs.get("map_file"),
         tr=tr,
         voxel=s.voxel,
         background=background,
@@ -449,7 +449,7 @@ class Autosave(QObject):
         self.debounce.setInterval(int(debounce_s * 1000))
         self.debounce.timeout.connect(self.write_now)
         st = window.state
-        for sig in (st.run_changed, st.settings_changed, st.map_changed, st.marks_changed):
+        for sig in (st.run_changed, st.settings_changed, st.overlay_changed, st.marks_changed):
             sig.connect(self.significant)
         st.voxel_changed.connect(self.changed)
         st.units_changed.connect(self.changed)

@@ -200,7 +200,7 @@ class SliceView(pg.GraphicsView):
         self._lut = None
         state.run_changed.connect(self._on_run)
         state.backdrop_changed.connect(self._on_backdrop)
-        state.map_changed.connect(self._on_map)
+        state.overlay_changed.connect(self._on_map)
         state.voxel_changed.connect(self._on_voxel)
 
     # ------------------------------------------------------------------ geometry
@@ -356,7 +356,7 @@ class SliceView(pg.GraphicsView):
         return QTransform(x1 - x0, y1 - y0, x2 - x0, y2 - y0, x0, y0)
 
     def _on_map(self) -> None:
-        grid, layer = self.state.grid, self.state.stat_map
+        grid, layer = self.state.grid, self.state.overlay
         if grid is None or layer is None or not self.state.map_settings.visible:
             self._map_vol = None
             self.over.setVisible(False)
@@ -521,7 +521,7 @@ class ColourBar(QWidget):
         lay.addWidget(self.note)
         self.setFixedWidth(96)
         self._tick_font = tick_font
-        state.map_changed.connect(self._on_map)
+        state.overlay_changed.connect(self._on_map)
         state.run_changed.connect(self._on_map)
         self._on_map()
 
@@ -538,7 +538,7 @@ class ColourBar(QWidget):
         return was
 
     def _on_map(self) -> None:
-        layer = self.state.stat_map
+        layer = self.state.overlay
         if layer is None or not self.state.map_settings.visible:
             self.setVisible(False)
             return
@@ -648,7 +648,7 @@ class SlicesPanel(QWidget):
         line.addWidget(self.goto)
         outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
-        state.map_changed.connect(self._refresh)
+        state.overlay_changed.connect(self._refresh)
         state.backdrop_changed.connect(self._refresh)
         state.atlas_changed.connect(self._refresh)
 
@@ -678,7 +678,7 @@ class SlicesPanel(QWidget):
         if under is not None and under.path is not None:
             value = fmt("value", under.value_at((x, y, z), voxel))
             parts.append((5, f"<b>Anatomy</b> {value}"))
-        layer = self.state.stat_map
+        layer = self.state.overlay
         if layer is not None:
             kind = stat_kind(self.state.map_settings.stat)
             parts.append((2, f"<b>Map</b> {fmt(kind, layer.data[i, j, k])}"))

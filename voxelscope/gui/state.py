@@ -221,9 +221,9 @@ class ViewerState(QObject):
 
     The map part of the state:
 
-    ``stat_map``
+    ``overlay``
         The overlay on screen (a map file, a :class:`LiveLayer` made in the window, or
-        None); :meth:`set_map`, signal ``map_changed`` (also sent when ``map_settings``
+        None); :meth:`set_overlay`, signal ``overlay_changed`` (also sent when ``map_settings``
         change).
     ``map_settings.source``
         What the overlay shows (:data:`SOURCES`); :meth:`set_map_source` remembers the
@@ -249,7 +249,7 @@ class ViewerState(QObject):
     run_changed = Signal()
     backdrop_changed = Signal()
     atlas_changed = Signal()
-    map_changed = Signal()
+    overlay_changed = Signal()
     file_layer_changed = Signal()
     model_map_changed = Signal(object)
     source_layer_changed = Signal(str)
@@ -309,7 +309,7 @@ class ViewerState(QObject):
         return None if self.bundle is None else self.bundle.backdrop
 
     @property
-    def stat_map(self) -> Layer | None:
+    def overlay(self) -> Layer | None:
         """The overlay on screen (None without a run)."""
         return None if self.bundle is None else self._overlay
 
@@ -317,7 +317,7 @@ class ViewerState(QObject):
         """Colour scale limit in use (settings, else from the map)."""
         if self.map_settings.limit is not None:
             return float(self.map_settings.limit)
-        layer = self.stat_map
+        layer = self.overlay
         top = 1.0 if layer is None else float(layer.levels[1])
         return top if top > 0 else 1.0
 
@@ -341,9 +341,9 @@ class ViewerState(QObject):
         self.settings = settings
         # the map file opened with the run; with a model the live model map replaces it
         # shortly and the file stays one choice away (source "file")
-        self.file_layer = self._overlay = bundle.stat_map
+        self.file_layer = self._overlay = bundle.file_layer
         self.model_map = None
-        if bundle.stat_map is not None:
+        if bundle.file_layer is not None:
             self.map_settings = self.map_settings.with_(limit=None)
             source = self.map_settings.source
             if bundle.analysis is not None and source in ("model", "difference"):
@@ -361,7 +361,7 @@ class ViewerState(QObject):
         self.runs_changed.emit()
         self.backdrop_changed.emit()
         self.file_layer_changed.emit()
-        self.map_changed.emit()
+        self.overlay_changed.emit()
         self.settings_changed.emit(self.settings)
         self.contrast_error.emit("")
         self.voxel_changed.emit(self.voxel)
@@ -387,14 +387,14 @@ class ViewerState(QObject):
         self.bundle.atlas = atlas
         self.atlas_changed.emit()
 
-    def set_map(self, layer: Layer | None, keep_scale: bool = False) -> None:
+    def set_overlay(self, layer: Layer | None, keep_scale: bool = False) -> None:
         """Show ``layer`` as the overlay; ``keep_scale`` keeps a fixed colour scale limit."""
         if self.bundle is None:
             return
         self._overlay = layer
         if not keep_scale:
             self.map_settings = self.map_settings.with_(limit=None)
-        self.map_changed.emit()
+        self.overlay_changed.emit()
 
     def set_file_layer(self, layer: Layer) -> None:
         """A map file opened over the run (File > Open map, a drop): it becomes the
@@ -404,7 +404,7 @@ class ViewerState(QObject):
         self.file_layer = layer
         self.map_settings = self.map_settings.with_(source="file")
         self.file_layer_changed.emit()
-        self.set_map(layer)
+        self.set_overlay(layer)
 
     def set_map_source(self, source: str) -> None:
         """Show another source (:data:`SOURCES`); each source keeps the threshold it was
@@ -601,7 +601,7 @@ class ViewerState(QObject):
         new = self.map_settings.with_(**changes)
         if new != self.map_settings:
             self.map_settings = new
-            self.map_changed.emit()
+            self.overlay_changed.emit()
 
     def set_units(self, units: str) -> None:
         if units not in UNITS:
