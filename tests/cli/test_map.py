@@ -197,6 +197,36 @@ def test_ols_t_map_imports_no_scipy_subpackage(tmp_path):
     assert out.exists()
 
 
+def test_map_of_a_plain_nii_reads_it_once(tmp_path, monkeypatch):
+    """No separate summary pass: the volumes summarised apart from the map are only the
+    first few its mask guess is taken from; the map equals the one the same command
+    writes when the summary pass comes first (one pass switched off)."""
+    from voxelscope.core import maps
+    from voxelscope.core import run as run_module
+
+    path, events, _ = _write_run(tmp_path)
+    seen = []
+    real = run_module.summarize_volumes
+
+    def counting(volumes, layout):
+        volumes = list(volumes)
+        seen.append(sum(v.shape[0] for v in volumes))
+        return real(iter(volumes), layout)
+
+    monkeypatch.setattr(run_module, "summarize_volumes", counting)
+    once, twice = tmp_path / "once.nii", tmp_path / "twice.nii"
+    argv = ["map", str(path), "--events", str(events), "--noise", "ols", "-o"]
+    assert main([*argv, str(once)]) == 0
+    assert seen and sum(seen) <= maps.GUESS_VOLUMES, seen
+    monkeypatch.setattr(maps, "ONE_PASS_SHARE", 2.0)  # never: the summary pass first
+    seen.clear()
+    assert main([*argv, str(twice)]) == 0
+    assert sum(seen) > maps.GUESS_VOLUMES
+    a, b = (np.asarray(nib.load(p).dataobj) for p in (once, twice))
+    np.testing.assert_allclose(a, b, rtol=2.5e-7, atol=0)
+    assert np.count_nonzero(a) == np.count_nonzero(b) > 100
+
+
 def test_explain_rounds_say_what_they_build_on():
     """Issue 17 item 10: a label repeated in the second round is introduced as built on the
     first round's kept change."""

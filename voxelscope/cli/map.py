@@ -171,7 +171,9 @@ def run_map(args: argparse.Namespace) -> int:
     from ..core.cache import terminal_progress
     from ..core.maps import compute_map
 
-    loaded: Loaded = analysis_from_args(args)
+    # no summary pass at load: the map reads a plain .nii once for its mask and its fit,
+    # and the run's notes (NaN voxels) are printed with the map's
+    loaded: Loaded = analysis_from_args(args, summarize=False)
     run, analysis = loaded.run, loaded.analysis
     settings = loaded.settings.with_(kernels=(args.kernel,))
     warnings = list(loaded.warnings)
