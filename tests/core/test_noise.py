@@ -217,17 +217,20 @@ def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order, piece, monke
 
     s = glm.arp_block_sums(prep, Y, max(order, AR_ORDER, BIAS_LAGS))
     many = glm.fit_sums(prep, s, w, phi)
+    contrast_only = glm.fit_sums(prep, s, w, phi, betas=False)  # what a map asks for
+    assert contrast_only.betas is None
     direct = glm.fit(prep, Y, w, noise="arp", ar=phi, keep_series=False)
     for v in (0, 13, 77, 99):
         Sigma = toeplitz(arma_acf(np.r_[1, -phi[:, v]], [1], T))
         tt = sm.GLS(Y[:, v], d.X, sigma=Sigma).fit().t_test(w)
-        for res in (many, direct):
+        for res in (many, contrast_only, direct):
             assert float(res.beta[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
             assert float(res.variance[v]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
             assert float(res.t[v]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
 
 
-def test_one_pass_near_exact_fits_use_explicit_residuals():
+@pytest.mark.parametrize("betas", [True, False])
+def test_one_pass_near_exact_fits_use_explicit_residuals(betas):
     """A voxel that the design fits almost exactly (1 - R^2 ~ 1e-14): the difference
     y*'y* - b'X*'y* would cancel, so fit_sums asks for the voxel's series and whitens its
     residuals; the variance equals statsmodels GLS to 1e-6 (its own rounding)."""
@@ -244,7 +247,7 @@ def test_one_pass_near_exact_fits_use_explicit_residuals():
         asked.extend(idx.tolist())
         return Yc[:, idx]
 
-    res = glm.fit_sums(prep, glm.arp_block_sums(prep, Y), w, phi, series=series)
+    res = glm.fit_sums(prep, glm.arp_block_sums(prep, Y), w, phi, series=series, betas=betas)
     assert 3 in asked and len(asked) < 5
     Sigma = toeplitz(arma_acf([1, -0.4, -0.1], [1], T))
     tt = sm.GLS(Y[:, 3], d.X, sigma=Sigma).fit().t_test(w)

@@ -631,7 +631,8 @@ class FitResult:
     noise : {"ols", "ar1", "arp"}
     weights : ndarray (p,)
         Contrast weights.
-    betas : ndarray (p, n_voxels)
+    betas : ndarray (p, n_voxels) or None
+        None only from :func:`fit_sums` with ``betas=False`` (a map: the contrast only).
     beta : contrast estimate ``c'b``
     variance : ``sigma2 * c'(X'X)^-1 c`` (whitened X under AR(1))
     t, p : t statistic and its two-sided p value (``p`` is None when the fit was asked
@@ -666,7 +667,7 @@ class FitResult:
 
     noise: str
     weights: np.ndarray
-    betas: np.ndarray
+    betas: np.ndarray | None
     beta: np.ndarray
     variance: np.ndarray
     t: np.ndarray
@@ -1014,13 +1015,15 @@ def fit_sums(
     ar: np.ndarray,
     want_p: bool = True,
     series=None,
+    betas: bool = True,
 ) -> FitResult:
     """:func:`fit` under ``noise="arp"`` from one-pass sums (:func:`arp_block_sums`)
     instead of the data: what a map does once it knows every voxel's AR coefficients.
 
     ``series(idx)`` returns the working copy (:func:`working_copy`) of some of the voxels;
     it is called only for near-exact fits (see :data:`RSS_GUARD`). Fitted values and
-    residuals are not kept; ``r2`` is NaN.
+    residuals are not kept; ``r2`` is NaN. With ``betas=False`` (what a map asks for)
+    only the contrast is estimated and ``betas`` of the result is None.
     """
     from .noise import arp_solve
 
@@ -1037,11 +1040,13 @@ def fit_sums(
     if ar.shape[1] != v or not np.all(np.isfinite(ar)):
         raise InputError(f"ar has {ar.shape[1]} columns for {v} voxels (or non-finite values)")
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
-        B, cov, cvar, rss_w, _C = arp_solve(prep, sums, ar, c, want_cov=v <= 64, series=series)
+        B, cov, cvar, rss_w, _C, cb = arp_solve(
+            prep, sums, ar, c, want_cov=v <= 64, series=series, betas=betas
+        )
         bad = sums.bad if sums.bad.any() else None
         return _finish(
             prep, c, "arp", B, cov, cvar, np.full(v, np.nan), rss_w, sums.mean, sums.tss,
-            bad, None, False, want_p, None, None, np.arange(v), None, ar,
+            bad, None, False, want_p, None, None, np.arange(v), None, ar, cb=cb,
         )  # fmt: skip
 
 
@@ -1072,7 +1077,7 @@ def _fit_checked(
         from .noise import AR_ORDER, BIAS_LAGS, arp_solve, arp_sums, whiten
 
         sums = arp_sums(prep, Y, mean, tss, bad, max(ar.shape[0], AR_ORDER, BIAS_LAGS))
-        B, cov, cvar, rss_w, filt = arp_solve(
+        B, cov, cvar, rss_w, filt, _cb = arp_solve(
             prep, sums, ar, c, want_cov=keep_series or v <= 64, series=lambda i: Y[:, i]
         )
         if keep_series:  # residuals are shown: all explicit
@@ -1151,11 +1156,15 @@ def _finish(
     group: np.ndarray,
     rho: np.ndarray | None,
     ar: np.ndarray | None,
+    *,
+    cb: np.ndarray | None = None,
 ) -> FitResult:
-    """Variance, t, p and the degenerate voxels of a fit; the mean back into the constant."""
+    """Variance, t, p and the degenerate voxels of a fit; the mean back into the constant.
+
+    ``B`` may be None when ``cb`` (``c'B`` of the working copy) is given."""
     X = prep.X
     n = X.shape[0]
-    v = B.shape[1]
+    v = rss_w.shape[0]
     centred = prep.constant_index is not None
     df = prep.df
     if cov is None:
@@ -1168,12 +1177,15 @@ def _finish(
         degenerate |= bad
     if df <= 0:
         degenerate[:] = True
-    if centred:  # the constant column need not be all ones
-        B[prep.constant_index] += mean / X[0, prep.constant_index]
-    beta = c @ B
+    if B is None:  # the contrast only (a map); the mean goes back in as into the constant
+        beta = cb + c[prep.constant_index] * mean / X[0, prep.constant_index] if centred else cb
+    else:
+        if centred:  # the constant column need not be all ones
+            B[prep.constant_index] += mean / X[0, prep.constant_index]
+        beta = c @ B
     if prep.n_model is not None:  # indicator columns of censored volumes: not reported
         m = prep.n_model
-        B, c, X = B[:m], c[:m], X[:, :m]
+        B, c, X = (None if B is None else B[:m]), c[:m], X[:, :m]
         if cov.shape[0]:
             cov = cov[:, :m, :m]
     variance = sigma2 * cvar
@@ -1196,7 +1208,8 @@ def _finish(
     else:
         Rw = None
     if bad is not None:  # voxels with NaN or infinite samples have no fit at all
-        B[:, bad] = np.nan
+        if B is not None:
+            B[:, bad] = np.nan
         beta[bad] = np.nan
         r2[bad] = np.nan
         sigma2[bad] = np.nan

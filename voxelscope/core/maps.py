@@ -578,7 +578,6 @@ def compute_map(
         _prep = censored_design(_prep)  # censored volumes inside the run: exact
         order = AR_ORDER
         n_lags = max(order, BIAS_LAGS)
-        inside = np.flatnonzero(mask.reshape(-1))
         values = np.zeros((n_all, n_lags + 1))
         valid = np.zeros(n_all, dtype=bool)
         kept: list = []  # (voxel indices, their sums), block by block
@@ -596,13 +595,8 @@ def compute_map(
             _for_blocks(chunks(), lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers)
         sm = smooth_map(values.reshape((*shape, n_lags + 1)), valid.reshape(shape) & mask, run)
         del values
-        with _one_blas_thread():  # small products: one BLAS thread is faster, as above
-            phi_in = ar_from_smoothed(sm.reshape(-1, n_lags + 1)[inside].T, order, _prep)[0]
-        del sm
+        sm = sm.reshape(-1, n_lags + 1)
         phi_flat = np.zeros((order, n_all))
-        phi_flat[:, inside] = phi_in
-        del phi_in
-        ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
 
         def pieces():
             # the solves are elementwise over voxels: pieces of at least SOLVE_VOXELS keep
@@ -614,17 +608,27 @@ def compute_map(
                 yield np.concatenate([i for i, _ in got]), ArpSums.concat([x for _, x in got])
 
         def fit_piece(idx: np.ndarray, sums):
+            # each voxel's AR coefficients depend only on its smoothed values, so the
+            # workers estimate them piece by piece, beside the solves
+            phi = ar_from_smoothed(sm[idx].T, order, _prep)[0]
             return fit_sums(
                 _prep,
                 sums,
                 weights,
-                phi_flat[:, idx],
+                phi,
                 want_p=need_p,
                 series=lambda i: _working_series(run, _prep, idx[i]),
+                betas=False,
             )
 
-        with _one_blas_thread():
-            _for_blocks(pieces(), fit_piece, store, n_workers, with_index=True)
+        def store_piece(idx: np.ndarray, res) -> None:
+            phi_flat[:, idx] = res.ar
+            store(idx, res)
+
+        with _one_blas_thread():  # small products: one BLAS thread is faster, as above
+            _for_blocks(pieces(), fit_piece, store_piece, n_workers, with_index=True)
+        del sm
+        ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
     else:
 
         def fit_chunk(idx: np.ndarray, data: np.ndarray):

@@ -636,7 +636,8 @@ def arp_solve(
     c: np.ndarray,
     want_cov: bool = True,
     series: Any = None,
-) -> tuple[np.ndarray, np.ndarray | None, np.ndarray, np.ndarray, np.ndarray]:
+    betas: bool = True,
+) -> tuple[np.ndarray | None, np.ndarray | None, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """GLS of every voxel of the sums under its own AR(p) whitening ``phi`` (p, V).
 
     ``series(idx)`` returns the working copy of some voxels (T, k): it is called only for
@@ -645,9 +646,10 @@ def arp_solve(
 
     Returns
     -------
-    B : (q, V) betas of the working copy; cov : (V, q, q) ``(X*'X*)^-1`` (None unless
-    ``want_cov``); cvar : (V,) ``c' (X*'X*)^-1 c``; rss_w : (V,) the whitened residual sum
-    of squares; C : (V, p+1, p+1) the whitening filters.
+    B : (q, V) betas of the working copy (None when ``betas`` is False: a map needs only
+    the contrast); cov : (V, q, q) ``(X*'X*)^-1`` (None unless ``want_cov``); cvar : (V,)
+    ``c' (X*'X*)^-1 c``; rss_w : (V,) the whitened residual sum of squares; C : (V, p+1,
+    p+1) the whitening filters; cb : (V,) ``c' B``.
     """
     phi = np.asarray(phi, dtype=np.float64)
     if phi.ndim == 1:
@@ -679,9 +681,11 @@ def arp_solve(
     # X*'X* (q, q, V) = basis @ (g, top, bot): one product, then the solves, piece by piece
     coef = np.concatenate([g, top.reshape(p * p, V), bot.reshape(p * p, V)])
     cs = c / norms
-    Bs = np.empty((q, V))
+    betas = betas or want_cov
+    Bs = np.empty((q, V)) if betas else np.full((q, V), np.nan)
     cvar = np.empty(V)
     zz = np.empty(V)
+    cb = np.empty(V)
     cov = np.empty((V, q, q)) if want_cov else None
     if want_cov:
         for a in range(0, V, SOLVE_PIECE):
@@ -692,45 +696,78 @@ def arp_solve(
             cov[sl] = Ginv / np.outer(norms, norms)
             cvar[sl] = np.einsum("i,vij,j->v", c, cov[sl], c)
             zz[sl] = np.einsum("iv,iv->v", gv[:, sl], Bs[:, sl])
-    else:  # one bordered Cholesky per voxel: its factor, L^-1 X*'y* and L^-1 c at once
-        columns = D.get(("columns", p))
+    else:
+        # One bordered Cholesky per voxel gives the factor L and z = L^-1 X*'y*, with the
+        # columns that the contrast weighs put last: then c'G^-1 c = |L_c^-1 c_c|^2 and
+        # c'b = (L_c^-1 c_c)'z_c need only L's last block L_c, and |z|^2 = y*'X* b.
+        nz = np.flatnonzero(cs != 0)
+        perm = np.concatenate([np.setdiff1d(np.arange(q), nz), nz])
+        r = nz.size
+        key = ("columns", p, perm.tobytes())
+        columns = D.get(key)
         if columns is None:
-            columns = D[("columns", p)] = _gram_columns(basis, q)
+            columns = D[key] = _gram_columns(basis, q, perm)
+        cr = cs[nz]
         w = min(V, SOLVE_PIECE)
-        A = np.empty((q, q + 2, w))
-        tmp = np.empty((q + 2, w))
+        A = np.empty((q, q + 1, w))
+        tmp = np.empty((q + 1, w))
         for a in range(0, V, SOLVE_PIECE):
             b = min(V, a + SOLVE_PIECE)
             sl = slice(a, b)
             if b - a < w:  # the last, shorter piece
                 w = b - a
-                A = np.empty((q, q + 2, w))
-                tmp = np.empty((q + 2, w))
+                A = np.empty((q, q + 1, w))
+                tmp = np.empty((q + 1, w))
             part = coef[:, sl]
             for j in range(q):
                 np.matmul(columns[j], part, out=A[j, j:q])
-            A[:, q] = gv[:, sl]
-            A[:, q + 1] = cs[:, None]
+            np.take(gv[:, sl], perm, axis=0, out=A[:, q])
             _bordered_cholesky(A, tmp)
             z = A[:, q]
-            u = A[:, q + 1]
-            Bs[:, sl] = _back_substitute(A, z)
-            cvar[sl] = np.einsum("iv,iv->v", u, u)  # c' G^-1 c = |L^-1 c|^2
             zz[sl] = np.einsum("iv,iv->v", z, z)  # y*'X* G^-1 X*'y* = |L^-1 X*'y*|^2
+            u = _forward_last(A, cr)  # L_c^-1 c_c
+            cvar[sl] = np.einsum("iv,iv->v", u, u)  # c' G^-1 c = |L^-1 c|^2
+            cb[sl] = np.einsum("iv,iv->v", u, z[q - r :])  # c' G^-1 X*'y*
+            if betas:
+                Bs[perm, sl] = _back_substitute(A, z)
+            else:  # near-exact fits need their betas for explicit residuals
+                rw = yy[sl] - zz[sl]
+                near = np.flatnonzero(~(rw > RSS_GUARD * yy[sl]))
+                if near.size:
+                    Bs[perm[:, None], a + near] = _back_substitute(A[:, :, near], z[:, near])
     rss_w = yy - zz
-    B = Bs / norms[:, None]
     close = np.flatnonzero(~(rss_w > RSS_GUARD * yy))
+    B = Bs / norms[:, None] if betas else Bs[:, close] / norms[:, None]
     if close.size and series is not None:
-        Rc = series(close) - prep.X @ B[:, close]
+        Rc = series(close) - prep.X @ (B[:, close] if betas else B)
         Rwc = whiten(C[close], Rc)
         rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
-    return B, cov, cvar, rss_w, C
+    if want_cov:
+        cb = c @ B
+    return (B if betas else None), cov, cvar, rss_w, C, cb
 
 
-def _gram_columns(basis: np.ndarray, q: int) -> list[np.ndarray]:
-    """Rows of ``basis`` (:func:`_normal_basis`) that give column ``j`` of ``X*'X*`` from
-    its diagonal down (rows ``j..q-1``): the lower triangle, q (q + 1) / 2 entries."""
-    return [np.ascontiguousarray(basis[np.arange(j, q) * q + j]) for j in range(q)]
+def _gram_columns(basis: np.ndarray, q: int, perm: np.ndarray) -> list[np.ndarray]:
+    """Rows of ``basis`` (:func:`_normal_basis`) that give column ``j`` of ``X*'X*`` with
+    rows and columns in the order ``perm``, from its diagonal down (rows ``j..q-1``): the
+    lower triangle, q (q + 1) / 2 entries."""
+    return [np.ascontiguousarray(basis[perm[j:] * q + perm[j]]) for j in range(q)]
+
+
+def _forward_last(A: np.ndarray, c: np.ndarray) -> np.ndarray:
+    """``L_c^-1 c`` (r, V) for the last r x r block ``L_c`` of the factors of
+    :func:`_bordered_cholesky` (``A``) and a vector ``c`` (r,)."""
+    q = A.shape[0]
+    r = c.size
+    u = np.empty((r, A.shape[2]))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        for i in range(r):
+            row = q - r + i
+            acc = np.full(A.shape[2], float(c[i]))
+            for k in range(i):
+                acc -= A[q - r + k, row] * u[k]
+            u[i] = acc / A[row, row]
+    return u
 
 
 def _normal_basis(D: dict, p: int) -> tuple[np.ndarray, np.ndarray]:
