@@ -512,3 +512,102 @@ def test_censored_map_and_clicked_voxel_agree_and_say_nothing_approximate():
         vf = a.fit_voxel(run.data[ijk], s, est)
         assert vf.by_kernel(KERNEL).t == pytest.approx(float(m.t[ijk]), rel=1e-5, abs=1e-6)
         assert not any("approximat" in w for w in vf.warnings)
+
+
+# ----------------------------------------------------------------------------- effective df
+
+
+def test_rho_df_tends_to_the_published_formula_for_wide_kernels(monkeypatch):
+    """rho_df on the voxel grid against the continuum formula of Worsley et al. (2002,
+    from memory) nu (2 (f_rho / f_data)^2 + 1)^(3/2), for kernels many voxels wide (the
+    discrete sums tend to the integrals), and the number of voxels averaged,
+    (sum w)^2 / sum w^2 per axis, for independent voxels (a published identity for a
+    weighted mean of independent values)."""
+    from voxelscope.core import noise
+    from voxelscope.core.noise import rho_df, smoothing_weights
+
+    truncated = [rho_df(100, (0.25, 0.25, 0.25), f, fwhm_mm=8.0) for f in (4.0, 8.0, 12.0)]
+    monkeypatch.setattr(noise, "TRUNCATE_SIGMA", 6.0)  # the untruncated Gaussian
+    for f_data, cut in zip((4.0, 8.0, 12.0), truncated):
+        got = rho_df(100, (0.25, 0.25, 0.25), f_data, fwhm_mm=8.0)
+        ref = 100 * (2 * (8.0 / f_data) ** 2 + 1) ** 1.5
+        assert got == pytest.approx(ref, rel=0.01)
+        assert cut < got  # the kernel as used (2 sigma) averages fewer voxels
+    monkeypatch.undo()
+    w = smoothing_weights((3.0, 3.0, 4.0), 8.0)
+    count = np.prod([w_.sum() ** 2 / (w_**2).sum() for w_ in w])
+    assert rho_df(50, (3.0, 3.0, 4.0), 0.0, 8.0) == pytest.approx(50 * count, rel=1e-12)
+
+
+def test_smoothness_estimate_finds_a_known_gaussian_smoothing():
+    """White noise smoothed with a Gaussian of known FWHM (scipy.ndimage.gaussian_filter;
+    FWHM = 2 sqrt(2 ln 2) sigma, a published identity) is found within 5 %."""
+    from scipy import ndimage
+
+    from voxelscope.core.noise import smoothness_fwhm
+
+    e = np.random.default_rng(3).standard_normal((30, 30, 20, 30))
+    sig = (1.5, 2.0, 1.2)
+    x = ndimage.gaussian_filter(e, (*sig, 0.0), mode="wrap")
+    got = smoothness_fwhm(x, np.ones(x.shape[:3], bool), (2.0, 2.0, 3.0))
+    want = [2.0 * np.sqrt(2.0 * np.log(2.0)) * s * v for s, v in zip(sig, (2.0, 2.0, 3.0))]
+    np.testing.assert_allclose(got, want, rtol=0.05)
+
+
+def test_contrast_autocorr_equals_dense_whitening():
+    """tau_j of the whitened contrast weights, against the whitening done here with the
+    inverse Cholesky factor of statsmodels' AR covariance (arma_acf), dense."""
+    from voxelscope.core.noise import contrast_autocorr
+
+    a = _analysis()
+    d, prep = a.prepared(KERNEL, ModelSettings())
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    phi = np.array([[0.5, 0.1], [0.2, -0.05]])
+    tau = contrast_autocorr(prep, phi, w, lags=5)
+    for v in range(2):
+        L = np.linalg.cholesky(toeplitz(arma_acf(np.r_[1, -phi[:, v]], [1], T)))
+        Xw = np.linalg.solve(L, d.X)
+        av = Xw @ np.linalg.solve(Xw.T @ Xw, w)
+        ref = [av[j:] @ av[: T - j] / (av @ av) for j in range(1, 6)]
+        np.testing.assert_allclose(tau[:, v], ref, rtol=1e-9, atol=1e-12)
+
+
+@pytest.mark.slow
+def test_recalled_effective_df_overcorrects_with_a_known_pooling():
+    """The check by simulation of the effective df as recalled (the module text of
+    noise.py): null AR(2) series of a block design, each voxel's AR coefficients from the
+    bias-corrected autocovariances averaged over K = 4 independent voxels (so nu_rho is
+    nu K exactly, by construction). The rate of |t| beyond the t(n - rank) critical value
+    is inside the 99 % binomial interval around .05 (scipy.stats.binomtest), while the
+    effective df of the recalled formula puts it far below: it over-corrects."""
+    from voxelscope.core.noise import (
+        AR_ORDER,
+        BIAS_LAGS,
+        ar_from_smoothed,
+        contrast_autocorr,
+        effective_df,
+    )
+
+    n, K, reps = 200, 4, 24000
+    rng = np.random.default_rng(11)
+    a = Analysis(calibration.design("block", n, rng), n_volumes=n, tr=TR)
+    _d, prep = a.prepared(KERNEL, ModelSettings(kernels=(KERNEL,)))
+    w = a.contrast_weights(KERNEL, ModelSettings(kernels=(KERNEL,)))
+    nu = prep.df
+    ts, taus = [], []
+    for _ in range(reps // 4000):
+        e = rng.standard_normal((n + 100, 4000 * K))
+        x = np.zeros_like(e)
+        for t in range(e.shape[0]):
+            x[t] = e[t] + (0.5 * x[t - 1] if t else 0) + (0.2 * x[t - 2] if t > 1 else 0)
+        s = glm.arp_block_sums(prep, x[100:], max(AR_ORDER, BIAS_LAGS))
+        phi = ar_from_smoothed(s.v.reshape(s.v.shape[0], 4000, K).mean(axis=2), AR_ORDER, prep)[0]
+        ts.append(glm.fit_sums(prep, s.take(np.arange(4000) * K), w, phi).t)
+        taus.append(contrast_autocorr(prep, phi[:, ::100], w))
+    t = np.concatenate(ts)
+    nu_eff = float(np.median(effective_df(nu, np.concatenate(taus, axis=1), nu * K)))
+    ci = stats.binomtest(round(0.05 * t.size), t.size, 0.05).proportion_ci(0.99)
+    plain = float(np.mean(np.abs(t) > stats.t.isf(0.025, nu)))
+    recalled = float(np.mean(np.abs(t) > stats.t.isf(0.025, nu_eff)))
+    assert ci.low <= plain <= ci.high, (plain, ci)
+    assert recalled < ci.low, (recalled, nu_eff)

@@ -1276,3 +1276,175 @@ def voxel_ar(
     sm = (vals @ w) / den if den > 0 else np.zeros(vals.shape[0])
     phi, rho = ar_from_smoothed(sm[:, None], order, prep)
     return ArEstimate(phi[:, 0], rho[:, 0], int(np.count_nonzero(w)), fwhm_mm, own)
+
+
+# ----------------------------------------------------------------------------- effective df
+#
+# Step 7's alternative, measured (tests/benchmarks/calibration.py, DEVELOPERS.md "Noise model
+# calibration"). The t of a fit whose whitening comes from *estimated* autocorrelations is
+# not exactly t(n - rank): the estimate adds variance to the denominator. The paper's
+# effective df (Worsley et al. 2002; the formulas below are recalled from memory and
+# rederived here in our own words) treats that variance as a second chi-square term:
+#
+# * the autocorrelation estimate of one voxel has about ``nu = n - rank`` degrees of
+#   freedom; smoothing it in space averages the estimates of neighbours, which are
+#   independent only as far as the data are rough. For data with Gaussian spatial
+#   correlation of FWHM ``f_data`` and a Gaussian smoothing kernel of FWHM ``f_rho`` in
+#   D dimensions, ``nu_rho = nu (2 (f_rho / f_data)^2 + 1)^(D/2)`` (from memory). In our
+#   words: a product of two data fields (an autocovariance) has the squared correlation
+#   of the data, a Gaussian of half the variance, and averaging a field of correlation
+#   variance ``s^2`` with a kernel of variance ``k^2`` divides its variance by
+#   ``((s^2 + 2 k^2) / s^2)^(D/2)``; :func:`rho_df` computes that division on the voxel
+#   grid with the truncated kernel actually used, which tends to the formula for kernels
+#   wide against a voxel and to the number of voxels averaged for rough data;
+# * a small error in the autocorrelations at lag ``j`` changes the estimated variance of
+#   the contrast by ``2 tau_j`` times that error, relative, with ``tau_j`` the lag-j
+#   autocorrelation of the contrast's whitened weight vector
+#   ``a = W X (X*'X*)^-1 c`` (``c'b = a'y*``); with errors of variance ``1 / nu_rho`` at
+#   every lag, independent, and Satterthwaite's matching of a chi-square (variance
+#   ``2 / df`` relative), ``1 / nu_eff = 1 / nu + 2 sum_j tau_j^2 / nu_rho`` (the paper's
+#   form, from memory; :func:`effective_df`).
+#
+# The errors of an AR(p) estimate are not independent across lags (p numbers determine
+# all of them), which the formula ignores; a simulation with a known number of pooled
+# voxels (tests/core/test_noise.py) shows what that does.
+
+
+def contrast_autocorr(
+    prep: Any, phi: np.ndarray, c: np.ndarray, lags: int | None = None, chunk: int = 2048
+) -> np.ndarray:
+    """Autocorrelations ``tau_1..tau_lags`` (lags, V) of each voxel's whitened contrast
+    weights ``a = W X (X*'X*)^-1 c`` (``c'b = a'y*``), for AR coefficients ``phi`` (p, V).
+
+    ``lags`` defaults to every lag (``n - 1``).
+
+    >>> X = np.column_stack([np.ones(6), np.arange(6.0)])
+    >>> tau = contrast_autocorr(X, np.zeros((1, 1)), np.array([0.0, 1.0]), lags=1)
+    >>> float(tau[0, 0])  # white noise: the centred ramp -2.5..2.5, 8.75 / 17.5 by hand
+    0.5
+    """
+    X = np.asarray(getattr(prep, "X", prep), dtype=np.float64)
+    phi = np.asarray(phi, dtype=np.float64)
+    if phi.ndim == 1:
+        phi = phi[:, None]
+    c = np.asarray(c, dtype=np.float64).reshape(-1)
+    if getattr(prep, "n_model", None) is not None and c.size == prep.n_model:
+        c = np.concatenate([c, np.zeros(X.shape[1] - c.size)])
+    n, q = X.shape
+    lags = n - 1 if lags is None else int(lags)
+    V = phi.shape[1]
+    out = np.empty((lags, V))
+    size = 1 << int(np.ceil(np.log2(2 * n)))
+    for a0 in range(0, V, chunk):
+        sl = slice(a0, min(V, a0 + chunk))
+        C = whitening_filter(phi[:, sl])
+        Xw = np.stack([whiten(C, np.repeat(X[:, [k]], C.shape[0], axis=1)) for k in range(q)])
+        G = np.einsum("itv,jtv->vij", Xw, Xw)
+        u = np.linalg.solve(G, np.broadcast_to(c, (G.shape[0], q))[..., None])[..., 0]
+        a = np.einsum("itv,vi->tv", Xw, u)
+        f = np.fft.rfft(a, size, axis=0)
+        ac = np.fft.irfft(f * np.conj(f), size, axis=0)[: lags + 1]
+        out[:, sl] = ac[1:] / ac[0]
+    return out
+
+
+def rho_df(
+    nu: float,
+    voxel_mm: Sequence[float],
+    fwhm_data_mm: Sequence[float] | float,
+    fwhm_mm: float | None = None,
+) -> float:
+    """Degrees of freedom ``nu_rho`` of the smoothed autocorrelations in the interior of the
+    mask: ``nu`` divided by the variance that the truncated smoothing kernel leaves of an
+    autocovariance field whose data have Gaussian spatial correlation of FWHM
+    ``fwhm_data_mm`` (per axis; 0: independent voxels).
+
+    In the continuum this is ``nu (2 (f_rho / f_data)^2 + 1)^(3/2)`` (Worsley et al. 2002,
+    from memory); for independent voxels it is ``nu`` times the number of voxels the
+    kernel averages, ``(sum w)^2 / sum w^2``.
+
+    >>> round(rho_df(100, (3.0, 3.0, 3.0), 0.0) / 100, 2)  # 8 mm kernel, 3 mm voxels
+    64.14
+    """
+    weights = smoothing_weights(voxel_mm, fwhm_mm)
+    f = np.broadcast_to(np.asarray(fwhm_data_mm, dtype=np.float64), (len(weights),))
+    share = 1.0
+    for w, size, fd in zip(weights, voxel_mm, f, strict=True):
+        r = (w.size - 1) // 2
+        d = np.arange(-r, r + 1) * float(size)
+        if fd > 0:
+            s2 = (fd / (2.0 * math.sqrt(2.0 * math.log(2.0)))) ** 2
+            corr2 = np.exp(-((d[:, None] - d[None, :]) ** 2) / (2.0 * s2))
+        else:
+            corr2 = np.eye(w.size)
+        share *= float(w @ corr2 @ w) / float(w.sum()) ** 2
+    return float(nu) / share
+
+
+def edge_share(mask: np.ndarray, voxel_mm: Sequence[float], fwhm_mm: float | None = None):
+    """Per voxel, how much more variance the smoothed autocorrelations keep near the edge
+    of the mask than inside it, for independent voxels: ``(sum w^2 m / (sum w m)^2) /
+    (sum w^2 / (sum w)^2)`` (1 inside, above 1 near the edge; divide :func:`rho_df` by it).
+    """
+    from scipy import ndimage
+
+    weights = smoothing_weights(voxel_mm, fwhm_mm)
+    m = np.asarray(mask, dtype=np.float64)
+    num, den = m, m
+    interior = 1.0
+    for axis, w in enumerate(weights):
+        num = ndimage.correlate1d(num, w * w, axis=axis, mode="constant", cval=0.0)
+        den = ndimage.correlate1d(den, w, axis=axis, mode="constant", cval=0.0)
+        interior *= float((w * w).sum()) / float(w.sum()) ** 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        out = np.where(den > 0, num / np.where(den > 0, den, 1.0) ** 2 / interior, 1.0)
+    return np.maximum(out, 1.0)
+
+
+def smoothness_fwhm(
+    resid: np.ndarray, mask: np.ndarray, voxel_mm: Sequence[float]
+) -> tuple[float, float, float]:
+    """FWHM (mm, per axis) of the data's spatial smoothness from residuals (X, Y, Z, T).
+
+    Common practice: the correlation of neighbouring voxels' normalised residuals along
+    each axis, ``r``, read as a Gaussian correlation ``exp(-d^2 / (4 s^2))`` of the
+    underlying white field smoothed with a Gaussian of standard deviation ``s``, gives
+    ``FWHM = d sqrt(2 ln 2 / -ln r)``; ``r <= 0`` (rough data) gives 0.
+
+    >>> from scipy import ndimage
+    >>> e = np.random.default_rng(0).standard_normal((24, 24, 24, 40))
+    >>> x = ndimage.gaussian_filter(e, (2.0, 2.0, 2.0, 0.0))  # sigma 2 voxels: FWHM 4.71
+    >>> f = smoothness_fwhm(x, np.ones((24, 24, 24), bool), (1, 1, 1))
+    >>> all(abs(v - 4.71) < 0.2 for v in f)
+    True
+    """
+    R = np.asarray(resid, dtype=np.float64)
+    m = np.asarray(mask, dtype=bool)
+    norm = np.sqrt(np.einsum("...t,...t->...", R, R))
+    ok = m & (norm > 0)
+    U = np.where(ok[..., None], R / np.where(ok, norm, 1.0)[..., None], 0.0)
+    out = []
+    for axis, size in enumerate(voxel_mm):
+        n = U.shape[axis]
+        a = np.take(U, np.arange(n - 1), axis=axis)
+        b = np.take(U, np.arange(1, n), axis=axis)
+        both = np.take(ok, np.arange(n - 1), axis=axis) & np.take(ok, np.arange(1, n), axis=axis)
+        if not both.any():
+            out.append(0.0)
+            continue
+        r = float(np.einsum("...t,...t->...", a, b)[both].mean())
+        out.append(
+            float(size) * math.sqrt(2.0 * math.log(2.0) / -math.log(r)) if 0 < r < 1 else 0.0
+        )
+    return tuple(out)  # type: ignore[return-value]
+
+
+def effective_df(nu: float, tau: np.ndarray, nu_rho: np.ndarray | float) -> np.ndarray:
+    """``1 / nu_eff = 1 / nu + 2 sum_j tau_j^2 / nu_rho`` per voxel (see the section text;
+    the form is the paper's, from memory). ``tau`` (lags, V) from :func:`contrast_autocorr`.
+
+    >>> effective_df(100, np.array([[0.5], [0.0]]), 50.0).round(6).tolist()  # 1/(.01 + .01)
+    [50.0]
+    """
+    tau = np.asarray(tau, dtype=np.float64)
+    return 1.0 / (1.0 / float(nu) + 2.0 * np.sum(tau * tau, axis=0) / np.asarray(nu_rho))
