@@ -21,10 +21,10 @@ code under test):
   preprocessing, so that neighbouring voxels' autocorrelation estimates are not
   independent.
 
-Beside the three noise models, ``arp-eff`` is the default map's t read with the effective
-df of the paper (:func:`voxelscope.core.noise.effective_df`: ``nu_rho`` from the smoothness
-of the OLS residuals, :func:`~voxelscope.core.noise.smoothness_fwhm`, and the smoothing
-kernel, ``tau`` from each voxel's whitened contrast) instead of ``n - rank``.
+The default (``arp``) reads each voxel's t with its effective df
+(:func:`voxelscope.core.noise.arp_effective_df`: ``nu_rho`` from the run's smoothness and the
+smoothing kernel, ``tau`` from the voxel's whitened contrast); ``arp-nrank`` reads the same
+map's t with ``n - rank``, as the default did before, for comparison.
 
 Designs: ``block`` (two conditions, 16 s blocks with 16 s rest) and ``event`` (two
 conditions, 1 s events at random intervals of 3-9 s), both with the default model (drift
@@ -52,21 +52,13 @@ if str(ROOT) not in sys.path:
 from voxelscope.core.events import Condition  # noqa: E402
 from voxelscope.core.maps import ArrayRun, compute_map  # noqa: E402
 from voxelscope.core.model import Analysis, ModelSettings  # noqa: E402
-from voxelscope.core.noise import (  # noqa: E402
-    contrast_autocorr,
-    edge_share,
-    effective_df,
-    rho_df,
-    smoothness_fwhm,
-    voxel_sizes,
-)
 
 TR = 2.0
 ALPHAS = (0.05, 0.001)
 NOISES = ("ar1-varying", "ar2", "1/f")
 EXTRA_NOISES = ("ar2-smooth",)
 DESIGNS = ("block", "event")
-MODELS = ("ols", "ar1", "arp", "arp-eff")
+MODELS = ("ols", "ar1", "arp", "arp-nrank")
 SMOOTH_FWHM_MM = 6.0
 BURN = 100  # AR samples dropped so every series starts in the stationary state
 
@@ -169,12 +161,14 @@ def false_positive_rates(
         run = ArrayRun(noise(noise_kind, shape, n, rng), np.diag([3.0, 3.0, 3.0, 1.0]), TR)
         maps = {}
         for m in models:
-            if m == "arp-eff":
+            if m == "arp-nrank":  # the default map's t read with df = n - rank
                 res = maps.get("arp") or compute_map(run, a, _settings("arp"), stats=("t", "p"))
-                p = effective_df_p(run, a, res)[res.mask]
+                p = 2.0 * stats.t.sf(np.abs(res.t[res.mask].astype(np.float64)), res.df)
             else:
                 res = maps[m] = compute_map(run, a, _settings(m), stats=("t", "p"))
                 p = res.p[res.mask]
+                if m == "arp":
+                    _note(res)
             total[m] += p.size
             for i, alpha in enumerate(ALPHAS):
                 counts[m][i] += int(np.count_nonzero(p < alpha))
@@ -185,31 +179,16 @@ def _settings(model: str) -> ModelSettings:
     return ModelSettings(kernels=("double-gamma",), noise=model)
 
 
-def effective_df_p(run: ArrayRun, a: Analysis, res) -> np.ndarray:
-    """Two-sided p of a default map's t with each voxel's effective df (see the module
-    text): the paper's ``1 / nu_eff = 1 / nu + 2 sum_j tau_j^2 / nu_rho``."""
-    s = _settings("arp")
-    _d, prep = a.prepared("double-gamma", s)
-    w = a.contrast_weights("double-gamma", s)
-    mask = res.mask
-    Y = run.data.reshape(-1, run.data.shape[-1]).T.astype(np.float64)
-    R = (Y - prep.X @ (prep.pinv @ Y)).T.reshape(run.data.shape)
-    sizes = voxel_sizes(run.affine)
-    fwhm = smoothness_fwhm(R, mask, sizes)
-    nu = float(res.df)
-    nu_rho = rho_df(nu, sizes, fwhm) / edge_share(mask, sizes)[mask]
-    tau = contrast_autocorr(prep, res.ar[mask].T.astype(np.float64), w)
-    nu_eff = effective_df(nu, tau, nu_rho)
-    p = np.ones(mask.shape)
-    p[mask] = 2.0 * stats.t.sf(np.abs(res.t[mask].astype(np.float64)), nu_eff)
-    FWHMS.append(fwhm)
-    NU_EFF.append((float(np.median(nu_eff)), float(nu_eff.min()), float(nu_eff.max())))
-    return p
-
-
-#: What :func:`effective_df_p` found, for the printout.
+#: What the default maps used, for the printout: data FWHM and effective df (median, min, max).
 FWHMS: list = []
 NU_EFF: list = []
+
+
+def _note(res) -> None:
+    if res.df_eff is not None and res.data_fwhm_mm is not None:
+        d = res.df_eff[res.mask]
+        FWHMS.append(res.data_fwhm_mm)
+        NU_EFF.append((float(np.median(d)), float(d.min()), float(d.max())))
 
 
 def main(argv: list[str] | None = None) -> int:
@@ -219,7 +198,7 @@ def main(argv: list[str] | None = None) -> int:
     args = ap.parse_args(argv)
     shape, reps = ((20, 20, 10), 1) if args.quick else ((40, 40, 20), args.reps)
     print(f"null runs {shape[0]}x{shape[1]}x{shape[2]} x 200 volumes, TR {TR} s, {reps} run(s)")
-    head = f"{'noise':12s} {'design':6s} {'model':7s}"
+    head = f"{'noise':12s} {'design':6s} {'model':9s}"
     for a in ALPHAS:
         head += f"  {'rate @' + format(a, 'g'):>8s} {'95% CI':>17s} ok "
     print(head)
@@ -231,7 +210,7 @@ def main(argv: list[str] | None = None) -> int:
             NU_EFF.clear()
             rates = false_positive_rates(nk, dk, shape=shape, reps=reps)
             for m, rs in rates.items():
-                line = f"{nk:12s} {dk:6s} {m:7s}"
+                line = f"{nk:12s} {dk:6s} {m:9s}"
                 for r in rs:
                     lo, hi = r.ci()
                     ok = r.nominal()

@@ -611,3 +611,46 @@ def test_recalled_effective_df_overcorrects_with_a_known_pooling():
     recalled = float(np.mean(np.abs(t) > stats.t.isf(0.025, nu_eff)))
     assert ci.low <= plain <= ci.high, (plain, ci)
     assert recalled < ci.low, (recalled, nu_eff)
+
+
+def test_tau_squares_from_the_sums_equal_the_dense_autocorrelations():
+    """tau_squares (the map's route: X*'X* from the one-pass design sums) equals the sum of
+    squares of contrast_autocorr (checked above against statsmodels' AR covariance)."""
+    from voxelscope.core.noise import contrast_autocorr, tau_squares
+
+    a = _analysis()
+    _d, prep = a.prepared(KERNEL, ModelSettings())
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    rng = np.random.default_rng(5)
+    phi = np.vstack([rng.uniform(0.0, 0.8, 30), rng.uniform(-0.2, 0.2, 30)])
+    ref = (contrast_autocorr(prep, phi, w) ** 2).sum(axis=0)
+    np.testing.assert_allclose(tau_squares(prep, phi, w), ref, rtol=1e-9)
+
+
+def test_map_and_clicked_voxel_share_the_effective_df():
+    """The default map reads each voxel's t with its effective df: p equals scipy's
+    t distribution (stats.t.sf) at that df; a clicked voxel gets the same df and p, and
+    its outputs name the df as effective; inside the mask the df lies between 1 and
+    n - rank, and is lower at the edge of the mask (fewer neighbours averaged)."""
+    from voxelscope.core.model import DF_EFFECTIVE
+
+    run = _null_run(6)
+    a = _analysis()
+    s = ModelSettings(kernels=(KERNEL,))
+    m = compute_map(run, a, s, stats=("t", "p", "z"))
+    d = m.df_eff[m.mask].astype(np.float64)
+    assert np.all((d > 1) & (d < m.df)) and "effective df" in m.describe()
+    t = m.t[m.mask].astype(np.float64)
+    np.testing.assert_allclose(m.p[m.mask], 2 * stats.t.sf(np.abs(t), d), rtol=1e-5, atol=1e-7)
+    np.testing.assert_allclose(m.z[m.mask], stats.norm.isf(stats.t.sf(t, d)), rtol=1e-4, atol=1e-5)
+    centre = tuple(n // 2 for n in run.shape)
+    assert m.df_eff[0, 1, 1] < m.df_eff[centre]  # a corner region keeps fewer neighbours
+    for ijk in [(4, 4, 3), (0, 7, 5), centre]:
+        est = a.noise_at(run, ijk, s)
+        f = a.fit_voxel(run.data[ijk], s, est).by_kernel(KERNEL)
+        assert f.df == pytest.approx(float(m.df_eff[ijk]), abs=0.06)
+        assert f.p == pytest.approx(float(m.p[ijk]), rel=1e-4)
+        assert f.df_kind == DF_EFFECTIVE
+    # without a neighbourhood there is no nu_rho: n - rank, and it says so
+    f = a.fit_voxel(run.data[4, 4, 3], s).by_kernel(KERNEL)
+    assert f.df == m.df and f.df_kind == "n - rank"

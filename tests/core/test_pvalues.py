@@ -185,3 +185,23 @@ def test_few_values_at_the_edges():
     # z of a tiny t: the slope f_T(0) / phi(0) (mpmath from the densities at 0)
     slope = float(mp.npdf(0, 0, 1) ** -1 * mp.gamma(6.5) / (mp.sqrt(12 * mp.pi) * mp.gamma(6)))
     assert float(z[3]) == pytest.approx(1e-9 * slope, rel=1e-12)
+
+
+def test_one_df_per_element_matches_mpmath():
+    """A df per element (the effective df of an AR(p) map, not whole numbers): z and
+    -log10 p equal mpmath at each element's own df, including far tails, t near 0 and a
+    df that is not positive (NaN)."""
+    rng = np.random.default_rng(7)
+    t = np.concatenate([10.0 ** rng.uniform(-9, 3, 30) * rng.choice([-1.0, 1.0], 30), [2.5]])
+    df = np.concatenate([10.0 ** rng.uniform(0.5, 3, 30), [0.0]])
+    z = z_from_t(t, df)
+    q = neglog10p_from_t(t, df)
+    q_pos = neglog10p_from_t(t, df, "positive")
+    for i in range(30):
+        assert z[i] == pytest.approx(_mp_z(t[i], df[i]), rel=1e-9)
+        low = _mp_lower(t[i], df[i])
+        two = min(2 * low, mp.mpf(1)) if abs(t[i]) >= 1 else 1 - (1 - 2 * low)
+        assert q[i] == pytest.approx(float(-mp.log10(two)), rel=1e-8, abs=1e-15)
+        pos = low if t[i] > 0 else 1 - low
+        assert q_pos[i] == pytest.approx(float(-mp.log10(pos)), rel=1e-8, abs=1e-15)
+    assert np.isnan(z[-1]) and np.isnan(q[-1]) and np.isnan(p_from_t(t, df)[-1])

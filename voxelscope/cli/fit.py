@@ -129,6 +129,8 @@ def fit_to_json(f: KernelFit, checks: dict | None = None, tail: str = "two") -> 
         "variance": f.variance,
         "t": f.t,
         "df": f.df,
+        "df_kind": f.df_kind,
+        "df_residual": int(f.result.df),
         "p": _tail_p(f, tail),
         "tail": tail,
         "neglog10p": _neglog10p(f, tail),

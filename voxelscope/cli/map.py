@@ -193,7 +193,7 @@ def run_map(args: argparse.Namespace) -> int:
     data = result.stat(args.stat)
     tail = f" tail={args.tail}" if args.stat in ("p", "neglog10p") else ""
     desc = (
-        f"voxelscope {args.stat} {args.kernel} noise={result.noise} df={result.df}{tail} "
+        f"voxelscope {args.stat} {args.kernel} noise={result.noise} {_df_tag(result)}{tail} "
         f"{result.contrast}"
     )
     write_map(out, data, run=run, inputs=inputs, force=args.force, description=desc, notes=warnings)
@@ -244,6 +244,16 @@ def run_map(args: argparse.Namespace) -> int:
                 print(line)
             print(ex.statement)
     return 0
+
+
+def _df_tag(result) -> str:
+    """The df for a map's header description: ``df=188``, or ``df=eff160`` (the effective
+    df's median) under the default AR(p) model."""
+    import numpy as np
+
+    if result.df_eff is None or not result.mask.any():
+        return f"df={result.df}"
+    return f"df=eff{float(np.median(result.df_eff[result.mask])):.0f}"
 
 
 def explain_lines(ex) -> list[str]:

@@ -41,7 +41,11 @@ sums of one pass over the data (lagged products of the design with the data, the
 autocovariances at lags 0..p and its first and last p samples; see
 :mod:`voxelscope.core.noise`), so a map (:func:`arp_block_sums`, then :func:`fit_sums`)
 reads the data once; near-exact fits (below :data:`RSS_GUARD`) and shown series get
-explicitly whitened residuals; ``df = n - rank``.
+explicitly whitened residuals; ``df = n - rank``, and with ``nu_rho`` (the df of the
+smoothed autocorrelations, from the neighbourhood) p, z and -log10 p use each voxel's
+effective df (``FitResult.df_eff``, :func:`voxelscope.core.noise.arp_effective_df`).
+Volumes censored inside the run get one indicator column each (:func:`censored_design`),
+which makes the AR(p) fit exact.
 
 Examples
 --------
@@ -639,6 +643,10 @@ class FitResult:
         for without it, ``want_p=False``)
     df : int
         ``n - rank``.
+    df_eff : ndarray (n_voxels,) or None
+        Under the default AR(p) model with its neighbourhood (``nu_rho`` given): the
+        effective df of each voxel's t (:func:`voxelscope.core.noise.arp_effective_df`),
+        which ``p``, ``z`` and ``-log10 p`` use; ``df_used`` is whichever applies.
     sigma2 : residual variance ``sum(r^2) / df`` (of the whitened residuals under AR(1))
     r2 : ``1 - sum((y - Xb)^2) / sum((y - mean y)^2)`` in data units (uncentred,
         ``sum(y^2)`` below, when the design has no constant column)
@@ -688,27 +696,34 @@ class FitResult:
     mean: np.ndarray | None = None
     tss: np.ndarray | None = None
     nonfinite: np.ndarray | None = None
+    df_eff: np.ndarray | None = None
 
     @property
     def n_voxels(self) -> int:
         return int(self.beta.shape[0])
 
     @property
+    def df_used(self) -> np.ndarray | int:
+        """The df of the t distribution: the effective df per voxel when there are, else
+        ``df``."""
+        return self.df if self.df_eff is None else self.df_eff
+
+    @property
     def z(self) -> np.ndarray:
         """Exact z with the same tail probability as ``t`` (sign of ``t``), at any t; 0
         where degenerate (see :mod:`voxelscope.core.pvalues`)."""
-        z = z_from_t(self.t, self.df) if self.df > 0 else np.full(self.t.shape, np.nan)
+        z = z_from_t(self.t, self.df_used) if self.df > 0 else np.full(self.t.shape, np.nan)
         return np.where(self.degenerate, 0.0, z)
 
     def p_tail(self, tail: str = "two") -> np.ndarray:
         """p of ``t`` for ``tail`` (``two``, ``positive`` or ``negative``); NaN where
         degenerate."""
-        p = p_from_t(self.t, self.df, tail) if self.df > 0 else np.full(self.t.shape, np.nan)
+        p = p_from_t(self.t, self.df_used, tail) if self.df > 0 else np.full(self.t.shape, np.nan)
         return np.where(self.degenerate, np.nan, p)
 
     def neglog10p(self, tail: str = "two") -> np.ndarray:
         """``-log10 p`` of ``t`` for ``tail``, finite at any t; NaN where degenerate."""
-        q = neglog10p_from_t(self.t, self.df, tail) if self.df > 0 else self.t * np.nan
+        q = neglog10p_from_t(self.t, self.df_used, tail) if self.df > 0 else self.t * np.nan
         return np.where(self.degenerate, np.nan, q)
 
 
@@ -789,6 +804,7 @@ def fit(
     keep_series: bool = True,
     want_p: bool = True,
     ar: np.ndarray | None = None,
+    nu_rho: np.ndarray | float | None = None,
 ) -> FitResult:
     """Fit a design to one or many time series and evaluate one t contrast.
 
@@ -815,6 +831,10 @@ def fit(
         see :mod:`voxelscope.core.noise` for how the default model estimates them (maps
         and clicked voxels pass the spatially smoothed ones). None: each voxel's own
         bias-corrected estimate, not smoothed.
+    nu_rho : float or ndarray (n_voxels,), optional
+        ``noise="arp"`` only: the df of the smoothed autocorrelations (from the
+        neighbourhood, :class:`voxelscope.core.noise.ArEstimate`); then ``p``, ``z`` and
+        ``-log10 p`` use each voxel's effective df (``df_eff``). None: ``n - rank``.
 
     Returns
     -------
@@ -849,10 +869,15 @@ def fit(
                 f"ar has {ar.shape[1]} columns for {Y.shape[1]} voxels (or non-finite values)"
             )
 
+    df_eff = None
+    if noise == "arp" and nu_rho is not None:
+        from .noise import arp_effective_df
+
+        df_eff = arp_effective_df(prep, ar, c, nu_rho)
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
         if prep.keep is None:
-            return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p, ar)
-        return _fit_kept(prep, Y, c, noise, rho_step, keep_series, want_p, ar)
+            return _fit_checked(prep, Y, c, noise, rho_step, keep_series, want_p, ar, df_eff)
+        return _fit_kept(prep, Y, c, noise, rho_step, keep_series, want_p, ar, df_eff)
 
 
 def _fit_kept(
@@ -864,13 +889,14 @@ def _fit_kept(
     keep_series: bool,
     want_p: bool,
     ar: np.ndarray | None = None,
+    df_eff: np.ndarray | None = None,
 ) -> FitResult:
     """Fit on the kept volumes only; fitted values and residuals cover every volume.
 
     Left-out volumes leave every statistic (betas, variance, t, df, rho, R²); their fitted
     value is ``x_t b`` and their residual ``y_t - x_t b``, for plots that grey them.
     """
-    res = _fit_checked(prep, Y[prep.keep], c, noise, rho_step, keep_series, want_p, ar)
+    res = _fit_checked(prep, Y[prep.keep], c, noise, rho_step, keep_series, want_p, ar, df_eff)
     if keep_series:
         fitted = prep.X_all @ res.betas
         res.fitted = fitted
@@ -1016,6 +1042,7 @@ def fit_sums(
     want_p: bool = True,
     series=None,
     betas: bool = True,
+    df_eff: np.ndarray | None = None,
 ) -> FitResult:
     """:func:`fit` under ``noise="arp"`` from one-pass sums (:func:`arp_block_sums`)
     instead of the data: what a map does once it knows every voxel's AR coefficients.
@@ -1023,7 +1050,8 @@ def fit_sums(
     ``series(idx)`` returns the working copy (:func:`working_copy`) of some of the voxels;
     it is called only for near-exact fits (see :data:`RSS_GUARD`). Fitted values and
     residuals are not kept; ``r2`` is NaN. With ``betas=False`` (what a map asks for)
-    only the contrast is estimated and ``betas`` of the result is None.
+    only the contrast is estimated and ``betas`` of the result is None. ``df_eff`` (V,):
+    each voxel's effective df, for ``p`` (see :func:`fit`).
     """
     from .noise import arp_solve
 
@@ -1046,7 +1074,7 @@ def fit_sums(
         bad = sums.bad if sums.bad.any() else None
         return _finish(
             prep, c, "arp", B, cov, cvar, np.full(v, np.nan), rss_w, sums.mean, sums.tss,
-            bad, None, False, want_p, None, None, np.arange(v), None, ar, cb=cb,
+            bad, None, False, want_p, None, None, np.arange(v), None, ar, df_eff, cb=cb,
         )  # fmt: skip
 
 
@@ -1059,6 +1087,7 @@ def _fit_checked(
     keep_series: bool,
     want_p: bool = True,
     ar: np.ndarray | None = None,
+    df_eff: np.ndarray | None = None,
 ) -> FitResult:
     X = prep.X
     v = Y.shape[1]
@@ -1132,7 +1161,7 @@ def _fit_checked(
         cvar = _contrast_variance(prep, c)
     return _finish(
         prep, c, noise, B, cov, cvar, rss, rss_w, mean, tss, bad, flat, keep_series, want_p,
-        R, Rw, group, rho, ar,
+        R, Rw, group, rho, ar, df_eff,
     )  # fmt: skip
 
 
@@ -1156,6 +1185,7 @@ def _finish(
     group: np.ndarray,
     rho: np.ndarray | None,
     ar: np.ndarray | None,
+    df_eff: np.ndarray | None = None,
     *,
     cb: np.ndarray | None = None,
 ) -> FitResult:
@@ -1193,7 +1223,7 @@ def _finish(
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     pval = None
     if want_p:  # a few voxels (a click, a fit) without importing scipy.special
-        pval = two_sided_p(t, df)
+        pval = two_sided_p(t, df if df_eff is None else df_eff)
     if degenerate.any():
         for a in (variance, t, pval):
             if a is not None:
@@ -1241,6 +1271,7 @@ def _finish(
         mean=mean,
         tss=tss,
         nonfinite=bad,
+        df_eff=None if df_eff is None else np.asarray(df_eff, dtype=np.float64),
     )
 
 

@@ -97,7 +97,12 @@ class MapResult:
         The contrast expression.
     noise : {"ols", "ar1"}
     df : int
-        Residual degrees of freedom (the same at every voxel).
+        Residual degrees of freedom ``n - rank`` (the same at every voxel).
+    df_eff : ndarray (X, Y, Z) float32 or None
+        Under the default AR(p) model: each voxel's effective df, which its p, z and
+        -log10 p use (:func:`voxelscope.core.noise.arp_effective_df`; 0 outside the mask).
+    data_fwhm_mm : tuple of float or None
+        The run's smoothness that entered ``df_eff`` (:func:`voxelscope.core.noise.run_smoothness`).
     weights : ndarray
         Contrast weights on the design columns.
     columns : tuple of str
@@ -135,6 +140,8 @@ class MapResult:
     neglog10p: np.ndarray | None = None
     tail: str = "two"
     ar: np.ndarray | None = None
+    df_eff: np.ndarray | None = None
+    data_fwhm_mm: tuple[float, ...] | None = None
 
     @property
     def shape(self) -> tuple[int, int, int]:
@@ -164,13 +171,30 @@ class MapResult:
             )
         return value
 
+    def df_text(self) -> str:
+        """The df in a few words: ``df 188``, or the effective df's median and range.
+
+        >>> m = np.ones((1, 1, 2), dtype=bool)
+        >>> r = MapResult(None, None, None, None, None, m, ~m, None, "gamma", "tone", "arp", 190,
+        ...               df_eff=np.array([[[150.0, 171.0]]], np.float32))
+        >>> r.df_text()
+        'effective df 160.5 (150.0-171.0; n - rank 190)'
+        """
+        if self.df_eff is None or not self.mask.any():
+            return f"df {self.df}"
+        d = self.df_eff[self.mask]
+        return (
+            f"effective df {float(np.median(d)):.1f} ({float(d.min()):.1f}-{float(d.max()):.1f}; "
+            f"n - rank {self.df})"
+        )
+
     def describe(self) -> str:
         """One line: kernel, contrast, noise model, df and voxel counts."""
         deg = int(np.count_nonzero(self.degenerate))
         text = (
             f"kernel {self.kernel}, contrast '{self.contrast}', "
             f"{_NOISE_LABEL.get(self.noise, self.noise)} noise, "
-            f"df {self.df}, {self.n_voxels} voxels, p {_TAIL_LABEL.get(self.tail, self.tail)}"
+            f"{self.df_text()}, {self.n_voxels} voxels, p {_TAIL_LABEL.get(self.tail, self.tail)}"
         )
         if deg:
             text += f" ({deg} constant or exactly fitted voxels set to 0)"
@@ -297,12 +321,12 @@ def _scatter(
     if "variance" in want:
         flat["variance"][idx] = np.where(good, res.variance, 0.0)
     if "p" in want:
-        p = res.p if tail == "two" and res.p is not None else p_from_t(t, res.df, tail)
+        p = res.p if tail == "two" and res.p is not None else p_from_t(t, res.df_used, tail)
         flat["p"][idx] = np.where(good, p, 1.0)
     if "z" in want:
-        flat["z"][idx] = np.where(good, z_from_t(t, res.df), 0.0)
+        flat["z"][idx] = np.where(good, z_from_t(t, res.df_used), 0.0)
     if "neglog10p" in want:
-        flat["neglog10p"][idx] = np.where(good, neglog10p_from_t(t, res.df, tail), 0.0)
+        flat["neglog10p"][idx] = np.where(good, neglog10p_from_t(t, res.df_used, tail), 0.0)
     if rho is not None and res.rho is not None:
         rho[idx] = res.rho
 
@@ -547,6 +571,8 @@ def compute_map(
     noise = settings.noise
     arp = noise == "arp"
     ar_map = None
+    df_flat = None
+    fwhm_data = None
     share = 0.85 if arp else 0.0  # of the progress bar spent on the pass over the data
 
     def report(fraction: float) -> None:
@@ -597,6 +623,16 @@ def compute_map(
         del values
         sm = sm.reshape(-1, n_lags + 1)
         phi_flat = np.zeros((order, n_all))
+        # each voxel's effective df: the df of its smoothed autocorrelations (the run's
+        # smoothness, the kernel, the voxel's share at the edge) and its whitened contrast
+        from .noise import arp_effective_df, edge_share, rho_df, run_smoothness, voxel_sizes
+
+        fwhm_data = run_smoothness(run, _prep, mask)
+        sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
+        nu_rho = rho_df(_prep.df, sizes, fwhm_data) / edge_share(
+            valid.reshape(shape) & mask, sizes
+        ).reshape(-1)
+        df_flat = np.zeros(n_all)
 
         def pieces():
             # the solves are elementwise over voxels: pieces of at least SOLVE_VOXELS keep
@@ -619,10 +655,12 @@ def compute_map(
                 want_p=need_p,
                 series=lambda i: _working_series(run, _prep, idx[i]),
                 betas=False,
+                df_eff=arp_effective_df(_prep, phi, weights, nu_rho[idx]),
             )
 
         def store_piece(idx: np.ndarray, res) -> None:
             phi_flat[:, idx] = res.ar
+            df_flat[idx] = res.df_eff
             store(idx, res)
 
         with _one_blas_thread():  # small products: one BLAS thread is faster, as above
@@ -679,6 +717,8 @@ def compute_map(
         settings=settings,
         rho_step=rho_step if ar1 else None,
         ar=ar_map,
+        df_eff=None if df_flat is None else df_flat.reshape(shape).astype(np.float32),
+        data_fwhm_mm=fwhm_data,
         neglog10p=vol("neglog10p"),
         tail=tail,
     )

@@ -32,7 +32,11 @@ from .glm import FitResult, PreparedDesign, condition_f_matrix, f_test, fit, par
 from .hrf import DEFAULT_KERNELS, KERNEL_NAMES, Kernel, get_kernel
 from .jsonsafe import finite_or_none
 
-__all__ = ["Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
+__all__ = ["DF_EFFECTIVE", "Analysis", "KernelFit", "ModelSettings", "VoxelFits"]
+
+
+#: How outputs name the effective df of the default AR(p) model.
+DF_EFFECTIVE = "effective (estimated AR coefficients, Worsley et al. 2002)"
 
 
 @dataclass(frozen=True)
@@ -142,8 +146,17 @@ class KernelFit:
         return finite_or_none(self.result.p)
 
     @property
-    def df(self) -> int:
-        return int(self.result.df)
+    def df(self) -> int | float:
+        """The df of the t: ``n - rank``, or under the default AR(p) model with its
+        neighbourhood the effective df (one decimal; see :attr:`df_kind`)."""
+        if self.result.df_eff is None:
+            return int(self.result.df)
+        return round(float(self.result.df_eff[0]), 1)
+
+    @property
+    def df_kind(self) -> str:
+        """What :attr:`df` is, in a few words for tables and JSON."""
+        return "n - rank" if self.result.df_eff is None else DF_EFFECTIVE
 
     @property
     def r2(self) -> float | None:
@@ -537,7 +550,8 @@ class Analysis:
         for name, d, prep, w, C in plan:
             est = (noise or {}).get(name) if arp else None
             ar = None if est is None else est.phi
-            res = fit(prep, y, w, noise=settings.noise, ar=ar)
+            nu_rho = None if est is None else est.nu_rho
+            res = fit(prep, y, w, noise=settings.noise, ar=ar, nu_rho=nu_rho)
             f = f_p = f_df = None
             if C is not None:
                 fv, pv, q, dfd = f_test(res, C)

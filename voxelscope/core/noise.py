@@ -34,12 +34,20 @@ Steps 2-6 need only a few sums of each voxel's series (:class:`ArpSums`, "one pa
 below), so a map reads the data once: the sums give the residual autocovariances, the
 smoothing gives every voxel's coefficients, and the same sums give the GLS. A single fit
 with its data goes through the same sums.
-7. **Degrees of freedom**: ``n - rank``. The paper gives an effective df that adds the
-   variance of the estimated autocorrelations; with the smoothing kernel averaging
-   hundreds of voxels that term is small, and the calibration benchmark
-   (``tests/benchmarks/calibration.py``) finds the rates nominal without it for AR noise
-   and conservative for 1/f-like noise under block designs, so a smaller df would only
-   make the test more conservative.
+7. **Degrees of freedom: effective, per voxel** (:func:`arp_effective_df`; the paper's
+   form, recalled from memory and rederived in the "effective df" section below):
+   ``1 / nu_eff = 1 / nu + 2 sum_j tau_j^2 / nu_rho`` with ``nu = n - rank``, ``tau_j``
+   the lag-j autocorrelation of the voxel's whitened contrast weights and ``nu_rho`` the
+   df of its smoothed autocorrelations, from the run's smoothness
+   (:func:`run_smoothness`, a seeded sample of neighbouring OLS residuals), the kernel
+   (:func:`rho_df`) and the voxel's share at the edge of the mask (:func:`edge_share`).
+   p, z and -log10 p of maps and fits use it; F tests keep ``n - rank``; a fit without a
+   neighbourhood (no ``nu_rho``) uses ``n - rank``. Measured, not argued
+   (``tests/benchmarks/calibration.py``, DEVELOPERS.md "Noise model calibration"): with
+   spatially independent noise it moves the false-positive rates by at most .001 and
+   keeps every AR cell inside the binomial interval; with noise smoothed in space (6 mm)
+   and a block design, ``n - rank`` is liberal (.0524 at .05, outside the interval) and
+   the effective df is not (.0488).
 
 Examples
 --------
@@ -877,6 +885,12 @@ class ArEstimate:
     fwhm_mm : float
     own_autocorr : ndarray (p,) or None
         The voxel's own bias-corrected autocorrelations (before smoothing).
+    nu_rho : float or None
+        The df of the smoothed autocorrelations at this voxel (:func:`rho_df` with the
+        run's smoothness, :func:`run_smoothness`, over its share at the edge of the mask):
+        what the effective df of the voxel's t needs (:func:`arp_effective_df`).
+    fwhm_data_mm : tuple of float or None
+        The run's smoothness used for ``nu_rho``.
     """
 
     phi: np.ndarray
@@ -884,6 +898,8 @@ class ArEstimate:
     n_neighbours: int
     fwhm_mm: float
     own_autocorr: np.ndarray | None = None
+    nu_rho: float | None = None
+    fwhm_data_mm: tuple[float, ...] | None = None
 
     def describe(self) -> str:
         coefs = ", ".join(f"{v:.3f}" for v in self.phi)
@@ -906,6 +922,10 @@ class ArEstimate:
             else [float(v) if np.isfinite(v) else None for v in self.own_autocorr],
             "n_neighbours": int(self.n_neighbours),
             "fwhm_mm": float(self.fwhm_mm),
+            "nu_rho": None if self.nu_rho is None else float(self.nu_rho),
+            "data_fwhm_mm": None
+            if self.fwhm_data_mm is None
+            else [float(v) for v in self.fwhm_data_mm],
         }
 
 
@@ -1275,7 +1295,22 @@ def voxel_ar(
     den = float(w.sum())
     sm = (vals @ w) / den if den > 0 else np.zeros(vals.shape[0])
     phi, rho = ar_from_smoothed(sm[:, None], order, prep)
-    return ArEstimate(phi[:, 0], rho[:, 0], int(np.count_nonzero(w)), fwhm_mm, own)
+    # the df of the smoothed autocorrelations: the map's nu_rho (rho_df over edge_share)
+    sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
+    fwhm_data = run_smoothness(run, prep, run.mask() if mask is None else mask)
+    kernel = smoothing_weights(sizes, fwhm_mm)
+    interior = float(np.prod([(k * k).sum() / k.sum() ** 2 for k in kernel]))
+    share = max(float((w * w).sum()) / den**2 / interior, 1.0) if den > 0 else 1.0
+    nu_rho = rho_df(prep.df, sizes, fwhm_data, fwhm_mm)
+    return ArEstimate(
+        phi[:, 0],
+        rho[:, 0],
+        int(np.count_nonzero(w)),
+        fwhm_mm,
+        own,
+        nu_rho / share,
+        tuple(float(v) for v in fwhm_data),
+    )
 
 
 # ----------------------------------------------------------------------------- effective df
@@ -1448,3 +1483,129 @@ def effective_df(nu: float, tau: np.ndarray, nu_rho: np.ndarray | float) -> np.n
     """
     tau = np.asarray(tau, dtype=np.float64)
     return 1.0 / (1.0 / float(nu) + 2.0 * np.sum(tau * tau, axis=0) / np.asarray(nu_rho))
+
+
+#: Voxel pairs per axis that :func:`run_smoothness` reads to estimate the data's smoothness.
+SMOOTHNESS_PAIRS = 2000
+
+_SMOOTHNESS: Any = None  # weak memo: run -> {(design, mask) digest: FWHM per axis}
+
+
+def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float, float]:
+    """FWHM (mm, per axis) of a run's spatial smoothness, from the OLS residuals of up to
+    :data:`SMOOTHNESS_PAIRS` neighbouring voxel pairs per axis inside the mask (a fixed,
+    seeded sample, so a map and a clicked voxel get the same value); the estimate of
+    :func:`smoothness_fwhm` on those pairs. Memoised per run, design and mask.
+    """
+    import hashlib
+    import weakref
+
+    from .workcopy import working_copy as _wc
+
+    global _SMOOTHNESS
+    if _SMOOTHNESS is None:
+        _SMOOTHNESS = weakref.WeakKeyDictionary()
+    mask = np.asarray(mask, dtype=bool)
+    key = hashlib.sha1(np.asarray(prep.X).tobytes() + np.packbits(mask).tobytes()).hexdigest()
+    try:
+        memo = _SMOOTHNESS.setdefault(run, {})
+    except TypeError:  # not weakly referable: no memo
+        memo = {}
+    got = memo.get(key)
+    if got is not None:
+        return got
+    shape = mask.shape
+    sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
+    rng = np.random.default_rng(0)
+    out = []
+    keep = getattr(prep, "keep", None)
+    for axis in range(3):
+        n = shape[axis]
+        a = np.take(mask, np.arange(n - 1), axis=axis) & np.take(mask, np.arange(1, n), axis=axis)
+        first = np.argwhere(a)
+        if first.shape[0] == 0:
+            out.append(0.0)
+            continue
+        if first.shape[0] > SMOOTHNESS_PAIRS:
+            first = first[np.sort(rng.choice(first.shape[0], SMOOTHNESS_PAIRS, replace=False))]
+        second = first.copy()
+        second[:, axis] += 1
+        idx = np.ravel_multi_index(np.concatenate([first, second]).T, shape)
+        if hasattr(run, "timeseries_many"):
+            rows = np.asarray(run.timeseries_many(idx), dtype=np.float64)
+        else:
+            rows = np.asarray(run.data.reshape(-1, run.n_volumes)[idx], dtype=np.float64)
+        Y = rows.T if keep is None else rows.T[keep]
+        Yc = _wc(prep, Y)[0]
+        R = Yc - prep.X @ (prep.pinv @ Yc)
+        norm = np.sqrt(np.einsum("tv,tv->v", R, R))
+        k = first.shape[0]
+        good = (norm[:k] > 0) & (norm[k:] > 0)
+        if not good.any():
+            out.append(0.0)
+            continue
+        r = float(
+            np.mean(np.einsum("tv,tv->v", R[:, :k], R[:, k:])[good] / (norm[:k] * norm[k:])[good])
+        )
+        out.append(
+            sizes[axis] * math.sqrt(2.0 * math.log(2.0) / -math.log(r)) if 0 < r < 1 else 0.0
+        )
+    got = memo[key] = tuple(out)
+    return got  # type: ignore[return-value]
+
+
+def tau_squares(prep: Any, phi: np.ndarray, c: np.ndarray, chunk: int = 4096) -> np.ndarray:
+    """``sum_{j >= 1} tau_j^2`` (V,) of each voxel's whitened contrast weights (all lags):
+    what :func:`effective_df` needs, the same as summing :func:`contrast_autocorr`, but
+    from the one-pass design sums (``X*'X*`` from the band Toeplitz parts, as in
+    :func:`arp_solve`), so a whole map costs one small solve and one FFT per voxel.
+    """
+    phi = np.asarray(phi, dtype=np.float64)
+    if phi.ndim == 1:
+        phi = phi[:, None]
+    p, V = phi.shape
+    D = _design_lags(prep, max(p, AR_ORDER, BIAS_LAGS))
+    norms, Xs = D["norms"], D["Xs"]
+    n, q = Xs.shape
+    c = np.asarray(c, dtype=np.float64).reshape(-1)
+    if getattr(prep, "n_model", None) is not None and c.size == prep.n_model:
+        c = np.concatenate([c, np.zeros(q - c.size)])
+    basis, _ends = _normal_basis(D, p)
+    size = 1 << int(np.ceil(np.log2(2 * n)))
+    out = np.empty(V)
+    cs = c / norms
+    for a0 in range(0, V, chunk):
+        sl = slice(a0, min(V, a0 + chunk))
+        C = whitening_filter(phi[:, sl])
+        cp = C[:, p, :].T
+        g = np.stack([np.einsum("kv,kv->v", cp[: p + 1 - d], cp[d:]) for d in range(p + 1)])
+        top, bot = _boundary(C, g)
+        m = g.shape[1]
+        coef = np.concatenate([g, top.reshape(p * p, m), bot.reshape(p * p, m)])
+        G = np.moveaxis((basis @ coef).reshape(q, q, m), 2, 0)
+        G = np.tril(G) + np.swapaxes(np.tril(G, -1), 1, 2)  # only the lower triangle is exact
+        u = np.linalg.solve(G, np.broadcast_to(cs, (m, q))[..., None])[..., 0]
+        a = whiten(C, Xs @ u.T)
+        f = np.fft.rfft(a, size, axis=0)
+        ac = np.fft.irfft((f * np.conj(f)).real, size, axis=0)[:n]
+        out[sl] = np.einsum("jv,jv->v", ac[1:], ac[1:]) / (ac[0] * ac[0])
+    return out
+
+
+def arp_effective_df(
+    prep: Any, phi: np.ndarray, c: np.ndarray, nu_rho: np.ndarray | float
+) -> np.ndarray:
+    """Each voxel's effective df (V,) under AR(p) coefficients ``phi`` (p, V):
+    :func:`effective_df` with ``sum tau_j^2`` from :func:`tau_squares`.
+
+    >>> X = np.column_stack([np.ones(40), np.arange(40.0) % 8 < 4])
+    >>> d = arp_effective_df(X, np.zeros((2, 1)), np.array([0.0, 1.0]), 1e12)
+    >>> round(float(d[0]), 3)  # nu_rho without bound: n - rank
+    38.0
+    """
+    X = np.asarray(getattr(prep, "X", prep))
+    if not hasattr(prep, "memo"):
+        from .glm import prepare
+
+        prep = prepare(X)
+    return effective_df(float(prep.df), tau_squares(prep, phi, c)[None, :] ** 0.5, nu_rho)

@@ -202,21 +202,23 @@ def _t_parts(at: float, df: float) -> tuple[float, float]:
     return math.log1p(-central) - _LN2, central
 
 
-def _few_log_lower(at: np.ndarray, df: float) -> np.ndarray:
+def _few_log_lower(at: np.ndarray, df: np.ndarray | float) -> np.ndarray:
     out = np.empty(at.shape)
+    dfs = np.broadcast_to(np.asarray(df, dtype=np.float64), at.shape).tolist()
     for i, v in enumerate(at.tolist()):
-        if math.isnan(v):
+        if math.isnan(v) or not dfs[i] > 0:
             out[i] = math.nan
         elif math.isinf(v):
             out[i] = -math.inf
         else:
-            out[i] = _t_parts(v, df)[0]
+            out[i] = _t_parts(v, dfs[i])[0]
     return out
 
 
-def _few_central(at: np.ndarray, df: float) -> np.ndarray:
+def _few_central(at: np.ndarray, df: np.ndarray | float) -> np.ndarray:
     """``P(|T| <= |t|)`` for ``|t| < 1``, where the central part is the smaller one."""
-    return np.array([_t_parts(v, df)[1] for v in at.tolist()], dtype=np.float64)
+    dfs = np.broadcast_to(np.asarray(df, dtype=np.float64), at.shape).tolist()
+    return np.array([_t_parts(v, d)[1] for v, d in zip(at.tolist(), dfs)], dtype=np.float64)
 
 
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -269,11 +271,13 @@ def _z_of_central(central: float) -> float:
     return z
 
 
-def _few_z(t: np.ndarray, df: float) -> np.ndarray:
+def _few_z(t: np.ndarray, df_all: np.ndarray | float) -> np.ndarray:
     out = np.empty(t.shape)
+    dfs = np.broadcast_to(np.asarray(df_all, dtype=np.float64), t.shape).tolist()
     for i, v in enumerate(t.tolist()):
         at = abs(v)
-        if math.isnan(v):
+        df = dfs[i]
+        if math.isnan(v) or not df > 0:
             out[i] = math.nan
         elif math.isinf(v):
             out[i] = math.inf
@@ -287,7 +291,16 @@ def _few_z(t: np.ndarray, df: float) -> np.ndarray:
     return np.copysign(out, t)
 
 
-def log_t_lower_tail(t: np.ndarray | float, df: float) -> np.ndarray:
+def _dfs(df: np.ndarray | float, shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
+    """Degrees of freedom per element of a t array of ``shape`` (one for all, or one each:
+    the effective df of an AR(p) map), flat, with 1 where they are not positive, and where
+    they are not."""
+    d = np.broadcast_to(np.asarray(df, dtype=np.float64), shape).reshape(-1)
+    bad = ~(d > 0)
+    return (np.where(bad, 1.0, d) if bad.any() else d), bad
+
+
+def log_t_lower_tail(t: np.ndarray | float, df: np.ndarray | float) -> np.ndarray:
     """``log P(T_df <= -|t|)`` for every t, finite at any finite t.
 
     NaN where t is NaN or ``df <= 0``; ``log 0.5`` at t = 0.
@@ -299,29 +312,31 @@ def log_t_lower_tail(t: np.ndarray | float, df: float) -> np.ndarray:
     """
     shape = np.shape(t)
     t = np.abs(np.asarray(t, dtype=np.float64)).reshape(-1)
-    if not df > 0:
+    d, bad = _dfs(df, t.shape)
+    if bad.all():
         return np.full(shape, np.nan)
     if t.size <= FEW:
-        return _few_log_lower(t, float(df)).reshape(shape)
+        return _few_log_lower(t, np.where(bad, np.nan, d)).reshape(shape)
     from scipy import special
 
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        lower = special.stdtr(df, -t)
+        lower = special.stdtr(d, -t)
         out = np.log(lower)
         far = (lower < _LOG_SWITCH) & np.isfinite(t)
         if np.any(far):
             tf = t[far]
-            a = np.full(tf.shape, 0.5 * df)
+            df_far = d[far]
             t2 = tf * tf
             # x = df / (df + t^2) and 1 - x = t^2 / (df + t^2), both without cancellation
-            x = df / (df + t2)
-            log_i = _log_betainc_cf(a, 0.5, x)
+            x = df_far / (df_far + t2)
+            log_i = _log_betainc_cf(0.5 * df_far, 0.5, x)
             out[far] = log_i - math.log(2.0)
         out = np.where(np.isinf(t), -np.inf, out)
+        out[bad] = np.nan
     return out.reshape(shape)
 
 
-def z_from_t(t: np.ndarray | float, df: float) -> np.ndarray:
+def z_from_t(t: np.ndarray | float, df: np.ndarray | float) -> np.ndarray:
     """The normal deviate with the same tail probability as t (sign of t), at any t.
 
     NaN where t is NaN; ``+-inf`` only for infinite t.
@@ -331,28 +346,32 @@ def z_from_t(t: np.ndarray | float, df: float) -> np.ndarray:
     """
     shape = np.shape(t)
     t = np.asarray(t, dtype=np.float64).reshape(-1)
-    if not df > 0:
+    d, bad = _dfs(df, t.shape)
+    if bad.all():
         return np.full(shape, np.nan)
     if t.size <= FEW:
-        return _few_z(t, float(df)).reshape(shape)
+        return _few_z(t, np.where(bad, np.nan, d)).reshape(shape)
     from scipy import special
 
     at = np.abs(t)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        z = -special.ndtri_exp(log_t_lower_tail(at, df))
+        z = -special.ndtri_exp(log_t_lower_tail(at, d))
         small = at < 1.0
         if np.any(small):
             ts = at[small]
-            central = special.betainc(0.5, 0.5 * df, ts * ts / (df + ts * ts))
+            ds = d[small]
+            central = special.betainc(0.5, 0.5 * ds, ts * ts / (ds + ts * ts))
             z[small] = math.sqrt(2.0) * special.erfinv(central)
         tiny = at < 1e-8  # t^2 underflows in the line above; z = t f_T(0) / phi(0) + O(t^3)
         if np.any(tiny):
-            dens0 = math.exp(special.gammaln(0.5 * (df + 1)) - special.gammaln(0.5 * df))
-            z[tiny] = at[tiny] * dens0 * math.sqrt(2.0 / df)
+            dt = d[tiny]
+            dens0 = np.exp(special.gammaln(0.5 * (dt + 1)) - special.gammaln(0.5 * dt))
+            z[tiny] = at[tiny] * dens0 * np.sqrt(2.0 / dt)
+        z[bad] = np.nan
     return np.copysign(z, t).reshape(shape)
 
 
-def log_p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndarray:
+def log_p_from_t(t: np.ndarray | float, df: np.ndarray | float, tail: str = "two") -> np.ndarray:
     """Natural log of the p value of t for ``tail`` (``two``, ``positive``, ``negative``).
 
     >>> round(float(np.exp(log_p_from_t(-2.0, 10, "positive"))), 6)
@@ -361,19 +380,21 @@ def log_p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndar
     check_tail(tail)
     shape = np.shape(t)
     t = np.asarray(t, dtype=np.float64).reshape(-1)
-    log_lower = log_t_lower_tail(t, df)
+    d, bad = _dfs(df, t.shape)
+    log_lower = log_t_lower_tail(t, np.where(bad, 0.0, d))
     if tail == "two":
         out = np.minimum(log_lower + math.log(2.0), 0.0)
         # near t = 0, p = 1 - P(|T| <= |t|): keep its relative precision via log1p
-        small = np.abs(t) < 1.0
-        if np.any(small) and df > 0:
+        small = (np.abs(t) < 1.0) & ~bad
+        if np.any(small):
             ts = np.abs(t[small])
+            ds = d[small]
             if t.size <= FEW:
-                central = _few_central(ts, float(df))
+                central = _few_central(ts, ds)
             else:
                 from scipy import special
 
-                central = special.betainc(0.5, 0.5 * df, ts * ts / (df + ts * ts))
+                central = special.betainc(0.5, 0.5 * ds, ts * ts / (ds + ts * ts))
             out[small] = np.log1p(-central)
         return out.reshape(shape)
     # one-sided: the small tail where t points that way, else 1 - the small tail
@@ -383,7 +404,7 @@ def log_p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndar
     return np.where(toward, log_lower, far_side).reshape(shape)
 
 
-def two_sided_p(t: np.ndarray, df: float) -> np.ndarray:
+def two_sided_p(t: np.ndarray, df: np.ndarray | float) -> np.ndarray:
     """``P(|T_df| >= |t|)``, the p value a fit reports: ``2 * scipy.special.stdtr(df,
     -|t|)`` for many values, :func:`p_from_t` for :data:`FEW` (no scipy import).
 
@@ -391,16 +412,16 @@ def two_sided_p(t: np.ndarray, df: float) -> np.ndarray:
     0.073388
     """
     t = np.asarray(t, dtype=np.float64)
-    if not df > 0:
-        return np.full(t.shape, np.nan)
     if t.size <= FEW:
-        return p_from_t(t, df, "two")
+        return p_from_t(t, df, "two")  # NaN where df <= 0
     from scipy import special
 
-    return 2.0 * special.stdtr(df, -np.abs(t))
+    d = np.asarray(df, dtype=np.float64)
+    good = d > 0
+    return np.where(good, 2.0 * special.stdtr(np.where(good, d, 1.0), -np.abs(t)), np.nan)
 
 
-def p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndarray:
+def p_from_t(t: np.ndarray | float, df: np.ndarray | float, tail: str = "two") -> np.ndarray:
     """p value of t for ``tail`` (it underflows to 0 beyond about t = 40; use
     :func:`neglog10p_from_t` there).
 
@@ -410,7 +431,9 @@ def p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndarray:
     return np.exp(log_p_from_t(t, df, tail))
 
 
-def neglog10p_from_t(t: np.ndarray | float, df: float, tail: str = "two") -> np.ndarray:
+def neglog10p_from_t(
+    t: np.ndarray | float, df: np.ndarray | float, tail: str = "two"
+) -> np.ndarray:
     """``-log10 p`` of t for ``tail``, finite at any finite t.
 
     >>> round(float(neglog10p_from_t(0.0, 10)), 12)

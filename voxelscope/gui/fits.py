@@ -44,7 +44,7 @@ _BASE = [
     ("beta", "Contrast estimate c'b (data units)"),
     ("variance", "Variance of the contrast estimate"),
     ("t", "t statistic of the contrast"),
-    ("df", "Residual degrees of freedom"),
+    ("df", "Degrees of freedom of t (effective under the default AR(p) noise model)"),
     ("p", "Two-sided p value of t"),
     ("R²", "Fraction of the data variance explained by the whole model"),
 ]

@@ -388,7 +388,7 @@ class MapPanel(QWidget):
             text = (
                 f"contrast '{m.contrast}', "
                 f"{NOISE_LABELS.get(m.noise, m.noise)}, "
-                f"df {m.df}, {m.n_voxels} voxels"
+                f"{m.df_text()}, {m.n_voxels} voxels"
             )
             if self.live.last_seconds is not None:
                 text += f", {1000 * self.live.last_seconds:.0f} ms"
