@@ -411,7 +411,7 @@ def _one_pass_run(rng, shape=(14, 12, 10)):
     return data
 
 
-@pytest.mark.parametrize("noise", ["ols", "ar1"])
+@pytest.mark.parametrize("noise", ["ols", "ar1", "arp"])
 def test_one_pass_map_equals_the_two_pass_map(tmp_path, noise, monkeypatch):
     """A plain .nii whose mask is still to be decided is read once: the summary gathered
     while fitting equals the run's own summary pass bit for bit (mean image, NaN and
@@ -448,6 +448,8 @@ def test_one_pass_map_equals_the_two_pass_map(tmp_path, noise, monkeypatch):
         np.testing.assert_allclose(a1, a2, rtol=rtol, atol=0, err_msg=name)
     np.testing.assert_array_equal(m1.mask, m2.mask)
     np.testing.assert_array_equal(m1.degenerate, m2.degenerate)
+    if noise == "arp":  # the smoothed AR coefficients every voxel was prewhitened with
+        np.testing.assert_allclose(m1.ar, m2.ar, rtol=2.5e-7, atol=1e-12)
     assert np.all(m1.t[~once.mask()] == 0) and np.all(m1.p[~once.mask()] == 1)
     # the NaN voxel is said once, as by the summary pass
     assert sum("NaN" in w for w in once.warnings) == 1

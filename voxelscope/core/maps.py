@@ -396,6 +396,10 @@ def _one_pass(
     """Fit the voxels the brain mask will probably hold while gathering the run's summary,
     in one pass over a plain memory-mapped run; return the run's brain mask.
 
+    ``fit_chunk(idx, data)`` fits (or, under AR(p), takes the one-pass sums of) a (T, n)
+    block and returns something with each voxel's ``tss`` (its working copy's sum of
+    squares); ``store(idx, result)`` keeps it; ``advance(n)`` counts voxels only summarised.
+
     The mask needs every voxel's mean (the intensity rule), which used to cost a pass of
     its own before the fit. Here the blocks of the whole grid are read once, in file
     order; every voxel's sum over time is taken as the summary pass takes it
@@ -533,7 +537,7 @@ def compute_map(
     guess = None
     if (
         mask is None
-        and settings.noise in ("ols", "ar1")
+        and settings.noise in ("ols", "ar1", "arp")
         and _prep.keep is None
         and _prep.constant_index is not None
         and callable(getattr(run, "mask_pending", None))
@@ -617,8 +621,25 @@ def compute_map(
             seen += idx.size
             report(share * seen / total if total else share)
 
-        with _one_blas_thread():
-            _for_blocks(chunks(), lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers)
+        if one_pass:  # the sums of the guessed voxels while gathering the summary
+            mask = _one_pass(
+                run,
+                guess,
+                lambda _i, d: arp_block_sums(_prep, d, n_lags),
+                store_sums,
+                lambda n: None,
+                n_workers,
+                int(chunk_voxels),
+            )
+            in_mask = mask.reshape(-1)
+            kept[:] = [(i[in_mask[i]], x.take(in_mask[i])) for i, x in kept if in_mask[i].any()]
+            total = int(np.count_nonzero(in_mask))
+        else:
+            with _one_blas_thread():
+                blocks = chunks()
+                _for_blocks(
+                    blocks, lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
+                )
         sm = smooth_map(values.reshape((*shape, n_lags + 1)), valid.reshape(shape) & mask, run)
         del values
         sm = sm.reshape(-1, n_lags + 1)
