@@ -8,7 +8,9 @@ comparing like with like:
   float32 ``.nii``) against a script that loads the run with nibabel, makes one pass over
   it (the mean over time) and saves a float32 map: goal <= 2. Info: the same command
   against the plain NumPy script a user would write (nibabel in float64, pinv, residuals,
-  t, save), also whole-process.
+  t, save), also whole-process; and, against the one-pass script, the default AR(p) map of
+  the same run and the OLS map of a run with background (a third of the grid bright: the
+  command then keeps the summary pass before the map).
 * In-process on the same loaded, memory-mapped data (page cache warm for both): the OLS t
   map (``compute_map``) against one streaming pass ``data.sum(axis=-1)``: goal <= 4. Info
   rows give the floors: the least work of a fit with one matrix product over the data
@@ -54,18 +56,31 @@ def _events(n_volumes: int) -> str:
     return "\n".join(rows) + "\n"
 
 
-def _make_run(folder: Path, shape: tuple[int, int, int], n: int, seed: int = 0) -> Path:
-    """Raw-BOLD-like float32 run: mean ~10000, noise, a response in one block of voxels."""
+def _make_run(
+    folder: Path, shape: tuple[int, int, int], n: int, seed: int = 0, bright: float = 1.0
+) -> Path:
+    """Raw-BOLD-like float32 run: mean ~10000, noise, a response in one block of voxels.
+
+    ``bright < 1``: only an ellipsoid holding about that share of the grid is bright; the
+    rest is dim noise (mean 50-400), as around the head of a run in native space.
+    """
     rng = np.random.default_rng(seed)
     data = np.empty((*shape, n), dtype=np.float32, order="F")
     base = rng.normal(10000, 300, shape).astype(np.float32)
+    sd = np.full(shape, 40, dtype=np.float32)
+    if bright < 1.0:
+        g = np.meshgrid(*(np.linspace(-1, 1, k) for k in shape), indexing="ij")
+        r = (bright * 6 / np.pi) ** (1 / 3)  # an ellipsoid of radius r in the unit cube
+        out = sum(gi * gi for gi in g) >= r * r
+        base[out] = rng.uniform(50, 400, int(out.sum()))
+        sd[out] = 30
     for t in range(n):  # volume by volume, to keep the generator's memory small
-        data[..., t] = base + rng.standard_normal(shape, dtype=np.float32) * 40
+        data[..., t] = base + rng.standard_normal(shape, dtype=np.float32) * sd
     x0, y0, z0 = (s // 3 for s in shape)
     data[x0 : 2 * x0, y0 : 2 * y0, z0 : 2 * z0, :] += np.float32(30) * np.sin(
         np.arange(n, dtype=np.float32) * 0.2
     )
-    name = f"sub-b{shape[0]}_task-x_bold.nii"
+    name = f"sub-b{shape[0]}{'' if bright >= 1 else 'bg'}_task-x_bold.nii"
     img = nib.Nifti1Image(data, np.diag([3.0, 3.0, 3.0, 1.0]))
     img.header.set_xyzt_units("mm", "sec")
     img.header["pixdim"][4] = TR
@@ -276,6 +291,28 @@ def _wholeprocess_rows(path: Path, X: np.ndarray, c: np.ndarray, label: str) -> 
     return rows
 
 
+def _info_wholeprocess_rows(path: Path, background: Path, label: str) -> list[tuple]:
+    """Info rows, whole-process against the same one-pass script: the default AR(p) map of
+    the same run, and the OLS map of a run with background (about a third of the grid
+    bright), which keeps the summary's own pass before the map (see DEVELOPERS.md)."""
+    from wholeprocess import row, side_by_side, voxelscope_cmd
+
+    folder = path.parent
+    rows = []
+    for run, noise, what in (
+        (path, "arp", "default AR(p) map"),
+        (background, "ols", "OLS map of a run with background (1/3 bright, two passes)"),
+    ):
+        ours = voxelscope_cmd(
+            "map", str(run), "--kernel", "double-gamma", "--contrast", "tone", "--noise", noise,
+            "-o", str(folder / "info_t.nii"), "--force",
+        )  # fmt: skip
+        one = [sys.executable, str(folder / "one_pass.py"), str(run), str(folder / "mean.nii")]
+        pair = side_by_side(ours, one, repeats=5)
+        rows.append(row(f"{label}: {what} vs load + one pass + save", pair, None))
+    return rows
+
+
 def _floor_one(arr: np.ndarray, X: np.ndarray, chunk: int = 1024) -> float:
     """One-product floor: centre, total sum of squares, ``Q'Y`` and ``tss - ||Q'Y||^2``."""
     from threadpoolctl import threadpool_limits
@@ -406,6 +443,9 @@ def main(large: bool = True) -> list[tuple]:
         c = a.contrast_weights("double-gamma", s)
         del run
         rows += _wholeprocess_rows(small, X, c, "64x64x40x300")
+        background = _make_run(folder, (64, 64, 40), 300, seed=3, bright=0.35)
+        rows += _info_wholeprocess_rows(small, background, "64x64x40x300")
+        background.unlink()
         rows += _map_rows(small, "64x64x40x300", with_reference=True)
         rows += _memory_rows(small, "64x64x40x300")
         small.unlink()
