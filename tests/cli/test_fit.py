@@ -69,7 +69,8 @@ def test_fit_json_matches_statsmodels(tmp_path, capsys):
         m = sm.OLS(y, X).fit()
         tt = m.t_test(np.asarray(f["weights"]))
         assert f["weights"][:2] == [1.0, -1.0]
-        np.testing.assert_allclose(f["beta"], float(np.squeeze(tt.effect)), rtol=1e-9)
+        np.testing.assert_allclose(f["estimate"], float(np.squeeze(tt.effect)), rtol=1e-9)
+        assert f["beta"] == f["estimate"]  # the earlier key stays for older scripts
         np.testing.assert_allclose(f["variance"], float(np.squeeze(tt.sd)) ** 2, rtol=1e-9)
         np.testing.assert_allclose(f["t"], float(np.squeeze(tt.tvalue)), rtol=1e-9)
         np.testing.assert_allclose(f["p"], float(np.squeeze(tt.pvalue)), rtol=1e-7)

@@ -89,6 +89,13 @@ def test_map_writes_float32_with_run_affine_and_leaves_input(tmp_path, capsys):
     z = np.asarray(nib.load(out_z).dataobj)
     big = np.abs(t) > 1
     assert np.all(np.sign(z[big]) == np.sign(t[big])) and np.all(np.abs(z[big]) < np.abs(t[big]))
+    # the contrast estimate c'b (statsmodels t_test's effect); 'beta', its earlier name, too
+    effect = float(res.t_test(a.contrast_weights("gamma", s)).effect.squeeze())
+    for name in ("estimate", "beta"):
+        out_e = tmp_path / f"{name}.nii"
+        assert main([*argv[:-3], "--stat", name, "-o", str(out_e), "--no-cache"]) == 0
+        est = np.asarray(nib.load(out_e).dataobj)
+        assert est[2, 3, 1] == pytest.approx(effect, rel=1e-5)
 
 
 def test_map_refuses_to_overwrite_input_and_existing_output(tmp_path, capsys):

@@ -26,7 +26,7 @@ from voxelscope.core.model import Analysis, ModelSettings
 
 TR = 1.5
 T = 90
-COMBINED_KEYS = {"kernel", "beta", "variance", "t", "df", "p", "q", "q_p", "flags"}
+COMBINED_KEYS = {"kernel", "estimate", "beta", "variance", "t", "df", "p", "q", "q_p", "flags"}
 
 
 def _three_runs(tmp_path, shape=(5, 6, 4), affines=None, active_run=None):

@@ -467,7 +467,7 @@ def test_modulated_fit_equals_statsmodels_on_a_design_built_here():
         f = a.fit_voxel(y, s).fits[0]
         tt = m.t_test(np.array(w, dtype=float))
         assert f.t == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-9)
-        assert f.beta == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+        assert f.estimate == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
     notes = a.check_modulators(ModelSettings(modulators=("gain",)))
     assert notes == [
         "condition 'gamble': modulator 'gain' is n/a for 2 of 30 events; they keep the main "
@@ -497,7 +497,7 @@ def test_modulators_recovered_on_simulated_data(main, slope):
     for expr, planted in (("gamble", main), ("gamble:gain", slope)):
         s = ModelSettings(kernels=("double-gamma",), modulators=("gain",), contrast=expr)
         f = a.fit_voxel(y, s).fits[0]
-        assert abs(f.beta - planted) < 4 * math.sqrt(f.variance)
+        assert abs(f.estimate - planted) < 4 * math.sqrt(f.variance)
         if planted == 0:
             assert abs(f.t) < 3.5
         else:

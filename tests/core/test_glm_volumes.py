@@ -59,7 +59,7 @@ def test_ols_on_kept_rows_equals_statsmodels(seed):
         m = sm.OLS(Y[keep, v], Xk).fit()
         tt = m.t_test(c)
         assert_allclose(res.betas[:, v], m.params, rtol=1e-9, atol=1e-9)
-        assert_allclose(res.beta[v], float(np.squeeze(tt.effect)), rtol=1e-9)
+        assert_allclose(res.estimate[v], float(np.squeeze(tt.effect)), rtol=1e-9)
         assert_allclose(res.variance[v], float(np.squeeze(tt.sd)) ** 2, rtol=1e-9)
         assert_allclose(res.t[v], float(np.squeeze(tt.tvalue)), rtol=1e-9)
         assert_allclose(res.p[v], float(np.squeeze(tt.pvalue)), rtol=1e-7)

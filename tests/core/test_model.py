@@ -41,9 +41,9 @@ def _simulated_voxel(seed: int, amplitude: float = 3.0, noise_sd: float = 1.0) -
     th = np.arange(0, 32, dt)
     h = stats.gamma.pdf(th, 6, scale=0.9) - 0.35 * stats.gamma.pdf(th, 12, scale=0.9)
     resp = np.convolve(stim, h)[: t.size] * dt / (h.sum() * dt)
-    frames = np.interp(np.arange(N) * TR, t, resp)
+    at_volumes = np.interp(np.arange(N) * TR, t, resp)
     rng = np.random.default_rng(seed)
-    return 800.0 + amplitude * frames + rng.normal(0, noise_sd, N)
+    return 800.0 + amplitude * at_volumes + rng.normal(0, noise_sd, N)
 
 
 @pytest.mark.parametrize("seed", [1, 2, 3, 4, 5])
@@ -74,7 +74,7 @@ def test_voxel_fit_matches_statsmodels_on_the_design():
         c = np.zeros(d.n_columns)
         c[d.names.index("tone")], c[d.names.index("tap")] = 1.0, -1.0
         tt = ref.t_test(c[None, :])
-        assert_allclose(kf.beta, tt.effect[0], rtol=1e-9)
+        assert_allclose(kf.estimate, tt.effect[0], rtol=1e-9)
         assert_allclose(kf.t, tt.tvalue[0, 0], rtol=1e-9)
         assert_allclose(kf.p, tt.pvalue, rtol=1e-7)
         assert kf.df == int(ref.df_resid)
@@ -130,7 +130,7 @@ def test_a_batch_of_voxels_equals_fit_voxel():
         for j in range(4):
             one = a.fit_voxel(Y[:, j], s).fits[0]
             assert_allclose(many.t[j], one.t, rtol=1e-12)
-            assert_allclose(many.beta[j], one.beta, rtol=1e-12)
+            assert_allclose(many.estimate[j], one.estimate, rtol=1e-12)
             assert_allclose(many.variance[j], one.variance, rtol=1e-12)
             if noise == "ar1":
                 assert_allclose(many.rho[j], one.rho, rtol=1e-12)
@@ -230,3 +230,20 @@ def test_confound_columns_setting():
     assert none.kinds.count("confound") == 0
     with pytest.raises(InputError, match="'motion'"):
         a.design("gamma", ModelSettings(confound_columns=("motion",)))
+
+
+def test_the_contrast_estimate_keeps_its_earlier_name():
+    """``estimate`` is the contrast's ``c'b`` (statsmodels OLS ``t_test(c).effect``, the
+    outside reference); ``beta``, its earlier name, still gives the same number on both the
+    per-voxel result and one kernel's fit, so that older scripts keep working."""
+    sm = pytest.importorskip("statsmodels.api")
+    a = Analysis([TONE, TAP], N, TR)
+    s = ModelSettings(kernels=("double-gamma",), noise="ols")
+    y = _simulated_voxel(7)
+    kf = a.fit_voxel(y, s).fits[0]
+    w = a.contrast_weights("double-gamma", s)
+    effect = float(np.squeeze(sm.OLS(y, kf.design.X).fit().t_test(w).effect))
+    assert_allclose(kf.estimate, effect, rtol=1e-9)
+    assert kf.beta == kf.estimate
+    assert_allclose(kf.result.beta, kf.result.estimate)
+    assert kf.result.betas.shape[0] == kf.design.X.shape[1]  # betas: one per column

@@ -113,7 +113,7 @@ def test_report_numbers_equal_the_fit(demo, tmp_path):
     for row, f in zip(html.cells, fits.fits):
         shown, value = row["t"]
         assert shown == f"{f.t:.2f}" and float(value) == f.t
-        assert float(row["beta"][1]) == f.beta and float(row["variance"][1]) == f.variance
+        assert float(row["estimate"][1]) == f.estimate and float(row["variance"][1]) == f.variance
         assert int(row["df"][0]) == f.df and float(row["p"][1]) == f.p
     # outside reference: statsmodels OLS on the same design and contrast
     sm = pytest.importorskip("statsmodels.api")

@@ -149,7 +149,7 @@ def test_kernel_response_is_beta_times_the_kernel():
     s = ModelSettings(kernels=("double-gamma",))
     y = 100 + 30 * simulate(on, np.zeros(on.size)) + rng.standard_normal(N)
     fir = fir_estimate(a, s, y, "tone")
-    beta = a.fit_voxel(y, s).fits[0].beta
+    beta = a.fit_voxel(y, s).fits[0].estimate
     tt = fir.kernel_times
     expect = beta * double_gamma(tt) / (1.0 - 1.0 / 6.0)
     got = fir.kernels_fine["double-gamma"]

@@ -13,7 +13,14 @@ from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.core.run import open_run
 from voxelscope.gui.fits import format_value
 
-COLUMNS = {"beta": "beta", "variance": "variance", "t": "t", "df": "df", "p": "p", "R²": "r2"}
+COLUMNS = {
+    "estimate": "estimate",
+    "variance": "variance",
+    "t": "t",
+    "df": "df",
+    "p": "p",
+    "R²": "r2",
+}
 
 
 def _core(spec, settings, voxel):
@@ -82,7 +89,7 @@ def test_boxcar_row_matches_statsmodels(window, ras_run):
     tt = ref.t_test(w[None, :])
     row = _table(window)["boxcar"]
     assert row["t"] == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
-    assert row["beta"] == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-8)
+    assert row["estimate"] == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-8)
     assert row["df"] == int(ref.df_resid)
     assert row["R²"] == pytest.approx(ref.rsquared, rel=1e-8)
 
@@ -92,7 +99,7 @@ def test_copy_as_tsv(window, ras_run, qtbot):
     text = window.fits.copy()
     assert QGuiApplication.clipboard().text() == text
     lines = text.strip().split("\n")
-    assert lines[0].split("\t")[:7] == ["kernel", "beta", "variance", "t", "df", "p", "R²"]
+    assert lines[0].split("\t")[:7] == ["kernel", "estimate", "variance", "t", "df", "p", "R²"]
     kernels = [line.split("\t")[0] for line in lines[1:]]
     assert kernels == list(window.state.settings.kernels)
     t_col = [float(line.split("\t")[3]) for line in lines[1:]]

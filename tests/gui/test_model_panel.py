@@ -34,7 +34,7 @@ def test_kernel_toggle_removes_row_and_curve(window, ras_run, qtbot):
 
 def test_contrast_edit_refits(window, ras_run, qtbot):
     st = _open(window, ras_run)
-    before = st.fits.by_kernel("boxcar").beta
+    before = st.fits.by_kernel("boxcar").estimate
     edit = window.model_panel.contrast
     edit.setFocus()
     edit.clear()
@@ -44,11 +44,11 @@ def test_contrast_edit_refits(window, ras_run, qtbot):
     # a run starts with the default model exactly: no confound columns until picked
     s = ModelSettings(contrast="tap - tone", confound_columns=())
     expected = st.analysis.fit_voxel(st.series, s, st.analysis.noise_at(st.run, st.voxel, s))
-    after = st.fits.by_kernel("boxcar").beta
+    after = st.fits.by_kernel("boxcar").estimate
     assert after != before
-    assert after == pytest.approx(expected.by_kernel("boxcar").beta, rel=1e-12)
+    assert after == pytest.approx(expected.by_kernel("boxcar").estimate, rel=1e-12)
     model = window.fits.model
-    assert model.raw(0, "beta") == pytest.approx(after, rel=1e-12)
+    assert model.raw(0, "estimate") == pytest.approx(after, rel=1e-12)
     assert not window.model_panel.contrast_error.isVisible()
 
 

@@ -47,9 +47,10 @@ def register(sub: argparse._SubParsersAction) -> None:
         **help_args("fit"),
         help="fit one voxel under every kernel",
         description=(
-            "Fit the GLM at one voxel under each kernel and print beta, variance, t, df, p and "
-            "R². With several runs of one subject, each run is fitted on its own and the runs "
-            "are combined per kernel by fixed effects, with Cochran's Q for their agreement."
+            "Fit the GLM at one voxel under each kernel and print the contrast estimate, "
+            "variance, t, df, p and R². With several runs of one subject, each run is fitted "
+            "on its own and the runs are combined per kernel by fixed effects, with Cochran's Q "
+            "for their agreement."
         ),
     )
     add_model_args(p, several_runs=True)
@@ -88,14 +89,14 @@ def _z(f: KernelFit) -> float | None:
 
 def format_table(fits: VoxelFits, noise: str, tail: str = "two") -> str:
     """Aligned, human-readable table, one row per kernel (p for ``tail``)."""
-    head = ["kernel", "beta", "variance", "t", "df", _TAIL_HEAD[tail], "R2"]
+    head = ["kernel", "estimate", "variance", "t", "df", _TAIL_HEAD[tail], "R2"]
     if noise == "ar1":
         head.append("rho")
     rows = [head]
     for f in fits.fits:
         row = [
             f.kernel,
-            _fmt(f.beta, "beta"),
+            _fmt(f.estimate, "beta"),
             _fmt(f.variance, "variance"),
             _fmt(f.t, "t"),
             _fmt(f.df, "df"),
@@ -125,7 +126,8 @@ def fit_to_json(f: KernelFit, checks: dict | None = None, tail: str = "two") -> 
         "columns": list(d.names),
         "design": d.X.tolist(),
         "weights": f.result.weights.tolist(),
-        "beta": f.beta,
+        "estimate": f.estimate,
+        "beta": f.estimate,  # the earlier key of the estimate, kept for older scripts
         "variance": f.variance,
         "t": f.t,
         "df": f.df,
@@ -229,7 +231,7 @@ def combine_voxel_fits(
                 first.kernel,
                 first.contrast,
                 labels,
-                [f.beta for f in per_run],
+                [f.estimate for f in per_run],
                 [f.variance for f in per_run],
                 [f.df for f in per_run],
                 tail=tail,
@@ -240,7 +242,7 @@ def combine_voxel_fits(
 
 def format_combined_table(combined: list[CombinedFit], tail: str = "two") -> str:
     """Aligned table of the combined rows, one per kernel (p for ``tail``), then the flags."""
-    head = ["kernel", "beta", "variance", "t", "df", _TAIL_HEAD[tail], "Q", "Q p"]
+    head = ["kernel", "estimate", "variance", "t", "df", _TAIL_HEAD[tail], "Q", "Q p"]
     rows = [head]
     for c in combined:
         rows.append(
@@ -317,7 +319,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
             for f in r[0].fits:
                 w.writerow(
                     [label, f.kernel, f.contrast]
-                    + [num(v) for v in (f.beta, f.variance, f.t)]
+                    + [num(v) for v in (f.estimate, f.variance, f.t)]
                     + [f.df]
                     + [num(v) for v in (_tail_p(f, args.tail), f.r2)]
                     + [f.result.noise, num(f.rho), "", ""]
@@ -375,7 +377,7 @@ def run_fit(args: argparse.Namespace) -> int:
         for f in fits.fits:
             w.writerow(
                 [f.kernel, f.contrast]
-                + ["" if v is None else repr(float(v)) for v in (f.beta, f.variance, f.t)]
+                + ["" if v is None else repr(float(v)) for v in (f.estimate, f.variance, f.t)]
                 + [f.df]
                 + ["" if v is None else repr(float(v)) for v in (_tail_p(f, args.tail), f.r2)]
                 + [f.result.noise, "" if f.rho is None else repr(float(f.rho))]

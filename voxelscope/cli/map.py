@@ -30,7 +30,10 @@ from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]
 
-_STATS = ("t", "beta", "variance", "z", "p", "neglog10p")
+_STATS = ("t", "estimate", "beta", "variance", "z", "p", "neglog10p")
+#: Names users type -> the core's statistic: ``estimate`` is the contrast's ``c'b``, which the
+#: core's maps still call ``beta`` (also accepted here, the earlier name).
+_CORE_STAT = {"estimate": "beta"}
 #: With several runs the combined map also has Cochran's Q and its p.
 _RUN_STATS = ("q", "q_p")
 
@@ -83,7 +86,8 @@ def register(sub: argparse._SubParsersAction) -> None:
         "--stat",
         choices=_STATS + _RUN_STATS,
         default="t",
-        help="statistic to write (default t); with several runs also q (Cochran's Q) and q_p "
+        help="statistic to write (default t; estimate is the contrast's c'b, also called "
+        "beta); with several runs also q (Cochran's Q) and q_p "
         "(its chi-square p)",
     )
     p.add_argument(
@@ -154,6 +158,7 @@ def run_map(args: argparse.Namespace) -> int:
         raise InputError("--explain needs --compare THEIRS.nii (the map to explain)")
     if args.min_voxels < 1:
         raise InputError("--min-voxels must be at least 1")
+    args.stat = _CORE_STAT.get(args.stat, args.stat)
     if len(run_paths(args)) > 1:
         return _run_map_several(args)
     if args.stat in _RUN_STATS:

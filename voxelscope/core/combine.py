@@ -247,13 +247,15 @@ class CombinedFit:
     z: float | None = None
 
     def to_json(self) -> dict[str, Any]:
-        """The documented JSON object: kernel, beta, variance, t, df, p, q, q_p, flags;
+        """The documented JSON object: kernel, estimate (also as ``beta``, its earlier key),
+        variance, t, df, p, q, q_p, flags;
         ``p`` and ``neglog10p`` are for ``tail`` (two-sided by default), ``z`` exact."""
         df = int(self.df) if float(self.df).is_integer() else float(self.df)
         return {
             "kernel": self.kernel,
             "contrast": self.contrast,
-            "beta": self.beta,
+            "estimate": self.beta,
+            "beta": self.beta,  # the earlier key of the estimate, kept for older scripts
             "variance": self.variance,
             "t": self.t,
             "df": df,

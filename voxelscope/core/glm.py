@@ -53,7 +53,7 @@ Examples
 >>> X = np.column_stack([rng.standard_normal(50), np.ones(50)])
 >>> y = 2.0 * X[:, 0] + 10 + 0.1 * rng.standard_normal(50)
 >>> res = fit(X, y, contrast=[1, 0])
->>> round(float(res.beta[0]), 1), int(res.df)
+>>> round(float(res.estimate[0]), 1), int(res.df)
 (2.0, 48)
 """
 
@@ -637,7 +637,7 @@ class FitResult:
         Contrast weights.
     betas : ndarray (p, n_voxels) or None
         None only from :func:`fit_sums` with ``betas=False`` (a map: the contrast only).
-    beta : contrast estimate ``c'b``
+    estimate : contrast estimate ``c'b`` (``betas`` are the columns' coefficients)
     variance : ``sigma2 * c'(X'X)^-1 c`` (whitened X under AR(1))
     t, p : t statistic and its two-sided p value (``p`` is None when the fit was asked
         for without it, ``want_p=False``)
@@ -676,7 +676,7 @@ class FitResult:
     noise: str
     weights: np.ndarray
     betas: np.ndarray | None
-    beta: np.ndarray
+    estimate: np.ndarray
     variance: np.ndarray
     t: np.ndarray
     p: np.ndarray | None
@@ -700,7 +700,12 @@ class FitResult:
 
     @property
     def n_voxels(self) -> int:
-        return int(self.beta.shape[0])
+        return int(self.estimate.shape[0])
+
+    @property
+    def beta(self) -> np.ndarray:
+        """The earlier name of :attr:`estimate`, kept so that older scripts keep working."""
+        return self.estimate
 
     @property
     def df_used(self) -> np.ndarray | int:
@@ -1208,18 +1213,18 @@ def _finish(
     if df <= 0:
         degenerate[:] = True
     if B is None:  # the contrast only (a map); the mean goes back in as into the constant
-        beta = cb + c[prep.constant_index] * mean / X[0, prep.constant_index] if centred else cb
+        estimate = cb + c[prep.constant_index] * mean / X[0, prep.constant_index] if centred else cb
     else:
         if centred:  # the constant column need not be all ones
             B[prep.constant_index] += mean / X[0, prep.constant_index]
-        beta = c @ B
+        estimate = c @ B
     if prep.n_model is not None:  # indicator columns of censored volumes: not reported
         m = prep.n_model
         B, c, X = (None if B is None else B[:m]), c[:m], X[:, :m]
         if cov.shape[0]:
             cov = cov[:, :m, :m]
     variance = sigma2 * cvar
-    t = beta / np.sqrt(variance)
+    t = estimate / np.sqrt(variance)
     r2 = 1.0 - rss / tss  # constant voxels (flat) are set to NaN below
     pval = None
     if want_p:  # a few voxels (a click, a fit) without importing scipy.special
@@ -1240,7 +1245,7 @@ def _finish(
     if bad is not None:  # voxels with NaN or infinite samples have no fit at all
         if B is not None:
             B[:, bad] = np.nan
-        beta[bad] = np.nan
+        estimate[bad] = np.nan
         r2[bad] = np.nan
         sigma2[bad] = np.nan
         if keep_series:
@@ -1252,7 +1257,7 @@ def _finish(
         noise=noise,
         weights=c,
         betas=B,
-        beta=beta,
+        estimate=estimate,
         variance=variance,
         t=t,
         p=pval,

@@ -317,7 +317,7 @@ def _scatter(
     t = np.where(good, res.t, 0.0)
     flat["t"][idx] = t
     if "beta" in want:
-        flat["beta"][idx] = np.where(good, res.beta, 0.0)
+        flat["beta"][idx] = np.where(good, res.estimate, 0.0)
     if "variance" in want:
         flat["variance"][idx] = np.where(good, res.variance, 0.0)
     if "p" in want:

@@ -130,8 +130,14 @@ class KernelFit:
         return f"AR(p) coefficients {coefs} from this voxel alone (no neighbourhood given)"
 
     @property
+    def estimate(self) -> float | None:
+        """The contrast estimate ``c'b`` (None when undefined)."""
+        return finite_or_none(self.result.estimate)
+
+    @property
     def beta(self) -> float | None:
-        return finite_or_none(self.result.beta)
+        """The earlier name of :attr:`estimate`, kept so that older scripts keep working."""
+        return self.estimate
 
     @property
     def variance(self) -> float | None:

@@ -191,7 +191,7 @@ code{font-size:.95em}.muted{color:#5a5a5a}
 
 def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
     has_f = any(f.f is not None or f.f_df is not None for f in fits.fits)
-    head = ["kernel", "contrast", "beta", "variance", "t", "df", "p", "R²"]
+    head = ["kernel", "contrast", "estimate", "variance", "t", "df", "p", "R²"]
     if noise == "ar1":
         head.append("rho")
     if has_f:
@@ -204,7 +204,7 @@ def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(f.kernel)}</td>",
             f"<td class='contrast'>{_e(f.contrast)}</td>",
-            f"<td class='num beta'{_value_attr(f.beta)}>{_fmt(f.beta, 'beta')}</td>",
+            f"<td class='num estimate'{_value_attr(f.estimate)}>{_fmt(f.estimate, 'beta')}</td>",
             f"<td class='num variance'{_value_attr(f.variance)}>"
             f"{_fmt(f.variance, 'variance')}</td>",
             f"<td class='num t'{_value_attr(f.t)}>{_fmt(f.t, 't')}</td>",

@@ -96,7 +96,7 @@ def combined_csv(labels: Sequence[str], fits: Sequence[VoxelFits], combined) -> 
     >>> a = Analysis([Condition("tone", [5.0], [10.0])], n_volumes=30, tr=2.0)
     >>> s = ModelSettings(kernels=("gamma",))
     >>> f = [a.fit_voxel(np.sin(np.arange(30.0) * k), s) for k in (1, 2)]
-    >>> c = [combine_fits("gamma", "tone", ["a", "b"], [x.fits[0].beta for x in f],
+    >>> c = [combine_fits("gamma", "tone", ["a", "b"], [x.fits[0].estimate for x in f],
     ...      [x.fits[0].variance for x in f], [x.fits[0].df for x in f])]
     >>> combined_csv(["a", "b"], f, c).splitlines()[-1].split(",")[:2]
     ['combined', 'gamma']
@@ -111,7 +111,7 @@ def combined_csv(labels: Sequence[str], fits: Sequence[VoxelFits], combined) -> 
             lines.append(
                 ",".join(
                     [_csv_cell(label), f.kernel, _csv_cell(f.contrast)]
-                    + [num(v) for v in (f.beta, f.variance, f.t)]
+                    + [num(v) for v in (f.estimate, f.variance, f.t)]
                     + [str(f.df), num(f.p), "", ""]
                 )
             )
@@ -140,7 +140,7 @@ def runs_figure(
     width: float = 900.0,
     colours: Mapping[str, str] | None = None,
 ) -> Figure:
-    """Each run's contrast estimate with its 95 % interval (``beta +- 1.96 sqrt(v)``) per
+    """Each run's contrast estimate with its 95 % interval (``estimate +- 1.96 sqrt(v)``) per
     kernel, one row per run and a last row for the combined estimate.
 
     >>> c = combine_fits("gamma", "tone", ["a", "b"], [1.0, 2.0], [0.1, 0.2], [50, 50])
@@ -221,7 +221,7 @@ def runs_figure(
         Text(
             left + pw / 2,
             fig_h - 12,
-            "contrast estimate (beta) with 95 % interval",
+            "contrast estimate with 95 % interval",
             font + 1,
             "#222222",
             "middle",
@@ -231,7 +231,7 @@ def runs_figure(
 
 
 def _combined_table(combined: Sequence[CombinedFit], colours: Mapping[str, str]) -> str:
-    head = ["kernel", "contrast", "beta", "variance", "t", "df", "p", "Q", "Q p"]
+    head = ["kernel", "contrast", "estimate", "variance", "t", "df", "p", "Q", "Q p"]
     out = ["<table class='combined'><thead><tr>" + "".join(f"<th>{_e(h)}</th>" for h in head)]
     out.append("</tr></thead><tbody>")
     for c in combined:
@@ -240,7 +240,7 @@ def _combined_table(combined: Sequence[CombinedFit], colours: Mapping[str, str])
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(c.kernel)}</td>",
             f"<td class='contrast'>{_e(c.contrast)}</td>",
-            f"<td class='num beta'{_value_attr(c.beta)}>{_fmt(c.beta, 'beta')}</td>",
+            f"<td class='num estimate'{_value_attr(c.beta)}>{_fmt(c.beta, 'beta')}</td>",
             f"<td class='num variance'{_value_attr(c.variance)}>"
             f"{_fmt(c.variance, 'variance')}</td>",
             f"<td class='num t'{_value_attr(c.t)}>{_fmt(c.t, 't')}</td>",
@@ -449,7 +449,7 @@ def write_runs_report(
                     first.kernel,
                     first.contrast,
                     labels,
-                    [f.beta for f in per_run],
+                    [f.estimate for f in per_run],
                     [f.variance for f in per_run],
                     [f.df for f in per_run],
                 )

@@ -522,7 +522,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
             ar=None if est is None else est.phi,
         )
         flags = [(f.id, f.text) for f in checks.flags]
-        beta = float(kf.result.beta[0])
+        beta = float(kf.result.estimate[0])
         row = checks.confound_correlation.get(checks.condition, {})
         rs = [abs(row[m]) for m in motion if m in row and math.isfinite(row[m])]
         task_r = max(rs) if rs else None
@@ -531,7 +531,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
         if motion_model is not None and task_r is not None and task_r >= TASK_MOTION_R:
             noise2 = analysis.noise_at(run, ijk, motion_model)
             refit = analysis.fit_voxel(y, motion_model, noise2).fits[0]
-            b2 = float(refit.result.beta[0])
+            b2 = float(refit.result.estimate[0])
             kept = b2 / beta if beta != 0 and math.isfinite(b2) else None
             if kept is not None and kept < BETA_KEPT:
                 flags.append(

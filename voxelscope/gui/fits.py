@@ -1,10 +1,11 @@
 """Fits: one row per kernel at the current voxel (a Qt table model fed from the state).
 
-Columns: colour marker, kernel, beta, variance, t, df, p, R², the same whatever the model,
-so the table keeps its shape (and its width) when the model changes. Under the table, one
-line: the F test of all the condition's columns when the model has derivatives or FIR
-bins, then the noise model's coefficients (rho under AR(1), the AR(p) coefficients), cut
-with "…" when narrow and whole in its tooltip; the copied table has them as columns.
+Columns: colour marker, kernel, estimate (the contrast's c'b), variance, t, df, p, R², the
+same whatever the model, so the table keeps its shape (and its width) when the model
+changes. Under the table, one line: the F test of all the condition's columns when the
+model has derivatives or FIR bins, then the noise model's coefficients (rho under AR(1),
+the AR(p) coefficients), cut with "…" when narrow and whole in its tooltip; the copied
+table has them as columns.
 The numbers are the fields of :class:`voxelscope.core.model.KernelFit` (from
 ``Analysis.fit_voxel``), so they equal what the command line prints. Copy as
 tab-separated text with Ctrl+C or the context menu.
@@ -41,7 +42,7 @@ RAW_ROLE = Qt.ItemDataRole.UserRole + 1
 _BASE = [
     ("", "Kernel colour"),
     ("kernel", "Kernel of the condition regressors"),
-    ("beta", "Contrast estimate c'b (data units)"),
+    ("estimate", "Contrast estimate c'b (data units)"),
     ("variance", "Variance of the contrast estimate"),
     ("t", "t statistic of the contrast"),
     ("df", "Degrees of freedom of t (effective under the default AR(p) noise model)"),
@@ -66,7 +67,7 @@ _TYPICAL = {
 
 #: Kind of number (core/numfmt.py) of each numeric column.
 _KINDS = {
-    "beta": "beta",
+    "estimate": "beta",
     "variance": "variance",
     "t": "t",
     "F": "F",
@@ -223,7 +224,7 @@ class FitsModel(QAbstractTableModel):
                         "": kernel,
                         "kernel": kernel,
                         "run": rf.label,
-                        "beta": None if f is None else f.beta,
+                        "estimate": None if f is None else f.estimate,
                         "variance": None if f is None else f.variance,
                         "t": None if f is None else f.t,
                         "df": None if f is None else f.df,
@@ -239,7 +240,7 @@ class FitsModel(QAbstractTableModel):
                     "": kernel,
                     "kernel": kernel,
                     "run": "combined",
-                    "beta": None if c is None else c.beta,
+                    "estimate": None if c is None else c.beta,
                     "variance": None if c is None else c.variance,
                     "t": None if c is None else c.t,
                     "df": None if c is None else (int(c.df) if float(c.df).is_integer() else c.df),
@@ -266,7 +267,7 @@ class FitsModel(QAbstractTableModel):
                     {
                         "": f.kernel,
                         "kernel": f.kernel,
-                        "beta": f.beta,
+                        "estimate": f.estimate,
                         "variance": f.variance,
                         "t": f.t,
                         "df": f.df,

@@ -54,7 +54,7 @@ SOURCES = (
 )
 
 #: Statistics the model map can show, with their labels.
-MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "beta"), ("variance", "variance"))
+MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "estimate"), ("variance", "variance"))
 
 #: Threshold a source starts with the first time it is shown (others keep the current one).
 FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
@@ -763,7 +763,7 @@ class ViewerState(QObject):
                     first.kernel,
                     first.contrast,
                     [r.label for r in usable],
-                    [f.beta for f in per],
+                    [f.estimate for f in per],
                     [f.variance for f in per],
                     [f.df for f in per],
                 )
