@@ -17,6 +17,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from voxelscope.core import components
@@ -30,6 +32,7 @@ __all__ = [
     "cache_must_keep",
     "cache_selection",
     "mask_rule",
+    "percentile_of",
     "summary_mask",
 ]
 
@@ -53,6 +56,33 @@ def mask_rule() -> str:
         f"intensity rule {MASK_RULE_VERSION}: mean > {MASK_FRACTION} x percentile "
         f"{MASK_PERCENTILE}; largest 26-connected part; holes filled"
     )
+
+
+def percentile_of(values: np.ndarray, percentile: float) -> float:
+    """The ``percentile``-th percentile of finite float64 ``values`` (at least one), equal
+    to ``np.percentile``'s default (linear) method, which would import ``numpy.ma`` (through
+    ``np.unique``; about 15 ms of every run's first mask).
+
+    The value at the virtual index ``(n - 1) q`` of the sorted values, linearly between
+    its two neighbours with numpy's own formula on each side of a half (checked equal in
+    tests/core/test_mask.py).
+
+    >>> percentile_of(np.array([1.0, 2.0, 3.0, 4.0]), 50.0)
+    2.5
+    """
+    values = np.asarray(values, dtype=np.float64).ravel()
+    n = values.size
+    virtual = (n - 1) * (percentile / 100)
+    if virtual >= n - 1:
+        return float(values.max())
+    if virtual <= 0:
+        return float(values.min())
+    lo = math.floor(virtual)
+    gamma = virtual - lo
+    part = np.partition(values, (lo, lo + 1))
+    a, b = float(part[lo]), float(part[lo + 1])
+    diff = b - a
+    return b - diff * (1 - gamma) if gamma >= 0.5 else a + diff * gamma
 
 
 def brain_mask(
@@ -100,7 +130,7 @@ def brain_mask(
         ok &= np.asarray(valid, dtype=bool)
     if not ok.any():
         return np.zeros(mean.shape, dtype=bool)
-    ref = float(np.percentile(mean[ok], percentile))
+    ref = percentile_of(mean[ok], percentile)
     mask = ok & (mean > fraction * ref) if ref > 0 else ok & (mean > 0)
     if largest_component and mask.any():
         mask = components.largest_component(mask, connectivity=26)
@@ -149,7 +179,7 @@ def _mask_superset(s: Summary, fraction: float, valid: np.ndarray) -> np.ndarray
     ok = valid & np.isfinite(mean)
     if not ok.any():
         return ok
-    ref = float(np.percentile(mean[ok], MASK_PERCENTILE))
+    ref = percentile_of(mean[ok], MASK_PERCENTILE)
     over = ok & (mean > fraction * ref) if ref > 0 else ok & (mean > 0)
     if not over.any():
         return ok  # the mask falls back to every valid voxel
