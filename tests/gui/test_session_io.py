@@ -285,3 +285,37 @@ def test_session_keeps_the_atlas(qtbot, ras_run, tmp_path):
     assert open_session(b, path)
     assert b.state.atlas is not None and b.state.atlas.names == {3: "somewhere"}
     assert "<b>Region</b>" in b.slices.readout.text()
+
+
+def test_a_session_written_before_the_renames_still_opens(qtbot, ras_run, tmp_path):
+    """Sessions name their files by role: 'anatomy' and 'overlay' were the roles before the
+    window's words changed (underlay -> backdrop, stat_map -> overlay) and still are, and the
+    map statistic 'beta' is still a key a session may hold. A file written by hand the way
+    earlier versions wrote it opens the anatomy as the backdrop and the map file."""
+    import nibabel as nib
+
+    anatomy = tmp_path / "sub-ras_T1w.nii.gz"
+    data = np.arange(8 * 9 * 10, dtype=np.float32).reshape(8, 9, 10)
+    nib.save(nib.Nifti1Image(data, np.diag([2.0, 2.0, 2.0, 1.0])), anatomy)
+    doc = {
+        "schema": "voxelscope-session",
+        "version": 1,
+        "files": {  # content digests with hashlib (FIPS 180-4 SHA-256)
+            role: {"path": str(p), "sha256": hashlib.sha256(Path(p).read_bytes()).hexdigest()}
+            for role, p in (
+                ("run", ras_run["run"]),
+                ("anatomy", anatomy),
+                ("overlay", ras_run["map"]),
+            )
+        },
+        "model": {"noise": "ols"},
+        "voxel": [2, 3, 4],
+        "map": {"source": "file", "stat": "beta"},
+    }
+    path = tmp_path / "old.voxelscope.json"
+    path.write_text(json.dumps(doc), encoding="utf-8")
+    w = new_window(qtbot, tmp_path, "old")
+    assert open_session(w, path), w.last_error
+    assert w.state.backdrop is not None and w.state.backdrop.path == anatomy
+    assert w.state.file_layer is not None and w.state.file_layer.path == Path(ras_run["map"])
+    assert w.state.map_settings.stat == "beta"
