@@ -247,3 +247,33 @@ def test_the_contrast_estimate_keeps_its_earlier_name():
     assert kf.beta == kf.estimate
     assert_allclose(kf.result.beta, kf.result.estimate)
     assert kf.result.betas.shape[0] == kf.design.X.shape[1]  # betas: one per column
+
+
+def test_noise_at_runs_blas_on_one_thread_and_restores_it(monkeypatch):
+    """A clicked voxel's AR(p) estimate (many small products) runs with BLAS on one
+    thread, as maps do, and leaves the thread counts as they were (read with
+    threadpoolctl, an outside tool)."""
+    from threadpoolctl import threadpool_info
+
+    from voxelscope.core import noise
+    from voxelscope.core.maps import ArrayRun
+
+    def blas_threads():
+        return [d["num_threads"] for d in threadpool_info() if d["user_api"] == "blas"]
+
+    inside: list[list[int]] = []
+    real = noise.voxel_ar
+
+    def spy(*args, **kwargs):
+        inside.append(blas_threads())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(noise, "voxel_ar", spy)
+    rng = np.random.default_rng(2)
+    run = ArrayRun((1000 + rng.standard_normal((6, 6, 5, 60))).astype(np.float32))
+    a = Analysis([Condition("x", [10.0, 50.0, 90.0], [10.0] * 3)], n_volumes=60, tr=2.0)
+    before = blas_threads()
+    est = a.noise_at(run, (3, 3, 2), ModelSettings())
+    assert set(est) == set(ModelSettings().kernels)
+    assert inside and all(all(n == 1 for n in counts) for counts in inside)
+    assert blas_threads() == before

@@ -654,3 +654,38 @@ def test_map_and_clicked_voxel_share_the_effective_df():
     # without a neighbourhood there is no nu_rho: n - rank, and it says so
     f = a.fit_voxel(run.data[4, 4, 3], s).by_kernel(KERNEL)
     assert f.df == m.df and f.df_kind == "n - rank"
+
+
+def test_smoothness_sample_is_read_once_for_every_design():
+    """Issue 18: a fit's kernels share one read of the run's smoothness sample (the
+    seeded pairs of neighbours), and each design's smoothness equals the one computed
+    from a fresh run object that reads it again: the numbers do not change."""
+    from voxelscope.core.events import Condition
+    from voxelscope.core.maps import ArrayRun
+    from voxelscope.core.model import Analysis, ModelSettings
+    from voxelscope.core.noise import run_smoothness
+
+    class CountedRun(ArrayRun):
+        def __init__(self, data):
+            super().__init__(data, np.diag([3.0, 3.0, 3.5, 1.0]))
+            self.reads = 0
+
+        def timeseries_many(self, idx):
+            self.reads += 1
+            return self.data.reshape(-1, self.n_volumes)[idx]
+
+    rng = np.random.default_rng(11)
+    e = rng.standard_normal((10, 9, 8, 80))
+    e[1:] += 0.6 * e[:-1]  # some smoothness along x
+    data = (1000 + e).astype(np.float32)
+    a = Analysis([Condition("x", [10.0, 70.0, 130.0], [20.0] * 3)], n_volumes=80, tr=2.0)
+    s = ModelSettings()
+    preps = [a.prepared(k, s)[1] for k in ("boxcar", "gamma", "double-gamma")]
+    run = CountedRun(data)
+    mask = run.mask()
+    shared = [run_smoothness(run, p, mask) for p in preps]
+    assert run.reads == 3  # one read per axis, for all three designs
+    for p, got in zip(preps, shared):
+        fresh = CountedRun(data)
+        assert run_smoothness(fresh, p, mask) == got and fresh.reads == 3
+    assert shared[0][0] > max(shared[0][1], shared[0][2])  # smoother along x, as planted

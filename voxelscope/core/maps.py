@@ -38,8 +38,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from threadpoolctl import threadpool_limits
 
+from .blas import one_blas_thread
 from .errors import Cancelled, InputError
 from .glm import fit
 from .model import Analysis, ModelSettings
@@ -263,21 +263,6 @@ class ArrayRun:
         return ijk @ self.affine[:3, :3].T + self.affine[:3, 3]
 
 
-# ----------------------------------------------------------------------------- BLAS threads
-#
-# A map is many skinny matrix products ((p x T) @ (T x 1024), p ~ 10). A threaded BLAS
-# splits each one over its threads and then waits for them; on a 2-core machine this made
-# every product 3-30x slower than one thread, the more so the busier the machine. Maps
-# therefore run with BLAS limited to one thread (threadpoolctl, which finds every BLAS
-# library loaded in the process) and restore the previous setting afterwards; the
-# parallelism comes from the worker threads fitting blocks side by side instead.
-
-
-def _one_blas_thread() -> threadpool_limits:
-    """Context manager: BLAS on one thread inside, the previous thread counts after."""
-    return threadpool_limits(1, user_api="blas")
-
-
 def _check_mask(run: Any, mask: np.ndarray | None) -> np.ndarray:
     shape = tuple(int(n) for n in run.shape)
     if mask is None:
@@ -445,14 +430,14 @@ def _one_pass(
             advance(int(np.count_nonzero(~inside)))
         gather.add(idx, totals, constant)
 
-    with _one_blas_thread():
+    with one_blas_thread():
         blocks = run.iter_blocks(np.ones(shape, dtype=bool), block_voxels=block)
         _for_blocks(blocks, work, keep, n_workers, with_index=True)
     run.adopt_summary(gather.summary(int(run.n_volumes)))
     mask = np.asarray(run.mask(), dtype=bool)
     missed = mask & ~guess.reshape(shape)
     if missed.any():
-        with _one_blas_thread():
+        with one_blas_thread():
             blocks = run.iter_blocks(missed, block_voxels=block)
             _for_blocks(blocks, fit_chunk, store, n_workers, with_index=True)
     return mask
@@ -635,7 +620,7 @@ def compute_map(
             kept[:] = [(i[in_mask[i]], x.take(in_mask[i])) for i, x in kept if in_mask[i].any()]
             total = int(np.count_nonzero(in_mask))
         else:
-            with _one_blas_thread():
+            with one_blas_thread():
                 blocks = chunks()
                 _for_blocks(
                     blocks, lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
@@ -684,7 +669,7 @@ def compute_map(
             df_flat[idx] = res.df_eff
             store(idx, res)
 
-        with _one_blas_thread():  # small products: one BLAS thread is faster, as above
+        with one_blas_thread():  # small products: one BLAS thread is faster, as above
             _for_blocks(pieces(), fit_piece, store_piece, n_workers, with_index=True)
         del sm
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
@@ -711,7 +696,7 @@ def compute_map(
             if rho is not None:
                 rho[outside] = 0.0
         else:
-            with _one_blas_thread():
+            with one_blas_thread():
                 _for_blocks(chunks(), fit_chunk, store, n_workers, with_index=True)
     if total == 0 and progress is not None:
         progress(1.0)

@@ -499,13 +499,15 @@ class Analysis:
         """
         if settings.noise != "arp":
             return {}
+        from .blas import one_blas_thread
         from .noise import voxel_ar, voxel_box
 
         plan = self._plan(settings)
-        box = voxel_box(run, ijk, mask=mask)  # read once, shared by every kernel
         out: dict[str, Any] = {}
-        for name, _d, prep, _w, _C in plan:
-            out[name] = voxel_ar(run, prep, ijk, box=box)
+        with one_blas_thread():  # small products: one BLAS thread is faster, as in maps
+            box = voxel_box(run, ijk, mask=mask)  # read once, shared by every kernel
+            for name, _d, prep, _w, _C in plan:
+                out[name] = voxel_ar(run, prep, ijk, box=box)
         return out
 
     def _plan(self, settings: ModelSettings) -> list[tuple]:

@@ -1495,51 +1495,36 @@ def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float,
     """FWHM (mm, per axis) of a run's spatial smoothness, from the OLS residuals of up to
     :data:`SMOOTHNESS_PAIRS` neighbouring voxel pairs per axis inside the mask (a fixed,
     seeded sample, so a map and a clicked voxel get the same value); the estimate of
-    :func:`smoothness_fwhm` on those pairs. Memoised per run, design and mask.
+    :func:`smoothness_fwhm` on those pairs. Memoised per run, design and mask; the
+    sampled series are read once per run and mask (:func:`_smoothness_sample`) and shared
+    by every design (a fit's kernels).
     """
     import hashlib
-    import weakref
 
     from .workcopy import working_copy as _wc
 
-    global _SMOOTHNESS
-    if _SMOOTHNESS is None:
-        _SMOOTHNESS = weakref.WeakKeyDictionary()
     mask = np.asarray(mask, dtype=bool)
+    mask_key = hashlib.sha1(np.packbits(mask).tobytes() + repr(mask.shape).encode()).hexdigest()
     key = hashlib.sha1(np.asarray(prep.X).tobytes() + np.packbits(mask).tobytes()).hexdigest()
-    try:
-        memo = _SMOOTHNESS.setdefault(run, {})
-    except TypeError:  # not weakly referable: no memo
-        memo = {}
+    memo = _smoothness_memo(run)
     got = memo.get(key)
     if got is not None:
         return got
-    shape = mask.shape
+    sample = memo.get(("sample", mask_key))
+    if sample is None:
+        sample = memo[("sample", mask_key)] = _smoothness_sample(run, mask)
     sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
-    rng = np.random.default_rng(0)
     out = []
     keep = getattr(prep, "keep", None)
-    for axis in range(3):
-        n = shape[axis]
-        a = np.take(mask, np.arange(n - 1), axis=axis) & np.take(mask, np.arange(1, n), axis=axis)
-        first = np.argwhere(a)
-        if first.shape[0] == 0:
+    for axis, (k, series) in enumerate(sample):
+        if k == 0:
             out.append(0.0)
             continue
-        if first.shape[0] > SMOOTHNESS_PAIRS:
-            first = first[np.sort(rng.choice(first.shape[0], SMOOTHNESS_PAIRS, replace=False))]
-        second = first.copy()
-        second[:, axis] += 1
-        idx = np.ravel_multi_index(np.concatenate([first, second]).T, shape)
-        if hasattr(run, "timeseries_many"):
-            rows = np.asarray(run.timeseries_many(idx), dtype=np.float64)
-        else:
-            rows = np.asarray(run.data.reshape(-1, run.n_volumes)[idx], dtype=np.float64)
+        rows = np.asarray(series, dtype=np.float64)
         Y = rows.T if keep is None else rows.T[keep]
         Yc = _wc(prep, Y)[0]
         R = Yc - prep.X @ (prep.pinv @ Yc)
         norm = np.sqrt(np.einsum("tv,tv->v", R, R))
-        k = first.shape[0]
         good = (norm[:k] > 0) & (norm[k:] > 0)
         if not good.any():
             out.append(0.0)
@@ -1552,6 +1537,47 @@ def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float,
         )
     got = memo[key] = tuple(out)
     return got  # type: ignore[return-value]
+
+
+def _smoothness_memo(run: Any) -> dict:
+    """The memo of :func:`run_smoothness` for ``run`` (a fresh one when it cannot be
+    weakly referenced)."""
+    import weakref
+
+    global _SMOOTHNESS
+    if _SMOOTHNESS is None:
+        _SMOOTHNESS = weakref.WeakKeyDictionary()
+    try:
+        return _SMOOTHNESS.setdefault(run, {})
+    except TypeError:  # not weakly referable: no memo
+        return {}
+
+
+def _smoothness_sample(run: Any, mask: np.ndarray) -> list[tuple[int, np.ndarray | None]]:
+    """Per axis, ``(k, series)``: the (2k, T) time series of the seeded sample of k
+    neighbouring pairs inside ``mask`` (first voxels, then their neighbours), as the
+    run serves them; ``(0, None)`` when the axis has no pair."""
+    shape = mask.shape
+    rng = np.random.default_rng(0)
+    out: list[tuple[int, np.ndarray | None]] = []
+    for axis in range(3):
+        n = shape[axis]
+        a = np.take(mask, np.arange(n - 1), axis=axis) & np.take(mask, np.arange(1, n), axis=axis)
+        first = np.argwhere(a)
+        if first.shape[0] == 0:
+            out.append((0, None))
+            continue
+        if first.shape[0] > SMOOTHNESS_PAIRS:
+            first = first[np.sort(rng.choice(first.shape[0], SMOOTHNESS_PAIRS, replace=False))]
+        second = first.copy()
+        second[:, axis] += 1
+        idx = np.ravel_multi_index(np.concatenate([first, second]).T, shape)
+        if hasattr(run, "timeseries_many"):
+            series = np.asarray(run.timeseries_many(idx))
+        else:
+            series = np.asarray(run.data.reshape(-1, run.n_volumes)[idx])
+        out.append((int(first.shape[0]), series))
+    return out
 
 
 def tau_squares(prep: Any, phi: np.ndarray, c: np.ndarray, chunk: int = 4096) -> np.ndarray:

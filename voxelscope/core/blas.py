@@ -1,0 +1,35 @@
+"""BLAS on one thread, for the many small matrix products of maps and of a clicked voxel.
+
+A map is many skinny matrix products ((p x T) @ (T x 1024), p ~ 10), and a clicked voxel's
+noise estimate a few dozen more (its neighbourhood, the run's smoothness sample, one
+design after another). A threaded BLAS splits each one over its threads and then waits
+for them; on a 2-core machine this made every product 3-30x slower than one thread, the
+more so the busier the machine (a fit's smoothness sample: 0.1 s per kernel on one thread,
+0.4 s threaded, at load 8). These computations therefore run with BLAS limited to one
+thread (threadpoolctl, which finds every BLAS library loaded in the process) and restore
+the previous setting afterwards; a map's parallelism comes from worker threads fitting
+blocks side by side instead.
+
+Examples
+--------
+>>> import numpy as np
+>>> with one_blas_thread():
+...     float((np.ones((3, 4)) @ np.ones((4, 2))).sum())
+24.0
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+__all__ = ["one_blas_thread"]
+
+
+def one_blas_thread() -> Any:
+    """Context manager: BLAS on one thread inside, the previous thread counts after.
+
+    threadpoolctl is imported here, not at start-up.
+    """
+    from threadpoolctl import threadpool_limits
+
+    return threadpool_limits(1, user_api="blas")
