@@ -137,3 +137,29 @@ def test_drop_downs_are_not_cut_and_rows_fit_at_1280x800(demo_window, qtbot):
         and view.rowViewportPosition(r) + view.rowHeight(r) <= view.viewport().height()
     )
     assert rows > 3
+
+
+def test_large_maps_are_clustered_off_the_gui_thread(window, qtbot, ras_run, monkeypatch):
+    """A map on a large grid is clustered by a background job (the window stays free);
+    the table that follows equals find_clusters, and a newer map's table replaces an
+    older job's, which is never shown."""
+    from voxelscope.gui import findings
+
+    monkeypatch.setattr(findings, "BACKGROUND_MIN_VOXELS", 0)  # the test run counts as large
+    assert window.open_run(ras_run["run"], background=False)
+    assert window.map_panel.live.flush(20000)
+    state, panel = window.state, window.findings
+    panel._layer = None  # as if the map were new
+    panel.refresh()
+    assert panel.job is not None and panel.summary.text().startswith("Finding clusters")
+    qtbot.waitUntil(lambda: panel.job is None and panel.table is not None, timeout=20000)
+    ref = find_clusters(state.stat_map.data, 3.0, affine=state.run.affine)
+    assert _rows(panel.table) == _rows(ref)
+    # a new threshold while a job runs: only the newest options' table is shown
+    state.set_map_settings(threshold=4.0)
+    panel.refresh()
+    state.set_map_settings(threshold=2.5)
+    panel.refresh()
+    qtbot.waitUntil(lambda: panel.job is None and panel.table.threshold == 2.5, timeout=20000)
+    ref = find_clusters(state.stat_map.data, 2.5, affine=state.run.affine)
+    assert _rows(panel.table) == _rows(ref)

@@ -39,6 +39,11 @@ from voxelscope.gui.sizing import compact_spin, fit_combo
 from voxelscope.gui.state import ViewerState
 from voxelscope.gui.status import ElidedLabel
 
+#: Maps on grids of at least this many voxels are clustered off the GUI thread (a 2 mm
+#: map with thousands of small clusters took most of a second, during which a settings
+#: change could not even start its map); smaller ones at once.
+BACKGROUND_MIN_VOXELS = 250_000
+
 __all__ = ["MODES", "ClusterModel", "FindingsPanel"]
 
 #: Sign modes of find_clusters, with their words.
@@ -254,6 +259,7 @@ class FindingsPanel(QWidget):
         self.view.addAction(self.copy_action)
         self.view.activated.connect(self._clicked)
         lay.addWidget(self.view, 1)
+        self.job = None  # clustering a large map off the GUI thread
         self.timer = QTimer(self)
         self.timer.setSingleShot(True)
         self.timer.setInterval(40)
@@ -294,15 +300,61 @@ class FindingsPanel(QWidget):
             self.model.set_table(None)
             self.summary.setText("No map: choose what the Map shows." if st.run else "")
             return
-        try:
-            table = find_clusters(layer.data, affine=st.run.affine, sort="size", **opts)
-        except VoxelscopeError as err:
-            self.table = None
-            self.model.set_table(None)
-            self.summary.setText(str(err))
-            self.summary.setToolTip(str(err))
-            st.message.emit(str(err))
+        if self.job is not None:
+            self.job.cancel()  # its table is for another map or options: never shown
+            self.job = None
+        affine = st.run.affine
+        if layer.data.size >= BACKGROUND_MIN_VOXELS:
+            self._clustering(layer, key, opts, affine)
             return
+        try:
+            table = find_clusters(layer.data, affine=affine, sort="size", **opts)
+        except VoxelscopeError as err:
+            self._problem(str(err))
+            return
+        self._show(table, layer, opts)
+
+    def _clustering(self, layer, key, opts: dict, affine) -> None:
+        """Cluster a large map on a worker thread; the table follows when it is done."""
+        from voxelscope.gui.workers import BackgroundJob
+
+        data = layer.data
+
+        def fn(_progress):
+            return find_clusters(data, affine=affine, sort="size", **opts)
+
+        job = BackgroundJob(fn, "the clusters", owner=self)
+
+        def done(table, job=job) -> None:
+            if self.job is job and self._layer is layer and self._key == key:
+                self._show(table, layer, opts)
+
+        def failed(failure, job=job) -> None:
+            if self.job is job:
+                self._problem(failure.line)
+
+        def finished(job=job) -> None:
+            job.wait()
+            if self.job is job:
+                self.job = None
+            job.deleteLater()
+
+        job.done.connect(done)
+        job.failed.connect(failed)
+        job.finished.connect(finished)
+        self.job = job
+        self.summary.setText("Finding clusters…")
+        job.start()
+
+    def _problem(self, line: str) -> None:
+        self.table = None
+        self.model.set_table(None)
+        self.summary.setText(line)
+        self.summary.setToolTip(line)
+        self.state.message.emit(line)
+
+    def _show(self, table: ClusterTable, layer, opts: dict) -> None:
+        st = self.state
         self.table = table
         stat = getattr(layer, "stat", "value")
         self.model.set_table(table, stat if len(stat) <= 10 else "value")
