@@ -32,7 +32,7 @@ from voxelscope.core.numfmt import MISSING, format_seconds
 from voxelscope.core.numfmt import format_value as format_number
 from voxelscope.gui.colours import kernel_colour
 from voxelscope.gui.plaintext import esc
-from voxelscope.gui.sizing import ElidedLabel
+from voxelscope.gui.sizing import ElidedLabel, LabelHolder
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["FitsModel", "FitsPanel", "f_summary", "format_value", "noise_summary", "runs_summary"]
@@ -416,8 +416,10 @@ class FitsPanel(QWidget):
         # whole text, one line per kernel, in the tooltip)
         self.noise_line = ElidedLabel("", min_width=60)
         self.noise_line.setObjectName("fits_notes")
-        self.noise_line.setVisible(False)
-        lay.addWidget(self.noise_line)
+        # its text changes at every voxel: held so that the change repaints the line only
+        self._noise_holder = LabelHolder(self.noise_line, min_width=60)
+        self._noise_holder.setVisible(False)
+        lay.addWidget(self._noise_holder)
         self.fit_width = False  # Show mode: squeeze the columns into the width
         self.hidden_columns: tuple[str, ...] = ()  # Show mode leaves a few out
         self.show_mode = False  # Show mode: no coefficient line
@@ -620,7 +622,7 @@ class FitsPanel(QWidget):
         if line != self.noise_line.full_text():
             self.noise_line.setText(line)
             self.noise_line.setToolTip(tip)
-        self.noise_line.setVisible(bool(line))
+        self._noise_holder.setVisible(bool(line))
         if fits is not None and not fits.fits:
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))

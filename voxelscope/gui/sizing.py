@@ -15,6 +15,7 @@ from voxelscope.gui.plaintext import plain_tooltip
 __all__ = [
     "ElidedLabel",
     "FlowButtons",
+    "LabelHolder",
     "breakable",
     "compact_combo",
     "compact_spin",
@@ -154,6 +155,41 @@ class ElidedLabel(QLabel):
             super().setText(shown)
         if not self._own_tip:
             super().setToolTip(self._full if shown != self._full else "")
+
+
+class LabelHolder(QWidget):
+    """Holds one label without a layout, so that new text in the label repaints the label
+    alone: a label's new text asks its parent's layout to run again, which went up to the
+    main window on every click (and every frame of a drag); this holder's size does not
+    depend on the text, only on the label's font (one line high, at least ``min_width``).
+    """
+
+    def __init__(
+        self, label: QLabel, parent: QWidget | None = None, min_width: int = 100, on_resize=None
+    ) -> None:
+        super().__init__(parent)
+        self.label = label
+        self._min = int(min_width)
+        self._on_resize = on_resize
+        label.setParent(self)
+        label.installEventFilter(self)
+        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
+
+    def sizeHint(self) -> QSize:
+        return QSize(self._min, self.label.sizeHint().height())
+
+    def minimumSizeHint(self) -> QSize:
+        return self.sizeHint()
+
+    def resizeEvent(self, ev) -> None:
+        self.label.setGeometry(self.rect())
+        if self._on_resize is not None:
+            self._on_resize()
+
+    def eventFilter(self, obj, ev) -> bool:
+        if obj is self.label and ev.type() in (QEvent.Type.FontChange, QEvent.Type.StyleChange):
+            self.updateGeometry()  # a new font: a new line height
+        return super().eventFilter(obj, ev)
 
 
 class FlowButtons(QWidget):

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QPointF, QRectF, QSize, Qt, Signal
+from PySide6.QtCore import QPointF, QRectF, Qt, Signal
 from PySide6.QtGui import QColor, QFont, QFontMetrics, QPen, QTextDocumentFragment, QTransform
 from PySide6.QtWidgets import (
     QGraphicsRectItem,
@@ -34,6 +34,7 @@ from voxelscope.core.numfmt import format_value as fmt
 from voxelscope.core.numfmt import format_xyz, stat_kind
 from voxelscope.gui.colours import colours
 from voxelscope.gui.plaintext import esc
+from voxelscope.gui.sizing import LabelHolder
 from voxelscope.gui.state import ViewerState
 
 __all__ = ["PLANES", "ColourBar", "SliceView", "SlicesPanel"]
@@ -579,30 +580,6 @@ def _tilted(rel: np.ndarray, tol: float = 1e-3) -> bool:
     return bool(np.any((cols > tol).sum(axis=0) > 1))
 
 
-class _Holder(QWidget):
-    """Holds one label without a layout, so that new text in the label repaints the label
-    alone: a label's new text asks its parent's layout to run again, which went up to the
-    main window on every click; this holder's size does not depend on the text."""
-
-    def __init__(self, label: QLabel, parent: QWidget | None = None, on_resize=None) -> None:
-        super().__init__(parent)
-        self.label = label
-        self._on_resize = on_resize
-        label.setParent(self)
-        self.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Fixed)
-
-    def sizeHint(self) -> QSize:
-        return QSize(100, self.label.sizeHint().height())
-
-    def minimumSizeHint(self) -> QSize:
-        return self.sizeHint()
-
-    def resizeEvent(self, ev) -> None:
-        self.label.setGeometry(self.rect())
-        if self._on_resize is not None:
-            self._on_resize()
-
-
 class SlicesPanel(QWidget):
     """Slices: the three views, the colour bar and the readout line."""
 
@@ -644,7 +621,7 @@ class SlicesPanel(QWidget):
         #: Show mode: the readout keeps to its width, dropping its least needed parts
         self.fit_readout = False
         self._readout_parts: list[tuple[int, str]] = []
-        line.addWidget(_Holder(self.readout, on_resize=self.show_readout), 1)
+        line.addWidget(LabelHolder(self.readout, on_resize=self.show_readout), 1)
         line.addWidget(self.goto)
         outer.addWidget(bottom)
         state.voxel_changed.connect(self._on_voxel)
