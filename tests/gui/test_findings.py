@@ -153,7 +153,7 @@ def test_large_maps_are_clustered_off_the_gui_thread(window, qtbot, ras_run, mon
     panel.refresh()
     assert panel.job is not None and panel.summary.text().startswith("Finding clusters")
     qtbot.waitUntil(lambda: panel.job is None and panel.table is not None, timeout=20000)
-    ref = find_clusters(state.stat_map.data, 3.0, affine=state.run.affine)
+    ref = find_clusters(state.overlay.data, 3.0, affine=state.run.affine)
     assert _rows(panel.table) == _rows(ref)
     # a new threshold while a job runs: only the newest options' table is shown
     state.set_map_settings(threshold=4.0)
@@ -161,5 +161,5 @@ def test_large_maps_are_clustered_off_the_gui_thread(window, qtbot, ras_run, mon
     state.set_map_settings(threshold=2.5)
     panel.refresh()
     qtbot.waitUntil(lambda: panel.job is None and panel.table.threshold == 2.5, timeout=20000)
-    ref = find_clusters(state.stat_map.data, 2.5, affine=state.run.affine)
+    ref = find_clusters(state.overlay.data, 2.5, affine=state.run.affine)
     assert _rows(panel.table) == _rows(ref)
