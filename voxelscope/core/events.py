@@ -29,6 +29,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import os
 import re
 from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -220,13 +221,14 @@ def find_events_sidecar(events: str | Path) -> Path | None:
         return None
     folder = p.parent
     for _ in range(4):
-        try:
-            entries = sorted(folder.iterdir())
+        try:  # names first: a big folder (a home or temporary folder) costs no Path objects
+            entries = sorted(n for n in os.listdir(folder) if n.endswith("_events.json"))
         except OSError:
             return None
         best = None
-        for q in entries:
-            if not q.name.endswith("_events.json") or not q.is_file():
+        for n in entries:
+            q = folder / n
+            if not q.is_file():
                 continue
             cand = parse_name(q.name)
             if cand is not None and applies_to(cand, name):
