@@ -1516,13 +1516,24 @@ def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float,
     sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
     out = []
     keep = getattr(prep, "keep", None)
+    spikes = getattr(prep, "spikes", None)
+    # the working copy depends on the design only through these: shared by the kernels
+    copy_key = (
+        "copy",
+        mask_key,
+        None if keep is None else np.asarray(keep).tobytes(),
+        None if spikes is None else np.asarray(spikes).tobytes(),
+        prep.constant_index is not None,
+    )
+    copies = memo.setdefault(copy_key, {})
     for axis, (k, series) in enumerate(sample):
         if k == 0:
             out.append(0.0)
             continue
-        rows = np.asarray(series, dtype=np.float64)
-        Y = rows.T if keep is None else rows.T[keep]
-        Yc = _wc(prep, Y)[0]
+        Yc = copies.get(axis)
+        if Yc is None:
+            Y = series.T if keep is None else series.T[keep]
+            Yc = copies[axis] = _wc(prep, Y)[0]  # float64 (exact from the float32 series)
         R = Yc - prep.X @ (prep.pinv @ Yc)
         norm = np.sqrt(np.einsum("tv,tv->v", R, R))
         good = (norm[:k] > 0) & (norm[k:] > 0)
