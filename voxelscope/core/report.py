@@ -374,7 +374,8 @@ SETTING_LABELS = {
 NOISE_WORDS = {
     "ols": "ordinary least squares",
     "ar1": "AR(1) prewhitening, rho from each voxel's own residuals",
-    "arp": f"AR({AR_ORDER}) prewhitening, coefficients bias-corrected and smoothed in space",
+    "arp": f"AR({AR_ORDER}) prewhitening, coefficients bias-corrected and smoothed in space; "
+    "df of t effective (the coefficients' uncertainty counted)",
 }
 
 _DERIVATIVES = {0: "none", 1: "time derivative", 2: "time and dispersion derivatives"}
