@@ -199,7 +199,9 @@ def test_censor_fd_and_outlier_columns(active_run, capsys):
     ex = {e["volume"]: e["reason"] for e in doc["excluded_volumes"]}
     assert set(ex) == want | {0, 1}
     assert all("framewise displacement" in ex[v] for v in want)
-    assert _dg(doc)["df"] == T - len(ex) - len(_dg(doc)["columns"])
+    # n - rank counts only the kept volumes; the t is read with the effective df below it
+    assert _dg(doc)["df_residual"] == T - len(ex) - len(_dg(doc)["columns"])
+    assert _dg(doc)["df_kind"].startswith("effective") and _dg(doc)["df"] < T - len(ex)
     # chosen one-hot outlier columns censor their volumes instead of entering the design
     doc, _ = _json(
         capsys, [*_fit(path, events, "--kernels", "gamma"), "--confound-columns", "outliers"]
@@ -242,7 +244,7 @@ def test_file_cosines_replace_our_drift(pipeline_run, capsys):
     assert not any(c.startswith("drift_") for c in cols)
     said = [w for w in doc["warnings"] if "replace" in w]
     assert len(said) == 1 and "cosine00 .. cosine05" in said[0]
-    assert _dg(doc)["df"] == T - 2 - (2 + 6 + 6 + 1)
+    assert _dg(doc)["df_residual"] == T - 2 - (2 + 6 + 6 + 1)  # n - rank
 
 
 def test_volume_and_rank_errors_are_one_line(pipeline_run, capsys):

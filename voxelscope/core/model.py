@@ -154,10 +154,10 @@ class KernelFit:
     @property
     def df(self) -> int | float:
         """The df of the t: ``n - rank``, or under the default AR(p) model with its
-        neighbourhood the effective df (one decimal; see :attr:`df_kind`)."""
+        neighbourhood the effective df (not a whole number; see :attr:`df_kind`)."""
         if self.result.df_eff is None:
             return int(self.result.df)
-        return round(float(self.result.df_eff[0]), 1)
+        return float(self.result.df_eff[0])
 
     @property
     def df_kind(self) -> str:
