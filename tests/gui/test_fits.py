@@ -137,3 +137,19 @@ def test_a_damaged_cache_met_after_loading_is_said_in_the_window(tmp_path, qtbot
     ref = nib.load(str(files["run"])).get_fdata()
     np.testing.assert_allclose(state.series, ref[4, 5, 3], rtol=1e-6)
     assert sum("is damaged" in w and "rebuilt" in w for w in said) == 1
+
+
+def test_every_number_shows_whole_in_a_1280_px_window(demo_window, qtbot):
+    """The demo at 1280 x 800 (the README's screenshot size): every cell of Fits is wider
+    than its text plus the view's margins, so no number is cut to "13…" (a long header such
+    as "estimate" once took that room from the t and df columns)."""
+    w = demo_window((1280, 800))
+    w.arrange(1280)
+    qtbot.wait(100)
+    table, model = w.fits.table, w.fits.model
+    fm = table.fontMetrics()
+    assert model.rowCount() >= 4
+    for c in range(1, model.columnCount()):
+        texts = [model.data(model.index(r, c)) or "" for r in range(model.rowCount())]
+        widest = max(fm.horizontalAdvance(t) for t in texts)
+        assert table.columnWidth(c) >= widest + 8, (model.columns()[c], table.columnWidth(c))

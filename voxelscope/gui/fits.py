@@ -42,13 +42,18 @@ RAW_ROLE = Qt.ItemDataRole.UserRole + 1
 _BASE = [
     ("", "Kernel colour"),
     ("kernel", "Kernel of the condition regressors"),
-    ("estimate", "Contrast estimate c'b (data units)"),
+    ("estimate", "Contrast estimate c'b (data units), est. for short"),
     ("variance", "Variance of the contrast estimate"),
     ("t", "t statistic of the contrast"),
     ("df", "Degrees of freedom of t (effective under the default AR(p) noise model)"),
     ("p", "Two-sided p value of t"),
     ("R²", "Fraction of the data variance explained by the whole model"),
 ]
+
+#: Header texts shorter than the column's name: "estimate" over numbers of four or five
+#: characters took 35 px that the t and df columns need in a 1280 px window (the name
+#: stays in the tooltip and in the copied table).
+_SHORT_HEADERS = {"estimate": "est."}
 
 #: Columns of the copied table beyond the shown ones, when some kernel has a value.
 _EXTRA_TSV = ("F", "df F", "p F", "rho")
@@ -342,7 +347,8 @@ class FitsModel(QAbstractTableModel):
         if orientation != Qt.Orientation.Horizontal:
             return None
         if role == Qt.ItemDataRole.DisplayRole:
-            return self._columns[section][0]
+            name = self._columns[section][0]
+            return _SHORT_HEADERS.get(name, name)
         if role == Qt.ItemDataRole.ToolTipRole:
             return self._columns[section][1]
         return None
