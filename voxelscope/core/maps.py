@@ -350,6 +350,17 @@ def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -
 SOLVE_VOXELS = 8192  # the solves themselves go in pieces of noise.SOLVE_PIECE
 
 
+def _as_slice(idx: np.ndarray) -> slice | np.ndarray:
+    """A run of consecutive indices as a slice (a block of a full mask: no scatter).
+
+    >>> _as_slice(np.arange(3, 7)), _as_slice(np.array([1, 3])).tolist()
+    (slice(3, 7, None), [1, 3])
+    """
+    if idx.size and int(idx[-1]) - int(idx[0]) == idx.size - 1 and np.all(np.diff(idx) == 1):
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
 def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
     """The fit's working copy (:func:`voxelscope.core.glm.working_copy`) of some voxels,
     read again from the run: near-exact fits of a one-pass AR(p) map need their residuals
@@ -601,8 +612,9 @@ def compute_map(
         def store_sums(idx: np.ndarray, out) -> None:
             nonlocal seen
             kept.append((idx, out))
-            values[idx] = out.v.T
-            valid[idx] = out.ok
+            at = _as_slice(idx)
+            values[at] = out.v.T
+            valid[at] = out.ok
             seen += idx.size
             report(share * seen / total if total else share)
 
@@ -665,8 +677,9 @@ def compute_map(
             )
 
         def store_piece(idx: np.ndarray, res) -> None:
-            phi_flat[:, idx] = res.ar
-            df_flat[idx] = res.df_eff
+            at = _as_slice(idx)
+            phi_flat[:, at] = res.ar
+            df_flat[at] = res.df_eff
             store(idx, res)
 
         with one_blas_thread():  # small products: one BLAS thread is faster, as above

@@ -1060,11 +1060,12 @@ def _implied(
     """``F @ g`` (L + 1, V) for the autocorrelations ``g_0..g_{n-1}`` of AR(p) processes
     ``phi`` (p, V) whose first p autocorrelations are ``rho`` (p, V) (the Yule-Walker
     extension). Each voxel's sequence stops (the rest counts as 0) at the end of the first
-    segment of ``segment`` lags where its own last p values are below ``tol`` in
-    magnitude, so a voxel's value does not depend on the others it is computed with, and
-    the recursion runs only as long as each voxel needs (the voxels still running are
-    gathered together after every segment). ``buf`` (at least (segment + p + 1) * V) is
-    reused across calls: fresh pages cost more than the arithmetic.
+    segment (``segment // 2`` lags, then ``segment`` each) where its own last p values are
+    below ``tol`` in magnitude, so a voxel's value does not depend on the others it is
+    computed with, and the recursion runs only as long as each voxel needs (the voxels
+    still running are gathered together after every segment). ``buf`` (at least
+    (segment + p + 1) * V) is reused across calls: fresh pages cost more than the
+    arithmetic.
 
     >>> F = np.ones((1, 50))
     >>> round(float(_implied(np.array([[0.5]]), np.array([[0.5]]), F)[0, 0]), 12)  # sum of 0.5^k
@@ -1090,8 +1091,11 @@ def _implied(
     rows[:p] = g0[head - p : head]
     tmp = buf[(segment + p) * V : (segment + p + 1) * V]
     k = head
+    first = True
     while k < n and width:
-        m = min(segment, n - k)
+        # a short first segment: weakly correlated voxels are done after a few lags
+        m = min(segment // 2 if first else segment, n - k)
+        first = False
         t = tmp[:width]
         for r in range(p, p + m):
             np.multiply(ph[0], rows[r - 1], out=rows[r])
@@ -1105,7 +1109,10 @@ def _implied(
             out[:, active] += part
         k += m
         going = np.max(np.abs(rows[m : m + p]), axis=0) >= tol
-        if going.all():
+        n_going = int(np.count_nonzero(going))
+        if 2 * n_going > width:  # most still run: the others go on as zeros (adding 0)
+            if n_going < width:
+                rows[m : m + p, ~going] = 0.0
             rows[:p] = rows[m : m + p]
             continue
         keep = np.flatnonzero(going)
