@@ -1,9 +1,10 @@
 """Benchmark of the default noise model's map against the OLS map, side by side.
 
-Row (``name, ours_s, reference_s, ratio, goal, ok``): the default AR(p) map (two passes
-over the data: the bias-corrected autocorrelations of the OLS residuals, smoothed in the
-mask, then per-voxel AR(p) GLS) against the OLS map of the same run, kernel, contrast and
-mask, in the same process, alternating, best of several; goal ratio <= 3 (issue 14). An
+Row (``name, ours_s, reference_s, ratio, goal, ok``): the default AR(p) map (one pass
+over the data keeps a few sums per voxel; they give the bias-corrected autocorrelations of
+the OLS residuals, smoothed in the mask, and then each voxel's AR(p) GLS) against the OLS
+map of the same run, kernel, contrast and mask, in the same process, alternating, best of
+5; goal ratio <= 3 (issue 14). Both maps use the default workers. An
 info row gives the AR(1) map against the same OLS map, and one the default map of the same
 run with 10 % of its volumes censored inside the run (one indicator column each, which
 makes the AR(p) fit exact) against the same map uncensored.

@@ -350,17 +350,6 @@ def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -
 SOLVE_VOXELS = 8192  # the solves themselves go in pieces of noise.SOLVE_PIECE
 
 
-def _as_slice(idx: np.ndarray) -> slice | np.ndarray:
-    """A run of consecutive indices as a slice (a block of a full mask: no scatter).
-
-    >>> _as_slice(np.arange(3, 7)), _as_slice(np.array([1, 3])).tolist()
-    (slice(3, 7, None), [1, 3])
-    """
-    if idx.size and int(idx[-1]) - int(idx[0]) == idx.size - 1 and np.all(np.diff(idx) == 1):
-        return slice(int(idx[0]), int(idx[-1]) + 1)
-    return idx
-
-
 def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
     """The fit's working copy (:func:`voxelscope.core.glm.working_copy`) of some voxels,
     read again from the run: near-exact fits of a one-pass AR(p) map need their residuals
@@ -599,20 +588,31 @@ def compute_map(
         # pass"): the bias-corrected autocovariances of the OLS residuals, smoothed in the
         # mask, give every voxel's AR(p) coefficients, and the same sums give its GLS.
         from .glm import arp_block_sums, censored_design, fit_sums
-        from .noise import AR_ORDER, BIAS_LAGS, ArpSums, ar_from_smoothed, smooth_map
+        from .noise import (
+            AR_ORDER,
+            BIAS_LAGS,
+            ArpSums,
+            ar_from_smoothed,
+            run_or_index,
+            smooth_map,
+        )
 
         _prep = censored_design(_prep)  # censored volumes inside the run: exact
         order = AR_ORDER
         n_lags = max(order, BIAS_LAGS)
         values = np.zeros((n_all, n_lags + 1))
         valid = np.zeros(n_all, dtype=bool)
-        kept: list = []  # (voxel indices, their sums), block by block
+        kept: list = []  # voxel indices, block by block, in the order of ``sums``
+        sums = None  # every voxel's sums, in the order they came
         seen = 0
 
         def store_sums(idx: np.ndarray, out) -> None:
-            nonlocal seen
-            kept.append((idx, out))
-            at = _as_slice(idx)
+            nonlocal seen, sums
+            if sums is None:
+                sums = ArpSums.empty(total, out.H.shape[1], out.lags, out.v.shape[0] - 1)
+            sums.put(np.arange(seen, seen + idx.size), out)  # a slice: the workers go on
+            kept.append(idx)
+            at = run_or_index(idx)
             values[at] = out.v.T
             valid[at] = out.ok
             seen += idx.size
@@ -653,21 +653,22 @@ def compute_map(
         df_flat = np.zeros(n_all)
 
         def pieces():
-            # the solves are elementwise over voxels: pieces of at least SOLVE_VOXELS keep
-            # numpy's per-call cost small; each block's sums are freed once fitted
-            while kept:
-                got = [kept.pop(0)]
-                while kept and sum(i.size for i, _ in got) < SOLVE_VOXELS:
-                    got.append(kept.pop(0))
-                yield np.concatenate([i for i, _ in got]), ArpSums.concat([x for _, x in got])
+            # the solves are elementwise over voxels: pieces of SOLVE_VOXELS keep numpy's
+            # per-call cost small; each piece is a view of the sums, not a copy
+            if not kept:
+                return
+            where = np.concatenate(kept)
+            for a in range(0, seen, SOLVE_VOXELS):
+                b = min(seen, a + SOLVE_VOXELS)
+                yield where[a:b], sums.take(slice(a, b))
 
-        def fit_piece(idx: np.ndarray, sums):
+        def fit_piece(idx: np.ndarray, part):
             # each voxel's AR coefficients depend only on its smoothed values, so the
             # workers estimate them piece by piece, beside the solves
             phi = ar_from_smoothed(sm[idx].T, order, _prep)[0]
             return fit_sums(
                 _prep,
-                sums,
+                part,
                 weights,
                 phi,
                 want_p=need_p,
@@ -677,7 +678,7 @@ def compute_map(
             )
 
         def store_piece(idx: np.ndarray, res) -> None:
-            at = _as_slice(idx)
+            at = run_or_index(idx)
             phi_flat[:, at] = res.ar
             df_flat[at] = res.df_eff
             store(idx, res)
@@ -685,6 +686,7 @@ def compute_map(
         with one_blas_thread():  # small products: one BLAS thread is faster, as above
             _for_blocks(pieces(), fit_piece, store_piece, n_workers, with_index=True)
         del sm
+        sums = None
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
     else:
 

@@ -371,9 +371,7 @@ class ArpSums:
 
     def put(self, pos: np.ndarray, other: ArpSums) -> None:
         """Store ``other``'s voxels at positions ``pos``."""
-        pos = np.asarray(pos)
-        if pos.size and pos[-1] - pos[0] == pos.size - 1 and np.all(np.diff(pos) == 1):
-            pos = slice(int(pos[0]), int(pos[-1]) + 1)  # a run of positions: no scatter
+        pos = run_or_index(pos)
         for f in _SUM_FIELDS:
             getattr(self, f)[..., pos] = getattr(other, f)
 
@@ -439,7 +437,20 @@ def _shift_closed(Xs: np.ndarray, P: int) -> tuple[np.ndarray, np.ndarray, np.nd
     return closed, A, E
 
 
-def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
+def run_or_index(idx: np.ndarray) -> slice | np.ndarray:
+    """A run of consecutive indices as a slice (a view, no scatter; a block of a full
+    mask), other indices as they are.
+
+    >>> run_or_index(np.arange(3, 7)), run_or_index(np.array([1, 3])).tolist()
+    (slice(3, 7, None), [1, 3])
+    """
+    idx = np.asarray(idx)
+    if idx.size and int(idx[-1]) - int(idx[0]) == idx.size - 1 and np.all(np.diff(idx) == 1):
+        return slice(int(idx[0]), int(idx[-1]) + 1)
+    return idx
+
+
+def _design_lags(prep: Any, lags: int) -> dict[str, Any]:
     """Design-only pieces of the one-pass sums, memoised on the prepared design."""
     key = ("_ar_lags", lags)
     got = prep.memo.get(key)
@@ -467,6 +478,8 @@ def _design_lags(prep: Any, lags: int) -> dict[str, np.ndarray]:
         "stack": np.ascontiguousarray(stack),
         "open": open_,
         "closed": closed,
+        "open_at": run_or_index(open_),
+        "closed_at": run_or_index(closed),
         "shift_a": shift_a,
         "shift_e": shift_e,
         "K": K,
@@ -503,13 +516,14 @@ def arp_sums(
     H[0] = prod[:q]
     head = np.array(Y[:P])
     tail = np.array(Y[n - P :])
-    op, closed = D["open"], D["closed"]
-    if op.size:
-        H[1:, op] = prod[q:].reshape(P, op.size, V)
-    if closed.size:
+    op, closed = D["open_at"], D["closed_at"]
+    if D["open"].size:
+        H[1:, op] = prod[q:].reshape(P, D["open"].size, V)
+    if D["closed"].size:
         ends = np.concatenate([head, tail])
         for d in range(1, P + 1):
-            H[d, closed] = D["shift_a"][d - 1] @ H[0] + D["shift_e"][d - 1] @ ends
+            H[d, closed] = D["shift_a"][d - 1] @ H[0]
+            H[d, closed] += D["shift_e"][d - 1] @ ends
     acy = np.empty((P + 1, V))
     acy[0] = tss
     for d in range(1, P + 1):
