@@ -629,7 +629,12 @@ def compute_map(
                 int(chunk_voxels),
             )
             in_mask = mask.reshape(-1)
-            kept[:] = [(i[in_mask[i]], x.take(in_mask[i])) for i, x in kept if in_mask[i].any()]
+            if kept:  # only the voxels of the mask decided on the way
+                where = np.concatenate(kept)
+                inside = np.flatnonzero(in_mask[where])
+                sums = sums.take(run_or_index(inside))
+                kept[:] = [where[inside]]
+                seen = int(inside.size)
             total = int(np.count_nonzero(in_mask))
         else:
             with one_blas_thread():
