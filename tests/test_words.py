@@ -33,6 +33,7 @@ ALLOWED: list[tuple[str, str, str, str]] = [
     ("anat", "voxelscope/gui/app.py", '/ "anat" /', "BIDS's own folder name for anatomy"),
     ("frame", "voxelscope/gui/checks_panel.py", "per frame would take", "frames of a drag"),
     ("frame", "voxelscope/gui/sizing.py", "# frame, buttons and padding", "a widget's frame"),
+    ("frame", "voxelscope/gui/sizing.py", "every frame of a drag", "frames of a drag"),
 ]
 
 
