@@ -158,6 +158,11 @@ class PreparedDesign:
         """Rows of the whole design (kept and left-out volumes)."""
         return int(self.X.shape[0] if self.X_all is None else self.X_all.shape[0])
 
+    def censored(self) -> PreparedDesign:
+        """:func:`censored_design` of this design (so :mod:`voxelscope.core.noise` can ask
+        for it without importing this module, which imports it)."""
+        return censored_design(self)
+
 
 #: Numerical rank tolerance: with columns scaled to unit norm, singular values below this
 #: fraction of the largest count as zero. Confound tables are text with about six
@@ -341,8 +346,8 @@ def censored_design(prep: PreparedDesign) -> PreparedDesign:
 
     >>> p = prepare(np.column_stack([np.ones(8), np.arange(8.0)]), keep=[0, 1, 1, 0, 1, 1, 1, 0])
     >>> c = censored_design(p)
-    >>> c.X.shape, c.df == p.df, c.spikes.tolist(), c.names[-1]
-    ((5, 3), True, [2], 'censored volume 3')
+    >>> c.X.shape, c.df == p.df, c.spikes.tolist(), c.names[-1]  # volumes 1-6, one indicator
+    ((6, 3), True, [2], 'censored volume 3')
     """
     if prep.steps is None or prep.spikes is not None:
         return prep

@@ -1297,9 +1297,7 @@ def voxel_ar(
     Reads only the box of neighbours within the truncated smoothing kernel; ``box``
     (from :func:`voxel_box` for the same voxel, mask and FWHM) saves reading it again.
     """
-    from .glm import censored_design
-
-    prep = censored_design(prep)  # the map's design when volumes inside the run are left out
+    prep = prep.censored()  # the map's design when volumes inside the run are left out
     order = AR_ORDER if order is None else int(order)
     if box is None:
         box = voxel_box(run, ijk, mask=mask, fwhm_mm=fwhm_mm)
@@ -1696,14 +1694,10 @@ def arp_effective_df(
     """Each voxel's effective df (V,) under AR(p) coefficients ``phi`` (p, V):
     :func:`effective_df` with ``sum tau_j^2`` from :func:`tau_squares`.
 
+    >>> from voxelscope.core.glm import prepare
     >>> X = np.column_stack([np.ones(40), np.arange(40.0) % 8 < 4])
-    >>> d = arp_effective_df(X, np.zeros((2, 1)), np.array([0.0, 1.0]), 1e12)
+    >>> d = arp_effective_df(prepare(X), np.zeros((2, 1)), np.array([0.0, 1.0]), 1e12)
     >>> round(float(d[0]), 3)  # nu_rho without bound: n - rank
     38.0
     """
-    X = np.asarray(getattr(prep, "X", prep))
-    if not hasattr(prep, "memo"):
-        from .glm import prepare
-
-        prep = prepare(X)
     return effective_df(float(prep.df), tau_squares(prep, phi, c)[None, :] ** 0.5, nu_rho)
