@@ -23,3 +23,21 @@ def test_one_thread_inside_and_restored_after_an_error():
     except RuntimeError:
         pass
     assert _blas_threads() == before
+
+
+def test_the_kept_library_finding_limits_every_time_and_after_new_imports():
+    """The libraries found once are used again; an import since makes a new finding."""
+    before = _blas_threads()
+    for _ in range(3):
+        with one_blas_thread():
+            assert all(n == 1 for n in _blas_threads())
+        assert _blas_threads() == before
+    import sys
+
+    sys.modules["_vxs_blas_test_marker"] = sys  # one more module: the finding is made again
+    try:
+        with one_blas_thread():
+            assert all(n == 1 for n in _blas_threads())
+    finally:
+        del sys.modules["_vxs_blas_test_marker"]
+    assert _blas_threads() == before

@@ -25,11 +25,22 @@ from typing import Any
 __all__ = ["one_blas_thread"]
 
 
+#: threadpoolctl's view of the loaded libraries, and the module count it was made at.
+_CONTROLLER: list[Any] = [None, -1]
+
+
 def one_blas_thread() -> Any:
     """Context manager: BLAS on one thread inside, the previous thread counts after.
 
-    threadpoolctl is imported here, not at start-up.
+    threadpoolctl is imported here, not at start-up. Finding the loaded libraries scans
+    every shared object of the process (about 4 ms in the window, once per click or drag
+    frame), so the finding is kept and made again only when modules were imported since.
     """
-    from threadpoolctl import threadpool_limits
+    import sys
 
-    return threadpool_limits(1, user_api="blas")
+    from threadpoolctl import ThreadpoolController
+
+    n = len(sys.modules)
+    if _CONTROLLER[0] is None or _CONTROLLER[1] != n:
+        _CONTROLLER[0], _CONTROLLER[1] = ThreadpoolController(), n
+    return _CONTROLLER[0].limit(limits=1, user_api="blas")

@@ -111,6 +111,27 @@ class _Bands(pg.GraphicsObject):
             painter.fillRect(QRectF(x0, y0, x1 - x0, y1 - y0), colour)
 
 
+def _title_only_when_changed(axis: pg.AxisItem) -> None:
+    """Lay out an axis title only when its words change.
+
+    pyqtgraph sets the title's HTML again at every change of the axis range (for its SI
+    prefix), which lays the text out anew at every click and drag frame; here the title is
+    set when its HTML differs and the axis is otherwise only repainted, as before.
+    """
+    shown: list[str | None] = [None]
+
+    def update() -> None:
+        text = axis.labelString()
+        if text != shown[0]:
+            shown[0] = text
+            axis.label.setHtml(text)
+            axis._adjustSize()
+        axis.picture = None
+        axis.update()
+
+    axis._updateLabel = update
+
+
 def _span(arrays) -> tuple[float, float] | None:
     """Smallest and largest finite value over several arrays (None if there is none)."""
     lo, hi = np.inf, -np.inf
@@ -204,6 +225,8 @@ class SignalPanel(QWidget):
         self.resid.setLabel("left", "residuals", **label_style)
         for p in (self.plot, self.resid):
             p.getAxis("left").setWidth(64)
+            for name in ("left", "bottom"):
+                _title_only_when_changed(p.getAxis(name))
         lay.addWidget(self.canvas, 1)
 
         grey = c["data_trace"]
@@ -254,6 +277,7 @@ class SignalPanel(QWidget):
         self._band_key = None
         self._label_key: bool | None = None
         self._x_span: tuple[float, float] | None = None
+        self._drawn: set[str] = set()  # kernels whose curves hold data
         self.unit_data.toggled.connect(self._units_clicked)
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
@@ -436,6 +460,7 @@ class SignalPanel(QWidget):
             for name in self.curves:
                 self.curves[name].setData([], [])
                 self.resid_curves[name].setData([], [])
+            self._drawn.clear()
             self.legend.setText(html.escape(other.note if other is not None else ""))
             return
         t = self._times(run)
@@ -462,8 +487,10 @@ class SignalPanel(QWidget):
         for name, curve in self.curves.items():
             f = shown.get(name)
             if f is None:
-                curve.setData([], [])
-                self.resid_curves[name].setData([], [])
+                if name in self._drawn:  # a kernel switched off: clear its curves once
+                    curve.setData([], [])
+                    self.resid_curves[name].setData([], [])
+                    self._drawn.discard(name)
             else:
                 top.append(scale(f.fitted))
                 r = scale(f.residuals, centre=False)
@@ -472,6 +499,7 @@ class SignalPanel(QWidget):
                     r[left] = np.nan
                 bottom.append(r)
                 curve.setData(t, top[-1])
+                self._drawn.add(name)
                 self.resid_curves[name].setData(t, r, connect="finite")
         if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
             self._label_key = pct
