@@ -216,9 +216,8 @@ def _drag_rows(app, w, label: str, frames: int = 90) -> list[tuple]:
     i_med, _ = _ms(idle_s[10:])
     fc_med, _ = _ms(frame_cpu[10:])
     ic_med, _ = _ms(idle_cpu[10:])
-    size = f"{w.width()}x{w.height()}"
     print(
-        f"{label} ({size}): drag, {len(voxels)} voxels visited in {2 * frames} frames; frame "
+        f"{label}: drag, {len(voxels)} voxels visited in {2 * frames} frames; frame "
         f"median {f_med:.1f} ms (p90 {f_p90:.1f}), idle full repaint {i_med:.1f} ms; GUI "
         f"thread CPU {fc_med:.1f} vs {ic_med:.1f} ms; {_load_line()}"
     )
