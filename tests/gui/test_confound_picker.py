@@ -88,7 +88,7 @@ def test_window_offers_the_table_and_leaves_out_its_volumes(pipeline_window):
         1: "non-steady-state (non_steady_state_outlier01)",
     }
     fit = st.fits.fits[0]
-    assert fit.df == 80 - 2 - len(fit.design.names)
+    assert fit.result.df == 80 - 2 - len(fit.design.names)  # n - rank of the kept volumes
     sig = w.signal
     assert sig.left_out.tolist() == [0, 1]
     xs, _ys = sig.left_out_points.getData()

@@ -252,13 +252,13 @@ def run_map(args: argparse.Namespace) -> int:
 
 
 def _df_tag(result) -> str:
-    """The df for a map's header description: ``df=188``, or ``df=eff160`` (the effective
+    """The df for a map's header description: ``df=188``, or ``df=eff160.4`` (the effective
     df's median) under the default AR(p) model."""
     import numpy as np
 
     if result.df_eff is None or not result.mask.any():
         return f"df={result.df}"
-    return f"df=eff{float(np.median(result.df_eff[result.mask])):.0f}"
+    return f"df=eff{format_value('df', float(np.median(result.df_eff[result.mask])))}"
 
 
 def explain_lines(ex) -> list[str]:
