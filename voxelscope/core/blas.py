@@ -33,8 +33,9 @@ def one_blas_thread() -> Any:
     """Context manager: BLAS on one thread inside, the previous thread counts after.
 
     threadpoolctl is imported here, not at start-up. Finding the loaded libraries scans
-    every shared object of the process (about 4 ms in the window, once per click or drag
-    frame), so the finding is kept and made again only when modules were imported since.
+    every shared object of the process (about 4 ms in the window, at every click and every
+    step of a drag), so the finding is kept and made again only when modules were imported
+    since.
     """
     import sys
 
