@@ -115,7 +115,7 @@ def _title_only_when_changed(axis: pg.AxisItem) -> None:
     """Lay out an axis title only when its words change.
 
     pyqtgraph sets the title's HTML again at every change of the axis range (for its SI
-    prefix), which lays the text out anew at every click and drag frame; here the title is
+    prefix), which lays the text out anew at every click and every step of a drag; here the title is
     set when its HTML differs and the axis is otherwise only repainted, as before.
     """
     shown: list[str | None] = [None]
