@@ -75,7 +75,8 @@ def _measure(runs, analyses, settings, repeat: int = 5) -> tuple[float, float, f
         combined.append(time.perf_counter() - t0)
         t0 = time.perf_counter()
         ms = [
-            compute_map(r, a, settings, stats=("beta", "variance")) for r, a in zip(runs, analyses)
+            compute_map(r, a, settings, stats=("estimate", "variance"))
+            for r, a in zip(runs, analyses)
         ]
         t1 = time.perf_counter()
         combine_maps(runs, ms, labels, stats=("t",))

@@ -79,7 +79,7 @@ def test_voxel_combination_equals_formulas_on_statsmodels_fits(kernel):
         y = 500 + d.X @ rng.normal(0, 2, d.X.shape[1]) + rng.normal(0, 3, n)
         fit = a.fit_voxel(y, settings).by_kernel(kernel)
         labels.append(f"run-{i + 1}")
-        bs.append(fit.beta)
+        bs.append(fit.estimate)
         vs.append(fit.variance)
         ds.append(fit.df)
         w = a.contrast_weights(kernel, settings)
@@ -90,7 +90,7 @@ def test_voxel_combination_equals_formulas_on_statsmodels_fits(kernel):
         sm_d.append(float(ref.df_resid))
     got = combine_fits(kernel, "tone - 0.5*tap", labels, bs, vs, ds)
     beta, var, t, df, p, q, q_p = _hand_combination(sm_b, sm_v, sm_d)
-    assert got.beta == pytest.approx(beta, rel=1e-9, abs=1e-12)
+    assert got.estimate == pytest.approx(beta, rel=1e-9, abs=1e-12)
     assert got.variance == pytest.approx(var, rel=1e-9)
     assert got.t == pytest.approx(t, rel=1e-9)
     assert got.df == df == sum(ds)
@@ -107,7 +107,9 @@ def test_voxel_combination_equals_formulas_on_statsmodels_fits(kernel):
             [sm_b[j] for j in keep], [sm_v[j] for j in keep], [sm_d[j] for j in keep]
         )
         assert lo.run == labels[i]
-        assert lo.beta == pytest.approx(ref[0], rel=1e-9, abs=1e-12)
+        assert lo.estimate == pytest.approx(ref[0], rel=1e-9, abs=1e-12)
+        # JSON: the earlier key of the estimate stays beside it for older scripts
+        assert lo.to_json()["estimate"] == lo.to_json()["beta"] == lo.estimate
         assert lo.t == pytest.approx(ref[2], rel=1e-9)
         assert lo.p == pytest.approx(ref[4], rel=1e-7, abs=1e-300)
 
@@ -129,7 +131,7 @@ def test_cochran_q_against_scipy_chi2_on_random_values():
         w = 1 / v
         bb = (w * b).sum(0) / w.sum(0)
         q = (w * (b - bb) ** 2).sum(0)
-        np.testing.assert_allclose(fe.beta, bb, rtol=1e-12, atol=1e-14)
+        np.testing.assert_allclose(fe.estimate, bb, rtol=1e-12, atol=1e-14)
         np.testing.assert_allclose(fe.q, q, rtol=1e-11)
         np.testing.assert_allclose(fe.q_p, stats.chi2.sf(q, k - 1), rtol=1e-9, atol=1e-300)
         t = bb * np.sqrt(w.sum(0))
@@ -141,7 +143,7 @@ def test_one_run_and_undefined_runs_give_clear_answers():
     assert fe.t[0] == pytest.approx(1.0)
     assert np.isnan(fe.q[0]) and np.isnan(fe.q_p[0])
     c = combine_fits("gamma", "tone", ["a", "b"], [1.0, None], [0.5, None], [30, 30])
-    assert c.beta is None and c.t is None and c.p is None and c.q is None
+    assert c.estimate is None and c.t is None and c.p is None and c.q is None
     assert [(f.id, f.run) for f in c.flags] == [("run-undefined", "b")]
     c = combine_fits("gamma", "tone", ["a", "b"], [1.0, 1.0], [0.5, 0.0], [30, 30])
     assert c.t is None and c.flags[0].run == "b"
@@ -158,7 +160,7 @@ def _simulate_runs(rng, amps, n=T, noise=3.0, kernel="double-gamma"):
         x = a.design(kernel, settings).column("tone")
         y = 800 + amp * x + rng.normal(0, noise, n)
         f = a.fit_voxel(y, settings).by_kernel(kernel)
-        bs.append(f.beta)
+        bs.append(f.estimate)
         vs.append(f.variance)
         ds.append(f.df)
     labels = [f"run-{i + 1}" for i in range(len(amps))]
@@ -197,10 +199,10 @@ def test_null_simulation_error_rates_of_q_and_combined_t():
         w = a.contrast_weights("gamma", settings)
         res = fit(prep, 600 + 2.0 * x[:, None] + e, w, noise="ols")
         res0 = fit(prep, 600 + rng.standard_normal((T, n_vox)), w, noise="ols")
-        B.append(res.beta)
+        B.append(res.estimate)
         V.append(res.variance)
         D.append(res.df)
-        B0.append(res0.beta)
+        B0.append(res0.estimate)
         V0.append(res0.variance)
     fe = fixed_effects(np.array(B), np.array(V), D)
     rate = np.mean(fe.q_p < combine.DISAGREE_P)
@@ -261,13 +263,13 @@ def test_same_grid_map_equals_voxel_combination(tmp_path):
             "double-gamma",
             "tone",
             list(m.labels),
-            [f.beta for f in fits],
+            [f.estimate for f in fits],
             [f.variance for f in fits],
             [f.df for f in fits],
         )
         # maps hold float32
         assert m.t[ijk] == pytest.approx(c.t, rel=2e-5)
-        assert m.beta[ijk] == pytest.approx(c.beta, rel=2e-5, abs=1e-4)
+        assert m.estimate[ijk] == pytest.approx(c.estimate, rel=2e-5, abs=1e-4)
         assert m.variance[ijk] == pytest.approx(c.variance, rel=2e-5)
         assert m.q[ijk] == pytest.approx(c.q, rel=1e-4, abs=1e-5)
         assert m.q_p[ijk] == pytest.approx(c.q_p, rel=1e-4, abs=1e-6)
@@ -310,7 +312,7 @@ def test_runs_on_different_grids_combine_at_the_same_place_in_mm(tmp_path):
             "double-gamma",
             "tone",
             ["1", "2"],
-            [f1.beta, f2.beta],
+            [f1.estimate, f2.estimate],
             [f1.variance, f2.variance],
             [f1.df, f2.df],
         )
@@ -337,7 +339,7 @@ def test_map_of_a_constant_run_region_is_zero_not_infinite(tmp_path):
     assert not m.mask[2, 2, 1]
     assert m.t[2, 2, 1] == 0 and m.p[2, 2, 1] == 1 and m.z[2, 2, 1] == 0
     assert np.all(np.isfinite(m.t)) and np.all(np.isfinite(m.z))
-    assert m.beta is None and m.stat("q").shape == (5, 4, 3)
+    assert m.estimate is None and m.stat("q").shape == (5, 4, 3)
     with pytest.raises(InputError):
         m.stat("q_p")
     with pytest.raises(InputError):

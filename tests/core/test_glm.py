@@ -84,7 +84,7 @@ def test_ols_matches_statsmodels(prob):
         res = fit(X, y, c)
         assert res.df == int(ref.df_resid)
         assert_allclose(res.betas[:, 0], ref.params, rtol=1e-9, atol=1e-12)
-        assert_allclose(res.beta[0], ref.params[j], rtol=1e-9, atol=1e-12)
+        assert_allclose(res.estimate[0], ref.params[j], rtol=1e-9, atol=1e-12)
         assert_allclose(math.sqrt(res.variance[0]), ref.bse[j], rtol=1e-9)
         assert_allclose(res.t[0], ref.tvalues[j], rtol=1e-9, atol=1e-12)
         assert_allclose(res.p[0], ref.pvalues[j], rtol=1e-7, atol=1e-15)
@@ -108,7 +108,7 @@ def test_t_contrast_matches_statsmodels_t_test(prob, weights):
     assume(np.linalg.cond(X) < 1e4)
     ref = sm.OLS(y, X).fit().t_test(c[None, :])
     res = fit(X, y, c)
-    assert_allclose(res.beta[0], ref.effect[0], rtol=1e-9, atol=1e-11)
+    assert_allclose(res.estimate[0], ref.effect[0], rtol=1e-9, atol=1e-11)
     assert_allclose(math.sqrt(res.variance[0]), ref.sd[0, 0], rtol=1e-9)
     assert_allclose(res.t[0], ref.tvalue[0, 0], rtol=1e-8, atol=1e-10)
     assert_allclose(res.p[0], ref.pvalue, rtol=1e-7, atol=1e-14)
@@ -220,7 +220,7 @@ def test_batch_equals_single(seed, n, p, v, noise):
     batch = fit(X, Y, c, noise=noise)
     for j in range(v):
         one = fit(X, Y[:, j], c, noise=noise)
-        for name in ("beta", "variance", "t", "p", "sigma2", "r2"):
+        for name in ("estimate", "variance", "t", "p", "sigma2", "r2"):
             assert_allclose(getattr(batch, name)[j], getattr(one, name)[0], rtol=1e-12, atol=1e-14)
         assert_allclose(batch.betas[:, j], one.betas[:, 0], rtol=1e-12, atol=1e-13)
         assert_allclose(batch.residuals[:, j], one.residuals[:, 0], rtol=1e-12, atol=1e-12)
@@ -278,7 +278,7 @@ def test_longley_certified_values():
     assert_allclose(math.sqrt(res.sigma2[0]), LONGLEY_RESID_SD, rtol=1e-11)
     assert_allclose(res.r2[0], LONGLEY_R2, rtol=1e-13)
     assert_allclose(np.sqrt(res.sigma2[0] * np.diag(res.cov_unscaled[0])), LONGLEY_SE, rtol=1e-11)
-    assert_allclose(res.beta[0], LONGLEY_BETA[6], rtol=1e-10)
+    assert_allclose(res.estimate[0], LONGLEY_BETA[6], rtol=1e-10)
 
 
 # ----------------------------------------------------------------------------- AR(1)
@@ -381,11 +381,11 @@ def test_ols_se_too_small_under_positive_autocorrelation():
     assert np.mean(se_ols) < np.mean(se_ar1)
     assert np.mean(se_ols < se_ar1) > 0.9
     # OLS reports a standard error well below the true spread of its own beta ...
-    assert np.mean(se_ols) < 0.75 * np.std(ols.beta)
+    assert np.mean(se_ols) < 0.75 * np.std(ols.estimate)
     # ... and a false-positive rate above the nominal 5 %; AR(1) is close to nominal
     assert np.mean(ols.p < 0.05) > 0.12
     assert np.mean(ar1.p < 0.05) < 0.10
-    assert 0.8 < np.mean(se_ar1) / np.std(ar1.beta) < 1.25
+    assert 0.8 < np.mean(se_ar1) / np.std(ar1.estimate) < 1.25
 
 
 def test_rho_step_groups_share_solves():
@@ -575,7 +575,7 @@ def test_non_finite_voxel_has_no_fit():
     Y[4, 1] = np.nan
     res = fit(X, Y, [1.0, 0.0])
     assert np.isfinite(res.t[0]) and res.degenerate[1]
-    for a in (res.t[1], res.beta[1], res.r2[1], res.p[1]):
+    for a in (res.t[1], res.estimate[1], res.r2[1], res.p[1]):
         assert np.isnan(a)
     assert np.all(np.isnan(res.fitted[:, 1])) and np.all(np.isnan(res.residuals[:, 1]))
 

@@ -87,7 +87,7 @@ def test_ols_map_equals_per_voxel_fits_on_real_run(tmp_path):
     _d, prep = a.prepared("double-gamma", s)
     w = a.contrast_weights("double-gamma", s)
     r = glm.fit(prep, data[2, 3, 1].astype(np.float64), w)
-    assert m.beta[2, 3, 1] == pytest.approx(float(r.beta[0]), rel=1e-5)
+    assert m.estimate[2, 3, 1] == pytest.approx(float(r.estimate[0]), rel=1e-5)
     assert m.variance[2, 3, 1] == pytest.approx(float(r.variance[0]), rel=1e-5)
 
 
@@ -108,7 +108,7 @@ def test_ols_map_matches_statsmodels_at_sampled_voxels(tmp_path):
         res = sm.OLS(data[ijk].astype(np.float64), X).fit()
         tt = res.t_test(w)
         assert m.t[ijk] == pytest.approx(float(tt.tvalue.squeeze()), rel=1e-5)
-        assert m.beta[ijk] == pytest.approx(float(tt.effect.squeeze()), rel=1e-5)
+        assert m.estimate[ijk] == pytest.approx(float(tt.effect.squeeze()), rel=1e-5)
         assert m.variance[ijk] == pytest.approx(float(tt.sd.squeeze()) ** 2, rel=1e-5)
         assert m.p[ijk] == pytest.approx(float(tt.pvalue), rel=1e-4, abs=1e-30)
         p_from_z = 2 * stats.norm.sf(abs(float(m.z[ijk])))
@@ -165,7 +165,7 @@ def test_ar1_map_equals_gls_with_ar1_covariance_and_near_glsar():
         g = sm.GLS(y, X, sigma=sigma).fit()
         tt = g.t_test(w)
         assert m.t[ijk] == pytest.approx(float(tt.tvalue.squeeze()), rel=1e-5)
-        assert m.beta[ijk] == pytest.approx(float(tt.effect.squeeze()), rel=1e-5)
+        assert m.estimate[ijk] == pytest.approx(float(tt.effect.squeeze()), rel=1e-5)
         if ijk[0] < 3:  # responding voxels (large t): relative agreement is meaningful
             gl = sm.GLSAR(y, X, rho=1).iterative_fit(maxiter=2)
             assert m.t[ijk] == pytest.approx(float(gl.t_test(w).tvalue.squeeze()), rel=0.05)
@@ -235,7 +235,7 @@ def test_kernel_difference_and_stats_selection():
     md = compute_map(run, a, ModelSettings(), "double-gamma")
     diff = kernel_difference(md, mb)
     np.testing.assert_allclose(diff, md.t - mb.t, rtol=1e-6, atol=1e-6)
-    assert mb.beta is None and mb.z is None
+    assert mb.estimate is None and mb.z is None
     assert isinstance(md, MapResult) and md.kernel == "double-gamma" and md.contrast == "tone"
     # A block response is fitted better by a smooth kernel than by the raw boxcar where it is
     # present (common practice: the t is markedly larger).
@@ -326,7 +326,7 @@ def test_maps_equal_across_stores_and_block_sizes(tmp_path):
         np.testing.assert_allclose(first.t[mask], ref[mask], rtol=1e-5, atol=1e-6)
         assert np.all(first.t[~mask] == 0) and np.array_equal(first.mask, mask)
         for m in maps.values():
-            for stat in ("t", "beta", "variance", "z", "p"):
+            for stat in ("t", "estimate", "variance", "z", "p"):
                 np.testing.assert_allclose(m.stat(stat), first.stat(stat), rtol=1e-6, atol=1e-7)
 
 
@@ -440,7 +440,7 @@ def test_one_pass_map_equals_the_two_pass_map(tmp_path, noise, monkeypatch):
     np.testing.assert_array_equal(once.mask(), twice.mask())
     assert once.mask()[0, 5, 5] and m1.mask[0, 5, 5]
     assert not once.mask()[2, 2, 2] and not once.mask()[3, 3, 3] and not once.mask()[0, 0, 0]
-    for name in ("t", "beta", "variance", "z", "p", "neglog10p"):
+    for name in ("t", "estimate", "variance", "z", "p", "neglog10p"):
         a1, a2 = m1.stat(name), m2.stat(name)
         # the same arithmetic per voxel; only a block of other voxels around it may change
         # the product's last float64 digits (one float32 rounding at most)

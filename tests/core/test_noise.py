@@ -224,7 +224,7 @@ def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order, piece, monke
         Sigma = toeplitz(arma_acf(np.r_[1, -phi[:, v]], [1], T))
         tt = sm.GLS(Y[:, v], d.X, sigma=Sigma).fit().t_test(w)
         for res in (many, contrast_only, direct):
-            assert float(res.beta[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+            assert float(res.estimate[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
             assert float(res.variance[v]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
             assert float(res.t[v]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
 
@@ -291,7 +291,7 @@ def test_map_equals_statsmodels_gls_with_the_fitted_covariance_at_sampled_voxels
     run = _null_run(1)
     a = _analysis()
     s = ModelSettings(kernels=(KERNEL,), contrast="tone - tap")
-    m = compute_map(run, a, s, stats=("t", "beta", "variance"))
+    m = compute_map(run, a, s, stats=("t", "estimate", "variance"))
     d = a.design(KERNEL, s)
     w = a.contrast_weights(KERNEL, s)
     rng = np.random.default_rng(99)
@@ -305,7 +305,7 @@ def test_map_equals_statsmodels_gls_with_the_fitted_covariance_at_sampled_voxels
         Sigma = toeplitz(arma_acf(np.r_[1, -phi], [1], T))
         ref = sm.GLS(y, d.X, sigma=Sigma).fit()
         tt = ref.t_test(w)
-        assert float(res.beta[0]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
+        assert float(res.estimate[0]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-9)
         assert float(res.variance[0]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
         assert float(res.t[0]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
         assert res.df == int(ref.df_resid)
@@ -494,7 +494,7 @@ def test_censored_volumes_inside_the_run_are_exact(seed):
         np.testing.assert_allclose(direct.betas[:, v], ref.params, rtol=1e-8, atol=1e-8)
         assert float(direct.sigma2[v]) == pytest.approx(float(ref.scale), rel=1e-8)
         for res in (direct, many):
-            assert float(res.beta[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-8)
+            assert float(res.estimate[v]) == pytest.approx(float(np.squeeze(tt.effect)), rel=1e-8)
             assert float(res.variance[v]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-8)
             assert float(res.t[v]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
 

@@ -182,6 +182,7 @@ def _write(tmp_path, data, name="s.voxelscope.json"):
         ({"files": {"run": {"sha256": "x"}}}, r"field 'files.run.path' must be text"),
         ({"marks": [{"x_mm": "a"}]}, r"field 'marks' is not valid"),
         ({"kernels": {"gamma": {"k": "big"}}}, r"field 'kernels.gamma.k' must be a number"),
+        ({"map": {"stat": "effect"}}, r"field 'map.stat' is 'effect'; use one of t, z, estimate"),
     ],
 )
 def test_bad_fields_give_one_line_naming_file_and_field(tmp_path, change, match):
@@ -191,6 +192,25 @@ def test_bad_fields_give_one_line_naming_file_and_field(tmp_path, change, match)
     with pytest.raises(InputError, match=match) as err:
         S.load_session(p)
     assert str(p) in str(err.value) and "\n" not in str(err.value)
+
+
+def test_a_session_with_the_earlier_name_of_the_estimate_opens(tmp_path):
+    """Before the contrast estimate was named ``estimate`` everywhere, a session saved the
+    Map part's statistic as ``beta``. Such a file (written out here as those versions wrote
+    it) opens with the statistic ``estimate``; saved again, it says ``estimate``."""
+    text = """{
+ "schema": "voxelscope-session",
+ "version": 1,
+ "files": {},
+ "model": {"noise": "ols", "kernels": ["gamma", "double-gamma"]},
+ "voxel": [2, 3, 4],
+ "map": {"source": "model", "kernel": "gamma", "stat": "beta", "threshold": 2.5,
+         "opacity": 0.8, "visible": true, "colour_scale": "CET-D1"}
+}"""
+    loaded = S.load_session(_write(tmp_path, text))
+    assert loaded.problems == [] and loaded.warnings == []
+    assert loaded.session.map["stat"] == "estimate" and loaded.session.map["threshold"] == 2.5
+    assert S.session_to_json(loaded.session)["map"]["stat"] == "estimate"
 
 
 def test_invalid_json_and_missing_file(tmp_path):

@@ -118,11 +118,11 @@ def test_the_motion_artifact_at_the_edge_is_flagged(swept):
     assert len(edge) == 1
     flags = edge[0]["flags"].split(";")
     assert "task-motion" in flags and "edge" in flags and "this-run-only" in flags
-    assert float(edge[0]["task_motion_r"]) > 0.5 and float(edge[0]["beta_kept"]) < 0.5
+    assert float(edge[0]["task_motion_r"]) > 0.5 and float(edge[0]["estimate_kept"]) < 0.5
     assert float(edge[0]["edge_mm"]) <= 6.0
     # the real response in the same run keeps its effect once motion joins the model
     real = [r for r in rows if r["subject"] == sub and r["run"] == run and near(r, CENTRE)]
-    assert "task-motion" not in real[0]["flags"] and float(real[0]["beta_kept"]) > 0.5
+    assert "task-motion" not in real[0]["flags"] and float(real[0]["estimate_kept"]) > 0.5
     # the combined map still shows the edge, flagged
     comb = [r for r in rows if r["subject"] == sub and r["run"] == "all" and near(r, EDGE_PATCH[0])]
     assert comb and {"task-motion", "edge"} <= set(comb[0]["flags"].split(";"))
@@ -154,6 +154,71 @@ def test_resumed_sweep_redoes_nothing(swept, study, scheduler):
     table = (out / "findings.tsv").read_text()
     write_outputs(again, swept["settings"])
     assert (out / "findings.tsv").read_text() == table
+
+
+def _as_earlier_layout(out, study, settings, monkeypatch):
+    """Turn a sweep's output folder into what the code before RESULTS_FORMAT 2 wrote: the
+    contrast estimate saved as ``beta`` (the .npz key, the findings' keys) and fingerprints
+    whose settings digest has no format in it (the earlier ``SweepSettings.digest``)."""
+    import hashlib
+
+    def earlier_digest(self):
+        text = json.dumps(self.to_json(), sort_keys=True, default=str)
+        return hashlib.sha256(text.encode("utf-8")).hexdigest()
+
+    renamed = {"estimate": "beta", "estimate_kept": "beta_kept"}
+
+    def rename(obj):
+        if isinstance(obj, dict):
+            return {renamed.get(k, k): rename(v) for k, v in obj.items()}
+        if isinstance(obj, list):
+            return [rename(v) for v in obj]
+        return obj
+
+    plan = plan_sweep(study, settings)
+    with monkeypatch.context() as m:
+        m.setattr(SweepSettings, "digest", earlier_digest)
+        prints = {j.key: j.fingerprint(settings) for j in plan.runs}
+        for sj in plan.subjects:
+            parts = [settings.digest(), *(prints[k] for k in sj.run_keys)]
+            prints[sj.key] = hashlib.sha256("\n".join(parts).encode("utf-8")).hexdigest()
+    for folder in ("runs", "subjects"):
+        for path in (out / folder).glob("*.json"):
+            data = rename(json.loads(path.read_text()))
+            data["fingerprint"] = prints[data["key"]]
+            path.write_text(json.dumps(data))
+    for path in (out / "runs").glob("*.npz"):
+        with np.load(path) as z:
+            arrays = {renamed.get(k, k): z[k] for k in z.files}
+        np.savez_compressed(path, **arrays)
+    return prints
+
+
+def test_results_saved_by_the_earlier_layout_are_computed_again(
+    swept, study, scheduler, tmp_path, monkeypatch
+):
+    """A sweep resumed on a folder written before the estimate was named ``estimate`` (its
+    .npz key and findings said ``beta``) neither crashes nor mixes the two: every run and
+    combination is computed again and the table is the one a fresh sweep writes."""
+    import shutil
+
+    out = tmp_path / "out"
+    shutil.copytree(swept["out"], out)
+    settings = swept["settings"]
+    prints = _as_earlier_layout(out, study, settings, monkeypatch)
+    key = swept["result"].runs[0]["key"]
+    assert json.loads((out / "runs" / f"{key}.json").read_text())["fingerprint"] == prints[key]
+    with np.load(out / "runs" / f"{key}.npz") as z:
+        assert "beta" in z.files and "estimate" not in z.files
+    again = run_sweep(study, out, settings, scheduler=scheduler)
+    plan = plan_sweep(study, settings)
+    assert sorted(again.computed) == sorted(
+        [f"run {j.key}" for j in plan.runs] + [f"subject {s.key}" for s in plan.subjects]
+    )
+    with np.load(out / "runs" / f"{key}.npz") as z:
+        assert set(z.files) == {"estimate", "variance", "mask", "edge"}
+    write_outputs(again, settings)
+    assert (out / "findings.tsv").read_text() == (swept["out"] / "findings.tsv").read_text()
 
 
 def test_a_changed_input_is_swept_again(swept, study, tmp_path):
@@ -216,7 +281,7 @@ def test_run_results_are_small(swept):
         assert len(json.dumps(rest)) < 20_000
     npz = next((swept["out"] / "runs").glob("*.npz"))
     with np.load(npz) as z:
-        assert set(z.files) == {"beta", "variance", "mask", "edge"}
+        assert set(z.files) == {"estimate", "variance", "mask", "edge"}
 
 
 def test_doctests():

@@ -325,7 +325,8 @@ def _scale_note(slope: float, r: float) -> str | None:
     if math.isfinite(slope) and math.isfinite(r) and r >= 0.9 and abs(slope - 1.0) > 0.05:
         return (
             f"their values are about {format_value('value', slope)} times ours, a pure scale "
-            "factor (another statistic, e.g. beta instead of t, or another variance estimate)"
+            "factor (another statistic, e.g. the contrast estimate instead of t, or another "
+            "variance estimate)"
         )
     return None
 

@@ -33,7 +33,7 @@ its brain) leaves the combination undefined there: every combined number is NaN
 Examples
 --------
 >>> fe = fixed_effects([2.0, 4.0], [1.0, 1.0], [100, 100])
->>> float(fe.beta[0]), float(fe.variance[0]), int(fe.df[0]), float(fe.q[0])
+>>> float(fe.estimate[0]), float(fe.variance[0]), int(fe.df[0]), float(fe.q[0])
 (3.0, 0.5, 200, 2.0)
 """
 
@@ -91,8 +91,8 @@ class FixedEffects:
 
     Attributes
     ----------
-    beta, variance, t, p : float64
-        Combined estimate, its variance, t and two-sided p; NaN where undefined.
+    estimate, variance, t, p : float64
+        Combined contrast estimate, its variance, t and two-sided p; NaN where undefined.
     df : float64
         ``sum(df_i)``.
     q, q_p : float64
@@ -102,7 +102,7 @@ class FixedEffects:
     n_runs : int
     """
 
-    beta: np.ndarray
+    estimate: np.ndarray
     variance: np.ndarray
     t: np.ndarray
     df: np.ndarray
@@ -122,12 +122,12 @@ def _as_2d(a: Any, name: str) -> np.ndarray:
     return arr
 
 
-def fixed_effects(betas: Any, variances: Any, dfs: Any, want_p: bool = True) -> FixedEffects:
+def fixed_effects(estimates: Any, variances: Any, dfs: Any, want_p: bool = True) -> FixedEffects:
     """Combine run estimates by inverse-variance weighting, with Cochran's Q.
 
     Parameters
     ----------
-    betas, variances : array, shape (k,) or (k, n)
+    estimates, variances : array, shape (k,) or (k, n)
         Per-run contrast estimates and their variances.
     dfs : array, shape (k,) or (k, n)
         Per-run residual degrees of freedom.
@@ -141,13 +141,13 @@ def fixed_effects(betas: Any, variances: Any, dfs: Any, want_p: bool = True) -> 
     Examples
     --------
     >>> fe = fixed_effects([[1.0, 1.0], [3.0, 1.0]], [[1.0, 1.0], [1.0, np.nan]], [10, 10])
-    >>> fe.beta.tolist()[0], bool(fe.valid[1]), bool(np.isnan(fe.t[1]))
+    >>> fe.estimate.tolist()[0], bool(fe.valid[1]), bool(np.isnan(fe.t[1]))
     (2.0, False, True)
     """
-    b = _as_2d(betas, "betas")
+    b = _as_2d(estimates, "estimates")
     v = _as_2d(variances, "variances")
     if b.shape != v.shape:
-        raise InputError(f"betas {b.shape} and variances {v.shape} differ in shape")
+        raise InputError(f"estimates {b.shape} and variances {v.shape} differ in shape")
     k, n = b.shape
     if k < 1:
         raise InputError("no runs to combine")
@@ -159,11 +159,11 @@ def fixed_effects(betas: Any, variances: Any, dfs: Any, want_p: bool = True) -> 
         valid = np.all(np.isfinite(b) & np.isfinite(v) & (v > 0), axis=0)
         w = np.where(valid, 1.0 / np.where(valid, v, 1.0), np.nan)
         sw = w.sum(axis=0)
-        beta = (w * b).sum(axis=0) / sw
+        estimate = (w * b).sum(axis=0) / sw
         variance = 1.0 / sw
-        t = beta / np.sqrt(variance)
+        t = estimate / np.sqrt(variance)
         df = d.sum(axis=0)
-        q = (w * (b - beta) ** 2).sum(axis=0)
+        q = (w * (b - estimate) ** 2).sum(axis=0)
         if want_p:
             p = 2.0 * special.stdtr(df, -np.abs(t))
             q_p = special.chdtrc(k - 1, q) if k > 1 else np.full(n, np.nan)
@@ -173,7 +173,7 @@ def fixed_effects(betas: Any, variances: Any, dfs: Any, want_p: bool = True) -> 
     if k == 1:
         q = nan.copy()
     return FixedEffects(
-        beta=np.where(valid, beta, np.nan),
+        estimate=np.where(valid, estimate, np.nan),
         variance=np.where(valid, variance, np.nan),
         t=np.where(valid, t, np.nan),
         df=df,
@@ -212,25 +212,37 @@ class LeftOut:
     """The combination of every run but one."""
 
     run: str
-    beta: float | None
+    estimate: float | None
     t: float | None
     p: float | None
 
     def to_json(self) -> dict[str, Any]:
-        return {"run": self.run, "beta": self.beta, "t": self.t, "p": self.p}
+        """The run, the other runs' combined estimate (also as ``beta``, its earlier key), t
+        and p.
+
+        >>> LeftOut("run-1", 0.5, 2.0, 0.05).to_json()["estimate"]
+        0.5
+        """
+        return {
+            "run": self.run,
+            "estimate": self.estimate,
+            "beta": self.estimate,  # the earlier key of the estimate, kept for older scripts
+            "t": self.t,
+            "p": self.p,
+        }
 
 
 @dataclass(frozen=True)
 class CombinedFit:
     """One kernel's fixed-effects combination at one voxel.
 
-    Numbers that are undefined are None. ``runs`` holds each run's label, beta, variance,
+    Numbers that are undefined are None. ``runs`` holds each run's label, estimate, variance,
     t and df in order, so a table can show rows per run and the combined row together.
     """
 
     kernel: str
     contrast: str
-    beta: float | None
+    estimate: float | None
     variance: float | None
     t: float | None
     df: float
@@ -254,8 +266,8 @@ class CombinedFit:
         return {
             "kernel": self.kernel,
             "contrast": self.contrast,
-            "estimate": self.beta,
-            "beta": self.beta,  # the earlier key of the estimate, kept for older scripts
+            "estimate": self.estimate,
+            "beta": self.estimate,  # the earlier key of the estimate, kept for older scripts
             "variance": self.variance,
             "t": self.t,
             "df": df,
@@ -279,7 +291,7 @@ def combine_fits(
     kernel: str,
     contrast: str,
     labels: Sequence[str],
-    betas: Sequence[float | None],
+    estimates: Sequence[float | None],
     variances: Sequence[float | None],
     dfs: Sequence[float],
     tail: str = "two",
@@ -294,7 +306,7 @@ def combine_fits(
     kernel, contrast : str
     labels : sequence of str
         One short name per run (see :func:`run_labels`), used in the flags.
-    betas, variances : sequence of float or None
+    estimates, variances : sequence of float or None
         Per-run contrast estimate and variance (None where the run's fit is undefined).
     dfs : sequence of float
     tail : {"two", "positive", "negative"}
@@ -302,16 +314,16 @@ def combine_fits(
     Examples
     --------
     >>> c = combine_fits("gamma", "tap", ["a", "b"], [1.0, 1.2], [0.01, 0.01], [90, 90])
-    >>> round(c.beta, 6), c.df, [f.id for f in c.flags]
+    >>> round(c.estimate, 6), c.df, [f.id for f in c.flags]
     (1.1, 180.0, [])
     >>> c = combine_fits("gamma", "tap", ["a", "b", "c"], [3.0, 0, 0.1], [.1, .1, .1], [90] * 3)
     >>> [(f.id, f.run) for f in c.flags]
     [('runs-disagree', None), ('one-run', 'a')]
     """
     k = len(labels)
-    if not (len(betas) == len(variances) == len(dfs) == k) or k == 0:
-        raise InputError("give one beta, variance and df per run")
-    b = np.array([np.nan if x is None else x for x in betas], dtype=np.float64)
+    if not (len(estimates) == len(variances) == len(dfs) == k) or k == 0:
+        raise InputError("give one estimate, variance and df per run")
+    b = np.array([np.nan if x is None else x for x in estimates], dtype=np.float64)
     v = np.array([np.nan if x is None else x for x in variances], dtype=np.float64)
     d = np.asarray(dfs, dtype=np.float64)
     fe = fixed_effects(b, v, d)
@@ -344,12 +356,14 @@ def combine_fits(
             keep = np.arange(k) != i
             sub = fixed_effects(b[keep], v[keep], d[keep])
             loo.append(
-                LeftOut(lab, finite_or_none(sub.beta), finite_or_none(sub.t), finite_or_none(sub.p))
+                LeftOut(
+                    lab, finite_or_none(sub.estimate), finite_or_none(sub.t), finite_or_none(sub.p)
+                )
             )
         if p is not None and p < EFFECT_P:
-            sign = np.sign(fe.beta[0])
+            sign = np.sign(fe.estimate[0])
             for x in loo:
-                gone = x.p is None or x.p >= GONE_P or np.sign(x.beta or 0.0) != sign
+                gone = x.p is None or x.p >= GONE_P or np.sign(x.estimate or 0.0) != sign
                 if gone:
                     flags.append(
                         RunFlag(
@@ -363,7 +377,7 @@ def combine_fits(
     runs = tuple(
         {
             "run": lab,
-            "beta": None if not np.isfinite(bi) else float(bi),
+            "estimate": None if not np.isfinite(bi) else float(bi),
             "variance": None if not np.isfinite(vi) else float(vi),
             "t": float(bi / np.sqrt(vi)) if np.isfinite(bi) and vi > 0 else None,
             "df": float(di),
@@ -380,7 +394,7 @@ def combine_fits(
     return CombinedFit(
         kernel=str(kernel),
         contrast=str(contrast),
-        beta=finite_or_none(fe.beta),
+        estimate=finite_or_none(fe.estimate),
         variance=finite_or_none(fe.variance),
         t=t,
         df=float(fe.df[0]),
@@ -568,7 +582,7 @@ def compute_combined_map(
     settings: Any,
     kernel: str | None = None,
     labels: Sequence[str] | None = None,
-    stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
+    stats: Sequence[str] = ("t", "estimate", "variance", "z", "p"),
     progress: Any = None,
     workers: int | None = None,
     mask: np.ndarray | None = None,
@@ -579,7 +593,7 @@ def compute_combined_map(
 
     Every run is mapped on its own grid by :func:`voxelscope.core.maps.compute_map` (the
     single-run map, so the one fitting path and its options flow through), keeping only
-    beta and variance; runs on another grid are sampled at the first run's voxel centres
+    the estimate and its variance; runs on another grid are sampled at the first run's voxel centres
     (nearest voxel, :func:`nearest_on_grid`), then combined voxel by voxel with
     :func:`fixed_effects`. A voxel is in the combined mask when it is inside every run's
     mask and no run is degenerate there.
@@ -648,7 +662,7 @@ def compute_combined_map(
                 kernel,
                 mask=mask if (mask is not None and (i == 0 or same_grid([first, run]))) else None,
                 rho_step=rho_step,
-                stats=("beta", "variance"),
+                stats=("estimate", "variance"),
                 progress=sub,
                 workers=workers,
             )
@@ -660,12 +674,12 @@ def combine_maps(
     runs: Sequence[Any],
     run_maps: Sequence[MapResult],
     labels: Sequence[str],
-    stats: Sequence[str] = ("t", "beta", "variance", "z", "p"),
+    stats: Sequence[str] = ("t", "estimate", "variance", "z", "p"),
     mask: np.ndarray | None = None,
     settings: Any = None,
     tail: str = "two",
 ) -> CombinedMapResult:
-    """Combine single-run maps (each with ``beta`` and ``variance``, on its run's grid)
+    """Combine single-run maps (each with ``estimate`` and ``variance``, on its run's grid)
     into the fixed-effects map on the first run's grid; see :func:`compute_combined_map`.
     """
     first = runs[0]
@@ -679,24 +693,26 @@ def combine_maps(
     if not (len(runs) == len(run_maps) == len(labels)) or not runs:
         raise InputError("give one map and one label per run")
     for lab, m in zip(labels, run_maps):
-        if m.beta is None or m.variance is None:
-            raise InputError(f"the map of {lab} has no beta or variance; compute them to combine")
+        if m.estimate is None or m.variance is None:
+            raise InputError(
+                f"the map of {lab} has no estimate or variance; compute them to combine"
+            )
     n_all = int(np.prod(shape))
     inside = np.ones(n_all, dtype=bool) if mask is None else mask.reshape(-1).copy()
-    betas, variances, resampled = [], [], []
+    estimates, variances, resampled = [], [], []
     for i, (run, m) in enumerate(zip(runs, run_maps)):
-        beta, var, ok = m.beta.reshape(-1), m.variance.reshape(-1), m.mask.reshape(-1)
+        est, var, ok = m.estimate.reshape(-1), m.variance.reshape(-1), m.mask.reshape(-1)
         if i and not same_grid([first, run]):
             index = nearest_index(run.shape, run.affine, shape, aff0).reshape(-1)
             there = index >= 0
             index = np.where(there, index, 0)
-            beta, var, ok = beta[index], var[index], ok[index] & there
+            est, var, ok = est[index], var[index], ok[index] & there
             resampled.append(labels[i])
         inside &= ok
-        betas.append(beta)
+        estimates.append(est)
         variances.append(var)
     sel = np.flatnonzero(inside)
-    B = np.stack([b_[sel] for b_ in betas]).astype(np.float64)
+    B = np.stack([b_[sel] for b_ in estimates]).astype(np.float64)
     V = np.stack([v_[sel] for v_ in variances]).astype(np.float64)
     dfs = np.array([m.df for m in run_maps], dtype=np.float64)
     check_tail(tail)
@@ -723,7 +739,7 @@ def combine_maps(
     first_map = run_maps[0]
     out = CombinedMapResult(
         t=vol("t", fe.t),
-        beta=vol("beta", fe.beta),
+        estimate=vol("estimate", fe.estimate),
         variance=vol("variance", fe.variance),
         z=z,
         p=p_map,

@@ -834,7 +834,7 @@ def fit(
     keep_series : bool
         Keep ``fitted`` and ``residuals`` (n x n_voxels); maps turn this off.
     want_p : bool
-        Compute ``p`` (default). Maps that keep only ``t``, ``beta`` or ``variance`` turn
+        Compute ``p`` (default). Maps that keep only ``t``, ``estimate`` or ``variance`` turn
         this off to save the t distribution's tail; ``p`` is then None (``z`` still works).
     ar : ndarray (order,) or (order, n_voxels)
         AR(p) coefficients for ``noise="arp"`` (one column per voxel, or one for all);

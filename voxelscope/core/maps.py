@@ -14,7 +14,7 @@ Under AR(1) noise every voxel is prewhitened with its own rho, exactly as a sing
 is (see :func:`voxelscope.core.glm.fit`); ``rho_step`` optionally rounds rho first.
 
 Values outside the mask, and at degenerate voxels (constant over time, or fitted exactly),
-are 0 in ``t``, ``z``, ``beta`` and ``variance`` and 1 in ``p``: never a huge t. Such voxels
+are 0 in ``t``, ``z``, ``estimate`` and ``variance`` and 1 in ``p``: never a huge t. Such voxels
 are False in :attr:`MapResult.mask`.
 
 Examples
@@ -47,6 +47,7 @@ from .pvalues import check_tail, neglog10p_from_t, p_from_t, z_from_t
 
 __all__ = [
     "DEFAULT_CHUNK_VOXELS",
+    "EARLIER_STAT_NAMES",
     "STAT_NAMES",
     "ArrayRun",
     "Cancelled",
@@ -55,8 +56,11 @@ __all__ = [
     "kernel_difference",
 ]
 
-#: Statistics a map can hold.
-STAT_NAMES = ("t", "beta", "variance", "z", "p", "neglog10p")
+#: Statistics a map can hold (``estimate``: the contrast's ``c'b``).
+STAT_NAMES = ("t", "estimate", "variance", "z", "p", "neglog10p")
+#: Earlier names of statistics, still accepted where users have them (``--stat beta``, a
+#: saved session's map statistic) -> today's name.
+EARLIER_STAT_NAMES = {"beta": "estimate"}
 
 #: Voxels per block: 1024 x 300 volumes of float64 is 2.4 MB, so each block's working
 #: copies stay in cache. Measured on the 64x64x40x300 benchmark run (2 cores, CPU time per
@@ -81,8 +85,9 @@ class MapResult:
 
     Attributes
     ----------
-    t, beta, variance, z, p : ndarray (X, Y, Z) float32 (variance float64) or None
-        The statistics asked for (None for the others). Outside :attr:`mask` they are 0
+    t, estimate, variance, z, p : ndarray (X, Y, Z) float32 (variance float64) or None
+        The statistics asked for (None for the others); ``estimate`` is the contrast's
+        ``c'b``. Outside :attr:`mask` they are 0
         (``p`` is 1). ``z`` is exact at any t (:func:`voxelscope.core.pvalues.z_from_t`);
         ``p`` is for :attr:`tail` (two-sided by default) and underflows to 0 in float32
         from about t = 19; :attr:`neglog10p` does not.
@@ -121,7 +126,7 @@ class MapResult:
     """
 
     t: np.ndarray | None
-    beta: np.ndarray | None
+    estimate: np.ndarray | None
     variance: np.ndarray | None
     z: np.ndarray | None
     p: np.ndarray | None
@@ -153,7 +158,7 @@ class MapResult:
         return int(np.count_nonzero(self.mask))
 
     def stat(self, name: str) -> np.ndarray:
-        """One statistic by name (``t``, ``beta``, ``variance``, ``z``, ``p``, ``neglog10p``
+        """One statistic by name (``t``, ``estimate``, ``variance``, ``z``, ``p``, ``neglog10p``
         or ``rho``).
 
         Raises
@@ -301,8 +306,8 @@ def _scatter(
     degenerate[idx] = deg
     t = np.where(good, res.t, 0.0)
     flat["t"][idx] = t
-    if "beta" in want:
-        flat["beta"][idx] = np.where(good, res.estimate, 0.0)
+    if "estimate" in want:
+        flat["estimate"][idx] = np.where(good, res.estimate, 0.0)
     if "variance" in want:
         flat["variance"][idx] = np.where(good, res.variance, 0.0)
     if "p" in want:
@@ -726,7 +731,7 @@ def compute_map(
 
     return MapResult(
         t=vol("t"),
-        beta=vol("beta"),
+        estimate=vol("estimate"),
         variance=vol("variance"),
         z=vol("z"),
         p=vol("p"),

@@ -9,7 +9,7 @@ The rule (documented in DEVELOPERS.md, "Numbers for people"):
 ============  =======================================================  ====================
 kind          rule                                                     examples
 ============  =======================================================  ====================
-``beta``      3 significant digits; whole number from 100 on;          ``1.23``, ``0.0450``,
+``estimate``  3 significant digits; whole number from 100 on;          ``1.23``, ``0.0450``,
 ``variance``  scientific below 0.001 and from 1e6                      ``1234``, ``2.50e-05``
 ``value``     (any other estimate: the same rule)
 ``t`` ``z``   2 decimals                                               ``4.57``, ``-0.08``
@@ -31,11 +31,11 @@ such as an onset shift.
 
 Examples
 --------
->>> format_value("t", 4.56789), format_value("p", 0.00001234), format_value("beta", 12.345)
+>>> format_value("t", 4.56789), format_value("p", 0.00001234), format_value("estimate", 12.345)
 ('4.57', '1.23e-05', '12.3')
 >>> format_value("s", 128.0), format_value("mm", -12), format_value("df", 298.0)
 ('128', '-12.0', '298')
->>> format_value("beta", None)
+>>> format_value("estimate", None)
 '–'
 """
 
@@ -48,7 +48,7 @@ __all__ = ["KINDS", "MISSING", "count", "format_seconds", "format_value", "forma
 
 MISSING = "–"
 
-_SIGNIFICANT = ("beta", "variance", "value")
+_SIGNIFICANT = ("estimate", "variance", "value")
 _TWO_DECIMALS = ("t", "z", "F", "Q", "psc")
 KINDS = frozenset((*_SIGNIFICANT, *_TWO_DECIMALS, "p", "r", "df", "s", "mm"))
 
@@ -76,7 +76,7 @@ def format_value(kind: str, x: object, signed: bool = False) -> str:
     Parameters
     ----------
     kind
-        One of ``KINDS``: ``beta``, ``variance``, ``value``, ``t``, ``z``, ``F``, ``Q``,
+        One of ``KINDS``: ``estimate``, ``variance``, ``value``, ``t``, ``z``, ``F``, ``Q``,
         ``p``, ``r``, ``df``, ``psc``, ``s``, ``mm``.
     x
         A number (anything ``float`` accepts), ``None`` or NaN (written as ``MISSING``).
@@ -91,7 +91,7 @@ def format_value(kind: str, x: object, signed: bool = False) -> str:
     --------
     >>> [format_value("p", v) for v in (0.5, 0.04234, 0.001, 0.000999, 0.0)]
     ['0.500', '0.0423', '0.00100', '9.99e-04', '0']
-    >>> [format_value("beta", v) for v in (0.045, 2.5, 99.96, 1234.5, 2.5e-5, -3.14159)]
+    >>> [format_value("estimate", v) for v in (0.045, 2.5, 99.96, 1234.5, 2.5e-5, -3.14159)]
     ['0.0450', '2.50', '100', '1234', '2.50e-05', '-3.14']
     >>> format_value("s", 1.25), format_value("s", 0.5), format_value("s", 2.0, signed=True)
     ('1.25', '0.5', '+2')
@@ -151,11 +151,11 @@ def format_xyz(values: Iterable[object], kind: str = "mm") -> str:
 
 
 def stat_kind(stat: str) -> str:
-    """Kind of number of a map statistic (``t``, ``z``, ``F``, ``beta``, ``variance``,
+    """Kind of number of a map statistic (``t``, ``z``, ``F``, ``estimate``, ``variance``,
     ``p``...); ``value`` for any other.
 
-    >>> stat_kind("t"), stat_kind("beta"), stat_kind("neglog10p")
-    ('t', 'beta', 'value')
+    >>> stat_kind("t"), stat_kind("estimate"), stat_kind("neglog10p")
+    ('t', 'estimate', 'value')
     """
     return stat if stat in KINDS else "value"
 

@@ -204,7 +204,8 @@ def _fits_table(fits: VoxelFits, noise: str, colours: Mapping[str, str]) -> str:
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(f.kernel)}</td>",
             f"<td class='contrast'>{_e(f.contrast)}</td>",
-            f"<td class='num estimate'{_value_attr(f.estimate)}>{_fmt(f.estimate, 'beta')}</td>",
+            f"<td class='num estimate'{_value_attr(f.estimate)}>"
+            f"{_fmt(f.estimate, 'estimate')}</td>",
             f"<td class='num variance'{_value_attr(f.variance)}>"
             f"{_fmt(f.variance, 'variance')}</td>",
             f"<td class='num t'{_value_attr(f.t)}>{_fmt(f.t, 't')}</td>",

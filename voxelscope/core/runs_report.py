@@ -90,7 +90,8 @@ class RunsReportResult:
 
 def combined_csv(labels: Sequence[str], fits: Sequence[VoxelFits], combined) -> str:
     """Rows ``run, kernel, contrast, beta, variance, t, df, p, q, q_p``: every run's fit,
-    then the combined row per kernel (``run`` = ``combined``); full precision.
+    then the combined row per kernel (``run`` = ``combined``); full precision. The column
+    ``beta`` holds the contrast estimate: a column's name is kept for the scripts that read it.
 
     >>> from voxelscope.core.events import Condition
     >>> a = Analysis([Condition("tone", [5.0], [10.0])], n_volumes=30, tr=2.0)
@@ -119,7 +120,7 @@ def combined_csv(labels: Sequence[str], fits: Sequence[VoxelFits], combined) -> 
         lines.append(
             ",".join(
                 ["combined", c.kernel, _csv_cell(c.contrast)]
-                + [num(v) for v in (c.beta, c.variance, c.t)]
+                + [num(v) for v in (c.estimate, c.variance, c.t)]
                 + [f"{c.df:g}", num(c.p), num(c.q), num(c.q_p)]
             )
         )
@@ -173,12 +174,12 @@ def runs_figure(
     lo_hi: list[float] = [0.0]
     for c in combined:
         for r in c.runs:
-            if r["beta"] is not None and r["variance"] is not None:
+            if r["estimate"] is not None and r["variance"] is not None:
                 s = math.sqrt(r["variance"])
-                lo_hi += [r["beta"] - _Z95 * s, r["beta"] + _Z95 * s]
-        if c.beta is not None and c.variance is not None:
+                lo_hi += [r["estimate"] - _Z95 * s, r["estimate"] + _Z95 * s]
+        if c.estimate is not None and c.variance is not None:
             s = math.sqrt(c.variance)
-            lo_hi += [c.beta - _Z95 * s, c.beta + _Z95 * s]
+            lo_hi += [c.estimate - _Z95 * s, c.estimate + _Z95 * s]
     lo, hi = min(lo_hi), max(lo_hi)
     if hi - lo < 1e-12:
         lo, hi = lo - 1, hi + 1
@@ -203,9 +204,9 @@ def runs_figure(
         fig.add(Text(left - 8, ry + row_h / 2, row, font, "#222222", "end"))
         for k, c in enumerate(combined):
             if row == "combined":
-                b, v = c.beta, c.variance
+                b, v = c.estimate, c.variance
             else:
-                b, v = c.runs[i]["beta"], c.runs[i]["variance"]
+                b, v = c.runs[i]["estimate"], c.runs[i]["variance"]
             yy = ry + 8 + 14.0 * k + 4
             col = colours.get(c.kernel, "#777777")
             if b is None or v is None:
@@ -240,7 +241,8 @@ def _combined_table(combined: Sequence[CombinedFit], colours: Mapping[str, str])
             f"<td class='kernel'><span class='swatch' style='background:{colour}'></span>"
             f"{_e(c.kernel)}</td>",
             f"<td class='contrast'>{_e(c.contrast)}</td>",
-            f"<td class='num estimate'{_value_attr(c.beta)}>{_fmt(c.beta, 'beta')}</td>",
+            f"<td class='num estimate'{_value_attr(c.estimate)}>"
+            f"{_fmt(c.estimate, 'estimate')}</td>",
             f"<td class='num variance'{_value_attr(c.variance)}>"
             f"{_fmt(c.variance, 'variance')}</td>",
             f"<td class='num t'{_value_attr(c.t)}>{_fmt(c.t, 't')}</td>",

@@ -57,6 +57,7 @@ from .errors import InputError
 from .hrf import KERNEL_NAMES
 from .inputs import excerpt, parse_json, read_input_text
 from .limits import setting_problem
+from .maps import EARLIER_STAT_NAMES
 from .marks import MarkList
 from .model import ModelSettings
 from .model_json import FieldCheck, model_to_json, read_model_fields
@@ -93,7 +94,7 @@ _CHUNK = 1 << 20
 #: Colour scales, overlay sources and statistics a session's map settings may name.
 MAP_COLOUR_SCALES = ("CET-D1", "CET-D1A", "CET-D3", "CET-D9")
 MAP_SOURCES = ("model", "difference", "file", "disagreement")
-MAP_STATS = ("t", "z", "beta", "variance", "p", "neglog10p")
+MAP_STATS = ("t", "z", "estimate", "variance", "p", "neglog10p")
 #: No grid has more voxels along an axis than this (NIfTI-1 stores dimensions as int16).
 MAX_VOXEL_INDEX = 1_000_000
 
@@ -331,6 +332,13 @@ def _map_from_json(d: dict[str, Any], c: FieldCheck, warnings: list[str]) -> dic
 
         return check
 
+    def stat():
+        v = c.text(d["stat"], "map.stat")
+        v = EARLIER_STAT_NAMES.get(v, v)  # saved before the statistic was renamed
+        if v not in MAP_STATS:
+            raise c.fail("map.stat", f"is '{excerpt(v)}'; use one of {', '.join(MAP_STATS)}")
+        return v
+
     checks = {
         "threshold": number("threshold"),
         "opacity": number("opacity"),
@@ -340,7 +348,7 @@ def _map_from_json(d: dict[str, Any], c: FieldCheck, warnings: list[str]) -> dic
         "source": one_of("source", MAP_SOURCES),
         "kernel": one_of("kernel", KERNEL_NAMES, allow_none=True),
         "other_kernel": one_of("other_kernel", KERNEL_NAMES, allow_none=True),
-        "stat": one_of("stat", MAP_STATS),
+        "stat": stat,
     }
     bad = object()
     for name in d:

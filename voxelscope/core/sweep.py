@@ -13,12 +13,12 @@ the closeness to the mask edge) and one check of its own, motion locked to the t
     The task regressor of the checked condition correlates with the run's motion
     columns (the six motion parameters and ``framewise_displacement`` of the confounds
     table) at ``|r| >=`` :data:`TASK_MOTION_R`, and adding the six motion parameters to
-    the model keeps less than :data:`BETA_KEPT` of the peak's contrast estimate (or
+    the model keeps less than :data:`ESTIMATE_KEPT` of the peak's contrast estimate (or
     flips its sign). A real response survives the motion columns; motion that only looks
     like the task does not.
 
 For each subject and task with two runs or more, :func:`sweep_subject` combines the
-runs' beta and variance maps by fixed effects (:func:`voxelscope.core.combine.combine_maps`,
+runs' estimate and variance maps by fixed effects (:func:`voxelscope.core.combine.combine_maps`,
 on the first run's grid), finds the combined clusters, and states at each peak whether
 the runs agree (:func:`voxelscope.core.combine.combine_fits`: ``runs-disagree``,
 ``one-run``); at each run's own peaks it adds ``runs-disagree`` when Cochran's Q over the
@@ -30,8 +30,9 @@ results. Workers read the inputs where they are and write each run's result into
 output folder (``runs/<key>.json`` and ``runs/<key>.npz``, atomically); only small
 results (peaks, flags, small PNG figures) travel back. A result whose settings and inputs
 (path, size, modification time) are unchanged is reused, so a sweep stopped half way
-resumes where it stopped and gives the same findings. Dask is imported only when a sweep
-runs.
+resumes where it stopped and gives the same findings; a result saved by a version of
+voxelscope with another layout of results (:data:`RESULTS_FORMAT`) is computed again, never
+mixed with new ones. Dask is imported only when a sweep runs.
 
 The findings table (``findings.tsv``), one session per finding and a self-contained page
 (``index.html``) are written by :mod:`voxelscope.core.sweep_out`.
@@ -67,11 +68,12 @@ from .model import ModelSettings
 from .numfmt import format_value
 
 __all__ = [
-    "BETA_KEPT",
     "DEFAULT_THRESHOLD",
+    "ESTIMATE_KEPT",
     "MAX_PEAKS",
     "MIN_VOXELS",
     "OTHERS_T",
+    "RESULTS_FORMAT",
     "TASK_MOTION_R",
     "RunJob",
     "SubjectJob",
@@ -98,12 +100,17 @@ MAX_PEAKS = 20
 TASK_MOTION_R = 0.3
 #: ... and the ``task-motion`` flag is raised when less than this share of the contrast
 #: estimate survives the six motion parameters (our choice).
-BETA_KEPT = 0.5
+ESTIMATE_KEPT = 0.5
 #: A run's finding is ``this-run-only`` when every other run of the subject has t below this
 #: share of the threshold (same sign) at its peak (our choice).
 OTHERS_T = 0.5
 #: Size of the figure of each finding (logical pixels).
 FIGURE_SIZE = (420.0, 230.0)
+#: Layout of the saved results (``runs/<key>.json`` and ``.npz``, ``subjects/<key>.json``),
+#: part of every fingerprint: results saved in another layout are computed again, never
+#: read. 2: the contrast estimate is saved as ``estimate`` (1, which the fingerprint did
+#: not name, saved it as ``beta``).
+RESULTS_FORMAT = 2
 
 _NOISE_NAME = {"ols": "OLS", "ar1": "AR(1)", "arp": "AR(p)"}
 
@@ -147,8 +154,15 @@ class SweepSettings:
         return out
 
     def digest(self) -> str:
-        """SHA-256 of the settings (part of every result's fingerprint)."""
-        return _sha(json.dumps(self.to_json(), sort_keys=True, default=str))
+        """SHA-256 of the settings and of :data:`RESULTS_FORMAT` (part of every result's
+        fingerprint).
+
+        >>> a, b = SweepSettings(ModelSettings()), SweepSettings(ModelSettings(), kernel="gamma")
+        >>> a.digest() == SweepSettings(ModelSettings()).digest(), a.digest() == b.digest()
+        (True, False)
+        """
+        data = {**self.to_json(), "results_format": RESULTS_FORMAT}
+        return _sha(json.dumps(data, sort_keys=True, default=str))
 
     def describe(self) -> str:
         """One line for people."""
@@ -475,7 +489,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
         model,
         s.kernel,
         mask=run.mask(),
-        stats=("t", "beta", "variance"),
+        stats=("t", "estimate", "variance"),
         workers=1,  # one run per worker process, one thread each
         tail=s.tail,
     )
@@ -522,7 +536,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
             ar=None if est is None else est.phi,
         )
         flags = [(f.id, f.text) for f in checks.flags]
-        beta = float(kf.result.estimate[0])
+        estimate = float(kf.result.estimate[0])
         row = checks.confound_correlation.get(checks.condition, {})
         rs = [abs(row[m]) for m in motion if m in row and math.isfinite(row[m])]
         task_r = max(rs) if rs else None
@@ -532,8 +546,8 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
             noise2 = analysis.noise_at(run, ijk, motion_model)
             refit = analysis.fit_voxel(y, motion_model, noise2).fits[0]
             b2 = float(refit.result.estimate[0])
-            kept = b2 / beta if beta != 0 and math.isfinite(b2) else None
-            if kept is not None and kept < BETA_KEPT:
+            kept = b2 / estimate if estimate != 0 and math.isfinite(b2) else None
+            if kept is not None and kept < ESTIMATE_KEPT:
                 flags.append(
                     (
                         "task-motion",
@@ -562,10 +576,10 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
                 "peak_ijk": list(ijk),
                 "peak_mm": [round(v, 4) for v in c.peak_mm],
                 "t": float(c.peak_value),
-                "beta": beta,
+                "estimate": estimate,
                 "edge_mm": checks.edge_distance_mm,
                 "task_motion_r": task_r,
-                "beta_kept": kept,
+                "estimate_kept": kept,
                 "flags": flags,
                 "figure_png": _png_b64(fig),
             }
@@ -582,7 +596,7 @@ def _sweep_run(job: RunJob, s: SweepSettings, folder: Path) -> dict[str, Any]:
     buf = io.BytesIO()
     np.savez_compressed(
         buf,
-        beta=result.beta.astype(np.float64),
+        estimate=result.estimate.astype(np.float64),
         variance=result.variance.astype(np.float64),
         mask=result.mask,
         edge=summary.edge_distance.astype(np.float32),
@@ -654,7 +668,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
         maps = []
         for r in runs:
             with np.load(Path(out) / "runs" / f"{r['key']}.npz") as z:
-                maps.append({k: z[k] for k in ("beta", "variance", "mask", "edge")})
+                maps.append({k: z[k] for k in ("estimate", "variance", "mask", "edge")})
     except (OSError, KeyError, ValueError) as exc:
         return {
             **base,
@@ -670,7 +684,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
     run_maps = [
         MapResult(
             t=None,
-            beta=m["beta"],
+            estimate=m["estimate"],
             variance=m["variance"],
             z=None,
             p=None,
@@ -685,7 +699,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
         for m, r in zip(maps, runs)
     ]
     comb = combine_maps(
-        grids, run_maps, labels, stats=("t", "beta", "variance", "q", "q_p"), tail=settings.tail
+        grids, run_maps, labels, stats=("t", "estimate", "variance", "q", "q_p"), tail=settings.tail
     )
     table = find_clusters(
         comb.t,
@@ -707,7 +721,7 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
         for g, m in zip(grids, maps):
             idx = _at_point(g, mm, grids[0])
             ok = idx >= 0 and bool(m["mask"].reshape(-1)[idx])
-            bs.append(float(m["beta"].reshape(-1)[idx]) if ok else None)
+            bs.append(float(m["estimate"].reshape(-1)[idx]) if ok else None)
             vs.append(float(m["variance"].reshape(-1)[idx]) if ok else None)
         return bs, vs
 
@@ -750,12 +764,12 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
                 "peak_ijk": [int(v) for v in c.peak_voxel],
                 "peak_mm": [round(v, 4) for v in c.peak_mm],
                 "t": float(c.peak_value),
-                "beta": cf.beta,
+                "estimate": cf.estimate,
                 "edge_mm": edge,
                 "q_p": cf.q_p,
                 "flags": flags,
                 "runs": [
-                    {"run": lab, "beta": b, "variance": v} for lab, b, v in zip(labels, bs, vs)
+                    {"run": lab, "estimate": b, "variance": v} for lab, b, v in zip(labels, bs, vs)
                 ],
                 "figure_png": _png_b64(_runs_figure(labels, bs, vs, cf, job)),
             }
@@ -796,15 +810,15 @@ def sweep_subject(job: SubjectJob, runs: Sequence[dict], settings: SweepSettings
     return result
 
 
-def _runs_figure(labels, betas, variances, cf, job: SubjectJob):
+def _runs_figure(labels, estimates, variances, cf, job: SubjectJob):
     """Each run's estimate with its 95 % interval and the combined one (normal quantile
     1.96, an approximation at these df)."""
     from .figure import Figure, Polyline, Rect, Text, nice_ticks
 
     w, h = FIGURE_SIZE
     fig = Figure(w, h)
-    rows = [(lab, b, v) for lab, b, v in zip(labels, betas, variances)]
-    rows.append(("combined", cf.beta, cf.variance))
+    rows = [(lab, b, v) for lab, b, v in zip(labels, estimates, variances)]
+    rows.append(("combined", cf.estimate, cf.variance))
     fig.add(
         Text(
             10,
