@@ -93,9 +93,25 @@ def test_map_writes_float32_with_run_affine_and_leaves_input(tmp_path, capsys):
     effect = float(res.t_test(a.contrast_weights("gamma", s)).effect.squeeze())
     for name in ("estimate", "beta"):
         out_e = tmp_path / f"{name}.nii"
+        capsys.readouterr()
         assert main([*argv[:-3], "--stat", name, "-o", str(out_e), "--no-cache"]) == 0
-        est = np.asarray(nib.load(out_e).dataobj)
-        assert est[2, 3, 1] == pytest.approx(effect, rel=1e-5)
+        est = nib.load(out_e)
+        assert np.asarray(est.dataobj)[2, 3, 1] == pytest.approx(effect, rel=1e-5)
+        # the file is the one -o names; header and message say the statistic's one name
+        assert est.header["descrip"].tobytes().startswith(b"voxelscope estimate gamma")
+        assert f"wrote {out_e}: estimate map" in capsys.readouterr().out
+
+
+def test_map_help_lists_the_estimate_and_hides_the_earlier_name(capsys):
+    with pytest.raises(SystemExit):
+        main(["map", "--help"])
+    text = capsys.readouterr().out
+    assert "estimate" in text and "beta" not in text
+    with pytest.raises(SystemExit) as stop:
+        main(["map", "run.nii", "--stat", "effect", "-o", "x.nii"])
+    err = capsys.readouterr().err
+    assert stop.value.code == 2 and "--stat" in err and "effect" in err
+    assert len(err.strip().splitlines()) == 1 and "beta" not in err
 
 
 def test_map_refuses_to_overwrite_input_and_existing_output(tmp_path, capsys):

@@ -218,7 +218,7 @@ def test_ar1_runs_combine_their_own_whitened_estimates(tmp_path, capsys):
     paths = _three_runs(tmp_path)
     doc = _json(capsys, ["fit", *paths, "--voxel", "2", "3", "1", "--noise", "ar1"])
     for k, c in enumerate(doc["combined"]):
-        b = np.array([r["fits"][k]["beta"] for r in doc["runs"]])
+        b = np.array([r["fits"][k]["estimate"] for r in doc["runs"]])
         v = np.array([r["fits"][k]["variance"] for r in doc["runs"]])
         assert all(r["fits"][k]["rho"] is not None for r in doc["runs"])
         w = 1 / v

@@ -47,6 +47,10 @@ def test_live_map_equals_compute_map(window, ras_run):
     ref = compute_map(state.run, state.analysis, state.settings, "gamma")
     np.testing.assert_array_equal(state.overlay.data, ref.z)
     assert "z · gamma" in window.slices.colour_bar.title.text()
+    # the contrast estimate c'b, the statistic's one name from the combo to the core
+    window.map_panel.stat.setCurrentIndex(window.map_panel.stat.findData("estimate"))
+    assert live.flush(20000) and state.map_settings.stat == "estimate"
+    np.testing.assert_array_equal(state.overlay.data, ref.estimate)
 
 
 def test_quick_changes_give_one_job(window, qtbot, ras_run):

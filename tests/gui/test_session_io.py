@@ -290,8 +290,9 @@ def test_session_keeps_the_atlas(qtbot, ras_run, tmp_path):
 def test_a_session_written_before_the_renames_still_opens(qtbot, ras_run, tmp_path):
     """Sessions name their files by role: 'anatomy' and 'overlay' were the roles before the
     window's words changed (underlay -> backdrop, stat_map -> overlay) and still are, and the
-    map statistic 'beta' is still a key a session may hold. A file written by hand the way
-    earlier versions wrote it opens the anatomy as the backdrop and the map file."""
+    map statistic 'beta' (the earlier name of the contrast estimate) is still read, as
+    'estimate'. A file written by hand the way earlier versions wrote it opens the anatomy
+    as the backdrop and the map file."""
     import nibabel as nib
 
     anatomy = tmp_path / "sub-ras_T1w.nii.gz"
@@ -318,4 +319,4 @@ def test_a_session_written_before_the_renames_still_opens(qtbot, ras_run, tmp_pa
     assert open_session(w, path), w.last_error
     assert w.state.backdrop is not None and w.state.backdrop.path == anatomy
     assert w.state.file_layer is not None and w.state.file_layer.path == Path(ras_run["map"])
-    assert w.state.map_settings.stat == "beta"
+    assert w.state.map_settings.stat == "estimate"

@@ -73,6 +73,8 @@ def _fmt(v, kind: str) -> str:
 
 
 _TAIL_HEAD = {"two": "p(2-sided)", "positive": "p(t>0)", "negative": "p(t<0)"}
+#: Header of the estimate's CSV column: its earlier name, kept for the scripts that read it.
+_CSV_ESTIMATE = "beta"
 
 
 def _tail_p(f: KernelFit, tail: str) -> float | None:
@@ -96,7 +98,7 @@ def format_table(fits: VoxelFits, noise: str, tail: str = "two") -> str:
     for f in fits.fits:
         row = [
             f.kernel,
-            _fmt(f.estimate, "beta"),
+            _fmt(f.estimate, "estimate"),
             _fmt(f.variance, "variance"),
             _fmt(f.t, "t"),
             _fmt(f.df, "df"),
@@ -248,7 +250,7 @@ def format_combined_table(combined: list[CombinedFit], tail: str = "two") -> str
         rows.append(
             [
                 c.kernel,
-                _fmt(c.beta, "beta"),
+                _fmt(c.estimate, "estimate"),
                 _fmt(c.variance, "variance"),
                 _fmt(c.t, "t"),
                 _fmt(c.df, "df"),
@@ -299,7 +301,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
                 "run",
                 "kernel",
                 "contrast",
-                "beta",
+                _CSV_ESTIMATE,
                 "variance",
                 "t",
                 "df",
@@ -327,7 +329,7 @@ def _run_fit_several(args: argparse.Namespace) -> int:
         for c in combined:
             w.writerow(
                 ["combined", c.kernel, c.contrast]
-                + [num(v) for v in (c.beta, c.variance, c.t)]
+                + [num(v) for v in (c.estimate, c.variance, c.t)]
                 + [f"{c.df:g}", num(c.p if args.tail == "two" else c.p_tail), ""]
                 + [noise, "", num(c.q), num(c.q_p)]
             )
@@ -370,7 +372,8 @@ def run_fit(args: argparse.Namespace) -> int:
         w = csv.writer(buf, lineterminator="\n")
         w.writerow(
             [
-                *("kernel", "contrast", "beta", "variance", "t", "df", "p", "r2", "noise", "rho"),
+                *("kernel", "contrast", _CSV_ESTIMATE, "variance", "t", "df", "p", "r2"),
+                *("noise", "rho"),
                 *("tail", "neglog10p", "z"),
             ]
         )

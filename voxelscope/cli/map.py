@@ -17,6 +17,7 @@ from pathlib import Path
 
 from ..core.errors import InputError
 from ..core.hrf import get_kernel
+from ..core.maps import EARLIER_STAT_NAMES, STAT_NAMES
 from ..core.numfmt import count, format_value
 from .common import (
     Loaded,
@@ -30,12 +31,20 @@ from .multirun import load_runs, run_paths
 
 __all__ = ["register", "run_map"]
 
-_STATS = ("t", "estimate", "beta", "variance", "z", "p", "neglog10p")
-#: Names users type -> the core's statistic: ``estimate`` is the contrast's ``c'b``, which the
-#: core's maps still call ``beta`` (also accepted here, the earlier name).
-_CORE_STAT = {"estimate": "beta"}
+_STATS = STAT_NAMES
 #: With several runs the combined map also has Cochran's Q and its p.
 _RUN_STATS = ("q", "q_p")
+
+
+def _stat(text: str) -> str:
+    """``--stat``: a statistic's name; ``beta``, the earlier name of ``estimate`` (the
+    contrast's ``c'b``), is still accepted and not listed.
+
+    >>> _stat("t"), _stat("beta")
+    ('t', 'estimate')
+    """
+    text = str(text).strip()
+    return EARLIER_STAT_NAMES.get(text, text)
 
 
 def _kernel(text: str) -> str:
@@ -84,11 +93,11 @@ def register(sub: argparse._SubParsersAction) -> None:
     )
     p.add_argument(
         "--stat",
+        type=_stat,
         choices=_STATS + _RUN_STATS,
         default="t",
-        help="statistic to write (default t; estimate is the contrast's c'b, also called "
-        "beta); with several runs also q (Cochran's Q) and q_p "
-        "(its chi-square p)",
+        help="statistic to write (default t; estimate is the contrast's c'b); with several "
+        "runs also q (Cochran's Q) and q_p (its chi-square p)",
     )
     p.add_argument(
         "--rho-step",
@@ -158,7 +167,6 @@ def run_map(args: argparse.Namespace) -> int:
         raise InputError("--explain needs --compare THEIRS.nii (the map to explain)")
     if args.min_voxels < 1:
         raise InputError("--min-voxels must be at least 1")
-    args.stat = _CORE_STAT.get(args.stat, args.stat)
     if len(run_paths(args)) > 1:
         return _run_map_several(args)
     if args.stat in _RUN_STATS:

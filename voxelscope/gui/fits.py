@@ -72,7 +72,7 @@ _TYPICAL = {
 
 #: Kind of number (core/numfmt.py) of each numeric column.
 _KINDS = {
-    "estimate": "beta",
+    "estimate": "estimate",
     "variance": "variance",
     "t": "t",
     "F": "F",
@@ -96,7 +96,7 @@ def format_value(column: str, value) -> str:
     '1.23e-05'
     >>> format_value("t", 4.56789)
     '4.57'
-    >>> format_value("beta", None)
+    >>> format_value("estimate", None)
     '–'
     """
     if value is None:
@@ -245,7 +245,7 @@ class FitsModel(QAbstractTableModel):
                     "": kernel,
                     "kernel": kernel,
                     "run": "combined",
-                    "estimate": None if c is None else c.beta,
+                    "estimate": None if c is None else c.estimate,
                     "variance": None if c is None else c.variance,
                     "t": None if c is None else c.t,
                     "df": None if c is None else (int(c.df) if float(c.df).is_integer() else c.df),

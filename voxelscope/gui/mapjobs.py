@@ -600,7 +600,9 @@ class LiveMap(QObject):
         self.state.message.emit(failure.line)
 
     def _remember(self, m: MapResult) -> None:
-        stats = tuple(s for s in ("t", "beta", "variance", "z", "p") if getattr(m, s) is not None)
+        stats = tuple(
+            s for s in ("t", "estimate", "variance", "z", "p") if getattr(m, s) is not None
+        )
         paths = tuple(getattr(m, "paths", ()))
         key = (m.settings, m.kernel, stats) + ((paths,) if paths else ())
         self.cache[key] = m

@@ -58,7 +58,7 @@ NEXT_KEYS = {Qt.Key.Key_Right, Qt.Key.Key_Down, Qt.Key.Key_PageDown, Qt.Key.Key_
 PREVIOUS_KEYS = {Qt.Key.Key_Left, Qt.Key.Key_Up, Qt.Key.Key_PageUp, Qt.Key.Key_Backspace}
 HINT = "→ next   ← back   Esc leave"
 
-#: Fits columns left out in Show mode (the room reads beta, t and p; df is in the caption).
+#: Fits columns left out in Show mode (the room reads the estimate, t and p; df is in the caption).
 SHOW_HIDDEN_COLUMNS = ("variance", "df")
 
 #: Share of the height below the banner that Signal gets in Show mode.

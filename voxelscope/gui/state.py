@@ -54,7 +54,7 @@ SOURCES = (
 )
 
 #: Statistics the model map can show, with their labels.
-MAP_STATS = (("t", "t"), ("z", "z"), ("beta", "estimate"), ("variance", "variance"))
+MAP_STATS = (("t", "t"), ("z", "z"), ("estimate", "estimate"), ("variance", "variance"))
 
 #: Threshold a source starts with the first time it is shown (others keep the current one).
 FIRST_THRESHOLD = {"disagreement": 0.0, "difference": 1.0}
@@ -174,7 +174,7 @@ class MapSettings:
     other_kernel : str or None
         Kernel subtracted in the difference map; None: the first other enabled kernel.
     stat : str
-        Statistic of the model map (``t``, ``z``, ``beta``, ``variance``).
+        Statistic of the model map (``t``, ``z``, ``estimate``, ``variance``).
     """
 
     threshold: float = 3.0
