@@ -6,6 +6,12 @@ line by line, and fails on a word from that table's "Not" column. ``ALLOWED`` na
 lines where such a word means something else (a drawing frame, BIDS's ``anat`` folder, the
 hidden alias of an old flag); an entry that no longer matches any line fails too, so the
 list stays short and true.
+
+``beta`` is the one word that stays in its other meaning: ``beta``/``betas`` are the design
+columns' coefficients. The contrast's value ``c'b`` is the ``estimate``, so what is kept out
+is ``beta`` as a name: an attribute (``.beta``), a key or quoted name (``"beta"``), a keyword
+argument (``beta=``), ``beta_kept`` and a CSV header's ``,beta,``. The allowed lines are where
+users' files and scripts keep the earlier name working.
 """
 
 from __future__ import annotations
@@ -25,6 +31,10 @@ WORDS: dict[str, tuple[str, str]] = {
     "underlay": (r"\bunderlays?\b", "anatomy (the image) or backdrop (the grey layer)"),
     "anat": (r"\banat\b", "anatomy"),
     "stat_map": (r"\bstat_maps?\b", "map (the image) or overlay (what is drawn over the slices)"),
+    "beta": (
+        r"\.beta\b|[\"'`]beta[\"'`]|\bbeta=|\bbeta_kept\b|,beta,",
+        "estimate (the contrast's c'b); beta/betas stay only for the design columns' coefficients",
+    ),
 }
 
 #: (word, file relative to the repository, text on the line, why another meaning is right).
@@ -34,6 +44,16 @@ ALLOWED: list[tuple[str, str, str, str]] = [
     ("frame", "voxelscope/gui/checks_panel.py", "per frame would take", "frames of a drag"),
     ("frame", "voxelscope/gui/sizing.py", "# frame, buttons and padding", "a widget's frame"),
     ("frame", "voxelscope/gui/sizing.py", "every frame of a drag", "frames of a drag"),
+    ("beta", "README.md", "(also as `beta`, its earlier key)", "fit JSON's legacy key"),
+    ("beta", "voxelscope/cli/fit.py", "the earlier key of the estimate", "fit JSON's legacy key"),
+    ("beta", "voxelscope/cli/fit.py", '_CSV_ESTIMATE = "beta"', "CSV column kept for scripts"),
+    ("beta", "voxelscope/cli/map.py", "the earlier name of ``estimate``", "--stat beta, hidden"),
+    ("beta", "voxelscope/cli/map.py", '_stat("beta")', "--stat beta, hidden (doctest)"),
+    ("beta", "voxelscope/core/combine.py", "earlier key", "combined JSON's legacy key"),
+    ("beta", "voxelscope/core/maps.py", '{"beta": "estimate"}', "--stat beta and old sessions"),
+    ("beta", "voxelscope/core/runs_report.py", "contrast,beta,variance", "combined.csv column"),
+    ("beta", "voxelscope/core/runs_report.py", "``beta`` holds the contrast", "combined.csv"),
+    ("beta", "voxelscope/core/sweep.py", "saved it as ``beta``", "the earlier results format"),
 ]
 
 
@@ -81,6 +101,13 @@ def test_every_allowed_line_still_exists():
         ("design.frame_times", "frame_times"),
         ("the frame-to-frame change", "frame"),
         ("--anat FILE", "anat"),
+        ("m.beta[2, 3, 1]", "beta"),
+        ('flat["beta"][idx] = est', "beta"),
+        ("_fmt(c.estimate, 'beta')", "beta"),
+        ("MapResult(t=t, beta=vol)", "beta"),
+        ("BETA_KEPT = 0.5", "beta"),
+        ('"run,kernel,contrast,beta,variance"', "beta"),
+        ("(``t``, ``beta``, ``variance``)", "beta"),
     ],
 )
 def test_the_patterns_find_what_they_guard(text, word):
@@ -88,7 +115,19 @@ def test_the_patterns_find_what_they_guard(text, word):
 
 
 @pytest.mark.parametrize(
-    "text", ["framewise_displacement", "QFrame", "self.frameWidth()", "--anatomy", "anatomical"]
+    "text",
+    [
+        "framewise_displacement",
+        "QFrame",
+        "self.frameWidth()",
+        "--anatomy",
+        "anatomical",
+        "res.betas[cols, 0]",
+        "fit_sums(prep, sums, w, betas=False)",
+        "so each one's beta is its own effect",
+        "special.betainc(0.5, df / 2, x)",
+        '"betas": f.betas,',
+    ],
 )
 def test_the_patterns_leave_other_words_alone(text):
     assert not any(re.search(p, text, flags=re.IGNORECASE) for p, _ in WORDS.values())
