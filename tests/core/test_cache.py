@@ -1120,3 +1120,91 @@ def test_kept_mask_goes_with_its_entry(tmp_path):
     assert kept.stat().st_size > 0
     cache_clear(tmp_path / "c")
     assert _files(tmp_path / "c") == []
+
+
+# --------------------------------------------------------------------------- kept values
+# (the smoothness each design gets from a cached run: tests/core/test_noise.py)
+
+
+def _kept_file(cdir: Path) -> Path:
+    rows, _summary, _meta = _entry(cdir)
+    return rows.with_name(rows.name[: -len(".rows")] + cache.KEPT_SUFFIX)
+
+
+def test_kept_values_are_served_exactly_and_only_for_their_entry(tmp_path):
+    """Floats come back bit for bit (``float.hex``); a file copied from another run's
+    entry (valid checksum, other key and summary) serves nothing."""
+    path = _phantom_run(tmp_path)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    values = (0.1, 1.0 / 3.0, 5e-324, -0.0, 1e308)
+    run.kept_values.put("x", values)
+    got = open_run(path, cache_dir=tmp_path / "c").kept_values.get("x")
+    assert [v.hex() for v in got] == [v.hex() for v in values]
+    other = tmp_path / "o"
+    other.mkdir()
+    data, _ = _phantom(seed=6)
+    other_run = open_run(_save(other / "r_bold.nii.gz", data), cache_dir=tmp_path / "oc")
+    other_run.kept_values.put("x", (9.0,))
+    _kept_file(tmp_path / "c").write_bytes(_kept_file(tmp_path / "oc").read_bytes())
+    assert open_run(path, cache_dir=tmp_path / "c").kept_values.get("x") is None
+
+
+def test_kept_values_keep_the_newest_few(tmp_path):
+    run = open_run(_phantom_run(tmp_path), cache_dir=tmp_path / "c")
+    kept = run.kept_values
+    for i in range(cache.KEPT_MAX + 3):
+        kept.put(f"n{i}", (float(i),))
+    assert kept.get("n0") is None and kept.get("n2") is None
+    assert kept.get("n3") == (3.0,) and kept.get(f"n{cache.KEPT_MAX + 2}") == (
+        float(cache.KEPT_MAX + 2),
+    )
+
+
+@settings(max_examples=25, deadline=None)
+@given(where=st.floats(0, 1), xor=st.integers(1, 255), cut=st.booleans())
+def test_damaged_kept_values_are_never_served(tmp_path_factory, where, xor, cut):
+    """Fault injection: one byte XOR-ed with any value, or the file cut short there:
+    the value is either served exactly as it was put, or not at all (never another)."""
+    import shutil
+
+    base = tmp_path_factory.mktemp("keptflip")
+    path = _phantom_run(base)
+    open_run(path, cache_dir=base / "c").kept_values.put("name", (1.5, 2.5, 3.5))
+    target = _kept_file(base / "c")
+    blob = bytearray(target.read_bytes())
+    at = min(len(blob) - 1, int(where * len(blob)))
+    if cut:
+        del blob[at:]
+    else:
+        blob[at] ^= xor
+    target.write_bytes(bytes(blob))
+    assert open_run(path, cache_dir=base / "c").kept_values.get("name") is None
+    shutil.rmtree(base)
+
+
+def test_kept_values_that_cannot_be_written_are_not_kept(tmp_path, monkeypatch):
+    run = open_run(_phantom_run(tmp_path), cache_dir=tmp_path / "c")
+
+    def refuse(*_a, **_k):
+        raise OSError(errno.ENOSPC, "No space left on device")
+
+    monkeypatch.setattr(cache, "_write_bytes_atomic", refuse)
+    run.kept_values.put("x", (1.0,))
+    assert run.kept_values.get("x") is None
+    assert not _kept_file(tmp_path / "c").exists()
+    assert not [p for p in (tmp_path / "c").iterdir() if p.name.endswith(".tmp")]
+
+
+def test_kept_values_go_with_their_entry(tmp_path):
+    """cache info counts them, cache clear removes them with the entry; nothing is kept
+    for an entry that is gone."""
+    path = _phantom_run(tmp_path)
+    run = open_run(path, cache_dir=tmp_path / "c")
+    run.kept_values.put("x", (1.0,))
+    info = cache_info(tmp_path / "c")
+    assert info.total_bytes == sum(p.stat().st_size for p in (tmp_path / "c").iterdir())
+    assert _kept_file(tmp_path / "c").stat().st_size > 0
+    cache_clear(tmp_path / "c")
+    assert _files(tmp_path / "c") == []
+    run.kept_values.put("y", (2.0,))  # its entry was cleared under it
+    assert _files(tmp_path / "c") == []

@@ -697,3 +697,220 @@ def test_smoothness_sample_is_read_once_for_every_design():
         fresh = CountedRun(data)
         assert run_smoothness(fresh, p, mask) == got and fresh.reads == 3
     assert shared[0][0] > max(shared[0][1], shared[0][2])  # smoother along x, as planted
+
+
+# ------------------------------------------------ the run's smoothness, kept beside the cache
+#
+# Issue 18: a cached run keeps each design's smoothness beside its entry. These tests hold
+# the cache's promise for it: the kept value is the computed one bit for bit, and anything
+# it depends on (design, mask, estimator version) changed, or the file damaged, means it is
+# computed again, never served.
+
+#: Digest of the smoothness estimator's code (docstrings, comments and layout left out) for
+#: each ``noise.SMOOTHNESS_VERSION``. When the test below fails, the code changed: raise
+#: SMOOTHNESS_VERSION in voxelscope/core/noise.py (results kept by the old code would
+#: otherwise be served) and add the new version's digest here.
+SMOOTHNESS_CODE_DIGESTS = {
+    1: "3114aa52343e386afd0f28164fa15d7cbff3678c4b412e0ed3ba9d715dce19e4",
+}
+
+
+def _code_digest() -> str:
+    """SHA-256 of the syntax trees of the functions whose results the version vouches for."""
+    import ast
+    import hashlib
+    import inspect
+    import textwrap
+
+    from voxelscope.core import noise, workcopy
+
+    def dump(node) -> str:
+        if isinstance(node, list):
+            return "[" + ",".join(dump(v) for v in node) + "]"
+        if not isinstance(node, ast.AST):
+            return repr(node)
+        body = getattr(node, "body", None)
+        if (
+            isinstance(node, (ast.FunctionDef, ast.AsyncFunctionDef, ast.ClassDef, ast.Module))
+            and body
+            and isinstance(body[0], ast.Expr)
+            and isinstance(body[0].value, ast.Constant)
+            and isinstance(body[0].value.value, str)
+        ):
+            body = body[1:]
+        fields = []
+        for name, value in ast.iter_fields(node):
+            if name == "body" and body is not None:
+                value = body
+            if value is None or value == []:  # left out: differs between Python versions
+                continue
+            fields.append(f"{name}={dump(value)}")
+        return f"{type(node).__name__}({','.join(fields)})"
+
+    funcs = (
+        noise._estimate_smoothness,
+        noise._smoothness_sample,
+        noise.voxel_sizes,
+        workcopy.working_copy,
+    )
+    h = hashlib.sha256()
+    for f in funcs:
+        h.update(dump(ast.parse(textwrap.dedent(inspect.getsource(f)))).encode())
+    return h.hexdigest()
+
+
+def test_smoothness_version_is_raised_when_its_code_changes():
+    from voxelscope.core import noise
+
+    got = _code_digest()
+    assert SMOOTHNESS_CODE_DIGESTS.get(noise.SMOOTHNESS_VERSION) == got, (
+        "the code of the smoothness estimate changed: raise SMOOTHNESS_VERSION in "
+        "voxelscope/core/noise.py (kept results of the old code would be served) and add "
+        f"{noise.SMOOTHNESS_VERSION + 1}: {got!r} to SMOOTHNESS_CODE_DIGESTS"
+    )
+
+
+def _cached_smooth_run(folder: Path, seed: int = 12) -> Path:
+    """A .nii.gz run of noise smoothed along x (a bright block in zeros: a mask to find)."""
+    import nibabel as nib
+
+    rng = np.random.default_rng(seed)
+    e = rng.standard_normal((12, 10, 8, 60))
+    e[1:] += 0.7 * e[:-1]
+    data = np.zeros_like(e, dtype=np.float32)
+    data[1:11, 1:9, 1:7] = 1000 + 5 * e[1:11, 1:9, 1:7]
+    img = nib.Nifti1Image(data, np.diag([3.0, 3.0, 3.5, 1.0]))
+    img.header.set_zooms((3.0, 3.0, 3.5, 2.0))
+    img.header.set_xyzt_units("mm", "sec")
+    path = folder / "sub-01_task-s_bold.nii.gz"
+    nib.save(img, str(path))
+    return path
+
+
+def _smooth_setup(tmp_path, kernel="double-gamma"):
+    from voxelscope.core.run import open_run
+
+    path = _cached_smooth_run(tmp_path)
+    a = Analysis([Condition("x", [10.0, 50.0, 90.0], [16.0] * 3)], n_volumes=60, tr=2.0)
+    prep = a.prepared(kernel, ModelSettings())[1]
+
+    def run():
+        return open_run(path, cache_dir=tmp_path / "c")
+
+    return run, prep, a
+
+
+def _kept_file(tmp_path) -> Path:
+    from voxelscope.core import cache
+
+    (kept,) = (tmp_path / "c").glob(f"*{cache.KEPT_SUFFIX}")
+    return kept
+
+
+def _count_estimates(monkeypatch) -> list[int]:
+    from voxelscope.core import noise
+
+    calls: list[int] = []
+    real = noise._estimate_smoothness
+
+    def counted(*args):
+        calls.append(1)
+        return real(*args)
+
+    monkeypatch.setattr(noise, "_estimate_smoothness", counted)
+    return calls
+
+
+def test_kept_smoothness_is_the_computed_one_bit_for_bit(tmp_path, monkeypatch):
+    """The second open of a cached run serves the kept smoothness without reading the
+    sample; it equals, bit for bit, the estimate computed again from the run."""
+    from voxelscope.core import noise
+
+    open_again, prep, _ = _smooth_setup(tmp_path)
+    first = open_again()
+    want = noise.run_smoothness(first, prep, first.mask())
+    assert _kept_file(tmp_path).stat().st_size > 0
+    assert want[0] > max(want[1], want[2]) > 0  # smoother along x, as planted
+
+    def no_sample(*_a):
+        raise AssertionError("the sample was read although the result was kept")
+
+    monkeypatch.setattr(noise, "_smoothness_sample", no_sample)
+    second = open_again()
+    got = noise.run_smoothness(second, prep, second.mask())
+    monkeypatch.undo()
+    fresh = noise._estimate_smoothness(second, prep, second.mask(), {})
+    assert [v.hex() for v in got] == [v.hex() for v in want] == [v.hex() for v in fresh]
+    assert all(type(v) is float for v in got)
+
+
+def test_kept_smoothness_of_another_design_mask_or_version_is_computed(tmp_path, monkeypatch):
+    from voxelscope.core import noise
+
+    open_again, prep, a = _smooth_setup(tmp_path)
+    run = open_again()
+    noise.run_smoothness(run, prep, run.mask())
+    estimate = noise._estimate_smoothness  # the reference, computed directly
+    calls = _count_estimates(monkeypatch)
+    # the same model in a new process: kept
+    run = open_again()
+    noise.run_smoothness(run, prep, run.mask())
+    assert calls == []
+    # another kernel, another high-pass: other designs
+    other = a.prepared("boxcar", ModelSettings())[1]
+    want = estimate(run, other, run.mask(), {})
+    assert noise.run_smoothness(open_again(), other, run.mask()) == want
+    assert len(calls) == 1
+    # another mask (one voxel less)
+    mask = run.mask().copy()
+    mask[tuple(np.argwhere(mask)[0])] = False
+    want = estimate(run, prep, mask, {})
+    assert noise.run_smoothness(open_again(), prep, mask) == want
+    assert len(calls) == 2
+    # another version of the estimator: nothing kept before it is used
+    monkeypatch.setattr(noise, "SMOOTHNESS_VERSION", noise.SMOOTHNESS_VERSION + 1)
+    run = open_again()
+    noise.run_smoothness(run, prep, run.mask())
+    assert len(calls) == 3
+    run = open_again()
+    noise.run_smoothness(run, prep, run.mask())  # and kept under the new version
+    assert len(calls) == 3
+
+
+@pytest.mark.parametrize("cut", [False, True])
+@pytest.mark.parametrize("where", [0.0, 0.1, 0.5, 0.99])
+def test_damaged_kept_smoothness_is_computed_never_served(tmp_path, monkeypatch, where, cut):
+    """Fault injection: a byte of the kept file flipped or the file cut short there: the
+    value is computed again (no traceback) and equals the clean one."""
+    from voxelscope.core import noise
+
+    open_again, prep, _ = _smooth_setup(tmp_path)
+    run = open_again()
+    want = noise.run_smoothness(run, prep, run.mask())
+    target = _kept_file(tmp_path)
+    blob = bytearray(target.read_bytes())
+    at = min(len(blob) - 1, int(where * len(blob)))
+    if cut:
+        del blob[at:]
+    else:
+        blob[at] ^= 0x5A
+    target.write_bytes(bytes(blob))
+    calls = _count_estimates(monkeypatch)
+    run = open_again()
+    assert noise.run_smoothness(run, prep, run.mask()) == want
+    assert calls == [1]
+
+
+def test_a_run_not_served_from_the_cache_keeps_nothing(tmp_path):
+    """In memory (--no-cache) the smoothness is computed in each process; the cache
+    folder gets no file."""
+    from voxelscope.core import noise
+    from voxelscope.core.run import open_run
+
+    path = _cached_smooth_run(tmp_path)
+    a = Analysis([Condition("x", [10.0, 50.0, 90.0], [16.0] * 3)], n_volumes=60, tr=2.0)
+    prep = a.prepared("double-gamma", ModelSettings())[1]
+    run = open_run(path, use_cache=False, cache_dir=tmp_path / "c")
+    assert run.kept_values is None
+    assert noise.run_smoothness(run, prep, run.mask())[0] > 0
+    assert not (tmp_path / "c").exists() or not list((tmp_path / "c").iterdir())

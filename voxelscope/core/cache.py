@@ -27,6 +27,9 @@ honours ``XDG_CACHE_HOME``; or an explicit ``cache_dir``)::
                             its modification time is the entry's last use
     vxs-<key>.mask          the run's brain mask, once a command has computed it
                             (:class:`MaskMemo`), so later opens skip the mask rule
+    vxs-<key>.kept          small results computed from the run (the smoothness of
+                            its noise, per design), each under a digest of all it
+                            depends on (:class:`KeptValues`)
 
 What the cache promises, and how:
 
@@ -76,9 +79,10 @@ import shutil
 import socket
 import sys
 import tempfile
+import threading
 import time
 import zlib
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -112,11 +116,13 @@ __all__ = [
     "ANNOUNCE_BYTES",
     "ANNOUNCE_LARGER_MIN_BYTES",
     "DEFAULT_LIMIT_BYTES",
+    "KEPT_SUFFIX",
     "LIMIT_ENV",
     "MASK_SUFFIX",
     "CacheEntry",
     "CacheInfo",
     "CacheUnavailable",
+    "KeptValues",
     "MaskMemo",
     "Opened",
     "cache_clear",
@@ -150,6 +156,10 @@ STALE_TMP_SECONDS = 24 * 3600
 _PREFIX = "vxs-"
 #: Name ending of the brain mask kept beside an entry (:class:`MaskMemo`).
 MASK_SUFFIX = ".mask"
+#: Name ending of the small results kept beside an entry (:class:`KeptValues`).
+KEPT_SUFFIX = ".kept"
+#: At most this many results are kept per entry; the oldest go first.
+KEPT_MAX = 64
 _TAIL_BYTES = 64
 _HOST = hashlib.sha256(socket.gethostname().encode()).hexdigest()[:8]
 
@@ -283,6 +293,15 @@ def _names(directory: Path, key: str) -> tuple[Path, Path, Path]:
 
 def _mask_path(directory: Path, key: str) -> Path:
     return directory / f"{_PREFIX}{key}{MASK_SUFFIX}"
+
+
+def _kept_path(directory: Path, key: str) -> Path:
+    return directory / f"{_PREFIX}{key}{KEPT_SUFFIX}"
+
+
+def _beside(directory: Path, key: str) -> tuple[Path, Path]:
+    """The files kept beside an entry (they go with it)."""
+    return _mask_path(directory, key), _kept_path(directory, key)
 
 
 def _digest(meta: dict[str, Any]) -> str:
@@ -607,10 +626,99 @@ class MaskMemo:
             pass
 
 
+_KEPT_LOCK = threading.Lock()
+
+
+@dataclass(frozen=True)
+class KeptValues:
+    """Small results computed from a cached run, kept beside its entry (``vxs-<key>.kept``).
+
+    A result (a few floats) is stored under a name the caller makes from everything the
+    result depends on beyond the run's data (a SHA-256 of the design, the mask, the
+    method's version...); the run's data are vouched for by the entry's key and the
+    SHA-256 of its summary, which head the file. The file is a SHA-256 of everything
+    after it, one line of JSON (the entry's key and summary digest) and one JSON object of
+    names to lists of floats written exactly (``float.hex``). A result is served only
+    when the checksum holds, the head matches and the name is there; anything else gives
+    None and the caller computes the result (and puts it back). At most
+    :data:`KEPT_MAX` results are kept, the oldest dropped first. Writes are atomic, like
+    the entry's; a cache that cannot be written keeps nothing and says nothing.
+
+    Examples
+    --------
+    >>> d = Path(tempfile.mkdtemp())
+    >>> _ = (d / "vxs-k.json").write_text("{}")  # the entry it belongs to
+    >>> kept = KeptValues(d / "vxs-k.kept", "k", "0" * 64)
+    >>> kept.get("a") is None
+    True
+    >>> kept.put("a", (0.1, 2.5, 0.0))
+    >>> kept.get("a"), kept.get("b")
+    ((0.1, 2.5, 0.0), None)
+    >>> KeptValues(kept.path, "k", "1" * 64).get("a") is None  # another summary
+    True
+    """
+
+    path: Path
+    key: str
+    summary_sha256: str
+
+    def _head(self) -> dict[str, Any]:
+        return {"key": self.key, "summary_sha256": self.summary_sha256, "format": 1}
+
+    def _read(self) -> dict[str, list[str]]:
+        try:
+            blob = self.path.read_bytes()
+        except OSError:
+            return {}
+        digest, body = blob[:32], blob[32:]
+        if hashlib.sha256(body).digest() != digest:
+            return {}
+        line, sep, rest = body.partition(b"\n")
+        try:
+            head = json.loads(line)
+            values = json.loads(rest)
+        except (ValueError, UnicodeDecodeError, RecursionError):
+            return {}
+        if not sep or head != self._head() or not isinstance(values, dict):
+            return {}
+        return values
+
+    def get(self, name: str) -> tuple[float, ...] | None:
+        """The floats kept under ``name`` for this entry and summary, else None."""
+        got = self._read().get(name)
+        if not isinstance(got, list):
+            return None
+        try:
+            return tuple(float.fromhex(v) for v in got)
+        except (TypeError, ValueError):
+            return None
+
+    def put(self, name: str, values: Sequence[float]) -> None:
+        """Keep ``values`` under ``name`` (replacing what was there)."""
+        text = [float(v).hex() for v in values]
+        if not self.path.with_name(f"{_PREFIX}{self.key}.json").exists():
+            return  # the entry is gone (rebuilt elsewhere, cleared): nothing to keep beside
+        with _KEPT_LOCK:
+            kept = self._read()
+            kept.pop(name, None)
+            kept[name] = text
+            while len(kept) > KEPT_MAX:
+                kept.pop(next(iter(kept)))
+            body = (
+                json.dumps(self._head(), sort_keys=True).encode()
+                + b"\n"
+                + json.dumps(kept).encode()
+            )
+            try:
+                _write_bytes_atomic(self.path, hashlib.sha256(body).digest() + body)
+            except OSError:
+                pass
+
+
 @dataclass
 class Opened:
     """What :func:`open_store` gives: the store, its summary, where, and what to say, and
-    for a run served from the cache, where its brain mask is kept."""
+    for a run served from the cache, where its brain mask and small results are kept."""
 
     store: VoxelStore
     summary: Summary
@@ -618,6 +726,7 @@ class Opened:
     cache_path: Path | None
     notes: list[str] = field(default_factory=list)
     mask_memo: MaskMemo | None = None
+    kept: KeptValues | None = None
 
 
 def _memory_rows(layout: RawLayout, directory: Path | None, why: list[str]) -> Allocate:
@@ -762,8 +871,8 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
         _touch(_names(directory, key)[2])
         report_progress(progress, 1.0, layout)
         store = made(loaded.built, loaded.rows)
-        memo = _memo(directory, key, loaded)
-        return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes, memo)
+        memo, kept = _memo(directory, key, loaded)
+        return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes, memo, kept)
 
     try:
         directory.mkdir(parents=True, exist_ok=True)
@@ -864,13 +973,14 @@ def _open_cached(layout, select, final, directory, progress, notify, limit, note
     if loaded is None:  # pragma: no cover - only if someone deletes it under our feet
         raise CacheUnavailable(f"{directory}: the cache entry vanished while opening")
     store = made(loaded.built, loaded.rows)
-    memo = _memo(directory, key, loaded)
-    return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes, memo)
+    memo, kept = _memo(directory, key, loaded)
+    return Opened(store, loaded.built.summary, "cache", loaded.data_path, notes, memo, kept)
 
 
-def _memo(directory: Path, key: str, loaded: _Loaded) -> MaskMemo:
+def _memo(directory: Path, key: str, loaded: _Loaded) -> tuple[MaskMemo, KeptValues]:
     shape = tuple(int(n) for n in loaded.built.summary.mean.shape)
-    return MaskMemo(_mask_path(directory, key), key, loaded.summary_sha256, shape)  # type: ignore[arg-type]
+    mask = MaskMemo(_mask_path(directory, key), key, loaded.summary_sha256, shape)  # type: ignore[arg-type]
+    return mask, KeptValues(_kept_path(directory, key), key, loaded.summary_sha256)
 
 
 def _tail_crc(path: Path, data_end: int) -> int:
@@ -922,7 +1032,7 @@ class CacheInfo:
 
 
 def _entry_files(directory: Path, key: str) -> list[Path]:
-    return [p for p in (*_names(directory, key), _mask_path(directory, key)) if p.exists()]
+    return [p for p in (*_names(directory, key), *_beside(directory, key)) if p.exists()]
 
 
 def _list(directory: Path) -> list[tuple[str, dict[str, Any] | None, float]]:
@@ -1020,7 +1130,7 @@ def _remove_key(directory: Path, key: str) -> int:
     freed = 0
     # metadata first, so a half-removed entry is never taken for a complete one
     data_path, summary_path, meta_path = _names(directory, key)
-    for p in (meta_path, data_path, summary_path, _mask_path(directory, key)):
+    for p in (meta_path, data_path, summary_path, *_beside(directory, key)):
         try:
             freed += p.stat().st_size
             p.unlink()

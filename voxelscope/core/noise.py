@@ -1506,6 +1506,16 @@ def effective_df(nu: float, tau: np.ndarray, nu_rho: np.ndarray | float) -> np.n
 
 #: Voxel pairs per axis that :func:`run_smoothness` reads to estimate the data's smoothness.
 SMOOTHNESS_PAIRS = 2000
+#: Seed of the sample of pairs (the same pairs in every process: map and click agree).
+SMOOTHNESS_SEED = 0
+#: Version of the smoothness estimate. A cached run keeps each design's result beside its
+#: entry (:class:`voxelscope.core.cache.KeptValues`) under a digest that includes this
+#: number, so RAISE IT WITH EVERY CHANGE THAT COULD CHANGE A RESULT of
+#: :func:`_estimate_smoothness`, :func:`_smoothness_sample`, :func:`voxel_sizes` or
+#: :func:`voxelscope.core.workcopy.working_copy`; otherwise results of the old code are
+#: served. tests/core/test_noise.py pins a digest of that code to this number and fails
+#: when the code changes and the number does not.
+SMOOTHNESS_VERSION = 1
 
 _SMOOTHNESS: Any = None  # weak memo: run -> {(design, mask) digest: FWHM per axis}
 
@@ -1514,21 +1524,77 @@ def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float,
     """FWHM (mm, per axis) of a run's spatial smoothness, from the OLS residuals of up to
     :data:`SMOOTHNESS_PAIRS` neighbouring voxel pairs per axis inside the mask (a fixed,
     seeded sample, so a map and a clicked voxel get the same value); the estimate of
-    :func:`smoothness_fwhm` on those pairs. Memoised per run, design and mask; the
-    sampled series are read once per run and mask (:func:`_smoothness_sample`) and shared
-    by every design (a fit's kernels).
+    :func:`smoothness_fwhm` on those pairs.
+
+    Memoised per run, design and mask: in the process, and for a run served from the
+    cache also beside its entry (``run.kept_values``), under a digest of everything the
+    result depends on besides the run's data (:func:`_smoothness_key`), so a later fit of
+    the same run and model reads three numbers instead of the sample. Within a process
+    the sampled series are read once per run and mask (:func:`_smoothness_sample`) and
+    shared by every design (a fit's kernels).
     """
-    import hashlib
-
-    from .workcopy import working_copy as _wc
-
     mask = np.asarray(mask, dtype=bool)
-    mask_key = hashlib.sha1(np.packbits(mask).tobytes() + repr(mask.shape).encode()).hexdigest()
-    key = hashlib.sha1(np.asarray(prep.X).tobytes() + np.packbits(mask).tobytes()).hexdigest()
+    key = _smoothness_key(run, prep, mask)
     memo = _smoothness_memo(run)
     got = memo.get(key)
     if got is not None:
         return got
+    kept = getattr(run, "kept_values", None)
+    if kept is not None:
+        found = kept.get(key)
+        if found is not None and len(found) == 3:
+            got = memo[key] = found
+            return got  # type: ignore[return-value]
+    got = memo[key] = _estimate_smoothness(run, prep, mask, memo)
+    if kept is not None:
+        kept.put(key, got)
+    return got
+
+
+def _smoothness_key(run: Any, prep: Any, mask: np.ndarray) -> str:
+    """SHA-256 (hex) of everything :func:`run_smoothness` depends on besides the run's data:
+    the estimator's version, sample size and seed, numpy's version (the residuals' last
+    bits), the mask, the design and its pseudo-inverse, the kept and censored volumes,
+    whether the design has a constant, and the voxel sizes."""
+    import hashlib
+
+    h = hashlib.sha256()
+
+    def part(label: str, data: bytes) -> None:
+        h.update(f"{label}:{len(data)}:".encode())
+        h.update(data)
+
+    def array(label: str, a: Any) -> None:
+        if a is None:
+            part(label, b"none")
+            return
+        a = np.ascontiguousarray(a)
+        part(label, f"{a.dtype.str}{a.shape}".encode() + a.tobytes())
+
+    head = (
+        f"smoothness {SMOOTHNESS_VERSION} pairs {SMOOTHNESS_PAIRS} seed {SMOOTHNESS_SEED} "
+        f"numpy {np.__version__} constant {prep.constant_index}"
+    )
+    part("head", head.encode())
+    part("mask", repr(mask.shape).encode() + np.packbits(mask).tobytes())
+    array("X", prep.X)
+    array("pinv", prep.pinv)
+    array("keep", getattr(prep, "keep", None))
+    array("spikes", getattr(prep, "spikes", None))
+    array("sizes", np.array(voxel_sizes(getattr(run, "affine", np.eye(4)))))
+    return h.hexdigest()
+
+
+def _estimate_smoothness(
+    run: Any, prep: Any, mask: np.ndarray, memo: dict
+) -> tuple[float, float, float]:
+    """:func:`run_smoothness` computed: the sample (read once per mask into ``memo``),
+    each axis's OLS residuals under ``prep`` and their mean neighbour correlation."""
+    import hashlib
+
+    from .workcopy import working_copy as _wc
+
+    mask_key = hashlib.sha1(np.packbits(mask).tobytes() + repr(mask.shape).encode()).hexdigest()
     sample = memo.get(("sample", mask_key))
     if sample is None:
         sample = memo[("sample", mask_key)] = _smoothness_sample(run, mask)
@@ -1565,8 +1631,7 @@ def run_smoothness(run: Any, prep: Any, mask: np.ndarray) -> tuple[float, float,
         out.append(
             sizes[axis] * math.sqrt(2.0 * math.log(2.0) / -math.log(r)) if 0 < r < 1 else 0.0
         )
-    got = memo[key] = tuple(out)
-    return got  # type: ignore[return-value]
+    return tuple(float(v) for v in out)  # type: ignore[return-value]
 
 
 def _smoothness_memo(run: Any) -> dict:
@@ -1588,7 +1653,7 @@ def _smoothness_sample(run: Any, mask: np.ndarray) -> list[tuple[int, np.ndarray
     neighbouring pairs inside ``mask`` (first voxels, then their neighbours), as the
     run serves them; ``(0, None)`` when the axis has no pair."""
     shape = mask.shape
-    rng = np.random.default_rng(0)
+    rng = np.random.default_rng(SMOOTHNESS_SEED)
     out: list[tuple[int, np.ndarray | None]] = []
     for axis in range(3):
         n = shape[axis]

@@ -130,6 +130,7 @@ class Run:
     _mask: np.ndarray | None = field(default=None, repr=False)
     _given_mask: np.ndarray | None = field(default=None, repr=False)
     _mask_memo: Any = field(default=None, repr=False)  # cache.MaskMemo of a cached run
+    _kept: Any = field(default=None, repr=False)  # cache.KeptValues of a cached run
     _lock: Any = field(default_factory=threading.RLock, repr=False)
 
     def set_mask(self, mask: np.ndarray, source: str) -> None:
@@ -431,6 +432,13 @@ class Run:
                 self._mean = mean
             return self._mean
 
+    @property
+    def kept_values(self) -> Any:
+        """Where small results computed from this run may be kept across processes: the
+        :class:`~voxelscope.core.cache.KeptValues` beside its cache entry, or None for a
+        run not served from the cache."""
+        return self._kept
+
     def mask(self) -> np.ndarray:
         """Brain mask, bool (X, Y, Z), cached and read-only; see :func:`brain_mask`.
 
@@ -615,7 +623,7 @@ def open_run(
     )
     summary = None
     cache_path = None
-    mask_memo = None
+    mask_memo = kept = None
     if not layout.compressed:
         needed = layout.offset + layout.volume_bytes * t
         size = path.stat().st_size
@@ -649,6 +657,7 @@ def open_run(
             notify=notify,
         )
         store, summary, mask_memo = opened.store, opened.summary, opened.mask_memo
+        kept = opened.kept
         storage, cache_path = opened.storage, opened.cache_path
         notes.extend(opened.notes)
 
@@ -675,6 +684,7 @@ def open_run(
         _store=store,
         _summary=summary,
         _mask_memo=mask_memo,
+        _kept=kept,
     )
     if summary is not None:
         run._note_summary()
