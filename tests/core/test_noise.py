@@ -635,6 +635,42 @@ def test_tau_squares_from_the_sums_equal_the_dense_autocorrelations():
         np.testing.assert_allclose(rounded, exact, rtol=1e-3)
 
 
+def test_one_tau_table_for_a_map_reads_what_each_voxel_gets_alone(monkeypatch):
+    """A map's table of sum tau^2 (one grid for all its voxels, its points in batches that
+    may run side by side) gives each voxel what tau_squares gives it alone, as a clicked
+    voxel computes it; the sorted index of a wide box equals the dense one; and grid
+    points beyond the stationary region fall back to the exact sum (contrast_autocorr,
+    checked above against statsmodels' AR covariance)."""
+    from voxelscope.core import noise
+    from voxelscope.core.noise import TauTable, contrast_autocorr, tau_squares
+
+    a = _analysis()
+    _d, prep = a.prepared(KERNEL, ModelSettings())
+    w = a.contrast_weights(KERNEL, ModelSettings())
+    rng = np.random.default_rng(7)
+    phi = np.vstack([rng.uniform(0.0, 0.7, 300), rng.uniform(-0.05, 0.05, 300)])
+    batches: list[int] = []
+
+    def parallel(fn, items):
+        batches.append(len(items))
+        return [fn(i) for i in reversed(items)][::-1]  # any order of the batches
+
+    table = TauTable.build(prep, phi, w, parallel=parallel)
+    assert batches and table.nodes.shape[1] < 4 * phi.shape[1]
+    alone = np.array([tau_squares(prep, phi[:, [v]], w)[0] for v in range(0, 300, 7)])
+    np.testing.assert_allclose(table.at(phi[:, ::7]), alone, rtol=1e-12)
+    monkeypatch.setattr(noise, "_dense_limit", lambda _v: 0)  # index by sorting instead
+    wide = TauTable.build(prep, phi, w)
+    assert wide.slot is None
+    np.testing.assert_allclose(wide.at(phi), table.at(phi), rtol=1e-12)
+    # an AR(1) coefficient at the edge of the stationary region: the grid point 1.0 above
+    # it is no stationary process (NaN), so that voxel is computed exactly
+    edge = np.array([[0.995, 0.5]])
+    exact = (contrast_autocorr(prep, edge, w) ** 2).sum(axis=0)
+    np.testing.assert_allclose(tau_squares(prep, edge, w), exact, rtol=1e-3)
+    np.testing.assert_allclose(tau_squares(prep, edge, w)[0], exact[0], rtol=1e-9)
+
+
 def test_map_and_clicked_voxel_share_the_effective_df():
     """The default map reads each voxel's t with its effective df: p equals scipy's
     t distribution (stats.t.sf) at that df; a clicked voxel gets the same df and p, and

@@ -647,54 +647,87 @@ def compute_map(
                 _for_blocks(
                     blocks, lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
                 )
-        sm = smooth_map(values.reshape((*shape, n_lags + 1)), valid.reshape(shape) & mask, run)
-        del values
-        sm = sm.reshape(-1, n_lags + 1)
-        phi_flat = np.zeros((order, n_all))
+
+        def parallel(fn, items) -> list:
+            # [fn(item) for item in items], on the map's workers
+            items = list(items)
+            got: list = [None] * len(items)
+            _for_blocks(
+                ((i, item) for i, item in enumerate(items)),
+                lambda _i, item: fn(item),
+                got.__setitem__,
+                n_workers,
+                with_index=True,
+            )
+            return got
+
         # each voxel's effective df: the df of its smoothed autocorrelations (the run's
         # smoothness, the kernel, the voxel's share at the edge) and its whitened contrast
-        from .noise import arp_effective_df, edge_share, rho_df, run_smoothness, voxel_sizes
+        from .noise import (
+            TauTable,
+            edge_share,
+            effective_df,
+            rho_df,
+            run_smoothness,
+            voxel_sizes,
+        )
 
-        fwhm_data = run_smoothness(run, _prep, mask)
         sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
-        nu_rho = rho_df(_prep.df, sizes, fwhm_data) / edge_share(
-            valid.reshape(shape) & mask, sizes
-        ).reshape(-1)
+        in_mask = valid.reshape(shape) & mask
+        with ThreadPoolExecutor(1, thread_name_prefix="voxelscope-map") as side:
+            # the edge share beside the smoothing (both are convolutions that release the
+            # GIL); the smoothing's numerators and denominator go to the workers
+            edge = side.submit(edge_share, in_mask, sizes)
+            sm = smooth_map(values.reshape((*shape, n_lags + 1)), in_mask, run, parallel=parallel)
+            del values
+            sm = sm.reshape(-1, n_lags + 1)
+            fwhm_data = run_smoothness(run, _prep, mask)
+            nu_rho = rho_df(_prep.df, sizes, fwhm_data) / edge.result().reshape(-1)
+        phi_flat = np.zeros((order, n_all))
         df_flat = np.zeros(n_all)
 
-        def pieces():
-            # the solves are elementwise over voxels: pieces of SOLVE_VOXELS keep numpy's
-            # per-call cost small; each piece is a view of the sums, not a copy
-            if not kept:
-                return
-            where = np.concatenate(kept)
-            for a in range(0, seen, SOLVE_VOXELS):
-                b = min(seen, a + SOLVE_VOXELS)
-                yield where[a:b], sums.take(slice(a, b))
+        where = np.concatenate(kept) if kept else np.zeros(0, dtype=np.int64)
+        # the solves are elementwise over voxels: pieces of SOLVE_VOXELS keep numpy's
+        # per-call cost small; each piece is a view of the sums, not a copy
+        slices = [slice(a, min(seen, a + SOLVE_VOXELS)) for a in range(0, seen, SOLVE_VOXELS)]
+        phi_seen = np.zeros((order, seen))
 
-        def fit_piece(idx: np.ndarray, part):
-            # each voxel's AR coefficients depend only on its smoothed values, so the
-            # workers estimate them piece by piece, beside the solves
-            phi = ar_from_smoothed(sm[idx].T, order, _prep)[0]
-            return fit_sums(
-                _prep,
-                part,
-                weights,
-                phi,
-                want_p=need_p,
-                series=lambda i: _working_series(run, _prep, idx[i]),
-                betas=False,
-                df_eff=arp_effective_df(_prep, phi, weights, nu_rho[idx]),
-            )
+        def estimate(sl: slice, _none) -> np.ndarray:
+            # each voxel's AR coefficients depend only on its smoothed values
+            return ar_from_smoothed(sm[where[sl]].T, order, _prep)[0]
 
-        def store_piece(idx: np.ndarray, res) -> None:
-            at = run_or_index(idx)
-            phi_flat[:, at] = res.ar
-            df_flat[at] = res.df_eff
-            store(idx, res)
+        def keep_phi(sl: slice, phi: np.ndarray) -> None:
+            phi_seen[:, sl] = phi
 
         with one_blas_thread():  # small products: one BLAS thread is faster, as above
-            _for_blocks(pieces(), fit_piece, store_piece, n_workers, with_index=True)
+            _for_blocks(((sl, None) for sl in slices), estimate, keep_phi, n_workers, True)
+            # sum tau^2 of the effective df on one grid of AR coefficients for the whole
+            # map (noise.TauTable): the pieces share most of its points
+            table = TauTable.build(_prep, phi_seen, weights, parallel=parallel)
+
+            def fit_piece(sl: slice, _none):
+                phi = phi_seen[:, sl]
+                idx = where[sl]
+                tau2 = table.at(phi)
+                return fit_sums(
+                    _prep,
+                    sums.take(sl),
+                    weights,
+                    phi,
+                    want_p=need_p,
+                    series=lambda i: _working_series(run, _prep, idx[i]),
+                    betas=False,
+                    df_eff=effective_df(float(_prep.df), np.sqrt(tau2)[None], nu_rho[idx]),
+                )
+
+            def store_piece(sl: slice, res) -> None:
+                idx = where[sl]
+                at = run_or_index(idx)
+                phi_flat[:, at] = res.ar
+                df_flat[at] = res.df_eff
+                store(idx, res)
+
+            _for_blocks(((sl, None) for sl in slices), fit_piece, store_piece, n_workers, True)
         del sm
         sums = None
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)

@@ -832,7 +832,10 @@ def smoothing_weights(
 
 
 def smooth_in_mask(
-    values: np.ndarray, valid: np.ndarray, weights: Sequence[np.ndarray]
+    values: np.ndarray,
+    valid: np.ndarray,
+    weights: Sequence[np.ndarray],
+    parallel: Any = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """Normalised convolution of (X, Y, Z, K) ``values`` over the ``valid`` voxels.
 
@@ -842,6 +845,10 @@ def smooth_in_mask(
     Only the box around the valid voxels, widened by the kernel's reach, is convolved:
     outside it both sums are exactly 0, so the result is the same as over the whole grid
     (a map of a few planes, the window's preview, smooths a thin slab, not the volume).
+    Each of the K numerators and the denominator is its own 3-D convolution (the same
+    sums, line by line, as one 4-D convolution): ``parallel(fn, items)`` (optional,
+    returning ``[fn(i) for i in items]``) may run them side by side (scipy's filters
+    release the GIL).
 
     Examples
     --------
@@ -867,13 +874,21 @@ def smooth_in_mask(
         box.append(slice(lo, hi))
     box_t = tuple(box)
     m = valid[box_t].astype(np.float64)
-    num = values[box_t] * m[..., None]
-    den = m
-    for axis, w in enumerate(weights):
-        num = ndimage.correlate1d(num, w, axis=axis, mode="constant", cval=0.0)
-        den = ndimage.correlate1d(den, w, axis=axis, mode="constant", cval=0.0)
+    K = values.shape[-1]
+
+    def convolve(k: int) -> np.ndarray:
+        a = values[(*box_t, k)] * m if k < K else m
+        for axis, w in enumerate(weights):
+            a = ndimage.correlate1d(a, w, axis=axis, mode="constant", cval=0.0)
+        return a
+
+    jobs = [K, *range(K)]  # the denominator first
+    sums = parallel(convolve, jobs) if parallel is not None else [convolve(k) for k in jobs]
+    den = sums[0]
+    safe = np.where(den > 0, den, 1.0)
     with np.errstate(invalid="ignore", divide="ignore"):
-        out[box_t] = np.where(den[..., None] > 0, num / np.where(den > 0, den, 1.0)[..., None], 0.0)
+        for k in range(K):
+            out[(*box_t, k)] = np.where(den > 0, sums[k + 1] / safe, 0.0)
     den_all[box_t] = den
     return out, den_all
 
@@ -948,11 +963,17 @@ def ols_autocorr_block(prep: Any, Y: np.ndarray, lags: int = AR_ORDER):
     return _ols_autocorr(prep, Y, design_bias_matrix(prep, lags), lags)
 
 
-def smooth_map(rho: np.ndarray, valid: np.ndarray, run: Any, fwhm_mm: float | None = None):
+def smooth_map(
+    rho: np.ndarray,
+    valid: np.ndarray,
+    run: Any,
+    fwhm_mm: float | None = None,
+    parallel: Any = None,
+):
     """:func:`smooth_in_mask` with the run's voxel sizes; returns the smoothed values."""
     fwhm_mm = FWHM_MM if fwhm_mm is None else fwhm_mm
     weights = smoothing_weights(voxel_sizes(getattr(run, "affine", np.eye(4))), fwhm_mm)
-    return smooth_in_mask(rho, valid, weights)[0]
+    return smooth_in_mask(rho, valid, weights, parallel)[0]
 
 
 def _ols_autocorr(prep: Any, Y: np.ndarray, M: np.ndarray, lags: int):
@@ -1681,16 +1702,162 @@ def _smoothness_sample(run: Any, mask: np.ndarray) -> list[tuple[int, np.ndarray
 #: voxel; the effect on the effective df is below 0.1 % (tests/core/test_noise.py), far
 #: below its own uncertainty.
 TAU_STEP = 0.01
+#: Grid points of :class:`TauTable` computed per call of the exact sum (one batch).
+TAU_CHUNK = 4096
+
+
+def _dense_limit(n_voxels: int) -> int:
+    """Largest box of grid points that :class:`TauTable` indexes densely (else it sorts):
+    an index array no larger than a few of the map's own per-voxel arrays."""
+    return max(1 << 20, 8 * n_voxels)
+
+
+@dataclass(frozen=True)
+class TauTable:
+    """``sum_j tau_j^2`` (see :func:`tau_squares`) at the grid points of step ``step``
+    around a set of AR coefficients, computed once, and read by multilinear interpolation.
+
+    A map builds one table for all its voxels (:meth:`build`, the grid points spread over
+    the workers with ``parallel``) and each piece of voxels reads it (:meth:`at`): with AR
+    coefficients spread across the brain, the pieces share most of their grid points, which
+    were computed again in every piece before. A point's value does not depend on which
+    other points it is computed with (batches of :data:`TAU_CHUNK` in a fixed order), so
+    the result is the same for any number of workers.
+
+    >>> from voxelscope.core.glm import prepare
+    >>> X = np.column_stack([np.ones(40), np.arange(40.0) % 8 < 4])
+    >>> phi = np.array([[0.105, 0.3], [0.0, -0.1]])
+    >>> table = TauTable.build(prepare(X), phi, np.array([0.0, 1.0]))
+    >>> table.nodes.shape  # 2 x 2 grid points around each voxel's coefficients
+    (2, 8)
+    >>> bool(np.allclose(table.at(phi), tau_squares(prepare(X), phi, np.array([0.0, 1.0]))))
+    True
+    """
+
+    prep: Any
+    c: np.ndarray
+    step: float
+    base: np.ndarray  # (p,) the lowest grid index of each coefficient
+    span: np.ndarray  # (p,) grid points of each coefficient in the box
+    keys: np.ndarray  # (N,) sorted flat box positions of the computed points
+    slot: np.ndarray | None  # (prod span,) row of each box position in values (dense box)
+    nodes: np.ndarray  # (p, N) the computed grid points' coefficients
+    values: np.ndarray  # (N,)
+
+    @classmethod
+    def build(
+        cls,
+        prep: Any,
+        phi: np.ndarray,
+        c: np.ndarray,
+        step: float | None = None,
+        parallel: Any = None,
+    ) -> TauTable:
+        """The table for coefficients ``phi`` (p, V) of one design and contrast ``c``.
+
+        ``parallel(fn, items)`` (optional) returns ``[fn(i) for i in items]``, possibly
+        computed side by side; it gets the batches of grid points.
+        """
+        phi = np.asarray(phi, dtype=np.float64)
+        if phi.ndim == 1:
+            phi = phi[:, None]
+        step = TAU_STEP if step is None else float(step)
+        p, V = phi.shape
+        lo = np.floor(phi / step).astype(np.int64)
+        if V:
+            base = lo.min(axis=1)
+            span = lo.max(axis=1) - base + 2
+        else:
+            base = np.zeros(p, dtype=np.int64)
+            span = np.ones(p, dtype=np.int64)
+        box = int(np.prod(span))
+        corner = _corner_offsets(span)
+        cell = _box_key(lo - base[:, None], span)
+        slot = None
+        if box <= _dense_limit(V):
+            hit = np.zeros(box, dtype=bool)
+            for off in corner:
+                hit[cell + off] = True
+            keys = np.flatnonzero(hit)
+            slot = np.full(box, -1, dtype=np.int64)
+            slot[keys] = np.arange(keys.size)
+        else:  # a box too wide to index: sort the points instead
+            keys = np.unique(np.concatenate([cell + off for off in corner]))
+        idx = np.empty((p, keys.size), dtype=np.int64)
+        rest = keys
+        for k in range(p - 1, -1, -1):
+            rest, idx[k] = np.divmod(rest, span[k])
+        nodes = (idx + base[:, None]) * step
+        c = np.asarray(c, dtype=np.float64).reshape(-1)
+        batches = [slice(a, a + TAU_CHUNK) for a in range(0, keys.size, TAU_CHUNK)]
+
+        def one(sl: slice) -> np.ndarray:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                return _tau_squares(prep, nodes[:, sl], c, TAU_CHUNK)
+
+        parts = parallel(one, batches) if parallel is not None else [one(b) for b in batches]
+        values = np.concatenate(parts) if parts else np.zeros(0)
+        return cls(prep, c, step, base, span, keys, slot, nodes, values)
+
+    def at(self, phi: np.ndarray) -> np.ndarray:
+        """``sum_j tau_j^2`` (V,) at coefficients ``phi`` (p, V) inside the table's box:
+        multilinear interpolation between the grid points around each voxel (exactly
+        where one of them lies beyond the stationary region)."""
+        phi = np.asarray(phi, dtype=np.float64)
+        if phi.ndim == 1:
+            phi = phi[:, None]
+        step = self.step
+        p, V = phi.shape
+        scaled = phi / step
+        lo = np.floor(scaled)
+        frac = scaled - lo
+        cell = _box_key(lo.astype(np.int64) - self.base[:, None], self.span)
+        out = np.zeros(V)
+        for bits, off in zip(_corner_bits(p), _corner_offsets(self.span), strict=True):
+            key = cell + off
+            if self.slot is not None:
+                row = self.slot[key]
+            else:
+                row = np.searchsorted(self.keys, key)
+            w = np.ones(V)
+            for k in range(p):
+                w *= frac[k] if bits[k] else 1.0 - frac[k]
+            out += w * self.values[row]
+        off_grid = ~np.isfinite(out)  # a grid point beyond the stationary region
+        if off_grid.any():
+            out[off_grid] = _tau_squares(self.prep, phi[:, off_grid], self.c, TAU_CHUNK)
+        return out
+
+
+def _corner_bits(p: int) -> list[tuple[int, ...]]:
+    """The 2^p corners of a grid cell, as 0/1 offsets per coefficient."""
+    return [tuple((m >> (p - 1 - k)) & 1 for k in range(p)) for m in range(1 << p)]
+
+
+def _corner_offsets(span: np.ndarray) -> list[int]:
+    """Flat box offsets of the 2^p corners of a cell (the order of :func:`_corner_bits`)."""
+    p = len(span)
+    return [
+        int(_box_key(np.array(bits, dtype=np.int64)[:, None], span)[0]) for bits in _corner_bits(p)
+    ]
+
+
+def _box_key(idx: np.ndarray, span: np.ndarray) -> np.ndarray:
+    """Flat position (mixed radix, last coefficient fastest) of grid indices (p, V)."""
+    key = np.zeros(idx.shape[1], dtype=np.int64)
+    for k in range(idx.shape[0]):
+        key = key * int(span[k]) + idx[k]
+    return key
 
 
 def tau_squares(
-    prep: Any, phi: np.ndarray, c: np.ndarray, step: float | None = None, chunk: int = 4096
+    prep: Any, phi: np.ndarray, c: np.ndarray, step: float | None = None, chunk: int = TAU_CHUNK
 ) -> np.ndarray:
     """``sum_{j >= 1} tau_j^2`` (V,) of each voxel's whitened contrast weights (all lags):
     what :func:`effective_df` needs, the same as summing :func:`contrast_autocorr`, but
     from the one-pass design sums (``X*'X*`` from the band Toeplitz parts, as in
     :func:`arp_solve`), on a grid of ``step`` (default :data:`TAU_STEP`; 0: every voxel
-    exactly) with multilinear interpolation.
+    exactly) with multilinear interpolation (:class:`TauTable`).
     """
     phi = np.asarray(phi, dtype=np.float64)
     if phi.ndim == 1:
@@ -1698,29 +1865,7 @@ def tau_squares(
     step = TAU_STEP if step is None else float(step)
     if step <= 0 or phi.shape[1] == 0:
         return _tau_squares(prep, phi, c, chunk)
-    p, V = phi.shape
-    lo = np.floor(phi / step)
-    frac = phi / step - lo
-    corners = np.array(np.meshgrid(*[[0, 1]] * p, indexing="ij")).reshape(p, -1)  # (p, 2^p)
-    nodes = lo[:, None, :] + corners[:, :, None]  # (p, 2^p, V)
-    flat_nodes = nodes.reshape(p, -1).astype(np.int64)
-    base = flat_nodes.min(axis=1, keepdims=True)
-    span = flat_nodes.max(axis=1) - base[:, 0] + 1
-    key = np.zeros(flat_nodes.shape[1], dtype=np.int64)  # one integer per grid point
-    for k in range(p):
-        key = key * span[k] + (flat_nodes[k] - base[k])
-    _keys, first, inverse = np.unique(key, return_index=True, return_inverse=True)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        vals = _tau_squares(prep, flat_nodes[:, first] * step, c, chunk)[inverse.reshape(-1)]
-    vals = vals.reshape(corners.shape[1], V)
-    w = np.prod(
-        np.where(corners[:, :, None] == 1, frac[:, None, :], 1.0 - frac[:, None, :]), axis=0
-    )
-    out = np.einsum("kv,kv->v", w, vals)
-    off = ~np.isfinite(out)  # a grid point beyond the stationary region: exactly instead
-    if off.any():
-        out[off] = _tau_squares(prep, phi[:, off], c, chunk)
-    return out
+    return TauTable.build(prep, phi, c, step).at(phi)
 
 
 def _tau_squares(prep: Any, phi: np.ndarray, c: np.ndarray, chunk: int) -> np.ndarray:
