@@ -270,6 +270,25 @@ def test_multi_member_gzip_changed_in_an_early_member_is_not_served_stale(tmp_pa
     assert again.timeseries(tuple(int(v) for v in ijk))[0] == 12345.0
 
 
+@pytest.mark.parametrize("member_bytes", [None, 100, 348, 4096])
+def test_key_reads_the_header_as_the_stream_does(tmp_path, monkeypatch, member_bytes):
+    """The key's header digest comes from the first inflated bytes read directly; it is
+    the one the full stream reader gives, for one member and for members shorter than
+    the header (RFC 1952 members built with zlib; those fall back to the stream)."""
+    data = np.arange(4 * 3 * 2 * 5, dtype=np.float32).reshape(4, 3, 2, 5)
+    raw = nib.Nifti1Image(data, np.eye(4)).to_bytes()
+    path = tmp_path / "m_bold.nii.gz"
+    if member_bytes is None:
+        path.write_bytes(zlib.compress(raw, wbits=31))
+    else:
+        _multi_member(path, raw, member_bytes)
+    layout = open_run(path, use_cache=False)._store.layout
+    fast = cache._fingerprint(layout)
+    monkeypatch.setattr(cache, "_gzip_head", lambda *_a: None)
+    assert cache._fingerprint(layout) == fast
+    assert fast["header_sha256"] == hashlib.sha256(raw[: layout.offset]).hexdigest()
+
+
 def test_damaged_gzip_member_is_an_input_error(tmp_path):
     """A wrong CRC-32 in a member's trailer (RFC 1952) is refused with one line."""
     data, _ = _phantom((8, 8, 6, 5))
@@ -475,6 +494,26 @@ def test_default_location_honours_xdg_cache_home(tmp_path, monkeypatch):
     _write_gz(path, 11)
     run = open_run(path)
     assert run.cache_path.parent == tmp_path / "elsewhere" / "voxelscope" / "runs"
+
+
+@pytest.mark.parametrize(
+    "xdg, home",
+    [("/abs/xdg", "/home/u"), ("", "/home/u"), (None, "/home/u"), ("rel/xdg", "/home/u")],
+)
+def test_default_location_is_the_one_platformdirs_gives(tmp_path, monkeypatch, xdg, home):
+    """Our Linux shortcut (the XDG Base Directory rule: an absolute $XDG_CACHE_HOME,
+    else $HOME/.cache) against platformdirs itself."""
+    import platformdirs
+
+    if not sys.platform.startswith("linux"):
+        pytest.skip("the shortcut is the Linux rule")
+    if xdg is None:
+        monkeypatch.delenv("XDG_CACHE_HOME", raising=False)
+    else:
+        monkeypatch.setenv("XDG_CACHE_HOME", xdg)
+    monkeypatch.setenv("HOME", str(tmp_path) + home)
+    want = Path(platformdirs.user_cache_dir("voxelscope", appauthor=False)) / "runs"
+    assert default_cache_dir() == want
 
 
 def test_unwritable_cache_falls_back_to_memory(tmp_path):
