@@ -82,6 +82,9 @@ def test_fit_on_a_cached_run_loads_no_heavy_scipy(tmp_path, monkeypatch):
     assert list((tmp_path / "cache" / "voxelscope" / "runs").glob("*.mask"))
     # numpy.ma too: np.unique and np.setdiff1d import it (about 20 ms), marks do not
     assert _loaded_after(argv, (*HEAVY, *QT, "numpy.ma.")) == []
+    # nor what a cached run's fit does not need (issue 18): platformdirs (the cache
+    # folder by the XDG rule), threadpoolctl (BLAS on one thread from the start)
+    assert _loaded_after(argv, ("platformdirs", "threadpoolctl")) == []
 
 
 def test_every_command_is_registered_and_a_broken_one_is_not_hidden(monkeypatch):

@@ -41,3 +41,47 @@ def test_the_kept_library_finding_limits_every_time_and_after_new_imports():
     finally:
         del sys.modules["_vxs_blas_test_marker"]
     assert _blas_threads() == before
+
+
+def _in_fresh_process(code: str, env_extra: dict[str, str] | None = None) -> str:
+    import os
+    import subprocess
+    import sys
+
+    from voxelscope.core.blas import THREAD_VARIABLES
+
+    env = {k: v for k, v in os.environ.items() if k not in THREAD_VARIABLES}
+    env.update(env_extra or {})
+    proc = subprocess.run(
+        [sys.executable, "-c", code], capture_output=True, text=True, env=env, timeout=120
+    )
+    assert proc.returncode == 0, proc.stderr
+    return proc.stdout.strip().splitlines()[-1]
+
+
+_WHOLE = (
+    "import sys\n"
+    "from voxelscope.core.blas import one_thread_process, one_blas_thread\n"
+    "took = one_thread_process()\n"
+    "import numpy as np\n"
+    "with one_blas_thread():\n"
+    "    np.ones((300, 300)) @ np.ones((300, 300))\n"
+    "loaded = 'threadpoolctl' in sys.modules\n"
+    "from threadpoolctl import threadpool_info\n"
+    "print([took, loaded, sorted({d['num_threads'] for d in threadpool_info()"
+    " if d['user_api'] == 'blas'})])\n"
+)
+
+
+def test_a_short_command_runs_blas_on_one_thread_from_the_start():
+    """Before numpy loads, the thread-count variables make every BLAS library of the
+    process use one thread (read with threadpoolctl); one_blas_thread then needs
+    nothing, and threadpoolctl is not imported for it."""
+    took, loaded, threads = eval(_in_fresh_process(_WHOLE))
+    assert took and not loaded and threads == [1]
+
+
+def test_a_users_own_thread_setting_is_kept():
+    took, loaded, threads = eval(_in_fresh_process(_WHOLE, {"OPENBLAS_NUM_THREADS": "2"}))
+    assert not took and loaded  # one_blas_thread limits as before
+    assert threads == [2]  # and the user's setting is back after it

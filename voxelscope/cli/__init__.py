@@ -197,7 +197,15 @@ def main(argv: Sequence[str] | None = None) -> int:
         sys.stdout, sys.stderr = out, err
 
 
+#: Commands short enough to run BLAS on one thread from the start (see core/blas.py).
+_ONE_BLAS_THREAD = ("fit",)
+
+
 def _run(argv: list[str]) -> int:
+    if argv[0] in _ONE_BLAS_THREAD:
+        from ..core.blas import one_thread_process
+
+        one_thread_process()
     if argv[0] in _COMMAND_MODULES:
         parser = _parser_for(argv[0])
     else:

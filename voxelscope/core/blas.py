@@ -22,11 +22,47 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["one_blas_thread"]
+__all__ = ["one_blas_thread", "one_thread_process"]
 
 
 #: threadpoolctl's view of the loaded libraries, and the module count it was made at.
 _CONTROLLER: list[Any] = [None, -1]
+
+#: The thread-count variables BLAS libraries read when they load (OpenBLAS, OpenMP
+#: builds, MKL, BLIS, Apple's Accelerate).
+THREAD_VARIABLES = (
+    "OPENBLAS_NUM_THREADS",
+    "OMP_NUM_THREADS",
+    "MKL_NUM_THREADS",
+    "BLIS_NUM_THREADS",
+    "VECLIB_MAXIMUM_THREADS",
+)
+#: Set by :func:`one_thread_process` when the whole process runs BLAS on one thread.
+_WHOLE_PROCESS = [False]
+
+
+def one_thread_process() -> bool:
+    """BLAS on one thread for the whole process, for a short command (``voxelscope fit``).
+
+    Sets :data:`THREAD_VARIABLES` to 1, which the BLAS library reads when numpy loads it:
+    possible only before numpy is imported, and done only when none of them is set (a
+    user's own setting is kept). Then :func:`one_blas_thread` has nothing to do, and
+    threadpoolctl (a few milliseconds of imports and a scan of the process's libraries)
+    is never loaded. Returns whether it took effect.
+
+    >>> import numpy  # imported already: nothing changes
+    >>> one_thread_process()
+    False
+    """
+    import os
+    import sys
+
+    if "numpy" in sys.modules or any(v in os.environ for v in THREAD_VARIABLES):
+        return False
+    for v in THREAD_VARIABLES:
+        os.environ[v] = "1"
+    _WHOLE_PROCESS[0] = True
+    return True
 
 
 def one_blas_thread() -> Any:
@@ -39,6 +75,10 @@ def one_blas_thread() -> Any:
     """
     import sys
 
+    if _WHOLE_PROCESS[0]:
+        import contextlib
+
+        return contextlib.nullcontext()
     from threadpoolctl import ThreadpoolController
 
     n = len(sys.modules)
