@@ -42,7 +42,7 @@ REFERENCE = python_cmd("import numpy, nibabel")
 FIT_IMPORTS = (
     "import voxelscope.cli, voxelscope.cli.fit, voxelscope.core.loader, voxelscope.core.run, "
     "voxelscope.core.cache, voxelscope.core.noise, voxelscope.core.headercheck, "
-    "voxelscope.core.limits, platformdirs, zipfile"
+    "voxelscope.core.limits, zipfile"
 )
 
 
