@@ -217,6 +217,36 @@ def test_second_fit_does_not_rebuild_the_design(monkeypatch):
     assert len(calls) == 2 * len(s.kernels)
 
 
+def test_check_settings_raises_what_a_fit_raises_and_keeps_the_designs(monkeypatch):
+    """check_settings refuses exactly the settings a fit refuses (same error line), and
+    builds the designs the fit then uses (no second build)."""
+    a = Analysis([TONE, TAP], N, TR)
+    bad = [
+        ModelSettings(contrast="tap - beep"),
+        ModelSettings(kernels=("wavelet",)),
+        ModelSettings(contrast="tone +"),
+    ]
+    for s in bad:
+        with pytest.raises(InputError) as checked:
+            a.check_settings(s)
+        with pytest.raises(InputError) as fitted:
+            a.fit_voxel(_simulated_voxel(1), s)
+        assert str(checked.value) == str(fitted.value)
+    calls = []
+    real = model_mod.build_design
+
+    def counting(*args, **kwargs):
+        calls.append(kwargs.get("kernel"))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(model_mod, "build_design", counting)
+    s = ModelSettings(highpass_s=100.0)
+    a.check_settings(s)
+    assert len(calls) == len(s.kernels)
+    a.fit_voxel(_simulated_voxel(1), s)
+    assert len(calls) == len(s.kernels)
+
+
 def test_confound_columns_setting():
     rng = np.random.default_rng(8)
     conf = Confounds(("trans_x", "rot_z"), rng.standard_normal((N, 2)), "c.tsv")

@@ -486,6 +486,34 @@ class Analysis:
         )
         return self.contrast_weights("boxcar", s)
 
+    def check_settings(self, settings: ModelSettings) -> None:
+        """Raise the error a fit under ``settings`` would raise for the model itself.
+
+        Builds what every fit under ``settings`` needs first and keeps it (each kernel's
+        design and its prepared inverse, the contrast's weights, the F-test rows): the
+        kernels are known, the contrast parses, the volumes left out leave a design that
+        can be fitted. What it leaves to the fit is the voxel's own data and its noise
+        estimate. A front end can so accept a change at once and fit the voxel later.
+
+        Raises
+        ------
+        VoxelscopeError
+            The one line a fit would give for these settings.
+
+        Examples
+        --------
+        >>> from voxelscope.core.events import Condition
+        >>> a = Analysis([Condition("tap", [10.0, 50.0], [10.0, 10.0])], 60, 2.0)
+        >>> a.check_settings(ModelSettings(contrast="tap"))
+        >>> from voxelscope.core.errors import InputError
+        >>> try:
+        ...     a.check_settings(ModelSettings(contrast="jump"))
+        ... except InputError as err:
+        ...     print(err)
+        contrast 'jump': unknown name 'jump' at character 1; use tap
+        """
+        self._plan(settings)
+
     def noise_at(
         self,
         run: Any,
