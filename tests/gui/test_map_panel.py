@@ -218,3 +218,97 @@ def test_large_run_shows_a_preview_then_the_full_map(window, qtbot, ras_run, mon
     assert titles[0].endswith("(preview)") and not titles[-1].endswith("(preview)")
     ref = compute_map(state.run, state.analysis, state.settings, live.kernel())
     np.testing.assert_array_equal(state.overlay.data, ref.t)
+
+
+def _hold_background_fits(monkeypatch, release: threading.Event, entered: threading.Event):
+    """The voxel's background refit waits for ``release`` (a click's own refit, on the GUI
+    thread, does not)."""
+    from voxelscope.gui import state as state_mod
+
+    real = state_mod.fit_place
+
+    def held(*args, **kwargs):
+        if threading.current_thread() is not threading.main_thread():
+            entered.set()
+            release.wait(20)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(state_mod, "fit_place", held)
+
+
+def test_settings_change_shows_the_map_before_the_voxels_refit(window, qtbot, ras_run, monkeypatch):
+    """The map job starts at once on a model change and its preview and full map reach
+    the screen while the voxel's refit is still running: the refit waits here until the
+    full map is shown; then the fits arrive, equal to the core's fit."""
+    monkeypatch.setattr(mapjobs, "PREVIEW_MIN_VOXELS", 0)  # the test run counts as large
+    state, live = _open(window, ras_run)
+    release, entered = threading.Event(), threading.Event()
+    _hold_background_fits(monkeypatch, release, entered)
+    before = state.fits
+    previews, done = live.previews_shown, live.jobs_done
+    try:
+        assert state.update_settings(highpass_s=77.0)
+        qtbot.waitUntil(lambda: live.jobs_done > done, timeout=20000)
+        assert entered.is_set() and state.fits_pending and state.fits is before
+        assert live.previews_shown == previews + len(mapjobs.PREVIEW_AXES)
+    finally:
+        release.set()
+    ref = compute_map(state.run, state.analysis, state.settings, live.kernel())
+    np.testing.assert_array_equal(state.overlay.data, ref.t)
+    qtbot.waitUntil(lambda: not state.fits_pending and not state.refitting, timeout=20000)
+    noise = state.analysis.noise_at(state.run, state.voxel, state.settings)
+    expected = state.analysis.fit_voxel(state.series, state.settings, noise)
+    for got, want in zip(state.fits.fits, expected.fits):
+        assert got.t == want.t and got.kernel == want.kernel
+
+
+def test_a_newer_settings_change_supersedes_an_older_map(window, qtbot, ras_run, monkeypatch):
+    """A map job of older settings that is still running when the settings change again
+    never reaches the screen: the map shown, and the model map, are the newest settings'."""
+    state, live = _open(window, ras_run)
+    real = mapjobs.compute_map
+    started, release = threading.Event(), threading.Event()
+
+    def held(run, analysis, settings, kernel=None, progress=None, **kw):
+        if settings.highpass_s == 64.0:  # the older change: finishes late, cancel or not
+            started.set()
+            release.wait(20)
+            return real(run, analysis, settings, kernel, **kw)
+        return real(run, analysis, settings, kernel, progress=progress, **kw)
+
+    monkeypatch.setattr(mapjobs, "compute_map", held)
+    maps, shown = [], []
+    state.model_map_changed.connect(lambda m: maps.append(None if m is None else m.settings))
+    live.shown.connect(lambda layer: shown.append(None if layer is None else layer.data.copy()))
+    try:
+        assert state.update_settings(highpass_s=64.0)
+        qtbot.waitUntil(started.is_set, timeout=5000)
+        assert state.update_settings(highpass_s=90.0)
+    finally:
+        release.set()
+    qtbot.waitUntil(lambda: not live.is_busy(), timeout=20000)
+    assert maps and all(s.highpass_s == 90.0 for s in maps)
+    newest = real(state.run, state.analysis, state.settings, live.kernel())
+    older = real(state.run, state.analysis, state.settings.with_(highpass_s=64.0), live.kernel())
+    np.testing.assert_array_equal(state.overlay.data, newest.t)
+    assert not any(s is not None and np.array_equal(s, older.t) for s in shown)
+
+
+def test_bad_contrast_is_an_inline_error_and_starts_nothing(window, qtbot, qapp, ras_run):
+    """A contrast that does not parse keeps the one in use, says why under the box, and
+    starts neither a map job nor a refit; given to update_settings directly it is refused
+    with one status line."""
+    state, live = _open(window, ras_run)
+    started, settings = live.jobs_started, state.settings
+    panel = window.model_panel
+    panel.contrast.setText("tone - nosuch")
+    assert not panel.apply_contrast()
+    assert "nosuch" in panel.contrast_error.text() and "Still using" in panel.contrast_error.text()
+    assert not state.update_settings(contrast="tone - nosuch")
+    msg = window.statusBar().currentMessage()
+    assert "nosuch" in msg and "\n" not in msg
+    assert not live.timer.isActive() and live.job is None
+    assert not state.refitting and not state.fits_pending
+    for _ in range(5):
+        qapp.processEvents()
+    assert live.jobs_started == started and state.settings == settings

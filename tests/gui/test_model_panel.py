@@ -206,6 +206,7 @@ def test_modulators_and_condition_column_in_model(window, ras_run, qtbot):
     assert "gamble:gain" in window.model_panel.contrast.names()
     assert any("is n/a for 1 of 17 events" in m for m in messages)
     assert window.state.set_contrast("gamble:gain")
+    assert st.settle_fits()
     noise = st.analysis.noise_at(st.run, st.voxel, st.settings)  # the default model's
     expected = st.analysis.fit_voxel(st.series, st.settings, noise).by_kernel("gamma")
     assert st.fits.by_kernel("gamma").t == pytest.approx(expected.t, rel=1e-12)

@@ -44,6 +44,7 @@ def test_add_runs_fits_every_run_and_combines_them(window, three_runs):
     hot = _open_three(window, three_runs)
     st = window.state
     st.update_settings(noise="ols")  # statsmodels OLS is the reference below
+    assert st.settle_fits()
     assert [r.label for r in st.run_fits] == ["run-1", "run-2", "run-3"]
     assert [c.kernel for c in st.combined] == list(st.settings.kernels)
     # run-3 is on another grid: its voxel is the one nearest the same place in mm

@@ -19,6 +19,8 @@ def test_undo_redo_model_changes_refit(window, ras_run, qtbot):
     t0 = st.fits.by_kernel("double-gamma").t
     assert st.update_settings(noise="ols")
     assert window.set_contrast_text("tap - tone")
+    assert st.fits_pending  # a model change refits in the background
+    assert st.settle_fits()
     t2 = st.fits.by_kernel("double-gamma").t
     assert window.undo_action.text() == "&Undo contrast 'tap - tone'"
     qtbot.keyClick(window, Qt.Key.Key_Z, Qt.KeyboardModifier.ControlModifier)
@@ -27,6 +29,7 @@ def test_undo_redo_model_changes_refit(window, ras_run, qtbot):
     assert "Undone: contrast 'tap - tone'" in window.statusBar().currentMessage()
     window.undo_action.trigger()
     assert st.settings == start
+    qtbot.waitUntil(lambda: not st.fits_pending, timeout=10000)  # the background refit
     assert st.fits.by_kernel("double-gamma").t == t0  # the same voxel refitted
     # Ctrl+Y and Ctrl+Shift+Z redo
     qtbot.keyClick(window, Qt.Key.Key_Y, Qt.KeyboardModifier.ControlModifier)
@@ -35,6 +38,7 @@ def test_undo_redo_model_changes_refit(window, ras_run, qtbot):
     qtbot.keyClick(window, Qt.Key.Key_Z, mods)
     assert st.settings.contrast == "tap - tone"
     assert window.model_panel.contrast.text() == "tap - tone"
+    assert st.settle_fits()
     assert st.fits.by_kernel("double-gamma").t == t2
     assert not window.redo_action.isEnabled()
 
@@ -125,3 +129,72 @@ def test_undo_selects_the_mark_it_brought_back(window, ras_run):
     assert panel.current_row() == 1 and panel.note.isEnabled()
     window.undo_action.trigger()  # the note of c
     assert panel.current_row() == 2 and st.marks[2].note == ""
+
+
+def _hold_background_fits(monkeypatch, release, entered, calls=None):
+    """The voxel's background refit waits for ``release``; ``calls`` collects the
+    settings of every background refit."""
+    import threading
+
+    from voxelscope.gui import state as state_mod
+
+    real = state_mod.fit_place
+
+    def held(bundles, labels, voxel, settings):
+        if threading.current_thread() is not threading.main_thread():
+            if calls is not None:
+                calls.append(settings)
+            entered.set()
+            release.wait(20)
+        return real(bundles, labels, voxel, settings)
+
+    monkeypatch.setattr(state_mod, "fit_place", held)
+
+
+def _core_fits(st):
+    noise = st.analysis.noise_at(st.run, st.voxel, st.settings)
+    return st.analysis.fit_voxel(st.run.timeseries(st.voxel), st.settings, noise)
+
+
+def test_model_changes_refit_in_the_background_newest_wins(window, ras_run, qtbot, monkeypatch):
+    """Changes made in one pass of the event loop are one background refit, of the newest
+    settings; its fits equal the core's."""
+    import threading
+
+    st = _open(window, ras_run)
+    release, entered, calls = threading.Event(), threading.Event(), []
+    _hold_background_fits(monkeypatch, release, entered, calls)
+    release.set()
+    fitted = []
+    st.fits_changed.connect(fitted.append)
+    assert st.update_settings(noise="ols")
+    assert st.update_settings(highpass_s=90.0)
+    assert st.fits_pending and st.refitting and not fitted  # nothing fitted on the spot
+    qtbot.waitUntil(lambda: not st.refitting, timeout=20000)
+    assert calls == [st.settings] and len(fitted) == 1 and not st.fits_pending
+    want = _core_fits(st)
+    assert [f.t for f in st.fits.fits] == [f.t for f in want.fits]
+
+
+def test_a_click_during_a_background_refit_wins(window, ras_run, qtbot, monkeypatch):
+    """A click while a model change's refit runs is fitted at once; the older refit's
+    result (another voxel) is dropped, never shown over the click's."""
+    import threading
+
+    import numpy as np
+
+    st = _open(window, ras_run)
+    release, entered = threading.Event(), threading.Event()
+    _hold_background_fits(monkeypatch, release, entered)
+    try:
+        assert st.update_settings(noise="ols")
+        qtbot.waitUntil(entered.is_set, timeout=10000)
+        st.set_voxel((3, 5, 2))
+        clicked = st.fits
+        assert not st.fits_pending and st.voxel == (3, 5, 2)
+    finally:
+        release.set()
+    qtbot.waitUntil(lambda: not st.refitting, timeout=20000)
+    assert st.fits is clicked and not st.fits_pending
+    np.testing.assert_array_equal(st.fits.y, st.run.timeseries((3, 5, 2)))
+    assert [f.t for f in st.fits.fits] == [f.t for f in _core_fits(st).fits]

@@ -154,6 +154,7 @@ def test_fir_or_ar1_keeps_the_fits_table_on_screen(demo_window, qapp, change):
     if change.get("kernels"):
         change = {"kernels": (*w.state.settings.kernels, "fir")}
     assert w.state.update_settings(**change)
+    assert w.state.settle_fits()
     for _ in range(3):
         qapp.processEvents()
     table = w.fits.table

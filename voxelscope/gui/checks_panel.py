@@ -585,8 +585,8 @@ class ChecksPanel(QWidget):
         return _Request(key, analysis, st.settings, kernel, st.series.copy(), run, st.voxel)
 
     def _launch(self) -> None:
-        if not self.wanted():
-            return
+        if not self.wanted() or self.state.fits_pending:
+            return  # hidden, or the fits of a model change are on their way (they ask again)
         req = self._current_request()
         if isinstance(req, str):
             self._show(None, None)

@@ -172,6 +172,7 @@ def signal_figure(state, title: str | None = None, width: float = 900.0, height:
     from voxelscope.core.figure import kernel_colours
     from voxelscope.core.figure import signal_figure as core_figure
 
+    state.settle_fits()  # a model change's refit may still be on its way
     fits, analysis = state.fits, state.analysis
     if analysis is None or fits is None or not fits.fits:
         raise InputError("no fit to draw: open a run with its events and switch on a kernel")

@@ -103,7 +103,8 @@ class MainWindow(QMainWindow):
         self._pending_mm = None
         self.after_open = None
         self.last_error = ""
-        self.settle_hooks: list = []  # called before a window image: finish background work
+        # called before a window image: finish background work (the voxel's fits first)
+        self.settle_hooks: list = [self.state.settle_fits]
         self.record_recent = True  # False for a one-off offscreen rendering (--screenshot)
         self.study_browser = None  # File > Open study…
         self.keys_dialog = None  # Help > Keys and mouse…

@@ -21,7 +21,7 @@ from contextlib import contextmanager
 from dataclasses import dataclass, fields, replace
 
 import numpy as np
-from PySide6.QtCore import QObject, Signal
+from PySide6.QtCore import QObject, QTimer, Signal
 from PySide6.QtGui import QUndoCommand, QUndoStack
 
 from voxelscope.core.bids import run_labels
@@ -31,6 +31,7 @@ from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
 from voxelscope.gui.loading import Layer, RunBundle
 from voxelscope.gui.orient import DisplayGrid
+from voxelscope.gui.workers import BackgroundJob, JobFailure
 
 __all__ = [
     "FIRST_THRESHOLD",
@@ -38,8 +39,10 @@ __all__ = [
     "SOURCES",
     "LiveLayer",
     "MapSettings",
+    "PlaceFit",
     "RunFit",
     "ViewerState",
+    "fit_place",
     "settings_change_words",
 ]
 
@@ -216,6 +219,76 @@ class RunFit:
     note: str = ""
 
 
+@dataclass(frozen=True, eq=False)
+class PlaceFit:
+    """Everything :meth:`ViewerState.recompute` shows for one voxel and one model: the
+    first run's series and fits, and with several runs each run's fit and their
+    combination per kernel."""
+
+    series: np.ndarray | None
+    fits: VoxelFits | None
+    run_fits: list[RunFit]
+    combined: list[CombinedFit]
+
+
+def fit_place(
+    bundles: list[RunBundle],
+    labels: list[str],
+    voxel: tuple[int, int, int],
+    settings: ModelSettings,
+) -> PlaceFit:
+    """Fit ``voxel`` of the first run under ``settings`` (no Qt: runs on the GUI thread or
+    in a background job); with several runs, each other run at its voxel nearest the same
+    place in mm, and the runs combined per kernel. A run that cannot be fitted there is
+    left out of the combination with a note.
+
+    Raises
+    ------
+    VoxelscopeError
+        The first run's voxel cannot be read or fitted.
+    """
+    first = bundles[0]
+    run, analysis = first.run, first.analysis
+    y = run.timeseries(voxel)
+    fits = None
+    if analysis is not None:
+        # under the default model: the voxel's AR(p) coefficients from its
+        # neighbourhood, exactly as the map whitens it
+        noise = analysis.noise_at(run, voxel, settings)
+        fits = analysis.fit_voxel(y, settings, noise)
+    run_fits: list[RunFit] = []
+    combined: list[CombinedFit] = []
+    if len(bundles) < 2:
+        return PlaceFit(y, fits, run_fits, combined)
+    mm = run.voxel_to_mm(voxel)
+    run_fits.append(RunFit(labels[0], first, tuple(voxel), y, fits))
+    for label, b in zip(labels[1:], bundles[1:]):
+        try:
+            ijk = b.run.mm_to_voxel(tuple(float(v) for v in mm))
+            yb = b.run.timeseries(ijk)
+            noise = b.analysis.noise_at(b.run, ijk, settings)
+            f = b.analysis.fit_voxel(yb, settings, noise)
+        except VoxelscopeError as err:
+            run_fits.append(RunFit(label, b, None, None, None, str(err)))
+            continue
+        run_fits.append(RunFit(label, b, ijk, yb, f))
+    usable = [r for r in run_fits if r.fits is not None and r.fits.fits]
+    if len(usable) >= 2:
+        for i, one in enumerate(usable[0].fits.fits):
+            per = [r.fits.fits[i] for r in usable]
+            combined.append(
+                combine_fits(
+                    one.kernel,
+                    one.contrast,
+                    [r.label for r in usable],
+                    [f.estimate for f in per],
+                    [f.variance for f in per],
+                    [f.df for f in per],
+                )
+            )
+    return PlaceFit(y, fits, run_fits, combined)
+
+
 class ViewerState(QObject):
     """Current run, voxel, model settings, map settings, maps and fits, with change signals.
 
@@ -293,6 +366,15 @@ class ViewerState(QObject):
         self.history = QUndoStack(self)
         self._recording = True
         self._saved_marks: list = []
+        # the voxel's refit after a model change runs in the background (newest wins):
+        # what the shown fits are of, the running job, and a timer that gathers the
+        # changes of one event-loop pass into one refit
+        self._inputs = 0  # counts opened runs, events files and added runs
+        self._fits_key: tuple | None = None
+        self._refit_job: BackgroundJob | None = None
+        self._refit_timer = QTimer(self)
+        self._refit_timer.setSingleShot(True)
+        self._refit_timer.timeout.connect(self._start_refit)
 
     # ------------------------------------------------------------------ accessors
 
@@ -326,6 +408,7 @@ class ViewerState(QObject):
     def set_bundle(self, bundle: RunBundle, voxel: tuple[int, int, int] | None = None) -> None:
         """A newly opened run; the voxel goes to ``voxel`` or the brain's centre."""
         self.bundle = bundle
+        self._inputs += 1
         run = bundle.run
         self.grid = DisplayGrid(run.shape, run.affine)
         settings = START_SETTINGS
@@ -436,6 +519,7 @@ class ViewerState(QObject):
         if self.bundle is None:
             return
         self.bundle.analysis = analysis
+        self._inputs += 1
         self.bundle.events_path = events_path
         self.bundle.confounds_path = confounds_path
         self.model_map = None
@@ -480,17 +564,23 @@ class ViewerState(QObject):
         self.set_voxel(self.grid.to_voxel(self.grid.clamp_display(d)))
 
     def update_settings(self, **changes) -> bool:
-        """Change model settings and refit; on a model error the old settings stay."""
+        """Change model settings; on a model error the old settings stay.
+
+        The new settings are checked first (:meth:`Analysis.check_settings`: the
+        designs build, the contrast parses), then ``settings_changed`` is sent at once,
+        so the live map starts without waiting for the voxel; the voxel is refitted in
+        the background (:meth:`refit_later`) and ``fits_changed`` follows.
+        """
         new = self.settings.with_(**changes)
         if new == self.settings:
             return True
+        if not self._acceptable(new):
+            self.settings_changed.emit(self.settings)
+            return False
         old = self.settings
         self.settings = new
-        if not self.recompute():
-            self.settings = old
-            self.settings_changed.emit(old)
-            return False
         self.settings_changed.emit(new)
+        self.refit_later()
         if self._recording:
             self.history.push(_SettingsStep(self, old, new))
         if self.analysis is not None and (
@@ -544,15 +634,14 @@ class ViewerState(QObject):
 
     def _put_settings(self, settings: ModelSettings, say: str) -> None:
         """Undo/redo: put back whole settings (the contrast box follows)."""
-        old = self.settings
+        if not self._acceptable(settings):
+            self.settings_changed.emit(self.settings)
+            return
         self.settings = settings
         self.contrast_text = settings.contrast or ""
         self.contrast_problem = ""
-        if not self.recompute():
-            self.settings = old
-            self.settings_changed.emit(old)
-            return
         self.settings_changed.emit(settings)
+        self.refit_later()
         self.contrast_error.emit("")
         self.message.emit(say)
 
@@ -636,27 +725,115 @@ class ViewerState(QObject):
     # ------------------------------------------------------------------ recompute
 
     def recompute(self) -> bool:
-        """Refit the current voxel under the current settings; emit ``fits_changed``."""
+        """Refit the current voxel under the current settings now; emit ``fits_changed``.
+
+        A click refits at once; a model change refits in the background
+        (:meth:`refit_later`). Both go through :func:`fit_place`.
+        """
         run = self.run
         if run is None:
             return False
+        key = self._fit_key()
         try:
-            y = run.timeseries(self.voxel)
-            fits = None
-            if self.analysis is not None:
-                # under the default model: the voxel's AR(p) coefficients from its
-                # neighbourhood, exactly as the map whitens it
-                noise = self.analysis.noise_at(run, self.voxel, self.settings)
-                fits = self.analysis.fit_voxel(y, self.settings, noise)
+            out = fit_place(self.bundles, self.labels(), self.voxel, self.settings)
         except VoxelscopeError as err:
             self.message.emit(str(err))
             return False
-        self._say_later_run_lines(run)
-        self.series = y
-        self.fits = fits
-        self._fit_runs()
-        self.fits_changed.emit(fits)
+        self._apply_fit(key, out)
         return True
+
+    def refit_later(self) -> None:
+        """Refit the current voxel under the current settings in a background job
+        (:class:`~voxelscope.gui.workers.BackgroundJob`); ``fits_changed`` follows.
+
+        Newest wins: the changes of one event-loop pass are one refit; a refit asked
+        while one runs waits for it and its result, no longer the current voxel's and
+        model's, is dropped; a result that arrives after :meth:`recompute` already
+        showed the same voxel and model is dropped too. Until it arrives ``fits`` are
+        those of the previous model (``fits_pending`` says so).
+        """
+        if self.run is not None:
+            self._refit_timer.start(0)
+
+    @property
+    def fits_pending(self) -> bool:
+        """The shown fits are not yet those of the current voxel and settings."""
+        return self.run is not None and self._fits_key != self._fit_key()
+
+    @property
+    def refitting(self) -> bool:
+        """A background refit is asked for or running."""
+        return self._refit_job is not None or self._refit_timer.isActive()
+
+    def settle_fits(self) -> bool:
+        """Make ``fits`` those of the current voxel and settings now (a pending
+        background refit is done here instead; its result is then dropped). For
+        whatever reads the fits right after a change: an export, a test."""
+        if not self.fits_pending:
+            return True
+        self._refit_timer.stop()
+        return self.recompute()
+
+    def _fit_key(self) -> tuple:
+        return (self._inputs, tuple(self.voxel), self.settings)
+
+    def _acceptable(self, settings: ModelSettings) -> bool:
+        """Whether ``settings`` can be fitted (one status line when not)."""
+        if self.run is None:
+            return False
+        if self.analysis is None:
+            return True
+        try:
+            self.analysis.check_settings(settings)
+            for b in self.extra:
+                b.analysis.check_settings(settings)
+        except VoxelscopeError as err:
+            self.message.emit(str(err))
+            return False
+        return True
+
+    def _apply_fit(self, key: tuple, out: PlaceFit) -> None:
+        self._say_later_run_lines(self.run)
+        self.series = out.series
+        self.fits = out.fits
+        self.run_fits = out.run_fits
+        self.combined = out.combined
+        self._fits_key = key
+        self.fits_changed.emit(out.fits)
+
+    def _start_refit(self) -> None:
+        if not self.fits_pending or self._refit_job is not None:
+            return  # shown already, or the running job starts the newest when it ends
+        key = self._fit_key()
+        bundles, labels = self.bundles, self.labels()
+        voxel, settings = tuple(self.voxel), self.settings
+
+        def fn(_progress):
+            return fit_place(bundles, labels, voxel, settings)
+
+        job = BackgroundJob(fn, "the voxel's fit", owner=self)
+        job.done.connect(lambda out, key=key: self._refit_done(key, out))
+        job.failed.connect(lambda failure, key=key: self._refit_failed(key, failure))
+        job.finished.connect(lambda job=job: self._refit_finished(job))
+        self._refit_job = job
+        job.start()
+
+    def _refit_done(self, key: tuple, out: PlaceFit) -> None:
+        if key == self._fit_key() and key != self._fits_key:
+            self._apply_fit(key, out)
+
+    def _refit_failed(self, key: tuple, failure: JobFailure) -> None:
+        if key == self._fit_key() and key != self._fits_key:
+            self.message.emit(failure.line)
+            self._apply_fit(key, PlaceFit(None, None, [], []))
+
+    def _refit_finished(self, job: BackgroundJob) -> None:
+        job.wait()
+        if self._refit_job is job:
+            self._refit_job = None
+        job.deleteLater()
+        if self.fits_pending and not self._refit_timer.isActive():
+            self._start_refit()
 
     def _say_later_run_lines(self, run) -> None:
         """Show what the run said while it was read after loading (a cache block that
@@ -698,6 +875,7 @@ class ViewerState(QObject):
         except VoxelscopeError as err:
             return self._refuse(f"{path}: {err}")
         self.extra.append(bundle)
+        self._inputs += 1
         for w in bundle.warnings:
             self.message.emit(w)
         self.runs_changed.emit()
@@ -714,6 +892,7 @@ class ViewerState(QObject):
         if not self.extra:
             return
         self.extra = []
+        self._inputs += 1
         self.signal_run = 0
         self.runs_changed.emit()
         self.recompute()
@@ -730,44 +909,6 @@ class ViewerState(QObject):
         if not self.run_fits or self.signal_run >= len(self.run_fits):
             return None
         return self.run_fits[self.signal_run]
-
-    def _fit_runs(self) -> None:
-        """Fit every added run at the place of the current voxel (its nearest voxel in mm)
-        and combine the runs per kernel; a run that cannot be fitted there is left out of
-        the combination with a note."""
-        self.run_fits = []
-        self.combined = []
-        if not self.extra or self.bundle is None:
-            return
-        labels = self.labels()
-        mm = self.run.voxel_to_mm(self.voxel)
-        out = [RunFit(labels[0], self.bundle, tuple(self.voxel), self.series, self.fits)]
-        for label, b in zip(labels[1:], self.extra):
-            try:
-                ijk = b.run.mm_to_voxel(tuple(float(v) for v in mm))
-                y = b.run.timeseries(ijk)
-                noise = b.analysis.noise_at(b.run, ijk, self.settings)
-                f = b.analysis.fit_voxel(y, self.settings, noise)
-            except VoxelscopeError as err:
-                out.append(RunFit(label, b, None, None, None, str(err)))
-                continue
-            out.append(RunFit(label, b, ijk, y, f))
-        self.run_fits = out
-        usable = [r for r in out if r.fits is not None and r.fits.fits]
-        if len(usable) < 2:
-            return
-        for i, first in enumerate(usable[0].fits.fits):
-            per = [r.fits.fits[i] for r in usable]
-            self.combined.append(
-                combine_fits(
-                    first.kernel,
-                    first.contrast,
-                    [r.label for r in usable],
-                    [f.estimate for f in per],
-                    [f.variance for f in per],
-                    [f.df for f in per],
-                )
-            )
 
     def _centre(self) -> tuple[int, int, int]:
         run = self.run
