@@ -99,10 +99,12 @@ def test_window_offers_the_table_and_leaves_out_its_volumes(pipeline_window):
     # one click on motion6: the columns enter the model
     picker.set_buttons["motion6"].click()
     assert st.settings.confound_columns == MOTION6
+    assert st.settle_fits()  # a model change refits in the background; here at once
     assert set(MOTION6) <= set(st.fits.fits[0].design.names)
     # the outlier set censors its volumes
     picker.set_buttons["outliers"].click()
     assert set(st.analysis.excluded_volumes(st.settings)) == {0, 1, 30, 31}
+    assert st.settle_fits()
     assert not any(n.startswith("motion_outlier") for n in st.fits.fits[0].design.names)
     # drop and censor controls
     panel.drop.setValue(5)
@@ -113,6 +115,7 @@ def test_window_offers_the_table_and_leaves_out_its_volumes(pipeline_window):
     fd = st.analysis.confounds.column("framewise_displacement")
     want = set(np.flatnonzero(fd > st.settings.censor_fd_mm).tolist())
     assert want <= set(st.analysis.excluded_volumes(st.settings))
+    assert st.settle_fits()
     assert sig.left_out.tolist() == sorted(st.analysis.excluded_volumes(st.settings))
 
 

@@ -22,12 +22,14 @@ def test_kernel_toggle_removes_row_and_curve(window, ras_run, qtbot):
     assert "gamma" in rows
     assert window.signal.curves["gamma"].xData is not None
     qtbot.mouseClick(box, Qt.MouseButton.LeftButton, pos=QPoint(8, box.height() // 2))
+    assert st.settle_fits()  # a model change refits in the background; here at once
     rows = [model.raw(r, "kernel") for r in range(model.rowCount())]
     assert "gamma" not in rows and len(rows) == len(ModelSettings().kernels) - 1
     curve = window.signal.curves["gamma"]
     assert curve.xData is None or len(curve.xData) == 0
     assert "gamma" not in st.settings.kernels
     qtbot.mouseClick(box, Qt.MouseButton.LeftButton, pos=QPoint(8, box.height() // 2))
+    qtbot.waitUntil(lambda: not st.fits_pending, timeout=10000)  # the background refit
     assert "gamma" in [model.raw(r, "kernel") for r in range(model.rowCount())]
     assert len(window.signal.curves["gamma"].xData) == st.run.n_volumes
 
@@ -41,6 +43,7 @@ def test_contrast_edit_refits(window, ras_run, qtbot):
     qtbot.keyClicks(edit, "tap - tone")
     qtbot.keyClick(edit, Qt.Key.Key_Return)
     assert st.settings.contrast == "tap - tone"
+    assert st.settle_fits()
     # a run starts with the default model exactly: no confound columns until picked
     s = ModelSettings(contrast="tap - tone", confound_columns=())
     expected = st.analysis.fit_voxel(st.series, s, st.analysis.noise_at(st.run, st.voxel, s))
@@ -138,6 +141,7 @@ def test_other_settings_refit(window, ras_run, qtbot):
     p = window.model_panel
     t0 = st.fits.by_kernel("double-gamma").t
     p.noise.setCurrentIndex(p.noise.findData("ar1"))
+    assert st.settle_fits()
     assert st.settings.noise == "ar1" and st.fits.fits[0].rho is not None
     assert window.fits.model.raw(0, "rho") is not None  # said in the notes line
     p.highpass_none.setChecked(True)
@@ -148,6 +152,7 @@ def test_other_settings_refit(window, ras_run, qtbot):
     p.shift.stepBy(2)
     assert st.settings.onset_shift_s == pytest.approx(0.5)
     p.derivatives.setCurrentIndex(p.derivatives.findData(1))
+    assert st.settle_fits()
     assert st.settings.derivatives == 1 and window.fits.model.raw(0, "F") is not None
     assert st.settings.confound_columns == ()  # found beside the run, switched off
     assert all(
@@ -157,6 +162,7 @@ def test_other_settings_refit(window, ras_run, qtbot):
     item = p.confounds.item(1)
     item.setCheckState(Qt.CheckState.Checked)
     assert st.settings.confound_columns == ("move_b",)
+    assert st.settle_fits()
     expected = st.analysis.fit_voxel(st.series, st.settings)
     assert st.fits.by_kernel("double-gamma").t == pytest.approx(
         expected.by_kernel("double-gamma").t, rel=1e-12
@@ -246,6 +252,7 @@ def test_highpass_below_the_task_cycle_is_said_in_model(window, ras_run, qtbot):
     assert not note.isHidden()
     assert "cut-off 10 s is shorter than the task's on/off cycle (about 40 s" in text
     assert text[1:] == st.analysis.highpass_warning(st.settings)[1:] + "."
+    assert st.settle_fits()
     assert any("on/off cycle" in w for w in st.fits.warnings)  # Fits' notes too
     window.model_panel.highpass.setValue(128.0)
     assert note.isHidden() and note.text() == ""

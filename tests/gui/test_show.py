@@ -155,6 +155,7 @@ def test_each_slide_restores_the_marks_own_model_and_says_so(window, ras_run):
     assert st.marks[0].model.contrast == "tone" and st.settings == st.marks[0].model
     window.show_mode.step(1)
     assert st.settings == made  # the slide fits under the mark's own model
+    assert st.settle_fits()  # (in the background; here at once)
     assert window.fits.model.raw(0, "t") == pytest.approx(
         st.analysis.fit_voxel(st.series, made).fits[0].t, rel=1e-12
     )

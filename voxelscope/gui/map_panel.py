@@ -65,6 +65,9 @@ class MapPanel(QWidget):
         self.setObjectName("map_panel")
         self.state = state
         self.live = LiveMap(state, self)
+        # the model map's words (map, text, tooltip): its df median over a 2 mm grid's
+        # voxels took 10-40 ms of the GUI thread, three times per settings change
+        self._map_words: tuple = (None, "", "")
         lay = QVBoxLayout(self)
         lay.setContentsMargins(8, 6, 8, 6)
         lay.setSpacing(5)
@@ -357,6 +360,17 @@ class MapPanel(QWidget):
         self.open_button.setEnabled(has_run)
         self._describe(layer)
 
+    def _model_map_words(self, m) -> tuple[str, str]:
+        """The line and the tooltip describing the model map ``m`` (kept per map)."""
+        if self._map_words[0] is not m:
+            text = (
+                f"contrast '{m.contrast}', "
+                f"{NOISE_LABELS.get(m.noise, m.noise)}, "
+                f"{m.df_text()}, {m.n_voxels} voxels"
+            )
+            self._map_words = (m, text, m.describe())
+        return self._map_words[1], self._map_words[2]
+
     def _describe(self, layer) -> None:
         st = self.state
         s = st.map_settings
@@ -384,15 +398,9 @@ class MapPanel(QWidget):
         elif s.source == "difference" and self.live.other() is None:
             text = "Enable a second kernel in Model to compare kernels."
         elif isinstance(layer, LiveLayer) and st.model_map is not None:
-            m = st.model_map
-            text = (
-                f"contrast '{m.contrast}', "
-                f"{NOISE_LABELS.get(m.noise, m.noise)}, "
-                f"{m.df_text()}, {m.n_voxels} voxels"
-            )
+            text, tip = self._model_map_words(st.model_map)
             if self.live.last_seconds is not None:
                 text += f", {1000 * self.live.last_seconds:.0f} ms"
-            tip = m.describe()
         else:
             text = "computing the map…"
         self.file_label.setText(text)  # shortened with "…" to the width it gets

@@ -369,6 +369,7 @@ class LiveMap(QObject):
         self._last_change: float | None = None  # when schedule() was last called
         self._pending = False
         self._seen = self._key()
+        self._settings_seen = None  # the model settings last heard of
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
         state.overlay_changed.connect(self._on_map)
@@ -420,6 +421,7 @@ class LiveMap(QObject):
         self.cancel()
         self.cache.clear()
         self.outcome = None
+        self._settings_seen = None
         if self.state.analysis is not None and self.state.map_settings.source in (
             "model",
             "difference",
@@ -432,9 +434,12 @@ class LiveMap(QObject):
         if self.state.run is not None and self.state.analysis is not None:
             self.schedule(now=True)
 
-    def _on_settings(self, _settings) -> None:
+    def _on_settings(self, settings) -> None:
+        if settings == self._settings_seen:
+            return  # the same settings again: a refused change put them back
+        self._settings_seen = settings
         if self.state.run is not None and self.state.analysis is not None:
-            self.schedule()
+            self.schedule(at_once=True)
 
     def _on_source_layer(self, source: str) -> None:
         """Another part's overlay changed; shown again when its source is on screen."""
@@ -449,16 +454,23 @@ class LiveMap(QObject):
 
     # ------------------------------------------------------------------ jobs
 
-    def schedule(self, now: bool = False) -> None:
+    def schedule(self, now: bool = False, at_once: bool = False) -> None:
         """Recompute after the debounce delay (restarted by every further change); the
         first change after a quiet spell starts at once (the next event-loop pass), so a
-        single change is not kept waiting for changes that do not come."""
+        single change is not kept waiting for changes that do not come. With
+        ``at_once`` (a model change) that first change starts its job right here, while
+        the state's ``settings_changed`` is being sent: before the voxel's refit and the
+        other parts' updates take the GUI thread."""
         quiet = self._last_change is None or (
             time.perf_counter() - self._last_change >= self.debounce_ms / 1e3
         )
         self._last_change = time.perf_counter()
         if quiet and not self.is_busy():
             now = True
+            if at_once:
+                self._changed_at = self._last_change
+                self._start()
+                return
         if self._changed_at is None or not self.is_busy():
             self._changed_at = time.perf_counter()
         if self.job is not None:
@@ -527,7 +539,7 @@ class LiveMap(QObject):
                     return progress(part * f)
 
                 for shown in preview_planes(run, analysis, req, voxel, progress=sub):
-                    partial((req, shown))
+                    partial((req, shown, _top(shown)))  # the scale here, not on the GUI thread
 
                 def rest(f: float) -> bool | None:
                     return progress(part + (1 - part) * f)
@@ -576,13 +588,10 @@ class LiveMap(QObject):
     def _preview(self, payload) -> None:
         """Show the preview (the planes on screen) of the map being computed; the full
         map replaces it in place when done."""
-        req, data = payload
+        req, data, top = payload
         st = self.state
         if self._pending or st.map_settings.source != "model" or req != self.request():
             return
-        finite = np.abs(data[np.isfinite(data)])
-        top = float(finite.max()) if finite.size else 1.0
-        top = top if top > 0 else 1.0
         layer = LiveLayer(
             None, data, 1, (-top, top), title=f"{req.stat} · {req.kernel} (preview)",
             stat=req.stat, source="model", preview=True,
@@ -664,13 +673,22 @@ class LiveMap(QObject):
                 title += f" · {len(req.runs)} runs"
             stat = req.stat
         data = np.asarray(data, dtype=np.float32)
-        finite = np.abs(data[np.isfinite(data)])
-        top = float(finite.max()) if finite.size else 1.0
-        top = top if top > 0 else 1.0
+        top = _top(data)
         return LiveLayer(None, data, 1, (-top, top), title=title, stat=stat, source=source)
 
     def wait(self, timeout_ms: int = 20000) -> bool:
         return self.flush(timeout_ms)
+
+
+def _top(data: np.ndarray) -> float:
+    """The colour scale's end for a map: its largest finite ``|v|`` (1 when none).
+
+    >>> _top(np.array([-3.0, 2.0, np.nan])), _top(np.zeros(2))
+    (3.0, 1.0)
+    """
+    finite = np.abs(data[np.isfinite(data)])
+    top = float(finite.max()) if finite.size else 1.0
+    return top if top > 0 else 1.0
 
 
 class _NotCached(Exception):
