@@ -1058,6 +1058,22 @@ def full_bias_matrix(X: np.ndarray, lags: int) -> np.ndarray:
     return out
 
 
+_DIAGONAL_INDEX: dict[tuple[int, int], np.ndarray] = {}
+
+
+def _diagonal_index(r: int, c: int) -> np.ndarray:
+    """``col - row + r - 1`` of every entry of an (r, c) matrix, raveled (kept per shape:
+    a fit asks for the same few shapes a dozen times per kernel)."""
+    idx = _DIAGONAL_INDEX.get((r, c))
+    if idx is None:
+        if len(_DIAGONAL_INDEX) > 16:
+            _DIAGONAL_INDEX.clear()
+        rows, cols = np.indices((r, c))
+        idx = _DIAGONAL_INDEX[(r, c)] = (cols - rows + r - 1).ravel()
+        idx.flags.writeable = False
+    return idx
+
+
 def _sym_diagonals(A: np.ndarray, n: int | None = None) -> np.ndarray:
     """``d[k] = sum_i A[i, i - k] + sum_i A[i, i + k]`` (once for ``k = 0``) for
     ``k = 0..n-1``: ``tr(A' S_k)`` of an (r, c) matrix, diagonals relative to its own
@@ -1068,8 +1084,7 @@ def _sym_diagonals(A: np.ndarray, n: int | None = None) -> np.ndarray:
     """
     r, c = A.shape
     n = c if n is None else n
-    rows, cols = np.indices((r, c))
-    d = np.bincount((cols - rows + r - 1).ravel(), weights=A.ravel(), minlength=r + c - 1)
+    d = np.bincount(_diagonal_index(r, c), weights=A.ravel(), minlength=r + c - 1)
     # offset m = col - row sits at index m + r - 1
     out = np.zeros(n)
     for sign in (1, -1):
