@@ -1026,9 +1026,13 @@ def _gap_rss(R: np.ndarray, rho: np.ndarray, steps: np.ndarray) -> np.ndarray:
     return out
 
 
-def arp_block_sums(prep: PreparedDesign, data: np.ndarray, lags: int | None = None):
+def arp_block_sums(
+    prep: PreparedDesign, data: np.ndarray, lags: int | None = None, autocov: bool = True
+):
     """The one-pass sums (:class:`voxelscope.core.noise.ArpSums`) of a block ``data``
-    (n_all, V) of any layout: what a map keeps of every voxel under ``noise="arp"``."""
+    (n_all, V) of any layout: what a map keeps of every voxel under ``noise="arp"``
+    (``autocov=False``: without the residual autocovariances, which
+    :func:`voxelscope.core.noise.arp_autocov` adds later)."""
     from .noise import arp_sums
 
     data = np.asarray(data)
@@ -1041,7 +1045,7 @@ def arp_block_sums(prep: PreparedDesign, data: np.ndarray, lags: int | None = No
     if prep.keep is not None:
         data = data[prep.keep]
     Y, mean, tss, bad = working_copy(prep, data)
-    return arp_sums(prep, Y, mean, tss, bad, lags)
+    return arp_sums(prep, Y, mean, tss, bad, lags, autocov=autocov)
 
 
 def fit_sums(

@@ -598,6 +598,7 @@ def compute_map(
             BIAS_LAGS,
             ArpSums,
             ar_from_smoothed,
+            arp_autocov,
             run_or_index,
             smooth_map,
         )
@@ -607,46 +608,37 @@ def compute_map(
         n_lags = max(order, BIAS_LAGS)
         values = np.zeros((n_all, n_lags + 1))
         valid = np.zeros(n_all, dtype=bool)
-        kept: list = []  # voxel indices, block by block, in the order of ``sums``
-        sums = None  # every voxel's sums, in the order they came
+        blocks_in: list = []  # (voxel indices, sums) of every block, in the order they came
         seen = 0
 
+        def block_sums(_idx: np.ndarray, data: np.ndarray):
+            return arp_block_sums(_prep, data, n_lags, autocov=False)
+
         def store_sums(idx: np.ndarray, out) -> None:
-            nonlocal seen, sums
-            if sums is None:
-                sums = ArpSums.empty(total, out.H.shape[1], out.lags, out.v.shape[0] - 1)
-            sums.put(np.arange(seen, seen + idx.size), out)  # a slice: the workers go on
-            kept.append(idx)
-            at = run_or_index(idx)
-            values[at] = out.v.T
-            valid[at] = out.ok
+            nonlocal seen
+            blocks_in.append((idx, out))  # kept as they came: nothing copied on this thread
             seen += idx.size
             report(share * seen / total if total else share)
 
         if one_pass:  # the sums of the guessed voxels while gathering the summary
             mask = _one_pass(
-                run,
-                guess,
-                lambda _i, d: arp_block_sums(_prep, d, n_lags),
-                store_sums,
-                lambda n: None,
-                n_workers,
-                int(chunk_voxels),
+                run, guess, block_sums, store_sums, lambda n: None, n_workers, int(chunk_voxels)
             )
             in_mask = mask.reshape(-1)
-            if kept:  # only the voxels of the mask decided on the way
-                where = np.concatenate(kept)
-                inside = np.flatnonzero(in_mask[where])
-                sums = sums.take(run_or_index(inside))
-                kept[:] = [where[inside]]
-                seen = int(inside.size)
+            inside_blocks = []  # only the voxels of the mask decided on the way
+            for idx, out in blocks_in:
+                inside = in_mask[idx]
+                if inside.all():
+                    inside_blocks.append((idx, out))
+                elif inside.any():
+                    pick = np.flatnonzero(inside)
+                    inside_blocks.append((idx[pick], out.take(pick)))
+            blocks_in = inside_blocks
+            seen = sum(int(idx.size) for idx, _out in blocks_in)
             total = int(np.count_nonzero(in_mask))
         else:
             with one_blas_thread():
-                blocks = chunks()
-                _for_blocks(
-                    blocks, lambda d: arp_block_sums(_prep, d, n_lags), store_sums, n_workers
-                )
+                _for_blocks(chunks(), block_sums, store_sums, n_workers, with_index=True)
 
         def parallel(fn, items) -> list:
             # [fn(item) for item in items], on the map's workers
@@ -672,6 +664,37 @@ def compute_map(
             voxel_sizes,
         )
 
+        # pieces of about SOLVE_VOXELS voxels (consecutive blocks, joined on the workers):
+        # the residual autocovariances from the sums, then later the solves; small
+        # products over a piece cost less per voxel than over a block
+        where = np.concatenate([i for i, _o in blocks_in]) if blocks_in else np.zeros(0, int)
+        groups: list = []
+        start, cur, n_cur = 0, [], 0
+        for idx, out in blocks_in:
+            cur.append(out)
+            n_cur += int(idx.size)
+            if n_cur >= SOLVE_VOXELS:
+                groups.append((slice(start, start + n_cur), cur))
+                start, cur, n_cur = start + n_cur, [], 0
+        if cur:
+            groups.append((slice(start, start + n_cur), cur))
+        blocks_in = []
+
+        def join(group) -> ArpSums:
+            sl, outs = group
+            piece = outs[0] if len(outs) == 1 else ArpSums.concat(outs)
+            idx = where[sl]
+            arp_autocov(_prep, piece, lambda i: _working_series(run, _prep, idx[i]))
+            at = run_or_index(idx)  # each piece its own voxels: no two workers write one
+            values[at] = piece.v.T
+            valid[at] = piece.ok
+            return piece
+
+        with one_blas_thread():
+            pieces = parallel(join, groups)
+        slices = [sl for sl, _outs in groups]
+        groups = []
+
         sizes = voxel_sizes(getattr(run, "affine", np.eye(4)))
         in_mask = valid.reshape(shape) & mask
         with ThreadPoolExecutor(1, thread_name_prefix="voxelscope-map") as side:
@@ -686,10 +709,6 @@ def compute_map(
         phi_flat = np.zeros((order, n_all))
         df_flat = np.zeros(n_all)
 
-        where = np.concatenate(kept) if kept else np.zeros(0, dtype=np.int64)
-        # the solves are elementwise over voxels: pieces of SOLVE_VOXELS keep numpy's
-        # per-call cost small; each piece is a view of the sums, not a copy
-        slices = [slice(a, min(seen, a + SOLVE_VOXELS)) for a in range(0, seen, SOLVE_VOXELS)]
         phi_seen = np.zeros((order, seen))
 
         def estimate(sl: slice, _none) -> np.ndarray:
@@ -705,13 +724,13 @@ def compute_map(
             # map (noise.TauTable): the pieces share most of its points
             table = TauTable.build(_prep, phi_seen, weights, parallel=parallel)
 
-            def fit_piece(sl: slice, _none):
+            def fit_piece(sl: slice, part):
                 phi = phi_seen[:, sl]
                 idx = where[sl]
                 tau2 = table.at(phi)
                 return fit_sums(
                     _prep,
-                    sums.take(sl),
+                    part,
                     weights,
                     phi,
                     want_p=need_p,
@@ -727,9 +746,9 @@ def compute_map(
                 df_flat[at] = res.df_eff
                 store(idx, res)
 
-            _for_blocks(((sl, None) for sl in slices), fit_piece, store_piece, n_workers, True)
+            _for_blocks(zip(slices, pieces), fit_piece, store_piece, n_workers, True)
         del sm
-        sums = None
+        pieces = []
         ar_map = phi_flat.T.reshape((*shape, order)).astype(np.float32)
     else:
 
