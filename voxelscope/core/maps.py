@@ -683,6 +683,7 @@ def compute_map(
         def join(group) -> ArpSums:
             sl, outs = group
             piece = outs[0] if len(outs) == 1 else ArpSums.concat(outs)
+            outs.clear()  # the blocks go as their piece comes: memory stays at one copy
             idx = where[sl]
             arp_autocov(_prep, piece, lambda i: _working_series(run, _prep, idx[i]))
             at = run_or_index(idx)  # each piece its own voxels: no two workers write one
