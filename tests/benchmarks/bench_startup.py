@@ -11,6 +11,10 @@ both commands started as fresh processes in alternation (see ``wholeprocess.py``
   the reference: what the fit's imports cost before it reads anything.
 * Info: ``python -c "import numpy, nibabel, scipy.special"`` against the reference: what a
   fit cost before p and z of a few values stopped needing scipy.special.
+* Info: the reference with BLAS on one thread from the start (the thread-count variables
+  set before numpy loads, as ``voxelscope fit`` does) against the reference: how much of
+  the fit's ratio is OpenBLAS not starting its threads when numpy loads it; and the fit
+  against that reference (like with like on this point).
 
 Run: ``python tests/benchmarks/run.py startup``.
 """
@@ -81,6 +85,16 @@ def main() -> list[tuple]:
         floor = python_cmd("import numpy, nibabel, scipy.special")
         pair = side_by_side(floor, REFERENCE, REPEATS, env=env)
         rows.append(row("info: import numpy, nibabel, scipy.special vs the same", pair, None))
+        one = python_cmd(
+            "import os\n"
+            "from voxelscope.core.blas import THREAD_VARIABLES\n"
+            "os.environ.update(dict.fromkeys(THREAD_VARIABLES, '1'))\n"
+            "import numpy, nibabel"
+        )
+        pair = side_by_side(one, REFERENCE, REPEATS, env=env)
+        rows.append(row("info: the same with BLAS on one thread from the start", pair, None))
+        pair = side_by_side(fit, one, REPEATS, env=env)
+        rows.append(row("info: fit on the cached run vs the one-thread reference", pair, None))
     print(machine_load())
     return rows
 
