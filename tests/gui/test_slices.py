@@ -7,6 +7,7 @@ from PySide6.QtCore import QPointF, Qt
 from PySide6.QtWidgets import QApplication
 
 from voxelscope.core.numfmt import format_value as fmt
+from voxelscope.gui import slices as slices_module
 from voxelscope.gui.slices import PLANES, overlay_rgba
 
 
@@ -188,9 +189,10 @@ def test_map_overlay_and_readout(window, qtbot, ras_run):
 def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(
     window, qtbot, ras_run, monkeypatch
 ):
-    """Dragging with the left button held refits at every move (the voxel follows the
-    pointer); the state says a drag is on, so the Checks wait until the pointer rests or
-    the button is let go."""
+    """Dragging with the left button held moves the voxel at every move (the voxel follows
+    the pointer, its data at once, its fits from the background); the state says a drag
+    is on, so the Checks wait until the pointer rests or the button is let go, and the
+    fits end on the voxel where the drag ends."""
     from PySide6.QtCore import QEvent
     from PySide6.QtGui import QMouseEvent
 
@@ -235,11 +237,15 @@ def test_drag_moves_the_voxel_every_frame_and_checks_wait_for_rest(
         send(QEvent.Type.MouseMove, h, held)
         seen.append(grid.to_display(st.voxel)[view.h_axis])
         assert st.dragging
-        assert st.fits is not None and np.array_equal(st.series, st.run.timeseries(st.voxel))
+        assert np.array_equal(st.series, st.run.timeseries(st.voxel))
+        # the fits are this voxel's or none yet (never those of a voxel already left)
+        assert st.fits is None or np.array_equal(st.fits.y, st.series)
     assert checks.calls == calls  # no checks job while the pointer moves
     send(QEvent.Type.MouseButtonRelease, n_h - 1, Qt.MouseButton.NoButton)
     assert not st.dragging
     assert seen[-1] == n_h - 1 and len(set(seen)) >= n_h - 2
+    qtbot.waitUntil(lambda: st.fits is not None, timeout=10000)
+    assert np.array_equal(st.fits.y, st.run.timeseries(st.voxel))
     qtbot.waitUntil(lambda: checks.calls > calls, timeout=5000)  # let go: checked now
 
 
@@ -280,7 +286,9 @@ def test_anatomy_is_drawn_at_its_own_resolution_and_aligned(window, qtbot, ras_r
     assert f"<b>Anatomy</b> {fmt('value', data[a_ijk])}" in window.slices.readout.text()
 
 
-def test_a_tilted_anatomy_is_sampled_in_the_runs_planes(window, qtbot, ras_run, tmp_path):
+def test_a_tilted_anatomy_is_sampled_in_the_runs_planes(
+    window, qtbot, ras_run, tmp_path, monkeypatch
+):
     """An anatomy rotated 25 degrees about x against the run: no plane of its own lies in the
     run's planes, so each view samples it in the run's plane through the voxel. The anatomy
     holds a linear function of world position (trilinear sampling is exact for it), so every
@@ -322,3 +330,16 @@ def test_a_tilted_anatomy_is_sampled_in_the_runs_planes(window, qtbot, ras_run, 
                     assert image[p, q] == pytest.approx(w @ coef + 500.0, abs=1e-2), (name, p, q)
                     checked += 1
             assert checked >= 2, name
+    # back on planes seen before: the planes kept are the ones sampled, and only the last
+    # few are kept
+    first = {name: view.under.image.copy() for name, view in window.slices.views.items()}
+    for voxel in [(2, 3, 4), (5, 6, 2)]:
+        state.set_voxel(voxel)
+    for name, view in window.slices.views.items():
+        assert np.array_equal(view.under.image, first[name]), name
+        plane, _rect = view.tilted_plane(grid.to_display((5, 6, 2))[view.n_axis])
+        assert np.array_equal(view.under.image, plane), name
+    monkeypatch.setattr(slices_module, "TILTED_KEEP_BYTES", 1)
+    for k in range(3):
+        state.set_voxel((k, k, k))
+    assert all(len(v._tilted_planes) == 1 for v in window.slices.views.values())

@@ -1,5 +1,10 @@
-"""ViewerState's history: undo and redo of model changes and of the marks (Edit menu)."""
+"""ViewerState: undo and redo of model changes and of the marks (Edit menu), and the
+dragged voxel's refit off the GUI thread (newest voxel wins)."""
 
+import threading
+import time
+
+import numpy as np
 from PySide6.QtCore import Qt
 
 from voxelscope.core.marks import Mark, MarkList
@@ -140,13 +145,13 @@ def _hold_background_fits(monkeypatch, release, entered, calls=None):
 
     real = state_mod.fit_place
 
-    def held(bundles, labels, voxel, settings):
+    def held(bundles, labels, voxel, settings, **kw):
         if threading.current_thread() is not threading.main_thread():
             if calls is not None:
                 calls.append(settings)
             entered.set()
             release.wait(20)
-        return real(bundles, labels, voxel, settings)
+        return real(bundles, labels, voxel, settings, **kw)
 
     monkeypatch.setattr(state_mod, "fit_place", held)
 
@@ -198,3 +203,107 @@ def test_a_click_during_a_background_refit_wins(window, ras_run, qtbot, monkeypa
     assert st.fits is clicked and not st.fits_pending
     np.testing.assert_array_equal(st.fits.y, st.run.timeseries((3, 5, 2)))
     assert [f.t for f in st.fits.fits] == [f.t for f in _core_fits(st).fits]
+
+
+# ---------------------------------------------------------------- the dragged voxel's refit
+
+
+def _fit_here(st):
+    """The current voxel's fits as a click computes them (on this thread)."""
+    y = st.run.timeseries(st.voxel)
+    noise = st.analysis.noise_at(st.run, st.voxel, st.settings)
+    return st.analysis.fit_voxel(y, st.settings, noise)
+
+
+def _shown_matches_voxel(window, st):
+    """What Signal and Fits show belongs to the state's voxel: its data, and either its
+    own fits or none at all (while they are on their way)."""
+    y = st.run.timeseries(st.voxel)
+    assert np.array_equal(st.series, y)
+    assert np.array_equal(window.signal.data_curve.getData()[1], y)
+    model = window.fits.model
+    if st.fits is None:
+        assert st.fitting
+        for name, curve in window.signal.curves.items():
+            assert curve.getData()[1] is None or len(curve.getData()[1]) == 0, name
+        for r in range(model.rowCount()):
+            assert model.raw(r, "t") is None and model.raw(r, "estimate") is None
+        return
+    assert np.array_equal(st.fits.y, y)
+    want = _fit_here(st)
+    for r, f in enumerate(want.fits):
+        assert model.raw(r, "kernel") == f.kernel
+        t = model.raw(r, "t")  # the same numbers, from the same function
+        assert (t is None and f.t is None) or np.isclose(t, f.t, rtol=1e-12, atol=0)
+        curve = window.signal.curves[f.kernel].getData()[1]
+        assert np.allclose(curve, f.fitted, rtol=0, atol=1e-9 * np.abs(f.fitted).max())
+
+
+def test_drag_refits_in_the_background_and_never_shows_another_voxels_fit(
+    window, ras_run, qtbot, monkeypatch
+):
+    """While dragging, every frame shows the new voxel's data at once; its fits come from
+    a background job, newest voxel wins: a fit for a voxel the pointer has left is never
+    shown (each fit is slowed down here, so most are overtaken). Views are checked at
+    every change the state announces."""
+    from voxelscope.core.model import Analysis
+
+    st = _open(window, ras_run)
+    gui_thread = threading.get_ident()
+    slow = Analysis.fit_voxel
+    fitted_off_gui = []
+
+    def fit_slowly(self, y, settings, noise=None):
+        if threading.get_ident() != gui_thread:
+            fitted_off_gui.append(True)
+            time.sleep(0.03)
+        return slow(self, y, settings, noise)
+
+    monkeypatch.setattr(Analysis, "fit_voxel", fit_slowly)
+    seen = []
+
+    def check(fits):
+        seen.append(fits is not None)
+        _shown_matches_voxel(window, st)
+
+    st.fits_changed.connect(check)
+    st.set_dragging(True)
+    path = [(i, 5, 3) for i in range(1, 8)] + [(7, j, 3) for j in range(6, 10)]
+    for n, v in enumerate(path):
+        st.set_voxel(v)
+        assert st.voxel == v and np.array_equal(st.series, st.run.timeseries(v))
+        # now and then the pointer rests long enough for a fit to land
+        qtbot.wait(80 if n % 4 == 3 else 1)
+    st.set_dragging(False)
+    qtbot.waitUntil(lambda: not st.refitting and st.fits is not None, timeout=10000)
+    st.fits_changed.disconnect(check)
+    assert st.voxel == path[-1] and not st.fitting
+    _shown_matches_voxel(window, st)  # Signal and Fits end on the drag's last voxel
+    assert fitted_off_gui  # the drag's fits ran on a worker thread
+    assert any(seen) and not all(seen)  # some fits landed during the drag, not all
+    assert len(fitted_off_gui) < len(path)  # overtaken fits were cut off at a step
+
+
+def test_a_click_or_a_model_change_during_a_drag(window, ras_run, qtbot):
+    """A click while a dragged voxel's fit is on its way is fitted at once and the late
+    fit is dropped; a model change during a drag refits the voxel where the pointer is,
+    under the new model."""
+    st = _open(window, ras_run)
+    st.set_dragging(True)
+    st.set_voxel((2, 2, 2))
+    assert st.fits is None and st.fitting
+    st.set_dragging(False)
+    st.set_voxel((5, 6, 3))  # a click: fitted at once
+    assert not st.fitting and np.array_equal(st.fits.y, st.run.timeseries((5, 6, 3)))
+    shown = st.fits
+    qtbot.waitUntil(lambda: not st.refitting, timeout=10000)
+    qtbot.wait(20)
+    assert st.fits is shown  # the late fit of (2, 2, 2) was not shown
+    st.set_dragging(True)
+    st.set_voxel((4, 4, 4))
+    assert st.update_settings(noise="ols")
+    qtbot.waitUntil(lambda: not st.refitting and st.fits is not None, timeout=10000)
+    st.set_dragging(False)
+    assert np.array_equal(st.fits.y, st.run.timeseries((4, 4, 4)))
+    assert [f.t for f in st.fits.fits] == [f.t for f in _core_fits(st).fits]
+    _shown_matches_voxel(window, st)

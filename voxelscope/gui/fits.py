@@ -264,7 +264,13 @@ class FitsModel(QAbstractTableModel):
         # rho are lines under the table, and columns of the copied table
         cols = list(_BASE)
         several = self._several()
-        if several is not None:
+        if fits is None and self.state.fitting and self._rows:
+            # a dragged voxel's fit is on its way: the same rows with no numbers (never
+            # the numbers of the voxel the pointer left), so the table keeps its shape
+            cols = list(self._columns)
+            keep = ("", "kernel", "run")
+            rows = [{k: (v if k in keep else None) for k, v in r.items()} for r in self._rows]
+        elif several is not None:
             cols, rows = several
         elif fits is not None and fits.fits:
             for f in fits.fits:
@@ -289,6 +295,8 @@ class FitsModel(QAbstractTableModel):
         ]
         cells = [[self._cell(row, name) for name, _ in cols] for row in rows]
         if same_shape and rows:
+            if cells == self._cells:  # nothing new to show (a drag's next voxel, no fit yet)
+                return
             # same kernels and columns (a click): new numbers only, no reset of the view
             self._rows = rows
             self._cells = cells
@@ -608,8 +616,19 @@ class FitsPanel(QWidget):
             f"<b>Contrast</b> {esc(contrast)}&nbsp;&nbsp;·&nbsp;&nbsp;<b>Noise</b> {noise}"
             f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>High-pass</b> {hp}{shift}"
         )
-        notes = list(fits.warnings) if fits is not None else []
         st = self.state
+        if fits is None and st.fitting:
+            # a dragged voxel's fit is on its way: the model's own notes stay (the same at
+            # every voxel), the voxel's numbers and notes go until its fit arrives
+            if st.extra:
+                self.caption.setText(
+                    self.caption.text()
+                    + f"&nbsp;&nbsp;·&nbsp;&nbsp;<b>Runs</b> {len(st.bundles)}, combined by "
+                    "fixed effects"
+                )
+            self._pending_notes(analysis.design_warnings(s))
+            return
+        notes = list(fits.warnings) if fits is not None else []
         if st.run_fits:
             self.caption.setText(
                 self.caption.text()
@@ -633,3 +652,14 @@ class FitsPanel(QWidget):
             notes.append("No kernel is switched on: choose one in Model.")
         self.notes.setText("\n".join(notes))
         self.notes.setVisible(bool(notes))
+
+    def _pending_notes(self, notes: list[str]) -> None:
+        """While a fit is on its way: the line under the table empties (it keeps its
+        place, so nothing is laid out again) and the notes are the model's own."""
+        if self.noise_line.full_text():
+            self.noise_line.setText("")
+            self.noise_line.setToolTip("")
+        text = "\n".join(notes)
+        if text != self.notes.text():
+            self.notes.setText(text)
+            self.notes.setVisible(bool(notes))

@@ -8,7 +8,9 @@ are in data units or in percent signal change relative to the voxel's mean
 (``100 * (y - mean) / mean``; residuals ``100 * r / mean``), a common practice.
 
 The curves are made once per kernel and only get new data (``setData``) when the voxel or
-the model changes.
+the model changes. While the crosshair is dragged, the new voxel's data are drawn at once
+and its fitted curves and residuals when its fit arrives from the background (never the
+curves of a voxel the pointer has left).
 """
 
 from __future__ import annotations
@@ -278,6 +280,8 @@ class SignalPanel(QWidget):
         self._label_key: bool | None = None
         self._x_span: tuple[float, float] | None = None
         self._drawn: set[str] = set()  # kernels whose curves hold data
+        self._data_y: np.ndarray | None = None  # the series the data points show
+        self._data_key = None  # and how (units, left-out volumes, time span)
         self.unit_data.toggled.connect(self._units_clicked)
         state.run_changed.connect(self._on_run)
         state.settings_changed.connect(self._on_settings)
@@ -457,6 +461,7 @@ class SignalPanel(QWidget):
         if y is None:  # the place is outside this run: nothing to draw
             other = self.state.shown_run()
             self.data_curve.setData([], [])
+            self._data_y = None
             for name in self.curves:
                 self.curves[name].setData([], [])
                 self.resid_curves[name].setData([], [])
@@ -464,6 +469,7 @@ class SignalPanel(QWidget):
             self.legend.setText(html.escape(other.note if other is not None else ""))
             return
         t = self._times(run)
+        span = (float(t[0]), float(t[-1]))
         pct = self.state.units == "percent"
         mean = float(np.mean(y)) if np.all(np.isfinite(y)) else float("nan")
 
@@ -474,11 +480,18 @@ class SignalPanel(QWidget):
         ys = scale(y)
         if left.size:  # left-out volumes: hollow grey points, outside the y range
             ys = np.array(ys, dtype=float)
-            self.left_out_points.setData(t[left], ys[left])
             ys[left] = np.nan
-        else:
-            self.left_out_points.setData([], [])
-        self.data_curve.setData(t, ys, connect="finite")
+        # The same series again (a dragged voxel's fits arriving after its data, a new
+        # model at the same voxel): the points stay; setting them again costs pyqtgraph's
+        # symbols a few ms.
+        key = (pct, tuple(left.tolist()), span)
+        if y is not self._data_y or key != self._data_key:  # held: its id is not reused
+            self._data_y, self._data_key = y, key
+            if left.size:
+                self.left_out_points.setData(t[left], np.asarray(scale(y), float)[left])
+            else:
+                self.left_out_points.setData([], [])
+            self.data_curve.setData(t, ys, connect="finite")
         shown = {}
         if fits is not None:
             for f in fits.fits:
@@ -504,13 +517,16 @@ class SignalPanel(QWidget):
         if self._label_key != pct:  # axis labels re-lay out the plots: only on a change
             self._label_key = pct
             self._set_labels()
-        span = (float(t[0]), float(t[-1]))
         if self._x_span != span:
             self._x_span = span
             self.plot.setXRange(*span, padding=0.01)
         _set_y(self.plot, _span(top))
-        _set_y(self.resid, _span([*bottom, [0.0]]))
+        pending = fits is None and self.state.fitting
+        if not pending:  # while a dragged voxel's fit is on its way the residuals wait
+            _set_y(self.resid, _span([*bottom, [0.0]]))
         self._space_ticks()
+        if pending:  # the legend keeps the kernels whose curves are coming
+            shown = {str(k): None for k in self.state.settings.kernels}
         self._update_legend(shown)
 
     def _update_legend(self, shown) -> None:

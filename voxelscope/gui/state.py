@@ -5,6 +5,12 @@ setters. Data flow is one way: input event -> state -> recompute -> views. A vox
 come from :meth:`voxelscope.core.model.Analysis.fit_voxel`, the same function the command
 line uses, so the window and ``voxelscope fit`` print the same numbers.
 
+While the crosshair is dragged (:attr:`ViewerState.dragging`), a new voxel's series is
+read at once and its fit follows from the same background refit as a model change's
+(:meth:`ViewerState.refit_later`, newest wins); until it arrives ``fits`` is None
+(:attr:`ViewerState.fitting`), so no view ever shows the fits of a voxel other than
+``voxel``, and a fit for a voxel the pointer has already left is dropped.
+
 Undo and redo (Edit menu) live here too: ``ViewerState.history`` is one ``QUndoStack``.
 Every model change that goes through :meth:`ViewerState.update_settings` (contrast,
 kernels, noise, drift, confounds, ...) and every change to the marks
@@ -16,7 +22,7 @@ events file starts a new history (the old steps name another model).
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, fields, replace
 
@@ -26,7 +32,7 @@ from PySide6.QtGui import QUndoCommand, QUndoStack
 
 from voxelscope.core.bids import run_labels
 from voxelscope.core.combine import CombinedFit, combine_fits
-from voxelscope.core.errors import VoxelscopeError
+from voxelscope.core.errors import Cancelled, VoxelscopeError
 from voxelscope.core.marks import MarkList
 from voxelscope.core.model import Analysis, ModelSettings, VoxelFits
 from voxelscope.gui.loading import Layer, RunBundle
@@ -236,17 +242,26 @@ def fit_place(
     labels: list[str],
     voxel: tuple[int, int, int],
     settings: ModelSettings,
+    go_on: Callable[[], bool] | None = None,
 ) -> PlaceFit:
     """Fit ``voxel`` of the first run under ``settings`` (no Qt: runs on the GUI thread or
     in a background job); with several runs, each other run at its voxel nearest the same
     place in mm, and the runs combined per kernel. A run that cannot be fitted there is
     left out of the combination with a note.
 
+    ``go_on()`` returning False between the steps (a newer voxel or model is waiting)
+    stops the work with :class:`~voxelscope.core.errors.Cancelled`.
+
     Raises
     ------
     VoxelscopeError
         The first run's voxel cannot be read or fitted.
     """
+
+    def step() -> None:
+        if go_on is not None and not go_on():
+            raise Cancelled("a newer refit is waiting")
+
     first = bundles[0]
     run, analysis = first.run, first.analysis
     y = run.timeseries(voxel)
@@ -255,6 +270,7 @@ def fit_place(
         # under the default model: the voxel's AR(p) coefficients from its
         # neighbourhood, exactly as the map whitens it
         noise = analysis.noise_at(run, voxel, settings)
+        step()
         fits = analysis.fit_voxel(y, settings, noise)
     run_fits: list[RunFit] = []
     combined: list[CombinedFit] = []
@@ -263,6 +279,7 @@ def fit_place(
     mm = run.voxel_to_mm(voxel)
     run_fits.append(RunFit(labels[0], first, tuple(voxel), y, fits))
     for label, b in zip(labels[1:], bundles[1:]):
+        step()
         try:
             ijk = b.run.mm_to_voxel(tuple(float(v) for v in mm))
             yb = b.run.timeseries(ijk)
@@ -372,6 +389,8 @@ class ViewerState(QObject):
         self._inputs = 0  # counts opened runs, events files and added runs
         self._fits_key: tuple | None = None
         self._refit_job: BackgroundJob | None = None
+        self._refit_key: tuple | None = None  # what the running job fits
+        self._series_at: tuple | None = None  # (inputs, voxel) of ``series``
         self._refit_timer = QTimer(self)
         self._refit_timer.setSingleShot(True)
         self._refit_timer.timeout.connect(self._start_refit)
@@ -548,7 +567,26 @@ class ViewerState(QObject):
             return
         self.voxel = v
         self.voxel_changed.emit(v)
-        self.recompute()
+        if self.dragging:
+            self._drag_to(v)
+        else:
+            self.recompute()
+
+    def _drag_to(self, voxel: tuple[int, int, int]) -> None:
+        """A drag reached ``voxel``: its data now, its fits from the background (until
+        they arrive ``fits`` is None: never the fits of the voxel the pointer left)."""
+        try:
+            y = self.run.timeseries(voxel)
+        except VoxelscopeError as err:
+            self.message.emit(str(err))
+            return
+        self.series = y
+        self._series_at = (self._inputs, tuple(voxel))
+        self.fits = None
+        self.run_fits = []
+        self.combined = []
+        self.refit_later()
+        self.fits_changed.emit(None)
 
     def set_mm(self, xyz) -> None:
         """Move to the voxel nearest a world position (mm)."""
@@ -747,13 +785,28 @@ class ViewerState(QObject):
         (:class:`~voxelscope.gui.workers.BackgroundJob`); ``fits_changed`` follows.
 
         Newest wins: the changes of one event-loop pass are one refit; a refit asked
-        while one runs waits for it and its result, no longer the current voxel's and
-        model's, is dropped; a result that arrives after :meth:`recompute` already
-        showed the same voxel and model is dropped too. Until it arrives ``fits`` are
-        those of the previous model (``fits_pending`` says so).
+        while one runs waits for it (the running one stops at its next step) and its
+        result, no longer the current voxel's and model's, is dropped; a result that
+        arrives after :meth:`recompute` already showed the same voxel and model is
+        dropped too. Until it arrives ``fits`` are those of the previous model
+        (``fits_pending`` says so), or None after a drag moved the voxel (``fitting``).
         """
-        if self.run is not None:
-            self._refit_timer.start(0)
+        if self.run is None:
+            return
+        self._refit_timer.start(0)
+        if self._refit_job is not None and self._refit_key != self._fit_key():
+            self._refit_job.cancel()  # it would be dropped: stop it at its next step
+
+    @property
+    def fitting(self) -> bool:
+        """A dragged voxel's fits are on their way (``fits`` is None until they come)."""
+        return self.fits is None and self.fits_pending
+
+    def wait_refit(self, timeout_ms: int = 10000) -> bool:
+        """Wait for the running background refit's thread to end (its result still
+        comes through the event loop); True when none is running."""
+        job = self._refit_job
+        return job is None or job.wait(int(timeout_ms))
 
     @property
     def fits_pending(self) -> bool:
@@ -794,7 +847,11 @@ class ViewerState(QObject):
 
     def _apply_fit(self, key: tuple, out: PlaceFit) -> None:
         self._say_later_run_lines(self.run)
-        self.series = out.series
+        if self._series_at != key[:2] or out.series is None:
+            # the same place keeps its series object (a drag read it already): Signal
+            # then leaves its data points alone
+            self.series = out.series
+            self._series_at = key[:2]
         self.fits = out.fits
         self.run_fits = out.run_fits
         self.combined = out.combined
@@ -808,14 +865,15 @@ class ViewerState(QObject):
         bundles, labels = self.bundles, self.labels()
         voxel, settings = tuple(self.voxel), self.settings
 
-        def fn(_progress):
-            return fit_place(bundles, labels, voxel, settings)
+        def fn(progress):
+            return fit_place(bundles, labels, voxel, settings, go_on=lambda: progress(0.5))
 
         job = BackgroundJob(fn, "the voxel's fit", owner=self)
         job.done.connect(lambda out, key=key: self._refit_done(key, out))
         job.failed.connect(lambda failure, key=key: self._refit_failed(key, failure))
         job.finished.connect(lambda job=job: self._refit_finished(job))
         self._refit_job = job
+        self._refit_key = key
         job.start()
 
     def _refit_done(self, key: tuple, out: PlaceFit) -> None:
