@@ -33,6 +33,15 @@ The drag is measured at 1280x800 and 1600x1000 (and at ``--size``); beside the w
 time, the GUI thread's own CPU time (``time.thread_time``) of a frame and of the idle
 repaint, an info ratio that other processes on a loaded machine move less.
 
+A dragged voxel's fit runs in the background and is shown when it arrives, unless the
+pointer has moved on: a frame is then the move, its data and the repaint, with the fit of
+the new voxel running beside it. So that this is not hidden, every ``REST_EVERY``-th
+move the pointer rests until that voxel's fits are on screen (info row: pointer rests ->
+fits shown, against the idle repaint; those moves are not frames), and the count of
+frames that ended with their voxel's fits shown is printed. The reference repaint waits
+(untimed) for a running background fit to end, so no fit competes with it.
+With ``--drag-only`` only the drag rows are measured (before/after comparisons).
+
 Live map at 2 mm: from a model setting change (debounce as the window has it) until the
 first map for the new settings is on screen (a coarse preview, refined in place) and until
 the full map is: goal first result <= 0.3 s. Beside it, the GUI thread's own CPU time
@@ -58,6 +67,8 @@ os.environ.setdefault("QT_QPA_PLATFORM", "offscreen")
 sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
 SETTLE_PASSES = 2  # event-loop passes after a click (see settle())
+#: Every this many frames of a drag the pointer rests until the voxel's fits are shown.
+REST_EVERY = 15
 #: Window sizes the drag frame is measured at (besides ``--size``).
 DRAG_SIZES = ((1280, 800), (1600, 1000))
 GOAL_MS = 30.0
@@ -200,16 +211,38 @@ def _drag_rows(app, w, label: str, frames: int = 90) -> list[tuple]:
         app.processEvents()
     send(QEvent.Type.MouseButtonPress, point(0), held)
     app.processEvents()
+
+    def fitted_here() -> bool:
+        """The state's fits are those of its voxel (none on their way)."""
+        return st.fits is not None and not getattr(st, "fitting", False)
+
     frame_s, idle_s, voxels = [], [], set()
     frame_cpu, idle_cpu = [], []  # the GUI thread's own CPU time, less moved by load
+    rest_s, landed = [], 0
     for i in range(1, 2 * frames + 1):
+        rest = i % REST_EVERY == 0
         t0, c0 = time.perf_counter(), time.thread_time()
         send(QEvent.Type.MouseMove, point(i), held)
         for _ in range(SETTLE_PASSES):
             app.processEvents()
-        frame_s.append(time.perf_counter() - t0)
-        frame_cpu.append(time.thread_time() - c0)
+        if rest:
+            # the pointer rests on this voxel (button held): until its fit is shown
+            limit = t0 + 10.0
+            while not fitted_here() and time.perf_counter() < limit:
+                app.processEvents()
+                time.sleep(0.0002)
+            for _ in range(SETTLE_PASSES):
+                app.processEvents()
+            rest_s.append(time.perf_counter() - t0)
+        else:
+            frame_s.append(time.perf_counter() - t0)
+            frame_cpu.append(time.thread_time() - c0)
+            landed += fitted_here()
         voxels.add(st.voxel)
+        # the reference repaint runs with no fit in the background (its result, if any,
+        # waits in the queue for the next frame, as it would behind the next move)
+        if hasattr(st, "wait_refit"):
+            st.wait_refit()
         t0, c0 = time.perf_counter(), time.thread_time()
         w.repaint()
         idle_s.append(time.perf_counter() - t0)
@@ -220,10 +253,13 @@ def _drag_rows(app, w, label: str, frames: int = 90) -> list[tuple]:
     i_med, _ = _ms(idle_s[10:])
     fc_med, _ = _ms(frame_cpu[10:])
     ic_med, _ = _ms(idle_cpu[10:])
+    r_med, r_p90 = _ms(rest_s)
     print(
         f"{label}: drag, {len(voxels)} voxels visited in {2 * frames} frames; frame "
         f"median {f_med:.1f} ms (p90 {f_p90:.1f}), idle full repaint {i_med:.1f} ms; GUI "
-        f"thread CPU {fc_med:.1f} vs {ic_med:.1f} ms; {_load_line()}"
+        f"thread CPU {fc_med:.1f} vs {ic_med:.1f} ms; pointer rests -> fits shown "
+        f"{r_med:.1f} ms (p90 {r_p90:.1f}, {len(rest_s)} rests); frames ending with the "
+        f"voxel's fits shown {landed} of {len(frame_s)}; {_load_line()}"
     )
     if len(voxels) < frames // 2:
         raise RuntimeError(f"{label}: the drag did not move the crosshair ({len(voxels)} voxels)")
@@ -252,6 +288,14 @@ def _drag_rows(app, w, label: str, frames: int = 90) -> list[tuple]:
             "<= 1 when idle",
             None,
         ),
+        (
+            f"{label}: pointer rests mid-drag -> its fits shown, vs idle full repaint (info)",
+            r_med / 1e3,
+            i_med / 1e3,
+            r_med / i_med,
+            "-",
+            None,
+        ),
     ]
 
 
@@ -262,6 +306,10 @@ def _make_2mm_run(folder: Path) -> tuple[Path, Path]:
     import numpy as np
 
     shape, n, tr = (97, 115, 97), 240, 2.0
+    path = folder / "sub-mni_task-blocks_bold.nii"
+    events = folder / "sub-mni_task-blocks_events.tsv"
+    if path.is_file() and events.is_file():  # made before (--data)
+        return path, events
     rng = np.random.default_rng(4)
     g = np.ogrid[: shape[0], : shape[1], : shape[2]]
     r = sum(((ax - (s - 1) / 2) / (0.45 * s)) ** 2 for ax, s in zip(g, shape))
@@ -372,53 +420,12 @@ def _live_rows_2mm(app, w, repeats: int = 6) -> list[tuple]:
     ]
 
 
-def main(argv: list[str] | None = None) -> list[tuple]:
-    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
-    ap.add_argument("--clicks", type=int, default=120)
-    ap.add_argument("--size", default="1600x1000")
-    ap.add_argument("--live-only", action="store_true", help="only the live map's first result")
-    ap.add_argument("--repeats", type=int, default=6)
-    args = ap.parse_args([] if argv is None else argv)  # run.py calls main() bare
-    width, height = (int(v) for v in args.size.lower().split("x"))
-
+def _click_rows(app, w, n_clicks: int, width: int, height: int) -> list[tuple]:
+    """Clicks on the three views against an idle repaint and the core fit; the map rows."""
     import numpy as np
-    from PySide6.QtCore import QSettings, Qt
+    from PySide6.QtCore import Qt
     from PySide6.QtTest import QTest
-    from PySide6.QtWidgets import QApplication
 
-    app = QApplication.instance() or QApplication([])
-    import pyqtgraph as pg
-
-    from voxelscope.gui.app import install_message_filter
-
-    install_message_filter()  # the offscreen plugin's harmless size-hint notes, as the app does
-
-    pg.setConfigOptions(antialias=True)
-    from voxelscope.gui.app import DEMO_CONTRAST, demo_paths
-    from voxelscope.gui.main_window import MainWindow
-
-    d = demo_paths()
-    tmp_settings = QSettings(os.devnull, QSettings.Format.IniFormat)
-    w = MainWindow(settings=tmp_settings)
-    w.resize(width, height)
-    w.show()
-    ok = w.open_run(
-        d["run"],
-        d["events"],
-        d["confounds"],
-        d["anatomy"],
-        d["map"],
-        voxel=d["voxel"],
-        background=False,
-    )
-    if not ok:
-        print(f"could not open the demo: {w.last_error}")
-        return 2
-    w.set_contrast_text(DEMO_CONTRAST)
-    for _ in range(5):
-        app.processEvents()
-    if args.live_only:
-        return _live_only(app, w, args.repeats)
     st = w.state
     mask = st.run.mask()
     rng = np.random.default_rng(11)
@@ -451,7 +458,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
         click(views[i % 3], tuple(inside[rng.integers(len(inside))]))
     clicks, forced, idle, fits = [], [], [], []
     misses = stale = checked = 0
-    for i in range(args.clicks):
+    for i in range(n_clicks):
         target = tuple(int(v) for v in inside[rng.integers(len(inside))])
         view = views[i % 3]
         if i % 10 == 0:
@@ -489,7 +496,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     kernels = ", ".join(st.settings.kernels)
     print(
         f"voxelscope window benchmark: demo run {st.run.shape} x {st.run.n_volumes}, "
-        f"window {width}x{height} offscreen, {args.clicks} clicks, kernels: {kernels}"
+        f"window {width}x{height} offscreen, {n_clicks} clicks, kernels: {kernels}"
     )
     print(f"{'measure':44s} {'median ms':>10s} {'p90 ms':>8s}")
     print(f"{'click -> every view repainted':44s} {c_med:10.2f} {c_p90:8.2f}")
@@ -534,6 +541,61 @@ def main(argv: list[str] | None = None) -> list[tuple]:
         ("click vs repaint with no change", c_med / 1e3, i_med / 1e3, c_med / i_med, "-", None),
     ]
     rows += _map_rows(app, w)
+    return rows
+
+
+def main(argv: list[str] | None = None) -> list[tuple]:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--clicks", type=int, default=120)
+    ap.add_argument("--size", default="1600x1000")
+    ap.add_argument("--drag-only", action="store_true", help="only the drag rows")
+    ap.add_argument("--live-only", action="store_true", help="only the live map's first result")
+    ap.add_argument("--repeats", type=int, default=6)
+    ap.add_argument(
+        "--data",
+        default=None,
+        help="folder for the 2 mm run, made once and kept (default: a temporary folder)",
+    )
+    args = ap.parse_args([] if argv is None else argv)  # run.py calls main() bare
+    width, height = (int(v) for v in args.size.lower().split("x"))
+
+    from PySide6.QtCore import QSettings
+    from PySide6.QtWidgets import QApplication
+
+    app = QApplication.instance() or QApplication([])
+    import pyqtgraph as pg
+
+    from voxelscope.gui.app import install_message_filter
+
+    install_message_filter()  # the offscreen plugin's harmless size-hint notes, as the app does
+
+    pg.setConfigOptions(antialias=True)
+    from voxelscope.gui.app import DEMO_CONTRAST, demo_paths
+    from voxelscope.gui.main_window import MainWindow
+
+    d = demo_paths()
+    tmp_settings = QSettings(os.devnull, QSettings.Format.IniFormat)
+    w = MainWindow(settings=tmp_settings)
+    w.resize(width, height)
+    w.show()
+    ok = w.open_run(
+        d["run"],
+        d["events"],
+        d["confounds"],
+        d["anatomy"],
+        d["map"],
+        voxel=d["voxel"],
+        background=False,
+    )
+    if not ok:
+        print(f"could not open the demo: {w.last_error}")
+        return 2
+    w.set_contrast_text(DEMO_CONTRAST)
+    for _ in range(5):
+        app.processEvents()
+    if args.live_only:
+        return _live_only(app, w, args.repeats)
+    rows = [] if args.drag_only else _click_rows(app, w, args.clicks, width, height)
     sizes = [(width, height)] + [z for z in DRAG_SIZES if z != (width, height)]
 
     def drags(label: str) -> list[tuple]:
@@ -552,17 +614,20 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     import tempfile
 
     with tempfile.TemporaryDirectory(prefix="vxs-bench-gui-") as tmp:
-        path, events = _make_2mm_run(Path(tmp))
+        folder = Path(args.data or tmp)
+        folder.mkdir(parents=True, exist_ok=True)
+        path, events = _make_2mm_run(folder)
         t0 = time.perf_counter()
         if not w.open_run(path, events, background=False):
             raise RuntimeError(f"could not open the 2 mm run: {w.last_error}")
         w.map_panel.live.flush(120000)
         print(f"2 mm run opened and first map shown in {time.perf_counter() - t0:.1f} s")
         rows += drags("2 mm 97x115x97x240")
-        rows += _live_rows_2mm(app, w)
+        if not args.drag_only:
+            rows += _live_rows_2mm(app, w)
         w.close()
         app.processEvents()
-    for r in rows[4:]:
+    for r in rows if args.drag_only else rows[4:]:
         print(f"{r[0]:58s} {r[1] * 1e3:9.1f} ms vs {r[2] * 1e3:8.1f} ms  ratio {r[3]:.2f}")
     return rows
 

@@ -79,6 +79,18 @@ def test_rows_follow_the_order_given_and_are_copies(opened):
     _close(store.rows(flat), ref.reshape(-1, SHAPE[3])[flat])
 
 
+def test_rows_of_a_neighbourhood_follow_the_order_given(opened):
+    """A compact set of voxels (a clicked voxel's neighbourhood, as the noise model reads
+    it) in scrambled order, with a hole, gives each voxel its own series."""
+    store, ref = opened
+    box = np.argwhere(np.ones((3, 4, 3), bool)) + np.array([2, 1, 1])
+    flat = np.ravel_multi_index(box.T, SHAPE[:3]).astype(np.int64)
+    flat = np.random.default_rng(4).permutation(flat)[1:]
+    got = store.rows(flat)
+    assert got.dtype == np.float32 and got.shape == (flat.size, SHAPE[3])
+    _close(got, ref.reshape(-1, SHAPE[3])[flat])
+
+
 def test_rows_cover_the_ascending_indices(opened):
     store, ref = opened
     flat = np.flatnonzero(np.random.default_rng(2).random(SHAPE[:3]) < 0.5).astype(np.int64)
