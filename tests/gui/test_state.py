@@ -9,6 +9,7 @@ from PySide6.QtCore import Qt
 
 from voxelscope.core.marks import Mark, MarkList
 from voxelscope.core.model import ModelSettings
+from voxelscope.gui.fits import PENDING_LINE
 from voxelscope.gui.state import settings_change_words
 
 
@@ -228,6 +229,7 @@ def _shown_matches_voxel(window, st):
             assert curve.getData()[1] is None or len(curve.getData()[1]) == 0, name
         for r in range(model.rowCount()):
             assert model.raw(r, "t") is None and model.raw(r, "estimate") is None
+        assert window.fits.noise_line.full_text() in ("", PENDING_LINE)
         return
     assert np.array_equal(st.fits.y, y)
     want = _fit_here(st)

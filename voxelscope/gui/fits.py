@@ -55,6 +55,9 @@ _BASE = [
 #: stays in the tooltip and in the copied table).
 _SHORT_HEADERS = {"estimate": "est."}
 
+#: The line under the table while a dragged voxel's fit is on its way.
+PENDING_LINE = "Fitting this voxel…"
+
 #: Columns of the copied table beyond the shown ones, when some kernel has a value.
 _EXTRA_TSV = ("F", "df F", "p F", "rho")
 
@@ -654,10 +657,11 @@ class FitsPanel(QWidget):
         self.notes.setVisible(bool(notes))
 
     def _pending_notes(self, notes: list[str]) -> None:
-        """While a fit is on its way: the line under the table empties (it keeps its
+        """While a fit is on its way: the line under the table says so (it keeps its
         place, so nothing is laid out again) and the notes are the model's own."""
-        if self.noise_line.full_text():
-            self.noise_line.setText("")
+        line = "" if self.show_mode else PENDING_LINE
+        if self.noise_line.full_text() != line:
+            self.noise_line.setText(line)
             self.noise_line.setToolTip("")
         text = "\n".join(notes)
         if text != self.notes.text():
