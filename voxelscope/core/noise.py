@@ -1761,8 +1761,9 @@ def _smoothness_sample(run: Any, mask: np.ndarray) -> list[tuple[int, np.ndarray
 #: voxel; the effect on the effective df is below 0.1 % (tests/core/test_noise.py), far
 #: below its own uncertainty.
 TAU_STEP = 0.01
-#: Grid points of :class:`TauTable` computed per call of the exact sum (one batch).
-TAU_CHUNK = 4096
+#: Grid points of :class:`TauTable` computed per call of the exact sum (one batch; a
+#: map's few hundred points make several batches, so both workers take some).
+TAU_CHUNK = 128
 
 
 def _dense_limit(n_voxels: int) -> int:
