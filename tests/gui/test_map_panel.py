@@ -316,3 +316,22 @@ def test_bad_contrast_is_an_inline_error_and_starts_nothing(window, qtbot, qapp,
     for _ in range(5):
         qapp.processEvents()
     assert live.jobs_started == started and state.settings == settings
+
+
+def test_preview_planes_take_the_whole_runs_smoothness(window, ras_run, monkeypatch):
+    """Under AR(p) each preview plane's effective df uses the run's smoothness that the
+    full map uses (not an estimate from the plane alone), and runs on one worker."""
+    state, live = _open(window, ras_run)
+    req = live.request()
+    full = compute_map(state.run, state.analysis, req.settings, req.kernel)
+    given = []
+    real = mapjobs.compute_map
+
+    def spy(*args, **kwargs):
+        given.append((kwargs.get("data_fwhm_mm"), kwargs.get("workers")))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(mapjobs, "compute_map", spy)
+    mapjobs.preview_stat(state.run, state.analysis, req, state.voxel)
+    assert len(given) == len(mapjobs.PREVIEW_AXES)
+    assert all(w == 1 and tuple(f) == tuple(full.data_fwhm_mm) for f, w in given)

@@ -460,6 +460,7 @@ def compute_map(
     stats: Sequence[str] = STAT_NAMES,
     workers: int | None = None,
     tail: str = "two",
+    data_fwhm_mm: Sequence[float] | None = None,
 ) -> MapResult:
     """Fit one kernel at every voxel of a mask and return the contrast's maps.
 
@@ -493,6 +494,10 @@ def compute_map(
         next block is read; default ``min(2, cores)``. Results do not depend on it.
     tail : {"two", "positive", "negative"}
         Tail of ``p`` and ``neglog10p`` (two-sided by default; ``z`` does not depend on it).
+    data_fwhm_mm : sequence of 3 float, optional
+        AR(p) only: the run's smoothness (mm per axis) for the effective df; default
+        estimated from ``run`` (:func:`voxelscope.core.noise.run_smoothness`). A few planes
+        fitted as a run of their own (the window's preview) pass the whole run's.
 
     Returns
     -------
@@ -705,7 +710,10 @@ def compute_map(
             sm = smooth_map(values.reshape((*shape, n_lags + 1)), in_mask, run, parallel=parallel)
             del values
             sm = sm.reshape(-1, n_lags + 1)
-            fwhm_data = run_smoothness(run, _prep, mask)
+            if data_fwhm_mm is None:
+                fwhm_data = run_smoothness(run, _prep, mask)
+            else:
+                fwhm_data = tuple(float(v) for v in data_fwhm_mm)
             nu_rho = rho_df(_prep.df, sizes, fwhm_data) / edge.result().reshape(-1)
         phi_flat = np.zeros((order, n_all))
         df_flat = np.zeros(n_all)

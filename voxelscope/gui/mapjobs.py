@@ -216,7 +216,12 @@ def _plane_stat(
     The plane's voxels are read once into a run of their own, one voxel thick
     (:class:`voxelscope.core.maps.ArrayRun`, the run's voxel sizes), and that run is
     fitted by :func:`voxelscope.core.maps.compute_map`: the same fit, with every
-    whole-grid array of the map (the AR(p) sums and their smoothing) the size of a plane.
+    whole-grid array of the map (the AR(p) sums and their smoothing) the size of a plane,
+    on the job's own thread (one worker: a plane is a few blocks, and handing them to
+    worker threads cost more wall time than it saved on a loaded machine). Under AR(p)
+    the effective df takes the whole run's smoothness, as the full map does (kept per run
+    and design, so the voxel's refit and the full map share it), not an estimate from the
+    plane alone (which cost 40 % of a plane).
     """
     from voxelscope.core.maps import ArrayRun
 
@@ -238,9 +243,16 @@ def _plane_stat(
     for idx, block in run.iter_blocks(keep, block_voxels=4096):
         data[to_plane[idx]] = np.asarray(block, dtype=np.float32).T
     sub = ArrayRun(data.reshape(*thin, -1), affine=getattr(run, "affine", None), tr=run.tr)
+    fwhm = None
+    if request.settings.noise == "arp":
+        from voxelscope.core.noise import run_smoothness
+
+        prep = analysis.prepared(request.kernel, request.settings)[1].censored()
+        fwhm = run_smoothness(run, prep, mask)
     m = compute_map(
         sub, analysis, request.settings, request.kernel,
         mask=keep[index].reshape(thin), progress=progress, stats=request.stats,
+        workers=1, data_fwhm_mm=fwhm,
     )  # fmt: skip
     return np.asarray(m.stat(request.stat), dtype=np.float32).reshape(thin)[
         tuple(0 if a == axis else slice(None) for a in range(3))
