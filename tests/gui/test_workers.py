@@ -149,3 +149,51 @@ def test_owner_gone_while_running_cuts_the_results_off():
     release.set()
     assert workers.wait_for_jobs(5000)
     assert got == []
+
+
+def test_jobs_started_before_a_first_result_wait_for_it(qtbot):
+    """A job started while a ``first=True`` job has delivered nothing waits (held) until
+    that job's first partial result; a job cancelled while held ends without running."""
+    go = threading.Event()
+    ran = []
+
+    def leading(_progress, partial):
+        go.wait(5)
+        partial("plane")
+        time.sleep(0.2)
+        return "map"
+
+    lead = BackgroundJob(leading, "the map", partial=True, first=True)
+    later = BackgroundJob(lambda _p: ran.append("fit") or "fit", "the fit")
+    gone = BackgroundJob(lambda _p: ran.append("gone"), "a superseded fit")
+    order = []
+    lead.partial.connect(lambda v: order.append(v))
+    later.done.connect(lambda v: order.append(v))
+    lead.start()
+    later.start()
+    gone.start()
+    assert later.is_held() and gone.is_held() and not lead.is_held()
+    gone.cancel()
+    qtbot.wait(100)
+    assert ran == [] and later.is_held()  # nothing from the map yet: the fit waits
+    go.set()
+    qtbot.waitUntil(lambda: "fit" in order, timeout=5000)
+    assert order[0] == "plane"  # the map's first result came first
+    qtbot.waitUntil(lambda: not (lead.is_running() or later.is_running() or gone.is_running()))
+    assert ran == ["fit"]
+
+
+def test_a_held_job_starts_after_the_longest_wait(qtbot, monkeypatch):
+    """A first-result job that shows nothing for long does not keep the others waiting
+    beyond FIRST_WAIT_MS; a job of its own end releases them too."""
+    monkeypatch.setattr(workers, "FIRST_WAIT_MS", 50)
+    go = threading.Event()
+    lead = BackgroundJob(lambda _p, _partial: go.wait(5), "the map", partial=True, first=True)
+    later = BackgroundJob(lambda _p: "fit", "the fit")
+    lead.start()
+    with qtbot.waitSignal(later.done, timeout=5000):
+        later.start()
+        assert later.is_held()
+    go.set()
+    qtbot.waitUntil(lambda: not lead.is_running(), timeout=5000)
+    assert not workers._FIRSTS and not workers._HELD

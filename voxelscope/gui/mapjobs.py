@@ -559,7 +559,9 @@ class LiveMap(QObject):
                 return compute_request(run, analysis, req, progress=rest, cache=cache, extra=extra)
             return compute_request(run, analysis, req, progress=progress, cache=cache, extra=extra)
 
-        job = BackgroundJob(fn, "the model map", owner=self, partial=True)
+        # with a preview, its first plane is what the change waits for: jobs started
+        # meanwhile (the voxel's refit, the Checks) wait for it (workers.FIRST_WAIT_MS)
+        job = BackgroundJob(fn, "the model map", owner=self, partial=True, first=preview)
         job.partial.connect(self._preview)
         job.progress.connect(self.progress)
         job.done.connect(self._done)

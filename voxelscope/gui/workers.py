@@ -16,6 +16,12 @@ instead of going down.
 
 :func:`stop_jobs` and :func:`wait_for_jobs` let the window stop or finish the running jobs
 when it closes or before a screenshot.
+
+A job can be marked ``first=True``: its first result is what the user waits for (the live
+map's preview after a model change). Jobs started while such a job has delivered nothing
+yet are held until it has (its first ``partial``, or its end), at most
+:data:`FIRST_WAIT_MS`: on two cores the voxel's refit and the Checks, started by the same
+change, otherwise take the interpreter and a core from the preview.
 """
 
 from __future__ import annotations
@@ -27,7 +33,16 @@ import warnings
 from collections.abc import Callable
 from dataclasses import dataclass
 
-from PySide6.QtCore import QCoreApplication, QElapsedTimer, QObject, Qt, QThread, Signal, Slot
+from PySide6.QtCore import (
+    QCoreApplication,
+    QElapsedTimer,
+    QObject,
+    Qt,
+    QThread,
+    QTimer,
+    Signal,
+    Slot,
+)
 
 from voxelscope.core.errors import Cancelled, VoxelscopeError
 from voxelscope.gui.loading import load_bundle
@@ -46,6 +61,11 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 _JOBS: set[BackgroundJob] = set()
+
+#: The longest a job waits for a ``first=True`` job's first result (ms).
+FIRST_WAIT_MS = 400
+_FIRSTS: set[BackgroundJob] = set()  # first-result jobs that have delivered nothing yet
+_HELD: list[BackgroundJob] = []  # jobs waiting for them, in the order they were started
 
 
 #: The window's words for the remedies the core's errors name (menu items, not flags);
@@ -132,6 +152,9 @@ class _Worker(QObject):
 
     @Slot()
     def run(self) -> None:
+        if self.cancel.is_set():  # cancelled before it began (held, then superseded)
+            self.cancelled.emit()
+            return
         try:
             if self.with_partial:
                 out = self.fn(self._progress, self._partial)
@@ -163,6 +186,8 @@ class BackgroundJob(QObject):
     to the GUI thread as the ``partial`` signal. ``owner`` (default: ``parent``) is the
     object the results are for: when it is destroyed the job is cancelled and its signals
     are cut, and :func:`stop_jobs` stops the jobs owned by a window and its parts.
+    With ``first=True`` the jobs started until its first result wait for it (see the
+    module's notes).
     """
 
     progress = Signal(float)
@@ -179,10 +204,12 @@ class BackgroundJob(QObject):
         parent: QObject | None = None,
         owner: QObject | None = None,
         partial: bool = False,
+        first: bool = False,
     ):
         super().__init__(parent)
         self.owner = owner if owner is not None else parent
         self.what = what
+        self.first = bool(first)
         self._cancel = threading.Event()
         self.thread = QThread()
         self.worker = _Worker(fn, self._cancel, what, partial)
@@ -198,6 +225,9 @@ class BackgroundJob(QObject):
             # is blocked waiting for it (a queued quit would wait for the GUI's event loop)
             sig.connect(self.thread.quit, Qt.ConnectionType.DirectConnection)
         self.thread.finished.connect(self._finished)
+        if self.first:
+            for sig in (self.partial, self.done, self.failed, self.cancelled, self.finished):
+                sig.connect(self._first_result)
         self._running = False
         self._owner_link = None
         if self.owner is not None:
@@ -208,7 +238,23 @@ class BackgroundJob(QObject):
     def start(self) -> None:
         _JOBS.add(self)
         self._running = True
+        if self.first:
+            _FIRSTS.add(self)
+        elif _FIRSTS:
+            _HELD.append(self)
+            QTimer.singleShot(FIRST_WAIT_MS, _release_held)
+            return
         self.thread.start()
+
+    def is_held(self) -> bool:
+        """Started, and waiting for a first-result job (see the module's notes)."""
+        return self in _HELD
+
+    def _first_result(self, *_args) -> None:
+        if self in _FIRSTS:
+            _FIRSTS.discard(self)
+            if not _FIRSTS:
+                QTimer.singleShot(0, _release_held)  # after this result is handled
 
     def cancel(self) -> None:
         self._cancel.set()
@@ -229,10 +275,14 @@ class BackgroundJob(QObject):
         disconnect_all(
             self.progress, self.partial, self.done, self.failed, self.cancelled, self.finished
         )
+        self._first_result()  # nothing of it will be shown: held jobs need not wait
 
     def stop(self, timeout_ms: int = 10000) -> bool:
         """Detach, then wait for the worker thread to end; True when it has."""
         self.detach()
+        if self in _HELD:
+            _HELD.remove(self)
+        self._first_result()
         self.thread.quit()  # ends the thread's event loop once the work returns
         ok = self.thread.wait(int(timeout_ms))
         if ok:
@@ -248,6 +298,7 @@ class BackgroundJob(QObject):
 
     def _finished(self) -> None:
         self._running = False
+        self._first_result()
         _JOBS.discard(self)
         self._forget_owner()
         self.finished.emit()
@@ -271,6 +322,14 @@ class OpenRunJob(BackgroundJob):
         super().__init__(work, what=str(path), parent=parent)
         line = f"{path}: opening was cancelled; nothing was kept"
         self.cancelled.connect(lambda: self.failed.emit(JobFailure(Cancelled(line), line)))
+
+
+def _release_held() -> None:
+    """Start the jobs held for a first result (it came, or they waited long enough)."""
+    held = list(_HELD)
+    _HELD.clear()
+    for job in held:
+        job.thread.start()
 
 
 def disconnect_all(*signals) -> None:
@@ -325,7 +384,9 @@ def wait_for_jobs(timeout_ms: int = 20000, cancel: bool = False) -> bool:
     clock = QElapsedTimer()
     clock.start()
     app = QCoreApplication.instance()
+    _release_held()
     while _JOBS and clock.elapsed() < timeout_ms:
+        _release_held()
         for job in list(_JOBS):
             if cancel:
                 job.cancel()
