@@ -594,7 +594,7 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     for _ in range(5):
         app.processEvents()
     if args.live_only:
-        return _live_only(app, w, args.repeats)
+        return _live_only(app, w, args.repeats, args.data)
     rows = [] if args.drag_only else _click_rows(app, w, args.clicks, width, height)
     sizes = [(width, height)] + [z for z in DRAG_SIZES if z != (width, height)]
 
@@ -632,9 +632,9 @@ def main(argv: list[str] | None = None) -> list[tuple]:
     return rows
 
 
-def _live_only(app, w, repeats: int) -> list[tuple]:
+def _live_only(app, w, repeats: int, data: str | None = None) -> list[tuple]:
     """The live map's first result on the demo (no preview: the whole map is the first
-    result) and at 2 mm."""
+    result) and at 2 mm (the run made in ``data`` when given, and kept)."""
     import tempfile
 
     first, forced, _full, cpu = _first_maps(app, w, repeats, 60)
@@ -647,7 +647,9 @@ def _live_only(app, w, repeats: int) -> list[tuple]:
         ("demo: the GUI thread's CPU time until then", med(cpu), 0.3, med(cpu) / 0.3, "-", None),
     ]
     with tempfile.TemporaryDirectory(prefix="vxs-bench-gui-") as tmp:
-        path, events = _make_2mm_run(Path(tmp))
+        folder = Path(data or tmp)
+        folder.mkdir(parents=True, exist_ok=True)
+        path, events = _make_2mm_run(folder)
         if not w.open_run(path, events, background=False):
             raise RuntimeError(f"could not open the 2 mm run: {w.last_error}")
         w.map_panel.live.flush(120000)
