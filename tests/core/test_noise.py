@@ -234,15 +234,23 @@ def test_one_pass_gls_equals_statsmodels_gls_for_many_voxels(order, piece, monke
             assert float(res.t[v]) == pytest.approx(float(np.squeeze(tt.tvalue)), rel=1e-8)
 
 
+@pytest.mark.parametrize("piece", [8192, 7])
 @pytest.mark.parametrize("betas", [True, False])
-def test_one_pass_near_exact_fits_use_explicit_residuals(betas):
+def test_one_pass_near_exact_fits_use_explicit_residuals(betas, piece, monkeypatch):
     """A voxel that the design fits almost exactly (1 - R^2 ~ 1e-14): the difference
     y*'y* - b'X*'y* would cancel, so fit_sums asks for the voxel's series and whitens its
-    residuals; the variance equals statsmodels GLS to 1e-6 (its own rounding)."""
+    residuals; the variance equals statsmodels GLS to 1e-6 (its own rounding). In parts of
+    7 voxels the voxel (index 10) sits in the second part: the part asks for it by its
+    index in the whole set, for the OLS autocovariances and for the whitened fit."""
+    from voxelscope.core import noise
+
+    monkeypatch.setattr(noise, "SOLVE_PIECE", piece)
     sm = pytest.importorskip("statsmodels.api")
+    from statsmodels.tsa.stattools import acovf
+
     a, d, Y = _one_pass_case(n_vox=70)
     w = a.contrast_weights(KERNEL, ModelSettings())
-    Y[:, 3] = d.X @ np.arange(1.0, d.X.shape[1] + 1) + 1e-6 * Y[:, 4]
+    Y[:, 10] = d.X @ np.arange(1.0, d.X.shape[1] + 1) + 1e-6 * Y[:, 4]
     prep = glm.prepare(d.X)
     phi = np.tile([[0.4], [0.1]], (1, 70))
     Yc = glm.working_copy(prep, Y)[0]
@@ -252,11 +260,19 @@ def test_one_pass_near_exact_fits_use_explicit_residuals(betas):
         asked.extend(idx.tolist())
         return Yc[:, idx]
 
-    res = glm.fit_sums(prep, glm.arp_block_sums(prep, Y), w, phi, series=series, betas=betas)
-    assert 3 in asked and len(asked) < 5
+    sums = glm.arp_block_sums(prep, Y, autocov=False)
+    noise.arp_autocov(prep, sums, series)
+    assert asked == [10]  # the OLS residual autocovariances: explicit residuals
+    r = sm.OLS(Y[:, 10], d.X).fit().resid
+    ref = acovf(r, adjusted=False, demean=False, fft=False, nlag=sums.lags)[: sums.lags + 1] * T
+    M = noise.design_bias_matrix(prep, sums.lags)
+    np.testing.assert_allclose(M @ sums.v[:, 10], ref, rtol=1e-6, atol=1e-6 * ref[0])
+    asked.clear()
+    res = glm.fit_sums(prep, sums, w, phi, series=series, betas=betas)
+    assert 10 in asked and len(asked) < 5
     Sigma = toeplitz(arma_acf([1, -0.4, -0.1], [1], T))
-    tt = sm.GLS(Y[:, 3], d.X, sigma=Sigma).fit().t_test(w)
-    assert float(res.variance[3]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-6)
+    tt = sm.GLS(Y[:, 10], d.X, sigma=Sigma).fit().t_test(w)
+    assert float(res.variance[10]) == pytest.approx(float(np.squeeze(tt.sd)) ** 2, rel=1e-6)
 
 
 def test_batched_cholesky_solve_equals_numpy():

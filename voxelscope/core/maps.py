@@ -351,8 +351,14 @@ def _for_blocks(chunks, work, store, n_workers: int, with_index: bool = False) -
                 fut.cancel()
 
 
-#: Voxels per batched solve of a one-pass AR(p) map (from the sums, not the data).
-SOLVE_VOXELS = 8192  # the solves themselves go in pieces of noise.SOLVE_PIECE
+#: Fewest voxels per piece of a one-pass AR(p) map's work after the pass (from the sums,
+#: not the data). A map's voxels go in about one piece per worker: each step of a piece
+#: is a few hundred NumPy calls on whole rows of the piece, and pieces of a few thousand
+#: voxels spent more time taking turns at the interpreter lock than computing (measured
+#: on 2 cores, 163,840 voxels: the steps after the pass took 1.1x the time of one worker
+#: on two with pieces of 8,192 voxels, 0.6x with two pieces). Inside a piece the solves
+#: and autocovariances go in cache-sized parts of noise.SOLVE_PIECE voxels.
+SOLVE_VOXELS = 8192
 
 
 def _working_series(run: Any, prep: Any, flat_idx: np.ndarray) -> np.ndarray:
@@ -669,16 +675,17 @@ def compute_map(
             voxel_sizes,
         )
 
-        # pieces of about SOLVE_VOXELS voxels (consecutive blocks, joined on the workers):
+        # about one piece per worker (consecutive blocks, joined on the workers):
         # the residual autocovariances from the sums, then later the solves; small
         # products over a piece cost less per voxel than over a block
         where = np.concatenate([i for i, _o in blocks_in]) if blocks_in else np.zeros(0, int)
+        piece_voxels = max(SOLVE_VOXELS, -(-where.size // n_workers))
         groups: list = []
         start, cur, n_cur = 0, [], 0
         for idx, out in blocks_in:
             cur.append(out)
             n_cur += int(idx.size)
-            if n_cur >= SOLVE_VOXELS:
+            if n_cur >= piece_voxels:
                 groups.append((slice(start, start + n_cur), cur))
                 start, cur, n_cur = start + n_cur, [], 0
         if cur:
