@@ -81,7 +81,7 @@ def test_rows_follow_the_order_given_and_are_copies(opened):
 
 def test_rows_of_a_neighbourhood_follow_the_order_given(opened):
     """A compact set of voxels (a clicked voxel's neighbourhood, as the noise model reads
-    it) in scrambled order, with a hole, gives each voxel its own series."""
+    it) in shuffled order, with a hole, gives each voxel its own series."""
     store, ref = opened
     box = np.argwhere(np.ones((3, 4, 3), bool)) + np.array([2, 1, 1])
     flat = np.ravel_multi_index(box.T, SHAPE[:3]).astype(np.int64)

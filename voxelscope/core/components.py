@@ -176,13 +176,13 @@ def largest_component(mask: np.ndarray, connectivity: int = 26) -> np.ndarray:
 def fill_holes(mask: np.ndarray) -> np.ndarray:
     """``mask`` with every enclosed hole filled.
 
-    A hole is a 6-connected part of the False voxels that does not reach the faces of
+    A hole is a 6-connected part of the False voxels that does not reach the outer sides of
     the grid (what ``scipy.ndimage.binary_fill_holes`` fills with its default structure).
 
     Examples
     --------
     >>> m = np.ones((3, 5, 3), bool); m[1, 1, 1] = False  # a hole
-    >>> m[1, 4, 1] = False  # ... and a dent in a face: not a hole
+    >>> m[1, 4, 1] = False  # ... and a dent in an outer side: not a hole
     >>> int((fill_holes(m) & ~m).sum())
     1
     """
