@@ -771,7 +771,7 @@ def arp_solve(
         w = min(V, part)
         A = np.empty((q, q + 1, w))
         tmp = np.empty((q + 1, w))
-    # piece by piece, every step of a piece on arrays that stay in the processor's cache
+    # part by part, every step of a part on arrays that stay in the processor's cache
     for a in range(0, V, part):
         b = min(V, a + part)
         sl = slice(a, b)
@@ -788,7 +788,7 @@ def arp_solve(
         if want_cov:
             gv = np.empty((q, b - a))
         else:
-            if b - a < w:  # the last, shorter piece
+            if b - a < w:  # the last, shorter part
                 w = b - a
                 A = np.empty((q, q + 1, w))
                 tmp = np.empty((q + 1, w))
