@@ -279,7 +279,8 @@ def test_key_reads_the_header_as_the_stream_does(tmp_path, monkeypatch, member_b
     raw = nib.Nifti1Image(data, np.eye(4)).to_bytes()
     path = tmp_path / "m_bold.nii.gz"
     if member_bytes is None:
-        path.write_bytes(zlib.compress(raw, wbits=31))
+        c = zlib.compressobj(wbits=31)
+        path.write_bytes(c.compress(raw) + c.flush())
     else:
         _multi_member(path, raw, member_bytes)
     layout = open_run(path, use_cache=False)._store.layout
