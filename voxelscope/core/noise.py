@@ -1172,6 +1172,13 @@ _SEGMENT = 16
 #: tests/core/test_noise.py holds 1e-9 against the full sequence), far below every other
 #: rounding of the estimate; 1e-13 cost about 30 % more lags of the recursion.
 IMPLIED_TOL = 1e-10
+#: The same for every step of the defect correction but its last. A step's error in the
+#: implied values reaches the estimate damped by the later steps (each step shrinks the
+#: defect about five-fold: measured on AR(1) noise with coefficients 0-0.7, largest defect
+#: 4.5e-2, 9.3e-3, 2.0e-3, 4.5e-4 after steps 1-4), so 1e-7 there moves the estimate by
+#: about 1e-8, four orders below what the last step leaves; it saves about a third of the
+#: early steps' lags.
+EARLY_TOL = 1e-7
 
 
 def _implied(
@@ -1291,17 +1298,19 @@ def ar_from_smoothed(
         prep.memo[key] = F
     valid = values[0] > 0
     Minv = _inverse(M)
-    buf = np.empty((_SEGMENT + order + 1) * min(chunk, values.shape[1]))
-    phi_all = np.zeros((order, values.shape[1]))
-    rho_all = np.zeros((order, values.shape[1]))
-    for a in range(0, values.shape[1], chunk):
+    V = values.shape[1]
+    buf = np.empty((_SEGMENT + order + 1) * min(chunk, V))
+    phi_all = np.zeros((order, V))
+    rho_all = np.zeros((order, V))
+    for a in range(0, V, chunk):
         sl = slice(a, a + chunk)
         ro = rho_obs[:, sl]
         rho = ro.copy()
         phi = ar_from_autocorr(rho, order)
-        for _ in range(REFINE_STEPS):
+        for step in range(REFINE_STEPS):
             rho = _stationary_rho(phi, rho)  # the model's first p autocorrelations
-            implied = _ratio(Minv @ _implied(phi, rho, F, buf=buf))[:order]
+            tol = IMPLIED_TOL if step == REFINE_STEPS - 1 else EARLY_TOL
+            implied = _ratio(Minv @ _implied(phi, rho, F, tol, buf))[:order]
             rho = np.clip(rho + (ro - implied), -REFLECTION_LIMIT, REFLECTION_LIMIT)
             phi = ar_from_autocorr(rho, order)
         rho = _stationary_rho(phi, rho)
