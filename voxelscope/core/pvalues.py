@@ -371,6 +371,32 @@ def z_from_t(t: np.ndarray | float, df: np.ndarray | float) -> np.ndarray:
     return np.copysign(z, t).reshape(shape)
 
 
+def _few_log_p(t: np.ndarray, d: np.ndarray, bad: np.ndarray, tail: str) -> np.ndarray:
+    """:func:`log_p_from_t` for :data:`FEW` values, one at a time with the math module (the
+    same steps, without NumPy's per-call cost: a fit's p for one voxel took 55-86 us, most
+    of it in array calls around a 6-32 us computation)."""
+    out = []
+    for v, df, b in zip(t.tolist(), d.tolist(), bad.tolist()):
+        at = abs(v)
+        central = math.nan
+        if b or math.isnan(v):
+            log_lower = math.nan
+        elif math.isinf(v):
+            log_lower = -math.inf
+        else:
+            log_lower, central = _t_parts(at, df)
+        if tail == "two":
+            if at < 1.0 and not b:  # near t = 0, p = 1 - P(|T| <= |t|), via log1p
+                out.append(math.log1p(-central) if central < 1.0 else -math.inf)
+            else:
+                out.append(min(log_lower + _LN2, 0.0))
+        elif (v > 0) if tail == "positive" else (v < 0):
+            out.append(log_lower)
+        else:  # the far side: 1 - the small tail (log_lower <= log 1/2)
+            out.append(math.log1p(-math.exp(log_lower)))
+    return np.array(out, dtype=np.float64)
+
+
 def log_p_from_t(t: np.ndarray | float, df: np.ndarray | float, tail: str = "two") -> np.ndarray:
     """Natural log of the p value of t for ``tail`` (``two``, ``positive``, ``negative``).
 
@@ -381,6 +407,8 @@ def log_p_from_t(t: np.ndarray | float, df: np.ndarray | float, tail: str = "two
     shape = np.shape(t)
     t = np.asarray(t, dtype=np.float64).reshape(-1)
     d, bad = _dfs(df, t.shape)
+    if t.size <= FEW:
+        return _few_log_p(t, d, bad, tail).reshape(shape)
     log_lower = log_t_lower_tail(t, np.where(bad, 0.0, d))
     if tail == "two":
         out = np.minimum(log_lower + math.log(2.0), 0.0)
