@@ -202,23 +202,19 @@ def _t_parts(at: float, df: float) -> tuple[float, float]:
     return math.log1p(-central) - _LN2, central
 
 
+def _parts(v: float, df: float) -> tuple[float, float]:
+    """:func:`_t_parts` of one t (either sign; NaN ``df`` where it is not valid): NaN for a
+    NaN t or a df that is not positive, ``-inf`` (no central part) for an infinite t."""
+    if math.isnan(v) or not df > 0:
+        return math.nan, math.nan
+    if math.isinf(v):
+        return -math.inf, math.nan
+    return _t_parts(abs(v), df)
+
+
 def _few_log_lower(at: np.ndarray, df: np.ndarray | float) -> np.ndarray:
-    out = np.empty(at.shape)
     dfs = np.broadcast_to(np.asarray(df, dtype=np.float64), at.shape).tolist()
-    for i, v in enumerate(at.tolist()):
-        if math.isnan(v) or not dfs[i] > 0:
-            out[i] = math.nan
-        elif math.isinf(v):
-            out[i] = -math.inf
-        else:
-            out[i] = _t_parts(v, dfs[i])[0]
-    return out
-
-
-def _few_central(at: np.ndarray, df: np.ndarray | float) -> np.ndarray:
-    """``P(|T| <= |t|)`` for ``|t| < 1``, where the central part is the smaller one."""
-    dfs = np.broadcast_to(np.asarray(df, dtype=np.float64), at.shape).tolist()
-    return np.array([_t_parts(v, d)[1] for v, d in zip(at.tolist(), dfs)], dtype=np.float64)
+    return np.array([_parts(v, d)[0] for v, d in zip(at.tolist(), dfs)], dtype=np.float64)
 
 
 _HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
@@ -377,17 +373,12 @@ def _few_log_p(t: np.ndarray, d: np.ndarray, bad: np.ndarray, tail: str) -> np.n
     of it in array calls around a 6-32 us computation)."""
     out = []
     for v, df, b in zip(t.tolist(), d.tolist(), bad.tolist()):
-        at = abs(v)
-        central = math.nan
-        if b or math.isnan(v):
-            log_lower = math.nan
-        elif math.isinf(v):
-            log_lower = -math.inf
-        else:
-            log_lower, central = _t_parts(at, df)
+        log_lower, central = _parts(v, math.nan if b else df)
         if tail == "two":
-            if at < 1.0 and not b:  # near t = 0, p = 1 - P(|T| <= |t|), via log1p
-                out.append(math.log1p(-central) if central < 1.0 else -math.inf)
+            # near t = 0, p = 1 - P(|T| <= |t|) via log1p, where the central part was the
+            # one computed (a df below 1 gives the tail there)
+            if abs(v) < 1.0 and central < 1.0:
+                out.append(math.log1p(-central))
             else:
                 out.append(min(log_lower + _LN2, 0.0))
         elif (v > 0) if tail == "positive" else (v < 0):
@@ -415,14 +406,11 @@ def log_p_from_t(t: np.ndarray | float, df: np.ndarray | float, tail: str = "two
         # near t = 0, p = 1 - P(|T| <= |t|): keep its relative precision via log1p
         small = (np.abs(t) < 1.0) & ~bad
         if np.any(small):
+            from scipy import special
+
             ts = np.abs(t[small])
             ds = d[small]
-            if t.size <= FEW:
-                central = _few_central(ts, ds)
-            else:
-                from scipy import special
-
-                central = special.betainc(0.5, 0.5 * ds, ts * ts / (ds + ts * ts))
+            central = special.betainc(0.5, 0.5 * ds, ts * ts / (ds + ts * ts))
             out[small] = np.log1p(-central)
         return out.reshape(shape)
     # one-sided: the small tail where t points that way, else 1 - the small tail
