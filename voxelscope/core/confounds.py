@@ -227,14 +227,32 @@ class Confounds:
         )
 
     def missing_warnings(self, columns: Sequence[str] | None = None) -> list[str]:
-        """One line per chosen column that had leading empty or ``n/a`` cells."""
+        """One line per number of leading empty or ``n/a`` cells among the chosen columns
+        (a pipeline's derivative and power columns all start with one: 24 motion columns
+        gave 12 lines, one each, before), naming the columns.
+
+        >>> import io
+        >>> c = parse_confounds(io.StringIO("a\\tb\\tc\\nn/a\\tn/a\\t1\\n1\\t2\\t3\\n"), "c.tsv")
+        >>> c.missing_warnings()
+        ["c.tsv: 2 columns ('a', 'b'): 1 leading n/a cell(s) each set to 0"]
+        """
         columns = self.file_columns if columns is None else columns
-        out = []
+        by_count: dict[int, list[str]] = {}
         for c in columns:
             if c in self.names and self.leading_missing:
                 k = self.leading_missing[self.names.index(c)]
                 if k:
-                    out.append(f"{self.source}: column '{c}': {k} leading n/a cell(s) set to 0")
+                    by_count.setdefault(k, []).append(c)
+        out = []
+        for k, names in sorted(by_count.items()):
+            if len(names) == 1:
+                out.append(f"{self.source}: column '{names[0]}': {k} leading n/a cell(s) set to 0")
+                continue
+            shown = ", ".join(f"'{c}'" for c in names)
+            out.append(
+                f"{self.source}: {len(names)} columns ({shown}): "
+                f"{k} leading n/a cell(s) each set to 0"
+            )
         return out
 
     def check_rows(self, n_volumes: int) -> None:
