@@ -531,8 +531,12 @@ def arp_sums(
             H[d, closed] += D["shift_e"][d - 1] @ ends
     acy = np.empty((P + 1, V))
     acy[0] = tss
-    for d in range(1, P + 1):
-        acy[d] = np.einsum("ij,ij->j", Y[d:], Y[: n - d])
+    loops = _loops(V) if Y.flags.c_contiguous else None
+    if loops is not None:  # all lags in one pass over the block
+        loops.lag_products(Y, P, acy)
+    else:
+        for d in range(1, P + 1):
+            acy[d] = np.einsum("ij,ij->j", Y[d:], Y[: n - d])
     bad = np.zeros(V, dtype=bool) if bad is None else np.asarray(bad, dtype=bool)
     L = max(P, BIAS_LAGS)
     s = ArpSums(
@@ -626,6 +630,44 @@ def _boundary(C: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return top, bot
 
 
+#: Smallest batch of voxels that goes to the compiled loops (:mod:`voxelscope.core.loops`):
+#: a map's pieces are far larger; a single fit (a few voxels) stays in NumPy and never
+#: imports numba.
+LOOP_VOXELS = 1024
+_LOOPS: list = []
+
+
+def _loops(n_voxels: int) -> Any:
+    """The compiled loops' module for a batch of ``n_voxels``, or None: NumPy then.
+
+    None below :data:`LOOP_VOXELS`, when the environment sets ``VOXELSCOPE_COMPILED=0`` (to
+    compare or to rule the loops out), or when numba does not import (said once on
+    stderr).
+
+    >>> _loops(1) is None
+    True
+    """
+    if n_voxels < LOOP_VOXELS:
+        return None
+    if not _LOOPS:
+        import os
+
+        got = None
+        if os.environ.get("VOXELSCOPE_COMPILED", "1") != "0":
+            try:
+                from . import loops as got
+            except Exception as exc:  # pragma: no cover - numba is a dependency
+                import sys
+
+                print(
+                    f"voxelscope: numba did not load ({exc}); maps run their AR(p) loops in"
+                    " NumPy, slower (reinstall numba to get them back)",
+                    file=sys.stderr,
+                )
+        _LOOPS.append(got)
+    return _LOOPS[0]
+
+
 def _bordered_cholesky(A: np.ndarray, tmp: np.ndarray | None = None) -> np.ndarray:
     """Cholesky factor of a batch of symmetric positive definite matrices, with forward
     substitution of right-hand sides on the way, in place, voxels last.
@@ -643,6 +685,9 @@ def _bordered_cholesky(A: np.ndarray, tmp: np.ndarray | None = None) -> np.ndarr
     [[2.0, 1.0, 1.0], [0.0, 1.414214, 0.0]]
     """
     q, width, V = A.shape
+    loops = _loops(V)
+    if loops is not None and A.flags.c_contiguous:
+        return loops.bordered_cholesky(A)
     if tmp is None:
         tmp = np.empty((width, V))
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -749,7 +794,8 @@ def arp_solve(
     cs = c / norms
     part = _solve_part(q)
     betas = betas or want_cov
-    Bs = np.empty((q, V)) if betas else np.full((q, V), np.nan)
+    # betas of every voxel, or (a map) only of the near-exact fits, allocated when one comes
+    Bs = np.empty((q, V)) if betas else None
     cvar = np.empty(V)
     zz = np.empty(V)
     yy = np.empty(V)
@@ -767,7 +813,6 @@ def arp_solve(
         if columns is None:
             columns = D[key] = _gram_columns(basis, q, perm)
         cr = cs[nz]
-        ends_p = np.ascontiguousarray(ends.T[perm])
         w = min(V, part)
         A = np.empty((q, q + 1, w))
         tmp = np.empty((q + 1, w))
@@ -780,25 +825,24 @@ def arp_solve(
         g = np.stack([np.einsum("kv,kv->v", cp[: p + 1 - d], cp[d:]) for d in range(p + 1)])
         top, bot = _boundary(Cp, g)
         # X*'y* (q, w) and y*'y* (w,): the band Toeplitz part, then the first and last p rows
-        H = s.H[:, :, sl] if want_cov else s.H[:, perm, sl]
+        H = s.H[:, :, sl]  # in the design's order; the Cholesky's order is taken below
         head, tail = s.head[:p, sl], s.tail[P - p :, sl]
         Eh = np.concatenate(
             [np.einsum("tuv,uv->tv", top, head), np.einsum("tuv,uv->tv", bot, tail)]
         )
-        if want_cov:
-            gv = np.empty((q, b - a))
-        else:
-            if b - a < w:  # the last, shorter part
-                w = b - a
-                A = np.empty((q, q + 1, w))
-                tmp = np.empty((q + 1, w))
-            gv = A[:, q]  # X*'y* in the order perm, where the Cholesky wants it
+        gv = np.empty((q, b - a))
+        if not want_cov and b - a < w:  # the last, shorter part
+            w = b - a
+            A = np.empty((q, q + 1, w))
+            tmp = np.empty((q + 1, w))
         np.multiply(g[0], H[0], out=gv)
         y2 = g[0] * s.acy[0, sl]
         for d in range(1, p + 1):
             gv += g[d] * H[d]
             y2 += 2.0 * g[d] * s.acy[d, sl]
-        gv += (ends.T if want_cov else ends_p) @ Eh
+        gv += ends.T @ Eh
+        if not want_cov:
+            np.take(gv, perm, axis=0, out=A[:, q])  # X*'y* in the order perm, for the Cholesky
         y2 += np.einsum("tv,tv->v", np.concatenate([head, tail]), Eh)
         yy[sl] = y2
         # X*'X* (q, q, w) = basis @ (g, top, bot): one product, then the solve
@@ -825,10 +869,15 @@ def arp_solve(
             rw = yy[sl] - zz[sl]
             near = np.flatnonzero(~(rw > RSS_GUARD * yy[sl]))
             if near.size:
+                if Bs is None:
+                    Bs = np.full((q, V), np.nan)
                 Bs[perm[:, None], a + near] = _back_substitute(A[:, :, near], z[:, near])
     rss_w = yy - zz
     close = np.flatnonzero(~(rss_w > RSS_GUARD * yy))
-    B = Bs / norms[:, None] if betas else Bs[:, close] / norms[:, None]
+    if betas:
+        B = Bs / norms[:, None]
+    else:  # the near-exact fits are exactly the close ones (the same test of rss_w)
+        B = np.empty((q, 0)) if Bs is None else Bs[:, close] / norms[:, None]
     if close.size and series is not None:
         Rc = series(close) - prep.X @ (B[:, close] if betas else B)
         Rwc = whiten(C[close], Rc)
@@ -1299,6 +1348,17 @@ def ar_from_smoothed(
     valid = values[0] > 0
     Minv = _inverse(M)
     V = values.shape[1]
+    loops = _loops(V) if order == 2 and F.shape[0] == 3 and F.shape[1] > 3 else None
+    if loops is not None:  # the same steps, compiled (voxelscope.core.loops)
+        phi_all = np.empty((order, V))
+        rho_all = np.empty((order, V))
+        loops.refine_ar2(
+            np.ascontiguousarray(rho_obs), np.ascontiguousarray(Minv), np.ascontiguousarray(F.T),
+            REFINE_STEPS, EARLY_TOL, IMPLIED_TOL, _SEGMENT, REFLECTION_LIMIT, phi_all, rho_all,
+        )  # fmt: skip
+        phi_all[:, ~valid] = 0.0
+        rho_all[:, ~valid] = 0.0
+        return phi_all, rho_all
     buf = np.empty((_SEGMENT + order + 1) * min(chunk, V))
     phi_all = np.zeros((order, V))
     rho_all = np.zeros((order, V))
