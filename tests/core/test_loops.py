@@ -163,3 +163,31 @@ def test_lag_products_equal_the_sums_they_stand_for(monkeypatch):
     _numpy_only(monkeypatch)
     ref = noise.arp_sums(prep, Yc, mean, tss, bad, autocov=False).acy
     np.testing.assert_allclose(got, ref, rtol=1e-12)
+
+
+def test_gram_coefficients_equal_the_filters_they_come_from():
+    """The compiled (g, top, bottom) of AR(2) voxels equal those of whitening_filter and
+    _boundary to 1e-14; W'W built from them (the band Toeplitz part plus the corrections
+    at both ends) is the inverse of the AR(2) covariance from statsmodels' arma_acf, up to
+    the innovation variance."""
+    from scipy.linalg import toeplitz
+
+    rng = np.random.default_rng(15)
+    V = 3000
+    phi = _ar2(rng, V)
+    got = loops.gram_coefficients_ar2(phi, np.empty((11, V)))
+    C = noise.whitening_filter(phi)
+    cp = C[:, 2, :].T
+    g = np.stack([np.einsum("kv,kv->v", cp[: 3 - d], cp[d:]) for d in range(3)])
+    top, bot = noise._boundary(C, g)
+    ref = np.concatenate([g, top.reshape(4, -1), bot.reshape(4, -1)])
+    np.testing.assert_allclose(got, ref, rtol=1e-14, atol=1e-14)
+    n = 12
+    for v in (0, 1500, 2999):
+        gv, t, b = got[:3, v], got[3:7, v].reshape(2, 2), got[7:, v].reshape(2, 2)
+        WtW = toeplitz(np.r_[gv, np.zeros(n - 3)])
+        WtW[:2, :2] += t
+        WtW[n - 2 :, n - 2 :] += b
+        acf = arma_acf(np.r_[1, -phi[:, v]], [1], n)
+        K = WtW @ toeplitz(acf)
+        np.testing.assert_allclose(K / K[0, 0], np.eye(n), rtol=0, atol=1e-9)

@@ -26,7 +26,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["bordered_cholesky", "lag_products", "refine_ar2"]
+__all__ = ["bordered_cholesky", "gram_coefficients_ar2", "lag_products", "refine_ar2"]
 
 # nogil: the map's workers run these side by side; error_model="numpy": a division by zero
 # gives inf or NaN as in NumPy instead of raising; cache: compiled once per install.
@@ -46,6 +46,49 @@ def lag_products(Y: np.ndarray, lags: int, out: np.ndarray) -> np.ndarray:  # pr
         for d in range(1, min(lags, t) + 1):
             for v in range(V):
                 out[d, v] += Y[t, v] * Y[t - d, v]
+    return out
+
+
+@numba.njit(**_OPTIONS)
+def gram_coefficients_ar2(phi: np.ndarray, out: np.ndarray) -> np.ndarray:  # pragma: no cover
+    """What ``noise.arp_solve`` builds ``X*'X*`` from, for AR(2) voxels ``phi`` (2, V):
+    ``out`` (11, V) holds ``g_0..g_2`` (the autocovariances of the whitening filter's
+    steady row), then the 2 x 2 corrections at the start (``top``) and at the end
+    (``bot``), row-major, as ``noise.whitening_filter`` and ``noise._boundary`` give them.
+
+    The filter (step-down recursion, prediction errors relative to the process variance):
+    rows ``[s0]``, ``[s1, -k1 s1]``, ``[1, -phi1, -phi2]`` with ``k1 = phi1 / (1 - phi2)``,
+    ``s0 = sqrt(err2)``, ``s1 = sqrt(err2 / err1)``.
+    """
+    V = phi.shape[1]
+    for v in range(V):
+        a1 = phi[0, v]
+        a2 = phi[1, v]
+        k1 = (a1 + a2 * a1) / (1.0 - a2 * a2)
+        err1 = 1.0 - k1 * k1
+        err2 = err1 * (1.0 - a2 * a2)
+        s0 = np.sqrt(err2)
+        s1 = np.sqrt(err2 / err1)
+        w1 = k1 * -s1  # row 1: [s1, w1]
+        c1 = a1 * -1.0  # the steady row: [1, c1, c2]
+        c2 = a2 * -1.0
+        g0 = 1.0 + c1 * c1 + c2 * c2
+        g1 = c1 + c1 * c2
+        g2 = c2
+        # the first four rows of W: W[0] = (s0), W[1] = (w1, s1), W[2] = (c2, c1, 1),
+        # W[3] = (0, c2, c1, 1); top[a, b] = sum_t W[t, a] W[t, b] - g[|a - b|]
+        t01 = w1 * s1 + c2 * c1 - g1
+        out[0, v] = g0
+        out[1, v] = g1
+        out[2, v] = g2
+        out[3, v] = s0 * s0 + w1 * w1 + c2 * c2 - g0
+        out[4, v] = t01
+        out[5, v] = t01
+        out[6, v] = s1 * s1 + c1 * c1 + c2 * c2 - g0
+        out[7, v] = -(c2 * c2)
+        out[8, v] = -(c2 * c1)
+        out[9, v] = -(c1 * c2)
+        out[10, v] = -(c1 * c1) - c2 * c2
     return out
 
 

@@ -776,7 +776,8 @@ def arp_solve(
     B : (q, V) betas of the working copy (None when ``betas`` is False: a map needs only
     the contrast); cov : (V, q, q) ``(X*'X*)^-1`` (None unless ``want_cov``); cvar : (V,)
     ``c' (X*'X*)^-1 c``; rss_w : (V,) the whitened residual sum of squares; C : (V, p+1,
-    p+1) the whitening filters; cb : (V,) ``c' B``.
+    p+1) the whitening filters (None when a batch of AR(2) voxels without ``want_cov``
+    took the compiled loops: a map keeps no filters); cb : (V,) ``c' B``.
     """
     phi = np.asarray(phi, dtype=np.float64)
     if phi.ndim == 1:
@@ -790,7 +791,11 @@ def arp_solve(
     q = Xs.shape[1]
     V = phi.shape[1]
     basis, ends = _normal_basis(D, p)
-    C = whitening_filter(phi)
+    # X*'X* from (g, top, bottom) per voxel: compiled for a map's AR(2) batch, which then
+    # needs no filters (voxelscope.core.loops), else from the filters part by part
+    loops = _loops(V) if p == 2 and not want_cov else None
+    coef_all = None if loops is None else loops.gram_coefficients_ar2(phi, np.empty((11, V)))
+    C = whitening_filter(phi) if coef_all is None else None
     cs = c / norms
     part = _solve_part(q)
     betas = betas or want_cov
@@ -820,10 +825,14 @@ def arp_solve(
     for a in range(0, V, part):
         b = min(V, a + part)
         sl = slice(a, b)
-        Cp = C[sl]
-        cp = Cp[:, p, :].T  # (p+1, w): the steady row
-        g = np.stack([np.einsum("kv,kv->v", cp[: p + 1 - d], cp[d:]) for d in range(p + 1)])
-        top, bot = _boundary(Cp, g)
+        if coef_all is None:
+            Cp = C[sl]
+            cp = Cp[:, p, :].T  # (p+1, w): the steady row
+            g = np.stack([np.einsum("kv,kv->v", cp[: p + 1 - d], cp[d:]) for d in range(p + 1)])
+            top, bot = _boundary(Cp, g)
+        else:
+            coef = coef_all[:, sl]
+            g, top, bot = coef[:3], coef[3:7].reshape(2, 2, -1), coef[7:].reshape(2, 2, -1)
         # X*'y* (q, w) and y*'y* (w,): the band Toeplitz part, then the first and last p rows
         H = s.H[:, :, sl]  # in the design's order; the Cholesky's order is taken below
         head, tail = s.head[:p, sl], s.tail[P - p :, sl]
@@ -846,7 +855,8 @@ def arp_solve(
         y2 += np.einsum("tv,tv->v", np.concatenate([head, tail]), Eh)
         yy[sl] = y2
         # X*'X* (q, q, w) = basis @ (g, top, bot): one product, then the solve
-        coef = np.concatenate([g, top.reshape(p * p, -1), bot.reshape(p * p, -1)])
+        if coef_all is None:
+            coef = np.concatenate([g, top.reshape(p * p, -1), bot.reshape(p * p, -1)])
         if want_cov:
             G = (basis @ coef).reshape(q, q, -1)
             Ginv = np.linalg.inv(np.moveaxis(G, 2, 0))
@@ -880,7 +890,7 @@ def arp_solve(
         B = np.empty((q, 0)) if Bs is None else Bs[:, close] / norms[:, None]
     if close.size and series is not None:
         Rc = series(close) - prep.X @ (B[:, close] if betas else B)
-        Rwc = whiten(C[close], Rc)
+        Rwc = whiten(whitening_filter(phi[:, close]) if C is None else C[close], Rc)
         rss_w[close] = np.einsum("ij,ij->j", Rwc, Rwc)
     if want_cov:
         cb = c @ B
