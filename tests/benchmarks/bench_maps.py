@@ -10,7 +10,8 @@ comparing like with like:
   against the plain NumPy script a user would write (nibabel in float64, pinv, residuals,
   t, save), also whole-process; and, against the one-pass script, the default AR(p) map of
   the same run and the OLS map of a run with background (a third of the grid bright: the
-  command then keeps the summary pass before the map).
+  command then keeps the summary pass before the map), and the default map against the
+  OLS map, both ``voxelscope map`` (issue 14's ratio as a command has it, whole-process).
 * In-process on the same loaded, memory-mapped data (page cache warm for both): the OLS t
   map (``compute_map``) against one streaming pass ``data.sum(axis=-1)``: goal <= 4. Info
   rows give the floors: the least work of a fit with one matrix product over the data
@@ -310,6 +311,11 @@ def _info_wholeprocess_rows(path: Path, background: Path, label: str) -> list[tu
         one = [sys.executable, str(folder / "one_pass.py"), str(run), str(folder / "mean.nii")]
         pair = side_by_side(ours, one, repeats=5)
         rows.append(row(f"{label}: {what} vs load + one pass + save", pair, None))
+        if noise == "arp":  # like with like for the command: the OLS map, whole-process
+            ols = [*ours]
+            ols[ols.index("arp")] = "ols"
+            pair = side_by_side(ours, ols, repeats=5)
+            rows.append(row(f"{label}: {what} vs the OLS map, voxelscope map both", pair, None))
     return rows
 
 

@@ -4,14 +4,17 @@ Row (``name, ours_s, reference_s, ratio, goal, ok``): the default AR(p) map (one
 over the data keeps a few sums per voxel; they give the bias-corrected autocorrelations of
 the OLS residuals, smoothed in the mask, and then each voxel's AR(p) GLS) against the OLS
 map of the same run, kernel, contrast and mask, in the same process, alternating, best of
-11 (REPEATS); goal ratio <= 3 (issue 14). Both maps use the default workers. An
+11 (REPEATS); goal ratio <= 3 (issue 14). Both maps use the default workers; the process
+has loaded the compiled loops (``noise.load_loops()``), as the window does after its
+first map (a single ``voxelscope map`` does not: see bench_maps' whole-process rows). An
 info row gives the AR(1) map against the same OLS map, and one the default map of the same
 run with 10 % of its volumes censored inside the run (one indicator column each, which
 makes the AR(p) fit exact) against the same map uncensored. A second headline row repeats
 the comparison on a run whose noise is AR(1) with the coefficient varying smoothly from 0 to
 0.7 across the grid (the issue's calibration setting): on white noise the AR coefficients
 sit close together and the effective df's grid is cheap; spread coefficients are what real
-runs have.
+runs have. An info row gives that map with the compiled loops off (NumPy only,
+``voxelscope.core.loops``), against the same OLS map.
 
 Run: ``python tests/benchmarks/run.py noise`` or ``python tests/benchmarks/bench_noise.py``.
 """
@@ -78,8 +81,10 @@ def _ar_rows(folder: Path) -> list[tuple]:
     """OLS and default AR(p) maps of the AR(1)-noise run, alternating, best of REPEATS."""
     from bench_maps import _setup
 
+    from voxelscope.core import noise
     from voxelscope.core.maps import compute_map
 
+    noise.load_loops()  # as the window has them after its first map
     run, a, s = _setup(_make_ar_run(folder, (64, 64, 40), 300))
     mask = run.mask()
     settings = {m: s.with_(noise=m) for m in ("ols", "arp")}
@@ -87,6 +92,16 @@ def _ar_rows(folder: Path) -> list[tuple]:
         m: (lambda st=st: compute_map(run, a, st, "double-gamma", mask=mask, stats=("t",)))
         for m, st in settings.items()
     }
+
+    def numpy_only():  # the same map with the compiled loops off (as VOXELSCOPE_COMPILED=0)
+        kept = list(noise._LOOPS)
+        noise._LOOPS[:] = [None]
+        try:
+            fns["arp"]()
+        finally:
+            noise._LOOPS[:] = kept
+
+    fns["arp-numpy"] = numpy_only
     for fn in fns.values():
         fn()
     best = _alternating(fns)
@@ -99,15 +114,25 @@ def _ar_rows(folder: Path) -> list[tuple]:
             ratio,
             "<= 3",
             ratio <= 3,
-        )
+        ),
+        (
+            "the same AR(p) map with its loops in NumPy (compiled loops off) vs OLS map",
+            best["arp-numpy"],
+            best["ols"],
+            best["arp-numpy"] / best["ols"],
+            "(info)",
+            None,
+        ),
     ]
 
 
 def main() -> list[tuple]:
     from bench_maps import _make_run, _setup
 
+    from voxelscope.core import noise
     from voxelscope.core.maps import compute_map
 
+    noise.load_loops()  # the compiled loops, as the window has them after its first map
     with tempfile.TemporaryDirectory(prefix="vxs-bench-noise-") as tmp:
         path = _make_run(Path(tmp), (64, 64, 40), 300)
         run, a, s = _setup(path)

@@ -98,3 +98,13 @@ def test_every_command_is_registered_and_a_broken_one_is_not_hidden(monkeypatch)
     monkeypatch.setitem(sys.modules, "voxelscope.cli.report", None)  # its import fails
     with pytest.raises(ImportError):
         cli.build_parser()
+
+
+def test_a_map_command_stays_in_numpy(tmp_path):
+    """``voxelscope map`` under the default AR(p) model does not import numba: loading the
+    compiled loops (about 0.7 s) costs one command more than they save on its one map
+    (voxelscope.core.noise.load_loops; bench_maps' whole-process rows)."""
+    rng = np.random.default_rng(5)
+    path, events = write_run(tmp_path, 500 + rng.standard_normal((16, 16, 10, 60)), 1.5)
+    argv = ["map", str(path), "--events", str(events), "-o", str(tmp_path / "t.nii")]
+    assert _loaded_after(argv, ("numba", "llvmlite", *QT)) == []

@@ -10,6 +10,7 @@ tests/core/test_noise.py. All data here are random, drawn in the tests.
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 
@@ -24,6 +25,12 @@ from voxelscope.core.maps import ArrayRun, compute_map
 from voxelscope.core.model import Analysis, ModelSettings
 
 loops = pytest.importorskip("voxelscope.core.loops")
+
+
+@pytest.fixture(autouse=True)
+def _loaded():
+    """The loops as the window has them (noise.load_loops), for every test here."""
+    assert noise.load_loops()
 
 
 def _numpy_only(monkeypatch):
@@ -104,17 +111,22 @@ def test_refined_ar2_estimate_equals_numpy_and_statsmodels(monkeypatch):
         np.testing.assert_allclose(exact[:, v], yw, rtol=0, atol=1e-4)
 
 
-def test_the_loops_stay_out_of_small_batches():
-    """A single fit (a few voxels) never reaches the compiled loops; a map's batch does,
-    unless VOXELSCOPE_COMPILED=0."""
+def test_the_loops_are_loaded_only_when_asked_for():
+    """A process uses the compiled loops only after noise.load_loops() (numba is not even
+    imported before), only for batches of at least LOOP_VOXELS, and never with
+    VOXELSCOPE_COMPILED=0."""
     assert noise._loops(noise.LOOP_VOXELS - 1) is None
     code = (
-        "import os, sys; from voxelscope.core import noise;"
-        "print(noise._loops(noise.LOOP_VOXELS) is not None, 'numba' in sys.modules)"
+        "import sys; from voxelscope.core import noise;"
+        "n = noise.LOOP_VOXELS; before = noise._loops(n) is None and 'numba' not in sys.modules;"
+        "print(before, noise.load_loops(), noise._loops(n) is not None, 'numba' in sys.modules)"
     )
-    for env, want in (({}, "True True"), ({"VOXELSCOPE_COMPILED": "0"}, "False False")):
+    for env, want in (
+        ({}, "True True True True"),
+        ({"VOXELSCOPE_COMPILED": "0"}, "True False False False"),
+    ):
         out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
-                             env={**__import__("os").environ, **env}, timeout=120)  # fmt: skip
+                             env={**os.environ, **env}, timeout=120)  # fmt: skip
         assert out.stdout.split() == want.split(), out.stderr
 
 

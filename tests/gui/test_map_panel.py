@@ -335,3 +335,23 @@ def test_preview_planes_take_the_whole_runs_smoothness(window, ras_run, monkeypa
     mapjobs.preview_stat(state.run, state.analysis, req, state.voxel)
     assert len(given) == len(mapjobs.PREVIEW_AXES)
     assert all(w == 1 and tuple(f) == tuple(full.data_fwhm_mm) for f, w in given)
+
+
+def test_an_ar_map_loads_the_compiled_loops_for_the_next_ones(window, qtbot, ras_run, monkeypatch):
+    """After the window's first AR(p) map (the default), the compiled loops are loaded in
+    the background, once per process (voxelscope.core.noise.load_loops); OLS maps do not
+    ask for them."""
+    from voxelscope.core import noise
+
+    monkeypatch.setattr(noise, "_LOOPS", [])
+    monkeypatch.setattr(mapjobs, "_LOOPS_ASKED", [])
+    asked = []
+    real = mapjobs._load_loops_once
+    monkeypatch.setattr(mapjobs, "_load_loops_once", lambda owner: (asked.append(1), real(owner)))
+    state, live = _open(window, ras_run)
+    assert state.settings.noise == "arp" and asked == [1]
+    qtbot.waitUntil(lambda: bool(noise._LOOPS), timeout=60000)
+    assert noise._LOOPS[0] is not None and noise._loops(noise.LOOP_VOXELS) is not None
+    state.update_settings(noise="ols")
+    assert live.flush(20000)
+    assert asked == [1]

@@ -6,12 +6,14 @@ voxels: a few microseconds of interpreter per call, taken in turns by the map's 
 under the interpreter lock. The loops here are the same arithmetic compiled, and they
 release the lock (``nogil``), so the workers run them side by side.
 
-Only :mod:`voxelscope.core.noise` calls them, and only for batches of at least
-``noise.LOOP_VOXELS`` voxels (a map): a single fit never imports numba, so ``voxelscope
-fit`` starts as fast as before. The NumPy code in ``noise`` stays the definition, and
-``tests/core/test_loops.py`` holds each loop to it on random input. Compiled code is kept
-in numba's cache (``__pycache__`` beside this file, or the user's cache folder), so only
-the first map after an install or upgrade pays the compilation (a few seconds).
+Only :mod:`voxelscope.core.noise` calls them, for batches of at least
+``noise.LOOP_VOXELS`` voxels (a map), and only in a process that loaded them with
+``noise.load_loops()`` (the window after its first map, the benchmarks): loading costs
+more than one map gains, so ``voxelscope map`` and ``fit`` stay in NumPy and never import
+numba. The NumPy code in ``noise`` stays the definition, and ``tests/core/test_loops.py``
+holds each loop to it on random input. Compiled code is kept in numba's cache
+(``__pycache__`` beside this file, or the user's cache folder), so only the first load
+after an install or upgrade pays the compilation (a few seconds).
 
 Examples
 --------
@@ -26,7 +28,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["bordered_cholesky", "gram_coefficients_ar2", "lag_products", "refine_ar2"]
+__all__ = ["bordered_cholesky", "gram_coefficients_ar2", "lag_products", "refine_ar2", "warm"]
 
 # nogil: the map's workers run these side by side; error_model="numpy": a division by zero
 # gives inf or NaN as in NumPy instead of raising; cache: compiled once per install.
@@ -273,3 +275,16 @@ def _sequence4(a1, a2, r1, r2, Ft, n, tol, segment, out):  # pragma: no cover - 
     out[1, 0], out[1, 1], out[1, 2] = o20, o21, o22
     out[2, 0], out[2, 1], out[2, 2] = o30, o31, o32
     out[3, 0], out[3, 1], out[3, 2] = o40, o41, o42
+
+
+def warm() -> None:
+    """Call every loop once on small arrays of the types a map passes (float64, C order),
+    so that numba loads (or, after an install, compiles) them now and not in a map."""
+    Y = np.ones((8, 4))
+    lag_products(Y, 2, np.zeros((3, 4)))
+    A = np.zeros((2, 3, 4))
+    A[0, 0] = A[1, 1] = 1.0
+    bordered_cholesky(A)
+    phi = np.full((2, 4), 0.1)
+    refine_ar2(phi, np.eye(3), np.ones((8, 3)), 1, 1e-7, 1e-10, 16, 0.99, phi.copy(), phi.copy())
+    gram_coefficients_ar2(phi, np.empty((11, 4)))

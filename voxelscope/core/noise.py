@@ -63,6 +63,7 @@ Examples
 from __future__ import annotations
 
 import math
+import threading
 from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
@@ -631,40 +632,56 @@ def _boundary(C: np.ndarray, g: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 #: Smallest batch of voxels that goes to the compiled loops (:mod:`voxelscope.core.loops`):
-#: a map's pieces are far larger; a single fit (a few voxels) stays in NumPy and never
-#: imports numba.
+#: a map's pieces are far larger; a single fit (a few voxels) stays in NumPy.
 LOOP_VOXELS = 1024
-_LOOPS: list = []
+_LOOPS: list = []  # [the loops' module, or None where they are not available], once loaded
+_LOOPS_LOCK = threading.Lock()
+
+
+def load_loops() -> bool:
+    """Load the compiled loops (:mod:`voxelscope.core.loops`) for this process's later maps.
+
+    Loading costs about 0.7 s (numba's import, then the first call of each loop from
+    numba's cache; the first time after an install, the compilation: a few seconds), and
+    the loops save about 0.05 s on a map of 160,000 voxels (two workers; DEVELOPERS.md), so
+    only a process that makes many maps loads them: the window (in the background after
+    its first map) and the benchmarks. A single ``voxelscope map`` or ``fit`` stays in
+    NumPy and never imports numba. ``VOXELSCOPE_COMPILED=0`` keeps every map in NumPy;
+    if numba fails to import, that is said once on stderr and maps stay in NumPy.
+    Safe to call from several threads; returns whether the loops are in use.
+    """
+    with _LOOPS_LOCK:
+        if not _LOOPS:
+            import os
+
+            got = None
+            if os.environ.get("VOXELSCOPE_COMPILED", "1") != "0":
+                try:
+                    from . import loops as got
+
+                    got.warm()
+                except Exception as exc:  # pragma: no cover - numba is a dependency
+                    import sys
+
+                    got = None
+                    print(
+                        f"voxelscope: numba did not load ({exc}); maps run their AR(p) loops"
+                        " in NumPy, slower (reinstall numba to get them back)",
+                        file=sys.stderr,
+                    )
+            _LOOPS.append(got)
+    return _LOOPS[0] is not None
 
 
 def _loops(n_voxels: int) -> Any:
-    """The compiled loops' module for a batch of ``n_voxels``, or None: NumPy then.
-
-    None below :data:`LOOP_VOXELS`, when the environment sets ``VOXELSCOPE_COMPILED=0`` (to
-    compare or to rule the loops out), or when numba does not import (said once on
-    stderr).
+    """The compiled loops' module for a batch of ``n_voxels`` once :func:`load_loops` has
+    loaded them, else None: NumPy then (also below :data:`LOOP_VOXELS`).
 
     >>> _loops(1) is None
     True
     """
-    if n_voxels < LOOP_VOXELS:
+    if n_voxels < LOOP_VOXELS or not _LOOPS:
         return None
-    if not _LOOPS:
-        import os
-
-        got = None
-        if os.environ.get("VOXELSCOPE_COMPILED", "1") != "0":
-            try:
-                from . import loops as got
-            except Exception as exc:  # pragma: no cover - numba is a dependency
-                import sys
-
-                print(
-                    f"voxelscope: numba did not load ({exc}); maps run their AR(p) loops in"
-                    " NumPy, slower (reinstall numba to get them back)",
-                    file=sys.stderr,
-                )
-        _LOOPS.append(got)
     return _LOOPS[0]
 
 
@@ -794,7 +811,11 @@ def arp_solve(
     # X*'X* from (g, top, bottom) per voxel: compiled for a map's AR(2) batch, which then
     # needs no filters (voxelscope.core.loops), else from the filters part by part
     loops = _loops(V) if p == 2 and not want_cov else None
-    coef_all = None if loops is None else loops.gram_coefficients_ar2(phi, np.empty((11, V)))
+    coef_all = (
+        None
+        if loops is None
+        else loops.gram_coefficients_ar2(np.ascontiguousarray(phi), np.empty((11, V)))
+    )
     C = whitening_filter(phi) if coef_all is None else None
     cs = c / norms
     part = _solve_part(q)

@@ -191,6 +191,28 @@ def compute_request(
     )
 
 
+_LOOPS_ASKED: list = []  # a loader job was started in this process
+
+
+def _load_loops_once(owner: QObject) -> None:
+    """After the window's first AR(p) map, load the compiled loops in the background
+    (:func:`voxelscope.core.noise.load_loops`, about 0.7 s once per process): its later
+    maps use them. Loading at start-up would compete with the first map for the cores."""
+    if _LOOPS_ASKED:
+        return
+    _LOOPS_ASKED.append(True)
+    from voxelscope.core.noise import load_loops
+
+    job = BackgroundJob(lambda _progress: load_loops(), "loading the compiled loops", owner=owner)
+
+    def finished(job: BackgroundJob = job) -> None:
+        job.wait()
+        job.deleteLater()
+
+    job.finished.connect(finished)
+    job.start()
+
+
 #: The order the preview's planes are fitted and shown in: the plane of constant ``k``
 #: first (contiguous in every volume of a ``.nii``, so the cheapest to read), then ``j``,
 #: then ``i`` (one value of every row of the file).
@@ -589,6 +611,8 @@ class LiveMap(QObject):
             return  # settings changed meanwhile; a newer job follows
         self.jobs_done += 1
         self.last_seconds = outcome.seconds
+        if outcome.request.settings.noise == "arp":
+            _load_loops_once(self)
         self._remember(outcome.model)
         if outcome.other is not None:
             self._remember(outcome.other)
