@@ -206,6 +206,16 @@ def refine_ar2(
 
 
 @numba.njit(inline="always")
+def _settle(g: float, h: float, a: float, b: float, tol: float) -> tuple:  # pragma: no cover
+    """One lane of :func:`_sequence4` at the end of a segment: a sequence whose last two
+    values ``g, h`` are below ``tol`` stops and goes on as zeros (coefficients ``a, b`` 0
+    too), which add nothing. Returns the lane's values and whether it goes on."""
+    if max(abs(g), abs(h)) < tol:
+        return 0.0, 0.0, 0.0, 0.0, False
+    return g, h, a, b, True
+
+
+@numba.njit(inline="always")
 def _sequence4(a1, a2, r1, r2, Ft, n, tol, segment, out):  # pragma: no cover - compiled
     """Add ``Ft[k] * g_k`` for k >= 3 to ``out`` (4, 3) for four AR(2) sequences ``g``
     (coefficients ``a1, a2``, first autocorrelations ``r1, r2``), each stopped at the end
@@ -252,24 +262,11 @@ def _sequence4(a1, a2, r1, r2, Ft, n, tol, segment, out):  # pragma: no cover - 
             o42 += f2 * x4
             k += 1
         m = segment
-        going = 0
-        if max(abs(g1), abs(h1)) < tol:
-            g1 = h1 = p1 = q1 = 0.0
-        else:
-            going += 1
-        if max(abs(g2), abs(h2)) < tol:
-            g2 = h2 = p2 = q2 = 0.0
-        else:
-            going += 1
-        if max(abs(g3), abs(h3)) < tol:
-            g3 = h3 = p3 = q3 = 0.0
-        else:
-            going += 1
-        if max(abs(g4), abs(h4)) < tol:
-            g4 = h4 = p4 = q4 = 0.0
-        else:
-            going += 1
-        if going == 0:
+        g1, h1, p1, q1, going1 = _settle(g1, h1, p1, q1, tol)
+        g2, h2, p2, q2, going2 = _settle(g2, h2, p2, q2, tol)
+        g3, h3, p3, q3, going3 = _settle(g3, h3, p3, q3, tol)
+        g4, h4, p4, q4, going4 = _settle(g4, h4, p4, q4, tol)
+        if not (going1 or going2 or going3 or going4):
             break
     out[0, 0], out[0, 1], out[0, 2] = o10, o11, o12
     out[1, 0], out[1, 1], out[1, 2] = o20, o21, o22
